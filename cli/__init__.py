@@ -1,0 +1,1 @@
+"""The ``cairn`` command line (installed as the ``cairn_cli`` package)."""

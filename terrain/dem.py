@@ -1,0 +1,159 @@
+"""The DEM grid: elevations, nodata mask, georeferencing and cell sizes.
+
+Pure data; no function here opens a path (that is :mod:`terrain.io`).
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import NoValidCellsError, OptionError
+
+__all__ = ["Dem", "metres_per_degree"]
+
+# WGS84 ellipsoid (NIMA TR8350.2, 2000)
+_A = 6378137.0
+_F = 1 / 298.257223563
+_E2 = _F * (2 - _F)
+
+
+def metres_per_degree(lat_deg: np.ndarray | float) -> tuple[np.ndarray, np.ndarray]:
+    """Length of one degree of longitude and of latitude on the WGS84 ellipsoid.
+
+    Parameters
+    ----------
+    lat_deg : array_like
+        Geodetic latitude in degrees.
+
+    Returns
+    -------
+    (m_per_deg_lon, m_per_deg_lat)
+
+    References
+    ----------
+    .. [1] Snyder, J. P. (1987). Map Projections: A Working Manual. USGS
+       Professional Paper 1395, eqs. 4-18 and 4-20 (radii of curvature).
+    """
+    phi = np.radians(np.asarray(lat_deg, dtype=np.float64))
+    s2 = np.sin(phi) ** 2
+    n = _A / np.sqrt(1 - _E2 * s2)  # prime vertical radius
+    m = _A * (1 - _E2) / (1 - _E2 * s2) ** 1.5  # meridional radius
+    return np.pi / 180 * n * np.cos(phi), np.pi / 180 * m
+
+
+@dataclass
+class Dem:
+    """An elevation raster with its grid.
+
+    Attributes
+    ----------
+    z : (rows, cols) float32 or float64 array
+        Elevations; nodata cells hold NaN.
+    nodata : (rows, cols) bool array
+        True where the cell has no valid elevation.
+    transform : tuple of 6 floats
+        Affine (a, b, c, d, e, f) as in GDAL/rasterio: x = a*col + b*row + c.
+    crs : str or None
+        CRS as WKT, or None when the file declares none.
+    geographic : bool
+        True for a geographic (degrees) CRS.
+    linear_unit_m : float
+        Metres per CRS unit for projected CRSs (1.0 when unknown).
+    vertical_units : str or None
+        As declared by the file; None when not declared (never guessed).
+    source : str
+        File the DEM came from (for messages), or "<array>".
+    """
+
+    z: np.ndarray
+    nodata: np.ndarray
+    transform: tuple = (1.0, 0.0, 0.0, 0.0, -1.0, 0.0)
+    crs: str | None = None
+    geographic: bool = False
+    linear_unit_m: float = 1.0
+    vertical_units: str | None = None
+    source: str = "<array>"
+    meta: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        if self.z.ndim != 2:
+            raise OptionError(f"{self.source}: expected a 2-D raster, got shape {self.z.shape}")
+        self.nodata = np.asarray(self.nodata, bool) | ~np.isfinite(self.z)
+        if self.nodata.all():
+            raise NoValidCellsError(f"{self.source}: no valid cells (all nodata or non-finite)")
+        if np.any(self.nodata & np.isfinite(self.z)):
+            self.z = np.where(self.nodata, np.nan, self.z).astype(self.z.dtype)
+
+    @classmethod
+    def from_array(cls, z: np.ndarray, *, cellsize: float = 1.0, **kw) -> Dem:
+        """A DEM on a north-up grid with square cells of ``cellsize`` (CRS units)."""
+        z = np.asarray(z)
+        if z.dtype.kind != "f":
+            z = z.astype(np.float32 if z.dtype.itemsize <= 2 else np.float64)
+        kw.setdefault("transform", (cellsize, 0.0, 0.0, 0.0, -cellsize, z.shape[0] * cellsize))
+        return cls(z=z, nodata=kw.pop("nodata", ~np.isfinite(z)), **kw)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.z.shape
+
+    @property
+    def cellsize(self) -> tuple[float, float]:
+        """Cell size (x, y) in CRS units, both positive."""
+        a, b, _, d, e, _ = self.transform
+        return float(np.hypot(a, d)), float(np.hypot(b, e))
+
+    def row_latitudes(self) -> np.ndarray:
+        """Latitude (degrees) of each row's centre for a geographic CRS."""
+        a, b, c, d, e, f = self.transform
+        rows = np.arange(self.shape[0]) + 0.5
+        cols = self.shape[1] / 2
+        return d * cols + e * rows + f
+
+    def cell_metres(self) -> tuple[np.ndarray, np.ndarray]:
+        """Cell width and height in metres, per row (arrays of length rows).
+
+        For a geographic CRS the lengths follow the latitude of each row on
+        the WGS84 ellipsoid; otherwise they are the CRS cell size times the
+        CRS linear unit.
+        """
+        dx, dy = self.cellsize
+        n = self.shape[0]
+        if self.geographic:
+            mlon, mlat = metres_per_degree(self.row_latitudes())
+            return dx * mlon, dy * mlat
+        return (np.full(n, dx * self.linear_unit_m), np.full(n, dy * self.linear_unit_m))
+
+    def cell_area_m2(self) -> np.ndarray:
+        """Area of a cell in each row, square metres."""
+        w, h = self.cell_metres()
+        return w * h
+
+    def xy(self, flat: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """CRS coordinates of the centres of flat row-major cells."""
+        r, c = np.divmod(np.asarray(flat, np.int64), self.shape[1])
+        a, b, cc, d, e, f = self.transform
+        x = a * (c + 0.5) + b * (r + 0.5) + cc
+        y = d * (c + 0.5) + e * (r + 0.5) + f
+        return x, y
+
+    def checksum(self) -> str:
+        """SHA-256 of the elevations and mask (identifies the DEM in checkpoints)."""
+        h = hashlib.sha256()
+        h.update(str(self.z.shape).encode())
+        h.update(np.ascontiguousarray(np.where(self.nodata, 0, self.z), dtype=np.float64).tobytes())
+        h.update(np.packbits(self.nodata).tobytes())
+        return h.hexdigest()
+
+    def realisation_bytes(self) -> int:
+        """Estimated memory for one realisation, bytes per cell (stated, not measured).
+
+        One perturbed copy (4 or 8), noise (4 or 8), persistence labels (4),
+        negated key copy (4 or 8), valid mask (1) and the layer accumulators
+        (3 float64 layers x 2 moments in the parent, 48).
+        """
+        b = self.z.dtype.itemsize
+        return 3 * b + 4 + 1 + 48

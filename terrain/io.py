@@ -1,0 +1,252 @@
+"""Everything that touches the file system: reading DEMs, atomic writes.
+
+This is the only module that opens paths. Every output is written to a
+temporary name in the destination folder and renamed into place when it is
+complete, so an interrupted run leaves either the previous file or none,
+never a partial one.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import tempfile
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from .dem import Dem
+from .errors import BandError, CorruptRasterError, DemNotFoundError, NotARasterError, OutputError, WindowError
+
+__all__ = ["read_dem", "atomic_path", "write_json", "write_layer", "prepare_outdir",
+           "write_table"]
+
+
+def read_dem(path: str | os.PathLike, *, band: int | None = None,
+             bbox: tuple[float, float, float, float] | None = None) -> Dem:
+    """Read one band of any raster GDAL can open into a :class:`~terrain.dem.Dem`.
+
+    Parameters
+    ----------
+    path : path-like
+        The raster file.
+    band : int, optional
+        1-based band number. Required for multi-band files.
+    bbox : (xmin, ymin, xmax, ymax), optional
+        Window in CRS units; cells whose area meets the box are read.
+
+    Raises
+    ------
+    DemNotFoundError, NotARasterError, CorruptRasterError, BandError,
+    WindowError, NoValidCellsError
+        Each message names the file and the problem.
+    """
+    import rasterio
+    from rasterio.errors import RasterioIOError
+    from rasterio.windows import from_bounds
+
+    p = Path(path)
+    if not p.exists():
+        raise DemNotFoundError(f"{p}: no such file")
+    if p.is_dir() and not any(p.iterdir()):
+        raise NotARasterError(f"{p}: is an empty folder, not a raster")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            ds = rasterio.open(p)
+        except RasterioIOError as exc:
+            raise NotARasterError(f"{p}: not a raster any driver can read ({_short(exc)})") from None
+    with ds:
+        if band is None:
+            if ds.count > 1:
+                names = ", ".join(f"{i}={d or 'unnamed'}" for i, d in
+                                  zip(range(1, ds.count + 1), ds.descriptions))
+                raise BandError(f"{p}: has {ds.count} bands ({names}); choose one with --band")
+            band = 1
+        if not 1 <= band <= ds.count:
+            raise BandError(f"{p}: band {band} does not exist (the file has {ds.count})")
+        window = None
+        if bbox is not None:
+            xmin, ymin, xmax, ymax = bbox
+            l, b, r, t = ds.bounds
+            if not (xmin < xmax and ymin < ymax):
+                raise WindowError(f"{p}: bounding box {bbox} is empty (need xmin<xmax, ymin<ymax)")
+            if xmax <= l or xmin >= r or ymax <= b or ymin >= t:
+                raise WindowError(f"{p}: bounding box {bbox} lies outside the raster "
+                                  f"(bounds {l:g}, {b:g}, {r:g}, {t:g})")
+            window = from_bounds(max(xmin, l), max(ymin, b), min(xmax, r), min(ymax, t),
+                                 ds.transform).round_offsets().round_lengths()
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                arr = ds.read(band, window=window, masked=True)
+        except Exception as exc:  # rasterio raises several classes for damaged files
+            raise CorruptRasterError(f"{p}: pixels cannot be read, file truncated or damaged "
+                                     f"({_short(exc)})") from None
+        transform = ds.window_transform(window) if window is not None else ds.transform
+        crs = ds.crs
+        units = ds.units[band - 1] if ds.units and ds.units[band - 1] else None
+        nodata_value = ds.nodatavals[band - 1]
+        dtype = np.dtype(ds.dtypes[band - 1])
+    data = np.asarray(arr.data)
+    mask = np.ma.getmaskarray(arr)
+    if dtype.kind == "f" and dtype.itemsize == 4 or dtype.kind in "iub" and dtype.itemsize <= 2:
+        z = data.astype(np.float32)
+    else:
+        z = data.astype(np.float64)
+    meta = {"dtype": str(dtype), "nodata_value": nodata_value}
+    geographic = bool(crs is not None and crs.is_geographic)
+    unit_m = 1.0
+    if crs is not None and not geographic:
+        with contextlib.suppress(Exception):
+            unit_m = float(crs.linear_units_factor[1])
+    return Dem(z=z, nodata=mask, transform=tuple(transform)[:6],
+               crs=crs.to_wkt() if crs is not None else None, geographic=geographic,
+               linear_unit_m=unit_m, vertical_units=units, source=str(p), meta=meta)
+
+
+def _short(exc: BaseException) -> str:
+    return str(exc).strip().splitlines()[0][:160] if str(exc).strip() else type(exc).__name__
+
+
+# ----------------------------------------------------------------------------
+# outputs
+# ----------------------------------------------------------------------------
+def prepare_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bool) -> Path:
+    """Check (and create) an output folder before any work starts.
+
+    Raises :class:`OutputError` when the path is an existing file, cannot be
+    created or written, or when one of ``names`` exists and ``overwrite`` is
+    False (the message lists them and suggests ``--overwrite``).
+    """
+    out = Path(outdir)
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{out}: exists and is a file, not a folder; choose another -o")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot create the output folder ({exc.strerror})") from None
+    if not os.access(out, os.W_OK | os.X_OK):
+        raise OutputError(f"{out}: output folder is not writable; choose another -o")
+    clash = [n for n in names if (out / n).exists()]
+    if clash and not overwrite:
+        more = f" and {len(clash) - 3} more" if len(clash) > 3 else ""
+        raise OutputError(f"{out}: would overwrite {', '.join(clash[:3])}{more}; "
+                          "pass --overwrite to replace them")
+    return out
+
+
+@contextlib.contextmanager
+def atomic_path(dest: str | os.PathLike):
+    """Yield a temporary path beside ``dest``; rename it onto ``dest`` on success.
+
+    On any exception (or interrupt) the temporary file is removed and
+    ``dest`` is untouched.
+    """
+    dest = Path(dest)
+    fd, tmp = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".part" + dest.suffix,
+                               dir=dest.parent)
+    os.close(fd)
+    os.unlink(tmp)
+    try:
+        yield Path(tmp)
+        os.replace(tmp, dest)
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+
+
+def write_json(dest: str | os.PathLike, obj: dict) -> None:
+    """Write ``obj`` as indented JSON, atomically."""
+    with atomic_path(dest) as tmp:
+        tmp.write_text(json.dumps(obj, indent=2, default=_json_default) + "\n")
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(type(o).__name__)
+
+
+def write_layer(dest: str | os.PathLike, dem: Dem, estimate: np.ndarray, se: np.ndarray, *,
+                name: str, units: str, description: str, tags: dict) -> None:
+    """Write one credit layer as a two-band float32 GeoTIFF, atomically.
+
+    Band 1 is the estimate, band 2 its standard error, both on the DEM's
+    grid, CRS and transform, nodata = NaN where the DEM has none. The file is
+    tiled (256x256), DEFLATE-compressed with the floating-point predictor and
+    carries internal overviews; ``tags`` (the run's parameters) are stored as
+    dataset metadata.
+    """
+    import rasterio
+    from rasterio.enums import Resampling
+    from rasterio.transform import Affine
+
+    rows, cols = dem.shape
+    tiled = rows >= 256 and cols >= 256
+    profile = dict(driver="GTiff", height=rows, width=cols, count=2, dtype="float32",
+                   crs=dem.crs, transform=Affine(*dem.transform), nodata=np.nan,
+                   compress="deflate", predictor=3)
+    if tiled:
+        profile.update(tiled=True, blockxsize=256, blockysize=256)
+    e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
+    s = np.where(dem.nodata, np.nan, se).astype(np.float32)
+    with atomic_path(dest) as tmp:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # no-CRS rasters warn in rasterio
+            with rasterio.open(tmp, "w", **profile) as ds:
+                ds.write(e, 1)
+                ds.write(s, 2)
+                ds.set_band_description(1, f"{name} ({units})")
+                ds.set_band_description(2, f"{name} standard error ({units})")
+                ds.units = (units, units)
+                ds.update_tags(**{k: _tag(v) for k, v in tags.items()},
+                               LAYER=name, DESCRIPTION=description)
+                ds.update_tags(1, ROLE="estimate")
+                ds.update_tags(2, ROLE="standard_error")
+                factors = [f for f in (2, 4, 8, 16, 32) if min(rows, cols) // f >= 64]
+                if factors:
+                    ds.build_overviews(factors, Resampling.average)
+
+
+def _tag(v) -> str:
+    if isinstance(v, (dict, list, tuple)):
+        return json.dumps(v, default=_json_default)
+    return str(v)
+
+
+def write_table(gpkg: str | os.PathLike | None, csv: str | os.PathLike | None, frames: dict) -> None:
+    """Write GeoDataFrames as layers of one GeoPackage and the first as CSV.
+
+    ``frames`` maps layer name to GeoDataFrame; the CSV holds the first
+    frame's columns without geometry.
+    """
+    if gpkg is not None:
+        with atomic_path(gpkg) as tmp:
+            for layer, gdf in frames.items():
+                gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio")
+    if csv is not None:
+        first = next(iter(frames.values()))
+        with atomic_path(csv) as tmp:
+            first.drop(columns="geometry").to_csv(tmp, index=False)
+
+
+def save_npz(dest: str | os.PathLike, **arrays) -> None:
+    """Save arrays to an uncompressed ``.npz`` atomically (no pickled objects)."""
+    with atomic_path(dest) as tmp:
+        with open(tmp, "wb") as fh:
+            np.savez(fh, **arrays)
+            fh.flush()
+            os.fsync(fh.fileno())
+
+
+def load_npz(path: str | os.PathLike) -> dict:
+    """Load an ``.npz`` with ``allow_pickle=False`` into a dict of arrays."""
+    with np.load(path, allow_pickle=False) as f:
+        return {k: f[k] for k in f.files}

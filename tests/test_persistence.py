@@ -1,0 +1,229 @@
+"""0-dimensional persistence pairs checked against outside references.
+
+References used here:
+- gudhi (The GUDHI Project, GUDHI User and Reference Manual, 2024):
+  ``CubicalComplex(top_dimensional_cells=A)`` is the 8-connected sublevel
+  filtration, ``CubicalComplex(vertices=A)`` the 4-connected one.
+- Soille, P. (2004), Morphological Image Analysis, 2nd ed.: filling holes by
+  morphological reconstruction by erosion, as computed by
+  ``skimage.morphology.reconstruction(seed, z, method="erosion")``.
+- Prominence by its definition (height of a summit above its key col; the
+  highest summit measured to a base), by brute-force threshold search.
+"""
+
+from __future__ import annotations
+
+import gudhi
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+from scipy import ndimage
+
+from terrain.persistence import pairs, pairs_and_fill
+
+from .conftest import smooth_terrain
+
+
+def gudhi_pairs(a, kind, conn, outlet):
+    """Finite (birth value, death value) pairs from gudhi, plus birth/death cells."""
+    z = (-a if kind == "peaks" else a).astype(np.float64)
+    pad = 1 if outlet else 0
+    if outlet:
+        lo = np.nanmin(z) - 1
+        z = np.pad(z, 1, constant_values=lo)
+    cc = (gudhi.CubicalComplex(top_dimensional_cells=z) if conn == 8
+          else gudhi.CubicalComplex(vertices=z))
+    cc.compute_persistence(homology_coeff_field=2, min_persistence=-1)
+    if conn == 8:
+        reg = cc.cofaces_of_persistence_pairs()[0]
+    else:
+        reg = cc.vertices_of_persistence_pairs()[0]
+    out = []
+    if len(reg):
+        fin = np.asarray(reg[0]).reshape(-1, 2)
+        # gudhi numbers cells in column-major order (first axis fastest)
+        br, bc = np.unravel_index(fin[:, 0], z.shape, order="F")
+        dr, dc = np.unravel_index(fin[:, 1], z.shape, order="F")
+        for b0, b1, d0, d1 in zip(br, bc, dr, dc):
+            bv, dv = z[b0, b1], z[d0, d1]
+            if bv == dv or (outlet and bv == lo):
+                continue
+            sign = -1 if kind == "peaks" else 1
+            shape = a.shape
+            out.append((sign * bv, sign * dv, (b0 - pad) * shape[1] + b1 - pad,
+                        (d0 - pad) * shape[1] + d1 - pad))
+    return out
+
+
+def ours(a, kind, conn, outlet):
+    p = pairs(a, kind=kind, connectivity=conn, edge_outlet=outlet)
+    f = ~p.essential
+    return list(zip(p.birth_value[f], p.death_value[f], p.birth[f], p.death[f]))
+
+
+def values(lst):
+    return sorted((float(b), float(d)) for b, d, *_ in lst)
+
+
+CASES = {
+    "smooth": lambda: smooth_terrain((61, 61), seed=1),
+    "non-square": lambda: smooth_terrain((23, 70), seed=2),
+    "integer-ties": lambda: np.round(smooth_terrain((50, 41), seed=3) / 40).astype(np.float32),
+    "white-noise": lambda: np.random.default_rng(4).standard_normal((37, 29)).astype(np.float32),
+}
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+@pytest.mark.parametrize("kind", ["peaks", "pits"])
+@pytest.mark.parametrize("conn", [8, 4])
+@pytest.mark.parametrize("outlet", [False, True])
+def test_pairs_equal_gudhi(case, kind, conn, outlet):
+    a = CASES[case]()
+    ref = gudhi_pairs(a, kind, conn, outlet)
+    got = ours(a, kind, conn, outlet)
+    assert values(got) == values(ref)
+    if case in ("smooth", "non-square", "white-noise"):  # distinct values: cells match too
+        assert sorted((b, d) for *_, b, d in got) == sorted((b, d) for *_, b, d in ref)
+
+
+@pytest.mark.parametrize("kind", ["peaks", "pits"])
+@pytest.mark.parametrize("conn", [8, 4])
+def test_pairs_equal_gudhi_on_usgs_dem(usgs_dem, kind, conn):
+    # real USGS 3 arc-second DEM shipped with matplotlib: integer metres, full of ties
+    assert values(ours(usgs_dem, kind, conn, kind == "pits")) == values(
+        gudhi_pairs(usgs_dem, kind, conn, kind == "pits"))
+
+
+def test_essential_peak_is_global_max():
+    z = smooth_terrain((40, 40), seed=5)
+    p = pairs(z, kind="peaks")
+    assert p.essential.sum() == 1
+    assert p.birth[p.essential][0] == np.argmax(z)
+    assert np.isinf(p.persistence[p.essential][0]) and np.isnan(p.death_value[p.essential][0])
+
+
+def test_pits_with_outlet_have_no_essential_class_and_border_pit_is_dropped():
+    z = np.array([[5, 5, 5, 5], [5, 1, 5, 5], [5, 5, 5, 0], [5, 5, 5, 5]], np.float32)
+    p = pairs(z, kind="pits")
+    assert not p.essential.any()
+    # interior pit of depth 4 spills over the rim; the border pit (cell 11) has depth 0
+    assert p.birth.tolist() == [5] and p.persistence.tolist() == [4.0]
+    assert p.edge_limited.tolist() == [True]
+
+
+def _brute_prominence(z):
+    """Prominence by definition: z(s) minus the highest level at which s still
+    connects to strictly higher ground (8-connected); None for the highest."""
+    out = {}
+    levels = np.unique(z)
+    for s in zip(*np.nonzero(z == ndimage.maximum_filter(z, 3))):
+        higher = z > z[s]
+        if not higher.any():
+            continue
+        for t in levels[::-1]:
+            if t > z[s]:
+                continue
+            lab, _ = ndimage.label(z >= t, structure=np.ones((3, 3)))
+            if np.any(lab[higher] == lab[s]):
+                out[s[0] * z.shape[1] + s[1]] = float(z[s] - t)
+                break
+    return {k: v for k, v in out.items() if v > 0}
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_prominence_matches_definition(seed):
+    z = np.random.default_rng(seed).permutation(144).reshape(12, 12).astype(np.float32)
+    z = ndimage.uniform_filter(z, 2) + np.arange(144).reshape(12, 12) * 1e-3  # distinct
+    z = z.astype(np.float64)
+    p = pairs(z, kind="peaks")
+    f = ~p.essential
+    got = {int(b): float(v) for b, v in zip(p.birth[f], p.persistence[f])}
+    ref = _brute_prominence(z)
+    assert got.keys() == ref.keys()
+    for k in ref:
+        assert got[k] == pytest.approx(ref[k], abs=1e-9)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_depth_and_fill_match_reconstruction_by_erosion(seed):
+    from skimage.morphology import reconstruction
+
+    z = smooth_terrain((45, 52), seed=seed).astype(np.float64)
+    if seed % 2:
+        z = np.round(z / 25)  # ties
+    seed_img = z.copy()
+    seed_img[1:-1, 1:-1] = z.max()
+    filled_ref = reconstruction(seed_img, z, method="erosion")  # Soille: fill holes
+    p, filled = pairs_and_fill(z)
+    np.testing.assert_array_equal(filled, filled_ref)
+    depth = filled_ref - z
+    lab, n = ndimage.label(depth > 0, structure=np.ones((3, 3)))
+    births = lab.reshape(-1)[p.birth]
+    for k in range(1, n + 1):
+        inside = p.persistence[births == k]
+        assert inside.size and inside.max() == pytest.approx(depth[lab == k].max())
+    assert not np.any(births == 0)  # every pit with depth > 0 lies in a filled region
+
+
+finite_or_not = st.one_of(st.floats(-5, 5, width=32), st.just(np.nan), st.sampled_from([0.0, 1.0]),
+                          st.just(np.inf), st.just(-np.inf))
+
+
+@settings(max_examples=150, deadline=None)
+@given(a=arrays(np.float32, st.tuples(st.integers(1, 9), st.integers(1, 9)), elements=finite_or_not),
+       kind=st.sampled_from(["peaks", "pits"]), conn=st.sampled_from([4, 8]),
+       outlet=st.booleans())
+def test_properties(a, kind, conn, outlet):
+    valid = np.isfinite(a)
+    if not valid.any():
+        p = pairs(a, kind=kind, connectivity=conn, edge_outlet=outlet)
+        assert len(p) == 0
+        return
+    p = pairs(a, kind=kind, connectivity=conn, edge_outlet=outlet)
+    assert np.all(p.persistence >= 0)
+    assert len(np.unique(p.birth)) == len(p.birth)  # each cell born at most once
+    assert valid.reshape(-1)[p.birth].all()
+    assert valid.reshape(-1)[p.death[p.death >= 0]].all()
+    # every birth cell is a local extremum in the total order (value, index)
+    key = (-a if kind == "peaks" else a).reshape(-1)
+    rows, cols = a.shape
+    for b in p.birth:
+        r, c = divmod(int(b), cols)
+        for dr in (-1, 0, 1):
+            for dc in (-1, 0, 1):
+                if (dr, dc) == (0, 0) or (conn == 4 and dr and dc):
+                    continue
+                rr, cc = r + dr, c + dc
+                if 0 <= rr < rows and 0 <= cc < cols and valid[rr, cc]:
+                    j = rr * cols + cc
+                    assert (key[b], b) < (key[j], j)
+    # float64 input with the same values gives the same pairs
+    q = pairs(a.astype(np.float64), kind=kind, connectivity=conn, edge_outlet=outlet)
+    for f in ("birth", "death", "persistence", "edge_limited"):
+        np.testing.assert_array_equal(getattr(p, f), getattr(q, f))
+    # essential classes: one per connected component of valid cells without an outlet
+    if not outlet:
+        ncomp = ndimage.label(valid, structure=np.ones((3, 3)) if conn == 8 else None)[1]
+        assert p.essential.sum() == ncomp
+
+
+def test_constant_raster_has_single_summit_at_first_cell():
+    p = pairs(np.full((4, 5), 7.0), kind="peaks")
+    assert p.birth.tolist() == [0] and p.essential.tolist() == [True]
+    assert len(pairs(np.full((4, 5), 7.0), kind="pits")) == 0
+
+
+def test_integer_input_accepted():
+    z = np.array([[1, 2, 1], [2, 9, 2], [1, 2, 1]], dtype=np.int16)
+    assert pairs(z, kind="peaks").birth.tolist() == [4]
+
+
+def test_bad_kind_and_connectivity():
+    from terrain.errors import OptionError
+
+    with pytest.raises(OptionError):
+        pairs(np.zeros((2, 2)), kind="hills")
+    with pytest.raises(OptionError):
+        pairs(np.zeros((2, 2)), kind="pits", connectivity=6)

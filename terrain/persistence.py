@@ -445,12 +445,37 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
 
 
 @njit(cache=True)
-def _basin_of(lab, valid):
-    out = np.full(lab.size, -1, np.int64)
-    for i in range(lab.size):
-        if valid[i]:
-            out[i] = -lab[i] - 1
+def _fill_levels(zf, join):
+    """Per basin, the elevation at which it joins the outlet (-inf: never)."""
+    out = np.full(join.size, -np.inf)
+    for b in range(join.size):
+        if join[b] >= 0:
+            out[b] = zf[join[b]]
     return out
+
+
+@njit(cache=True)
+def _filled(zf, valid, lab, level, out):
+    for i in range(zf.size):
+        if valid[i]:
+            lv = level[-lab[i] - 1]
+            out[i] = lv if lv > zf[i] else zf[i]
+        else:
+            out[i] = np.nan
+
+
+@njit(cache=True)
+def count_ponding(zf, valid, lab, level, min_depth, counts):
+    """Add 1 to ``counts`` where the filled depth is > 0 and >= ``min_depth``.
+
+    ``lab`` and ``level`` come from :func:`pits_and_levels`; no dense
+    temporary is made.
+    """
+    for i in range(zf.size):
+        if valid[i]:
+            d = level[-lab[i] - 1] - zf[i]
+            if d > 0 and d >= min_depth:
+                counts[i] += 1
 
 
 # ----------------------------------------------------------------------------
@@ -581,6 +606,21 @@ def _assemble(z, kind, pb, pd, pe, eb, ee) -> Pairs:
     return Pairs(kind, birth, death, bv, dv, pers, np.concatenate([pe, ee]))
 
 
+def pits_and_levels(z: np.ndarray, *, connectivity: int = 8, mask: np.ndarray | None = None):
+    """Pit pairs (edge as outlet) with what the filled surface needs.
+
+    Returns ``(pairs, zf, valid, labels, level)``: the flat elevations and
+    validity the engine used, per-cell basin labels (``-(basin + 1)``) and
+    per-basin fill level; :func:`count_ponding` and :func:`pairs_and_fill`
+    turn them into depths. Memory: the labels (4 bytes per cell).
+    """
+    z, zk, valid = _prepare(z, "pits", connectivity, mask)
+    (pb, pd, pe, eb, ee, join), lab = _engine(zk, valid, connectivity, True)
+    zf = z.reshape(-1)
+    level = _fill_levels(zf, join)
+    return _assemble(z, "pits", pb, pd, pe, eb, ee), zf, valid.reshape(-1), lab, level
+
+
 def pairs_and_fill(z: np.ndarray, *, connectivity: int = 8,
                    mask: np.ndarray | None = None) -> tuple[Pairs, np.ndarray]:
     """Pit pairs (edge as outlet) and the depression-filled surface.
@@ -604,12 +644,7 @@ def pairs_and_fill(z: np.ndarray, *, connectivity: int = 8,
     .. [2] Soille, P. (2004). Morphological Image Analysis, 2nd ed., Springer
        (fill holes by reconstruction by erosion).
     """
-    z, zk, valid = _prepare(z, "pits", connectivity, mask)
-    (pb, pd, pe, eb, ee, join), lab = _engine(zk, valid, connectivity, True)
-    zf = z.reshape(-1).astype(np.float64)
-    basin = _basin_of(lab, valid.reshape(-1))
-    level = np.where(join >= 0, zf[np.maximum(join, 0)], -np.inf)
-    filled = np.full(zf.size, np.nan)
-    v = basin >= 0
-    filled[v] = np.maximum(zf[v], level[basin[v]])
-    return _assemble(z, "pits", pb, pd, pe, eb, ee), filled.reshape(z.shape)
+    p, zf, valid, lab, level = pits_and_levels(z, connectivity=connectivity, mask=mask)
+    filled = np.empty(zf.size, np.float64)
+    _filled(zf.astype(np.float64), valid, lab, level, filled)
+    return p, filled.reshape(np.shape(z))

@@ -353,6 +353,11 @@ def attribute(dem: Dem, settings: CreditSettings, model: ErrorModel, *, realisat
     start = acc.n
     if chunk is None:
         chunk = max(1, min(checkpoint_every, math.ceil(max(realisations - start, 1) / (4 * workers)), 25))
+    if target_se is not None:
+        # stop decisions happen at exact multiples of check_every, whatever the chunking
+        chunk = math.gcd(int(chunk), int(check_every))
+        if start % check_every:
+            chunk = math.gcd(chunk, start % check_every)
     chunks = [(a, min(a + chunk, realisations)) for a in range(start, realisations, chunk)]
     stopped_early = False
     pending: dict[int, tuple] = {}

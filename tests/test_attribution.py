@@ -1,0 +1,212 @@
+"""Perturb-and-average attribution checked against exact values.
+
+Sources: the normal CDF for two competing summits, P(higher stays higher) =
+Phi(delta / (sigma sqrt 2)) (difference of two independent normals); for
+compact kernels the same probability by numerical integration of the
+difference density (scipy.integrate.quad); Hoelder's inequality
+|E_K f(x + d) - E_K f(x)| <= ||f||_inf ||K(. - d) - K||_1 for the stability bound;
+Monte Carlo standard error of a proportion sqrt(p(1-p)/N) (common practice).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import threading
+
+import numpy as np
+import pytest
+from scipy import integrate, stats
+
+from terrain.credit import CreditSettings
+from terrain.dem import Dem
+from terrain.ensemble import RunInterrupted, attribute
+from terrain.errors import CheckpointError
+from terrain.noise import ErrorModel, kernel_halfwidth, kernel_lipschitz, kernel_pdf
+
+from .conftest import smooth_terrain
+
+
+def two_summits(a=50.0, delta=0.5, shape=(15, 31), ridge=None):
+    """Two single-cell summits of heights a and a + delta on flat ground,
+    optionally joined by a ridge of height ``ridge``."""
+    z = np.zeros(shape, np.float32)
+    s_low, s_high = (7, 7), (7, 23)
+    if ridge is not None:
+        z[7, 7:24] = ridge
+    z[s_low] = a
+    z[s_high] = a + delta
+    return z, s_low[0] * shape[1] + s_low[1], s_high[0] * shape[1] + s_high[1]
+
+
+def p_higher_first(res, high):
+    log = res.log
+    ess = log["death"] < 0
+    return np.mean(log["birth"][ess] == high)
+
+
+def exact_p(kernel, sigma, delta):
+    """P(e1 - e2 > -delta) for iid kernel errors of standard deviation sigma."""
+    if kernel == "gaussian":
+        return stats.norm.cdf(delta / (sigma * math.sqrt(2)))  # Phi(delta / (sigma sqrt 2))
+    h = kernel_halfwidth(kernel, sigma)
+
+    def cdf(t):
+        t = min(max(t, -h), h)
+        return integrate.quad(lambda u: kernel_pdf(kernel, u, h), -h, t)[0]
+
+    # P(e2 - e1 < delta) = int K(x) F(x + delta) dx
+    return integrate.quad(lambda x: kernel_pdf(kernel, x, h) * cdf(x + delta), -h, h, limit=200)[0]
+
+
+@pytest.mark.parametrize("kernel", ["gaussian", "triangular", "epanechnikov"])
+def test_two_summits_converge_to_exact_probability(kernel):
+    sigma, delta, n = 1.0, 0.6, 1500
+    z, low, high = two_summits(delta=delta)
+    res = attribute(Dem.from_array(z), CreditSettings("peaks", threshold=5.0, kernel=kernel),
+                    ErrorModel(rmse=sigma, kernel=kernel), realisations=n, seed=11, backend="serial")
+    p = p_higher_first(res, high)
+    want = exact_p(kernel, sigma, delta)
+    assert abs(p - want) <= 4 * math.sqrt(want * (1 - want) / n)
+    # both cells stay summits of counted pairs in every realisation
+    sp = res.layers["summit_probability"][0].reshape(-1)
+    assert sp[high] == 1.0 and sp[low] == 1.0
+
+
+@pytest.mark.parametrize("kernel", ["gaussian", "uniform"])
+def test_stability_bound_while_argmax_flips(kernel):
+    sigma, n, delta, k = 1.0, 1200, 0.3, 1
+    # joined by a ridge 2 below: only the highest summit clears the threshold,
+    # so summit probability = P(this summit is the highest)
+    z_a, low, high = two_summits(delta=0.1, ridge=48.0)
+    z_b = z_a.copy()
+    z_b.reshape(-1)[low] += delta  # raise k = 1 cell by delta: the argmax flips
+    assert np.argmax(z_a) == high and np.argmax(z_b) == low
+    s = CreditSettings("peaks", threshold=5.0, weight="count", kernel=kernel)
+    m = ErrorModel(rmse=sigma, kernel=kernel)
+    ra = attribute(Dem.from_array(z_a), s, m, realisations=n, seed=3, backend="serial")
+    rb = attribute(Dem.from_array(z_b), s, m, realisations=n, seed=3, backend="serial")  # CRN
+    bound = 1.0 * kernel_lipschitz(kernel, kernel_halfwidth(kernel, sigma)) * k * delta
+    for name in ("summit_credit", "summit_probability"):
+        (ea, sa), (eb, sb) = ra.layers[name], rb.layers[name]
+        slack = 4 * np.sqrt(sa ** 2 + sb ** 2)
+        assert np.all(np.abs(ea - eb) <= bound + slack + 1e-12), name
+    # and the layer really moved (not trivially stable)
+    assert abs(ra.layers["summit_probability"][0].reshape(-1)[low]
+               - rb.layers["summit_probability"][0].reshape(-1)[low]) > 0.02
+
+
+def _run(backend, **kw):
+    z = smooth_terrain((64, 72), seed=9)
+    dem = Dem.from_array(z, cellsize=30.0)
+    return attribute(dem, CreditSettings("pits", threshold=2.0), ErrorModel(rmse=1.5, range_m=150,
+                                                                             nugget=0.2),
+                     realisations=24, seed=5, backend=backend, workers=2, **kw)
+
+
+def _same(r1, r2):
+    assert r1.n == r2.n
+    for name in r1.layers:
+        for a, b in zip(r1.layers[name], r2.layers[name]):
+            assert np.array_equal(a, b), name
+    for f in r1.log:
+        assert np.array_equal(r1.log[f], r2.log[f], equal_nan=r1.log[f].dtype.kind == "f"), f
+
+
+def test_bit_identical_across_backends():
+    ref = _run("serial", chunk=5)
+    _same(ref, _run("processes", chunk=3))
+    _same(ref, _run("dask", chunk=7))
+
+
+def test_dask_worker_killed_mid_run_gives_identical_layers():
+    import logging
+
+    from distributed import Client, LocalCluster
+
+    z = smooth_terrain((96, 96), seed=4)
+    dem = Dem.from_array(z, cellsize=30.0)
+    s, m = CreditSettings("peaks", threshold=3.0), ErrorModel(rmse=2.0)
+    ref = attribute(dem, s, m, realisations=60, seed=2, backend="serial")
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+                      silence_logs=logging.CRITICAL) as cluster, Client(cluster) as client:
+        pids = list(client.run(os.getpid).values())
+        killed = threading.Event()
+
+        def progress(done, total):
+            if done >= 10 and not killed.is_set():
+                killed.set()
+                os.kill(pids[0], 9)
+
+        got = attribute(dem, s, m, realisations=60, seed=2, scheduler=cluster.scheduler_address,
+                        chunk=2, progress=progress)
+        assert killed.is_set()
+    _same(ref, got)
+
+
+def test_checkpoint_resume_and_extend_are_identical(tmp_path):
+    z = smooth_terrain((50, 50), seed=2)
+    dem = Dem.from_array(z)
+    s, m = CreditSettings("peaks", threshold=2.0), ErrorModel(rmse=1.0)
+    full = attribute(dem, s, m, realisations=40, seed=1, backend="serial")
+    ck = tmp_path / "run.npz"
+
+    def interrupt_at(n):
+        def cb(done, total):
+            if done >= n:
+                raise KeyboardInterrupt
+        return cb
+
+    with pytest.raises(RunInterrupted) as ei:
+        attribute(dem, s, m, realisations=40, seed=1, backend="serial", chunk=4, checkpoint=ck,
+                  checkpoint_every=8, progress=interrupt_at(12))
+    assert ei.value.done == 12 and ck.exists()
+    resumed = attribute(dem, s, m, realisations=40, seed=1, backend="serial", checkpoint=ck,
+                        resume=True)
+    _same(full, resumed)
+    # extend a finished 20-realisation run to 40
+    ck2 = tmp_path / "short.npz"
+    attribute(dem, s, m, realisations=20, seed=1, backend="serial", checkpoint=ck2)
+    _same(full, attribute(dem, s, m, realisations=40, seed=1, backend="serial", checkpoint=ck2,
+                          resume=True))
+
+
+def test_checkpoint_from_another_run_is_refused(tmp_path):
+    z = smooth_terrain((30, 30), seed=2)
+    s, m = CreditSettings("peaks", threshold=2.0), ErrorModel(rmse=1.0)
+    ck = tmp_path / "run.npz"
+    attribute(Dem.from_array(z), s, m, realisations=4, seed=1, backend="serial", checkpoint=ck)
+    with pytest.raises(CheckpointError, match="another DEM"):
+        attribute(Dem.from_array(z + 1), s, m, realisations=8, seed=1, backend="serial",
+                  checkpoint=ck, resume=True)
+    with pytest.raises(CheckpointError, match="seed"):
+        attribute(Dem.from_array(z), s, m, realisations=8, seed=2, backend="serial",
+                  checkpoint=ck, resume=True)
+    ck.write_bytes(b"not an npz")
+    with pytest.raises(CheckpointError):
+        attribute(Dem.from_array(z), s, m, realisations=8, seed=1, backend="serial",
+                  checkpoint=ck, resume=True)
+
+
+def test_adaptive_stopping():
+    z, low, high = two_summits(delta=3.0)
+    res = attribute(Dem.from_array(z), CreditSettings("peaks", threshold=5.0),
+                    ErrorModel(rmse=1.0), realisations=2000, seed=4, backend="serial",
+                    target_se=0.5, check_every=20)
+    assert res.info["stopped_early"] and res.n < 2000 and res.n % 20 == 0
+    m, se = res.layers["summit_credit"]
+    assert se[m >= 0.01 * m.max()].max() < 0.5
+
+
+def test_credit_conservation_and_threshold_jitter():
+    z = smooth_terrain((40, 40), seed=6)
+    s = CreditSettings("pits", threshold=3.0, threshold_jitter=1.0)
+    res = attribute(Dem.from_array(z), s, ErrorModel(rmse=1.0), realisations=30, seed=0,
+                    backend="serial")
+    log = res.log
+    depth = np.abs(log["birth_value"].astype(float) - log["death_value"])
+    # total pit credit = mean total weight of counted pairs
+    assert res.layers["pit_credit"][0].sum() * res.n == pytest.approx(depth.sum(), rel=1e-9)
+    assert res.layers["spill_credit"][0].sum() * res.n == pytest.approx(depth.sum(), rel=1e-9)
+    # jittered thresholds admit some pairs below the nominal 3.0
+    assert depth.min() < 3.0

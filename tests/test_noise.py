@@ -1,0 +1,129 @@
+"""Error models checked against published facts.
+
+Sources: kernel variances -- Silverman, B. W. (1986), Density Estimation for
+Statistics and Data Analysis, Table 3.1; accuracy conversions -- FGDC-STD-007.3-1998
+(NSSDA) and ASPRS Positional Accuracy Standards (2014); semivariogram check of
+simulated DEM error -- Holmes, Chadwick & Kyriakidis (2000), J. Hydrology 233;
+circulant embedding -- Dietrich & Newsam (1997), SIAM J. Sci. Comput. 18(4).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import integrate, stats
+
+from terrain.errors import EmbeddingError, OptionError
+from terrain.noise import (
+    KERNELS,
+    CorrelatedField,
+    ErrorModel,
+    ErrorSampler,
+    covariance,
+    kernel_halfwidth,
+    kernel_lipschitz,
+    kernel_pdf,
+    kernel_variance,
+    realisation_rng,
+    rmse_from,
+    sample_kernel,
+)
+
+
+@pytest.mark.parametrize("kernel", KERNELS)
+def test_kernel_integrates_to_one_with_published_variance(kernel):
+    h = 1.7
+    lim = 12 * h if kernel == "gaussian" else h
+    mass = integrate.quad(lambda x: kernel_pdf(kernel, x, h), -lim, lim, points=[0])[0]
+    var = integrate.quad(lambda x: x * x * kernel_pdf(kernel, x, h), -lim, lim, points=[0])[0]
+    assert mass == pytest.approx(1, abs=1e-9)
+    # Silverman (1986): uniform h^2/3, triangular h^2/6, Epanechnikov h^2/5; Gaussian sigma^2
+    published = {"uniform": h * h / 3, "triangular": h * h / 6, "epanechnikov": h * h / 5,
+                 "gaussian": h * h}[kernel]
+    assert var == pytest.approx(published, rel=1e-7)
+    assert kernel_variance(kernel, h) == pytest.approx(published)
+
+
+@pytest.mark.parametrize("kernel", KERNELS)
+def test_samples_follow_the_kernel(kernel):
+    rng = np.random.default_rng(1)
+    x = sample_kernel(kernel, rng, 200_000, np.float64)
+    cdf = np.vectorize(lambda t: integrate.quad(lambda u: kernel_pdf(kernel, u, 1.0),
+                                                -12 if kernel == "gaussian" else -1, t)[0])
+    # Kolmogorov-Smirnov test against the kernel's CDF (scipy.stats.kstest)
+    grid = np.linspace(-0.99, 0.99, 41) * (3 if kernel == "gaussian" else 1)
+    ecdf = np.searchsorted(np.sort(x), grid) / x.size
+    assert np.max(np.abs(ecdf - cdf(grid))) < 1.63 / math.sqrt(x.size) * 1.5
+
+
+@pytest.mark.parametrize("kernel", KERNELS)
+def test_kernel_scaled_to_rmse(kernel):
+    # the kernel is scaled so that its standard deviation equals the RMSE
+    h = kernel_halfwidth(kernel, 2.0)
+    assert math.sqrt(kernel_variance(kernel, h)) == pytest.approx(2.0)
+    assert h == pytest.approx(2.0 * {"uniform": math.sqrt(3), "triangular": math.sqrt(6),
+                                     "epanechnikov": math.sqrt(5), "gaussian": 1.0}[kernel])
+    e = ErrorSampler(ErrorModel(rmse=2.0, kernel=kernel), (300, 300), (1, 1)).draw(3, 0)
+    assert e.std() == pytest.approx(2.0, rel=0.01)
+
+
+@pytest.mark.parametrize("kernel", KERNELS)
+def test_lipschitz_constant_is_l1_shift_rate(kernel):
+    h, d = 1.3, 1e-4
+    lim = 12 * h if kernel == "gaussian" else h + d
+    l1 = integrate.quad(lambda x: abs(kernel_pdf(kernel, x - d, h) - kernel_pdf(kernel, x, h)),
+                        -lim, lim, points=[0, d, -h, h, h + d, -h + d], limit=200)[0]
+    assert l1 / d == pytest.approx(kernel_lipschitz(kernel, h), rel=1e-3)
+
+
+def test_accuracy_conversions():
+    # NSSDA (FGDC-STD-007.3-1998): Accuracy_z at 95% = 1.9600 RMSE_z; LE90 = 1.6449 RMSE_z
+    assert rmse_from(a95=1.96) == pytest.approx(1.0)
+    assert rmse_from(le90=16.0) == pytest.approx(16.0 / 1.6449)  # e.g. 16 m LE90 ~ 9.7 m RMSE
+    assert stats.norm.ppf(0.95) == pytest.approx(1.6449, abs=1e-4)
+    assert stats.norm.ppf(0.975) == pytest.approx(1.9600, abs=1e-4)
+    for bad in (dict(), dict(rmse=1, le90=2), dict(rmse=-1), dict(rmse=float("nan")),
+                dict(rmse=0)):
+        with pytest.raises(OptionError):
+            rmse_from(**bad)
+
+
+def test_same_stream_for_same_seed_and_index():
+    # numpy SeedSequence spawning: spawn(n)[i].spawn(1)[0] is spawn_key (i, 0)
+    child = np.random.SeedSequence(5).spawn(18)[17].spawn(1)[0]
+    a = realisation_rng(5, 17).standard_normal(4)
+    assert np.array_equal(a, np.random.Generator(np.random.PCG64(child)).standard_normal(4))
+    assert not np.array_equal(a, realisation_rng(5, 18).standard_normal(4))
+
+
+@pytest.mark.parametrize("model", ["exponential", "spherical", "gaussian"])
+def test_semivariogram_matches_model(model):
+    # Holmes et al. (2000) check simulated error fields by their semivariogram.
+    spacing, rng_m = 10.0, 150.0
+    f = CorrelatedField((64, 64), (spacing, spacing), model, rng_m)
+    rng = np.random.default_rng(0)
+    fields = np.stack([f.standard(rng) for _ in range(300)]).astype(np.float64)
+    for lag in (1, 3, 6, 12):
+        gx = 0.5 * np.mean((fields[:, :, lag:] - fields[:, :, :-lag]) ** 2)
+        gy = 0.5 * np.mean((fields[:, lag:, :] - fields[:, :-lag, :]) ** 2)
+        expect = 1 - covariance(model, lag * spacing, rng_m)
+        assert gx == pytest.approx(expect, rel=0.06, abs=0.01)
+        assert gy == pytest.approx(expect, rel=0.06, abs=0.01)
+    assert fields.var() == pytest.approx(1.0, rel=0.05)
+
+
+def test_nugget_and_sill():
+    s = ErrorSampler(ErrorModel(rmse=3.0, range_m=200, nugget=0.25), (80, 80), (10, 10))
+    e = np.stack([s.draw(1, i) for i in range(60)]).astype(np.float64)
+    assert e.var() == pytest.approx(9.0, rel=0.06)
+    # at lag 1 the nugget share alone already separates neighbours: 2*0.25*9 + corr part
+    g1 = 0.5 * np.mean((e[:, :, 1:] - e[:, :, :-1]) ** 2)
+    expect = 0.25 * 9 + 0.75 * 9 * (1 - covariance("exponential", 10.0, 200))
+    assert g1 == pytest.approx(expect, rel=0.08)
+
+
+def test_embedding_failure_is_reported():
+    with pytest.raises(EmbeddingError):
+        CorrelatedField((64, 64), (1, 1), "gaussian", 400.0, max_factor=2)

@@ -45,7 +45,8 @@ def inspect_cmd(dem, band, bbox):
         ("nodata", f"{(~valid).mean():.2%} of cells"),
         ("elevation", f"{zv.min():g} to {zv.max():g} (mean {zv.mean():.2f})"),
         ("memory", f"~{d.realisation_bytes()} bytes per cell per realisation = "
-                   f"{d.realisation_bytes() * rows * cols / 2**20:.1f} MiB per worker"),
+                   f"{d.realisation_bytes() * rows * cols / 2**20:.1f} MiB per worker, plus "
+                   f"{52 * rows * cols / 2**20:.1f} MiB of accumulators"),
     ]
     width = max(len(k) for k, _ in lines)
     for k, v in lines:

@@ -128,9 +128,26 @@ class Dem:
         return (np.full(n, dx * self.linear_unit_m), np.full(n, dy * self.linear_unit_m))
 
     def cell_area_m2(self) -> np.ndarray:
-        """Area of a cell in each row, square metres."""
-        w, h = self.cell_metres()
-        return w * h
+        """Area of a cell in each row, square metres.
+
+        For a geographic CRS the exact area of the ellipsoidal quadrangle
+        between the row's bounding parallels (WGS84; Snyder 1987, eq. 3-12
+        for the authalic ``q``); otherwise cell width x height.
+        """
+        if not self.geographic:
+            w, h = self.cell_metres()
+            return w * h
+        dx, dy = self.cellsize
+        lat_c = self.row_latitudes()
+        lo = np.radians(lat_c - dy / 2)
+        hi = np.radians(lat_c + dy / 2)
+        e = np.sqrt(_E2)
+
+        def q(phi):
+            s = np.sin(phi)
+            return s / (1 - _E2 * s * s) - np.log((1 - e * s) / (1 + e * s)) / (2 * e)
+
+        return np.abs(0.5 * _A * _A * (1 - _E2) * np.radians(dx) * (q(hi) - q(lo)))
 
     def xy(self, flat: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """CRS coordinates of the centres of flat row-major cells."""
@@ -149,11 +166,12 @@ class Dem:
         return h.hexdigest()
 
     def realisation_bytes(self) -> int:
-        """Estimated memory for one realisation, bytes per cell (stated, not measured).
+        """Estimated memory of one realisation in a worker, bytes per cell.
 
-        One perturbed copy (4 or 8), noise (4 or 8), persistence labels (4),
-        negated key copy (4 or 8), valid mask (1) and the layer accumulators
-        (3 float64 layers x 2 moments in the parent, 48).
+        Stated, not measured: noise (4), the perturbed copy and the key copy
+        the pairing sorts on (4 or 8 each), basin labels (4), validity mask
+        (1) and ponding counts (4): 21 bytes per cell for float32 DEMs. The
+        parent process adds 52 bytes per cell of accumulators.
         """
         b = self.z.dtype.itemsize
-        return 3 * b + 4 + 1 + 48
+        return 2 * b + 13

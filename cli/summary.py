@@ -1,0 +1,37 @@
+"""The table of top features printed at the end of a run."""
+
+from __future__ import annotations
+
+import sys
+
+import numpy as np
+
+
+def print_summary(table: dict, *, kind: str, units: str, n: int, outdir, caution: str,
+                  top: int = 10) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    figure = "prominence" if kind == "peaks" else "depth"
+    what = "summits" if kind == "peaks" else "depressions"
+    t = Table(title=f"Top {what} by expected {figure} ({n} realisations)", title_justify="left")
+    for col, just in (("rank", "right"), ("id", "right"), (f"expected {figure} ({units})", "right"),
+                      ("p05–p95", "right"), ("P(counted)", "right"), ("P(first)", "right"),
+                      ("x", "right"), ("y", "right"), ("elevation", "right"), ("edge", "right")):
+        t.add_column(col, justify=just)
+    order = np.argsort(table["rank"], kind="stable")[:top]
+    for i in order:
+        t.add_row(str(table["rank"][i]), str(table["feature_id"][i]),
+                  f"{table['expected'][i]:.2f} ± {table['se'][i]:.2f}",
+                  f"{table['p05'][i]:.1f}–{table['p95'][i]:.1f}", f"{table['p_above'][i]:.2f}",
+                  f"{table['p_first'][i]:.2f}", f"{table['x'][i]:.1f}", f"{table['y'][i]:.1f}",
+                  f"{table['elevation'][i]:.1f}",
+                  "–" if np.isnan(table["edge_limited_share"][i])
+                  else f"{table['edge_limited_share'][i]:.0%}")
+    console = Console(file=sys.stdout, width=120)
+    if len(order) == 0:
+        console.print(f"No {what} above the threshold in any realisation.")
+    else:
+        console.print(t)
+    console.print(f"{len(table['rank'])} features; outputs in {outdir}")
+    console.print(f"[italic]{caution}[/italic]")

@@ -1,0 +1,133 @@
+"""Writing a finished run to a folder: GeoTIFF layers, feature tables, map, provenance.
+
+Every file goes through :func:`terrain.io.atomic_path`, so an interrupted
+write leaves earlier complete files or none.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import platform
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .credit import LAYERS, layer_units
+from .ensemble import Attribution
+from .features import feature_frames, feature_table, find_features
+from .io import atomic_path, write_json, write_layer, write_table
+
+__all__ = ["OUTPUTS", "outputs_for", "write_outputs", "file_sha256"]
+
+_TABLES = {"peaks": ("peaks.gpkg", "summits.csv"), "pits": ("depressions.gpkg", "pits.csv")}
+_DESCRIPTIONS = {
+    "summit_credit": "mean prominence credited to the cell as a summit",
+    "col_credit": "mean prominence credited to the cell as a key col",
+    "summit_probability": "share of realisations in which the cell is the summit of a counted peak",
+    "pit_credit": "mean depth credited to the cell as a pit",
+    "spill_credit": "mean depth credited to the cell as a spill point",
+    "pit_probability": "share of realisations in which the cell is the pit of a counted depression",
+    "ponding_probability": "share of realisations in which the cell holds water at least the "
+                           "minimum depth deep after depression filling",
+}
+
+
+def outputs_for(kind: str) -> list[str]:
+    """File names a run of ``kind`` writes (checked before the run starts)."""
+    return [f"{n}.tif" for n in LAYERS[kind]] + list(_TABLES[kind]) + ["quicklook.png", "run.json"]
+
+
+OUTPUTS = {k: outputs_for(k) for k in LAYERS}
+
+
+def file_sha256(path: str | Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def write_outputs(outdir: str | Path, res: Attribution, *, input_path: str | None,
+                  command: str, frac: float = 0.1, extra: dict | None = None) -> dict:
+    """Write all outputs of a run; return the feature table (dict of arrays).
+
+    Parameters
+    ----------
+    outdir : folder (already checked by :func:`terrain.io.prepare_outdir`)
+    res : Attribution
+    input_path : the DEM file (for provenance), or None
+    command : the command that made the run (for provenance)
+    frac : minimum presence (births per realisation) of a feature region
+    extra : more entries for ``run.json``
+    """
+    out = Path(outdir)
+    dem, s = res.dem, res.settings
+    kind = s.kind
+    t_write = _dt.datetime.now(_dt.timezone.utc)
+    tags = {"cairn_version": __version__, "command": command, "realisations": res.n,
+            "seed": res.params["seed"], "error_model": res.model.as_dict(),
+            "threshold": s.threshold, "threshold_jitter": s.threshold_jitter, "weight": s.weight,
+            "connectivity": s.connectivity, "caution": "analysis aid, not engineering design"}
+    if kind == "peaks":
+        tags["base"] = s.base
+    for name in LAYERS[kind]:
+        est, se = res.layers[name]
+        write_layer(out / f"{name}.tif", dem, est, se, name=name,
+                    units=layer_units(name, dem.vertical_units, s.weight),
+                    description=_DESCRIPTIONS[name], tags=tags)
+    main = LAYERS[kind][0]
+    labels, k = find_features(res.layers[main][0], dem.nodata,
+                              probability=res.layers[LAYERS[kind][2]][0], min_presence=frac)
+    table = feature_table(dem, labels, k, res.layers[main][0], res.layers[LAYERS[kind][1]][0],
+                          res.log, res.n, base=s.base)
+    frames = feature_frames(dem, table, labels, kind)
+    gpkg, csv = _TABLES[kind]
+    write_table(out / gpkg, out / csv, frames)
+    _write_quicklook(out / "quicklook.png", res, table, frames, main, labels > 0)
+    units = dem.vertical_units or "DEM units"
+    run = {
+        "cairn_version": __version__, "command": command, "created_utc": t_write.isoformat(),
+        "input": {"path": input_path, "sha256": file_sha256(input_path) if input_path else None,
+                  "dem_checksum": res.params["dem_checksum"], "shape": list(dem.shape),
+                  "crs": dem.crs, "transform": list(dem.transform), "vertical_units": units},
+        "parameters": {"kind": kind, **{k: v for k, v in s.__dict__.items()},
+                       "error_model": res.model.as_dict(), "seed": res.params["seed"],
+                       "feature_min_presence": frac,
+                       "feature_window_cells": 5, "feature_local_min": 0.05},
+        "realisations_done": res.n, "execution": res.info,
+        "features": int(k), "pair_log_entries": int(res.log["birth"].size),
+        "pair_log_bytes_per_entry": int(sum(v.itemsize for v in
+                                            (np.dtype(res.log[f].dtype) for f in res.log))),
+        "python": platform.python_version(),
+        "caution": "Analysis aid, not engineering design or official flood mapping; defer to "
+                   "local codes, official flood maps and licensed professionals.",
+    }
+    if dem.crs is None:
+        run["note"] = "no CRS: areas are in squared cell units, distances in cell units"
+    run.update(extra or {})
+    write_json(out / "run.json", run)
+    return table
+
+
+def _write_quicklook(dest: Path, res: Attribution, table: dict, frames: dict, main: str,
+                     show: np.ndarray) -> None:
+    from .plot import quicklook
+
+    dem, s = res.dem, res.settings
+    units = layer_units(main, dem.vertical_units, s.weight)
+    figure = "prominence" if s.kind == "peaks" else "depth"
+    order = np.argsort(table["rank"], kind="stable")[:12]
+    labels = [(table["x"][i], table["y"][i],
+               f"#{table['feature_id'][i]} {table['expected'][i]:.1f} · p₁ {table['p_first'][i]:.2f}")
+              for i in order]
+    poly = next(iter(frames.values())).geometry.tolist()
+    title = (f"{main.replace('_', ' ')} — {res.n} realisations, error RMSE {res.model.rmse:g} "
+             f"({res.model.kernel}{', range %g m' % res.model.range_m if res.model.range_m else ''})"
+             f"\nlabels: #id, expected {figure} ({units}), p₁ = probability of ranking first")
+    fig = quicklook(dem, res.layers[main][0], title=title, units=f"{main.replace('_', ' ')} ({units})",
+                    polygons=poly, labels=labels, show=show)
+    with atomic_path(dest) as tmp:
+        fig.savefig(tmp, format="png")

@@ -57,8 +57,7 @@ def _run(kind, dem_path, outdir, opts, *, threshold, base=None, command):
     quiet = opts["quiet"]
     say = (lambda *a, **k: None) if quiet else (lambda m: click.echo(m, err=True))
     figure = "prominence" if kind == "peaks" else "depth"
-    say(f"cairn {command}: {dem.shape[0]}x{dem.shape[1]} cells, error RMSE {rmse:g} "
-        f"({opts['kernel']}{', range %g m' % opts['range_m'] if opts['range_m'] else ''}), "
+    say(f"cairn {command}: {dem.shape[0]}x{dem.shape[1]} cells, error {model.describe()}, "
         f"minimum {figure} {thr:g}, {opts['realisations']} realisations, seed {opts['seed']}")
     try:
         with progress_bar(enabled=not quiet and sys.stderr.isatty(), label=command) as bar:

@@ -1,10 +1,11 @@
 """Features: connected credit regions, their statistics and polygons.
 
 A *feature* is a connected region of cells holding credit (see
-:func:`find_features` for the stated fractions). Each logged pair born in a feature gives that feature a *figure*
-in its realisation (prominence or depth; for the essential peak, elevation
-minus base); the largest figure counts when several pairs are born in one
-feature, and a realisation without one counts as 0.
+:func:`find_features` for the stated fractions). Each logged pair born in a
+feature gives that feature a *figure* in its realisation (prominence or
+depth; for the essential peak, elevation minus base); the largest figure
+counts when several pairs are born in one feature, and a realisation without
+one counts as 0.
 """
 
 from __future__ import annotations

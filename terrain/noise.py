@@ -305,6 +305,15 @@ class ErrorModel:
     def as_dict(self) -> dict:
         return asdict(self)
 
+    def describe(self) -> str:
+        """Short text, e.g. ``RMSE 1 (gaussian, exponential range 50 m, nugget 0.2)``."""
+        extra = ""
+        if self.range_m > 0:
+            extra = f", {self.covariance} range {self.range_m:g} m"
+            if self.nugget:
+                extra += f", nugget {self.nugget:g}"
+        return f"RMSE {self.rmse:g} ({self.kernel}{extra})"
+
 
 class ErrorSampler:
     """Draws unit-scale error fields for one grid under an :class:`ErrorModel`.

@@ -124,8 +124,7 @@ def _write_quicklook(dest: Path, res: Attribution, table: dict, frames: dict, ma
                f"#{table['feature_id'][i]} {table['expected'][i]:.1f} · p₁ {table['p_first'][i]:.2f}")
               for i in order]
     poly = next(iter(frames.values())).geometry.tolist()
-    title = (f"{main.replace('_', ' ')} — {res.n} realisations, error RMSE {res.model.rmse:g} "
-             f"({res.model.kernel}{', range %g m' % res.model.range_m if res.model.range_m else ''})"
+    title = (f"{main.replace('_', ' ')} — {res.n} realisations, error {res.model.describe()}"
              f"\nlabels: #id, expected {figure} ({units}), p₁ = probability of ranking first")
     fig = quicklook(dem, res.layers[main][0], title=title, units=f"{main.replace('_', ' ')} ({units})",
                     polygons=poly, labels=labels, show=show)

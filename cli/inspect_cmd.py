@@ -3,9 +3,8 @@
 from __future__ import annotations
 
 import click
-import numpy as np
 
-from terrain.io import read_dem
+from terrain.io import dem_warnings, read_dem
 
 from .main import cli, guarded
 from .options import band_option, bbox_option
@@ -51,8 +50,8 @@ def inspect_cmd(dem, band, bbox):
     width = max(len(k) for k, _ in lines)
     for k, v in lines:
         click.echo(f"{k:<{width}}  {v}")
-    if not np.isfinite(zv).all():  # pragma: no cover - Dem masks non-finite cells
-        click.echo("warning: non-finite cells treated as nodata")
+    for line in dem_warnings(d):
+        click.echo(f"cairn: warning: {line}", err=True)
 
 
 def _crs_name(wkt: str | None) -> str:

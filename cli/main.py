@@ -58,5 +58,25 @@ def _register():
 
 _register()
 
+def run(argv=None) -> None:
+    """Console entry point: click's own usage errors become one line + exit 2."""
+    try:
+        rv = cli.main(args=argv, prog_name="cairn", standalone_mode=False)
+    except click.exceptions.NoArgsIsHelpError as exc:
+        click.echo(exc.ctx.get_help() if exc.ctx else str(exc))
+        sys.exit(2)
+    except click.UsageError as exc:
+        hint = f" (see: {exc.ctx.command_path} --help)" if exc.ctx else ""
+        click.echo(f"cairn: error: {exc.format_message()}{hint}", err=True)
+        sys.exit(2)
+    except click.ClickException as exc:
+        click.echo(f"cairn: error: {exc.format_message()}", err=True)
+        sys.exit(exc.exit_code)
+    except click.exceptions.Abort:
+        click.echo("cairn: interrupted", err=True)
+        sys.exit(130)
+    sys.exit(rv if isinstance(rv, int) else 0)
+
+
 if __name__ == "__main__":  # pragma: no cover
-    cli()
+    run()

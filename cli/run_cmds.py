@@ -11,7 +11,7 @@ import numpy as np
 
 from terrain.credit import CreditSettings
 from terrain.errors import OptionError, OutputError
-from terrain.io import prepare_outdir, read_dem
+from terrain.io import dem_warnings, prepare_outdir, read_dem
 from terrain.noise import ErrorModel, rmse_from
 
 from .main import CAUTION, cli, guarded
@@ -39,6 +39,8 @@ def _run(kind, dem_path, outdir, opts, *, threshold, base=None, command):
     if opts["workers"] is not None and opts["workers"] < 1:
         raise OptionError(f"--workers must be >= 1, got {opts['workers']}")
     dem = read_dem(dem_path, band=opts["band"], bbox=opts["bbox"])
+    for line in dem_warnings(dem):
+        click.echo(f"cairn: warning: {line}", err=True)
     thr = 3 * rmse if threshold is None else threshold
     if base is None:
         base = float(np.nanmin(dem.z[~dem.nodata]))

@@ -20,7 +20,7 @@ import numpy as np
 from .dem import Dem
 from .errors import BandError, CorruptRasterError, DemNotFoundError, NotARasterError, OutputError, WindowError
 
-__all__ = ["read_dem", "atomic_path", "write_json", "write_layer", "prepare_outdir",
+__all__ = ["read_dem", "dem_warnings", "atomic_path", "write_json", "write_layer", "prepare_outdir",
            "write_table"]
 
 
@@ -92,11 +92,17 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
         dtype = np.dtype(ds.dtypes[band - 1])
     data = np.asarray(arr.data)
     mask = np.ma.getmaskarray(arr)
+    nonfinite = int((~np.isfinite(data) & ~mask).sum()) if data.dtype.kind == "f" else 0
     if dtype.kind == "f" and dtype.itemsize == 4 or dtype.kind in "iub" and dtype.itemsize <= 2:
         z = data.astype(np.float32)
     else:
         z = data.astype(np.float64)
-    meta = {"dtype": str(dtype), "nodata_value": nodata_value}
+    meta = {"dtype": str(dtype), "nodata_value": nodata_value, "nonfinite_cells": nonfinite,
+            "band": band}
+    valid_vals = data[~mask & np.isfinite(data)] if data.size else data
+    if nodata_value is not None and np.isfinite(nodata_value) and valid_vals.size:
+        lo, hi = float(valid_vals.min()), float(valid_vals.max())
+        meta["nodata_in_range"] = bool(lo <= nodata_value <= hi)
     geographic = bool(crs is not None and crs.is_geographic)
     unit_m = 1.0
     if crs is not None and not geographic:
@@ -105,6 +111,25 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
     return Dem(z=z, nodata=mask, transform=tuple(transform)[:6],
                crs=crs.to_wkt() if crs is not None else None, geographic=geographic,
                linear_unit_m=unit_m, vertical_units=units, source=str(p), meta=meta)
+
+
+def dem_warnings(dem: Dem) -> list[str]:
+    """Things about a DEM a user should be told once (not errors)."""
+    out = []
+    m = dem.meta
+    if m.get("nonfinite_cells"):
+        out.append(f"{dem.source}: {m['nonfinite_cells']} NaN or infinite cells treated as nodata")
+    if m.get("nodata_in_range"):
+        out.append(f"{dem.source}: the nodata value {m['nodata_value']:g} lies inside the "
+                   "elevation range; cells equal to it are treated as nodata -- check the file's "
+                   "nodata setting")
+    if dem.crs is None:
+        out.append(f"{dem.source}: no CRS declared; distances and areas are in cell units "
+                   "(area_m2 holds squared CRS units)")
+    if dem.geographic:
+        out.append(f"{dem.source}: geographic CRS; cell sizes in metres follow the latitude "
+                   "of each row (WGS84)")
+    return out
 
 
 def _short(exc: BaseException) -> str:

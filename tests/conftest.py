@@ -27,3 +27,52 @@ def usgs_dem():
     f = cbook.get_sample_data("jacksboro_fault_dem.npz")  # already an NpzFile
     with f:
         return np.asarray(f["elevation"]).astype(np.float32)
+
+
+def write_tif(path, z, *, crs="EPSG:32633", transform=None, nodata=None, dtype=None, count=1,
+              units=None):
+    """Write a small GeoTIFF for a test (rasterio)."""
+    import rasterio
+    from rasterio.transform import from_origin
+
+    z = np.asarray(z)
+    arrs = z if z.ndim == 3 else z[None]
+    profile = dict(driver="GTiff", height=arrs.shape[1], width=arrs.shape[2], count=arrs.shape[0],
+                   dtype=dtype or arrs.dtype.name, crs=crs,
+                   transform=transform or from_origin(500000.0, 6800000.0, 10.0, 10.0))
+    if nodata is not None:
+        profile["nodata"] = nodata
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with rasterio.open(path, "w", **profile) as ds:
+            ds.write(arrs.astype(profile["dtype"]))
+            if units:
+                ds.units = (units,) * arrs.shape[0]
+    return path
+
+
+@pytest.fixture
+def cairn(monkeypatch):
+    """Run the cairn CLI in-process; returns (exit code, stdout, stderr)."""
+    from cairn_cli.main import run
+    from click.testing import CliRunner
+
+    def invoke(*args):
+        runner = CliRunner()
+        result = runner.invoke(_Entry(run), [str(a) for a in args], catch_exceptions=False)
+        return result.exit_code, result.stdout, result.stderr
+
+    return invoke
+
+
+class _Entry:
+    """Adapter so CliRunner can drive the console entry point (``run``)."""
+
+    def __init__(self, fn):
+        self.fn = fn
+        self.name = "cairn"
+
+    def main(self, args=None, prog_name=None, **kwargs):
+        self.fn(args)

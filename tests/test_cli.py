@@ -1,0 +1,180 @@
+"""`cairn peaks`, `cairn depressions`, `cairn inspect`, `cairn demo`: outputs read back.
+
+Outputs are read back with rasterio and pyogrio (general-purpose readers, not
+ours); the GeoPackage and CSV tables must agree.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pandas as pd
+import pyogrio
+import pytest
+import rasterio
+
+from terrain.features import COLUMNS
+
+from .conftest import smooth_terrain, write_tif
+
+COMMON = ("--rmse", "1.5", "-n", "12", "--seed", "3", "--workers", "1", "-q")
+
+
+@pytest.fixture
+def dem_tif(tmp_path):
+    z = np.round(smooth_terrain((60, 70), seed=8)).astype(np.int16)
+    return write_tif(tmp_path / "dem.tif", z, nodata=-9999, units="metre")
+
+
+@pytest.mark.parametrize("cmd,layers,gpkg,csv,lyr", [
+    ("peaks", ["summit_credit", "col_credit", "summit_probability"], "peaks.gpkg", "summits.csv",
+     ["summits", "summit_points"]),
+    ("depressions", ["pit_credit", "spill_credit", "pit_probability", "ponding_probability"],
+     "depressions.gpkg", "pits.csv", ["pits", "pit_points"]),
+])
+def test_outputs_read_back(cairn, dem_tif, tmp_path, cmd, layers, gpkg, csv, lyr):
+    out = tmp_path / "out"
+    code, _, err = cairn(cmd, dem_tif, "-o", out, *COMMON)
+    assert code == 0, err
+    with rasterio.open(dem_tif) as src:
+        crs, transform, shape = src.crs, src.transform, src.shape
+    for name in layers:
+        with rasterio.open(out / f"{name}.tif") as ds:
+            assert ds.count == 2 and ds.dtypes == ("float32", "float32")
+            assert ds.crs == crs and ds.transform == transform and ds.shape == shape
+            assert ds.descriptions[0].startswith(name) and "standard error" in ds.descriptions[1]
+            tags = ds.tags()
+            assert tags["LAYER"] == name and json.loads(tags["error_model"])["rmse"] == 1.5
+            assert tags["realisations"] == "12" and np.isnan(ds.nodata)
+            est, se = ds.read(1), ds.read(2)
+            assert np.all(se[np.isfinite(se)] >= 0)
+            if name.endswith("probability"):
+                assert np.nanmax(est) <= 1 and np.nanmin(est) >= 0
+    listed = [n for n, _ in pyogrio.list_layers(out / gpkg)]
+    assert sorted(listed) == sorted(lyr)
+    for layer in lyr:
+        df = pyogrio.read_dataframe(out / gpkg, layer=layer)
+        assert list(df.columns[:-1]) == list(COLUMNS)
+    table = pyogrio.read_dataframe(out / gpkg, layer=lyr[0])
+    csv_df = pd.read_csv(out / csv)
+    pd.testing.assert_frame_equal(csv_df, pd.DataFrame(table.drop(columns="geometry")),
+                                  check_dtype=False)
+    run = json.loads((out / "run.json").read_text())
+    assert run["realisations_done"] == 12 and run["input"]["sha256"]
+    assert run["parameters"]["seed"] == 3
+    assert (out / "quicklook.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert not [p for p in os.listdir(out) if ".part" in p]
+
+
+def test_big_layer_is_tiled_with_overviews(tmp_path, cairn):
+    z = smooth_terrain((300, 280), seed=1)
+    dem = write_tif(tmp_path / "big.tif", z)
+    code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", "--rmse", "2", "-n", "2",
+                         "--workers", "1", "-q")
+    assert code == 0, err
+    with rasterio.open(tmp_path / "o" / "summit_credit.tif") as ds:
+        assert ds.profile["tiled"] and ds.block_shapes[0] == (256, 256)
+        assert ds.overviews(1) and ds.compression is not None
+
+
+def test_existing_outputs_refused_without_overwrite(cairn, dem_tif, tmp_path):
+    out = tmp_path / "out"
+    assert cairn("peaks", dem_tif, "-o", out, *COMMON)[0] == 0
+    code, _, err = cairn("peaks", dem_tif, "-o", out, *COMMON)
+    assert code == 2 and "--overwrite" in err and len(err.strip().splitlines()) == 1
+    assert cairn("peaks", dem_tif, "-o", out, *COMMON, "--overwrite")[0] == 0
+
+
+def test_missing_accuracy_refused_with_typical_values(cairn, dem_tif, tmp_path):
+    code, _, err = cairn("peaks", dem_tif, "-o", tmp_path / "o", "-n", "2")
+    assert code == 2 and "--rmse" in err and "lidar" in err
+    assert not (tmp_path / "o").exists()
+
+
+@pytest.mark.parametrize("args,needle", [
+    (("--rmse", "1", "--le90", "2"), "exactly one"),
+    (("--rmse", "1", "--kernel", "cosine"), "--kernel"),
+    (("--rmse", "1", "--nugget", "2"), "--nugget"),
+    (("--rmse", "1", "--connectivity", "6"), "--connectivity"),
+    (("--rmse", "1", "--min-prominence", "-1"), "--min-prominence"),
+])
+def test_bad_options_one_line_exit_2(cairn, dem_tif, tmp_path, args, needle):
+    code, _, err = cairn("peaks", dem_tif, "-o", tmp_path / "o", *args)
+    assert code == 2 and needle in err and len(err.strip().splitlines()) == 1
+
+
+def test_help_has_example_and_caution(cairn):
+    for cmd in ("peaks", "depressions", "demo", "inspect"):
+        code, out, _ = cairn(cmd, "--help")
+        assert code == 0 and "Example" in out
+        if cmd != "inspect":
+            assert "licensed professionals" in out
+
+
+def test_inspect(cairn, dem_tif):
+    code, out, _ = cairn("inspect", dem_tif)
+    assert code == 0 and "60 rows x 70 columns" in out and "EPSG:32633" in out
+    assert "metre" in out and "bytes per cell" in out
+
+
+def _cairn_proc(*args, **kw):
+    return subprocess.Popen([sys.executable, "-c", "from cairn_cli.main import run; run()",
+                             *map(str, args)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, **kw)
+
+
+def test_ctrl_c_saves_checkpoint_and_resume_is_identical(tmp_path):
+    z = smooth_terrain((150, 150), seed=2)
+    dem = write_tif(tmp_path / "d.tif", z)
+    ck = tmp_path / "ck.npz"
+    args = ("peaks", dem, "--rmse", "1", "-n", "400", "--seed", "9", "--workers", "1")
+    p = _cairn_proc(*args, "-o", tmp_path / "a", "--checkpoint", ck)
+    deadline = time.time() + 120
+    while not ck.exists() and time.time() < deadline:  # first checkpoint after 50 realisations
+        time.sleep(0.2)
+    p.send_signal(signal.SIGINT)
+    _, err = p.communicate(timeout=120)
+    assert p.returncode == 130 and "--resume" in err
+    assert not (tmp_path / "a" / "summit_credit.tif").exists()  # nothing half-written
+    p = _cairn_proc(*args, "-o", tmp_path / "a", "--checkpoint", ck, "--resume", "-q")
+    assert p.wait(timeout=300) == 0
+    p = _cairn_proc(*args, "-o", tmp_path / "b", "-q")
+    assert p.wait(timeout=300) == 0
+    for name in ("summit_credit", "col_credit", "summit_probability"):
+        with rasterio.open(tmp_path / "a" / f"{name}.tif") as a, \
+                rasterio.open(tmp_path / "b" / f"{name}.tif") as b:
+            assert np.array_equal(a.read(), b.read(), equal_nan=True)
+
+
+@pytest.fixture(scope="session")
+def demo_out(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo")
+    p = subprocess.run([sys.executable, "-c", "from cairn_cli.main import run; run()", "demo",
+                        "-o", str(out), "-q"], capture_output=True, text=True, timeout=600)
+    assert p.returncode == 0, p.stderr
+    return out
+
+
+def test_demo_twin_summit_splits_and_knolls_spread(demo_out):
+    summits = pd.read_csv(demo_out / "peaks" / "summits.csv").sort_values("rank")
+    # the two flat tops of Twin Crag share p_first roughly evenly (binomial, 300 realisations)
+    twins = summits.head(2)
+    assert twins["p_first"].sum() > 0.95
+    assert np.all(np.abs(twins["p_first"] - 0.5) < 0.12)
+    # Long Edge knolls (rows of y near 6801000): their credit is spread over several cells
+    with rasterio.open(demo_out / "peaks" / "summit_credit.tif") as ds:
+        credit = ds.read(1)
+        ridge = credit[280:330, :]
+    from scipy import ndimage
+
+    lab, n = ndimage.label(ridge > 0.01 * np.nanmax(ridge), structure=np.ones((3, 3)))
+    sizes = np.bincount(lab.ravel())[1:]
+    assert n >= 4 and np.sum(sizes >= 3) >= 4
+    pits = pd.read_csv(demo_out / "depressions" / "pits.csv").sort_values("rank")
+    assert (pits["p_above"] > 0.75).sum() >= 4  # three kettle hollows and the shallow one

@@ -84,7 +84,7 @@ class Dem:
         self.nodata = np.asarray(self.nodata, bool) | ~np.isfinite(self.z)
         if self.nodata.all():
             raise NoValidCellsError(f"{self.source}: no valid cells (all nodata or non-finite)")
-        if np.any(self.nodata & np.isfinite(self.z)):
+        if np.any(self.nodata & ~np.isnan(self.z)):
             self.z = np.where(self.nodata, np.nan, self.z).astype(self.z.dtype)
 
     @classmethod

@@ -105,8 +105,11 @@ def feature_table(dem: Dem, labels: np.ndarray, n_features: int, credit: np.ndar
     pct = np.percentile(figures, [5, 50, 95], axis=0) if n_real else np.zeros((3, k))
     p_above = present.mean(axis=0) if n_real else np.zeros(k)
     any_present = present.any(axis=1)
-    winners = np.argmax(np.where(present, figures, -np.inf), axis=1)[any_present]
-    p_first = np.bincount(winners, minlength=k)[:k] / n
+    if k:
+        winners = np.argmax(np.where(present, figures, -np.inf), axis=1)[any_present]
+        p_first = np.bincount(winners, minlength=k)[:k] / n
+    else:
+        p_first = np.zeros(0)
     # rank of each feature in each realisation: 1 + features with a larger figure
     ranks = 1 + (figures[:, None, :] > figures[:, :, None]).sum(axis=2) if k <= 2000 else \
         1 + np.argsort(np.argsort(-figures, axis=1, kind="stable"), axis=1)

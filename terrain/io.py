@@ -253,7 +253,9 @@ def write_table(gpkg: str | os.PathLike | None, csv: str | os.PathLike | None, f
     frame's columns without geometry.
     """
     if gpkg is not None:
-        with atomic_path(gpkg) as tmp:
+        with atomic_path(gpkg) as tmp, warnings.catch_warnings():
+            # a DEM without CRS was already reported once; pyogrio would repeat it
+            warnings.filterwarnings("ignore", "'crs' was not provided", UserWarning)
             for layer, gdf in frames.items():
                 gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio")
     if csv is not None:

@@ -19,6 +19,8 @@ def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0) -> np
     """Hillshade in [0, 1] (matplotlib LightSource, cell sizes in metres)."""
     from matplotlib.colors import LightSource
 
+    if min(dem.shape) < 2:  # no gradient on a single row or column: flat grey
+        return np.full(dem.shape, 0.5)
     w, h = dem.cell_metres()
     z = np.where(dem.nodata, np.nanmean(dem.z), dem.z).astype(np.float64)
     ls = LightSource(azdeg=azimuth, altdeg=altitude)

@@ -155,7 +155,7 @@ def log_weights(log: dict, weight: str, base: float) -> np.ndarray:
     bv = log["birth_value"].astype(np.float64)
     dv = log["death_value"].astype(np.float64)
     ess = log["death"] < 0
-    return np.where(ess, bv - base, np.abs(bv - np.where(ess, 0.0, dv)))
+    return np.where(ess, np.maximum(bv - base, 0.0), np.abs(bv - np.where(ess, 0.0, dv)))
 
 
 @njit(cache=True)

@@ -67,7 +67,7 @@ def main():
             t = time.perf_counter()
             for i in range(4):
                 log = realise(z, sampler, s, 0, i, pond)
-                acc.add(log, None, 1)
+                acc.add(log, {}, 1)
             ts.append((time.perf_counter() - t) / 4)
         t_full = statistics.median(ts)
         rates, startup = {}, {}

@@ -74,6 +74,24 @@ class CreditSettings:
     base: float = 0.0
     kernel: str = "gaussian"
 
+    # -- the job interface used by terrain.ensemble ------------------------------
+    @property
+    def main_layer(self) -> str:
+        return LAYERS[self.kind][0]
+
+    def describe(self) -> dict:
+        return {"job": "pairs", **self.__dict__}
+
+    def new_counts(self, n_cells: int) -> dict:
+        """Integer per-cell counts a worker adds to (exact in any order)."""
+        return {"ponding": np.zeros(n_cells, np.int32)} if self.kind == "pits" else {}
+
+    def realise(self, z, sampler, seed, i, counts, scale=None) -> dict:
+        return realise(z, sampler, self, seed, i, counts.get("ponding"), scale)
+
+    def accumulator(self, n_cells: int) -> Accumulator:
+        return Accumulator(n_cells, self)
+
     def __post_init__(self):
         if self.kind not in LAYERS:
             raise OptionError(f"kind must be peaks or pits, got {self.kind!r}")
@@ -199,8 +217,8 @@ def _accumulate(real, birth, death, w, bsum, bsq, dsum, dsq, bcount, scratch, ma
 class Accumulator:
     """Streaming sums for one run's layers, fed in realisation order.
 
-    ``add(log, ponding, n)`` folds in the next ``n`` realisations (their log
-    entries sorted by realisation, and their summed ponding counts).
+    ``add(log, counts, n)`` folds in the next ``n`` realisations (their log
+    entries sorted by realisation, and their summed integer counts).
     """
 
     def __init__(self, n_cells: int, settings: CreditSettings):
@@ -216,13 +234,13 @@ class Accumulator:
         self._mark = np.zeros(n_cells, np.int32)
         self.logs: list[dict] = []
 
-    def add(self, log: dict, ponding: np.ndarray | None, n: int) -> None:
+    def add(self, log: dict, counts: dict, n: int) -> None:
         s = self.settings
         w = log_weights(log, s.weight, s.base)
         _accumulate(log["real"], log["birth"].astype(np.int64), log["death"].astype(np.int64), w,
                     self.bsum, self.bsq, self.dsum, self.dsq, self.bcount, self._scratch, self._mark)
-        if ponding is not None and self.ponding is not None:
-            self.ponding += ponding
+        if counts.get("ponding") is not None and self.ponding is not None:
+            self.ponding += counts["ponding"]
         self.logs.append(log)
         self.n += n
 

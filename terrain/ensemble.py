@@ -41,13 +41,13 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .credit import LAYERS, Accumulator, CreditSettings, realise
+from .credit import CreditSettings
 from .dem import Dem
 from .errors import CheckpointError, OptionError, SchedulerError
 from .io import load_npz, save_npz
 from .noise import ErrorModel, ErrorSampler
 
-__all__ = ["attribute", "Attribution", "RunInterrupted", "BACKENDS"]
+__all__ = ["attribute", "run_ensemble", "Attribution", "RunInterrupted", "BACKENDS"]
 
 BACKENDS = ("serial", "processes", "dask")
 
@@ -96,18 +96,18 @@ class Attribution:
 class _Context:
     z: np.ndarray  # float32, NaN on nodata
     sampler: ErrorSampler
-    settings: CreditSettings
+    job: object  # CreditSettings or another job (see run_ensemble)
     seed: int
     scale: float | None = None
 
 
 def _chunk(ctx: _Context, start: int, stop: int):
-    """Realisations [start, stop): concatenated pair log and summed ponding counts."""
-    ponding = np.zeros(ctx.z.size, np.int32) if ctx.settings.kind == "pits" else None
-    logs = [realise(ctx.z, ctx.sampler, ctx.settings, ctx.seed, i, ponding, ctx.scale)
+    """Realisations [start, stop): concatenated log and summed integer counts."""
+    counts = ctx.job.new_counts(ctx.z.size)
+    logs = [ctx.job.realise(ctx.z, ctx.sampler, ctx.seed, i, counts, ctx.scale)
             for i in range(start, stop)]
     log = {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}
-    return start, stop, log, ponding
+    return start, stop, log, counts
 
 
 _CTX: _Context | None = None
@@ -216,12 +216,11 @@ _RUNNERS = {"serial": _serial, "processes": _processes, "dask": _dask}
 # ----------------------------------------------------------------------------
 # the run
 # ----------------------------------------------------------------------------
-def run_params(dem: Dem, settings: CreditSettings, model: ErrorModel, seed: int,
-               scale: float | None = None) -> dict:
+def run_params(dem: Dem, job, model: ErrorModel, seed: int, scale: float | None = None) -> dict:
     """The parameters that define a run's realisations (not their number)."""
     return {"version": __version__, "dem_checksum": dem.checksum(), "seed": int(seed),
-            "settings": settings.__dict__.copy(), "model": model.as_dict(),
-            "scale": scale}
+            "settings": json.loads(json.dumps(job.describe(), default=str)),
+            "model": model.as_dict(), "scale": scale}
 
 
 def _check_checkpoint(path: Path, st: dict, params: dict) -> None:
@@ -238,7 +237,7 @@ def _check_checkpoint(path: Path, st: dict, params: dict) -> None:
                                   f"({saved.get(k)} vs {params[k]}); use a new --checkpoint file")
 
 
-def load_checkpoint(path: str | os.PathLike, acc: Accumulator, params: dict) -> None:
+def load_checkpoint(path: str | os.PathLike, acc, params: dict) -> None:
     """Validate a checkpoint against this run and restore it into ``acc``."""
     path = Path(path)
     try:
@@ -265,7 +264,7 @@ def _digest(st: dict) -> str:
     return h.hexdigest()
 
 
-def save_checkpoint(path: str | os.PathLike, acc: Accumulator, params: dict) -> None:
+def save_checkpoint(path: str | os.PathLike, acc, params: dict) -> None:
     """Save accumulators, pair log, parameters and a checksum atomically (npz, no pickle)."""
     st = acc.state()
     st["params_json"] = np.array(json.dumps(params, sort_keys=True, default=str))
@@ -273,20 +272,36 @@ def save_checkpoint(path: str | os.PathLike, acc: Accumulator, params: dict) -> 
     save_npz(path, **st)
 
 
-def attribute(dem: Dem, settings: CreditSettings, model: ErrorModel, *, realisations: int = 200,
+def attribute(dem: Dem, settings: CreditSettings, model: ErrorModel, **kw) -> Attribution:
+    """Perturb-and-average attribution of peaks or pits on a DEM.
+
+    ``settings`` (kind, threshold, weight, connectivity, base) is the job; the
+    keyword arguments are those of :func:`run_ensemble`.
+
+    References
+    ----------
+    .. [1] Silverman, B. W. (1986). Density Estimation for Statistics and Data
+       Analysis. Chapman & Hall (kernel smoothing by convolution).
+    """
+    return run_ensemble(dem, settings, model, **kw)
+
+
+def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200,
               seed: int = 0, backend: str = "processes", workers: int | None = None,
               scheduler: str | None = None, chunk: int | None = None,
               checkpoint: str | os.PathLike | None = None, checkpoint_every: int = 50,
               resume: bool = False, target_se: float | None = None, check_every: int = 20,
               min_realisations: int = 20, scale: float | None = None,
               progress: Callable[[int, int], None] | None = None) -> Attribution:
-    """Perturb-and-average attribution of peaks or pits on a DEM.
+    """Run ``realisations`` perturbed realisations of a job and average them.
 
     Parameters
     ----------
     dem : Dem
-    settings : CreditSettings
-        Kind, threshold, weight, connectivity, base.
+    job : CreditSettings or CatchmentJob
+        What a realisation computes: ``new_counts(n)``, ``realise(z, sampler,
+        seed, i, counts, scale)`` returning a log dict, ``accumulator(n)``,
+        ``main_layer`` and ``describe()``.
     model : ErrorModel
         How realisations are drawn.
     realisations : int
@@ -343,9 +358,9 @@ def attribute(dem: Dem, settings: CreditSettings, model: ErrorModel, *, realisat
     spacing = (float(np.mean(h_m)), float(np.mean(w_m)))
     sampler = ErrorSampler(model, dem.shape, spacing)
     z = np.where(dem.nodata, np.nan, dem.z).astype(np.float32)
-    ctx = _Context(z, sampler, settings, int(seed), scale)
-    params = run_params(dem, settings, model, seed, scale)
-    acc = Accumulator(z.size, settings)
+    ctx = _Context(z, sampler, job, int(seed), scale)
+    params = run_params(dem, job, model, seed, scale)
+    acc = job.accumulator(z.size)
     if resume:
         if checkpoint is None:
             raise OptionError("--resume needs --checkpoint FILE")
@@ -370,8 +385,7 @@ def attribute(dem: Dem, settings: CreditSettings, model: ErrorModel, *, realisat
     def check_target():
         if target_se is None or acc.n < min_realisations:
             return False
-        names = LAYERS[settings.kind]
-        m, se = acc.layers(dem.shape)[names[0]]
+        m, se = acc.layers(dem.shape)[job.main_layer]
         top = np.nanmax(m)
         if not top > 0:
             return False
@@ -382,12 +396,12 @@ def attribute(dem: Dem, settings: CreditSettings, model: ErrorModel, *, realisat
         progress(acc.n, realisations)
     runner = _RUNNERS[backend](ctx, chunks, workers, scheduler, should_stop)
     try:
-        for a, b, log, ponding in runner:
-            pending[a] = (b, log, ponding)
+        for a, b, log, counts in runner:
+            pending[a] = (b, log, counts)
             while acc.n in pending and not flag["stop"]:
-                b, log, ponding = pending.pop(acc.n)
+                b, log, counts = pending.pop(acc.n)
                 before = acc.n
-                acc.add(log, ponding, b - before)
+                acc.add(log, counts, b - before)
                 if progress:
                     progress(acc.n, realisations)
                 if checkpoint is not None and acc.n - last_ckpt >= checkpoint_every:
@@ -414,4 +428,4 @@ def attribute(dem: Dem, settings: CreditSettings, model: ErrorModel, *, realisat
             "realisations_per_second": round((acc.n - start) / wall, 3) if wall > 0 else None,
             "resumed_from": start, "stopped_early": stopped_early,
             "embedding_factor": sampler.field.factor if sampler.field is not None else None}
-    return Attribution(dem, settings, model, acc.layers(dem.shape), acc.log(), acc.n, params, info)
+    return Attribution(dem, job, model, acc.layers(dem.shape), acc.log(), acc.n, params, info)

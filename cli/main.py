@@ -18,6 +18,10 @@ CAUTION = ("Caution: cairn's layers are analysis aids, not engineering design or
            "mapping; defer to local codes, official flood maps and licensed professionals.")
 
 
+CATCH_CAUTION = ("Caution: catchment probabilities are an analysis aid, not a flood or drainage "
+                 "design; defer to local codes and licensed practice.")
+
+
 def guarded(fn):
     """Turn cairn's own errors into one line + exit 2, and Ctrl-C into exit 130."""
 

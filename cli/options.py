@@ -96,8 +96,10 @@ run_options = _compose(
                                                "the available memory."),
 )
 
+common_options = _compose(error_model_options, band_option, bbox_option, run_options)
+
 attribution_options = _compose(
-    error_model_options,
+    common_options,
     click.option("--threshold-jitter", type=float, default=0.0, show_default=True,
                  callback=_nonneg_float,
                  help="Standard deviation of a per-realisation threshold drawn around the "
@@ -106,7 +108,4 @@ attribution_options = _compose(
                  show_default=True, help="Credit a pair its prominence/depth, or 1."),
     click.option("--connectivity", type=click.Choice(["8", "4"]), default="8", show_default=True,
                  help="Cell neighbourhood."),
-    band_option,
-    bbox_option,
-    run_options,
 )

@@ -14,59 +14,60 @@ from terrain.errors import OptionError, OutputError
 from terrain.io import dem_warnings, prepare_outdir, read_dem
 from terrain.noise import ErrorModel, rmse_from
 
-from .main import CAUTION, cli, guarded
-from .options import attribution_options
+from .main import CATCH_CAUTION, CAUTION, cli, guarded
+from .options import attribution_options, common_options
 from .progress import progress_bar
-from .summary import print_summary
+from .summary import print_catchments, print_summary
 
 _TYPICAL = ("state the DEM's vertical accuracy with --rmse, --le90 or --a95 (typical: global "
             "30 m DEMs a few metres, e.g. --le90 4 or --rmse 5; airborne lidar decimetres, "
             "e.g. --rmse 0.15)")
 
 
-def _run(kind, dem_path, outdir, opts, *, threshold, base=None, command):
-    from terrain.ensemble import RunInterrupted, attribute
-    from terrain.report import outputs_for, write_outputs
-    from terrain.resources import check_memory
-
+def _model(opts) -> ErrorModel:
     if all(opts[k] is None for k in ("rmse", "le90", "a95")):
         raise OptionError(f"no vertical accuracy given: {_TYPICAL}")
     rmse = rmse_from(rmse=opts["rmse"], le90=opts["le90"], a95=opts["a95"])
-    model = ErrorModel(rmse=rmse, kernel=opts["kernel"], range_m=opts["range_m"],
-                       covariance=opts["covariance"], nugget=opts["nugget"])
     if opts["realisations"] < 1:
         raise OptionError(f"--realisations must be >= 1, got {opts['realisations']}")
     if opts["workers"] is not None and opts["workers"] < 1:
         raise OptionError(f"--workers must be >= 1, got {opts['workers']}")
+    return ErrorModel(rmse=rmse, kernel=opts["kernel"], range_m=opts["range_m"],
+                      covariance=opts["covariance"], nugget=opts["nugget"])
+
+
+def _read(dem_path, opts):
     dem = read_dem(dem_path, band=opts["band"], bbox=opts["bbox"])
     for line in dem_warnings(dem):
         click.echo(f"cairn: warning: {line}", err=True)
-    thr = 3 * rmse if threshold is None else threshold
-    if base is None:
-        base = float(np.nanmin(dem.z[~dem.nodata]))
-    settings = CreditSettings(kind, threshold=float(thr), threshold_jitter=opts["threshold_jitter"],
-                              weight=opts["weight"], connectivity=int(opts["connectivity"]),
-                              base=float(base), kernel=opts["kernel"])
-    out = prepare_outdir(outdir, outputs_for(kind), overwrite=opts["overwrite"])
+    return dem
+
+
+def _execute(dem, job, model, outdir, names, opts, *, command, headline):
+    """Check outputs and memory, run the ensemble with a progress bar, handle Ctrl-C."""
+    from terrain.ensemble import RunInterrupted, run_ensemble
+    from terrain.resources import check_memory
+
+    out = prepare_outdir(outdir, names, overwrite=opts["overwrite"])
     ck = opts["checkpoint"]
-    if ck and Path(ck).exists() and not opts["resume"] and not opts["overwrite"]:
-        raise OutputError(f"{ck}: checkpoint exists; pass --resume to continue it or "
-                          "--overwrite to start afresh")
-    if ck and not opts["resume"] and Path(ck).exists():
+    if ck and Path(ck).exists() and not opts["resume"]:
+        if not opts["overwrite"]:
+            raise OutputError(f"{ck}: checkpoint exists; pass --resume to continue it or "
+                              "--overwrite to start afresh")
         os.unlink(ck)
     workers = opts["workers"] or os.cpu_count() or 1
     check_memory(dem, workers=workers, force=opts["force"], realisations=opts["realisations"])
     quiet = opts["quiet"]
-    say = (lambda *a, **k: None) if quiet else (lambda m: click.echo(m, err=True))
-    figure = "prominence" if kind == "peaks" else "depth"
-    say(f"cairn {command}: {dem.shape[0]}x{dem.shape[1]} cells, error {model.describe()}, "
-        f"minimum {figure} {thr:g}, {opts['realisations']} realisations, seed {opts['seed']}")
+    if not quiet:
+        click.echo(f"cairn {command}: {dem.shape[0]}x{dem.shape[1]} cells, error "
+                   f"{model.describe()}, {headline}, {opts['realisations']} realisations, "
+                   f"seed {opts['seed']}", err=True)
     try:
         with progress_bar(enabled=not quiet and sys.stderr.isatty(), label=command) as bar:
-            res = attribute(dem, settings, model, realisations=opts["realisations"],
-                            seed=opts["seed"], backend="processes", workers=workers,
-                            scheduler=opts["scheduler"], checkpoint=ck, resume=opts["resume"],
-                            target_se=opts["target_se"], progress=bar)
+            res = run_ensemble(dem, job, model, realisations=opts["realisations"],
+                               seed=opts["seed"], backend="processes", workers=workers,
+                               scheduler=opts["scheduler"], checkpoint=ck, resume=opts["resume"],
+                               target_se=opts["target_se"], progress=bar)
     except RunInterrupted as exc:
         if exc.checkpoint:
             click.echo(f"cairn: interrupted after {exc.done} realisations; saved {exc.checkpoint}. "
@@ -75,8 +76,25 @@ def _run(kind, dem_path, outdir, opts, *, threshold, base=None, command):
             click.echo(f"cairn: interrupted after {exc.done} realisations; nothing written "
                        "(use --checkpoint FILE to be able to resume).", err=True)
         sys.exit(130)
+    return out, res
+
+
+def _run(kind, dem_path, outdir, opts, *, threshold, base=None, command):
+    from terrain.report import outputs_for, write_outputs
+
+    model = _model(opts)
+    dem = _read(dem_path, opts)
+    thr = 3 * model.rmse if threshold is None else threshold
+    if base is None:
+        base = float(np.nanmin(dem.z[~dem.nodata]))
+    settings = CreditSettings(kind, threshold=float(thr), threshold_jitter=opts["threshold_jitter"],
+                              weight=opts["weight"], connectivity=int(opts["connectivity"]),
+                              base=float(base), kernel=opts["kernel"])
+    figure = "prominence" if kind == "peaks" else "depth"
+    out, res = _execute(dem, settings, model, outdir, outputs_for(kind), opts, command=command,
+                        headline=f"minimum {figure} {thr:g}")
     table = write_outputs(out, res, input_path=str(dem_path), command=command)
-    if not quiet:
+    if not opts["quiet"]:
         print_summary(table, kind=kind, units=dem.vertical_units or "DEM units", n=res.n,
                       outdir=out, caution=CAUTION)
     return res, table
@@ -154,6 +172,55 @@ DEMO_SETTINGS = dict(rmse=1.0, le90=None, a95=None, kernel="gaussian", range_m=0
                      weight="persistence", connectivity="8", band=None, bbox=None,
                      realisations=300, seed=2026, scheduler=None, checkpoint=None, resume=False,
                      target_se=None, force=False)
+
+
+_EXAMPLE_CATCH = """
+\b
+Example:
+  cairn catchments dem.tif --outlets gauges.gpkg -o out --rmse 0.5 --snap 60
+\b
+Outlets: points in a GeoPackage, GeoJSON or Shapefile (reprojected to the
+DEM's CRS), or a CSV with columns x,y (DEM's CRS) and optional id. Writes
+catchment_probability_<id>.tif per outlet, divide_probability.tif,
+catchments.gpkg / catchments.csv (50% and 90% membership polygons, area
+mean and 5-95% range), quicklook.png and run.json.
+"""
+
+
+@cli.command("catchments", epilog=_EXAMPLE_CATCH + "\n\b\n" + CATCH_CAUTION)
+@click.argument("dem", type=click.Path(dir_okay=False))
+@click.option("--outlets", required=True, type=click.Path(dir_okay=False),
+              help="Outlet points (GeoPackage, GeoJSON, Shapefile, or CSV with x,y[,id]).")
+@click.option("-o", "--outdir", required=True, type=click.Path(), help="Output folder.")
+@click.option("--snap", type=float, default=None,
+              help="Snap each outlet, per realisation, to the cell of highest flow "
+                   "accumulation within this many metres [default: 2 cells].")
+@common_options
+@guarded
+def catchments_cmd(dem, outlets, outdir, snap, **opts):
+    """Outlet catchments and drainage divides, as probabilities under DEM error.
+
+    Each realisation fills depressions (the edge and nodata are exits), routes
+    D8 flow, snaps every outlet to its channel and records which cells drain
+    to it.
+    """
+    from terrain.catchments import CatchmentJob
+    from terrain.io import read_outlets
+    from terrain.report import catchment_outputs, write_catchment_outputs
+
+    model = _model(opts)
+    d = _read(dem, opts)
+    if snap is None:
+        snap = 2 * float(np.mean(d.cell_metres()[0]))
+    _check_nonneg("--snap", snap)
+    ids, xy = read_outlets(outlets, d)
+    job = CatchmentJob.for_dem(d, ids, xy, snap, source=str(outlets))
+    out, res = _execute(d, job, model, outdir, catchment_outputs(job.ids), opts,
+                        command="catchments",
+                        headline=f"{len(ids)} outlet(s), snap {snap:g} m")
+    rows = write_catchment_outputs(out, res, input_path=str(dem), outlets_path=str(outlets))
+    if not opts["quiet"]:
+        print_catchments(rows, n=res.n, outdir=out, caution=CATCH_CAUTION)
 
 
 @cli.command("demo", epilog="\b\n" + CAUTION)

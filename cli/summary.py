@@ -35,3 +35,20 @@ def print_summary(table: dict, *, kind: str, units: str, n: int, outdir, caution
         console.print(t)
     console.print(f"{len(table['rank'])} features; outputs in {outdir}")
     console.print(f"[italic]{caution}[/italic]")
+
+
+def print_catchments(rows: dict, *, n: int, outdir, caution: str) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    t = Table(title=f"Catchments ({n} realisations)", title_justify="left")
+    for col in ("outlet", "level", "area km²", "mean km²", "5–95% km²"):
+        t.add_column(col, justify="right")
+    for i in range(len(rows["outlet_id"])):
+        t.add_row(rows["outlet_id"][i], f"{rows['level'][i]:.0%}", f"{rows['area_m2'][i] / 1e6:.3f}",
+                  f"{rows['area_mean_m2'][i] / 1e6:.3f}",
+                  f"{rows['area_p05_m2'][i] / 1e6:.3f}–{rows['area_p95_m2'][i] / 1e6:.3f}")
+    console = Console(file=sys.stdout, width=120)
+    console.print(t)
+    console.print(f"outputs in {outdir}")
+    console.print(f"[italic]{caution}[/italic]")

@@ -166,6 +166,12 @@ def realise(z: np.ndarray, sampler: ErrorSampler, settings: CreditSettings, seed
     }
 
 
+def proportion(count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Share and its Monte Carlo standard error sqrt(p(1-p)/N)."""
+    p = count / max(n, 1)
+    return p, np.sqrt(p * (1 - p) / max(n, 1))
+
+
 def log_weights(log: dict, weight: str, base: float) -> np.ndarray:
     """Weight of each logged pair: persistence (essential: elevation - base) or 1."""
     if weight == "count":
@@ -259,14 +265,10 @@ class Accumulator:
             m = s / n
             return m, np.sqrt(np.maximum(q / n - m * m, 0.0) / n)
 
-        def proportion(c):
-            p = c / n
-            return p, np.sqrt(p * (1 - p) / n)
-
         out = {names[0]: moments(self.bsum, self.bsq), names[1]: moments(self.dsum, self.dsq),
-               names[2]: proportion(self.bcount)}
+               names[2]: proportion(self.bcount, n)}
         if self.ponding is not None:
-            out[names[3]] = proportion(self.ponding)
+            out[names[3]] = proportion(self.ponding, n)
         return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
 
     # -- checkpoint state ------------------------------------------------------

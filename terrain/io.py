@@ -20,8 +20,8 @@ import numpy as np
 from .dem import Dem
 from .errors import BandError, CorruptRasterError, DemNotFoundError, NotARasterError, OutputError, WindowError
 
-__all__ = ["read_dem", "dem_warnings", "atomic_path", "write_json", "write_layer", "prepare_outdir",
-           "write_table"]
+__all__ = ["read_dem", "read_outlets", "dem_warnings", "atomic_path", "write_json", "write_layer",
+           "prepare_outdir", "write_table"]
 
 
 def read_dem(path: str | os.PathLike, *, band: int | None = None,
@@ -111,6 +111,63 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
     return Dem(z=z, nodata=mask, transform=tuple(transform)[:6],
                crs=crs.to_wkt() if crs is not None else None, geographic=geographic,
                linear_unit_m=unit_m, vertical_units=units, source=str(p), meta=meta)
+
+
+def read_outlets(path: str | os.PathLike, dem: Dem) -> tuple[list[str], np.ndarray]:
+    """Outlet points from a GeoPackage, GeoJSON, Shapefile or CSV, in the DEM's CRS.
+
+    A CSV needs columns ``x`` and ``y`` (the DEM's CRS) and may have ``id``.
+    Vector files are reprojected to the DEM's CRS when both declare one.
+    Ids default to 1..n.
+
+    Raises
+    ------
+    OutletError
+        Missing or unreadable file, no points, non-point geometries, missing
+        x/y columns.
+    """
+    from .errors import OutletError
+
+    p = Path(path)
+    if not p.exists():
+        raise OutletError(f"{p}: no such outlets file")
+    try:
+        if p.suffix.lower() == ".csv":
+            import pandas as pd
+
+            df = pd.read_csv(p)
+            cols = {c.lower().strip(): c for c in df.columns}
+            if "x" not in cols or "y" not in cols:
+                raise OutletError(f"{p}: a CSV of outlets needs columns x and y (and optionally id)")
+            xy = df[[cols["x"], cols["y"]]].to_numpy(dtype=np.float64)
+            ids = df[cols["id"]].astype(str).tolist() if "id" in cols else None
+        else:
+            import pyogrio
+            from pyproj import CRS
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                gdf = pyogrio.read_dataframe(p)
+            if len(gdf) and dem.crs is not None and gdf.crs is not None and \
+                    not CRS.from_user_input(gdf.crs).equals(CRS.from_user_input(dem.crs)):
+                gdf = gdf.to_crs(dem.crs)
+            geom = gdf.geometry
+            if len(gdf) and not all(t in ("Point",) for t in geom.geom_type):
+                raise OutletError(f"{p}: outlets must be points, found {sorted(set(geom.geom_type))}")
+            xy = np.column_stack([geom.x, geom.y]) if len(gdf) else np.empty((0, 2))
+            ids = gdf["id"].astype(str).tolist() if "id" in gdf.columns else None
+    except OutletError:
+        raise
+    except Exception as exc:  # pyogrio / pandas raise many classes for bad files
+        raise OutletError(f"{p}: cannot read outlets ({_short(exc)})") from None
+    if xy.shape[0] == 0:
+        raise OutletError(f"{p}: no outlet points in the file")
+    if not np.isfinite(xy).all():
+        raise OutletError(f"{p}: outlet coordinates must be finite numbers")
+    if ids is None:
+        ids = [str(i) for i in range(1, xy.shape[0] + 1)]
+    ids = ["".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in i) for i in ids]
+    return ids, xy
 
 
 def dem_warnings(dem: Dem) -> list[str]:

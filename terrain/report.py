@@ -87,29 +87,104 @@ def write_outputs(outdir: str | Path, res: Attribution, *, input_path: str | Non
     gpkg, csv = _TABLES[kind]
     write_table(out / gpkg, out / csv, frames)
     _write_quicklook(out / "quicklook.png", res, table, frames, main, labels > 0)
-    units = dem.vertical_units or "DEM units"
+    run = provenance(res, input_path=input_path, command=command, created=t_write,
+                     parameters={"kind": kind, **dict(s.__dict__), "feature_min_presence": frac,
+                                 "feature_window_cells": 5, "feature_local_min": 0.05})
+    run.update({"features": int(k), "pair_log_entries": int(res.log["birth"].size),
+                "pair_log_bytes_per_entry": int(sum(np.dtype(res.log[f].dtype).itemsize
+                                                    for f in res.log))})
+    run.update(extra or {})
+    write_json(out / "run.json", run)
+    return table
+
+
+def provenance(res: Attribution, *, input_path: str | None, command: str, created,
+               parameters: dict) -> dict:
+    """The ``run.json`` record common to every command."""
+    dem = res.dem
     run = {
-        "cairn_version": __version__, "command": command, "created_utc": t_write.isoformat(),
+        "cairn_version": __version__, "command": command, "created_utc": created.isoformat(),
         "input": {"path": input_path, "sha256": file_sha256(input_path) if input_path else None,
                   "dem_checksum": res.params["dem_checksum"], "shape": list(dem.shape),
-                  "crs": dem.crs, "transform": list(dem.transform), "vertical_units": units},
-        "parameters": {"kind": kind, **{k: v for k, v in s.__dict__.items()},
-                       "error_model": res.model.as_dict(), "seed": res.params["seed"],
-                       "feature_min_presence": frac,
-                       "feature_window_cells": 5, "feature_local_min": 0.05},
+                  "crs": dem.crs, "transform": list(dem.transform),
+                  "vertical_units": dem.vertical_units or "DEM units"},
+        "parameters": {**parameters, "error_model": res.model.as_dict(), "seed": res.params["seed"]},
         "realisations_done": res.n, "execution": res.info,
-        "features": int(k), "pair_log_entries": int(res.log["birth"].size),
-        "pair_log_bytes_per_entry": int(sum(v.itemsize for v in
-                                            (np.dtype(res.log[f].dtype) for f in res.log))),
         "python": platform.python_version(),
         "caution": "Analysis aid, not engineering design or official flood mapping; defer to "
                    "local codes, official flood maps and licensed professionals.",
     }
     if dem.crs is None:
         run["note"] = "no CRS: areas are in squared cell units, distances in cell units"
-    run.update(extra or {})
+    return run
+
+
+def catchment_outputs(ids) -> list[str]:
+    """File names ``cairn catchments`` writes."""
+    from .catchments import catchment_layer_names
+
+    return [f"{n}.tif" for n in catchment_layer_names(ids)] + [
+        "catchments.gpkg", "catchments.csv", "quicklook.png", "run.json"]
+
+
+def write_catchment_outputs(outdir: str | Path, res: Attribution, *, input_path: str | None,
+                            outlets_path: str | None, command: str = "catchments") -> dict:
+    """Write a catchment run: probability layers, 50%/90% polygons, map, provenance.
+
+    Returns the table (dict of lists) written to ``catchments.gpkg``/``.csv``.
+    """
+    import geopandas as gpd
+
+    from .catchments import area_summary
+    from .features import feature_polygons
+    from .plot import quicklook
+
+    out = Path(outdir)
+    dem, job = res.dem, res.settings
+    created = _dt.datetime.now(_dt.timezone.utc)
+    tags = {"cairn_version": __version__, "command": command, "realisations": res.n,
+            "seed": res.params["seed"], "error_model": res.model.as_dict(), "snap_m": job.snap_m,
+            "caution": "analysis aid, not a flood or drainage design"}
+    for name, (est, se) in res.layers.items():
+        what = ("share of realisations in which the cell drains to outlet " + name.rsplit("_", 1)[1]
+                if name.startswith("catchment") else
+                "share of realisations in which the cell and a neighbour drain to different exits")
+        write_layer(out / f"{name}.tif", dem, est, se, name=name, units="probability",
+                    description=what, tags=tags)
+    areas = area_summary(res.log, job.ids)
+    area_row = dem.cell_area_m2()
+    rows = {c: [] for c in ("outlet_id", "level", "area_m2", "area_mean_m2", "area_p05_m2",
+                            "area_p95_m2")}
+    geoms = []
+    for oid in job.ids:
+        p = res.layers[f"catchment_probability_{oid}"][0]
+        for level in (0.5, 0.9):
+            m = (p >= level) & ~dem.nodata
+            geom = feature_polygons(dem, m.astype(np.int32), 1)[0]
+            geoms.append(geom)
+            rows["outlet_id"].append(oid)
+            rows["level"].append(level)
+            rows["area_m2"].append(float((m * area_row[:, None]).sum()))
+            mean, p05, p95 = areas[oid]
+            rows["area_mean_m2"].append(mean)
+            rows["area_p05_m2"].append(p05)
+            rows["area_p95_m2"].append(p95)
+    gdf = gpd.GeoDataFrame(rows, geometry=geoms, crs=dem.crs)
+    write_table(out / "catchments.gpkg", out / "catchments.csv", {"catchments": gdf})
+    polys = [g for g, lv in zip(geoms, rows["level"]) if lv == 0.5]
+    fig = quicklook(dem, res.layers["divide_probability"][0],
+                    title=f"drainage-divide probability, 50% catchment outlines — {res.n} "
+                          f"realisations, error {res.model.describe()}",
+                    units="divide probability", polygons=polys, cmap="viridis_r",
+                    outlets=[(x, y, oid) for oid, (x, y) in zip(job.ids, job.xy)], vmax=1.0)
+    with atomic_path(out / "quicklook.png") as tmp:
+        fig.savefig(tmp, format="png")
+    run = provenance(res, input_path=input_path, command=command, created=created,
+                     parameters={"job": "catchments", "outlets_file": outlets_path,
+                                 "outlets": {i: list(map(float, xy)) for i, xy in
+                                             zip(job.ids, job.xy)}, "snap_m": job.snap_m})
     write_json(out / "run.json", run)
-    return table
+    return rows
 
 
 def _write_quicklook(dest: Path, res: Attribution, table: dict, frames: dict, main: str,

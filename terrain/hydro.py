@@ -1,0 +1,429 @@
+"""Depression filling, D8 flow, accumulation and outlet catchments (numba).
+
+Per realisation: depression filling (the raster edge and nodata are exits),
+D8 receivers on the filled surface with flats drained towards their outflow,
+flow accumulation in a topological order, each cell's exit, and outlet
+membership (nested outlets allowed). :func:`fill_depressions` is the
+Priority-Flood reference (plain or +epsilon); realisations take the filled
+surface from the persistence engine, which equals it and is faster.
+
+Memory per realisation: filled surface (8 bytes per cell), receivers (8),
+topological order (8), accumulation (8), exits (8), flags and queue (9):
+about 50 bytes per cell.
+
+References
+----------
+.. [1] Barnes, R., Lehman, C., Mulla, D. (2014). Priority-flood: An optimal
+   depression-filling and watershed-labeling algorithm for digital
+   elevation models. Computers & Geosciences 62, 117-127.
+   doi:10.1016/j.cageo.2013.04.024 (Algorithms 2 and 3).
+.. [2] O'Callaghan, J. F., Mark, D. M. (1984). The extraction of drainage
+   networks from digital elevation data. Computer Vision, Graphics, and
+   Image Processing 28, 323-344. doi:10.1016/S0734-189X(84)80011-0 (D8).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+__all__ = ["fill_depressions", "flow", "Flow"]
+
+_DR = np.array([-1, -1, -1, 0, 0, 1, 1, 1], np.int64)
+_DC = np.array([-1, 0, 1, -1, 1, -1, 0, 1], np.int64)
+
+
+@njit(cache=True, inline="always")
+def _less(hv, hi, a, b):
+    return hv[a] < hv[b] or (hv[a] == hv[b] and hi[a] < hi[b])
+
+
+@njit(cache=True)
+def _push(hv, hi, size, v, i):
+    k = size
+    hv[k] = v
+    hi[k] = i
+    while k > 0:
+        p = (k - 1) >> 1
+        if _less(hv, hi, k, p):
+            hv[k], hv[p] = hv[p], hv[k]
+            hi[k], hi[p] = hi[p], hi[k]
+            k = p
+        else:
+            break
+    return size + 1
+
+
+@njit(cache=True)
+def _pop(hv, hi, size):
+    i = hi[0]
+    size -= 1
+    hv[0] = hv[size]
+    hi[0] = hi[size]
+    k = 0
+    while True:
+        a = 2 * k + 1
+        if a >= size:
+            break
+        b = a + 1
+        m = b if (b < size and _less(hv, hi, b, a)) else a
+        if _less(hv, hi, m, k):
+            hv[k], hv[m] = hv[m], hv[k]
+            hi[k], hi[m] = hi[m], hi[k]
+            k = m
+        else:
+            break
+    return i, size
+
+
+@njit(cache=True)
+def _priority_flood(z, valid, nr, nc, eps, filled):
+    """Barnes et al. (2014) Priority-Flood (Alg. 2) or Priority-Flood+epsilon (Alg. 3).
+
+    Seeds: valid cells on the raster edge or next to nodata. With ``eps``
+    every raised cell is set one ulp above the cell it was reached from, so
+    flats and filled depressions keep a strict drainage gradient.
+    """
+    n = nr * nc
+    closed = np.zeros(n, np.bool_)
+    hv = np.empty(n, np.float64)
+    hi = np.empty(n, np.int64)
+    pit = np.empty(n, np.int64)
+    size = 0
+    for r in range(nr):
+        for c in range(nc):
+            i = r * nc + c
+            if not valid[i]:
+                filled[i] = np.nan
+                continue
+            edge = r == 0 or c == 0 or r == nr - 1 or c == nc - 1
+            if not edge:
+                for k in range(8):
+                    if not valid[(r + _DR[k]) * nc + c + _DC[k]]:
+                        edge = True
+                        break
+            if edge:
+                closed[i] = True
+                filled[i] = z[i]
+                size = _push(hv, hi, size, z[i], i)
+    ph = 0
+    pt = 0
+    while size > 0 or ph < pt:
+        if ph < pt and size > 0 and hv[0] == filled[pit[ph]]:
+            c0, size = _pop(hv, hi, size)
+        elif ph < pt:
+            c0 = pit[ph]
+            ph += 1
+        else:
+            c0, size = _pop(hv, hi, size)
+        r0 = c0 // nc
+        cc0 = c0 - r0 * nc
+        level = filled[c0]
+        raised = np.nextafter(level, np.inf) if eps else level
+        for k in range(8):
+            rr = r0 + _DR[k]
+            cc = cc0 + _DC[k]
+            if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+                continue
+            j = rr * nc + cc
+            if not valid[j] or closed[j]:
+                continue
+            closed[j] = True
+            if z[j] <= raised:
+                filled[j] = raised
+                pit[pt] = j
+                pt += 1
+            else:
+                filled[j] = z[j]
+                size = _push(hv, hi, size, z[j], j)
+
+
+def fill_depressions(z: np.ndarray, *, epsilon: bool = False, mask: np.ndarray | None = None) -> np.ndarray:
+    """Fill depressions by Priority-Flood; the edge and nodata are outlets.
+
+    Parameters
+    ----------
+    z : (rows, cols) array
+        Elevations; NaN/inf are nodata.
+    epsilon : bool
+        Priority-Flood+epsilon: raise cells one float64 ulp above their
+        neighbour so that every cell has a strictly lower path to an exit.
+    mask : bool array, optional
+        True marks nodata.
+
+    Returns
+    -------
+    float64 array, NaN on nodata.
+
+    References
+    ----------
+    .. [1] Barnes, R., Lehman, C., Mulla, D. (2014). Priority-flood.
+       Computers & Geosciences 62, 117-127. doi:10.1016/j.cageo.2013.04.024
+
+    Examples
+    --------
+    >>> z = np.array([[5, 5, 5], [5, 1, 5], [5, 4, 5]], dtype=float)
+    >>> fill_depressions(z)[1, 1]
+    4.0
+    """
+    z = np.asarray(z, dtype=np.float64)
+    valid = np.isfinite(z)
+    if mask is not None:
+        valid &= ~np.asarray(mask, bool)
+    filled = np.empty(z.size)
+    _priority_flood(z.reshape(-1), valid.reshape(-1), z.shape[0], z.shape[1], epsilon, filled)
+    return filled.reshape(z.shape)
+
+
+@njit(cache=True)
+def _d8(filled, valid, nr, nc, wx, hy, rec):
+    """Steepest-descent receiver among 8 neighbours, -1 when none is lower.
+
+    ``wx[r]``, ``hy[r]``: cell width and height (metres) of row ``r``;
+    diagonal distance sqrt(wx^2 + hy^2) (= sqrt 2 x cell size for square cells).
+    """
+    for r in range(nr):
+        w = wx[r]
+        h = hy[r]
+        dg = math.sqrt(w * w + h * h)
+        for c in range(nc):
+            i = r * nc + c
+            rec[i] = -1
+            if not valid[i]:
+                continue
+            best = 0.0
+            zi = filled[i]
+            for k in range(8):
+                rr = r + _DR[k]
+                cc = c + _DC[k]
+                if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+                    continue
+                j = rr * nc + cc
+                if not valid[j]:
+                    continue
+                d = dg if (_DR[k] != 0 and _DC[k] != 0) else (h if _DR[k] != 0 else w)
+                s = (zi - filled[j]) / d
+                if s > best:
+                    best = s
+                    rec[i] = j
+
+
+@njit(cache=True)
+def _route_flats(filled, valid, nr, nc, rec):
+    """Give cells without a lower neighbour a receiver across their flat.
+
+    Breadth-first search from every cell that drains (has a receiver) or is
+    an exit (on the edge or next to nodata), into neighbouring cells of equal
+    filled elevation that have no receiver: each reached cell drains to the
+    cell it was reached from, i.e. along a shortest path to the flat's
+    outflow (towards lower terrain).
+    """
+    n = nr * nc
+    done = np.zeros(n, np.bool_)
+    queue = np.empty(n, np.int64)
+    m = 0
+    for r in range(nr):
+        for c in range(nc):
+            i = r * nc + c
+            if not valid[i]:
+                continue
+            seed = rec[i] >= 0 or r == 0 or c == 0 or r == nr - 1 or c == nc - 1
+            if not seed:
+                for k in range(8):
+                    if not valid[(r + _DR[k]) * nc + c + _DC[k]]:
+                        seed = True
+                        break
+            if seed:
+                done[i] = True
+                queue[m] = i
+                m += 1
+    t = 0
+    while t < m:
+        x = queue[t]
+        t += 1
+        r0 = x // nc
+        c0 = x - r0 * nc
+        for k in range(8):
+            rr = r0 + _DR[k]
+            cc = c0 + _DC[k]
+            if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+                continue
+            j = rr * nc + cc
+            if valid[j] and not done[j] and filled[j] == filled[x]:
+                done[j] = True
+                rec[j] = x
+                queue[m] = j
+                m += 1
+
+
+@njit(cache=True)
+def _topo(rec, valid):
+    """Cells ordered upstream-first (Kahn's algorithm on the receiver graph),
+    flow accumulation (cells) and each cell's exit (terminal cell)."""
+    n = rec.size
+    indeg = np.zeros(n, np.int32)
+    for i in range(n):
+        if valid[i] and rec[i] >= 0:
+            indeg[rec[i]] += 1
+    order = np.empty(n, np.int64)
+    m = 0
+    for i in range(n):
+        if valid[i] and indeg[i] == 0:
+            order[m] = i
+            m += 1
+    acc = np.zeros(n, np.float64)
+    t = 0
+    while t < m:
+        c = order[t]
+        t += 1
+        acc[c] += 1.0
+        d = rec[c]
+        if d >= 0:
+            acc[d] += acc[c]
+            indeg[d] -= 1
+            if indeg[d] == 0:
+                order[m] = d
+                m += 1
+    order = order[:m]
+    exit_ = np.full(n, -1, np.int64)
+    for t in range(m - 1, -1, -1):  # downstream first
+        c = order[t]
+        exit_[c] = c if rec[c] < 0 else exit_[rec[c]]
+    return order, acc, exit_
+
+
+@njit(cache=True)
+def _divides(exit_, valid, nr, nc, counts):
+    """Add 1 where a cell and at least one 8-neighbour drain to different exits."""
+    for r in range(nr):
+        for c in range(nc):
+            i = r * nc + c
+            if not valid[i]:
+                continue
+            e = exit_[i]
+            for k in range(8):
+                rr = r + _DR[k]
+                cc = c + _DC[k]
+                if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+                    continue
+                j = rr * nc + cc
+                if valid[j] and exit_[j] != e:
+                    counts[i] += 1
+                    break
+
+
+@njit(cache=True)
+def _snap(acc, cand, cand_ptr):
+    """Per outlet, the candidate cell of highest accumulation (lowest index on ties)."""
+    k = cand_ptr.size - 1
+    out = np.empty(k, np.int64)
+    for o in range(k):
+        best = -1
+        bv = -1.0
+        for t in range(cand_ptr[o], cand_ptr[o + 1]):
+            c = cand[t]
+            if acc[c] > bv:
+                bv = acc[c]
+                best = c
+        out[o] = best
+    return out
+
+
+@njit(cache=True)
+def _membership(order, rec, snapped, nr, nc, area_row, counts):
+    """Add 1 to ``counts[o]`` for every cell draining through outlet ``o``;
+    return each outlet's catchment area (nested outlets allowed)."""
+    n = rec.size
+    k = snapped.size
+    lab = np.full(n, -1, np.int64)
+    is_out = np.full(n, -1, np.int64)
+    for o in range(k):
+        if is_out[snapped[o]] < 0:
+            is_out[snapped[o]] = o
+    for t in range(order.size - 1, -1, -1):  # downstream first
+        c = order[t]
+        if is_out[c] >= 0:
+            lab[c] = is_out[c]
+        elif rec[c] >= 0:
+            lab[c] = lab[rec[c]]
+    parent = np.full(k, -1, np.int64)
+    for o in range(k):
+        c = snapped[o]
+        if is_out[c] == o and rec[c] >= 0:
+            parent[o] = lab[rec[c]]
+    # outlets snapped onto one cell share its membership: alias lists
+    gnext = np.full(k, -1, np.int64)
+    for o in range(k):
+        p = is_out[snapped[o]]
+        if p != o:
+            q = p
+            while gnext[q] >= 0:
+                q = gnext[q]
+            gnext[q] = o
+    area = np.zeros(k)
+    for t in range(order.size):
+        c = order[t]
+        o = lab[c]
+        a = area_row[c // nc]
+        while o >= 0:
+            q = o
+            while q >= 0:
+                counts[q, c] += 1
+                area[q] += a
+                q = gnext[q]
+            o = parent[o]
+    return area
+
+
+class Flow:
+    """D8 flow of one filled surface: receivers, upstream-first order, accumulation, exits.
+
+    Cells with a strictly lower neighbour drain by steepest descent (D8);
+    cells on flats (including filled depressions) drain across the flat
+    towards its outflow (see :func:`_route_flats`); cells on the edge or next
+    to nodata with no lower neighbour are exits (receiver -1).
+    """
+
+    def __init__(self, filled: np.ndarray, valid: np.ndarray, cell_w, cell_h):
+        nr, nc = filled.shape
+        self.shape = (nr, nc)
+        self.valid = np.ascontiguousarray(valid).reshape(-1)
+        f = np.ascontiguousarray(filled, dtype=np.float64).reshape(-1)
+        w = np.broadcast_to(np.asarray(cell_w, np.float64), (nr,)).copy()
+        h = np.broadcast_to(np.asarray(cell_h, np.float64), (nr,)).copy()
+        self.rec = np.empty(nr * nc, np.int64)
+        _d8(f, self.valid, nr, nc, w, h, self.rec)
+        _route_flats(f, self.valid, nr, nc, self.rec)
+        self.order, self.acc, self.exit = _topo(self.rec, self.valid)
+
+
+def flow(z: np.ndarray, *, cell_w, cell_h, mask: np.ndarray | None = None) -> Flow:
+    """Fill depressions, then D8 flow on the filled surface.
+
+    The filled surface comes from the persistence engine's basin fill levels
+    (:func:`terrain.persistence.pairs_and_fill`, equal to Priority-Flood
+    filling); flats drain towards their outflow.
+
+    Parameters
+    ----------
+    z : (rows, cols) array
+    cell_w, cell_h : float or per-row arrays
+        Cell width and height in metres (per row for a geographic CRS).
+
+    References
+    ----------
+    .. [1] O'Callaghan, J. F., Mark, D. M. (1984). The extraction of drainage
+       networks from digital elevation data. CVGIP 28, 323-344.
+    .. [2] Barnes, R., Lehman, C., Mulla, D. (2014). Priority-flood.
+       Computers & Geosciences 62, 117-127.
+    """
+    from .persistence import pairs_and_fill
+
+    z = np.asarray(z)
+    valid = np.isfinite(z)
+    if mask is not None:
+        valid &= ~np.asarray(mask, bool)
+    _, filled = pairs_and_fill(z, mask=~valid)
+    return Flow(filled, valid, cell_w, cell_h)

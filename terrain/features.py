@@ -68,6 +68,45 @@ def find_features(credit: np.ndarray, nodata: np.ndarray, *, probability: np.nda
     return remap[lab].astype(np.int32), int(keep.size)
 
 
+def feature_figures(labels: np.ndarray, n_features: int, log: dict, n_real: int, *,
+                    base: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per realisation and feature: the largest figure, presence, edge flag.
+
+    Returns three (n_real, n_features) arrays: figure (0 when absent),
+    present (bool) and edge_limited (bool, of the largest pair).
+    """
+    k = n_features
+    flat = labels.reshape(-1)
+    fid = flat[log["birth"].astype(np.int64)] if log["birth"].size else np.zeros(0, np.int32)
+    inside = fid > 0
+    real = log["real"][inside].astype(np.int64)
+    f = fid[inside].astype(np.int64) - 1
+    fig = np.maximum(log_weights({key: v[inside] for key, v in log.items()}, "persistence", base), 0.0)
+    edge = log["edge_limited"][inside]
+    figures = np.zeros((n_real, k))
+    present = np.zeros((n_real, k), bool)
+    edge_rf = np.zeros((n_real, k), bool)
+    if f.size:
+        order = np.lexsort((fig, f, real))
+        r_s, f_s, g_s, e_s = real[order], f[order], fig[order], edge[order]
+        last = np.ones(order.size, bool)
+        last[:-1] = (r_s[1:] != r_s[:-1]) | (f_s[1:] != f_s[:-1])
+        figures[r_s[last], f_s[last]] = g_s[last]
+        present[r_s[last], f_s[last]] = True
+        edge_rf[r_s[last], f_s[last]] = e_s[last]
+    return figures, present, edge_rf
+
+
+def first_indicator(figures: np.ndarray, present: np.ndarray) -> np.ndarray:
+    """(n_real, k) bool: the feature ranks first in the realisation (ties: lowest id)."""
+    first = np.zeros(figures.shape, bool)
+    any_present = present.any(axis=1)
+    if figures.shape[1]:
+        w = np.argmax(np.where(present, figures, -np.inf), axis=1)
+        first[np.flatnonzero(any_present), w[any_present]] = True
+    return first
+
+
 def feature_table(dem: Dem, labels: np.ndarray, n_features: int, credit: np.ndarray,
                   col_credit: np.ndarray, log: dict, n_real: int, *, base: float) -> dict:
     """Per-feature statistics over realisations (columns :data:`COLUMNS`).
@@ -77,39 +116,18 @@ def feature_table(dem: Dem, labels: np.ndarray, n_features: int, credit: np.ndar
     """
     k = n_features
     flat = labels.reshape(-1)
+    figures, present, edge_rf = feature_figures(labels, k, log, n_real, base=base)
     fid = flat[log["birth"].astype(np.int64)] if log["birth"].size else np.zeros(0, np.int32)
     inside = fid > 0
-    real = log["real"][inside].astype(np.int64)
     f = fid[inside].astype(np.int64) - 1
-    fig = log_weights({key: v[inside] for key, v in log.items()}, "persistence", base)
-    fig = np.maximum(fig, 0.0)
-    edge = log["edge_limited"][inside]
     death = log["death"][inside].astype(np.int64)
     dval = log["death_value"][inside].astype(np.float64)
-
-    figures = np.zeros((n_real, k))
-    present = np.zeros((n_real, k), bool)
-    edge_rf = np.zeros((n_real, k), bool)
-    if f.size:
-        # the largest figure per (realisation, feature), with its edge flag
-        order = np.lexsort((fig, f, real))
-        r_s, f_s, g_s, e_s = real[order], f[order], fig[order], edge[order]
-        last = np.ones(order.size, bool)
-        last[:-1] = (r_s[1:] != r_s[:-1]) | (f_s[1:] != f_s[:-1])
-        figures[r_s[last], f_s[last]] = g_s[last]
-        present[r_s[last], f_s[last]] = True
-        edge_rf[r_s[last], f_s[last]] = e_s[last]
     n = max(n_real, 1)
     expected = figures.mean(axis=0) if n_real else np.zeros(k)
     se = figures.std(axis=0) / np.sqrt(n) if n_real else np.zeros(k)
     pct = np.percentile(figures, [5, 50, 95], axis=0) if n_real else np.zeros((3, k))
     p_above = present.mean(axis=0) if n_real else np.zeros(k)
-    any_present = present.any(axis=1)
-    if k:
-        winners = np.argmax(np.where(present, figures, -np.inf), axis=1)[any_present]
-        p_first = np.bincount(winners, minlength=k)[:k] / n
-    else:
-        p_first = np.zeros(0)
+    p_first = first_indicator(figures, present).sum(axis=0) / n
     # rank of each feature in each realisation: 1 + features with a larger figure
     ranks = 1 + (figures[:, None, :] > figures[:, :, None]).sum(axis=2) if k <= 2000 else \
         1 + np.argsort(np.argsort(-figures, axis=1, kind="stable"), axis=1)

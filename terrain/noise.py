@@ -43,6 +43,7 @@ import numpy as np
 from .errors import EmbeddingError, OptionError
 
 __all__ = ["KERNELS", "COVARIANCES", "ErrorModel", "rmse_from", "kernel_pdf", "kernel_variance",
+           "kernel_quantile",
            "kernel_halfwidth", "kernel_lipschitz", "sample_kernel", "CorrelatedField",
            "realisation_rng"]
 
@@ -147,6 +148,29 @@ def sample_kernel(kernel: str, rng: np.random.Generator, size, dtype=np.float32)
     u3 = rng.random(size, dtype=dtype) * 2 - 1
     a3 = np.abs(u3)
     return np.where((a3 >= np.abs(u2)) & (a3 >= np.abs(u1)), u2, u3)
+
+
+def kernel_quantile(kernel: str, u: np.ndarray) -> np.ndarray:
+    """Inverse CDF of the kernel with unit bandwidth at ``u`` in (0, 1).
+
+    Gaussian: the normal quantile (scipy.special.ndtri). Uniform: 2u - 1.
+    Triangular: sqrt(2u) - 1 below the median, 1 - sqrt(2(1 - u)) above.
+    Epanechnikov: F(x) = 1/2 + 3x/4 - x^3/4, inverted as
+    x = 2 sin(arcsin(2u - 1) / 3).
+    Mapping one set of uniforms through each kernel's quantile gives common
+    random numbers across kernels.
+    """
+    _check_kernel(kernel)
+    u = np.asarray(u, dtype=np.float64)
+    if kernel == "gaussian":
+        from scipy.special import ndtri
+
+        return ndtri(u)
+    if kernel == "uniform":
+        return 2 * u - 1
+    if kernel == "triangular":
+        return np.where(u <= 0.5, np.sqrt(2 * u) - 1, 1 - np.sqrt(2 * (1 - u)))
+    return 2 * np.sin(np.arcsin(2 * u - 1) / 3)
 
 
 def realisation_rng(seed: int, i: int, stream: int = 0) -> np.random.Generator:
@@ -277,6 +301,10 @@ class ErrorModel:
     nugget : float
         Share of the variance drawn independently (from ``kernel``) when
         ``range_m > 0``; the correlated sill is ``(1 - nugget) rmse^2``.
+    draw : {"direct", "quantile"}
+        How kernel errors are drawn: each kernel's own fast sampler, or one
+        uniform per cell through the kernel's quantile function (the same
+        uniforms for every kernel: common random numbers across kernels).
     """
 
     rmse: float
@@ -284,6 +312,7 @@ class ErrorModel:
     range_m: float = 0.0
     covariance: str = "exponential"
     nugget: float = 0.0
+    draw: str = "direct"
 
     def __post_init__(self):
         if not (math.isfinite(self.rmse) and self.rmse > 0):
@@ -296,6 +325,8 @@ class ErrorModel:
             raise OptionError(f"--range must be >= 0 metres, got {self.range_m}")
         if not 0 <= self.nugget <= 1:
             raise OptionError(f"--nugget is a share between 0 and 1, got {self.nugget}")
+        if self.draw not in ("direct", "quantile"):
+            raise OptionError(f"draw must be 'direct' or 'quantile', got {self.draw!r}")
 
     @property
     def bandwidth(self) -> float:
@@ -332,19 +363,26 @@ class ErrorSampler:
                 warnings.simplefilter("ignore")
                 self.field = CorrelatedField(self.shape, spacing_m, model.covariance, model.range_m)
 
+    def _kernel(self, rng: np.random.Generator) -> np.ndarray:
+        m = self.model
+        if m.draw == "quantile":
+            u = rng.random(self.shape)
+            np.maximum(u, 2.0 ** -60, out=u)  # the quantile is finite on (0, 1)
+            return kernel_quantile(m.kernel, u).astype(np.float32)
+        return sample_kernel(m.kernel, rng, self.shape)
+
     def draw(self, seed: int, i: int, scale: float | None = None) -> np.ndarray:
         m = self.model
         rmse = m.rmse if scale is None else scale
-        rng = realisation_rng(seed, i)
         unit_sd = math.sqrt(_UNIT_VAR[m.kernel])
         if self.field is None:
-            e = sample_kernel(m.kernel, rng, self.shape)
+            e = self._kernel(realisation_rng(seed, i))
             e *= np.float32(rmse / unit_sd)
             return e
-        corr = self.field.standard(rng)
+        corr = self.field.standard(realisation_rng(seed, i))
         corr *= np.float32(rmse * math.sqrt(1 - m.nugget))
         if m.nugget > 0:
-            e = sample_kernel(m.kernel, realisation_rng(seed, i, 1), self.shape)
+            e = self._kernel(realisation_rng(seed, i, 1))
             e *= np.float32(rmse * math.sqrt(m.nugget) / unit_sd)
             corr += e
         return corr

@@ -127,3 +127,17 @@ def test_nugget_and_sill():
 def test_embedding_failure_is_reported():
     with pytest.raises(EmbeddingError):
         CorrelatedField((64, 64), (1, 1), "gaussian", 400.0, max_factor=2)
+
+
+@pytest.mark.parametrize("kernel", KERNELS)
+def test_quantile_inverts_the_cdf(kernel):
+    from terrain.noise import kernel_quantile
+
+    u = np.linspace(0.001, 0.999, 37)
+    lo = -12 if kernel == "gaussian" else -1
+    x = kernel_quantile(kernel, u)
+    cdf = [integrate.quad(lambda t: kernel_pdf(kernel, t, 1.0), lo, xi)[0] for xi in x]
+    np.testing.assert_allclose(cdf, u, atol=1e-6)
+    # the same uniforms give every kernel: common random numbers, same standard deviation
+    e = ErrorSampler(ErrorModel(rmse=2.0, kernel=kernel, draw="quantile"), (300, 300), (1, 1))
+    assert e.draw(3, 0).std() == pytest.approx(2.0, rel=0.01)

@@ -17,7 +17,7 @@ from terrain.noise import ErrorModel, rmse_from
 from .main import CATCH_CAUTION, CAUTION, cli, guarded
 from .options import attribution_options, common_options
 from .progress import progress_bar
-from .summary import print_catchments, print_summary
+from .summary import print_catchments, print_sensitivity, print_summary
 
 _TYPICAL = ("state the DEM's vertical accuracy with --rmse, --le90 or --a95 (typical: global "
             "30 m DEMs a few metres, e.g. --le90 4 or --rmse 5; airborne lidar decimetres, "
@@ -221,6 +221,98 @@ def catchments_cmd(dem, outlets, outdir, snap, **opts):
     rows = write_catchment_outputs(out, res, input_path=str(dem), outlets_path=str(outlets))
     if not opts["quiet"]:
         print_catchments(rows, n=res.n, outdir=out, caution=CATCH_CAUTION)
+
+
+_EXAMPLE_SWEEP = """
+\b
+Example:
+  cairn sweep dem.tif -o sweep --kind peaks --rmse 0.25,0.5,1,2,4 \\
+      --kernels gaussian,epanechnikov,triangular,uniform -n 200
+\b
+Writes sweep.csv (one row per kernel, error level and feature),
+kernel_sensitivity.csv (differences between kernels of equal RMSE),
+sweep.png and run.json.
+"""
+
+
+def _float_list(ctx, param, value):
+    try:
+        out = [float(v) for v in value.split(",") if v.strip()]
+    except ValueError:
+        raise click.BadParameter("expected comma-separated numbers, e.g. 0.25,0.5,1,2,4") from None
+    if not out or any(not (np.isfinite(v) and v > 0) for v in out):
+        raise click.BadParameter("levels must be positive finite numbers")
+    return sorted(set(out))
+
+
+def _kernel_list(ctx, param, value):
+    from terrain.noise import KERNELS
+
+    out = [v.strip() for v in value.split(",") if v.strip()]
+    bad = [v for v in out if v not in KERNELS]
+    if bad or not out:
+        raise click.BadParameter(f"unknown kernel(s) {', '.join(bad) or '(none)'}; "
+                                 f"choose from {', '.join(KERNELS)}")
+    return out
+
+
+@cli.command("sweep", epilog=_EXAMPLE_SWEEP + "\n\b\n" + CAUTION)
+@click.argument("dem", type=click.Path(dir_okay=False))
+@click.option("-o", "--outdir", required=True, type=click.Path(), help="Output folder.")
+@click.option("--kind", type=click.Choice(["peaks", "depressions"]), required=True)
+@click.option("--rmse", "levels", required=True, callback=_float_list, metavar="R1,R2,...",
+              help="Error levels (RMSE, DEM units) to run.")
+@click.option("--kernels", default="gaussian", show_default=True, callback=_kernel_list,
+              metavar="K1,K2,...", help="Kernels to compare at equal RMSE.")
+@click.option("--min-size", type=float, default=None,
+              help="Minimum prominence/depth, fixed across levels [default: 3 x largest RMSE].")
+@click.option("--base", type=float, default=None, help="Base level for peaks (see cairn peaks).")
+@click.option("--weight", type=click.Choice(["persistence", "count"]), default="persistence",
+              show_default=True)
+@click.option("--connectivity", type=click.Choice(["8", "4"]), default="8", show_default=True)
+@click.option("--realisations", "-n", type=int, default=200, show_default=True,
+              help="Realisations per (kernel, level).")
+@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--workers", type=int, default=None, help="Worker processes (default: all cores).")
+@click.option("--scheduler", default=None, metavar="ADDRESS", help="Dask scheduler address.")
+@click.option("--band", type=click.IntRange(min=1), default=None, help="Band to read.")
+@click.option("--overwrite", is_flag=True, help="Replace existing outputs.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress bar or tables.")
+@guarded
+def sweep_cmd(dem, outdir, kind, levels, kernels, min_size, base, weight, connectivity,
+              realisations, seed, workers, scheduler, band, overwrite, quiet):
+    """How attribution spreads as the assumed error grows, and how much the kernel matters.
+
+    Runs the attribution at every (kernel, error level) with common random
+    numbers, follows each feature across runs, and measures differences
+    between kernels of equal RMSE.
+    """
+    from terrain.report import sweep_outputs, write_sweep_outputs
+    from terrain.sweep import sweep
+
+    _check_nonneg("--min-size", min_size)
+    if realisations < 1:
+        raise OptionError(f"--realisations must be >= 1, got {realisations}")
+    if workers is not None and workers < 1:
+        raise OptionError(f"--workers must be >= 1, got {workers}")
+    d = _read(dem, {"band": band, "bbox": None})
+    k = "peaks" if kind == "peaks" else "pits"
+    thr = 3 * max(levels) if min_size is None else min_size
+    if base is None:
+        base = float(np.nanmin(d.z[~d.nodata]))
+    settings = CreditSettings(k, threshold=float(thr), weight=weight,
+                              connectivity=int(connectivity), base=float(base))
+    out = prepare_outdir(outdir, sweep_outputs(), overwrite=overwrite)
+    if not quiet:
+        click.echo(f"cairn sweep: {len(kernels)} kernel(s) x {len(levels)} level(s) x "
+                   f"{realisations} realisations, minimum size {thr:g}, seed {seed}", err=True)
+    with progress_bar(enabled=not quiet and sys.stderr.isatty(), label="sweep") as bar:
+        result = sweep(d, settings, rmses=levels, kernels=kernels, realisations=realisations,
+                       seed=seed, workers=workers, scheduler=scheduler, progress=bar)
+    write_sweep_outputs(out, result, kind=k, input_path=str(dem), settings=settings, rmses=levels,
+                        kernels=kernels)
+    if not quiet:
+        print_sensitivity(result, outdir=out, caution=CAUTION)
 
 
 @cli.command("demo", epilog="\b\n" + CAUTION)

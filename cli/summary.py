@@ -52,3 +52,34 @@ def print_catchments(rows: dict, *, n: int, outdir, caution: str) -> None:
     console.print(t)
     console.print(f"outputs in {outdir}")
     console.print(f"[italic]{caution}[/italic]")
+
+
+def print_sensitivity(result, *, outdir, caution: str) -> None:
+    """Per level and kernel pair: layer differences and the largest p_first difference."""
+    from rich.console import Console
+    from rich.table import Table
+
+    sens = result.sensitivity
+    console = Console(file=sys.stdout, width=120)
+    if not sens["rmse"]:
+        console.print(f"one kernel: no kernel sensitivity to report; outputs in {outdir}")
+        console.print(f"[italic]{caution}[/italic]")
+        return
+    t = Table(title="Kernel sensitivity (equal RMSE)", title_justify="left")
+    for col in ("rmse", "kernels", "layer max |Δ| ± se", "layer mean |Δ|", "noise floor",
+                "max |Δ p_first| ± se (feature)"):
+        t.add_column(col, justify="right")
+    keys = list(dict.fromkeys(zip(sens["rmse"], sens["kernel_a"], sens["kernel_b"])))
+    for key in keys:
+        idx = [i for i, k in enumerate(zip(sens["rmse"], sens["kernel_a"], sens["kernel_b"]))
+               if k == key]
+        j = max(idx, key=lambda i: abs(sens["p_first_diff"][i]))
+        i0 = idx[0]
+        t.add_row(f"{key[0]:g}", f"{key[1]}–{key[2]}",
+                  f"{sens['layer_max_abs_diff'][i0]:.3g} ± {sens['layer_max_abs_diff_se'][i0]:.2g}",
+                  f"{sens['layer_mean_abs_diff'][i0]:.3g}", f"{sens['layer_noise_floor'][i0]:.2g}",
+                  f"{abs(sens['p_first_diff'][j]):.3f} ± {sens['p_first_diff_se'][j]:.3f} "
+                  f"(#{sens['feature_id'][j]})")
+    console.print(t)
+    console.print(f"outputs in {outdir}")
+    console.print(f"[italic]{caution}[/italic]")

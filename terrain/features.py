@@ -108,7 +108,7 @@ def first_indicator(figures: np.ndarray, present: np.ndarray) -> np.ndarray:
 
 
 def feature_table(dem: Dem, labels: np.ndarray, n_features: int, credit: np.ndarray,
-                  col_credit: np.ndarray, log: dict, n_real: int, *, base: float) -> dict:
+                  col_credit: np.ndarray | None, log: dict, n_real: int, *, base: float) -> dict:
     """Per-feature statistics over realisations (columns :data:`COLUMNS`).
 
     Returns a dict of equal-length arrays, one entry per feature, in

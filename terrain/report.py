@@ -205,3 +205,32 @@ def _write_quicklook(dest: Path, res: Attribution, table: dict, frames: dict, ma
                     polygons=poly, labels=labels, show=show)
     with atomic_path(dest) as tmp:
         fig.savefig(tmp, format="png")
+
+
+def sweep_outputs() -> list[str]:
+    return ["sweep.csv", "kernel_sensitivity.csv", "sweep.png", "run.json"]
+
+
+def write_sweep_outputs(outdir: str | Path, result, *, kind: str, input_path: str | None,
+                        settings, rmses, kernels, command: str = "sweep") -> None:
+    """Write ``sweep.csv``, ``kernel_sensitivity.csv``, ``sweep.png`` and ``run.json``."""
+    import pandas as pd
+
+    from .sweep import SENSITIVITY_COLUMNS, SWEEP_COLUMNS, sweep_figure
+
+    out = Path(outdir)
+    created = _dt.datetime.now(_dt.timezone.utc)
+    any_run = next(iter(result.runs.values()))
+    with atomic_path(out / "sweep.csv") as tmp:
+        pd.DataFrame({c: result.rows[c] for c in SWEEP_COLUMNS}).to_csv(tmp, index=False)
+    with atomic_path(out / "kernel_sensitivity.csv") as tmp:
+        pd.DataFrame({c: result.sensitivity[c] for c in SENSITIVITY_COLUMNS}).to_csv(tmp, index=False)
+    fig = sweep_figure(result, kind=kind, units=any_run.dem.vertical_units or "DEM units")
+    with atomic_path(out / "sweep.png") as tmp:
+        fig.savefig(tmp, format="png")
+    run = provenance(any_run, input_path=input_path, command=command, created=created,
+                     parameters={"kind": kind, **dict(settings.__dict__), "rmse_levels": list(rmses),
+                                 "kernels": list(kernels), "draw": "quantile (common random numbers)",
+                                 "features": int(result.n_features), "top_features": result.top})
+    run["execution"] = {f"{k}@{r:g}": res.info for (k, r), res in result.runs.items()}
+    write_json(out / "run.json", run)

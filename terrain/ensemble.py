@@ -216,6 +216,29 @@ _RUNNERS = {"serial": _serial, "processes": _processes, "dask": _dask}
 # ----------------------------------------------------------------------------
 # the run
 # ----------------------------------------------------------------------------
+def _catch_sigint(flag: dict):
+    """While a run is in progress, Ctrl-C only sets ``flag["interrupted"]``.
+
+    The run then stops at the next chunk boundary, saves its checkpoint and
+    raises :class:`RunInterrupted` (an interrupt inside compiled code would
+    otherwise surface as a SystemError). A second Ctrl-C interrupts at once.
+    Returns a function restoring the previous handler.
+    """
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return lambda: None
+    previous = signal.getsignal(signal.SIGINT)
+
+    def handler(signum, frame):
+        flag["interrupted"] = True
+        signal.signal(signal.SIGINT, signal.default_int_handler)
+
+    signal.signal(signal.SIGINT, handler)
+    return lambda: signal.signal(signal.SIGINT, previous)
+
+
 def run_params(dem: Dem, job, model: ErrorModel, seed: int, scale: float | None = None) -> dict:
     """The parameters that define a run's realisations (not their number)."""
     return {"version": __version__, "dem_checksum": dem.checksum(), "seed": int(seed),
@@ -377,10 +400,10 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200,
     stopped_early = False
     pending: dict[int, tuple] = {}
     last_ckpt = acc.n
-    flag = {"stop": False}
+    flag = {"stop": False, "interrupted": False}
 
     def should_stop():
-        return flag["stop"]
+        return flag["stop"] or flag["interrupted"]
 
     def check_target():
         if target_se is None or acc.n < min_realisations:
@@ -395,6 +418,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200,
     if progress:
         progress(acc.n, realisations)
     runner = _RUNNERS[backend](ctx, chunks, workers, scheduler, should_stop)
+    restore = _catch_sigint(flag)
     try:
         for a, b, log, counts in runner:
             pending[a] = (b, log, counts)
@@ -412,11 +436,16 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200,
                         flag["stop"] = stopped_early = True
             if flag["stop"] or acc.n >= realisations:
                 flag["stop"] = True
+            if flag["interrupted"]:
+                raise KeyboardInterrupt
+        if flag["interrupted"] and acc.n < realisations and not stopped_early:
+            raise KeyboardInterrupt
     except KeyboardInterrupt:
         if checkpoint is not None:
             save_checkpoint(checkpoint, acc, params)
         raise RunInterrupted(acc.n, str(checkpoint) if checkpoint is not None else None) from None
     finally:
+        restore()
         close = getattr(runner, "close", None)
         if close:
             close()

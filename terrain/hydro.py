@@ -165,7 +165,7 @@ def fill_depressions(z: np.ndarray, *, epsilon: bool = False, mask: np.ndarray |
     Examples
     --------
     >>> z = np.array([[5, 5, 5], [5, 1, 5], [5, 4, 5]], dtype=float)
-    >>> fill_depressions(z)[1, 1]
+    >>> float(fill_depressions(z)[1, 1])
     4.0
     """
     z = np.asarray(z, dtype=np.float64)

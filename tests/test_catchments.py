@@ -198,3 +198,30 @@ def test_catchments_identical_across_backends():
         for u, v in zip(a.layers[name], b.layers[name]):
             assert np.array_equal(u, v)
     assert np.array_equal(a.log["area"], b.log["area"])
+
+
+def test_cli_outlet_on_nodata(tmp_path, cairn):
+    z, cell = _valley(20, 21)
+    z[5, 5] = -9999
+    from rasterio.transform import from_origin
+
+    dem = write_tif(tmp_path / "v.tif", z.astype(np.float32), nodata=-9999,
+                    transform=from_origin(0.0, 200.0, 10.0, 10.0))
+    (tmp_path / "o.csv").write_text("id,x,y\nhole,55,145\n")
+    code, _, err = cairn("catchments", dem, "--outlets", tmp_path / "o.csv", "-o", tmp_path / "out",
+                         "--rmse", "0.1", "-n", "2", "--workers", "1")
+    assert code == 2 and "nodata" in err and "hole" in err and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 7), (7, 1)])
+def test_cli_catchments_tiny_rasters(tmp_path, cairn, shape):
+    from rasterio.transform import from_origin
+
+    dem = write_tif(tmp_path / "t.tif", np.full(shape, 5.0, np.float32),
+                    transform=from_origin(0.0, 10.0 * shape[0], 10.0, 10.0))
+    (tmp_path / "o.csv").write_text("x,y\n5,5\n")
+    code, _, err = cairn("catchments", dem, "--outlets", tmp_path / "o.csv", "-o", tmp_path / "out",
+                         "--rmse", "0.1", "-n", "2", "--workers", "1", "-q")
+    assert code == 0, err
+    assert (tmp_path / "out" / "catchments.gpkg").exists()

@@ -110,11 +110,11 @@ def test_bad_options_one_line_exit_2(cairn, dem_tif, tmp_path, args, needle):
 
 
 def test_help_has_example_and_caution(cairn):
-    for cmd in ("peaks", "depressions", "demo", "inspect"):
+    for cmd in ("peaks", "depressions", "catchments", "sweep", "demo", "inspect"):
         code, out, _ = cairn(cmd, "--help")
         assert code == 0 and "Example" in out
         if cmd != "inspect":
-            assert "licensed professionals" in out
+            assert "licensed" in out and "Caution" in out
 
 
 def test_inspect(cairn, dem_tif):

@@ -20,13 +20,7 @@ import statistics
 import time
 
 import numpy as np
-from scipy.ndimage import gaussian_filter
-
-
-def terrain(n, seed=0):
-    rng = np.random.default_rng(seed)
-    z = sum(gaussian_filter(rng.standard_normal((n, n)), s) * s for s in (4, 16, 64))
-    return (z * 100).astype(np.float32)
+from common import terrain
 
 
 def main():

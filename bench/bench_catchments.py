@@ -12,27 +12,9 @@ Run:  python bench/bench_catchments.py [--side 1024]
 from __future__ import annotations
 
 import argparse
-import statistics
-import time
 
 import numpy as np
-from scipy.ndimage import gaussian_filter
-
-
-def terrain(n, seed=0):
-    rng = np.random.default_rng(seed)
-    z = sum(gaussian_filter(rng.standard_normal((n, n)), s) * s for s in (4, 16, 64))
-    return (z * 100).astype(np.float32)
-
-
-def median_time(fn, repeat=3):
-    fn()
-    ts = []
-    for _ in range(repeat):
-        t = time.perf_counter()
-        fn()
-        ts.append(time.perf_counter() - t)
-    return statistics.median(ts)
+from common import median_time, terrain
 
 
 def main():

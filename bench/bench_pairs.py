@@ -13,30 +13,12 @@ Run:  python bench/bench_pairs.py [--sizes 512,1024,2048] [--repeat 3]
 from __future__ import annotations
 
 import argparse
-import statistics
 import subprocess
 import sys
 import tempfile
-import time
 
 import numpy as np
-from scipy.ndimage import gaussian_filter
-
-
-def terrain(n, seed=0):
-    rng = np.random.default_rng(seed)
-    z = sum(gaussian_filter(rng.standard_normal((n, n)), s) * s for s in (4, 16, 64))
-    return (z * 100).astype(np.float32)
-
-
-def timeit(fn, repeat):
-    fn()
-    ts = []
-    for _ in range(repeat):
-        t = time.perf_counter()
-        fn()
-        ts.append(time.perf_counter() - t)
-    return statistics.median(ts)
+from common import median_time, terrain
 
 
 def gudhi_ref(z):
@@ -93,10 +75,10 @@ def main():
           f"{'extra B/cell':>13}")
     for n in (int(s) for s in a.sizes.split(",")):
         z = terrain(n)
-        t_sort = timeit(lambda z=z: np.sort(z, axis=None), a.repeat)
-        t_gudhi = timeit(lambda z=z: gudhi_ref(z), a.repeat)
+        t_sort = median_time(lambda z=z: np.sort(z, axis=None), a.repeat)
+        t_gudhi = median_time(lambda z=z: gudhi_ref(z), a.repeat)
         for kind in ("peaks", "pits"):
-            t = timeit(lambda z=z, kind=kind: pairs(z, kind=kind), a.repeat)
+            t = median_time(lambda z=z, kind=kind: pairs(z, kind=kind), a.repeat)
             mem = extra_bytes_per_cell(z, kind)
             print(f"{n:>5}² {kind:>5} {t:8.3f} {t_gudhi / t:11.1f}x {t / t_sort:10.1f}x {mem:13.1f}",
                   flush=True)

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .credit import proportion
+from .credit import concat_logs, proportion
 from .dem import Dem
 from .errors import OutletError
 from .hydro import _divides, _membership, _snap, flow
@@ -155,9 +155,7 @@ class CatchmentAccumulator:
         self.n += n
 
     def log(self) -> dict:
-        if not self.logs:
-            return {k: np.empty(0) for k in LOG_FIELDS}
-        return {k: np.concatenate([g[k] for g in self.logs]) for k in LOG_FIELDS}
+        return concat_logs(self.logs, LOG_FIELDS)
 
     def layers(self, shape) -> dict:
         out = {}

@@ -166,6 +166,13 @@ def realise(z: np.ndarray, sampler: ErrorSampler, settings: CreditSettings, seed
     }
 
 
+def concat_logs(logs: list[dict], fields) -> dict:
+    """Concatenate per-chunk logs field by field (empty arrays when none)."""
+    if not logs:
+        return {k: np.empty(0) for k in fields}
+    return {k: np.concatenate([g[k] for g in logs]) for k in fields}
+
+
 def proportion(count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
     """Share and its Monte Carlo standard error sqrt(p(1-p)/N)."""
     p = count / max(n, 1)
@@ -252,9 +259,7 @@ class Accumulator:
 
     def log(self) -> dict:
         """All logged pairs so far, concatenated."""
-        if not self.logs:
-            return {k: np.empty(0) for k in LOG_FIELDS}
-        return {k: np.concatenate([g[k] for g in self.logs]) for k in LOG_FIELDS}
+        return concat_logs(self.logs, LOG_FIELDS)
 
     def layers(self, shape) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         """Each layer's mean and standard error, reshaped to the grid."""

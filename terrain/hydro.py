@@ -29,6 +29,8 @@ import math
 import numpy as np
 from numba import njit
 
+from .persistence import _is_edge
+
 __all__ = ["fill_depressions", "flow", "Flow"]
 
 _DR = np.array([-1, -1, -1, 0, 0, 1, 1, 1], np.int64)
@@ -98,13 +100,7 @@ def _priority_flood(z, valid, nr, nc, eps, filled):
             if not valid[i]:
                 filled[i] = np.nan
                 continue
-            edge = r == 0 or c == 0 or r == nr - 1 or c == nc - 1
-            if not edge:
-                for k in range(8):
-                    if not valid[(r + _DR[k]) * nc + c + _DC[k]]:
-                        edge = True
-                        break
-            if edge:
+            if _is_edge(valid, r, c, nr, nc, _DR, _DC):
                 closed[i] = True
                 filled[i] = z[i]
                 size = _push(hv, hi, size, z[i], i)
@@ -229,13 +225,7 @@ def _route_flats(filled, valid, nr, nc, rec):
             i = r * nc + c
             if not valid[i]:
                 continue
-            seed = rec[i] >= 0 or r == 0 or c == 0 or r == nr - 1 or c == nc - 1
-            if not seed:
-                for k in range(8):
-                    if not valid[(r + _DR[k]) * nc + c + _DC[k]]:
-                        seed = True
-                        break
-            if seed:
+            if rec[i] >= 0 or _is_edge(valid, r, c, nr, nc, _DR, _DC):
                 done[i] = True
                 queue[m] = i
                 m += 1

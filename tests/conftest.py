@@ -7,6 +7,30 @@ import pytest
 from scipy.ndimage import gaussian_filter
 
 
+def exact_p_higher_first(kernel, sigma, delta):
+    """P(e1 - e2 > -delta) for iid kernel errors of standard deviation sigma: the
+    probability that the higher of two summits (heights a + delta, a) stays higher.
+
+    Gaussian: Phi(delta / (sigma sqrt 2)) (difference of two normals; scipy.stats).
+    Compact kernels: int K(x) F(x + delta) dx by numerical integration (scipy.integrate).
+    """
+    import math
+
+    from scipy import integrate, stats
+
+    from terrain.noise import kernel_halfwidth, kernel_pdf
+
+    if kernel == "gaussian":
+        return stats.norm.cdf(delta / (sigma * math.sqrt(2)))
+    h = kernel_halfwidth(kernel, sigma)
+
+    def cdf(t):
+        t = min(max(t, -h), h)
+        return integrate.quad(lambda u: kernel_pdf(kernel, u, h), -h, t)[0]
+
+    return integrate.quad(lambda x: kernel_pdf(kernel, x, h) * cdf(x + delta), -h, h, limit=200)[0]
+
+
 def smooth_terrain(shape, seed=0, scales=(2, 6, 18), amp=100.0, dtype=np.float32):
     """Sum of Gaussian-filtered white noise at several scales (a generic test surface)."""
     rng = np.random.default_rng(seed)

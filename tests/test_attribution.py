@@ -16,15 +16,14 @@ import threading
 
 import numpy as np
 import pytest
-from scipy import integrate, stats
 
 from terrain.credit import CreditSettings
 from terrain.dem import Dem
 from terrain.ensemble import RunInterrupted, attribute
 from terrain.errors import CheckpointError
-from terrain.noise import ErrorModel, kernel_halfwidth, kernel_lipschitz, kernel_pdf
+from terrain.noise import ErrorModel, kernel_halfwidth, kernel_lipschitz
 
-from .conftest import smooth_terrain
+from .conftest import exact_p_higher_first, smooth_terrain
 
 
 def two_summits(a=50.0, delta=0.5, shape=(15, 31), ridge=None):
@@ -45,20 +44,6 @@ def p_higher_first(res, high):
     return np.mean(log["birth"][ess] == high)
 
 
-def exact_p(kernel, sigma, delta):
-    """P(e1 - e2 > -delta) for iid kernel errors of standard deviation sigma."""
-    if kernel == "gaussian":
-        return stats.norm.cdf(delta / (sigma * math.sqrt(2)))  # Phi(delta / (sigma sqrt 2))
-    h = kernel_halfwidth(kernel, sigma)
-
-    def cdf(t):
-        t = min(max(t, -h), h)
-        return integrate.quad(lambda u: kernel_pdf(kernel, u, h), -h, t)[0]
-
-    # P(e2 - e1 < delta) = int K(x) F(x + delta) dx
-    return integrate.quad(lambda x: kernel_pdf(kernel, x, h) * cdf(x + delta), -h, h, limit=200)[0]
-
-
 @pytest.mark.parametrize("kernel", ["gaussian", "triangular", "epanechnikov"])
 def test_two_summits_converge_to_exact_probability(kernel):
     sigma, delta, n = 1.0, 0.6, 1500
@@ -66,7 +51,7 @@ def test_two_summits_converge_to_exact_probability(kernel):
     res = attribute(Dem.from_array(z), CreditSettings("peaks", threshold=5.0, kernel=kernel),
                     ErrorModel(rmse=sigma, kernel=kernel), realisations=n, seed=11, backend="serial")
     p = p_higher_first(res, high)
-    want = exact_p(kernel, sigma, delta)
+    want = exact_p_higher_first(kernel, sigma, delta)
     assert abs(p - want) <= 4 * math.sqrt(want * (1 - want) / n)
     # both cells stay summits of counted pairs in every realisation
     sp = res.layers["summit_probability"][0].reshape(-1)

@@ -13,30 +13,16 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import integrate, stats
 
 from terrain.credit import CreditSettings
 from terrain.dem import Dem
-from terrain.noise import kernel_halfwidth, kernel_pdf
 from terrain.sweep import sweep
 
-from .conftest import write_tif
+from .conftest import exact_p_higher_first, write_tif
 
 LEVELS = (0.125, 0.25, 0.5, 1.0)
 DELTA = 0.25
 N = 500
-
-
-def exact_p(kernel, sigma, delta):
-    if kernel == "gaussian":
-        return stats.norm.cdf(delta / (sigma * math.sqrt(2)))  # Phi(delta / (sigma sqrt 2))
-    h = kernel_halfwidth(kernel, sigma)
-
-    def cdf(t):
-        t = min(max(t, -h), h)
-        return integrate.quad(lambda u: kernel_pdf(kernel, u, h), -h, t)[0]
-
-    return integrate.quad(lambda x: kernel_pdf(kernel, x, h) * cdf(x + delta), -h, h, limit=200)[0]
 
 
 @pytest.fixture(scope="module")
@@ -63,7 +49,7 @@ def test_p_first_follows_exact_probability_at_every_level(ridge_sweep, kernel):
     _, df, high, _ = ridge_sweep
     for level in LEVELS:
         row = df[(df.kernel == kernel) & (df.rmse == level) & (df.feature_id == high)].iloc[0]
-        want = exact_p(kernel, level, DELTA)
+        want = exact_p_higher_first(kernel, level, DELTA)
         assert abs(row.p_first - want) <= 4 * math.sqrt(want * (1 - want) / N) + 1e-9, level
 
 
@@ -86,7 +72,8 @@ def test_kernel_difference_matches_exact_difference(ridge_sweep):
     for level in LEVELS:
         row = sens[(sens.rmse == level) & (sens.kernel_a == "gaussian")
                    & (sens.kernel_b == "triangular") & (sens.feature_id == high)].iloc[0]
-        want = exact_p("gaussian", level, DELTA) - exact_p("triangular", level, DELTA)
+        want = (exact_p_higher_first("gaussian", level, DELTA)
+                - exact_p_higher_first("triangular", level, DELTA))
         # paired (common random numbers) standard error of the difference
         assert abs(row.p_first_diff - want) <= 4 * row.p_first_diff_se + 2e-3, level
 

@@ -38,6 +38,16 @@ _DC = np.array([-1, 0, 1, -1, 1, -1, 0, 1], np.int64)
 
 
 @njit(cache=True, inline="always")
+def _neighbour(r, c, k, nr, nc):
+    """Flat index of neighbour ``k`` (of 8) of cell (r, c), or -1 off the raster."""
+    rr = r + _DR[k]
+    cc = c + _DC[k]
+    if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+        return -1
+    return rr * nc + cc
+
+
+@njit(cache=True, inline="always")
 def _less(hv, hi, a, b):
     return hv[a] < hv[b] or (hv[a] == hv[b] and hi[a] < hi[b])
 
@@ -119,11 +129,9 @@ def _priority_flood(z, valid, nr, nc, eps, filled):
         level = filled[c0]
         raised = np.nextafter(level, np.inf) if eps else level
         for k in range(8):
-            rr = r0 + _DR[k]
-            cc = cc0 + _DC[k]
-            if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+            j = _neighbour(r0, cc0, k, nr, nc)
+            if j < 0:
                 continue
-            j = rr * nc + cc
             if not valid[j] or closed[j]:
                 continue
             closed[j] = True
@@ -192,11 +200,9 @@ def _d8(filled, valid, nr, nc, wx, hy, rec):
             best = 0.0
             zi = filled[i]
             for k in range(8):
-                rr = r + _DR[k]
-                cc = c + _DC[k]
-                if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+                j = _neighbour(r, c, k, nr, nc)
+                if j < 0:
                     continue
-                j = rr * nc + cc
                 if not valid[j]:
                     continue
                 d = dg if (_DR[k] != 0 and _DC[k] != 0) else (h if _DR[k] != 0 else w)
@@ -236,11 +242,9 @@ def _route_flats(filled, valid, nr, nc, rec):
         r0 = x // nc
         c0 = x - r0 * nc
         for k in range(8):
-            rr = r0 + _DR[k]
-            cc = c0 + _DC[k]
-            if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+            j = _neighbour(r0, c0, k, nr, nc)
+            if j < 0:
                 continue
-            j = rr * nc + cc
             if valid[j] and not done[j] and filled[j] == filled[x]:
                 done[j] = True
                 rec[j] = x
@@ -294,11 +298,9 @@ def _divides(exit_, valid, nr, nc, counts):
                 continue
             e = exit_[i]
             for k in range(8):
-                rr = r + _DR[k]
-                cc = c + _DC[k]
-                if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
+                j = _neighbour(r, c, k, nr, nc)
+                if j < 0:
                     continue
-                j = rr * nc + cc
                 if valid[j] and exit_[j] != e:
                     counts[i] += 1
                     break

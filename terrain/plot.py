@@ -37,7 +37,7 @@ def _nice(x: float) -> float:
 
 def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: float = 0.01,
               polygons=None, labels=None, outlets=None, cmap: str = "magma_r",
-              vmax: float | None = None, show: np.ndarray | None = None):
+              vmax: float | None = None, show: np.ndarray | None = None, contours=None):
     """A map a person can read at a glance.
 
     Parameters
@@ -55,6 +55,8 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
         Marked with a triangle.
     show : (rows, cols) bool array, optional
         Draw the layer only where True (e.g. inside features).
+    contours : sequence of (array, levels, label), optional
+        Contour lines of further layers (e.g. membership probabilities).
 
     Returns
     -------
@@ -86,6 +88,15 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
                    norm=PowerNorm(0.5, vmin=0, vmax=top if top > 0 else 1))
     cb = fig.colorbar(im, cax=cax)
     cb.set_label(units + " (square-root scale)")
+    colours = ["#e76f51", "#2a9d8f", "#e9c46a", "#264653", "#f4a261", "#8338ec"]
+    for n, (arr, levels, label) in enumerate(contours if min(dem.shape) >= 2 else []):
+        a_ = np.where(dem.nodata, np.nan, arr)
+        if np.nanmax(a_) >= min(levels):
+            cs = ax.contour(a_, levels=levels, extent=extent,
+                            origin="upper", colors=colours[n % len(colours)],
+                            linewidths=[0.8, 1.6, 0.8][: len(levels)],
+                            linestyles=["dotted", "solid", "dashed"][: len(levels)])
+            ax.clabel(cs, fmt=lambda v, label=label: f"{label} {v:.0%}", fontsize=7)
     for geom in polygons or []:
         if geom is None:
             continue

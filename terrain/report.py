@@ -171,11 +171,12 @@ def write_catchment_outputs(outdir: str | Path, res: Attribution, *, input_path:
             rows["area_p95_m2"].append(p95)
     gdf = gpd.GeoDataFrame(rows, geometry=geoms, crs=dem.crs)
     write_table(out / "catchments.gpkg", out / "catchments.csv", {"catchments": gdf})
-    polys = [g for g, lv in zip(geoms, rows["level"]) if lv == 0.5]
+    contours = [(res.layers[f"catchment_probability_{oid}"][0], [0.1, 0.5, 0.9], oid)
+                for oid in job.ids]
     fig = quicklook(dem, res.layers["divide_probability"][0],
-                    title=f"drainage-divide probability, 50% catchment outlines — {res.n} "
-                          f"realisations, error {res.model.describe()}",
-                    units="divide probability", polygons=polys, cmap="viridis_r",
+                    title=f"drainage-divide probability; membership contours 10% (dotted), 50%, "
+                          f"90% (dashed)\n{res.n} realisations, error {res.model.describe()}",
+                    units="divide probability", cmap="viridis_r", contours=contours,
                     outlets=[(x, y, oid) for oid, (x, y) in zip(job.ids, job.xy)], vmax=1.0)
     with atomic_path(out / "quicklook.png") as tmp:
         fig.savefig(tmp, format="png")

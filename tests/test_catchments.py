@@ -225,3 +225,16 @@ def test_cli_catchments_tiny_rasters(tmp_path, cairn, shape):
                          "--rmse", "0.1", "-n", "2", "--workers", "1", "-q")
     assert code == 0, err
     assert (tmp_path / "out" / "catchments.gpkg").exists()
+
+
+def test_quicklook_contours_are_not_flipped():
+    from terrain.plot import quicklook
+
+    dem = Dem.from_array(np.zeros((40, 40), np.float32), cellsize=10.0)  # y from 0 (south) to 400
+    layer = np.zeros((40, 40))
+    layer[2:10, 2:10] = 1.0  # north-west corner (rows near the top)
+    fig = quicklook(dem, np.zeros((40, 40)), title="t", units="u", contours=[(layer, [0.5], "x")])
+    ax = fig.axes[0]
+    ys = np.concatenate([p.vertices[:, 1] for c in ax.collections for p in c.get_paths()
+                         if len(p.vertices)])
+    assert ys.size and ys.min() > 250  # drawn in the north, where the cells are

@@ -82,14 +82,14 @@ run_options = _compose(
     click.option("--workers", type=int, default=None,
                  help="Worker processes (default: all cores)."),
     click.option("--scheduler", default=None, metavar="ADDRESS",
-                 help="Run on a Dask scheduler, e.g. tcp://10.0.0.5:8786."),
+                 help="Run on a Dask scheduler, e.g. tcp://scheduler-host:8786."),
     click.option("--checkpoint", type=click.Path(dir_okay=False), default=None,
                  help="Save progress to this .npz every 50 realisations and at the end."),
     click.option("--resume", is_flag=True,
                  help="Continue (or extend to --realisations) the run in --checkpoint."),
     click.option("--target-se", type=float, default=None, callback=_positive_float("target-se"),
                  help="Stop early once the largest standard error of the main credit layer "
-                      "(cells with >= 1%% of the top credit) is below this."),
+                      "(cells with >= 1% of the top credit) is below this."),
     click.option("--overwrite", is_flag=True, help="Replace existing outputs."),
     click.option("--quiet", "-q", is_flag=True, help="No progress bar or tables."),
     click.option("--force", is_flag=True, help="Run even when the memory estimate exceeds "

@@ -89,7 +89,7 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     cb = fig.colorbar(im, cax=cax)
     cb.set_label(units + " (square-root scale)")
     colours = ["#e76f51", "#2a9d8f", "#e9c46a", "#264653", "#f4a261", "#8338ec"]
-    for n, (arr, levels, label) in enumerate(contours if min(dem.shape) >= 2 else []):
+    for n, (arr, levels, label) in enumerate((contours or []) if min(dem.shape) >= 2 else []):
         a_ = np.where(dem.nodata, np.nan, arr)
         if np.nanmax(a_) >= min(levels):
             cs = ax.contour(a_, levels=levels, extent=extent,

@@ -108,8 +108,11 @@ def first_indicator(figures: np.ndarray, present: np.ndarray) -> np.ndarray:
 
 
 def feature_table(dem: Dem, labels: np.ndarray, n_features: int, credit: np.ndarray,
-                  col_credit: np.ndarray | None, log: dict, n_real: int, *, base: float) -> dict:
+                  log: dict, n_real: int, *, base: float) -> dict:
     """Per-feature statistics over realisations (columns :data:`COLUMNS`).
+
+    ``credit`` (the main credit layer) locates each feature's most credited
+    cell; everything else comes from the pair log.
 
     Returns a dict of equal-length arrays, one entry per feature, in
     ``feature_id`` order.

@@ -19,7 +19,8 @@ from .ensemble import Attribution
 from .features import feature_frames, feature_table, find_features
 from .io import atomic_path, write_json, write_layer, write_table
 
-__all__ = ["OUTPUTS", "outputs_for", "write_outputs", "file_sha256"]
+__all__ = ["outputs_for", "write_outputs", "write_catchment_outputs", "write_sweep_outputs",
+           "file_sha256"]
 
 _TABLES = {"peaks": ("peaks.gpkg", "summits.csv"), "pits": ("depressions.gpkg", "pits.csv")}
 _DESCRIPTIONS = {
@@ -38,8 +39,6 @@ def outputs_for(kind: str) -> list[str]:
     """File names a run of ``kind`` writes (checked before the run starts)."""
     return [f"{n}.tif" for n in LAYERS[kind]] + list(_TABLES[kind]) + ["quicklook.png", "run.json"]
 
-
-OUTPUTS = {k: outputs_for(k) for k in LAYERS}
 
 
 def file_sha256(path: str | Path) -> str:
@@ -81,8 +80,7 @@ def write_outputs(outdir: str | Path, res: Attribution, *, input_path: str | Non
     main = LAYERS[kind][0]
     labels, k = find_features(res.layers[main][0], dem.nodata,
                               probability=res.layers[LAYERS[kind][2]][0], min_presence=frac)
-    table = feature_table(dem, labels, k, res.layers[main][0], res.layers[LAYERS[kind][1]][0],
-                          res.log, res.n, base=s.base)
+    table = feature_table(dem, labels, k, res.layers[main][0], res.log, res.n, base=s.base)
     frames = feature_frames(dem, table, labels, kind)
     gpkg, csv = _TABLES[kind]
     write_table(out / gpkg, out / csv, frames)

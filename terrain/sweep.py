@@ -93,7 +93,7 @@ def sweep(dem: Dem, settings: CreditSettings, *, rmses, kernels=("gaussian",), r
     rows = {c: [] for c in SWEEP_COLUMNS}
     per_run = {}
     for (kernel, level), res in runs.items():
-        table = feature_table(dem, labels, k, res.layers[main][0], None, res.log, res.n,
+        table = feature_table(dem, labels, k, res.layers[main][0], res.log, res.n,
                               base=settings.base)
         figs, present, _ = feature_figures(labels, k, res.log, res.n, base=settings.base)
         first = first_indicator(figs, present)

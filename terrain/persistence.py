@@ -646,5 +646,5 @@ def pairs_and_fill(z: np.ndarray, *, connectivity: int = 8,
     """
     p, zf, valid, lab, level = pits_and_levels(z, connectivity=connectivity, mask=mask)
     filled = np.empty(zf.size, np.float64)
-    _filled(zf.astype(np.float64), valid, lab, level, filled)
+    _filled(zf, valid, lab, level, filled)
     return p, filled.reshape(np.shape(z))

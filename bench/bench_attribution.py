@@ -26,9 +26,9 @@ from common import terrain
 def main():
     from terrain.credit import Accumulator, CreditSettings, realise
     from terrain.dem import Dem
+    from terrain.engine.persistence import pairs, pits_and_levels
     from terrain.ensemble import attribute
     from terrain.noise import ErrorModel, ErrorSampler
-    from terrain.persistence import pairs, pits_and_levels
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--side", type=int, default=1024)

@@ -30,7 +30,7 @@ def gudhi_ref(z):
 
 
 def _mem_child(path, kind):
-    from terrain.persistence import pairs
+    from terrain.engine.persistence import pairs
 
     z = np.load(path)
     pairs(z[:32, :32], kind=kind)
@@ -69,7 +69,7 @@ def main():
         path, kind = a.mem_child.split(",")
         _mem_child(path, kind)
         return
-    from terrain.persistence import pairs
+    from terrain.engine.persistence import pairs
 
     print(f"{'side':>6} {'kind':>5} {'pairs s':>8} {'gudhi/pairs':>12} {'pairs/sort':>11} "
           f"{'extra B/cell':>13}")

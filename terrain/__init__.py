@@ -5,8 +5,8 @@ return arrays; :mod:`terrain.io` is the only module that opens paths.
 """
 
 from .dem import Dem
+from .engine.persistence import Pairs, pairs
 from .errors import CairnError
-from .persistence import Pairs, pairs
 
 __version__ = "0.1.0"
 

@@ -18,8 +18,8 @@ import numpy as np
 
 from .credit import concat_logs, proportion
 from .dem import Dem
+from .engine.hydro import _divides, _membership, _snap, flow
 from .errors import OutletError
-from .hydro import _divides, _membership, _snap, flow
 
 __all__ = ["CatchmentJob", "prepare_outlets", "CatchmentAccumulator", "catchment_layer_names"]
 

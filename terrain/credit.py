@@ -30,9 +30,9 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
+from .engine.persistence import count_ponding, pairs, pits_and_levels
 from .errors import OptionError
 from .noise import ErrorSampler, kernel_halfwidth, realisation_rng, sample_kernel
-from .persistence import count_ponding, pairs, pits_and_levels
 
 __all__ = ["LAYERS", "LOG_FIELDS", "CreditSettings", "realise", "Accumulator", "layer_units"]
 

@@ -171,7 +171,7 @@ def test_tiny_and_constant_rasters(cairn, tmp_path, shape, cmd):
 
 
 def test_constant_raster_single_summit_by_tie_order():
-    from terrain.persistence import pairs
+    from terrain.engine.persistence import pairs
 
     p = pairs(np.full((3, 3), 5.0), kind="peaks")
     assert p.birth.tolist() == [0]  # first cell in raster order (documented tie order)

@@ -20,11 +20,11 @@ import rasterio
 
 from terrain.catchments import CatchmentJob
 from terrain.dem import Dem
+from terrain.engine.hydro import fill_depressions, flow
+from terrain.engine.persistence import pairs_and_fill
 from terrain.ensemble import run_ensemble
 from terrain.errors import OutletError
-from terrain.hydro import fill_depressions, flow
 from terrain.noise import ErrorModel
-from terrain.persistence import pairs_and_fill
 
 from .conftest import smooth_terrain, write_tif
 

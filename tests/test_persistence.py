@@ -21,7 +21,7 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from scipy import ndimage
 
-from terrain.persistence import pairs, pairs_and_fill
+from terrain.engine.persistence import pairs, pairs_and_fill
 
 from .conftest import smooth_terrain
 
@@ -227,3 +227,70 @@ def test_bad_kind_and_connectivity():
         pairs(np.zeros((2, 2)), kind="hills")
     with pytest.raises(OptionError):
         pairs(np.zeros((2, 2)), kind="pits", connectivity=6)
+
+
+def _brute_edge_limited(a, kind, conn, b, d):
+    """By definition: the component of the birth cell among the valid cells
+    strictly before the death cell in the total order (key, flat index)
+    touches the raster edge or nodata, or the death cell itself does
+    (written here with scipy.ndimage.label, independently of the engine)."""
+    valid = np.isfinite(a)
+    key = np.where(valid, -a if kind == "peaks" else a, np.inf)
+    rows, cols = a.shape
+    idx = np.arange(a.size).reshape(a.shape)
+    structure = np.ones((3, 3)) if conn == 8 else None
+    edge = np.zeros(a.shape, bool)
+    edge[0, :] = edge[-1, :] = edge[:, 0] = edge[:, -1] = True
+    nd = ndimage.binary_dilation(~valid, structure=np.ones((3, 3)) if conn == 8 else None)
+    edge |= nd
+    edge &= valid
+    if d < 0:
+        before = valid
+    else:
+        kd = key.reshape(-1)[d]
+        before = valid & ((key < kd) | ((key == kd) & (idx < d)))
+        if edge.reshape(-1)[d]:
+            return True
+    lab, _ = ndimage.label(before, structure=structure)
+    comp = lab.reshape(-1)[b]
+    return bool(np.any(edge & (lab == comp)))
+
+
+ties_or_holes = st.one_of(st.sampled_from([0.0, 1.0, 2.0, 3.0]), st.just(np.nan))
+
+
+@settings(max_examples=300, deadline=None)
+@given(a=arrays(np.float32, st.tuples(st.integers(3, 8), st.integers(3, 8)), elements=ties_or_holes),
+       kind=st.sampled_from(["peaks", "pits"]), conn=st.sampled_from([4, 8]),
+       outlet=st.booleans())
+def test_edge_limited_is_a_property_of_the_pair(a, kind, conn, outlet):
+    # equal-valued merges (three components meeting at one cell) and nodata holes:
+    # the flag must match the definition whatever order the engine merged in
+    p = pairs(a, kind=kind, connectivity=conn, edge_outlet=outlet)
+    for b, d, e in zip(p.birth, p.death, p.edge_limited):
+        assert bool(e) == _brute_edge_limited(a, kind, conn, int(b), int(d)), (b, d)
+
+
+def test_three_components_meeting_at_one_cell():
+    # found by a random search against the brute-force definition: with
+    # 4-connectivity the pit at (2, 1) dies at (1, 1), where three components
+    # meet; neither cell touches the edge or nodata, but a component that
+    # merged first at the same cell did, and once flagged the pair
+    n = np.nan
+    z = np.array([[n, 2, n, 2], [2, 3, 2, 0], [3, 0, 3, n], [2, 3, 3, 2], [n, 1, 0, 3]],
+                 np.float32)
+    p = pairs(z, kind="pits", connectivity=4, edge_outlet=False)
+    flags = {(int(b), int(d)): bool(e) for b, d, e in zip(p.birth, p.death, p.edge_limited)}
+    assert flags[(9, 5)] is False
+    assert _brute_edge_limited(z, "pits", 4, 9, 5) is False
+
+
+def test_pairs_come_in_canonical_order():
+    z = smooth_terrain((40, 50), seed=8)
+    for kind in ("peaks", "pits"):
+        p = pairs(z, kind=kind)
+        key = (-z if kind == "peaks" else z).reshape(-1)
+        f = ~p.essential
+        d, b = p.death[f], p.birth[f]
+        o = np.lexsort((b, key[b], d, key[d]))
+        assert np.array_equal(o, np.arange(o.size))

@@ -60,18 +60,12 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
-from .errors import OptionError
+from ..errors import OptionError
+from .grid import forward_offsets, is_edge, offsets
 
-__all__ = ["Pairs", "pairs", "KINDS"]
+__all__ = ["Pairs", "pairs", "pits_and_levels", "pairs_and_fill", "count_ponding", "KINDS"]
 
 KINDS = ("peaks", "pits")
-
-_OFF8 = (np.array([-1, -1, -1, 0, 0, 1, 1, 1], np.int64),
-         np.array([-1, 0, 1, -1, 1, -1, 0, 1], np.int64))
-_OFF4 = (np.array([-1, 0, 0, 1], np.int64), np.array([0, -1, 1, 0], np.int64))
-# forward half of each neighbourhood: every undirected pair visited once
-_FWD8 = (np.array([0, 1, 1, 1], np.int64), np.array([1, -1, 0, 1], np.int64))
-_FWD4 = (np.array([0, 1], np.int64), np.array([1, 0], np.int64))
 
 
 @dataclass(frozen=True)
@@ -95,7 +89,11 @@ class Pairs:
         (pits); ``inf`` for an essential class.
     edge_limited : ndarray of bool
         The feature's region at its death level touches the raster edge or
-        nodata, so its figure may change on a larger extent.
+        nodata, so its figure may change on a larger extent. Precisely: the
+        component of the birth cell among the cells strictly before the death
+        cell in the total order holds a cell on the raster edge or next to
+        nodata, or the death cell is such a cell (for an essential class: its
+        component does). This is a property of the pair alone.
     """
 
     kind: str
@@ -238,16 +236,6 @@ def _resolve(valid, lab):
 
 
 @njit(cache=True, inline="always")
-def _is_edge(valid, r, c, nr, nc, dr, dc):
-    if r == 0 or c == 0 or r == nr - 1 or c == nc - 1:
-        return True
-    for k in range(dr.size):
-        if not valid[(r + dr[k]) * nc + c + dc[k]]:
-            return True
-    return False
-
-
-@njit(cache=True, inline="always")
 def _hslot(a, b, mask):
     # each basin's partners share a small region of the table: basins met
     # together in raster order stay together in cache
@@ -341,7 +329,7 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
             if 2 * used > cap:
                 return hk[:0], hk[:0], hk[:0], False
             border = r == 0 or c == 0 or last_row or c == nc - 1
-            if border or (has_nodata and _is_edge(valid, r, c, nr, nc, dr, dc)):
+            if border or (has_nodata and is_edge(valid, r, c, nr, nc, dr, dc)):
                 b0 = -li - 1
                 e = emin[b0]
                 if e < 0 or zk[i] < zk[e] or (zk[i] == zk[e] and i < e):
@@ -375,8 +363,14 @@ def _find(parent, a):
 def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
     """Pass 4: elder-rule union-find over basins, edges in total order.
 
-    Basin ``nb`` is the virtual outlet (born at -inf). Returns the pairs and,
-    per basin, the cell at which its component joined the outlet (-1: never).
+    Basin ``nb`` is the virtual outlet (born at -inf). Edges that share their
+    weight cell ``w`` form one group: every component dying at ``w`` is
+    judged on the component it was just before ``w`` entered the filtration
+    (its first edge cell ``emin`` is updated only when the group ends), so a
+    pair's ``edge_limited`` flag does not depend on the order in which
+    several components meeting at one cell are merged. Returns the pairs
+    and, per basin, the cell at which its component joined the outlet (-1:
+    never).
     """
     nb = minc.size
     out_id = nb
@@ -386,37 +380,51 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
     pb = np.empty(nb, np.int64)
     pd = np.empty(nb, np.int64)
     pe = np.empty(nb, np.bool_)
+    pend_old = np.empty(nb + 1, np.int64)
+    pend_young = np.empty(nb + 1, np.int64)
     npairs = 0
-    for t in range(ew.size):
+    ne = ew.size
+    t = 0
+    while t < ne:
         w = ew[t]
-        ra = _find(parent, ea[t])
-        rb = _find(parent, eb[t])
-        if ra == rb:
-            continue
-        # elder rule: the younger component dies at w
-        if ra == out_id:
-            old, young = ra, rb
-        elif rb == out_id:
-            old, young = rb, ra
-        elif _before(zk, minc[ra], minc[rb]):
-            old, young = ra, rb
-        else:
-            old, young = rb, ra
-        b = minc[young]
-        if zk[b] != zk[w]:
-            r = w // nc
-            e = emin[young]
-            pb[npairs] = b
-            pd[npairs] = w
-            pe[npairs] = (e >= 0 and not _before(zk, w, e)) or _is_edge(
-                valid, r, w - r * nc, nr, nc, dr, dc)
-            npairs += 1
-        parent[young] = old
-        up[young] = old
-        mt[young] = w
-        if old != out_id:
+        r = w // nc
+        w_edge = is_edge(valid, r, w - r * nc, nr, nc, dr, dc)
+        npend = 0
+        while t < ne and ew[t] == w:
+            ra = _find(parent, ea[t])
+            rb = _find(parent, eb[t])
+            t += 1
+            if ra == rb:
+                continue
+            # elder rule: the younger component dies at w
+            if ra == out_id:
+                old, young = ra, rb
+            elif rb == out_id:
+                old, young = rb, ra
+            elif _before(zk, minc[ra], minc[rb]):
+                old, young = ra, rb
+            else:
+                old, young = rb, ra
+            b = minc[young]
+            if zk[b] != zk[w]:
+                e = emin[young]
+                pb[npairs] = b
+                pd[npairs] = w
+                pe[npairs] = (e >= 0 and not _before(zk, w, e)) or w_edge
+                npairs += 1
+            parent[young] = old
+            up[young] = old
+            mt[young] = w
+            pend_old[npend] = old
+            pend_young[npend] = young
+            npend += 1
+        # the group at w is done: components now include what merged at w
+        for q in range(npend):
+            old = pend_old[q]
+            if old == out_id:
+                continue
             eo = emin[old]
-            ey = emin[young]
+            ey = emin[pend_young[q]]
             if ey >= 0 and (eo < 0 or _before(zk, ey, eo)):
                 emin[old] = ey
     # essential classes: surviving roots that never met the outlet
@@ -511,8 +519,8 @@ def _prepare(z, kind, connectivity, mask):
 def _engine(zk, valid, connectivity, outlet):
     nr, nc = zk.shape
     n = nr * nc
-    dr, dc = _OFF8 if connectivity == 8 else _OFF4
-    fr, fc = _FWD8 if connectivity == 8 else _FWD4
+    dr, dc = offsets(connectivity)
+    fr, fc = forward_offsets(connectivity)
     zf = zk.reshape(-1)
     vf = valid.reshape(-1)
     lab = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
@@ -564,9 +572,11 @@ def pairs(z: np.ndarray, *, kind: str, connectivity: int = 8,
     Returns
     -------
     Pairs
-        Finite pairs first, ordered by death in the filtration, then the
-        essential classes (one per connected component of valid cells that
-        never reaches an outlet).
+        Finite pairs first, ordered by death cell in the total order (pairs
+        dying at one cell by birth cell), then the essential classes (one per
+        connected component of valid cells that never reaches an outlet),
+        ordered by birth cell. The order is canonical: it does not depend on
+        how the pairs were computed.
 
     Notes
     -----
@@ -598,6 +608,13 @@ def pairs(z: np.ndarray, *, kind: str, connectivity: int = 8,
 
 def _assemble(z, kind, pb, pd, pe, eb, ee) -> Pairs:
     zf = z.reshape(-1)
+    # canonical order: finite pairs by death, then birth, in the total order;
+    # essential classes by birth
+    key = -zf if kind == "peaks" else zf
+    o = np.lexsort((pb, key[pb], pd, key[pd]))
+    pb, pd, pe = pb[o], pd[o], pe[o]
+    o = np.lexsort((eb, key[eb]))
+    eb, ee = eb[o], ee[o]
     birth = np.concatenate([pb, eb])
     death = np.concatenate([pd, np.full(eb.size, -1, np.int64)])
     bv = zf[birth].astype(np.float64)

@@ -29,12 +29,12 @@ import math
 import numpy as np
 from numba import njit
 
-from .persistence import _is_edge
+from .grid import DC8 as _DC
+from .grid import DR8 as _DR
+from .grid import is_edge as _is_edge
 
 __all__ = ["fill_depressions", "flow", "Flow"]
 
-_DR = np.array([-1, -1, -1, 0, 0, 1, 1, 1], np.int64)
-_DC = np.array([-1, 0, 1, -1, 1, -1, 0, 1], np.int64)
 
 
 @njit(cache=True, inline="always")

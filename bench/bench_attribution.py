@@ -24,11 +24,11 @@ from common import terrain
 
 
 def main():
-    from terrain.credit import Accumulator, CreditSettings, realise
     from terrain.dem import Dem
     from terrain.engine.persistence import pairs, pits_and_levels
-    from terrain.ensemble import attribute
+    from terrain.jobs.credit import CreditAccumulator, CreditJob, realise
     from terrain.noise import ErrorModel, ErrorSampler
+    from terrain.runner import run_ensemble
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--side", type=int, default=1024)
@@ -40,8 +40,8 @@ def main():
     sampler = ErrorSampler(model, z.shape, (30.0, 30.0))
     rows = []
     total_1000 = 0.0
-    for kind in ("peaks", "pits"):
-        s = CreditSettings(kind, threshold=6.0, base=float(z.min()))
+    for kind in ("peaks", "depressions"):
+        s = CreditJob(kind, threshold=6.0, base=float(z.min()))
         perturbed = [z + sampler.draw(0, i) for i in range(4)]
         bare_fn = ((lambda zz: pairs(zz, kind="peaks")) if kind == "peaks"
                    else (lambda zz: pits_and_levels(zz)))
@@ -53,8 +53,8 @@ def main():
                 bare_fn(zz)
             ts.append((time.perf_counter() - t) / len(perturbed))
         t_bare = statistics.median(ts)
-        acc = Accumulator(z.size, s)
-        pond = np.zeros(z.size, np.int32) if kind == "pits" else None
+        acc = CreditAccumulator(z.size, s)
+        pond = np.zeros(z.size, np.int32) if kind == "depressions" else None
         realise(z, sampler, s, 0, 0, pond)
         ts = []
         for _rep in range(3):
@@ -72,7 +72,7 @@ def main():
                 marks.append((time.perf_counter(), done))
 
             t = time.perf_counter()
-            attribute(dem, s, model, realisations=a.n, seed=0, backend=backend, workers=workers,
+            run_ensemble(dem, s, model, realisations=a.n, seed=0, backend=backend, workers=workers,
                       chunk=4, progress=progress)
             # steady state: from the first accumulated chunk to the end
             (t1, d1), (t2, d2) = next(m for m in marks if m[1] > 0), marks[-1]

@@ -20,8 +20,8 @@ from common import median_time, terrain
 def main():
     from skimage.morphology import reconstruction
 
-    from terrain.catchments import CatchmentJob
     from terrain.dem import Dem
+    from terrain.jobs import CatchmentJob
     from terrain.noise import ErrorModel, ErrorSampler
 
     ap = argparse.ArgumentParser()
@@ -34,7 +34,7 @@ def main():
     n = a.side
     cells = np.array([n // 4 * n + n // 4, n // 2 * n + n // 2, 3 * n // 4 * n + n // 3])
     x, y = dem.xy(cells)
-    job = CatchmentJob.for_dem(dem, ["a", "b", "c"], np.column_stack([x, y]), 30.0)
+    job = CatchmentJob(["a", "b", "c"], np.column_stack([x, y]), snap_m=30.0).resolved(dem, model)
     counts = job.new_counts(z.size)
     t_ours = median_time(lambda: job.realise(z, sampler, 0, 1, counts))
     zi = (z + sampler.draw(0, 1)).astype(np.float64)

@@ -4,25 +4,27 @@ from __future__ import annotations
 
 import click
 
-from terrain.io import dem_warnings, read_dem
+from terrain.resources import describe_memory
 
-from .main import cli, guarded
-from .options import band_option, bbox_option
+from . import options
+from .common import guarded
+from .execute import read
+
+__all__ = ["inspect_cmd"]
 
 
-@cli.command("inspect")
+@click.command("inspect")
 @click.argument("dem", type=click.Path(dir_okay=False, path_type=str))
-@band_option
-@bbox_option
+@options.dem_input
 @guarded
 def inspect_cmd(dem, band, bbox):
     """Describe DEM: grid, CRS, cell size, units, nodata and memory per realisation.
 
     \b
     Example:
-      cairn inspect data_demo/hollowmere.tif
+      cairn inspect dem.tif --bbox 512000,6800000,514000,6802000
     """
-    d = read_dem(dem, band=band, bbox=bbox)
+    d = read(dem, {"band": band, "bbox": bbox})
     rows, cols = d.shape
     dx, dy = d.cellsize
     valid = ~d.nodata
@@ -43,15 +45,11 @@ def inspect_cmd(dem, band, bbox):
         ("vertical units", d.vertical_units or "unknown (not declared in the file)"),
         ("nodata", f"{(~valid).mean():.2%} of cells"),
         ("elevation", f"{zv.min():g} to {zv.max():g} (mean {zv.mean():.2f})"),
-        ("memory", f"~{d.realisation_bytes()} bytes per cell per realisation = "
-                   f"{d.realisation_bytes() * rows * cols / 2**20:.1f} MiB per worker, plus "
-                   f"{52 * rows * cols / 2**20:.1f} MiB of accumulators"),
+        ("memory", describe_memory(d)),
     ]
     width = max(len(k) for k, _ in lines)
     for k, v in lines:
         click.echo(f"{k:<{width}}  {v}")
-    for line in dem_warnings(d):
-        click.echo(f"cairn: warning: {line}", err=True)
 
 
 def _crs_name(wkt: str | None) -> str:

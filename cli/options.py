@@ -1,8 +1,26 @@
-"""Options shared by several commands, defined once."""
+"""The options every command shares, each defined once with its help text and units.
+
+Options only parse (text to numbers and lists); every value is validated by
+the library where it enters it, and errors come back naming the flag.
+"""
 
 from __future__ import annotations
 
 import click
+
+from terrain.noise import COVARIANCES, KERNELS
+
+__all__ = ["compose", "accuracy", "error_model", "cutoff", "attribution", "dem_input", "run",
+           "outdir", "RESUME_HELP", "TARGET_SE_HELP"]
+
+
+def compose(*decorators):
+    """Apply several option decorators as one."""
+    def apply(fn):
+        for d in reversed(decorators):
+            fn = d(fn)
+        return fn
+    return apply
 
 
 def _bbox(ctx, param, value):
@@ -17,95 +35,131 @@ def _bbox(ctx, param, value):
     return parts
 
 
-band_option = click.option("--band", type=click.IntRange(min=1), default=None,
-                           help="Band to read (1-based); required for multi-band files.")
-bbox_option = click.option("--bbox", callback=_bbox, default=None, metavar="XMIN,YMIN,XMAX,YMAX",
-                           help="Read only this window (CRS units).")
+def _numbers(ctx, param, value):
+    if value is None:
+        return None
+    try:
+        return [float(v) for v in value.split(",") if v.strip()]
+    except ValueError:
+        raise click.BadParameter("expected comma-separated numbers, e.g. 0.25,0.5,1,2") from None
 
 
-def _positive_float(name):
-    def cb(ctx, param, value):
-        if value is None:
-            return None
-        import math
-
-        if not math.isfinite(value) or value <= 0:
-            raise click.BadParameter(f"must be a positive finite number, got {value}")
-        return value
-    return cb
+def _names(ctx, param, value):
+    return None if value is None else [v.strip() for v in value.split(",") if v.strip()]
 
 
-def _nonneg_float(ctx, param, value):
-    import math
+def accuracy(*, many: bool = False):
+    """--rmse / --le90 / --a95: the DEM's vertical accuracy as its data sheet states it."""
+    kw = dict(callback=_numbers, metavar="V1,V2,...") if many else dict(type=float)
+    texts = {"rmse": "vertical RMSE of the DEM, in its vertical units (metres for most DEMs)",
+             "le90": "linear error at 90% from the data sheet (= 1.6449 x RMSE; vertical units)",
+             "a95": "vertical accuracy at 95% confidence (= 1.9600 x RMSE; vertical units)"}
 
-    if value is not None and (not math.isfinite(value) or value < 0):
-        raise click.BadParameter(f"must be >= 0 and finite, got {value}")
-    return value
+    def text(name):
+        t = texts[name]
+        return f"Error levels to run, comma-separated, each a {t}." if many else \
+            t[0].upper() + t[1:] + "."
+
+    return compose(*(click.option(f"--{name}", **kw, help=text(name)) for name in texts))
 
 
-def _compose(*decorators):
-    def apply(fn):
-        for d in reversed(decorators):
-            fn = d(fn)
-        return fn
-    return apply
+def error_model(*, many_kernels: bool = False):
+    """--kernel, --range, --covariance, --nugget."""
+    kinds = ", ".join(KERNELS)
+    return compose(
+        click.option("--kernel", default="gaussian", show_default=True,
+                     callback=_names if many_kernels else None,
+                     metavar="K1,K2,..." if many_kernels else "KERNEL",
+                     help=(f"Kernels to compare at equal RMSE, comma-separated ({kinds})."
+                           if many_kernels else
+                           f"Distribution of independent per-cell error ({kinds}), scaled so its "
+                           "standard deviation is the RMSE.")),
+        click.option("--range", "range_m", type=float, default=0.0, show_default=True,
+                     help="Practical range of spatially correlated error, in metres; 0 = "
+                          "independent per cell. DEM error is usually spatially correlated: "
+                          "give the range when you know it."),
+        click.option("--covariance", default="exponential", show_default=True,
+                     help=f"Covariance model of correlated error ({', '.join(COVARIANCES)})."),
+        click.option("--nugget", type=float, default=0.0, show_default=True,
+                     help="Share (0 to 1) of the error variance drawn independently per cell "
+                          "when --range > 0."),
+    )
 
 
-accuracy_options = _compose(
-    click.option("--rmse", type=float, callback=_positive_float("rmse"),
-                 help="Vertical RMSE of the DEM (DEM units)."),
-    click.option("--le90", type=float, callback=_positive_float("le90"),
-                 help="Linear error at 90% (= 1.6449 RMSE)."),
-    click.option("--a95", type=float, callback=_positive_float("a95"),
-                 help="Vertical accuracy at 95% confidence (= 1.9600 RMSE)."),
-)
+def cutoff(*kinds: str):
+    """--min-prominence (peaks) and/or --min-depth (depressions), in vertical units."""
+    opts = []
+    if "peaks" in kinds:
+        opts.append(click.option(
+            "--min-prominence", type=float, default=None,
+            help="Count peaks at least this prominent, in the DEM's vertical units "
+                 "[default: 3 x RMSE; in a sweep, 3 x the largest]."))
+    if "depressions" in kinds:
+        opts.append(click.option(
+            "--min-depth", type=float, default=None,
+            help="Count depressions at least this deep, in the DEM's vertical units "
+                 "[default: 3 x RMSE; in a sweep, 3 x the largest]."))
+    return compose(*opts)
 
-error_model_options = _compose(
-    accuracy_options,
-    click.option("--kernel", type=click.Choice(["gaussian", "epanechnikov", "triangular", "uniform"]),
-                 default="gaussian", show_default=True,
-                 help="Distribution of independent per-cell error (scaled to the RMSE)."),
-    click.option("--range", "range_m", type=float, default=0.0, show_default=True,
-                 callback=_nonneg_float,
-                 help="Practical range of spatially correlated error, metres; 0 = independent."),
-    click.option("--covariance", type=click.Choice(["exponential", "gaussian", "spherical"]),
-                 default="exponential", show_default=True, help="Covariance of correlated error."),
-    click.option("--nugget", type=click.FloatRange(0, 1), default=0.0, show_default=True,
-                 help="Share of the error variance drawn independently when --range > 0."),
-)
 
-run_options = _compose(
-    click.option("--realisations", "-n", type=int, default=200, show_default=True,
-                 help="Number of perturbed DEMs (the maximum with --target-se)."),
-    click.option("--seed", type=int, default=0, show_default=True,
-                 help="Seed: the same seed gives the same layers bit for bit."),
-    click.option("--workers", type=int, default=None,
-                 help="Worker processes (default: all cores)."),
-    click.option("--scheduler", default=None, metavar="ADDRESS",
-                 help="Run on a Dask scheduler, e.g. tcp://scheduler-host:8786."),
-    click.option("--checkpoint", type=click.Path(dir_okay=False), default=None,
-                 help="Save progress to this .npz every 50 realisations and at the end."),
-    click.option("--resume", is_flag=True,
-                 help="Continue (or extend to --realisations) the run in --checkpoint."),
-    click.option("--target-se", type=float, default=None, callback=_positive_float("target-se"),
-                 help="Stop early once the largest standard error of the main credit layer "
-                      "(cells with >= 1% of the top credit) is below this."),
-    click.option("--overwrite", is_flag=True, help="Replace existing outputs."),
-    click.option("--quiet", "-q", is_flag=True, help="No progress bar or tables."),
-    click.option("--force", is_flag=True, help="Run even when the memory estimate exceeds "
-                                               "the available memory."),
-)
+base = click.option("--base", type=float, default=None,
+                    help="Level the highest summit's prominence is measured to, in vertical "
+                         "units [default: the lowest valid cell; e.g. 0 for sea level].")
 
-common_options = _compose(error_model_options, band_option, bbox_option, run_options)
-
-attribution_options = _compose(
-    common_options,
+attribution = compose(
     click.option("--threshold-jitter", type=float, default=0.0, show_default=True,
-                 callback=_nonneg_float,
-                 help="Standard deviation of a per-realisation threshold drawn around the "
-                      "minimum prominence/depth (a hard cut-off is another unstable choice)."),
-    click.option("--weight", type=click.Choice(["persistence", "count"]), default="persistence",
-                 show_default=True, help="Credit a pair its prominence/depth, or 1."),
-    click.option("--connectivity", type=click.Choice(["8", "4"]), default="8", show_default=True,
-                 help="Cell neighbourhood."),
+                 help="Standard deviation (vertical units) of a cut-off drawn per realisation "
+                      "around the minimum prominence or depth; 0 = a fixed cut-off."),
+    click.option("--weight", default="persistence", show_default=True,
+                 help="Credit a counted pair its prominence/depth (persistence) or 1 (count)."),
+    click.option("--connectivity", type=int, default=8, show_default=True,
+                 help="Cell neighbourhood: 8 (with diagonals) or 4."),
 )
+
+dem_input = compose(
+    click.option("--band", type=int, default=None,
+                 help="Band to read (1-based); required for multi-band files."),
+    click.option("--bbox", callback=_bbox, default=None, metavar="XMIN,YMIN,XMAX,YMAX",
+                 help="Read only this window, in the DEM's CRS units."),
+)
+
+RESUME_HELP = ("Continue the run saved in --checkpoint (same DEM, seed and options), or extend "
+               "a finished one to -n realisations; replaces that run's outputs.")
+TARGET_SE_HELP = ("Stop early once the run's Monte Carlo standard error is below this: the "
+                  "largest over cells holding >= 1% of the top summit/pit credit, in the DEM's "
+                  "vertical units (catchments: the largest over all probabilities, 0 to 1). "
+                  "-n is then the maximum.")
+
+
+def run(*, per_model: bool = False):
+    """Realisations, seed, workers, scheduler, checkpoints, stopping, overwrite, quiet, force."""
+    return compose(
+        click.option("--realisations", "-n", type=int, default=200, show_default=True,
+                     help="Number of perturbed DEMs (realisations)"
+                          + (" per error model" if per_model else "")
+                          + "; the maximum with --target-se."),
+        click.option("--seed", type=int, default=0, show_default=True,
+                     help="Random seed (a whole number >= 0): the same seed gives the same "
+                          "layers bit for bit."),
+        click.option("--workers", type=int, default=None,
+                     help="Worker processes on this machine [default: all cores]."),
+        click.option("--scheduler", default=None, metavar="ADDRESS",
+                     help="Run on a Dask scheduler at this address, e.g. "
+                          "tcp://scheduler-host:8786."),
+        click.option("--checkpoint", type=click.Path(dir_okay=False), default=None,
+                     help="Save progress to this .npz file every 50 realisations and at the end"
+                          + (" (one file per error model, named after it, beside this path)."
+                             if per_model else ".")),
+        click.option("--resume", is_flag=True, help=RESUME_HELP),
+        click.option("--target-se", type=float, default=None, metavar="SE", help=TARGET_SE_HELP),
+        click.option("--overwrite", is_flag=True,
+                     help="Replace this command's existing outputs in the output folder."),
+        click.option("--quiet", "-q", is_flag=True, help="No progress bar and no tables."),
+        click.option("--force", is_flag=True,
+                     help="Run even when the memory estimate exceeds the available memory."),
+    )
+
+
+outdir = click.option("-o", "--outdir", required=True, type=click.Path(file_okay=True),
+                      help="Output folder (created if missing).")
+

@@ -19,7 +19,7 @@ def print_summary(table: dict, *, kind: str, units: str, n: int, outdir, caution
                       ("p05–p95", "right"), ("P(counted)", "right"), ("P(first)", "right"),
                       ("x", "right"), ("y", "right"), ("elevation", "right"), ("edge", "right")):
         t.add_column(col, justify=just)
-    order = np.argsort(table["rank"], kind="stable")[:top]
+    order = np.argsort(table["rank"].to_numpy(), kind="stable")[:top]
     for i in order:
         t.add_row(str(table["rank"][i]), str(table["feature_id"][i]),
                   f"{table['expected'][i]:.2f} ± {table['se'][i]:.2f}",
@@ -61,7 +61,7 @@ def print_sensitivity(result, *, outdir, caution: str) -> None:
 
     sens = result.sensitivity
     console = Console(file=sys.stdout, width=120)
-    if not sens["rmse"]:
+    if sens.empty:
         console.print(f"one kernel: no kernel sensitivity to report; outputs in {outdir}")
         console.print(f"[italic]{caution}[/italic]")
         return

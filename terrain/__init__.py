@@ -2,12 +2,18 @@
 
 The library behind the ``cairn`` command. Compute functions take arrays and
 return arrays; :mod:`terrain.io` is the only module that opens paths.
+
+>>> from terrain import Dem, CreditJob, ErrorModel, run_ensemble
 """
 
-from .dem import Dem
-from .engine.persistence import Pairs, pairs
-from .errors import CairnError
+__version__ = "0.2.0"
 
-__version__ = "0.1.0"
+from .dem import Dem  # noqa: E402
+from .engine.persistence import Pairs, pairs  # noqa: E402
+from .errors import CairnError  # noqa: E402
+from .jobs import CatchmentJob, CreditJob  # noqa: E402
+from .noise import ErrorModel, rmse_from  # noqa: E402
+from .runner import RunResult, run_ensemble  # noqa: E402
 
-__all__ = ["Dem", "CairnError", "Pairs", "pairs", "__version__"]
+__all__ = ["Dem", "CairnError", "Pairs", "pairs", "CreditJob", "CatchmentJob", "ErrorModel",
+           "rmse_from", "run_ensemble", "RunResult", "__version__"]

@@ -2,16 +2,50 @@
 
 Every error cairn raises on purpose derives from :class:`CairnError`; the
 command line turns exactly these into a one-line message and exit code 2.
-Subclasses also inherit the matching built-in (``ValueError`` or ``OSError``)
-so that library users can catch them the usual way. Code never matches on
-message text: it catches a class.
+Subclasses also inherit the matching built-in (``ValueError``, ``OSError``,
+``MemoryError``) so that library users can catch them the usual way. Code
+never matches on message text: it catches a class.
+
+Messages name library parameters, never command-line flags. A message may
+hold a parameter in braces, ``"{threshold} must be >= 0"``, listed in
+``params``; ``str(exc)`` shows the parameter's own name and a front end shows
+its name for it with :meth:`CairnError.render`.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
+__all__ = [
+    "CairnError", "DemError", "DemNotFoundError", "NotARasterError", "CorruptRasterError",
+    "NoValidCellsError", "BandError", "WindowError", "OptionError", "EmbeddingError",
+    "OutputError", "CheckpointError", "MemoryGuardError", "SchedulerError", "WorkerError",
+    "OutletError",
+]
+
 
 class CairnError(Exception):
-    """Root of all errors raised by cairn on purpose."""
+    """Root of all errors raised by cairn on purpose.
+
+    Parameters
+    ----------
+    message : str
+        One line; parameters named in it as ``{name}`` are listed in ``params``.
+    *params : str
+        Library parameter names that :meth:`render` may relabel.
+    """
+
+    def __init__(self, message: str = "", *params: str):
+        self.template = message
+        self.params = params
+        super().__init__(self.render(lambda p: p))
+
+    def render(self, label: Callable[[str], str]) -> str:
+        """The message with every ``{param}`` replaced by ``label(param)``."""
+        text = self.template
+        for p in self.params:
+            text = text.replace("{" + p + "}", label(p))
+        return text
 
 
 # --- input rasters -----------------------------------------------------------
@@ -45,7 +79,7 @@ class WindowError(DemError, ValueError):
 
 # --- options and models --------------------------------------------------------
 class OptionError(CairnError, ValueError):
-    """An option value is out of range or inconsistent with others."""
+    """A parameter value is out of range or inconsistent with others."""
 
 
 class EmbeddingError(CairnError, ValueError):
@@ -67,6 +101,10 @@ class MemoryGuardError(CairnError, MemoryError):
 
 class SchedulerError(CairnError, OSError):
     """A Dask scheduler could not be reached."""
+
+
+class WorkerError(CairnError, RuntimeError):
+    """Worker processes could not start, or died during a run."""
 
 
 class OutletError(CairnError, ValueError):

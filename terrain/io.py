@@ -21,7 +21,8 @@ from .dem import Dem
 from .errors import BandError, CorruptRasterError, DemNotFoundError, NotARasterError, OutputError, WindowError
 
 __all__ = ["read_dem", "read_outlets", "dem_warnings", "atomic_path", "write_json", "write_layer",
-           "prepare_outdir", "write_table"]
+           "prepare_outdir", "write_frames", "write_csv", "write_figure", "save_npz", "load_npz",
+           "file_sha256", "available_memory"]
 
 
 def read_dem(path: str | os.PathLike, *, band: int | None = None,
@@ -43,48 +44,11 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
     WindowError, NoValidCellsError
         Each message names the file and the problem.
     """
-    import rasterio
-    from rasterio.errors import RasterioIOError
-    from rasterio.windows import from_bounds
-
     p = Path(path)
-    if not p.exists():
-        raise DemNotFoundError(f"{p}: no such file")
-    if p.is_dir() and not any(p.iterdir()):
-        raise NotARasterError(f"{p}: is an empty folder, not a raster")
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        try:
-            ds = rasterio.open(p)
-        except RasterioIOError as exc:
-            raise NotARasterError(f"{p}: not a raster any driver can read ({_short(exc)})") from None
-    with ds:
-        if band is None:
-            if ds.count > 1:
-                names = ", ".join(f"{i}={d or 'unnamed'}" for i, d in
-                                  zip(range(1, ds.count + 1), ds.descriptions))
-                raise BandError(f"{p}: has {ds.count} bands ({names}); choose one with --band")
-            band = 1
-        if not 1 <= band <= ds.count:
-            raise BandError(f"{p}: band {band} does not exist (the file has {ds.count})")
-        window = None
-        if bbox is not None:
-            xmin, ymin, xmax, ymax = bbox
-            l, b, r, t = ds.bounds
-            if not (xmin < xmax and ymin < ymax):
-                raise WindowError(f"{p}: bounding box {bbox} is empty (need xmin<xmax, ymin<ymax)")
-            if xmax <= l or xmin >= r or ymax <= b or ymin >= t:
-                raise WindowError(f"{p}: bounding box {bbox} lies outside the raster "
-                                  f"(bounds {l:g}, {b:g}, {r:g}, {t:g})")
-            window = from_bounds(max(xmin, l), max(ymin, b), min(xmax, r), min(ymax, t),
-                                 ds.transform).round_offsets().round_lengths()
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                arr = ds.read(band, window=window, masked=True)
-        except Exception as exc:  # rasterio raises several classes for damaged files
-            raise CorruptRasterError(f"{p}: pixels cannot be read, file truncated or damaged "
-                                     f"({_short(exc)})") from None
+    with _open_raster(p) as ds:
+        band = _band(p, ds, band)
+        window = _window(p, ds, bbox)
+        arr = _read_band(p, ds, band, window)
         transform = ds.window_transform(window) if window is not None else ds.transform
         crs = ds.crs
         units = ds.units[band - 1] if ds.units and ds.units[band - 1] else None
@@ -92,17 +56,8 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
         dtype = np.dtype(ds.dtypes[band - 1])
     data = np.asarray(arr.data)
     mask = np.ma.getmaskarray(arr)
-    nonfinite = int((~np.isfinite(data) & ~mask).sum()) if data.dtype.kind == "f" else 0
-    if dtype.kind == "f" and dtype.itemsize == 4 or dtype.kind in "iub" and dtype.itemsize <= 2:
-        z = data.astype(np.float32)
-    else:
-        z = data.astype(np.float64)
-    meta = {"dtype": str(dtype), "nodata_value": nodata_value, "nonfinite_cells": nonfinite,
-            "band": band}
-    valid_vals = data[~mask & np.isfinite(data)] if data.size else data
-    if nodata_value is not None and np.isfinite(nodata_value) and valid_vals.size:
-        lo, hi = float(valid_vals.min()), float(valid_vals.max())
-        meta["nodata_in_range"] = bool(lo <= nodata_value <= hi)
+    small = dtype.kind == "f" and dtype.itemsize == 4 or dtype.kind in "iub" and dtype.itemsize <= 2
+    z = data.astype(np.float32 if small else np.float64)
     geographic = bool(crs is not None and crs.is_geographic)
     unit_m = 1.0
     if crs is not None and not geographic:
@@ -110,7 +65,86 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
             unit_m = float(crs.linear_units_factor[1])
     return Dem(z=z, nodata=mask, transform=tuple(transform)[:6],
                crs=crs.to_wkt() if crs is not None else None, geographic=geographic,
-               linear_unit_m=unit_m, vertical_units=units, source=str(p), meta=meta)
+               linear_unit_m=unit_m, vertical_units=units, source=str(p),
+               meta=_meta(data, mask, dtype, nodata_value, band))
+
+
+def _open_raster(p: Path):
+    import rasterio
+    from rasterio.errors import RasterioIOError
+
+    if not p.exists():
+        raise DemNotFoundError(f"{p}: no such file")
+    if p.is_dir() and not any(p.iterdir()):
+        raise NotARasterError(f"{p}: is an empty folder, not a raster")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            return rasterio.open(p)
+        except RasterioIOError as exc:
+            raise NotARasterError(f"{p}: not a raster any driver can read ({_short(exc)})") from None
+
+
+def _band(p: Path, ds, band: int | None) -> int:
+    if band is None:
+        if ds.count > 1:
+            names = ", ".join(f"{i}={d or 'unnamed'}" for i, d in
+                              zip(range(1, ds.count + 1), ds.descriptions))
+            raise BandError(f"{p}: has {ds.count} bands ({names}); choose one with {{band}}",
+                            "band")
+        return 1
+    if not 1 <= band <= ds.count:
+        raise BandError(f"{p}: band {band} does not exist (the file has {ds.count})")
+    return band
+
+
+def _window(p: Path, ds, bbox):
+    from rasterio.windows import from_bounds
+
+    if bbox is None:
+        return None
+    xmin, ymin, xmax, ymax = bbox
+    l, b, r, t = ds.bounds
+    if not (xmin < xmax and ymin < ymax):
+        raise WindowError(f"{p}: bounding box {bbox} is empty (need xmin<xmax, ymin<ymax)")
+    if xmax <= l or xmin >= r or ymax <= b or ymin >= t:
+        raise WindowError(f"{p}: bounding box {bbox} lies outside the raster "
+                          f"(bounds {l:g}, {b:g}, {r:g}, {t:g})")
+    return from_bounds(max(xmin, l), max(ymin, b), min(xmax, r), min(ymax, t),
+                       ds.transform).round_offsets().round_lengths()
+
+
+def _read_band(p: Path, ds, band: int, window):
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return ds.read(band, window=window, masked=True)
+    except Exception as exc:  # rasterio raises several classes for damaged files
+        raise CorruptRasterError(f"{p}: pixels cannot be read, file truncated or damaged "
+                                 f"({_short(exc)})") from None
+
+
+def _meta(data, mask, dtype, nodata_value, band) -> dict:
+    nonfinite = int((~np.isfinite(data) & ~mask).sum()) if data.dtype.kind == "f" else 0
+    meta = {"dtype": str(dtype), "nodata_value": nodata_value, "nonfinite_cells": nonfinite,
+            "band": band}
+    valid_vals = data[~mask & np.isfinite(data)] if data.size else data
+    if nodata_value is not None and np.isfinite(nodata_value) and valid_vals.size:
+        lo, hi = float(valid_vals.min()), float(valid_vals.max())
+        meta["nodata_in_range"] = bool(lo <= nodata_value <= hi)
+    return meta
+
+
+def available_memory() -> int:
+    """MemAvailable from /proc/meminfo (Linux), else physical pages x page size."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_AVPHYS_PAGES")
 
 
 def read_outlets(path: str | os.PathLike, dem: Dem) -> tuple[list[str], np.ndarray]:
@@ -201,22 +235,22 @@ def prepare_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bo
 
     Raises :class:`OutputError` when the path is an existing file, cannot be
     created or written, or when one of ``names`` exists and ``overwrite`` is
-    False (the message lists them and suggests ``--overwrite``).
+    False (the message lists them and names the ``overwrite`` parameter).
     """
     out = Path(outdir)
     if out.exists() and not out.is_dir():
-        raise OutputError(f"{out}: exists and is a file, not a folder; choose another -o")
+        raise OutputError(f"{out}: exists and is a file, not a folder; choose another output folder")
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise OutputError(f"{out}: cannot create the output folder ({exc.strerror})") from None
     if not os.access(out, os.W_OK | os.X_OK):
-        raise OutputError(f"{out}: output folder is not writable; choose another -o")
+        raise OutputError(f"{out}: output folder is not writable; choose another output folder")
     clash = [n for n in names if (out / n).exists()]
     if clash and not overwrite:
         more = f" and {len(clash) - 3} more" if len(clash) > 3 else ""
         raise OutputError(f"{out}: would overwrite {', '.join(clash[:3])}{more}; "
-                          "pass --overwrite to replace them")
+                          "pass {overwrite} to replace them", "overwrite")
     return out
 
 
@@ -303,22 +337,41 @@ def _tag(v) -> str:
     return str(v)
 
 
-def write_table(gpkg: str | os.PathLike | None, csv: str | os.PathLike | None, frames: dict) -> None:
-    """Write GeoDataFrames as layers of one GeoPackage and the first as CSV.
+def write_frames(dest: str | os.PathLike, frames: dict) -> None:
+    """Write data frames as the layers of one GeoPackage, atomically.
 
-    ``frames`` maps layer name to GeoDataFrame; the CSV holds the first
-    frame's columns without geometry.
+    ``frames`` maps layer name to GeoDataFrame.
     """
-    if gpkg is not None:
-        with atomic_path(gpkg) as tmp, warnings.catch_warnings():
-            # a DEM without CRS was already reported once; pyogrio would repeat it
-            warnings.filterwarnings("ignore", "'crs' was not provided", UserWarning)
-            for layer, gdf in frames.items():
-                gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio")
-    if csv is not None:
-        first = next(iter(frames.values()))
-        with atomic_path(csv) as tmp:
-            first.drop(columns="geometry").to_csv(tmp, index=False)
+    with atomic_path(dest) as tmp, warnings.catch_warnings():
+        # a DEM without CRS was already reported once; pyogrio would repeat it
+        warnings.filterwarnings("ignore", "'crs' was not provided", UserWarning)
+        for layer, gdf in frames.items():
+            gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio")
+
+
+def write_csv(dest: str | os.PathLike, frame) -> None:
+    """Write a data frame (without any geometry column) as CSV, atomically."""
+    if "geometry" in getattr(frame, "columns", ()):
+        frame = frame.drop(columns="geometry")
+    with atomic_path(dest) as tmp:
+        frame.to_csv(tmp, index=False)
+
+
+def write_figure(dest: str | os.PathLike, figure) -> None:
+    """Save a matplotlib Figure as PNG, atomically."""
+    with atomic_path(dest) as tmp:
+        figure.savefig(tmp, format="png")
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """SHA-256 of a file's bytes (provenance)."""
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
 
 
 def save_npz(dest: str | os.PathLike, **arrays) -> None:

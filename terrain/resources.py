@@ -2,26 +2,18 @@
 
 from __future__ import annotations
 
-import os
-
 from .dem import Dem
 from .errors import MemoryGuardError
+from .io import available_memory
 
-__all__ = ["available_bytes", "estimate_bytes", "check_memory"]
+__all__ = ["available_bytes", "estimate_bytes", "check_memory", "describe_memory"]
 
 LOG_BYTES_PER_PAIR = 21  # pair log entry on grids below 2**31 cells
 
 
 def available_bytes() -> int:
-    """MemAvailable from /proc/meminfo (Linux), else physical pages x page size."""
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_AVPHYS_PAGES")
+    """Memory available to a new run (see :func:`terrain.io.available_memory`)."""
+    return available_memory()
 
 
 def estimate_bytes(dem: Dem, *, workers: int, realisations: int, pairs_per_real: int = 2000) -> int:
@@ -38,12 +30,22 @@ def estimate_bytes(dem: Dem, *, workers: int, realisations: int, pairs_per_real:
 
 
 def check_memory(dem: Dem, *, workers: int, realisations: int, force: bool = False) -> int:
+    """Estimated bytes of the run; raises :class:`MemoryGuardError` when they exceed
+    the available memory (unless ``force``)."""
     need = estimate_bytes(dem, workers=workers, realisations=realisations)
     have = available_bytes()
     if need > have and not force:
         raise MemoryGuardError(
             f"{dem.source}: the run needs about {need / 2**30:.1f} GiB "
             f"({dem.realisation_bytes()} bytes per cell per worker x {workers} workers) but "
-            f"{have / 2**30:.1f} GiB is available; use --bbox for a smaller window, fewer "
-            "--workers, or --force")
+            f"{have / 2**30:.1f} GiB is available; use {{bbox}} for a smaller window, fewer "
+            "{workers}, or {force}", "bbox", "workers", "force")
     return need
+
+
+def describe_memory(dem: Dem) -> str:
+    """One line on the memory a run on ``dem`` needs (for ``inspect``)."""
+    cells = dem.z.size
+    return (f"~{dem.realisation_bytes()} bytes per cell per realisation = "
+            f"{dem.realisation_bytes() * cells / 2**20:.1f} MiB per worker, plus "
+            f"{52 * cells / 2**20:.1f} MiB of accumulators")

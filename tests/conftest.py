@@ -18,17 +18,18 @@ def exact_p_higher_first(kernel, sigma, delta):
 
     from scipy import integrate, stats
 
-    from terrain.noise import kernel_halfwidth, kernel_pdf
+    from terrain.noise import KERNELS
 
     if kernel == "gaussian":
         return stats.norm.cdf(delta / (sigma * math.sqrt(2)))
-    h = kernel_halfwidth(kernel, sigma)
+    k = KERNELS[kernel]
+    h = k.halfwidth(sigma)
 
     def cdf(t):
         t = min(max(t, -h), h)
-        return integrate.quad(lambda u: kernel_pdf(kernel, u, h), -h, t)[0]
+        return integrate.quad(lambda u: k.pdf(u, h), -h, t)[0]
 
-    return integrate.quad(lambda x: kernel_pdf(kernel, x, h) * cdf(x + delta), -h, h, limit=200)[0]
+    return integrate.quad(lambda x: k.pdf(x, h) * cdf(x + delta), -h, h, limit=200)[0]
 
 
 def smooth_terrain(shape, seed=0, scales=(2, 6, 18), amp=100.0, dtype=np.float32):

@@ -17,11 +17,11 @@ import threading
 import numpy as np
 import pytest
 
-from terrain.credit import CreditSettings
 from terrain.dem import Dem
-from terrain.ensemble import RunInterrupted, attribute
 from terrain.errors import CheckpointError
-from terrain.noise import ErrorModel, kernel_halfwidth, kernel_lipschitz
+from terrain.jobs import CreditJob
+from terrain.noise import KERNELS, ErrorModel
+from terrain.runner import RunInterrupted, run_ensemble
 
 from .conftest import exact_p_higher_first, smooth_terrain
 
@@ -48,8 +48,8 @@ def p_higher_first(res, high):
 def test_two_summits_converge_to_exact_probability(kernel):
     sigma, delta, n = 1.0, 0.6, 1500
     z, low, high = two_summits(delta=delta)
-    res = attribute(Dem.from_array(z), CreditSettings("peaks", threshold=5.0, kernel=kernel),
-                    ErrorModel(rmse=sigma, kernel=kernel), realisations=n, seed=11, backend="serial")
+    res = run_ensemble(Dem.from_array(z), CreditJob("peaks", threshold=5.0),
+                    ErrorModel(rmse=sigma), realisations=n, seed=11, backend="serial")
     p = p_higher_first(res, high)
     want = exact_p_higher_first(kernel, sigma, delta)
     assert abs(p - want) <= 4 * math.sqrt(want * (1 - want) / n)
@@ -67,11 +67,11 @@ def test_stability_bound_while_argmax_flips(kernel):
     z_b = z_a.copy()
     z_b.reshape(-1)[low] += delta  # raise k = 1 cell by delta: the argmax flips
     assert np.argmax(z_a) == high and np.argmax(z_b) == low
-    s = CreditSettings("peaks", threshold=5.0, weight="count", kernel=kernel)
-    m = ErrorModel(rmse=sigma, kernel=kernel)
-    ra = attribute(Dem.from_array(z_a), s, m, realisations=n, seed=3, backend="serial")
-    rb = attribute(Dem.from_array(z_b), s, m, realisations=n, seed=3, backend="serial")  # CRN
-    bound = 1.0 * kernel_lipschitz(kernel, kernel_halfwidth(kernel, sigma)) * k * delta
+    s = CreditJob("peaks", threshold=5.0, weight="count")
+    m = ErrorModel(rmse=sigma)
+    ra = run_ensemble(Dem.from_array(z_a), s, m, realisations=n, seed=3, backend="serial")
+    rb = run_ensemble(Dem.from_array(z_b), s, m, realisations=n, seed=3, backend="serial")  # CRN
+    bound = 1.0 * KERNELS[kernel].lipschitz(KERNELS[kernel].halfwidth(sigma)) * k * delta
     for name in ("summit_credit", "summit_probability"):
         (ea, sa), (eb, sb) = ra.layers[name], rb.layers[name]
         slack = 4 * np.sqrt(sa ** 2 + sb ** 2)
@@ -84,7 +84,7 @@ def test_stability_bound_while_argmax_flips(kernel):
 def _run(backend, **kw):
     z = smooth_terrain((64, 72), seed=9)
     dem = Dem.from_array(z, cellsize=30.0)
-    return attribute(dem, CreditSettings("pits", threshold=2.0), ErrorModel(rmse=1.5, range_m=150,
+    return run_ensemble(dem, CreditJob("depressions", threshold=2.0), ErrorModel(rmse=1.5, range_m=150,
                                                                              nugget=0.2),
                      realisations=24, seed=5, backend=backend, workers=2, **kw)
 
@@ -111,8 +111,8 @@ def test_dask_worker_killed_mid_run_gives_identical_layers():
 
     z = smooth_terrain((96, 96), seed=4)
     dem = Dem.from_array(z, cellsize=30.0)
-    s, m = CreditSettings("peaks", threshold=3.0), ErrorModel(rmse=2.0)
-    ref = attribute(dem, s, m, realisations=60, seed=2, backend="serial")
+    s, m = CreditJob("peaks", threshold=3.0), ErrorModel(rmse=2.0)
+    ref = run_ensemble(dem, s, m, realisations=60, seed=2, backend="serial")
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
                       silence_logs=logging.CRITICAL) as cluster, Client(cluster) as client:
         pids = list(client.run(os.getpid).values())
@@ -123,7 +123,7 @@ def test_dask_worker_killed_mid_run_gives_identical_layers():
                 killed.set()
                 os.kill(pids[0], 9)
 
-        got = attribute(dem, s, m, realisations=60, seed=2, scheduler=cluster.scheduler_address,
+        got = run_ensemble(dem, s, m, realisations=60, seed=2, scheduler=cluster.scheduler_address,
                         chunk=2, progress=progress)
         assert killed.is_set()
     _same(ref, got)
@@ -132,8 +132,8 @@ def test_dask_worker_killed_mid_run_gives_identical_layers():
 def test_checkpoint_resume_and_extend_are_identical(tmp_path):
     z = smooth_terrain((50, 50), seed=2)
     dem = Dem.from_array(z)
-    s, m = CreditSettings("peaks", threshold=2.0), ErrorModel(rmse=1.0)
-    full = attribute(dem, s, m, realisations=40, seed=1, backend="serial")
+    s, m = CreditJob("peaks", threshold=2.0), ErrorModel(rmse=1.0)
+    full = run_ensemble(dem, s, m, realisations=40, seed=1, backend="serial")
     ck = tmp_path / "run.npz"
 
     def interrupt_at(n):
@@ -143,39 +143,39 @@ def test_checkpoint_resume_and_extend_are_identical(tmp_path):
         return cb
 
     with pytest.raises(RunInterrupted) as ei:
-        attribute(dem, s, m, realisations=40, seed=1, backend="serial", chunk=4, checkpoint=ck,
+        run_ensemble(dem, s, m, realisations=40, seed=1, backend="serial", chunk=4, checkpoint=ck,
                   checkpoint_every=8, progress=interrupt_at(12))
     assert ei.value.done == 12 and ck.exists()
-    resumed = attribute(dem, s, m, realisations=40, seed=1, backend="serial", checkpoint=ck,
+    resumed = run_ensemble(dem, s, m, realisations=40, seed=1, backend="serial", checkpoint=ck,
                         resume=True)
     _same(full, resumed)
     # extend a finished 20-realisation run to 40
     ck2 = tmp_path / "short.npz"
-    attribute(dem, s, m, realisations=20, seed=1, backend="serial", checkpoint=ck2)
-    _same(full, attribute(dem, s, m, realisations=40, seed=1, backend="serial", checkpoint=ck2,
+    run_ensemble(dem, s, m, realisations=20, seed=1, backend="serial", checkpoint=ck2)
+    _same(full, run_ensemble(dem, s, m, realisations=40, seed=1, backend="serial", checkpoint=ck2,
                           resume=True))
 
 
 def test_checkpoint_from_another_run_is_refused(tmp_path):
     z = smooth_terrain((30, 30), seed=2)
-    s, m = CreditSettings("peaks", threshold=2.0), ErrorModel(rmse=1.0)
+    s, m = CreditJob("peaks", threshold=2.0), ErrorModel(rmse=1.0)
     ck = tmp_path / "run.npz"
-    attribute(Dem.from_array(z), s, m, realisations=4, seed=1, backend="serial", checkpoint=ck)
+    run_ensemble(Dem.from_array(z), s, m, realisations=4, seed=1, backend="serial", checkpoint=ck)
     with pytest.raises(CheckpointError, match="another DEM"):
-        attribute(Dem.from_array(z + 1), s, m, realisations=8, seed=1, backend="serial",
+        run_ensemble(Dem.from_array(z + 1), s, m, realisations=8, seed=1, backend="serial",
                   checkpoint=ck, resume=True)
     with pytest.raises(CheckpointError, match="seed"):
-        attribute(Dem.from_array(z), s, m, realisations=8, seed=2, backend="serial",
+        run_ensemble(Dem.from_array(z), s, m, realisations=8, seed=2, backend="serial",
                   checkpoint=ck, resume=True)
     ck.write_bytes(b"not an npz")
     with pytest.raises(CheckpointError):
-        attribute(Dem.from_array(z), s, m, realisations=8, seed=1, backend="serial",
+        run_ensemble(Dem.from_array(z), s, m, realisations=8, seed=1, backend="serial",
                   checkpoint=ck, resume=True)
 
 
 def test_adaptive_stopping():
     z, low, high = two_summits(delta=3.0)
-    res = attribute(Dem.from_array(z), CreditSettings("peaks", threshold=5.0),
+    res = run_ensemble(Dem.from_array(z), CreditJob("peaks", threshold=5.0),
                     ErrorModel(rmse=1.0), realisations=2000, seed=4, backend="serial",
                     target_se=0.5, check_every=20)
     assert res.info["stopped_early"] and res.n < 2000 and res.n % 20 == 0
@@ -185,8 +185,8 @@ def test_adaptive_stopping():
 
 def test_credit_conservation_and_threshold_jitter():
     z = smooth_terrain((40, 40), seed=6)
-    s = CreditSettings("pits", threshold=3.0, threshold_jitter=1.0)
-    res = attribute(Dem.from_array(z), s, ErrorModel(rmse=1.0), realisations=30, seed=0,
+    s = CreditJob("depressions", threshold=3.0, threshold_jitter=1.0)
+    res = run_ensemble(Dem.from_array(z), s, ErrorModel(rmse=1.0), realisations=30, seed=0,
                     backend="serial")
     log = res.log
     depth = np.abs(log["birth_value"].astype(float) - log["death_value"])

@@ -18,15 +18,16 @@ import pyogrio
 import pytest
 import rasterio
 
-from terrain.catchments import CatchmentJob
 from terrain.dem import Dem
-from terrain.engine.hydro import fill_depressions, flow
+from terrain.engine.hydro import flow
 from terrain.engine.persistence import pairs_and_fill
-from terrain.ensemble import run_ensemble
 from terrain.errors import OutletError
+from terrain.jobs import CatchmentJob
 from terrain.noise import ErrorModel
+from terrain.runner import run_ensemble
 
 from .conftest import smooth_terrain, write_tif
+from .reference_fill import fill_depressions
 
 
 @pytest.mark.parametrize("seed", range(4))
@@ -91,7 +92,7 @@ def _run_valley(outlets_rc, n=30, rmse=1e-3, seed=0, snap=0.0):
     dem = Dem.from_array(z, cellsize=cell)
     xy = np.array([dem.xy(np.array([r * z.shape[1] + c]))
                    for r, c in outlets_rc]).reshape(-1, 2)
-    job = CatchmentJob.for_dem(dem, [f"o{k}" for k in range(len(outlets_rc))], xy, snap)
+    job = CatchmentJob([f"o{k}" for k in range(len(outlets_rc))], xy, snap_m=snap)
     res = run_ensemble(dem, job, ErrorModel(rmse=rmse), realisations=n, seed=seed, backend="serial")
     return dem, z, res
 
@@ -131,12 +132,12 @@ def test_outlet_edge_cases(tmp_path):
     z[5, 5] = np.nan
     dem = Dem.from_array(z, cellsize=cell)
     with pytest.raises(OutletError, match="outside the raster"):
-        CatchmentJob.for_dem(dem, ["a"], [[-50.0, 10.0]], 10.0)
+        CatchmentJob(["a"], [[-50.0, 10.0]], snap_m=10.0).resolved(dem, ErrorModel(rmse=1.0))
     x, y = dem.xy(np.array([5 * 21 + 5]))
     with pytest.raises(OutletError, match="nodata"):
-        CatchmentJob.for_dem(dem, ["a"], [[x[0], y[0]]], 10.0)
+        CatchmentJob(["a"], [[x[0], y[0]]], snap_m=10.0).resolved(dem, ErrorModel(rmse=1.0))
     with pytest.raises(OutletError, match="no outlet"):
-        CatchmentJob.for_dem(dem, [], np.empty((0, 2)), 10.0)
+        CatchmentJob([], np.empty((0, 2)), snap_m=10.0)
 
 
 def test_cli_catchments_end_to_end(tmp_path, cairn):
@@ -190,7 +191,7 @@ def test_catchments_identical_across_backends():
     z = smooth_terrain((50, 60), seed=11).astype(np.float32)
     dem = Dem.from_array(z, cellsize=10.0)
     x, y = dem.xy(np.array([25 * 60 + 30, 10 * 60 + 12]))
-    job = CatchmentJob.for_dem(dem, ["a", "b"], np.column_stack([x, y]), 20.0)
+    job = CatchmentJob(["a", "b"], np.column_stack([x, y]), snap_m=20.0)
     m = ErrorModel(rmse=0.5, range_m=100.0)
     a = run_ensemble(dem, job, m, realisations=12, seed=4, backend="serial")
     b = run_ensemble(dem, job, m, realisations=12, seed=4, backend="processes", workers=2, chunk=5)
@@ -228,7 +229,7 @@ def test_cli_catchments_tiny_rasters(tmp_path, cairn, shape):
 
 
 def test_quicklook_contours_are_not_flipped():
-    from terrain.plot import quicklook
+    from terrain.outputs.plot import quicklook
 
     dem = Dem.from_array(np.zeros((40, 40), np.float32), cellsize=10.0)  # y from 0 (south) to 400
     layer = np.zeros((40, 40))

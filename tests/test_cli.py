@@ -19,7 +19,7 @@ import pyogrio
 import pytest
 import rasterio
 
-from terrain.features import COLUMNS
+from terrain.summary.features import COLUMNS
 
 from .conftest import smooth_terrain, write_tif
 
@@ -178,3 +178,75 @@ def test_demo_twin_summit_splits_and_knolls_spread(demo_out):
     assert n >= 4 and np.sum(sizes >= 3) >= 4
     pits = pd.read_csv(demo_out / "depressions" / "pits.csv").sort_values("rank")
     assert (pits["p_above"] > 0.75).sum() >= 4  # three kettle hollows and the shallow one
+
+
+# -- one option set for every command (the structure issue) --------------------------
+SHARED = {"--rmse", "--le90", "--a95", "--kernel", "--range", "--covariance", "--nugget",
+          "--band", "--bbox", "--realisations", "--seed", "--workers", "--scheduler",
+          "--checkpoint", "--resume", "--target-se", "--overwrite", "--quiet", "--force"}
+ATTRIBUTION = {"--threshold-jitter", "--weight", "--connectivity"}
+
+
+@pytest.mark.parametrize("name,extra", [("peaks", ATTRIBUTION | {"--min-prominence", "--base"}),
+                                        ("depressions", ATTRIBUTION | {"--min-depth"}),
+                                        ("catchments", {"--snap", "--outlets"}),
+                                        ("sweep", ATTRIBUTION | {"--min-prominence", "--min-depth",
+                                                                 "--base", "--kind"})])
+def test_commands_share_one_option_set(name, extra):
+    from cairn_cli.main import cli
+
+    flags = {o for p in cli.commands[name].params for o in p.opts if o.startswith("--")}
+    assert SHARED | extra <= flags, sorted((SHARED | extra) - flags)
+
+
+def test_run_json_records_the_command_line_and_defaults(cairn, dem_tif, tmp_path):
+    out = tmp_path / "out"
+    code, _, err = cairn("depressions", dem_tif, "-o", out, *COMMON)
+    assert code == 0, err
+    run = json.loads((out / "run.json").read_text())
+    assert run["command_line"].startswith("cairn depressions ") and "--rmse 1.5" in run["command_line"]
+    assert run["parameters"]["threshold"] == pytest.approx(4.5)  # the library default, 3 x RMSE
+    assert "threshold" in run["defaults"] and "RMSE" in run["defaults"]["threshold"]
+    assert run["parameters"]["job"] == "depressions"
+
+
+def test_target_se_stops_early_and_says_its_unit(cairn, dem_tif, tmp_path):
+    out = tmp_path / "out"
+    code, _, err = cairn("peaks", dem_tif, "-o", out, "--rmse", "1", "-n", "2000",
+                         "--target-se", "5", "--workers", "1", "-q")
+    assert code == 0, err
+    run = json.loads((out / "run.json").read_text())
+    assert run["execution"]["stopped_early"] and run["realisations_done"] < 2000
+    assert run["realisations_done"] % 20 == 0 and run["execution"]["stop_statistic"] < 5
+    code, help_text, _ = cairn("peaks", "--help")
+    assert "vertical units" in help_text.split("--target-se SE")[1][:400]
+
+
+def test_resume_says_what_it_needs(cairn, dem_tif, tmp_path):
+    code, _, err = cairn("peaks", dem_tif, "-o", tmp_path / "o", *COMMON, "--resume")
+    assert code == 2 and "--resume needs a --checkpoint file" in err
+    # extending a finished run replaces its outputs without --overwrite
+    ck = tmp_path / "ck.npz"
+    assert cairn("peaks", dem_tif, "-o", tmp_path / "o", *COMMON, "--checkpoint", ck)[0] == 0
+    args = [a if a != "12" else "24" for a in COMMON]
+    code, _, err = cairn("peaks", dem_tif, "-o", tmp_path / "o", *args, "--checkpoint", ck,
+                         "--resume")
+    assert code == 0, err
+    assert json.loads((tmp_path / "o" / "run.json").read_text())["realisations_done"] == 24
+
+
+def test_sweep_takes_the_shared_options(cairn, dem_tif, tmp_path):
+    out = tmp_path / "sw"
+    code, _, err = cairn("sweep", dem_tif, "-o", out, "--kind", "depressions", "--rmse", "0.5,1",
+                         "--range", "60", "--bbox", "500000,6799600,500500,6800000", "-n", "6",
+                         "--workers", "1", "-q", "--checkpoint", tmp_path / "ck.npz")
+    assert code == 0, err
+    run = json.loads((out / "run.json").read_text())
+    assert run["parameters"]["job"] == "depressions"
+    assert [r["error_model"]["rmse"] for r in run["runs"]] == [0.5, 1.0]
+    assert all(r["error_model"]["range_m"] == 60 for r in run["runs"])
+    assert sorted(p.name for p in tmp_path.glob("ck.*.npz")) == ["ck.gaussian-0.5.npz",
+                                                                "ck.gaussian-1.npz"]
+    code, _, err = cairn("sweep", dem_tif, "-o", tmp_path / "x", "--kind", "peaks",
+                         "--rmse", "1", "--min-depth", "2")
+    assert code == 2 and "--min-prominence" in err

@@ -22,13 +22,8 @@ from terrain.noise import (
     ErrorModel,
     ErrorSampler,
     covariance,
-    kernel_halfwidth,
-    kernel_lipschitz,
-    kernel_pdf,
-    kernel_variance,
     realisation_rng,
     rmse_from,
-    sample_kernel,
 )
 
 
@@ -36,21 +31,21 @@ from terrain.noise import (
 def test_kernel_integrates_to_one_with_published_variance(kernel):
     h = 1.7
     lim = 12 * h if kernel == "gaussian" else h
-    mass = integrate.quad(lambda x: kernel_pdf(kernel, x, h), -lim, lim, points=[0])[0]
-    var = integrate.quad(lambda x: x * x * kernel_pdf(kernel, x, h), -lim, lim, points=[0])[0]
+    mass = integrate.quad(lambda x: KERNELS[kernel].pdf(x, h), -lim, lim, points=[0])[0]
+    var = integrate.quad(lambda x: x * x * KERNELS[kernel].pdf(x, h), -lim, lim, points=[0])[0]
     assert mass == pytest.approx(1, abs=1e-9)
     # Silverman (1986): uniform h^2/3, triangular h^2/6, Epanechnikov h^2/5; Gaussian sigma^2
     published = {"uniform": h * h / 3, "triangular": h * h / 6, "epanechnikov": h * h / 5,
                  "gaussian": h * h}[kernel]
     assert var == pytest.approx(published, rel=1e-7)
-    assert kernel_variance(kernel, h) == pytest.approx(published)
+    assert KERNELS[kernel].variance(h) == pytest.approx(published)
 
 
 @pytest.mark.parametrize("kernel", KERNELS)
 def test_samples_follow_the_kernel(kernel):
     rng = np.random.default_rng(1)
-    x = sample_kernel(kernel, rng, 200_000, np.float64)
-    cdf = np.vectorize(lambda t: integrate.quad(lambda u: kernel_pdf(kernel, u, 1.0),
+    x = KERNELS[kernel].sample(rng, 200_000, np.float64)
+    cdf = np.vectorize(lambda t: integrate.quad(lambda u: KERNELS[kernel].pdf(u, 1.0),
                                                 -12 if kernel == "gaussian" else -1, t)[0])
     # Kolmogorov-Smirnov test against the kernel's CDF (scipy.stats.kstest)
     grid = np.linspace(-0.99, 0.99, 41) * (3 if kernel == "gaussian" else 1)
@@ -61,11 +56,11 @@ def test_samples_follow_the_kernel(kernel):
 @pytest.mark.parametrize("kernel", KERNELS)
 def test_kernel_scaled_to_rmse(kernel):
     # the kernel is scaled so that its standard deviation equals the RMSE
-    h = kernel_halfwidth(kernel, 2.0)
-    assert math.sqrt(kernel_variance(kernel, h)) == pytest.approx(2.0)
+    h = KERNELS[kernel].halfwidth(2.0)
+    assert math.sqrt(KERNELS[kernel].variance(h)) == pytest.approx(2.0)
     assert h == pytest.approx(2.0 * {"uniform": math.sqrt(3), "triangular": math.sqrt(6),
                                      "epanechnikov": math.sqrt(5), "gaussian": 1.0}[kernel])
-    e = ErrorSampler(ErrorModel(rmse=2.0, kernel=kernel), (300, 300), (1, 1)).draw(3, 0)
+    e = ErrorSampler(ErrorModel(rmse=2.0), (300, 300), (1, 1)).draw(3, 0)
     assert e.std() == pytest.approx(2.0, rel=0.01)
 
 
@@ -73,9 +68,9 @@ def test_kernel_scaled_to_rmse(kernel):
 def test_lipschitz_constant_is_l1_shift_rate(kernel):
     h, d = 1.3, 1e-4
     lim = 12 * h if kernel == "gaussian" else h + d
-    l1 = integrate.quad(lambda x: abs(kernel_pdf(kernel, x - d, h) - kernel_pdf(kernel, x, h)),
+    l1 = integrate.quad(lambda x: abs(KERNELS[kernel].pdf(x - d, h) - KERNELS[kernel].pdf(x, h)),
                         -lim, lim, points=[0, d, -h, h, h + d, -h + d], limit=200)[0]
-    assert l1 / d == pytest.approx(kernel_lipschitz(kernel, h), rel=1e-3)
+    assert l1 / d == pytest.approx(KERNELS[kernel].lipschitz(h), rel=1e-3)
 
 
 def test_accuracy_conversions():
@@ -131,12 +126,10 @@ def test_embedding_failure_is_reported():
 
 @pytest.mark.parametrize("kernel", KERNELS)
 def test_quantile_inverts_the_cdf(kernel):
-    from terrain.noise import kernel_quantile
-
     u = np.linspace(0.001, 0.999, 37)
     lo = -12 if kernel == "gaussian" else -1
-    x = kernel_quantile(kernel, u)
-    cdf = [integrate.quad(lambda t: kernel_pdf(kernel, t, 1.0), lo, xi)[0] for xi in x]
+    x = KERNELS[kernel].quantile(u)
+    cdf = [integrate.quad(lambda t: KERNELS[kernel].pdf(t, 1.0), lo, xi)[0] for xi in x]
     np.testing.assert_allclose(cdf, u, atol=1e-6)
     # the same uniforms give every kernel: common random numbers, same standard deviation
     e = ErrorSampler(ErrorModel(rmse=2.0, kernel=kernel, draw="quantile"), (300, 300), (1, 1))

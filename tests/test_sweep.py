@@ -14,9 +14,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from terrain.credit import CreditSettings
 from terrain.dem import Dem
-from terrain.sweep import sweep
+from terrain.jobs import CreditJob
+from terrain.noise import ErrorModel
+from terrain.sweep import sweep, sweep_models
 
 from .conftest import exact_p_higher_first, write_tif
 
@@ -34,9 +35,9 @@ def ridge_sweep():
     z[7, 7:24] = 48.0
     z[7, 7], z[7, 23] = 50.0, 50.0 + DELTA
     dem = Dem.from_array(z, cellsize=10.0)
-    s = CreditSettings("peaks", threshold=5.0, weight="count", base=0.0)
-    res = sweep(dem, s, rmses=LEVELS, kernels=("gaussian", "triangular", "epanechnikov"),
-                realisations=N, seed=21, backend="serial")
+    s = CreditJob("peaks", threshold=5.0, weight="count", base=0.0)
+    models = sweep_models(ErrorModel(rmse=1.0), LEVELS, ("gaussian", "triangular", "epanechnikov"))
+    res = sweep(dem, s, models, realisations=N, seed=21, backend="serial")
     df = pd.DataFrame(res.rows)
     fid_high = int(res.labels[7, 23])
     fid_low = int(res.labels[7, 7])
@@ -84,8 +85,8 @@ def test_cli_sweep_writes_tables_and_plot(tmp_path, cairn):
     z[7, 7], z[7, 23] = 50.0, 50.5
     dem = write_tif(tmp_path / "two.tif", z, units="metre")
     code, out, err = cairn("sweep", dem, "-o", tmp_path / "sw", "--kind", "peaks",
-                           "--rmse", "0.25,0.5,1", "--kernels", "gaussian,uniform", "-n", "20",
-                           "--min-size", "5", "--workers", "1")
+                           "--rmse", "0.25,0.5,1", "--kernel", "gaussian,uniform", "-n", "20",
+                           "--min-prominence", "5", "--workers", "1")
     assert code == 0, err
     df = pd.read_csv(tmp_path / "sw" / "sweep.csv")
     assert list(df.columns) == ["kernel", "rmse", "feature_id", "x", "y", "expected", "se",

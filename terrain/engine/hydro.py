@@ -1,11 +1,10 @@
-"""Depression filling, D8 flow, accumulation and outlet catchments (numba).
+"""D8 flow, accumulation and outlet catchments on a filled surface (numba).
 
-Per realisation: depression filling (the raster edge and nodata are exits),
-D8 receivers on the filled surface with flats drained towards their outflow,
-flow accumulation in a topological order, each cell's exit, and outlet
-membership (nested outlets allowed). :func:`fill_depressions` is the
-Priority-Flood reference (plain or +epsilon); realisations take the filled
-surface from the persistence engine, which equals it and is faster.
+Per realisation: the depression-filled surface (from the persistence
+engine's basin fill levels, equal to Priority-Flood filling; the raster edge
+and nodata are exits), D8 receivers on it with flats drained towards their
+outflow, flow accumulation in a topological order, each cell's exit, outlet
+snapping and membership (nested outlets allowed) and divide counts.
 
 Memory per realisation: filled surface (8 bytes per cell), receivers (8),
 topological order (8), accumulation (8), exits (8), flags and queue (9):
@@ -29,156 +28,10 @@ import math
 import numpy as np
 from numba import njit
 
-from .grid import DC8 as _DC
-from .grid import DR8 as _DR
-from .grid import is_edge as _is_edge
+from .grid import DC8, DR8, is_edge, neighbour
 
-__all__ = ["fill_depressions", "flow", "Flow"]
+__all__ = ["flow", "Flow", "snap_to_max", "count_membership", "count_divides"]
 
-
-
-@njit(cache=True, inline="always")
-def _neighbour(r, c, k, nr, nc):
-    """Flat index of neighbour ``k`` (of 8) of cell (r, c), or -1 off the raster."""
-    rr = r + _DR[k]
-    cc = c + _DC[k]
-    if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
-        return -1
-    return rr * nc + cc
-
-
-@njit(cache=True, inline="always")
-def _less(hv, hi, a, b):
-    return hv[a] < hv[b] or (hv[a] == hv[b] and hi[a] < hi[b])
-
-
-@njit(cache=True)
-def _push(hv, hi, size, v, i):
-    k = size
-    hv[k] = v
-    hi[k] = i
-    while k > 0:
-        p = (k - 1) >> 1
-        if _less(hv, hi, k, p):
-            hv[k], hv[p] = hv[p], hv[k]
-            hi[k], hi[p] = hi[p], hi[k]
-            k = p
-        else:
-            break
-    return size + 1
-
-
-@njit(cache=True)
-def _pop(hv, hi, size):
-    i = hi[0]
-    size -= 1
-    hv[0] = hv[size]
-    hi[0] = hi[size]
-    k = 0
-    while True:
-        a = 2 * k + 1
-        if a >= size:
-            break
-        b = a + 1
-        m = b if (b < size and _less(hv, hi, b, a)) else a
-        if _less(hv, hi, m, k):
-            hv[k], hv[m] = hv[m], hv[k]
-            hi[k], hi[m] = hi[m], hi[k]
-            k = m
-        else:
-            break
-    return i, size
-
-
-@njit(cache=True)
-def _priority_flood(z, valid, nr, nc, eps, filled):
-    """Barnes et al. (2014) Priority-Flood (Alg. 2) or Priority-Flood+epsilon (Alg. 3).
-
-    Seeds: valid cells on the raster edge or next to nodata. With ``eps``
-    every raised cell is set one ulp above the cell it was reached from, so
-    flats and filled depressions keep a strict drainage gradient.
-    """
-    n = nr * nc
-    closed = np.zeros(n, np.bool_)
-    hv = np.empty(n, np.float64)
-    hi = np.empty(n, np.int64)
-    pit = np.empty(n, np.int64)
-    size = 0
-    for r in range(nr):
-        for c in range(nc):
-            i = r * nc + c
-            if not valid[i]:
-                filled[i] = np.nan
-                continue
-            if _is_edge(valid, r, c, nr, nc, _DR, _DC):
-                closed[i] = True
-                filled[i] = z[i]
-                size = _push(hv, hi, size, z[i], i)
-    ph = 0
-    pt = 0
-    while size > 0 or ph < pt:
-        if ph < pt and size > 0 and hv[0] == filled[pit[ph]]:
-            c0, size = _pop(hv, hi, size)
-        elif ph < pt:
-            c0 = pit[ph]
-            ph += 1
-        else:
-            c0, size = _pop(hv, hi, size)
-        r0 = c0 // nc
-        cc0 = c0 - r0 * nc
-        level = filled[c0]
-        raised = np.nextafter(level, np.inf) if eps else level
-        for k in range(8):
-            j = _neighbour(r0, cc0, k, nr, nc)
-            if j < 0:
-                continue
-            if not valid[j] or closed[j]:
-                continue
-            closed[j] = True
-            if z[j] <= raised:
-                filled[j] = raised
-                pit[pt] = j
-                pt += 1
-            else:
-                filled[j] = z[j]
-                size = _push(hv, hi, size, z[j], j)
-
-
-def fill_depressions(z: np.ndarray, *, epsilon: bool = False, mask: np.ndarray | None = None) -> np.ndarray:
-    """Fill depressions by Priority-Flood; the edge and nodata are outlets.
-
-    Parameters
-    ----------
-    z : (rows, cols) array
-        Elevations; NaN/inf are nodata.
-    epsilon : bool
-        Priority-Flood+epsilon: raise cells one float64 ulp above their
-        neighbour so that every cell has a strictly lower path to an exit.
-    mask : bool array, optional
-        True marks nodata.
-
-    Returns
-    -------
-    float64 array, NaN on nodata.
-
-    References
-    ----------
-    .. [1] Barnes, R., Lehman, C., Mulla, D. (2014). Priority-flood.
-       Computers & Geosciences 62, 117-127. doi:10.1016/j.cageo.2013.04.024
-
-    Examples
-    --------
-    >>> z = np.array([[5, 5, 5], [5, 1, 5], [5, 4, 5]], dtype=float)
-    >>> float(fill_depressions(z)[1, 1])
-    4.0
-    """
-    z = np.asarray(z, dtype=np.float64)
-    valid = np.isfinite(z)
-    if mask is not None:
-        valid &= ~np.asarray(mask, bool)
-    filled = np.empty(z.size)
-    _priority_flood(z.reshape(-1), valid.reshape(-1), z.shape[0], z.shape[1], epsilon, filled)
-    return filled.reshape(z.shape)
 
 
 @njit(cache=True)
@@ -200,12 +53,12 @@ def _d8(filled, valid, nr, nc, wx, hy, rec):
             best = 0.0
             zi = filled[i]
             for k in range(8):
-                j = _neighbour(r, c, k, nr, nc)
+                j = neighbour(r, c, k, nr, nc, DR8, DC8)
                 if j < 0:
                     continue
                 if not valid[j]:
                     continue
-                d = dg if (_DR[k] != 0 and _DC[k] != 0) else (h if _DR[k] != 0 else w)
+                d = dg if (DR8[k] != 0 and DC8[k] != 0) else (h if DR8[k] != 0 else w)
                 s = (zi - filled[j]) / d
                 if s > best:
                     best = s
@@ -231,7 +84,7 @@ def _route_flats(filled, valid, nr, nc, rec):
             i = r * nc + c
             if not valid[i]:
                 continue
-            if rec[i] >= 0 or _is_edge(valid, r, c, nr, nc, _DR, _DC):
+            if rec[i] >= 0 or is_edge(valid, r, c, nr, nc, DR8, DC8):
                 done[i] = True
                 queue[m] = i
                 m += 1
@@ -242,7 +95,7 @@ def _route_flats(filled, valid, nr, nc, rec):
         r0 = x // nc
         c0 = x - r0 * nc
         for k in range(8):
-            j = _neighbour(r0, c0, k, nr, nc)
+            j = neighbour(r0, c0, k, nr, nc, DR8, DC8)
             if j < 0:
                 continue
             if valid[j] and not done[j] and filled[j] == filled[x]:
@@ -289,7 +142,7 @@ def _topo(rec, valid):
 
 
 @njit(cache=True)
-def _divides(exit_, valid, nr, nc, counts):
+def count_divides(exit_, valid, nr, nc, counts):
     """Add 1 where a cell and at least one 8-neighbour drain to different exits."""
     for r in range(nr):
         for c in range(nc):
@@ -298,7 +151,7 @@ def _divides(exit_, valid, nr, nc, counts):
                 continue
             e = exit_[i]
             for k in range(8):
-                j = _neighbour(r, c, k, nr, nc)
+                j = neighbour(r, c, k, nr, nc, DR8, DC8)
                 if j < 0:
                     continue
                 if valid[j] and exit_[j] != e:
@@ -307,7 +160,7 @@ def _divides(exit_, valid, nr, nc, counts):
 
 
 @njit(cache=True)
-def _snap(acc, cand, cand_ptr):
+def snap_to_max(acc, cand, cand_ptr):
     """Per outlet, the candidate cell of highest accumulation (lowest index on ties)."""
     k = cand_ptr.size - 1
     out = np.empty(k, np.int64)
@@ -324,7 +177,7 @@ def _snap(acc, cand, cand_ptr):
 
 
 @njit(cache=True)
-def _membership(order, rec, snapped, nr, nc, area_row, counts):
+def count_membership(order, rec, snapped, nr, nc, area_row, counts):
     """Add 1 to ``counts[o]`` for every cell draining through outlet ``o``;
     return each outlet's catchment area (nested outlets allowed)."""
     n = rec.size

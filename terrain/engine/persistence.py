@@ -126,6 +126,7 @@ def _before(zk, a, b):
 
 @njit(cache=True, inline="always")
 def _lower(zk, bz, bi, j):
+    """The lower of (value ``bz``, cell ``bi``) and cell ``j`` (ties keep ``bi``)."""
     zj = zk[j]
     if zj < bz:
         return zj, j
@@ -237,6 +238,7 @@ def _resolve(valid, lab):
 
 @njit(cache=True, inline="always")
 def _hslot(a, b, mask):
+    """Home slot of basin pair (a, b) in the open-addressing table."""
     # each basin's partners share a small region of the table: basins met
     # together in raster order stay together in cache
     return (a * 8 + (b & 7)) & mask
@@ -349,6 +351,7 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
 
 @njit(cache=True, inline="always")
 def _find(parent, a):
+    """Union-find root of ``a``, compressing the path."""
     root = a
     while parent[root] != root:
         root = parent[root]
@@ -464,6 +467,7 @@ def _fill_levels(zf, join):
 
 @njit(cache=True)
 def _filled(zf, valid, lab, level, out):
+    """Filled surface: max(z, the fill level of the cell's basin); NaN on nodata."""
     for i in range(zf.size):
         if valid[i]:
             lv = level[-lab[i] - 1]

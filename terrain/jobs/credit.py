@@ -1,4 +1,4 @@
-"""What one realisation contributes, and the streaming means over realisations.
+"""Peaks and depressions: what one realisation contributes, and the streaming means.
 
 For realisation ``i`` the DEM is perturbed, its persistence pairs computed,
 and every pair whose persistence is at or above the (possibly jittered)
@@ -7,7 +7,8 @@ cell (key col / spill point). Weight is the persistence (prominence or
 depth) or 1 (count mode); the essential peak is credited its elevation minus
 the base. A realisation's contribution is *sparse*, so the per-realisation
 output is a compact **pair log** (:data:`LOG_FIELDS`, 21 bytes per logged pair
-on grids below 2**31 cells) plus, for pits, ponding counts added in place.
+on grids below 2**31 cells) plus, for depressions, ponding counts added in
+place.
 
 Credit layers are streaming means with standard errors, accumulated from the
 log strictly in realisation order, so the float sums are the same whatever
@@ -18,140 +19,159 @@ Standard error of a layer: ``sqrt((mean(x^2) - mean(x)^2) / N)``, which for a
 proportion is the Monte Carlo standard error sqrt(p(1-p)/N).
 
 Memory in the accumulating process: 2 x 2 float64 moments + 1 int32 count
-(+ 1 int32 ponding count for pits) + scratch (int32 + float64) = 48-52 bytes
-per cell.
+(+ 1 int32 ponding count for depressions) + scratch (int32 + float64) =
+48-52 bytes per cell.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
 import numpy as np
 from numba import njit
 
-from .engine.persistence import count_ponding, pairs, pits_and_levels
-from .errors import OptionError
-from .noise import ErrorSampler, kernel_halfwidth, realisation_rng, sample_kernel
+from .. import defaults
+from ..dem import Dem
+from ..engine.persistence import count_ponding, pairs, pits_and_levels
+from ..errors import CheckpointError, OptionError
+from ..layers import layer_name, layers_of
+from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
 
-__all__ = ["LAYERS", "LOG_FIELDS", "CreditSettings", "realise", "Accumulator", "layer_units"]
+__all__ = ["KINDS", "LOG_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator", "realise",
+           "log_weights", "concat_logs", "proportion"]
 
-LAYERS = {
-    "peaks": ("summit_credit", "col_credit", "summit_probability"),
-    "pits": ("pit_credit", "spill_credit", "pit_probability", "ponding_probability"),
-}
+KINDS = ("peaks", "depressions")
+FILTRATION = {"peaks": "peaks", "depressions": "pits"}  # the engine's name for each kind
 LOG_FIELDS = ("real", "birth", "death", "birth_value", "death_value", "edge_limited")
 WEIGHTS = ("persistence", "count")
 
 
 @dataclass(frozen=True)
-class CreditSettings:
-    """What a realisation counts and how it weighs it.
+class CreditJob:
+    """What a peaks or depressions realisation counts and how it weighs it.
+
+    ``None`` settings take the library defaults (:mod:`terrain.defaults`)
+    when the run resolves the job against its DEM and error model.
 
     Attributes
     ----------
-    kind : {"peaks", "pits"}
-    threshold : float
-        Minimum prominence (peaks) or depth (pits) of a counted pair, and the
-        minimum ponding depth.
+    kind : {"peaks", "depressions"}
+    threshold : float, optional
+        Minimum prominence (peaks) or depth (depressions) of a counted pair,
+        and the minimum ponding depth. Default: 3 x RMSE.
     threshold_jitter : float
         Standard deviation of the threshold: each realisation draws its own
         from the error model's kernel centred on ``threshold`` (clipped at
         0); 0 = a fixed threshold.
     weight : {"persistence", "count"}
     connectivity : {8, 4}
-    base : float
-        Level the essential peak's prominence is measured to.
-    kernel : str
-        Kernel used for the threshold jitter.
+    base : float, optional
+        Level the essential peak's prominence is measured to. Default: the
+        lowest valid cell (peaks only).
     """
 
     kind: str
-    threshold: float
+    threshold: float | None = None
     threshold_jitter: float = 0.0
     weight: str = "persistence"
     connectivity: int = 8
-    base: float = 0.0
-    kernel: str = "gaussian"
+    base: float | None = None
+    from_defaults: tuple = ()
 
-    # -- the job interface used by terrain.ensemble ------------------------------
+    def __post_init__(self):
+        if self.kind not in KINDS:
+            raise OptionError(f"{{kind}} must be one of {', '.join(KINDS)}, got {self.kind!r}",
+                              "kind")
+        if self.weight not in WEIGHTS:
+            raise OptionError(f"{{weight}} must be one of {', '.join(WEIGHTS)}, got {self.weight!r}",
+                              "weight")
+        if self.connectivity not in (4, 8):
+            raise OptionError(f"{{connectivity}} must be 8 or 4, got {self.connectivity}",
+                              "connectivity")
+        for name in ("threshold", "threshold_jitter"):
+            v = getattr(self, name)
+            if v is not None and not (math.isfinite(v) and v >= 0):
+                raise OptionError(f"{{{name}}} must be >= 0 and finite, got {v}", name)
+        if self.base is not None and not math.isfinite(self.base):
+            raise OptionError(f"{{base}} must be finite, got {self.base}", "base")
+
+    # -- the job interface (terrain.runner.protocols.Job) ---------------------------
     @property
-    def main_layer(self) -> str:
-        return LAYERS[self.kind][0]
+    def name(self) -> str:
+        return self.kind
+
+    @property
+    def layers(self) -> tuple[str, ...]:
+        return tuple(s.name for s in layers_of(self.kind))
+
+    def _defaulted(self) -> tuple[str, ...]:
+        names = ("threshold", "base") if self.kind == "peaks" else ("threshold",)
+        return tuple(n for n in names if getattr(self, n) is None or n in self.from_defaults)
+
+    def resolved(self, dem: Dem, model: ErrorModel) -> CreditJob:
+        """This job with every ``None`` setting replaced by its library default
+        (resolving twice changes nothing)."""
+        return dataclasses.replace(
+            self, threshold=defaults.cutoff(self.threshold, model.rmse),
+            base=defaults.base_level(self.base, dem) if self.kind == "peaks" else None,
+            from_defaults=self._defaulted())
+
+    def defaults_used(self) -> dict:
+        """The settings left to library defaults, with the rule each follows."""
+        return {n: defaults.RULES[n] for n in self._defaulted()}
 
     def describe(self) -> dict:
-        return {"job": "pairs", **self.__dict__}
+        d = dataclasses.asdict(self)
+        d.pop("from_defaults")
+        return {"job": self.kind, **d}
 
     def new_counts(self, n_cells: int) -> dict:
         """Integer per-cell counts a worker adds to (exact in any order)."""
-        return {"ponding": np.zeros(n_cells, np.int32)} if self.kind == "pits" else {}
+        return {"ponding": np.zeros(n_cells, np.int32)} if self.kind == "depressions" else {}
 
-    def realise(self, z, sampler, seed, i, counts, scale=None) -> dict:
-        return realise(z, sampler, self, seed, i, counts.get("ponding"), scale)
+    def realise(self, z, sampler, seed, i, counts) -> dict:
+        return realise(z, sampler, self, seed, i, counts.get("ponding"))
 
-    def accumulator(self, n_cells: int) -> Accumulator:
-        return Accumulator(n_cells, self)
-
-    def __post_init__(self):
-        if self.kind not in LAYERS:
-            raise OptionError(f"kind must be peaks or pits, got {self.kind!r}")
-        if self.weight not in WEIGHTS:
-            raise OptionError(f"--weight must be one of {', '.join(WEIGHTS)}, got {self.weight!r}")
-        for name in ("threshold", "threshold_jitter"):
-            v = getattr(self, name)
-            if not (math.isfinite(v) and v >= 0):
-                raise OptionError(f"{name.replace('_', '-')} must be >= 0 and finite, got {v}")
-        if self.connectivity not in (4, 8):
-            raise OptionError(f"--connectivity must be 8 or 4, got {self.connectivity}")
-        if not math.isfinite(self.base):
-            raise OptionError(f"--base must be finite, got {self.base}")
+    def accumulator(self, n_cells: int) -> CreditAccumulator:
+        return CreditAccumulator(n_cells, self)
 
 
-def layer_units(name: str, vertical_units: str | None, weight: str) -> str:
-    """Units of a layer: probabilities are unitless; credit is in DEM units."""
-    if name.endswith("probability"):
-        return "probability"
-    if weight == "count":
-        return "count"
-    return vertical_units or "DEM units"
-
-
-def realisation_threshold(settings: CreditSettings, seed: int, i: int) -> float:
+def realisation_threshold(job: CreditJob, kernel: Kernel, seed: int, i: int) -> float:
     """The threshold of realisation ``i`` (drawn from its own stream when jittered)."""
-    if settings.threshold_jitter <= 0:
-        return settings.threshold
-    u = float(sample_kernel(settings.kernel, realisation_rng(seed, i, 2), 1, np.float64)[0])
+    if job.threshold_jitter <= 0:
+        return job.threshold
+    u = float(kernel.sample(realisation_rng(seed, i, 2), 1, np.float64)[0])
     # u has unit bandwidth; scale so the threshold's standard deviation is the jitter
-    return max(0.0, settings.threshold + u * kernel_halfwidth(settings.kernel, settings.threshold_jitter))
+    return max(0.0, job.threshold + u * kernel.halfwidth(job.threshold_jitter))
 
 
-def realise(z: np.ndarray, sampler: ErrorSampler, settings: CreditSettings, seed: int, i: int,
-            ponding: np.ndarray | None = None, scale: float | None = None) -> dict:
+def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: int,
+            ponding: np.ndarray | None = None) -> dict:
     """Compute realisation ``i``: perturb, pair, select; return its pair log.
 
     Parameters
     ----------
     z : (rows, cols) float32 array with NaN on nodata
     sampler : ErrorSampler
-    settings : CreditSettings
+    job : CreditJob (resolved)
     seed, i : the run's seed and the realisation index
     ponding : flat int32 array, optional
-        For pits, incremented in place where the cell holds water at least
-        the threshold deep after depression filling.
-    scale : float, optional
-        Error RMSE to use instead of the model's (common random numbers).
+        For depressions, incremented in place where the cell holds water at
+        least the threshold deep after depression filling.
 
     Returns
     -------
     dict of arrays named :data:`LOG_FIELDS`.
     """
-    zi = sampler.draw(seed, i, scale)
+    zi = sampler.draw(seed, i)
     zi += z
-    thr = realisation_threshold(settings, seed, i)
-    if settings.kind == "peaks":
-        p = pairs(zi, kind="peaks", connectivity=settings.connectivity)
+    thr = realisation_threshold(job, sampler.kernel, seed, i)
+    if job.kind == "peaks":
+        p = pairs(zi, kind="peaks", connectivity=job.connectivity)
     else:
-        p, zf, valid, lab, level = pits_and_levels(zi, connectivity=settings.connectivity)
+        p, zf, valid, lab, level = pits_and_levels(zi, connectivity=job.connectivity)
         if ponding is not None:
             count_ponding(zf, valid, lab, level, thr, ponding)
     keep = p.persistence >= thr
@@ -179,14 +199,15 @@ def proportion(count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
     return p, np.sqrt(p * (1 - p) / max(n, 1))
 
 
-def log_weights(log: dict, weight: str, base: float) -> np.ndarray:
+def log_weights(log: dict, weight: str, base: float | None) -> np.ndarray:
     """Weight of each logged pair: persistence (essential: elevation - base) or 1."""
     if weight == "count":
         return np.ones(log["birth"].size)
     bv = log["birth_value"].astype(np.float64)
     dv = log["death_value"].astype(np.float64)
     ess = log["death"] < 0
-    return np.where(ess, np.maximum(bv - base, 0.0), np.abs(bv - np.where(ess, 0.0, dv)))
+    b = 0.0 if base is None else base
+    return np.where(ess, np.maximum(bv - b, 0.0), np.abs(bv - np.where(ess, 0.0, dv)))
 
 
 @njit(cache=True)
@@ -227,29 +248,30 @@ def _accumulate(real, birth, death, w, bsum, bsq, dsum, dsq, bcount, scratch, ma
         t = u
 
 
-class Accumulator:
+class CreditAccumulator:
     """Streaming sums for one run's layers, fed in realisation order.
 
     ``add(log, counts, n)`` folds in the next ``n`` realisations (their log
     entries sorted by realisation, and their summed integer counts).
     """
 
-    def __init__(self, n_cells: int, settings: CreditSettings):
-        self.settings = settings
+    _ARRAYS = ("bsum", "bsq", "dsum", "dsq", "bcount")
+
+    def __init__(self, n_cells: int, job: CreditJob):
+        self.job = job
         self.n = 0
         self.bsum = np.zeros(n_cells)
         self.bsq = np.zeros(n_cells)
         self.dsum = np.zeros(n_cells)
         self.dsq = np.zeros(n_cells)
         self.bcount = np.zeros(n_cells, np.int32)
-        self.ponding = np.zeros(n_cells, np.int32) if settings.kind == "pits" else None
+        self.ponding = np.zeros(n_cells, np.int32) if job.kind == "depressions" else None
         self._scratch = np.zeros(n_cells)
         self._mark = np.zeros(n_cells, np.int32)
         self.logs: list[dict] = []
 
     def add(self, log: dict, counts: dict, n: int) -> None:
-        s = self.settings
-        w = log_weights(log, s.weight, s.base)
+        w = log_weights(log, self.job.weight, self.job.base)
         _accumulate(log["real"], log["birth"].astype(np.int64), log["death"].astype(np.int64), w,
                     self.bsum, self.bsq, self.dsum, self.dsq, self.bcount, self._scratch, self._mark)
         if counts.get("ponding") is not None and self.ponding is not None:
@@ -261,38 +283,42 @@ class Accumulator:
         """All logged pairs so far, concatenated."""
         return concat_logs(self.logs, LOG_FIELDS)
 
+    def _moments(self, s, q):
+        n = max(self.n, 1)
+        m = s / n
+        return m, np.sqrt(np.maximum(q / n - m * m, 0.0) / n)
+
     def layers(self, shape) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         """Each layer's mean and standard error, reshaped to the grid."""
-        n = max(self.n, 1)
-        names = LAYERS[self.settings.kind]
-
-        def moments(s, q):
-            m = s / n
-            return m, np.sqrt(np.maximum(q / n - m * m, 0.0) / n)
-
-        out = {names[0]: moments(self.bsum, self.bsq), names[1]: moments(self.dsum, self.dsq),
-               names[2]: proportion(self.bcount, n)}
+        kind = self.job.kind
+        out = {layer_name(kind, "birth_credit"): self._moments(self.bsum, self.bsq),
+               layer_name(kind, "death_credit"): self._moments(self.dsum, self.dsq),
+               layer_name(kind, "birth_probability"): proportion(self.bcount, self.n)}
         if self.ponding is not None:
-            out[names[3]] = proportion(self.ponding, n)
+            out[layer_name(kind, "ponding_probability")] = proportion(self.ponding, self.n)
         return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
+
+    def stop_statistic(self) -> float:
+        """Largest standard error of the summit/pit credit among cells holding
+        at least 1% of the top credit (DEM units; NaN before any credit)."""
+        m, se = self._moments(self.bsum, self.bsq)
+        top = np.nanmax(m) if m.size else 0.0
+        if not top > 0:
+            return math.nan
+        return float(np.nanmax(se[m >= 0.01 * top]))
 
     # -- checkpoint state ------------------------------------------------------
     def state(self) -> dict:
-        st = {"n": np.array(self.n), "bsum": self.bsum, "bsq": self.bsq, "dsum": self.dsum,
-              "dsq": self.dsq, "bcount": self.bcount}
+        st = {"n": np.array(self.n), **{k: getattr(self, k) for k in self._ARRAYS}}
         if self.ponding is not None:
             st["ponding"] = self.ponding
         st.update({f"log_{k}": v for k, v in self.log().items()})
         return st
 
     def restore(self, st: dict) -> None:
-        for k in ("bsum", "bsq", "dsum", "dsq", "bcount"):
-            if st[k].shape != getattr(self, k).shape:
-                from .errors import CheckpointError
-
+        for k in self._ARRAYS + (("ponding",) if self.ponding is not None else ()):
+            if k not in st or st[k].shape != getattr(self, k).shape:
                 raise CheckpointError("checkpoint arrays do not match the DEM's size")
             getattr(self, k)[:] = st[k]
-        if self.ponding is not None:
-            self.ponding[:] = st["ponding"]
         self.n = int(st["n"])
         self.logs = [{k: st[f"log_{k}"] for k in LOG_FIELDS}]

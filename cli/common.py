@@ -1,0 +1,75 @@
+"""What every command shares: the caution, one-line errors, parameter-to-flag names.
+
+Library messages name library parameters (``{threshold}``); this module is
+the one place that says which flag sets each, so errors read in the
+command line's own words.
+"""
+
+from __future__ import annotations
+
+import functools
+import shlex
+import sys
+
+import click
+
+from terrain.errors import CairnError
+from terrain.outputs.writer import CAUTION
+
+__all__ = ["CAUTION", "guarded", "flag", "command_line", "warn"]
+
+FLAGS = {
+    "rmse": "--rmse", "le90": "--le90", "a95": "--a95", "kernel": "--kernel",
+    "range_m": "--range", "covariance": "--covariance", "nugget": "--nugget",
+    "threshold_jitter": "--threshold-jitter", "weight": "--weight",
+    "connectivity": "--connectivity", "base": "--base", "band": "--band", "bbox": "--bbox",
+    "realisations": "--realisations", "seed": "--seed", "workers": "--workers",
+    "scheduler": "--scheduler", "checkpoint": "--checkpoint", "resume": "--resume",
+    "target_se": "--target-se", "overwrite": "--overwrite", "force": "--force",
+    "snap_m": "--snap", "outlets": "--outlets", "kind": "--kind", "backend": "--workers",
+    "draw": "--kernel",
+}
+_CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
+
+
+def flag(param: str, kind: str | None = None) -> str:
+    """The command-line flag that sets library parameter ``param``."""
+    if param == "threshold":
+        return _CUTOFF.get(kind or "", "--min-prominence/--min-depth")
+    return FLAGS.get(param, param)
+
+
+def _kind() -> str | None:
+    ctx = click.get_current_context(silent=True)
+    if ctx is None:
+        return None
+    return ctx.params.get("kind") or (ctx.command.name if ctx.command.name in _CUTOFF else None)
+
+
+def guarded(fn):
+    """Turn cairn's own errors into one line + exit 2, and Ctrl-C into exit 130."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except CairnError as exc:
+            kind = _kind()
+            click.echo(f"cairn: error: {exc.render(lambda p: flag(p, kind))}", err=True)
+            sys.exit(2)
+        except KeyboardInterrupt:
+            click.echo("cairn: interrupted", err=True)
+            sys.exit(130)
+
+    return wrapper
+
+
+def command_line() -> str:
+    """The command line of this invocation, shell-quoted (for run.json and tags)."""
+    ctx = click.get_current_context(silent=True)
+    argv = (ctx.find_root().obj or {}).get("argv") if ctx else None
+    return shlex.join(["cairn", *(argv if argv is not None else sys.argv[1:])])
+
+
+def warn(line: str) -> None:
+    click.echo(f"cairn: warning: {line}", err=True)

@@ -1,0 +1,93 @@
+"""``cairn sweep``: attribution across error levels and kernels."""
+
+from __future__ import annotations
+
+import sys
+
+import click
+
+from terrain.errors import OptionError
+from terrain.jobs import CreditJob
+from terrain.noise import rmse_from
+from terrain.outputs.manifest import file_names, help_text
+from terrain.outputs.writer import write_sweep
+from terrain.resources import check_memory
+from terrain.sweep import sweep, sweep_models
+
+from . import options
+from .common import CAUTION, command_line, guarded
+from .execute import RUN_KEYS, error_model, execution, outputs, read
+from .progress import progress_bar
+from .summary import print_sensitivity
+
+__all__ = ["sweep_cmd"]
+
+_EPILOG = f"""
+\b
+Example:
+  cairn sweep dem.tif -o sweep --kind peaks --rmse 0.25,0.5,1,2,4 \\
+      --kernel gaussian,epanechnikov,triangular,uniform -n 200
+
+{help_text("sweep")}
+
+{CAUTION}
+"""
+
+
+def _levels(opts) -> list[float]:
+    given = [(k, opts[k]) for k in ("rmse", "le90", "a95") if opts[k] is not None]
+    if len(given) != 1:
+        rmse_from(**dict(given))  # raises the library's message
+    name, values = given[0]
+    if not values:
+        raise OptionError(f"{{{name}}} needs at least one level", name)
+    return [rmse_from(**{name: v}) for v in values]
+
+
+def _cutoff(kind, min_prominence, min_depth):
+    wrong = min_depth if kind == "peaks" else min_prominence
+    if wrong is not None:
+        other = "depressions" if kind == "peaks" else "peaks"
+        raise OptionError(f"this cut-off applies to {other}; give {{threshold}} for {kind}",
+                          "threshold")
+    return min_prominence if kind == "peaks" else min_depth
+
+
+@click.command("sweep", epilog=_EPILOG)
+@click.argument("dem", type=click.Path(dir_okay=False))
+@options.outdir
+@click.option("--kind", required=True, help="What to attribute: peaks or depressions.")
+@options.cutoff("peaks", "depressions")
+@options.base
+@options.accuracy(many=True)
+@options.error_model(many_kernels=True)
+@options.attribution
+@options.dem_input
+@options.run(per_model=True)
+@guarded
+def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
+    """How attribution spreads as the assumed error grows, and how much the kernel matters.
+
+    Runs the attribution at every (kernel, error level) with common random
+    numbers, follows each feature across runs, and measures differences
+    between kernels of equal RMSE.
+    """
+    job = CreditJob(kind, threshold=_cutoff(kind, min_prominence, min_depth),
+                    threshold_jitter=opts["threshold_jitter"], weight=opts["weight"],
+                    connectivity=opts["connectivity"], base=base)
+    levels = _levels(opts)
+    models = sweep_models(error_model({**opts, "kernel": "gaussian"}, rmse=levels[0]), levels,
+                          opts["kernel"] or ["gaussian"])
+    ex = execution(opts)
+    d = read(dem, opts)
+    out = outputs(outdir, file_names("sweep"), opts)
+    check_memory(d, workers=ex.n_workers, force=opts["force"], realisations=ex.realisations)
+    if not opts["quiet"]:
+        click.echo(f"cairn sweep: {len(models)} error model(s) x {ex.realisations} "
+                   f"realisations, seed {ex.seed}", err=True)
+    run_kw = {k: getattr(ex, k) for k in RUN_KEYS}
+    with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label="sweep") as bar:
+        result = sweep(d, job, models, progress=bar, **run_kw)
+    write_sweep(out, result, input_path=str(dem), command_line=command_line())
+    if not opts["quiet"]:
+        print_sensitivity(result, outdir=out, caution=CAUTION)

@@ -1,0 +1,108 @@
+"""The layer registry: every raster a run produces, described once.
+
+The jobs accumulate layers under these names; the writer takes band
+descriptions, units and notes from here; the features read their credit and
+probability layers by role; the command-line help lists them. A layer name
+may hold ``{id}`` (one layer per outlet).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+__all__ = ["LayerSpec", "LAYERS", "spec", "layer_name", "layers_of", "units"]
+
+DRAINAGE_NOTE = ("describes the DEM's drainage under its stated error, not flood behaviour or "
+                 "where water runs in a storm")
+
+
+@dataclass(frozen=True)
+class LayerSpec:
+    """One output layer.
+
+    Attributes
+    ----------
+    name : str
+        File stem; ``{id}`` stands for an outlet id.
+    job : {"peaks", "depressions", "catchments"}
+    role : str
+        What the layer is to the code that reads it: ``birth_credit``,
+        ``death_credit``, ``birth_probability``, ``ponding_probability``,
+        ``membership``, ``divide``.
+    unit : {"figure", "probability"}
+        ``figure`` layers are in the DEM's vertical units (or counts when
+        pairs are weighted 1); probabilities are shares of realisations.
+    description : str
+        One sentence a user reads (band description, help text).
+    note : str
+        A caution that travels with the layer (empty when none).
+    """
+
+    name: str
+    job: str
+    role: str
+    unit: str
+    description: str
+    note: str = ""
+
+    def file_name(self, oid: str | None = None) -> str:
+        return self.concrete(oid) + ".tif"
+
+    def concrete(self, oid: str | None = None) -> str:
+        return self.name.replace("{id}", str(oid)) if "{id}" in self.name else self.name
+
+
+LAYERS: dict[str, LayerSpec] = {s.name: s for s in (
+    LayerSpec("summit_credit", "peaks", "birth_credit", "figure",
+              "expected prominence credited to the cell as the summit of a counted peak"),
+    LayerSpec("col_credit", "peaks", "death_credit", "figure",
+              "expected prominence credited to the cell as the key col of a counted peak"),
+    LayerSpec("summit_probability", "peaks", "birth_probability", "probability",
+              "share of realisations in which the cell is the summit of a counted peak"),
+    LayerSpec("pit_credit", "depressions", "birth_credit", "figure",
+              "expected depth credited to the cell as the pit of a counted depression"),
+    LayerSpec("spill_credit", "depressions", "death_credit", "figure",
+              "expected depth credited to the cell as the spill point of a counted depression"),
+    LayerSpec("pit_probability", "depressions", "birth_probability", "probability",
+              "share of realisations in which the cell is the pit of a counted depression"),
+    LayerSpec("ponding_probability", "depressions", "ponding_probability", "probability",
+              "share of realisations in which the cell holds water at least the minimum depth "
+              "deep after depression filling", DRAINAGE_NOTE),
+    LayerSpec("catchment_probability_{id}", "catchments", "membership", "probability",
+              "share of realisations in which the cell drains to outlet {id}", DRAINAGE_NOTE),
+    LayerSpec("divide_probability", "catchments", "divide", "probability",
+              "share of realisations in which the cell and a neighbour drain to different exits",
+              DRAINAGE_NOTE),
+)}
+
+
+def spec(name: str) -> LayerSpec:
+    """The spec of a concrete layer name (``catchment_probability_ford`` included)."""
+    if name in LAYERS:
+        return LAYERS[name]
+    for s in LAYERS.values():
+        if "{id}" in s.name and name.startswith(s.name.split("{id}")[0]):
+            return s
+    raise KeyError(name)
+
+
+def layers_of(job: str) -> tuple[LayerSpec, ...]:
+    """The layers a job writes, in registry order."""
+    return tuple(s for s in LAYERS.values() if s.job == job)
+
+
+def layer_name(job: str, role: str) -> str:
+    """The name of ``job``'s layer with ``role`` (e.g. peaks, birth_credit -> summit_credit)."""
+    for s in LAYERS.values():
+        if s.job == job and s.role == role:
+            return s.name
+    raise KeyError((job, role))
+
+
+def units(name: str, vertical_units: str | None, weight: str = "persistence") -> str:
+    """Units of a layer: probabilities are shares; figures are in DEM units or counts."""
+    if spec(name).unit == "probability":
+        return "probability"
+    if weight == "count":
+        return "count"
+    return vertical_units or "DEM units"

@@ -1,0 +1,240 @@
+"""Figures: quick-look maps (hillshade, a layer, features) and the sweep figure.
+
+Rendering only; every function returns a matplotlib Figure and the writer
+saves it (atomically, through :mod:`terrain.io`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..dem import Dem
+from ..layers import layer_name, units
+
+__all__ = ["quicklook", "hillshade", "feature_map", "catchment_map", "sweep_figure"]
+
+
+def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0) -> np.ndarray:
+    """Hillshade in [0, 1] (matplotlib LightSource, cell sizes in metres)."""
+    from matplotlib.colors import LightSource
+
+    if min(dem.shape) < 2:  # no gradient on a single row or column: flat grey
+        return np.full(dem.shape, 0.5)
+    w, h = dem.cell_metres()
+    z = np.where(dem.nodata, np.nanmean(dem.z), dem.z).astype(np.float64)
+    ls = LightSource(azdeg=azimuth, altdeg=altitude)
+    return ls.hillshade(z, vert_exag=1.0, dx=float(np.mean(w)), dy=float(np.mean(h)))
+
+
+def _nice(x: float) -> float:
+    e = 10 ** math.floor(math.log10(x))
+    for m in (1, 2, 5, 10):
+        if m * e >= x:
+            return m * e
+    return 10 * e
+
+
+def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: float = 0.01,
+              polygons=None, labels=None, outlets=None, cmap: str = "magma_r",
+              vmax: float | None = None, show: np.ndarray | None = None, contours=None):
+    """A map a person can read at a glance.
+
+    Parameters
+    ----------
+    dem : Dem
+    layer : (rows, cols) array
+        Drawn over the hillshade where it is at least ``frac`` of its maximum.
+    title, units : str
+        Title and colour-bar label.
+    polygons : sequence of shapely geometries, optional
+        Feature outlines.
+    labels : sequence of (x, y, text), optional
+        Text placed at the given CRS coordinates.
+    outlets : sequence of (x, y, text), optional
+        Marked with a triangle.
+    show : (rows, cols) bool array, optional
+        Draw the layer only where True (e.g. inside features).
+    contours : sequence of (array, levels, label), optional
+        Contour lines of further layers (e.g. membership probabilities).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.figure import Figure
+
+    rows, cols = dem.shape
+    a, _, c, _, e, f = dem.transform
+    extent = (c, c + a * cols, f + e * rows, f)
+    fig = Figure(figsize=(9, 9 * rows / cols * 0.88 + 1.1), dpi=110)
+    ax = fig.add_axes((0.08, 0.06, 0.76, 0.82))
+    cax = fig.add_axes((0.87, 0.2, 0.025, 0.6))
+    ax.imshow(hillshade(dem), cmap="gray", extent=extent, vmin=0, vmax=1, interpolation="bilinear")
+    _draw_layer(fig, ax, cax, dem, layer, extent, frac=frac, vmax=vmax, show=show, cmap=cmap,
+                units=units)
+    _draw_contours(ax, dem, contours or [], extent)
+    _draw_outlines(ax, polygons or [])
+    _draw_labels(ax, labels or [], outlets or [], extent)
+    ax.set_xlim(extent[0], extent[1])
+    ax.set_ylim(extent[2], extent[3])
+    ax.set_title(title, fontsize=10, pad=10)
+    ax.ticklabel_format(useOffset=False, style="plain")
+    ax.tick_params(labelsize=7)
+    _scale_bar(ax, dem, extent)
+    _north_arrow(ax)
+    return fig
+
+
+def _draw_layer(fig, ax, cax, dem, layer, extent, *, frac, vmax, show, cmap, units):
+    from matplotlib.colors import PowerNorm
+
+    v = np.where(dem.nodata, np.nan, layer).astype(np.float64)
+    top = vmax if vmax is not None else (np.nanmax(v) if np.isfinite(v).any() else 1.0)
+    hide = ~(v >= frac * top) | ~(v > 0)
+    if show is not None:
+        hide |= ~show
+    # square-root colour scale: small credit stays visible beside a dominant feature
+    im = ax.imshow(np.ma.masked_where(hide, v), cmap=cmap, extent=extent, alpha=0.85,
+                   interpolation="nearest", norm=PowerNorm(0.5, vmin=0, vmax=top if top > 0 else 1))
+    fig.colorbar(im, cax=cax).set_label(units + " (square-root scale)")
+
+
+def _draw_contours(ax, dem, contours, extent):
+    colours = ["#e76f51", "#2a9d8f", "#e9c46a", "#264653", "#f4a261", "#8338ec"]
+    for n, (arr, levels, label) in enumerate(contours if min(dem.shape) >= 2 else []):
+        a_ = np.where(dem.nodata, np.nan, arr)
+        if np.nanmax(a_) >= min(levels):
+            cs = ax.contour(a_, levels=levels, extent=extent,
+                            origin="upper", colors=colours[n % len(colours)],
+                            linewidths=[0.8, 1.6, 0.8][: len(levels)],
+                            linestyles=["dotted", "solid", "dashed"][: len(levels)])
+            ax.clabel(cs, fmt=lambda v, label=label: f"{label} {v:.0%}", fontsize=7)
+
+
+def _draw_outlines(ax, polygons):
+    for geom in polygons:
+        if geom is None:
+            continue
+        for g in getattr(geom, "geoms", [geom]):
+            x, y = g.exterior.xy
+            ax.plot(x, y, color="#00b4d8", lw=1.0)
+
+
+def _draw_labels(ax, labels, outlets, extent):
+    near_top = extent[3] - 0.06 * (extent[3] - extent[2])
+    near_right = extent[1] - 0.2 * (extent[1] - extent[0])
+    for x, y, text in labels:
+        off = (6 if x < near_right else -6, -12 if y > near_top else 6)
+        ax.annotate(text, (x, y), xytext=off, textcoords="offset points", fontsize=7.5,
+                    ha="left" if off[0] > 0 else "right", annotation_clip=True,
+                    color="black", bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="none",
+                                             alpha=0.8))
+    for x, y, text in outlets:
+        ax.plot([x], [y], marker="v", color="#0077b6", ms=9, mec="white")
+        ax.annotate(text, (x, y), xytext=(6, -12), textcoords="offset points", fontsize=8,
+                    color="#0077b6", weight="bold")
+
+
+def feature_map(result, features):
+    """The quick-look of a peaks or depressions run: its summit/pit credit over
+    a hillshade, feature outlines and the top features labelled."""
+    dem, job = result.dem, result.job
+    main = layer_name(job.kind, "birth_credit")
+    unit = units(main, dem.vertical_units, job.weight)
+    figure = "prominence" if job.kind == "peaks" else "depth"
+    table = features.table
+    order = np.argsort(table["rank"].to_numpy(), kind="stable")[:12]
+    labels = [(table["x"].iloc[i], table["y"].iloc[i],
+               f"#{table['feature_id'].iloc[i]} {table['expected'].iloc[i]:.1f} · "
+               f"p₁ {table['p_first'].iloc[i]:.2f}") for i in order]
+    poly = next(iter(features.frames.values())).geometry.tolist()
+    title = (f"{main.replace('_', ' ')} — {result.n} realisations, error "
+             f"{result.model.describe()}\nlabels: #id, expected {figure} ({unit}), "
+             "p₁ = probability of ranking first")
+    return quicklook(dem, result.layers[main][0], title=title,
+                     units=f"{main.replace('_', ' ')} ({unit})", polygons=poly, labels=labels,
+                     show=features.labels > 0)
+
+
+def catchment_map(result):
+    """The quick-look of a catchment run: divide probability with 10/50/90%
+    membership contours per outlet."""
+    job = result.job
+    contours = [(result.layers[name][0], [0.1, 0.5, 0.9], oid)
+                for oid, name in zip(job.ids, job.layers[:-1])]
+    return quicklook(result.dem, result.layers[job.layers[-1]][0],
+                     title=f"drainage-divide probability; membership contours 10% (dotted), 50%, "
+                           f"90% (dashed)\n{result.n} realisations, error {result.model.describe()}",
+                     units="divide probability", cmap="viridis_r", contours=contours,
+                     outlets=[(x, y, oid) for oid, (x, y) in zip(job.ids, job.xy)], vmax=1.0)
+
+
+def _scale_bar(ax, dem: Dem, extent) -> None:
+    w_m, _ = dem.cell_metres()
+    m_per_unit = float(np.mean(w_m)) / dem.cellsize[0]
+    width_units = extent[1] - extent[0]
+    length_m = _nice(width_units * m_per_unit / 5)
+    length_units = length_m / m_per_unit
+    x0 = extent[0] + 0.05 * width_units
+    y0 = extent[2] + 0.05 * (extent[3] - extent[2])
+    ax.plot([x0, x0 + length_units], [y0, y0], color="black", lw=4, solid_capstyle="butt")
+    ax.plot([x0, x0 + length_units], [y0, y0], color="white", lw=2, solid_capstyle="butt")
+    label = f"{length_m / 1000:g} km" if length_m >= 1000 else f"{length_m:g} m"
+    if dem.crs is None:
+        label = f"{length_units:g} cell units"
+    ax.text(x0 + length_units / 2, y0, label + "\n", ha="center", va="bottom", fontsize=8,
+            bbox=dict(fc="white", ec="none", alpha=0.7, pad=1))
+
+
+def _north_arrow(ax) -> None:
+    ax.annotate("N", xy=(0.95, 0.95), xytext=(0.95, 0.85), xycoords="axes fraction",
+                ha="center", va="center", fontsize=11, weight="bold",
+                arrowprops=dict(facecolor="black", width=3, headwidth=10))
+
+
+def sweep_figure(result, *, units: str):
+    """credit_share and p_first against the error level for the top features
+    of a :class:`terrain.sweep.SweepResult`, one column of panels per kernel,
+    error bars of one standard error."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    from matplotlib.figure import Figure
+
+    rows = result.rows
+    kernels = list(dict.fromkeys(rows["kernel"]))
+    fig = Figure(figsize=(4.2 * len(kernels) + 1.5, 7.2), dpi=110)
+    axes = fig.subplots(2, len(kernels), squeeze=False, sharex=True, sharey="row")
+    what = "summit" if result.job.kind == "peaks" else "depression"
+    colours = matplotlib.colormaps["tab10"]
+    kern = np.array(rows["kernel"])
+    fid = np.array(rows["feature_id"])
+    rmse = np.array(rows["rmse"])
+    for j, kernel in enumerate(kernels):
+        for n_f, f in enumerate(result.top):
+            sel = (kern == kernel) & (fid == f)
+            order = np.argsort(rmse[sel])
+            x = rmse[sel][order]
+            for i, (col, se) in enumerate((("credit_share", "credit_share_se"),
+                                           ("p_first", "p_first_se"))):
+                y = np.array(rows[col])[sel][order]
+                e = np.array(rows[se])[sel][order]
+                axes[i, j].errorbar(x, y, yerr=e, marker="o", ms=3, capsize=2, lw=1.2,
+                                    color=colours(n_f % 10), label=f"{what} #{f}")
+        axes[0, j].set_title(f"{kernel} kernel", fontsize=10)
+        axes[1, j].set_xlabel(f"assumed error RMSE ({units})")
+        levels = sorted(set(rows["rmse"]))
+        for i in range(2):
+            axes[i, j].set_xscale("log")
+            axes[i, j].set_xticks(levels, [f"{v:g}" for v in levels])
+            axes[i, j].minorticks_off()
+            axes[i, j].grid(alpha=0.3)
+    axes[0, 0].set_ylabel("share of total credit")
+    axes[1, 0].set_ylabel("P(ranks first)")
+    axes[0, -1].legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.02, 1.0))
+    fig.suptitle(f"How {what} attribution spreads as the assumed error grows "
+                 "(error bars: 1 standard error)", fontsize=11)
+    fig.subplots_adjust(left=0.08, right=0.84, top=0.9, bottom=0.09, wspace=0.08, hspace=0.12)
+    return fig

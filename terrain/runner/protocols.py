@@ -1,0 +1,81 @@
+"""The two interfaces the runner works with: a job and its accumulator.
+
+Any object with these members can be run by
+:func:`terrain.runner.run_ensemble`; :class:`terrain.jobs.CreditJob` and
+:class:`terrain.jobs.CatchmentJob` are the two cairn ships.
+"""
+
+from __future__ import annotations
+
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+
+__all__ = ["Job", "Accumulator"]
+
+
+@runtime_checkable
+class Accumulator(Protocol):
+    """Folds realisations in, strictly in realisation order.
+
+    Attributes
+    ----------
+    n : int
+        Realisations folded in so far.
+    """
+
+    n: int
+
+    def add(self, log: dict, counts: dict, n: int) -> None:
+        """Fold in the next ``n`` realisations: their log (sorted by
+        realisation) and their summed integer counts."""
+
+    def layers(self, shape: tuple[int, int]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Each layer's estimate and standard error on the grid."""
+
+    def log(self) -> dict:
+        """The per-realisation log so far, concatenated."""
+
+    def stop_statistic(self) -> float:
+        """The Monte Carlo standard error adaptive stopping compares with its
+        target (NaN while undefined)."""
+
+    def state(self) -> dict:
+        """Arrays that restore this accumulator (checkpoints; no objects)."""
+
+    def restore(self, state: dict) -> None:
+        """Load :meth:`state` output back."""
+
+
+@runtime_checkable
+class Job(Protocol):
+    """What one realisation computes.
+
+    A job's ``None`` settings are library defaults, filled in by
+    :meth:`resolved` against the DEM and error model before the run starts;
+    realisations only ever see resolved jobs.
+    """
+
+    name: str
+
+    @property
+    def layers(self) -> tuple[str, ...]:
+        """Names of the layers the accumulator produces (see terrain.layers)."""
+
+    def resolved(self, dem, model) -> Job:
+        """A copy with every default resolved (and grid arrays prepared)."""
+
+    def defaults_used(self) -> dict:
+        """Settings left to library defaults, with the rule each follows."""
+
+    def describe(self) -> dict:
+        """JSON-able settings that identify the job (checkpoints, run.json)."""
+
+    def new_counts(self, n_cells: int) -> dict:
+        """Fresh integer per-cell counts a worker adds to in place."""
+
+    def realise(self, z: np.ndarray, sampler, seed: int, i: int, counts: dict) -> dict:
+        """Realisation ``i``: returns its log (a dict of equal-length arrays)."""
+
+    def accumulator(self, n_cells: int) -> Accumulator:
+        """A fresh accumulator for this job."""

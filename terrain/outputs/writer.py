@@ -16,9 +16,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .. import __version__
 from ..io import file_sha256, write_csv, write_figure, write_frames, write_json, write_layer
 from ..layers import spec, units
+from ..version import __version__
 from . import plot
 from .manifest import MANIFEST
 

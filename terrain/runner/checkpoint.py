@@ -15,11 +15,11 @@ from pathlib import Path
 
 import numpy as np
 
-from .. import __version__
 from ..dem import Dem
 from ..errors import CheckpointError
 from ..io import load_npz, save_npz
 from ..noise import ErrorModel
+from ..version import __version__
 
 __all__ = ["run_params", "save_checkpoint", "load_checkpoint"]
 

@@ -61,7 +61,8 @@ def outputs(outdir, names: list[str], opts: dict) -> Path:
 
 def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str):
     """Check memory, run the ensemble with a progress bar, turn Ctrl-C into exit 130."""
-    check_memory(dem, workers=ex.n_workers, force=opts["force"], realisations=ex.realisations)
+    check_memory(dem, job, workers=ex.n_workers, force=opts["force"],
+                 realisations=ex.realisations)
     if not opts["quiet"]:
         click.echo(f"cairn {label}: {dem.shape[0]}x{dem.shape[1]} cells, error "
                    f"{model.describe()}, {headline}, {ex.realisations} realisations, "

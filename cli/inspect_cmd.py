@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import click
 
+from terrain.jobs import CreditJob
 from terrain.resources import describe_memory
 
 from . import options
@@ -45,7 +46,8 @@ def inspect_cmd(dem, band, bbox):
         ("vertical units", d.vertical_units or "unknown (not declared in the file)"),
         ("nodata", f"{(~valid).mean():.2%} of cells"),
         ("elevation", f"{zv.min():g} to {zv.max():g} (mean {zv.mean():.2f})"),
-        ("memory", describe_memory(d)),
+        ("memory (peaks)", describe_memory(d, CreditJob("peaks"))),
+        ("memory (depressions)", describe_memory(d, CreditJob("depressions"))),
     ]
     width = max(len(k) for k, _ in lines)
     for k, v in lines:

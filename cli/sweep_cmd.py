@@ -81,7 +81,8 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     ex = execution(opts)
     d = read(dem, opts)
     out = outputs(outdir, file_names("sweep"), opts)
-    check_memory(d, workers=ex.n_workers, force=opts["force"], realisations=ex.realisations)
+    check_memory(d, job, workers=ex.n_workers, force=opts["force"],
+                 realisations=ex.realisations * len(models))
     if not opts["quiet"]:
         click.echo(f"cairn sweep: {len(models)} error model(s) x {ex.realisations} "
                    f"realisations, seed {ex.seed}", err=True)

@@ -165,13 +165,3 @@ class Dem:
         h.update(np.packbits(self.nodata).tobytes())
         return h.hexdigest()
 
-    def realisation_bytes(self) -> int:
-        """Estimated memory of one realisation in a worker, bytes per cell.
-
-        Stated, not measured: noise (4), the perturbed copy and the key copy
-        the pairing sorts on (4 or 8 each), basin labels (4), validity mask
-        (1) and ponding counts (4): 21 bytes per cell for float32 DEMs. The
-        parent process adds 52 bytes per cell of accumulators.
-        """
-        b = self.z.dtype.itemsize
-        return 2 * b + 13

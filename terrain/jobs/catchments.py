@@ -170,6 +170,14 @@ class CatchmentJob:
     def accumulator(self, n_cells: int) -> CatchmentAccumulator:
         return CatchmentAccumulator(n_cells, self)
 
+    def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
+        """Accumulators: an int64 membership count per outlet and the divide
+        count. Worker: the DEM copy and noise, filled surface, receivers, order,
+        accumulation and exits (8 each), flags and queue, int32 counts per
+        outlet and for divides."""
+        k = len(self.ids)
+        return 8 * k + 8, value_bytes + 4 + 49 + 4 * k + 4
+
 
 class CatchmentAccumulator:
     """Integer membership and divide counts plus the per-realisation log."""

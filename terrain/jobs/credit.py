@@ -137,6 +137,14 @@ class CreditJob:
     def accumulator(self, n_cells: int) -> CreditAccumulator:
         return CreditAccumulator(n_cells, self)
 
+    def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
+        """Accumulators: 4 float64 moments, 1 int32 count, scratch (float64 +
+        int32), + 1 int32 ponding count for depressions. Worker: the DEM copy,
+        noise (4), the perturbed copy and the key copy the pairing sorts on,
+        basin labels (4), validity (1), ponding counts (4)."""
+        parent = 48 + (4 if self.kind == "depressions" else 0)
+        return parent, 3 * value_bytes + 13
+
 
 def realisation_threshold(job: CreditJob, kernel: Kernel, seed: int, i: int) -> float:
     """The threshold of realisation ``i`` (drawn from its own stream when jittered)."""

@@ -79,3 +79,7 @@ class Job(Protocol):
 
     def accumulator(self, n_cells: int) -> Accumulator:
         """A fresh accumulator for this job."""
+
+    def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
+        """Bytes per cell (accumulating process, each worker while realising) for
+        a DEM whose values take ``value_bytes`` (4 or 8); the memory guard's input."""

@@ -12,7 +12,7 @@ from terrain.outputs.writer import write_credit_run
 from terrain.summary.features import summarise_features
 
 from . import options
-from .common import CAUTION, command_line, guarded
+from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
 from .execute import error_model, execution, outputs, read, run_job
 from .summary import print_summary
 
@@ -32,6 +32,8 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     res = run_job(dem, job, model, ex, opts, label=label or kind,
                   headline=f"minimum {figure} " + (f"{threshold:g}" if threshold is not None
                                                    else "3 x RMSE"))
+    if model.range_m == 0:
+        warn(INDEPENDENT_ERROR)
     features = summarise_features(res)
     write_credit_run(out, res, features, input_path=str(dem_path), command_line=command_line())
     if not opts["quiet"]:
@@ -61,6 +63,10 @@ def peaks_cmd(dem, outdir, min_prominence, base, **opts):
 
     Perturbs DEM with its stated vertical error, pairs every summit with its
     key col in each realisation (superlevel-set persistence) and averages.
+    Features are regions of the DEM as given; the table shows each one's
+    prominence on the DEM, its expected prominence and 5-95% range under the
+    error (the DEM uncertainty), and the Monte Carlo standard error (the
+    run's precision) in a column of its own.
     """
     run_credit("peaks", dem, outdir, opts, threshold=min_prominence, base=base)
 
@@ -77,7 +83,10 @@ def depressions_cmd(dem, outdir, min_depth, **opts):
 
     Water leaves over the raster edge and into nodata; each depression is
     paired with its spill point in each realisation (sublevel-set
-    persistence) and the results are averaged.
+    persistence) and the results are averaged. Features are regions of the
+    DEM as given; the table shows each one's depth on the DEM, its expected
+    depth and 5-95% range under the error (the DEM uncertainty), and the
+    Monte Carlo standard error (the run's precision) in a column of its own.
     """
     run_credit("depressions", dem, outdir, opts, threshold=min_depth)
 

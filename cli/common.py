@@ -16,7 +16,14 @@ import click
 from terrain.errors import CairnError
 from terrain.outputs.writer import CAUTION
 
-__all__ = ["CAUTION", "guarded", "flag", "command_line", "warn"]
+__all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn"]
+
+INDEPENDENT_ERROR = (
+    "independent per-cell error deepens flat floors and raises flat tops (the lowest of n noisy "
+    "cells lies about RMSE x sqrt(2 ln n) below a flat floor); compare with the figure on "
+    "the DEM as given ('unperturbed'), and give --range when the DEM's error is spatially "
+    "correlated, as it usually is "
+    "(Holmes, Chadwick & Kyriakidis 2000, J. Hydrology 233; review: Wechsler 2007, HESS 11)")
 
 FLAGS = {
     "rmse": "--rmse", "le90": "--le90", "a95": "--a95", "kernel": "--kernel",

@@ -15,7 +15,7 @@ from terrain.resources import check_memory
 from terrain.sweep import sweep, sweep_models
 
 from . import options
-from .common import CAUTION, command_line, guarded
+from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
 from .execute import RUN_KEYS, error_model, execution, outputs, read
 from .progress import progress_bar
 from .summary import print_sensitivity
@@ -89,6 +89,8 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     run_kw = {k: getattr(ex, k) for k in RUN_KEYS}
     with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label="sweep") as bar:
         result = sweep(d, job, models, progress=bar, **run_kw)
+    if opts["range_m"] == 0:
+        warn(INDEPENDENT_ERROR)
     write_sweep(out, result, input_path=str(dem), command_line=command_line())
     if not opts["quiet"]:
         print_sensitivity(result, outdir=out, caution=CAUTION)

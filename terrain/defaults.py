@@ -11,14 +11,18 @@ import numpy as np
 
 from .dem import Dem
 
-__all__ = ["CUTOFF_PER_RMSE", "SNAP_CELLS", "cutoff", "base_level", "snap_radius", "RULES"]
+__all__ = ["CUTOFF_PER_RMSE", "MERGE_PER_RMSE", "MIN_PRESENCE", "SNAP_CELLS", "cutoff",
+           "merge_level", "base_level", "snap_radius", "RULES"]
 
 CUTOFF_PER_RMSE = 3.0  # a counted pair is at least 3 x RMSE (clearly above the noise)
+MERGE_PER_RMSE = 2.0  # the smallest persistence the stated error can resolve
+MIN_PRESENCE = 0.1  # a feature is a row when counted in at least 10% of realisations
 SNAP_CELLS = 2.0  # outlets snap within 2 cells (common practice, no source)
 
 RULES = {
     "threshold": f"{CUTOFF_PER_RMSE:g} x RMSE (the largest RMSE in a sweep)",
     "base": "lowest valid cell of the DEM",
+    "merge_level": f"{MERGE_PER_RMSE:g} x RMSE, or the cut-off if lower (a sweep: its smallest RMSE)",
     "snap_m": f"{SNAP_CELLS:g} x the mean cell width",
 }
 
@@ -26,6 +30,15 @@ RULES = {
 def cutoff(threshold: float | None, rmse: float) -> float:
     """The minimum prominence/depth of a counted pair: ``threshold`` or 3 x RMSE."""
     return CUTOFF_PER_RMSE * float(rmse) if threshold is None else float(threshold)
+
+
+def merge_level(level: float | None, rmse: float, threshold: float) -> float:
+    """The persistence below which feature regions merge: ``level`` or
+    min(2 x RMSE, cut-off) -- knobs and hollows the stated error cannot
+    resolve belong to the feature around them."""
+    if level is not None:
+        return float(level)
+    return min(MERGE_PER_RMSE * float(rmse), float(threshold))
 
 
 def base_level(base: float | None, dem: Dem) -> float:

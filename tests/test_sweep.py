@@ -39,8 +39,8 @@ def ridge_sweep():
     models = sweep_models(ErrorModel(rmse=1.0), LEVELS, ("gaussian", "triangular", "epanechnikov"))
     res = sweep(dem, s, models, realisations=N, seed=21, backend="serial")
     df = pd.DataFrame(res.rows)
-    fid_high = int(res.labels[7, 23])
-    fid_low = int(res.labels[7, 7])
+    fid_high = int(res.job.regions.labels[7, 23])
+    fid_low = int(res.job.regions.labels[7, 7])
     assert fid_high and fid_low and fid_high != fid_low
     return res, df, fid_high, fid_low
 
@@ -89,9 +89,9 @@ def test_cli_sweep_writes_tables_and_plot(tmp_path, cairn):
                            "--min-prominence", "5", "--workers", "1")
     assert code == 0, err
     df = pd.read_csv(tmp_path / "sw" / "sweep.csv")
-    assert list(df.columns) == ["kernel", "rmse", "feature_id", "x", "y", "expected", "se",
-                                "p_above", "p_first", "p_first_se", "credit_share",
-                                "credit_share_se"]
+    assert list(df.columns) == ["kernel", "rmse", "feature_id", "unperturbed", "x", "y",
+                                "expected", "se", "p_above", "p_above_se", "p_first",
+                                "p_first_se", "credit_share", "credit_share_se"]
     assert set(df.kernel) == {"gaussian", "uniform"} and set(df.rmse) == {0.25, 0.5, 1.0}
     ks = pd.read_csv(tmp_path / "sw" / "kernel_sensitivity.csv")
     assert set(ks.rmse) == {0.25, 0.5, 1.0} and (ks.kernel_a == "gaussian").all()

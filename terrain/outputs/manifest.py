@@ -35,11 +35,11 @@ _COMMON = [OutputFile("quicklook.png", "quick-look map"),
 MANIFEST: dict[str, list[OutputFile]] = {
     "peaks": _rasters("peaks") + [
         OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics",
-                   ("summits", "summit_points")),
+                   ("summits", "summit_points", "summit_regions")),
         OutputFile("summits.csv", "the summit feature table")] + _COMMON,
     "depressions": _rasters("depressions") + [
         OutputFile("depressions.gpkg", "depression features: polygons and points with their "
-                                       "statistics", ("pits", "pit_points")),
+                                       "statistics", ("pits", "pit_points", "pit_regions")),
         OutputFile("pits.csv", "the depression feature table")] + _COMMON,
     "catchments": _rasters("catchments") + [
         OutputFile("catchments.gpkg", "50% and 90% membership polygons per outlet with areas",

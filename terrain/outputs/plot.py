@@ -145,7 +145,7 @@ def feature_map(result, features):
     unit = units(main, dem.vertical_units, job.weight)
     figure = "prominence" if job.kind == "peaks" else "depth"
     table = features.table
-    order = np.argsort(table["rank"].to_numpy(), kind="stable")[:12]
+    order = np.arange(min(len(table), 12))
     labels = [(table["x"].iloc[i], table["y"].iloc[i],
                f"#{table['feature_id'].iloc[i]} {table['expected'].iloc[i]:.1f} · "
                f"p₁ {table['p_first'].iloc[i]:.2f}") for i in order]
@@ -155,7 +155,7 @@ def feature_map(result, features):
              "p₁ = probability of ranking first")
     return quicklook(dem, result.layers[main][0], title=title,
                      units=f"{main.replace('_', ' ')} ({unit})", polygons=poly, labels=labels,
-                     show=features.labels > 0)
+                     show=np.isin(features.regions.labels, table["feature_id"].to_numpy()))
 
 
 def catchment_map(result):

@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from ..io import file_sha256, write_csv, write_figure, write_frames, write_json, write_layer
+from ..jobs.credit import LOG_FIELDS
 from ..layers import spec, units
 from ..version import __version__
 from . import plot
@@ -88,14 +89,14 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     write_layers(out, result, command_line=command_line)
     gpkg, csv = (f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv")))
     write_frames(out / gpkg, features.frames)
-    write_csv(out / csv, next(iter(features.frames.values())))  # by rank, as the GeoPackage
+    write_csv(out / csv, features.table)
     write_figure(out / "quicklook.png", plot.feature_map(result, features))
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
-                     parameters={**result.job.describe(), **features.settings})
+                     parameters={**result.job.describe(), "features": features.settings})
     run.update({"features": int(len(features.table)),
                 "pair_log_entries": int(result.log["birth"].size),
-                "pair_log_bytes_per_entry": int(sum(np.dtype(v.dtype).itemsize
-                                                    for v in result.log.values()))})
+                "pair_log_bytes_per_entry": int(sum(np.dtype(result.log[k].dtype).itemsize
+                                                    for k in LOG_FIELDS))})
     write_json(out / "run.json", run)
 
 
@@ -132,7 +133,7 @@ def write_sweep(outdir: str | Path, result, *, input_path: str | None,
     write_figure(out / "sweep.png",
                  plot.sweep_figure(result, units=any_run.dem.vertical_units or "DEM units"))
     run = provenance(any_run, input_path=input_path, command_line=command_line, created=created,
-                     parameters={**result.job.describe(), "features": int(result.n_features),
+                     parameters={**result.job.describe(), "features": int(result.ids.size),
                                  "top_features": result.top})
     run["parameters"].pop("error_model")
     run["defaults"] = result.defaults

@@ -23,7 +23,8 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     """One peaks or depressions run, from options to files and the console table."""
     model = error_model(opts)
     job = CreditJob(kind, threshold=threshold, threshold_jitter=opts["threshold_jitter"],
-                    weight=opts["weight"], connectivity=opts["connectivity"], base=base)
+                    weight=opts["weight"], connectivity=opts["connectivity"], base=base,
+                    merge_level=opts["merge_level"], min_presence=opts["min_presence"])
     ex = execution(opts)
     dem = read(dem_path, opts)
     job = job.resolved(dem, model)
@@ -93,7 +94,8 @@ def depressions_cmd(dem, outdir, min_depth, **opts):
 
 DEMO = dict(rmse=1.0, le90=None, a95=None, kernel="gaussian", range_m=0.0,
             covariance="exponential", nugget=0.0, threshold_jitter=0.5, weight="persistence",
-            connectivity=8, band=None, bbox=None, realisations=300, seed=2026, scheduler=None,
+            connectivity=8, merge_level=None, min_presence=0.1, band=None, bbox=None,
+            realisations=300, seed=2026, scheduler=None,
             checkpoint=None, resume=False, target_se=None, force=False)
 DEMO_CUTOFF = 3.0
 

@@ -34,7 +34,7 @@ FLAGS = {
     "scheduler": "--scheduler", "checkpoint": "--checkpoint", "resume": "--resume",
     "target_se": "--target-se", "overwrite": "--overwrite", "force": "--force",
     "snap_m": "--snap", "outlets": "--outlets", "kind": "--kind", "backend": "--workers",
-    "draw": "--kernel",
+    "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 

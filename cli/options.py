@@ -114,6 +114,13 @@ attribution = compose(
                  help="Credit a counted pair its prominence/depth (persistence) or 1 (count)."),
     click.option("--connectivity", type=int, default=8, show_default=True,
                  help="Cell neighbourhood: 8 (with diagonals) or 4."),
+    click.option("--merge-level", type=float, default=None,
+                 help="Knobs and hollows of the DEM less persistent than this (vertical units) "
+                      "belong to the feature around them [default: 2 x RMSE, or the cut-off if "
+                      "lower; in a sweep, of the smallest RMSE]."),
+    click.option("--min-presence", type=float, default=0.1, show_default=True,
+                 help="A region is a feature (a table row) when counted in at least this share "
+                      "of realisations (0 to 1)."),
 )
 
 dem_input = compose(
@@ -126,9 +133,9 @@ dem_input = compose(
 RESUME_HELP = ("Continue the run saved in --checkpoint (same DEM, seed and options), or extend "
                "a finished one to -n realisations; replaces that run's outputs.")
 TARGET_SE_HELP = ("Stop early once the run's Monte Carlo standard error is below this: the "
-                  "largest over cells holding >= 1% of the top summit/pit credit, in the DEM's "
-                  "vertical units (catchments: the largest over all probabilities, 0 to 1). "
-                  "-n is then the maximum.")
+                  "largest standard error of a feature's expected prominence/depth, in the "
+                  "DEM's vertical units (catchments: the largest over all probabilities, 0 to "
+                  "1). -n is then the maximum.")
 
 
 def run(*, per_model: bool = False):

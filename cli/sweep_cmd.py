@@ -74,7 +74,8 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     """
     job = CreditJob(kind, threshold=_cutoff(kind, min_prominence, min_depth),
                     threshold_jitter=opts["threshold_jitter"], weight=opts["weight"],
-                    connectivity=opts["connectivity"], base=base)
+                    connectivity=opts["connectivity"], base=base,
+                    merge_level=opts["merge_level"], min_presence=opts["min_presence"])
     levels = _levels(opts)
     models = sweep_models(error_model({**opts, "kernel": "gaussian"}, rmse=levels[0]), levels,
                           opts["kernel"] or ["gaussian"])

@@ -455,7 +455,7 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_leve
             if ey >= 0 and (eo < 0 or _before(zk, ey, eo)):
                 emin[old] = ey
     esb, ese = _essential(parent, minc, emin)
-    join, jroot = _joins(up, mt, nb, out_id, outlet)
+    join, jroot = _joins(zk, up, mt, nb, out_id, outlet)
     return pb[:npairs], pd[:npairs], pe[:npairs], esb, ese, join, jroot, rpar, pair_of
 
 
@@ -480,12 +480,14 @@ def _essential(parent, minc, emin):
 
 
 @njit(cache=True)
-def _joins(up, mt, nb, out_id, outlet):
+def _joins(zk, up, mt, nb, out_id, outlet):
     """Per basin: the cell at which its component joined the outlet (-1:
-    never) and the root basin of that component (its minimum is the
-    component's deepest cell)."""
+    never), and the root basin of the depression it lies in: the oldest
+    component it reached by merges strictly below that level (its minimum is
+    the depression's deepest cell). Depressions that only touch at the spill
+    level stay apart, as their ponded cells do."""
     join = np.full(nb, -1, np.int64)
-    jroot = np.full(nb, -1, np.int64)
+    droot = np.full(nb, -1, np.int64)
     if outlet:
         for b in range(nb):
             a = b
@@ -493,8 +495,12 @@ def _joins(up, mt, nb, out_id, outlet):
                 a = up[a]
             if up[a] == out_id:
                 join[b] = mt[a]
-                jroot[b] = a
-    return join, jroot
+                level = zk[mt[a]]
+                a = b
+                while up[a] != out_id and zk[mt[a]] < level:
+                    a = up[a]
+                droot[b] = a
+    return join, droot
 
 
 @njit(cache=True)

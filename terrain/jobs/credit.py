@@ -274,12 +274,13 @@ def log_weights(log: dict, weight: str = "persistence") -> np.ndarray:
     return np.abs(log["birth_value"].astype(np.float64) - log["death_value"].astype(np.float64))
 
 
-def region_figures(log: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def region_figures(log: dict, *, with_birth: bool = False) -> tuple:
     """Per (realisation, region) with a counted pair: the largest figure born in it.
 
     Returns ``(real, region, figure, edge_limited)`` sorted by realisation,
-    then region; ``edge_limited`` is the flag of the largest pair. Pairs born
-    outside every region are left out.
+    then region; ``edge_limited`` is the flag of the largest pair, and with
+    ``with_birth`` its birth cell comes fifth. Pairs born outside every
+    region are left out.
     """
     inside = log["region"] > 0
     real = log["real"][inside].astype(np.int64)
@@ -290,7 +291,10 @@ def region_figures(log: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.nd
     real, reg, fig, edge = real[order], reg[order], fig[order], edge[order]
     last = np.ones(order.size, bool)
     last[:-1] = (real[1:] != real[:-1]) | (reg[1:] != reg[:-1])
-    return real[last], reg[last], fig[last], edge[last]
+    out = real[last], reg[last], fig[last], edge[last]
+    if with_birth:
+        out += (log["birth"][inside][order][last].astype(np.int64),)
+    return out
 
 
 @njit(cache=True)

@@ -47,7 +47,7 @@ def catchment_table(result):
         p = result.layers[member.concrete(oid)][0]
         for level in LEVELS:
             m = (p >= level) & ~dem.nodata
-            geoms.append(region_polygons(dem, m.astype(np.int32), 1)[0])
+            geoms.append(region_polygons(dem, m.astype(np.int32), [1])[0])
             mean, p05, p95 = areas[oid]
             for col, v in zip(CATCHMENT_COLUMNS, (oid, level, float((m * area_row[:, None]).sum()),
                                                   mean, p05, p95)):

@@ -29,7 +29,8 @@ from ..jobs.credit import log_weights, region_figures
 from ..layers import layer_name
 
 __all__ = ["COLUMNS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE", "FeatureSummary",
-           "FigureMatrix", "figure_matrix", "summarise_features", "region_polygons"]
+           "FigureMatrix", "figure_matrix", "summarise_features", "region_polygons",
+           "unperturbed_ponding"]
 
 TOP_SHARE = 0.9  # "where the top is": the fewest cells holding 90% of a summit's births
 PONDED_SHARE = 0.5  # the ponded extent: cells ponded in at least half the realisations
@@ -176,10 +177,13 @@ def _areas(dem: Dem, labels: np.ndarray, ids: np.ndarray) -> np.ndarray:
     return ndimage.sum_labels(weights, labels, index=ids)
 
 
-def _top_cells(counts: np.ndarray, labels: np.ndarray, ids: np.ndarray) -> np.ndarray:
-    """Per region in ``ids``: the fewest cells holding TOP_SHARE of its births
-    (most-born first); returns a label raster (0 elsewhere)."""
-    flat, lab = counts.reshape(-1), labels.reshape(-1)
+def _top_cells(log: dict, labels: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    """Per region in ``ids``: the fewest cells holding TOP_SHARE of the births
+    of its figure's pair (the feature's summit in each realisation), most
+    frequent first; returns a label raster (0 elsewhere)."""
+    *_, birth = region_figures(log, with_birth=True)
+    lab = labels.reshape(-1)
+    flat = np.bincount(birth, minlength=lab.size).astype(np.float64)
     cand = np.flatnonzero((flat > 0) & np.isin(lab, ids))
     order = cand[np.lexsort((cand, -flat[cand], lab[cand]))]
     g, c = lab[order], flat[order].astype(np.float64)
@@ -209,16 +213,29 @@ def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
             "unperturbed_edge_limited": reg.edge_limited[k]}
 
 
+def unperturbed_ponding(dem: Dem, job) -> tuple[np.ndarray, np.ndarray]:
+    """Ponded area (m^2) and storage volume (vertical unit x m^2) of every region
+    on the DEM as given, indexed by region id (index 0: cells in no region).
+
+    A cell is ponded when it lies below its depression's spill level and the
+    depression is at least the job's cut-off deep; its volume is the depth
+    to the filled level times the cell's area. On a DEM a water surface is
+    the floor, so this is storage above the surface the DEM captured.
+    """
+    _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
+    k = len(job.regions) + 1
+    area, volume = np.zeros(k), np.zeros(k)
+    count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
+                  np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
+                  job.area_row, dem.shape[1], area, volume)
+    return area, volume
+
+
 def _pond_columns(result, ids: np.ndarray) -> dict:
     """Ponded area and volume per region: unperturbed, and mean / 5% / 95%
     over realisations (0 when a region holds no water)."""
-    dem, job, log, n = result.dem, result.job, result.log, result.n
-    p, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
-    k = len(job.regions) + 1
-    area0, vol0 = np.zeros(k), np.zeros(k)
-    count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
-                  np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
-                  job.area_row, dem.shape[1], area0, vol0)
+    log, n = result.log, result.n
+    area0, vol0 = unperturbed_ponding(result.dem, result.job)
     col = np.searchsorted(ids, log["pond_region"]) if ids.size else log["pond_region"]
     hit = (col < ids.size) & (ids[np.minimum(col, max(ids.size - 1, 0))] == log["pond_region"]) \
         if ids.size else np.zeros(0, bool)
@@ -266,8 +283,7 @@ def summarise_features(result) -> FeatureSummary:
     data = _table(result, fm, rows)
     ids = data["feature_id"]
     if job.kind == "peaks":
-        counts = result.layers[layer_name("peaks", "birth_probability")][0] * result.n
-        top = _top_cells(np.rint(counts), job.regions.labels, ids)
+        top = _top_cells(result.log, job.regions.labels, ids)
         data["top_area_m2"] = _areas(dem, top, ids)
     else:
         wet = result.layers[layer_name("depressions", "ponding_probability")][0] >= PONDED_SHARE

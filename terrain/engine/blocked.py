@@ -58,19 +58,22 @@ its reduced-graph vertices with the same merge times [1]_, [2]_.
 
 Memory
 ------
-Local step: as ``pairs()`` on one block (about 14 bytes per block cell:
-values with halo, key copy, validity, labels, flags) plus about 120 bytes
-per basin of the block. Global step: it never sees a cell that is not on a
-block boundary. A summary hands up, per boundary cell, 13 bytes of strip
-(vertex id, key, edge flag), and per reduced-graph vertex 32 bytes and per
-reduced edge 25 bytes; the glue holds these plus the cross-block edges and
-its union-find. Measured by ``bench/bench_blocked.py`` on 4096**2 smooth
-terrain plus white noise, 256**2 blocks (the global step's peak memory
-growth divided by the number of boundary cells): see the table in that
-script's docstring -- about 150-250 bytes per boundary cell (white noise
-is the worst case: nearly every boundary cell its own basin). The final
-pairs themselves are the output and are collected separately
-(:func:`collect`).
+Local step, beyond the block's values with halo: as ``pairs()`` on one
+block (labels 4 bytes per cell, the negated key 4 for peaks, validity and
+flags 1 each) plus per-basin tables; measured 12-15 bytes per block cell on
+terrain plus noise, 40-44 on white noise (``bench/bench_blocked.py``).
+
+Global step: it never sees a cell that is not on a block boundary. Per
+boundary cell (a cell facing another block) a summary hands up 13 bytes
+of strip (vertex id, key, edge flag); per reduced-graph vertex 32 bytes
+(cell, key, first edge cell and its key) and per reduced edge 25 bytes.
+Measured per boundary cell on a 4096**2 raster, the same for 1024**2 and
+256**2 blocks: handed up 19 bytes (terrain plus noise) to 40 (white noise,
+the worst case: nearly every boundary cell is its own basin); peak memory
+of :func:`glue` 21-30 bytes (terrain plus noise) to 135 (white noise).
+For 2e9 cells in 1024**2 blocks (7.7e6 boundary cells) that is at most
+about 1 GB. The final pairs are the output; they travel in the summaries
+and are merged by :func:`collect`, which the glue does not need.
 
 References
 ----------
@@ -421,24 +424,30 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
 # global step
 # ----------------------------------------------------------------------------
 def _grid(summaries: Sequence[BlockSummary]):
-    """Block rows and columns of a full tiling; (i, j) -> summary index."""
+    """Block rows and columns of a full grid tiling; (i, j) -> summary index."""
+    nr, nc = summaries[0].shape
     rows = sorted({s.window.r0 for s in summaries})
     cols = sorted({s.window.c0 for s in summaries})
-    at = {(rows.index(s.window.r0), cols.index(s.window.c0)): k for k, s in enumerate(summaries)}
-    if len(at) != len(summaries) or len(at) != len(rows) * len(cols):
+    ri = {r: i for i, r in enumerate(rows)}
+    ci = {c: j for j, c in enumerate(cols)}
+    at = {(ri[s.window.r0], ci[s.window.c0]): k for k, s in enumerate(summaries)}
+    ends_r, ends_c = rows[1:] + [nr], cols[1:] + [nc]
+    if len(at) != len(summaries) or len(at) != len(rows) * len(cols) or rows[0] != 0 or \
+            cols[0] != 0 or any(s.window.r1 != ends_r[ri[s.window.r0]] or
+                                s.window.c1 != ends_c[ci[s.window.c0]] for s in summaries):
         raise OptionError("block summaries do not tile the raster as a grid")
     return rows, cols, at
 
 
 def _check_same(summaries: Sequence[BlockSummary]) -> None:
+    if not summaries:
+        raise OptionError("no block summaries to glue")
     s0 = summaries[0]
     for s in summaries:
         if (s.shape, s.kind, s.connectivity, s.edge_outlet) != (
                 s0.shape, s0.kind, s0.connectivity, s0.edge_outlet):
             raise OptionError("block summaries disagree on shape, kind, connectivity or edge_outlet")
-    if sum((s.window.r1 - s.window.r0) * (s.window.c1 - s.window.c0) for s in summaries) != \
-            s0.shape[0] * s0.shape[1]:
-        raise OptionError("block summaries do not cover the raster exactly")
+    _grid(summaries)
 
 
 def _strip_line(summaries, ks, side, off):

@@ -38,6 +38,7 @@ NOTERM = -2
 # ----------------------------------------------------------------------------
 @njit(cache=True, inline="always")
 def _flag_cell(vh, r, c, nr, nc, hr, hc, sides, dr, dc):
+    """``EDGE``/``TERM`` bits of valid block cell (r, c); see :func:`cell_flags`."""
     hnr, hnc = vh.shape
     f = 0
     if (r == 0 and sides[0]) or (r == nr - 1 and sides[1]) or \
@@ -365,6 +366,7 @@ def fill_levels(zk, T, X, jcell, jkey, r0, c0, nc, ncols):
 # ----------------------------------------------------------------------------
 @njit(cache=True, inline="always")
 def _kbefore(ka, ia, kb, ib):
+    """True when the cell (key ``ka``, index ``ia``) precedes (``kb``, ``ib``)."""
     return ka < kb or (ka == kb and ia < ib)
 
 

@@ -112,7 +112,7 @@ from . import blocked_kernels as _k
 from .grid import forward_offsets, offsets
 from .persistence import KINDS, Pairs, _descend, _filled, _resolve
 
-__all__ = ["Window", "BlockSummary", "Resolution", "windows", "halo", "read_block", "local",
+__all__ = ["Window", "Strip", "BlockSummary", "Resolution", "windows", "halo", "read_block", "local",
            "glue", "collect", "finish", "blocked_pairs", "blocked_fill"]
 
 TOP, BOTTOM, LEFT, RIGHT = range(4)
@@ -636,18 +636,24 @@ def blocked_pairs(source: Any, *, kind: str, connectivity: int = 8, edge_outlet:
     source : array-like
         Anything with ``.shape`` and 2-D slicing ``source[r0:r1, c0:c1]``
         returning values with NaN for nodata: a numpy array, ``np.memmap``,
-        a zarr array, or a lazy object computing each window.
+        a zarr array, or a lazy object computing each window. (Pages of a
+        plain ``np.memmap`` that were read stay mapped and count in the
+        resident set, as reclaimable page cache; a reader that opens the
+        file per window does not keep them.)
     kind, connectivity, edge_outlet
         As :func:`terrain.engine.persistence.pairs`.
     block : int or (rows, cols)
         Block size (the last row and column of blocks are clipped).
     min_persistence : float
         Drop finite pairs of lower persistence (the result is the filtered
-        subset of the full result, in the same order).
+        subset of the full result, in the same order). Applied in each block
+        already, so the summaries carry only the pairs that are kept.
     map : callable
-        ``map(fn, windows)``, e.g. ``executor.map`` of a process pool or a
-        Dask client, to run the local tasks in parallel; each task reads its
-        own window from ``source`` (which must then pickle cheaply).
+        ``map(fn, windows)`` returning results in order, e.g. ``executor.map``
+        of a process pool, or ``lambda f, w: client.gather(client.map(f, w))``
+        for a Dask client, to run the local tasks in parallel. Each task reads
+        its own window from ``source``, which must then pickle cheaply (a
+        path-backed reader, a zarr array; a numpy array is pickled whole).
     mask : array-like, optional
         True marks nodata, sliced like ``source``.
 

@@ -26,8 +26,9 @@ The raster is cut into a grid of blocks. Three pure steps, each on arrays:
    it is handed up as an edge of a *reduced graph* whose vertices are the
    terminal basins and the birth basin of every older closed component
    that joins a terminal one (its birth may win the global elder rule).
-   This is the boundary tree of distributed merge trees [1]_: what a block
-   hands up is the part of its merge tree that touches the block boundary.
+   As in distributed merge trees [1]_, a block settles what its boundary
+   cannot affect and hands up only the part of its merge tree that
+   touches the block boundary.
 2. :func:`glue` (global, one task): the reduced graphs of all blocks plus
    the cross-block neighbour edges (one per pair of facing boundary
    cells, built from the blocks' boundary strips, lowest kept per vertex
@@ -83,8 +84,9 @@ References
 .. [2] Carr, H. A., Weber, G. H., Sewell, C. M., Ahrens, J. P. (2016).
    Parallel peak pruning for scalable SMP contour tree computation. IEEE
    6th Symposium on Large Data Analysis and Visualization (LDAV), 75-84.
-   doi:10.1109/LDAV.2016.7874312 (merge trees by pruning extrema that
-   need no global information).
+   doi:10.1109/LDAV.2016.7874312 (merge trees computed in parallel by
+   pruning extrema, a Boruvka-like contraction of the minimum spanning
+   forest).
 .. [3] Edelsbrunner, H., Letscher, D., Zomorodian, A. (2002). Topological
    persistence and simplification. Discrete Comput. Geom. 28, 511-533.
    doi:10.1007/s00454-002-2885-2 (elder rule).

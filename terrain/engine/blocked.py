@@ -275,6 +275,26 @@ class _Block(NamedTuple):
     flags: np.ndarray
 
 
+class _Merged(NamedTuple):
+    """What ``local_merge`` returns (see its docstring)."""
+
+    pb: np.ndarray
+    pd: np.ndarray
+    pe: np.ndarray
+    esb: np.ndarray
+    ese: np.ndarray
+    hvb: np.ndarray
+    hve: np.ndarray
+    hu: np.ndarray
+    hv: np.ndarray
+    hw: np.ndarray
+    tt: np.ndarray
+    node: np.ndarray
+    ly: np.ndarray
+    lo: np.ndarray
+    lw: np.ndarray
+
+
 def _check(kind: str, connectivity: int) -> None:
     if kind not in KINDS:
         raise OptionError(f"kind must be one of {KINDS}, got {kind!r}")
@@ -337,7 +357,7 @@ def _local_engine(blk: _Block, connectivity: int, outlet: bool):
         ew = np.concatenate([ew, emin[has]])
     order = np.lexsort((ew, blk.zk[ew]))
     merged = _k.local_merge(blk.zk, blk.flags, minc, emin, term, ea[order], eb[order], ew[order])
-    return lab, minc, term, merged
+    return lab, minc, _Merged(*merged)
 
 
 def _to_global(cells: np.ndarray, blk: _Block) -> np.ndarray:
@@ -401,8 +421,8 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
     _check(kind, connectivity)
     outlet = bool(kind == "pits" if edge_outlet is None else edge_outlet)
     blk = _prepare_block(block_values, window, shape, kind, connectivity)
-    lab, minc, term, m = _local_engine(blk, connectivity, outlet)
-    pb, pd, pe, esb, ese, hvb, hve, hu, hv, hw = m[:10]
+    lab, minc, m = _local_engine(blk, connectivity, outlet)
+    pb, pd, pe, esb, ese, hvb, hve = m.pb, m.pd, m.pe, m.esb, m.ese, m.hvb, m.hve
     zk = blk.zk
     bk, dk = zk[pb].astype(np.float64), zk[pd].astype(np.float64)
     if min_persistence > 0:
@@ -418,8 +438,9 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
         _to_global(pb, blk), _to_global(pd, blk), bk, dk, pe,
         _to_global(esb, blk), zk[esb].astype(np.float64), ese,
         _to_global(vb, blk), zk[vb].astype(np.float64), _to_global(hve, blk), effk,
-        hu.astype(np.int32), hv.astype(np.int32), _to_global(hw, blk), zk[hw].astype(np.float64),
-        (blk.flags[hw] & _k.EDGE) != 0, _strips(blk, lab, vertex_of_basin))
+        m.hu.astype(np.int32), m.hv.astype(np.int32), _to_global(m.hw, blk),
+        zk[m.hw].astype(np.float64), (blk.flags[m.hw] & _k.EDGE) != 0,
+        _strips(blk, lab, vertex_of_basin))
 
 
 # ----------------------------------------------------------------------------
@@ -598,9 +619,8 @@ def finish(block_values: np.ndarray, window: Window | Sequence[int], resolution:
         raise OptionError("the filled surface needs kind='pits' with the edge as outlet")
     window = Window(*(int(x) for x in window))
     blk = _prepare_block(block_values, window, resolution.shape, "pits", resolution.connectivity)
-    lab, minc, _term, m = _local_engine(blk, resolution.connectivity, True)
-    tt, node, ly, lo, lw = m[10:]
-    T, X = _k.basin_links(blk.zk, tt, node, ly, lo, lw, minc.size)
+    lab, minc, m = _local_engine(blk, resolution.connectivity, True)
+    T, X = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
     level = _k.fill_levels(blk.zk, T, X, resolution.join_cell[window], resolution.join_key[window],
                            window.r0, window.c0, blk.nc, resolution.shape[1])
     out = np.empty(blk.nr * blk.nc, np.float64)

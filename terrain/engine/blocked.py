@@ -111,8 +111,9 @@ import numpy as np
 
 from ..errors import OptionError
 from . import blocked_kernels as _k
+from .basins import descend, fill_cells, resolve
 from .grid import forward_offsets, offsets
-from .persistence import KINDS, Pairs, _descend, _filled, _resolve
+from .persistence import KINDS, Pairs
 
 __all__ = ["Window", "Strip", "BlockSummary", "Resolution", "windows", "halo", "read_block", "local",
            "glue", "collect", "finish", "blocked_pairs", "blocked_fill"]
@@ -337,8 +338,8 @@ def _local_engine(blk: _Block, connectivity: int, outlet: bool):
     fr, fc = forward_offsets(connectivity)
     has_nodata = not blk.valid.all()
     lab = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
-    _descend(blk.zk, blk.valid, has_nodata, nr, nc, dr, dc, lab)
-    minc = _resolve(blk.valid, lab)
+    descend(blk.zk, blk.valid, has_nodata, nr, nc, dr, dc, lab)
+    minc = resolve(blk.valid, lab)
     nb = minc.size
     cap = 1024
     while cap < 8 * nb:
@@ -624,7 +625,7 @@ def finish(block_values: np.ndarray, window: Window | Sequence[int], resolution:
     level = _k.fill_levels(blk.zk, T, X, resolution.join_cell[window], resolution.join_key[window],
                            window.r0, window.c0, blk.nc, resolution.shape[1])
     out = np.empty(blk.nr * blk.nc, np.float64)
-    _filled(blk.z, blk.valid, lab, level, out)
+    fill_cells(blk.z, blk.valid, lab, level, out)
     return out.reshape(blk.nr, blk.nc)
 
 

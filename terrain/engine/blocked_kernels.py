@@ -25,7 +25,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .persistence import _before, _find, _upsert
+from .basins import before, find, upsert
 
 EDGE = 1  # cell on the raster edge or next to nodata
 TERM = 2  # valid cell with a valid neighbour in another block
@@ -111,18 +111,18 @@ def block_boundaries(zk, valid, flags, has_nodata, nr, nc, fr, fc, lab, nb, emin
             if fast and not last_row and 0 < c < nc - 1:
                 j = i + 1
                 if lab[j] != li:
-                    used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 if conn8:
                     j = i + nc - 1
                     if lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 j = i + nc
                 if lab[j] != li:
-                    used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 if conn8:
                     j = i + nc + 1
                     if lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
             else:
                 for k in range(nf):
                     rr = r + fr[k]
@@ -131,7 +131,7 @@ def block_boundaries(zk, valid, flags, has_nodata, nr, nc, fr, fc, lab, nb, emin
                         continue
                     j = rr * nc + cc
                     if valid[j] and lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
             if 2 * used > cap:
                 return hk[:0], hk[:0], hk[:0], False
             f = flags[i]
@@ -161,7 +161,7 @@ def _later(zk, e, w):
     """The later of cell ``e`` (-1: none) and cell ``w``; -1 when ``e`` is none."""
     if e < 0:
         return -1
-    return w if _before(zk, e, w) else e
+    return w if before(zk, e, w) else e
 
 
 @njit(cache=True)
@@ -228,15 +228,15 @@ def local_merge(zk, flags, minc, emin, term, ea, eb, ew):
     nlog = 0
     for t in range(ew.size):
         w = ew[t]
-        ra = _find(parent, ea[t])
-        rb = _find(parent, eb[t])
+        ra = find(parent, ea[t])
+        rb = find(parent, eb[t])
         if ra == rb:
             continue
         if ra == out_id:
             old, young = ra, rb
         elif rb == out_id:
             old, young = rb, ra
-        elif _before(zk, minc[ra], minc[rb]):
+        elif before(zk, minc[ra], minc[rb]):
             old, young = ra, rb
         else:
             old, young = rb, ra
@@ -248,11 +248,11 @@ def local_merge(zk, flags, minc, emin, term, ea, eb, ew):
                 pb[npairs] = b
                 pd[npairs] = w
                 e = eff[young]
-                pe[npairs] = (e >= 0 and _before(zk, e, w)) or (flags[w] & EDGE) != 0
+                pe[npairs] = (e >= 0 and before(zk, e, w)) or (flags[w] & EDGE) != 0
                 npairs += 1
             if ey >= 0 and tt[old] != NOTERM and old != out_id:
                 x = node[old]
-                if hve[x] < 0 or _before(zk, ey, hve[x]):
+                if hve[x] < 0 or before(zk, ey, hve[x]):
                     hve[x] = ey
         elif tt[old] == NOTERM:
             # an older closed component joins a terminal one: its birth goes up
@@ -270,7 +270,7 @@ def local_merge(zk, flags, minc, emin, term, ea, eb, ew):
             hv[ne_h] = node[young]
             hw[ne_h] = w
             ne_h += 1
-        if ey >= 0 and (eff[old] < 0 or _before(zk, ey, eff[old])):
+        if ey >= 0 and (eff[old] < 0 or before(zk, ey, eff[old])):
             eff[old] = ey
         parent[young] = old
         ly[nlog] = young
@@ -319,7 +319,7 @@ def basin_links(zk, tt, node, ly, lo, lw, nb):
         w = lw[q]
         if tt[o] != NOTERM:
             # o's component held a boundary cell at tt[o] (-1: from birth)
-            T[y] = w if (tt[o] < 0 or _before(zk, tt[o], w)) else tt[o]
+            T[y] = w if (tt[o] < 0 or before(zk, tt[o], w)) else tt[o]
             X[y] = node[o]
         else:
             T[y] = T[o]
@@ -474,8 +474,8 @@ def glue_merge(vcell, vkey, veff, veffk, ea, eb, ew, ewk, ewf):
     for t in range(ew.size):
         w = ew[t]
         wk = ewk[t]
-        ra = _find(parent, ea[t])
-        rb = _find(parent, eb[t])
+        ra = find(parent, ea[t])
+        rb = find(parent, eb[t])
         if ra == rb:
             continue
         if ra == out_id:

@@ -61,6 +61,7 @@ import numpy as np
 from numba import njit
 
 from ..errors import OptionError
+from .basins import before, descend, fill_cells, find, resolve, upsert
 from .grid import forward_offsets, is_edge, offsets
 
 __all__ = ["Pairs", "pairs", "Fill", "pits_and_levels", "pairs_and_fill", "count_ponding",
@@ -117,167 +118,6 @@ class Pairs:
 # ----------------------------------------------------------------------------
 # compiled kernels
 # ----------------------------------------------------------------------------
-@njit(cache=True, inline="always")
-def _before(zk, a, b):
-    """True when cell ``a`` precedes cell ``b`` in the (key, index) order."""
-    za = zk[a]
-    zb = zk[b]
-    return za < zb or (za == zb and a < b)
-
-
-@njit(cache=True, inline="always")
-def _lower(zk, bz, bi, j):
-    """The lower of (value ``bz``, cell ``bi``) and cell ``j`` (ties keep ``bi``)."""
-    zj = zk[j]
-    if zj < bz:
-        return zj, j
-    return bz, bi
-
-
-@njit(cache=True)
-def _descend_inner(zk, nr, nc, conn8, lab):
-    """Pass 1 on interior cells of a raster without nodata (unrolled).
-
-    Neighbours are visited in ascending flat index with the cell itself in
-    its place, so a strict ``<`` breaks ties by index.
-    """
-    for r in range(1, nr - 1):
-        for i in range(r * nc + 1, r * nc + nc - 1):
-            if conn8:
-                bi = i - nc - 1
-                bz = zk[bi]
-                bz, bi = _lower(zk, bz, bi, i - nc)
-                bz, bi = _lower(zk, bz, bi, i - nc + 1)
-            else:
-                bi = i - nc
-                bz = zk[bi]
-            bz, bi = _lower(zk, bz, bi, i - 1)
-            bz, bi = _lower(zk, bz, bi, i)
-            bz, bi = _lower(zk, bz, bi, i + 1)
-            if conn8:
-                bz, bi = _lower(zk, bz, bi, i + nc - 1)
-            bz, bi = _lower(zk, bz, bi, i + nc)
-            if conn8:
-                bz, bi = _lower(zk, bz, bi, i + nc + 1)
-            lab[i] = bi
-
-
-@njit(cache=True)
-def _descend(zk, valid, has_nodata, nr, nc, dr, dc, lab):
-    """Pass 1: each valid cell points to its lowest neighbour in the total
-    order, itself included (a cell pointing to itself is a local minimum)."""
-    fast = not has_nodata and nr >= 3 and nc >= 3
-    if fast:
-        _descend_inner(zk, nr, nc, dr.size == 8, lab)
-    nn = dr.size
-    for r in range(nr):
-        step = nc - 1 if (fast and 0 < r < nr - 1) else 1
-        for c in range(0, nc, max(step, 1)):
-            i = r * nc + c
-            if not valid[i]:
-                continue
-            bi = i
-            bz = zk[i]
-            for k in range(nn):
-                rr = r + dr[k]
-                cc = c + dc[k]
-                if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
-                    continue
-                j = rr * nc + cc
-                if valid[j]:
-                    zj = zk[j]
-                    if zj < bz or (zj == bz and j < bi):
-                        bz = zj
-                        bi = j
-            lab[i] = bi
-
-
-@njit(cache=True)
-def _resolve(valid, lab):
-    """Pass 2: number the minima and label every cell ``-(basin + 1)``.
-
-    Returns the cell of each basin's minimum.
-    """
-    n = lab.size
-    cap = max(16, n // 64)
-    minc = np.empty(cap, np.int64)
-    nb = 0
-    for i in range(n):
-        if not valid[i]:
-            continue
-        j = lab[i]
-        if j < 0:
-            continue
-        if j < i:  # target already resolved: the common case
-            lab[i] = lab[j]
-            continue
-        k = i
-        while True:
-            x = lab[k]
-            if x < 0:
-                root = x
-                break
-            if x == k:  # an unnumbered minimum
-                if nb == cap:
-                    cap *= 2
-                    grown = np.empty(cap, np.int64)
-                    grown[:nb] = minc[:nb]
-                    minc = grown
-                minc[nb] = k
-                nb += 1
-                root = -nb
-                lab[k] = root
-                break
-            k = x
-        k = i
-        while lab[k] >= 0:
-            nxt = lab[k]
-            lab[k] = root
-            k = nxt
-    return minc[:nb]
-
-
-@njit(cache=True, inline="always")
-def _hslot(a, b, mask):
-    """Home slot of basin pair (a, b) in the open-addressing table."""
-    # each basin's partners share a small region of the table: basins met
-    # together in raster order stay together in cache
-    return (a * 8 + (b & 7)) & mask
-
-
-@njit(cache=True, inline="always")
-def _upsert(zk, hk, hw, hz, nb, i, j, li, lj):
-    """Record edge (i, j) between basins; returns 1 when a new pair is added."""
-    zi = zk[i]
-    zj = zk[j]
-    if zj < zi or (zj == zi and j < i):
-        w = i
-        zw = zi
-    else:
-        w = j
-        zw = zj
-    a = -li - 1
-    b = -lj - 1
-    if a > b:
-        a, b = b, a
-    key = a * nb + b
-    mask = hk.size - 1
-    s = _hslot(a, b, mask)
-    while True:
-        kk = hk[s]
-        if kk == key:
-            if zw < hz[s] or (zw == hz[s] and w < hw[s]):
-                hz[s] = zw
-                hw[s] = w
-            return 0
-        if kk < 0:
-            hk[s] = key
-            hz[s] = zw
-            hw[s] = w
-            return 1
-        s = (s + 1) & mask
-
-
 @njit(cache=True)
 def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, cap):
     """Pass 3: lowest pass between every two adjacent basins.
@@ -308,18 +148,18 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
             if fast and not last_row and 0 < c < nc - 1:
                 j = i + 1
                 if lab[j] != li:
-                    used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 if conn8:
                     j = i + nc - 1
                     if lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 j = i + nc
                 if lab[j] != li:
-                    used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 if conn8:
                     j = i + nc + 1
                     if lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
             else:
                 for k in range(nf):
                     rr = r + fr[k]
@@ -328,7 +168,7 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
                         continue
                     j = rr * nc + cc
                     if valid[j] and lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
             if 2 * used > cap:
                 return hk[:0], hk[:0], hk[:0], False
             border = r == 0 or c == 0 or last_row or c == nc - 1
@@ -348,19 +188,6 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
             ew[q] = hw[t]
             q += 1
     return ea, eb, ew, True
-
-
-@njit(cache=True, inline="always")
-def _find(parent, a):
-    """Union-find root of ``a``, compressing the path."""
-    root = a
-    while parent[root] != root:
-        root = parent[root]
-    while parent[a] != root:
-        nxt = parent[a]
-        parent[a] = root
-        a = nxt
-    return root
 
 
 @njit(cache=True, inline="always")
@@ -414,8 +241,8 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_leve
         w_edge = is_edge(valid, r, w - r * nc, nr, nc, dr, dc)
         npend = 0
         while t < ne and ew[t] == w:
-            ra = _find(parent, ea[t])
-            rb = _find(parent, eb[t])
+            ra = find(parent, ea[t])
+            rb = find(parent, eb[t])
             t += 1
             if ra == rb:
                 continue
@@ -424,7 +251,7 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_leve
                 old, young = ra, rb
             elif rb == out_id:
                 old, young = rb, ra
-            elif _before(zk, minc[ra], minc[rb]):
+            elif before(zk, minc[ra], minc[rb]):
                 old, young = ra, rb
             else:
                 old, young = rb, ra
@@ -433,7 +260,7 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_leve
                 e = emin[young]
                 pb[npairs] = b
                 pd[npairs] = w
-                pe[npairs] = (e >= 0 and not _before(zk, w, e)) or w_edge
+                pe[npairs] = (e >= 0 and not before(zk, w, e)) or w_edge
                 pair_of[young] = npairs
                 npairs += 1
             if merge_level >= 0 and (zk[b] == zk[w] or zk[w] - zk[b] < merge_level):
@@ -452,7 +279,7 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_leve
                 continue
             eo = emin[old]
             ey = emin[pend_young[q]]
-            if ey >= 0 and (eo < 0 or _before(zk, ey, eo)):
+            if ey >= 0 and (eo < 0 or before(zk, ey, eo)):
                 emin[old] = ey
     esb, ese = _essential(parent, minc, emin)
     join, jroot = _joins(zk, up, mt, nb, out_id, outlet)
@@ -515,17 +342,6 @@ def _fill_levels(zf, join, jroot, minc):
             level[b] = zf[join[b]]
             depth[b] = level[b] - zf[minc[jroot[b]]]
     return level, depth
-
-
-@njit(cache=True)
-def _filled(zf, valid, lab, level, out):
-    """Filled surface: max(z, the fill level of the cell's basin); NaN on nodata."""
-    for i in range(zf.size):
-        if valid[i]:
-            lv = level[-lab[i] - 1]
-            out[i] = lv if lv > zf[i] else zf[i]
-        else:
-            out[i] = np.nan
 
 
 @njit(cache=True)
@@ -595,8 +411,8 @@ def _engine(zk, valid, connectivity, outlet, merge_level=-1.0):
     vf = valid.reshape(-1)
     lab = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
     has_nodata = not vf.all()
-    _descend(zf, vf, has_nodata, nr, nc, dr, dc, lab)
-    minc = _resolve(vf, lab)
+    descend(zf, vf, has_nodata, nr, nc, dr, dc, lab)
+    minc = resolve(vf, lab)
     nb = minc.size
     cap = 1024
     while cap < 8 * nb:
@@ -863,5 +679,5 @@ def pairs_and_fill(z: np.ndarray, *, connectivity: int = 8,
     """
     p, fill = pits_and_levels(z, connectivity=connectivity, mask=mask)
     filled = np.empty(fill.zf.size, np.float64)
-    _filled(fill.zf, fill.valid, fill.labels, fill.level, filled)
+    fill_cells(fill.zf, fill.valid, fill.labels, fill.level, filled)
     return p, filled.reshape(np.shape(z))

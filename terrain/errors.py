@@ -18,7 +18,7 @@ from collections.abc import Callable
 
 __all__ = [
     "CairnError", "DemError", "DemNotFoundError", "NotARasterError", "CorruptRasterError",
-    "NoValidCellsError", "BandError", "WindowError", "OptionError", "EmbeddingError",
+    "NoValidCellsError", "BandError", "WindowError", "OptionError",
     "OutputError", "CheckpointError", "MemoryGuardError", "SchedulerError", "WorkerError",
     "OutletError",
 ]
@@ -80,10 +80,6 @@ class WindowError(DemError, ValueError):
 # --- options and models --------------------------------------------------------
 class OptionError(CairnError, ValueError):
     """A parameter value is out of range or inconsistent with others."""
-
-
-class EmbeddingError(CairnError, ValueError):
-    """Circulant embedding of a covariance never became non-negative definite."""
 
 
 # --- outputs, runs, resources ---------------------------------------------------

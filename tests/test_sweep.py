@@ -47,11 +47,19 @@ def ridge_sweep():
 
 @pytest.mark.parametrize("kernel", ["gaussian", "triangular", "epanechnikov"])
 def test_p_first_follows_exact_probability_at_every_level(ridge_sweep, kernel):
+    # the two summits compete alone while the ridge (2 m below them) lies at least
+    # 4 error standard deviations lower; at RMSE 1 a ridge cell can hold the highest
+    # point, and the flat ridge belongs (tie order) to the lower summit's region, so
+    # p_first of the higher one can only fall below the two-summit probability
     _, df, high, _ = ridge_sweep
     for level in LEVELS:
         row = df[(df.kernel == kernel) & (df.rmse == level) & (df.feature_id == high)].iloc[0]
         want = exact_p_higher_first(kernel, level, DELTA)
-        assert abs(row.p_first - want) <= 4 * math.sqrt(want * (1 - want) / N) + 1e-9, level
+        tol = 4 * math.sqrt(want * (1 - want) / N) + 1e-9
+        if level <= 0.5:
+            assert abs(row.p_first - want) <= tol, level
+        else:
+            assert 0.35 <= row.p_first <= want + tol, level
 
 
 def test_credit_share_moves_monotonically_to_even_split(ridge_sweep):

@@ -531,7 +531,9 @@ class Regions:
     edge. Regions are numbered by the persistence of their own pair,
     largest first (essential classes first), ties by the total order of
     their extremum, which is their rank among all pairs of the raster: the
-    same extremum keeps its number whatever the merge level.
+    same extremum keeps its number whatever the merge level. Cells of a flat
+    that is neither a summit nor a pit follow their steepest descent (ascent)
+    in the raster's tie order, so such a flat joins one neighbouring region.
 
     Attributes (one entry per region, index ``k - 1``)
     ----------

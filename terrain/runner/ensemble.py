@@ -271,7 +271,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
             "resumed_from": start, "stopped_early": stopped_early,
             "stop_statistic": acc.stop_statistic() if stop.active else None,
             "defaults": st.used,
-            "embedding_factor": st.sampler.field.factor if st.sampler.field is not None else None}
+            "field_kernel_radius_cells": list(st.sampler.field.radius) if st.sampler.field else None}
     return RunResult(dem, st.job, model, acc.layers(dem.shape), acc.log(), acc.n, st.params, info)
 
 

@@ -27,7 +27,8 @@ FLAGS = {
     "scheduler": "--scheduler", "checkpoint": "--checkpoint", "resume": "--resume",
     "target_se": "--target-se", "overwrite": "--overwrite", "force": "--force",
     "snap_m": "--snap", "outlets": "--outlets", "kind": "--kind", "backend": "--workers",
-    "draw": "--kernel",
+    "draw": "--kernel", "channel_area": "--channel-area", "conditioning": "--conditioning",
+    "max_breach_depth": "--max-breach-depth",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 

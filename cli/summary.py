@@ -43,6 +43,7 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
     from rich.table import Table
 
     from terrain.outlets import short
+    from terrain.summary.catchments import LEVELS
 
     console = Console(file=sys.stdout, width=120)
     frames = summary.frames
@@ -54,7 +55,7 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
             t.add_column(col, justify="right")
         c, sc, o = frames["catchments"], frames["subcatchments"], frames["outlets"]
         for i in range(len(c)):
-            k = i // 2
+            k = i // len(LEVELS)
             t.add_row(short(str(c["outlet_id"][i]), 24), f"{c['level'][i]:.0%}",
                       f"{c['area_m2'][i] / 1e6:.3f}",
                       f"{c['area_mean_m2'][i] / 1e6:.3f} ({c['area_p05_m2'][i] / 1e6:.3f}–"

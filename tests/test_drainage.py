@@ -168,6 +168,19 @@ def test_conditioned_surfaces_are_depression_free_and_cuts_respect_the_limit(see
         assert np.all(out[ok] <= ref[ok])
 
 
+def test_breach_works_in_place_on_whole_metre_float64():
+    # whole metres in float64 are exact in float32, where the engine works: the result
+    # must still land in the caller's array (constructed: a one-cell pit 1 m deep)
+    z = np.add.outer(np.arange(9.0), np.zeros(9))
+    z[4, 4] = 2.0  # its neighbours: 3, 4 and 5 m; the rows north fall to 0
+    out = z.copy()
+    condition(out, method="breach")
+    # the cheapest cut: one cell of row 3 (3 m) lowered to 2 m, towards the rows below 2 m
+    (r,), (c,) = np.nonzero(out != z)
+    assert r == 3 and abs(c - 4) <= 1 and out[r, c] == 2.0
+    np.testing.assert_array_equal(fill_depressions(out), out)
+
+
 # -- flow: D8, D4, accumulation in square metres -----------------------------------
 def test_d4_routes_to_edge_neighbours_only():
     n = 20

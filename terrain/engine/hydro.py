@@ -373,6 +373,10 @@ class Flow:
         self.acc = acc
 
 
+def _per_row(v, nr: int) -> np.ndarray:
+    return np.broadcast_to(np.asarray(v, np.float64), (nr,)).copy()
+
+
 def route(z: np.ndarray, *, cell_w, cell_h, cell_area, connectivity: int = 8) -> Flow:
     """Receivers, order and accumulation on a conditioned surface (NaN = nodata).
 
@@ -399,15 +403,14 @@ def route(z: np.ndarray, *, cell_w, cell_h, cell_area, connectivity: int = 8) ->
     n = nr * nc
     zf = np.ascontiguousarray(z).reshape(-1)
     valid = np.isfinite(zf)
-    rows = lambda v: np.broadcast_to(np.asarray(v, np.float64), (nr,)).copy()  # noqa: E731
     dr, dc = offsets(connectivity)
     rec = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
-    _receivers(zf, valid, nr, nc, rows(cell_w), rows(cell_h), dr, dc, rec)
+    _receivers(zf, valid, nr, nc, _per_row(cell_w, nr), _per_row(cell_h, nr), dr, dc, rec)
     queue = np.empty(n, rec.dtype)
     flags = np.empty(n, np.uint8)
     _route_flats(zf, valid, nr, nc, dr, dc, rec, queue, flags)
     acc = np.empty(n, np.float64)
-    m = _order_and_accumulate(rec, valid, nc, rows(cell_area), queue, flags, acc)
+    m = _order_and_accumulate(rec, valid, nc, _per_row(cell_area, nr), queue, flags, acc)
     return Flow((nr, nc), connectivity, valid, rec, queue[:m], acc)
 
 

@@ -132,18 +132,19 @@ def breach_kernel(z, valid, nr, nc, dr, dc, pits, max_depth, owner, back, chan):
     at or below ``zp``, or is an exit (raster edge, next to nodata); the
     cells of that path are lowered to ``zp`` and flagged in ``chan``. Ties
     are broken by cost, then cell index. A pit already lowered onto an
-    earlier channel is skipped. Scratch: ``owner`` (int32, -1 initially;
-    which search reached a cell), ``back`` (int8, the neighbour a cell was
-    reached from).
+    earlier channel drains along it and is skipped. Scratch: ``owner``
+    (int32, -1 initially; which search reached a cell), ``back`` (int8, the
+    neighbour a cell was reached from).
 
-    Returns the number of pits breached.
+    Returns the number of pits that now drain.
     """
     hk = np.empty(64, np.float64)
     hc = np.empty(64, np.int64)
     done = 0
     for t in range(pits.size):
         p = pits[t]
-        if chan[p]:
+        if chan[p]:  # lowered onto an earlier channel: drains already
+            done += 1
             continue
         zp = z[p]
         owner[p] = t
@@ -202,7 +203,7 @@ def condition(z: np.ndarray, *, connectivity: int = 8, method: str = "breach",
     left, are then filled. No cell is lowered by more than ``max_depth``.
     The raster edge and nodata are exits.
 
-    Returns the number of depressions breached.
+    Returns the number of depressions breached (0 when filling).
 
     References
     ----------

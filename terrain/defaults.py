@@ -38,7 +38,7 @@ RULES = {
     "channel_area": f"{CHANNEL_AREA_M2:g} m^2 (0.1 km^2; common practice for channel initiation "
                     "on DEMs, no single source)",
     "conditioning": f"{CONDITIONING} (breaching alters a DEM less than filling; Lindsay & Creed "
-                    "2005, Hydrological Processes 19(16))",
+                    "2005, Hydrological Processes 19(16), cited from memory)",
     "max_breach_depth": f"{MAX_BREACH_DEPTH:g} vertical units (deeper depressions are filled; "
                         "common practice, no source)",
 }

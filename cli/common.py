@@ -35,6 +35,8 @@ FLAGS = {
     "target_se": "--target-se", "overwrite": "--overwrite", "force": "--force",
     "snap_m": "--snap", "outlets": "--outlets", "kind": "--kind", "backend": "--workers",
     "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
+    "channel_area": "--channel-area", "conditioning": "--conditioning",
+    "max_breach_depth": "--max-breach-depth",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 

@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import click
+import numpy as np
 
-from terrain.jobs import CreditJob
+from terrain.jobs import CatchmentJob, CreditJob
 from terrain.resources import describe_memory
 
 from . import options
@@ -48,6 +49,8 @@ def inspect_cmd(dem, band, bbox):
         ("elevation", f"{zv.min():g} to {zv.max():g} (mean {zv.mean():.2f})"),
         ("memory (peaks)", describe_memory(d, CreditJob("peaks"))),
         ("memory (depressions)", describe_memory(d, CreditJob("depressions"))),
+        ("memory (catchments, 3 outlets)",
+         describe_memory(d, CatchmentJob(("1", "2", "3"), np.zeros((3, 2))))),
     ]
     width = max(len(k) for k, _ in lines)
     for k, v in lines:

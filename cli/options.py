@@ -8,10 +8,11 @@ from __future__ import annotations
 
 import click
 
+from terrain import defaults
 from terrain.noise import COVARIANCES, KERNELS
 
-__all__ = ["compose", "accuracy", "error_model", "cutoff", "attribution", "dem_input", "run",
-           "outdir", "RESUME_HELP", "TARGET_SE_HELP"]
+__all__ = ["compose", "accuracy", "error_model", "cutoff", "attribution", "connectivity",
+           "drainage", "dem_input", "run", "outdir", "RESUME_HELP", "TARGET_SE_HELP"]
 
 
 def compose(*decorators):
@@ -106,14 +107,18 @@ base = click.option("--base", type=float, default=None,
                     help="Level the highest summit's prominence is measured to, in vertical "
                          "units [default: the lowest valid cell; e.g. 0 for sea level].")
 
+connectivity = click.option(
+    "--connectivity", type=int, default=8, show_default=True,
+    help="Cell neighbourhood: 8 (with diagonals) or 4 (edge neighbours only); for drainage, "
+         "D8 or D4 flow.")
+
 attribution = compose(
     click.option("--threshold-jitter", type=float, default=0.0, show_default=True,
                  help="Standard deviation (vertical units) of a cut-off drawn per realisation "
                       "around the minimum prominence or depth; 0 = a fixed cut-off."),
     click.option("--weight", default="persistence", show_default=True,
                  help="Credit a counted pair its prominence/depth (persistence) or 1 (count)."),
-    click.option("--connectivity", type=int, default=8, show_default=True,
-                 help="Cell neighbourhood: 8 (with diagonals) or 4."),
+    connectivity,
     click.option("--merge-level", type=float, default=None,
                  help="Knobs and hollows of the DEM less persistent than this (vertical units) "
                       "belong to the feature around them [default: 2 x RMSE, or the cut-off if "
@@ -122,6 +127,24 @@ attribution = compose(
                  help="A region is a feature (a table row) when counted in at least this share "
                       "of realisations (0 to 1)."),
 )
+
+
+def drainage():
+    """--channel-area, --conditioning, --max-breach-depth (defaults stated from the library)."""
+    return compose(
+        click.option("--channel-area", type=float, default=None, metavar="M2",
+                     help="Drainage area, in square metres, at which a cell counts as channel "
+                          f"[default: {defaults.CHANNEL_AREA_M2:g} m² = 0.1 km²; common "
+                          "practice, no single source]."),
+        click.option("--conditioning", default=None, metavar="breach|fill",
+                     help="Remove depressions by least-cost breaching (cut a channel from the "
+                          "pit to lower ground) or by filling to the spill level "
+                          f"[default: {defaults.CONDITIONING}]."),
+        click.option("--max-breach-depth", type=float, default=None, metavar="DEPTH",
+                     help="Breach depressions at most this deep and fill deeper ones, in the "
+                          "DEM's vertical units (metres for most DEMs); no cell is cut deeper "
+                          f"[default: {defaults.MAX_BREACH_DEPTH:g}]."),
+    )
 
 dem_input = compose(
     click.option("--band", type=int, default=None,

@@ -48,18 +48,36 @@ def print_summary(table, *, kind: str, units: str, n: int, outdir, caution: str,
     console.print(caution, style="italic")
 
 
-def print_catchments(rows, *, n: int, outdir, caution: str) -> None:
+def print_catchments(summary, result, *, outdir, caution: str) -> None:
+    """Per outlet and level: catchment and sub-catchment areas; where each outlet snapped."""
     from rich.table import Table
 
-    t = Table(title=f"Catchments ({n} realisations)", title_justify="left")
-    for col in ("outlet", "level", "area km²", "mean km²", "5–95% km²"):
-        t.add_column(col, justify="right")
-    for i in range(len(rows["outlet_id"])):
-        t.add_row(str(rows["outlet_id"][i]), f"{rows['level'][i]:.0%}",
-                  f"{rows['area_m2'][i] / 1e6:.3f}", f"{rows['area_mean_m2'][i] / 1e6:.3f}",
-                  f"{rows['area_p05_m2'][i] / 1e6:.3f}–{rows['area_p95_m2'][i] / 1e6:.3f}")
+    from terrain.outlets import short
+    from terrain.summary.catchments import LEVELS
+
     console = _console()
-    console.print(t)
+    frames = summary.frames
+    if frames:
+        t = Table(title=f"Catchments and sub-catchments ({result.n} realisations)",
+                  title_justify="left")
+        for col in ("outlet", "level", "catchment km²", "mean (5–95%) km²", "sub-catchment km²",
+                    "snapped (share)", "snap m"):
+            t.add_column(col, justify="right")
+        c, sc, o = frames["catchments"], frames["subcatchments"], frames["outlets"]
+        for i in range(len(c)):
+            k = i // len(LEVELS)
+            t.add_row(short(str(c["outlet_id"][i]), 24), f"{c['level'][i]:.0%}",
+                      f"{c['area_m2'][i] / 1e6:.3f}",
+                      f"{c['area_mean_m2'][i] / 1e6:.3f} ({c['area_p05_m2'][i] / 1e6:.3f}–"
+                      f"{c['area_p95_m2'][i] / 1e6:.3f})", f"{sc['area_m2'][i] / 1e6:.3f}",
+                      f"{o['snapped_share'][k]:.0%}", f"{o['snap_distance_mean_m'][k]:.0f}")
+        console.print(t)
+    name = "channel_probability"
+    p = result.layers[name][0]
+    share = float(np.nanmean(p[~result.dem.nodata] >= 0.5))
+    console.print(f"channel in >= 50% of realisations: {share:.1%} of cells "
+                  f"(drainage area >= {result.job.channel_area:g} m², {result.job.conditioning}, "
+                  f"D{result.job.connectivity})")
     console.print(f"outputs in {outdir}")
     console.print(caution, style="italic")
 

@@ -18,7 +18,16 @@ from pathlib import Path
 import numpy as np
 
 from .dem import Dem
-from .errors import BandError, CorruptRasterError, DemNotFoundError, NotARasterError, OutputError, WindowError
+from .errors import (
+    BandError,
+    CorruptRasterError,
+    DemNotFoundError,
+    NotARasterError,
+    OutletError,
+    OutputError,
+    WindowError,
+)
+from .outlets import Outlets, outlet_ids
 
 __all__ = ["read_dem", "read_outlets", "dem_warnings", "atomic_path", "write_json", "write_layer",
            "prepare_outdir", "write_frames", "write_csv", "write_figure", "save_npz", "load_npz",
@@ -147,49 +156,26 @@ def available_memory() -> int:
     return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_AVPHYS_PAGES")
 
 
-def read_outlets(path: str | os.PathLike, dem: Dem) -> tuple[list[str], np.ndarray]:
+def read_outlets(path: str | os.PathLike, dem: Dem) -> Outlets:
     """Outlet points from a GeoPackage, GeoJSON, Shapefile or CSV, in the DEM's CRS.
 
     A CSV needs columns ``x`` and ``y`` (the DEM's CRS) and may have ``id``.
     Vector files are reprojected to the DEM's CRS when both declare one.
-    Ids default to 1..n.
+    Ids follow :mod:`terrain.outlets` (an outlet without one takes its row
+    number); every column other than the geometry (a CSV's x and y) is
+    kept as the outlets' attributes.
 
     Raises
     ------
     OutletError
         Missing or unreadable file, no points, non-point geometries, missing
-        x/y columns.
+        x/y columns, non-finite coordinates, repeated ids.
     """
-    from .errors import OutletError
-
     p = Path(path)
     if not p.exists():
         raise OutletError(f"{p}: no such outlets file")
     try:
-        if p.suffix.lower() == ".csv":
-            import pandas as pd
-
-            df = pd.read_csv(p)
-            cols = {c.lower().strip(): c for c in df.columns}
-            if "x" not in cols or "y" not in cols:
-                raise OutletError(f"{p}: a CSV of outlets needs columns x and y (and optionally id)")
-            xy = df[[cols["x"], cols["y"]]].to_numpy(dtype=np.float64)
-            ids = df[cols["id"]].astype(str).tolist() if "id" in cols else None
-        else:
-            import pyogrio
-            from pyproj import CRS
-
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                gdf = pyogrio.read_dataframe(p)
-            if len(gdf) and dem.crs is not None and gdf.crs is not None and \
-                    not CRS.from_user_input(gdf.crs).equals(CRS.from_user_input(dem.crs)):
-                gdf = gdf.to_crs(dem.crs)
-            geom = gdf.geometry
-            if len(gdf) and not all(t in ("Point",) for t in geom.geom_type):
-                raise OutletError(f"{p}: outlets must be points, found {sorted(set(geom.geom_type))}")
-            xy = np.column_stack([geom.x, geom.y]) if len(gdf) else np.empty((0, 2))
-            ids = gdf["id"].astype(str).tolist() if "id" in gdf.columns else None
+        table, xy = _outlet_csv(p) if p.suffix.lower() == ".csv" else _outlet_vector(p, dem)
     except OutletError:
         raise
     except Exception as exc:  # pyogrio / pandas raise many classes for bad files
@@ -198,10 +184,42 @@ def read_outlets(path: str | os.PathLike, dem: Dem) -> tuple[list[str], np.ndarr
         raise OutletError(f"{p}: no outlet points in the file")
     if not np.isfinite(xy).all():
         raise OutletError(f"{p}: outlet coordinates must be finite numbers")
-    if ids is None:
-        ids = [str(i) for i in range(1, xy.shape[0] + 1)]
-    ids = ["".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in i) for i in ids]
-    return ids, xy
+    cols = {str(c).lower().strip(): c for c in table.columns}
+    values = table[cols["id"]].tolist() if "id" in cols else None
+    ids, numbered = outlet_ids(values, xy.shape[0], str(p))
+    attributes = table.drop(columns=[cols["id"]]) if "id" in cols else table
+    return Outlets(ids, xy, attributes.reset_index(drop=True), str(p), numbered)
+
+
+def _outlet_csv(p: Path):
+    import pandas as pd
+
+    head = pd.read_csv(p, nrows=0).columns
+    ids = [c for c in head if str(c).lower().strip() == "id"]
+    df = pd.read_csv(p, dtype={c: str for c in ids})  # ids stay text ("007")
+    cols = {str(c).lower().strip(): c for c in df.columns}
+    if "x" not in cols or "y" not in cols:
+        raise OutletError(f"{p}: a CSV of outlets needs columns x and y (and optionally id)")
+    xy = df[[cols["x"], cols["y"]]].to_numpy(dtype=np.float64)
+    return df.drop(columns=[cols["x"], cols["y"]]), xy
+
+
+def _outlet_vector(p: Path, dem: Dem):
+    import pyogrio
+    from pyproj import CRS
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        gdf = pyogrio.read_dataframe(p)
+    if len(gdf) and dem.crs is not None and gdf.crs is not None and \
+            not CRS.from_user_input(gdf.crs).equals(CRS.from_user_input(dem.crs)):
+        gdf = gdf.to_crs(dem.crs)
+    geom = gdf.geometry
+    if len(gdf) and (geom.isna().any() or not all(t == "Point" for t in geom.geom_type)):
+        kinds = sorted({str(t) for t in geom.geom_type})
+        raise OutletError(f"{p}: outlets must be points, found {kinds}")
+    xy = np.column_stack([geom.x, geom.y]) if len(gdf) else np.empty((0, 2))
+    return gdf.drop(columns=gdf.geometry.name), xy
 
 
 def dem_warnings(dem: Dem) -> list[str]:

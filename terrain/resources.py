@@ -50,4 +50,5 @@ def describe_memory(dem: Dem, job) -> str:
     cells = dem.z.size
     parent, worker = job.memory_per_cell(dem.z.itemsize)
     return (f"~{worker} bytes per cell per worker = {worker * cells / 2**20:.1f} MiB per worker, "
-            f"plus {parent} bytes per cell = {parent * cells / 2**20:.1f} MiB of accumulators")
+            f"plus {parent} bytes per cell = {parent * cells / 2**20:.1f} MiB in the accumulating "
+            "process")

@@ -194,7 +194,9 @@ ATTRIBUTION = {"--threshold-jitter", "--weight", "--connectivity"}
 
 @pytest.mark.parametrize("name,extra", [("peaks", ATTRIBUTION | {"--min-prominence", "--base"}),
                                         ("depressions", ATTRIBUTION | {"--min-depth"}),
-                                        ("catchments", {"--snap", "--outlets"}),
+                                        ("catchments", {"--snap", "--outlets", "--connectivity",
+                                                        "--channel-area", "--conditioning",
+                                                        "--max-breach-depth"}),
                                         ("sweep", ATTRIBUTION | {"--min-prominence", "--min-depth",
                                                                  "--base", "--kind"})])
 def test_commands_share_one_option_set(name, extra):

@@ -16,15 +16,18 @@ __all__ = ["OutputFile", "MANIFEST", "file_names", "help_text"]
 
 @dataclass(frozen=True)
 class OutputFile:
-    """One output file: its name, what it holds, and its layers (GeoPackage)."""
+    """One output file: its name, what it holds, its layers (GeoPackage), and
+    whether only a catchment run with outlets writes it."""
 
     name: str
     what: str
     layers: tuple[str, ...] = ()
+    needs_outlets: bool = False
 
 
 def _rasters(job: str) -> list[OutputFile]:
-    return [OutputFile(s.name + ".tif", s.description + " (band 1), its standard error (band 2)")
+    return [OutputFile(s.name + ".tif", s.description + " (band 1), its standard error (band 2)",
+                       needs_outlets=s.needs_outlets)
             for s in layers_of(job)]
 
 
@@ -42,9 +45,14 @@ MANIFEST: dict[str, list[OutputFile]] = {
                                        "statistics", ("pits", "pit_points", "pit_regions")),
         OutputFile("pits.csv", "the depression feature table")] + _COMMON,
     "catchments": _rasters("catchments") + [
-        OutputFile("catchments.gpkg", "50% and 90% membership polygons per outlet with areas",
-                   ("catchments",)),
-        OutputFile("catchments.csv", "the catchment table")] + _COMMON,
+        OutputFile("catchments.gpkg", "per outlet: 50% and 90% catchment and sub-catchment "
+                                      "polygons with areas, and the outlet as given and snapped, "
+                                      "each with the outlets file's attributes",
+                   ("catchments", "subcatchments", "outlets"), True),
+        OutputFile("catchments.csv", "the catchments layer as a table", needs_outlets=True),
+        OutputFile("subcatchments.csv", "the subcatchments layer as a table", needs_outlets=True),
+        OutputFile("outlets.csv", "the outlets layer as a table", needs_outlets=True),
+    ] + _COMMON,
     "sweep": [
         OutputFile("sweep.csv", "per error model and feature: expected figure, P(counted), "
                                 "P(first), credit share, with standard errors"),
@@ -55,22 +63,26 @@ MANIFEST: dict[str, list[OutputFile]] = {
 
 
 def file_names(command: str, ids=()) -> list[str]:
-    """The concrete file names ``command`` writes (one per outlet where a name holds ``{id}``)."""
+    """The concrete file names ``command`` writes (one per outlet where a name
+    holds ``{id}``; ``ids`` are file-name ids, and without any the files that
+    need outlets are left out)."""
     out = []
     for f in MANIFEST[command]:
         if "{id}" in f.name:
             out += [f.name.replace("{id}", str(i)) for i in ids]
-        else:
+        elif ids or not f.needs_outlets:
             out.append(f.name)
     return out
 
 
 def help_text(command: str) -> str:
     """A plain list of the files ``command`` writes, for the help text."""
-    names = []
-    for f in MANIFEST[command]:
-        name = f.name.replace("{id}", "<id>")
-        names.append(f"{name} ({', '.join(f.layers)})" if f.layers else name)
-    return "Writes " + ", ".join(names) + "."
+    def names(files):
+        return ", ".join(f"{f.name.replace('{id}', '<id>')} ({', '.join(f.layers)})" if f.layers
+                         else f.name.replace("{id}", "<id>") for f in files)
+
+    always = [f for f in MANIFEST[command] if not f.needs_outlets]
+    extra = [f for f in MANIFEST[command] if f.needs_outlets]
+    return "Writes " + names(always) + (f"; with outlets also {names(extra)}" if extra else "") + "."
 
 

@@ -11,7 +11,8 @@ import math
 import numpy as np
 
 from ..dem import Dem
-from ..layers import layer_name, units
+from ..layers import LAYERS, layer_name, units
+from ..outlets import short
 
 __all__ = ["quicklook", "hillshade", "feature_map", "catchment_map", "sweep_figure"]
 
@@ -101,15 +102,18 @@ def _draw_layer(fig, ax, cax, dem, layer, extent, *, frac, vmax, show, cmap, uni
     fig.colorbar(im, cax=cax).set_label(units + " (square-root scale)")
 
 
+_CONTOUR_STYLE = {0.1: ("dotted", 0.8), 0.5: ("solid", 1.6), 0.9: ("dashed", 1.0)}
+
+
 def _draw_contours(ax, dem, contours, extent):
     colours = ["#e76f51", "#2a9d8f", "#e9c46a", "#264653", "#f4a261", "#8338ec"]
     for n, (arr, levels, label) in enumerate(contours if min(dem.shape) >= 2 else []):
         a_ = np.where(dem.nodata, np.nan, arr)
         if np.nanmax(a_) >= min(levels):
+            style = [_CONTOUR_STYLE.get(v, ("solid", 1.0)) for v in levels]
             cs = ax.contour(a_, levels=levels, extent=extent,
                             origin="upper", colors=colours[n % len(colours)],
-                            linewidths=[0.8, 1.6, 0.8][: len(levels)],
-                            linestyles=["dotted", "solid", "dashed"][: len(levels)])
+                            linewidths=[w for _, w in style], linestyles=[s for s, _ in style])
             ax.clabel(cs, fmt=lambda v, label=label: f"{label} {v:.0%}", fontsize=7)
 
 
@@ -159,16 +163,27 @@ def feature_map(result, features):
 
 
 def catchment_map(result):
-    """The quick-look of a catchment run: divide probability with 10/50/90%
-    membership contours per outlet."""
-    job = result.job
-    contours = [(result.layers[name][0], [0.1, 0.5, 0.9], oid)
-                for oid, name in zip(job.ids, job.layers[:-1])]
-    return quicklook(result.dem, result.layers[job.layers[-1]][0],
-                     title=f"drainage-divide probability; membership contours 10% (dotted), 50%, "
-                           f"90% (dashed)\n{result.n} realisations, error {result.model.describe()}",
-                     units="divide probability", cmap="viridis_r", contours=contours,
-                     outlets=[(x, y, oid) for oid, (x, y) in zip(job.ids, job.xy)], vmax=1.0)
+    """The quick-look of a catchment run: divide probability with each outlet's
+    sub-catchment outlined where it holds in 50% (solid) and 90% (dashed) of
+    realisations, outlets marked; without outlets, channel probability."""
+    job, dem = result.job, result.dem
+    what = f"{result.n} realisations, error {result.model.describe()}, {job.conditioning}, " \
+           f"D{job.connectivity}"
+    if not job.ids:
+        name = layer_name("catchments", "channel")
+        return quicklook(dem, result.layers[name][0], vmax=1.0, cmap="Blues",
+                         units="channel probability",
+                         title=f"channel probability (drainage area >= {job.channel_area:g} m²)"
+                               f"\n{what}")
+    sub = LAYERS[layer_name("catchments", "subcatchment")]
+    contours = [(result.layers[sub.concrete(lid)][0], [0.5, 0.9], short(oid, 24))
+                for oid, lid in zip(job.ids, job.layer_ids)]
+    return quicklook(dem, result.layers[layer_name("catchments", "divide")][0],
+                     title=f"divide probability; sub-catchments held in 50% (solid) and 90% "
+                           f"(dashed) of realisations\n{what}",
+                     units="divide probability", cmap="Purples", contours=contours,
+                     outlets=[(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)],
+                     vmax=1.0)
 
 
 def _scale_bar(ax, dem: Dem, extent) -> None:

@@ -68,10 +68,11 @@ def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
     """Every layer of ``result`` as a two-band GeoTIFF named after it."""
     tags = _tags(result, command_line)
     weight = getattr(result.job, "weight", "persistence")
+    full = dict(zip(getattr(result.job, "layer_ids", ()), getattr(result.job, "ids", ())))
     for name, (est, se) in result.layers.items():
         s = spec(name)
         oid = name[len(s.name.split("{id}")[0]):] if "{id}" in s.name else None
-        desc = s.description.replace("{id}", oid) if oid else s.description
+        desc = s.description.replace("{id}", full.get(oid, oid)) if oid else s.description
         write_layer(outdir / f"{name}.tif", result.dem, est, se, name=name,
                     units=units(name, result.dem.vertical_units, weight), description=desc,
                     tags={**tags, **({"note": s.note} if s.note else {})})
@@ -100,21 +101,28 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     write_json(out / "run.json", run)
 
 
-def write_catchment_run(outdir: str | Path, result, table, *, input_path: str | None,
+def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str | None,
                         outlets_path: str | None, command_line: str | None = None) -> None:
-    """Write a catchment run: probability layers, polygons and areas, map, run.json.
+    """Write a catchment run: probability layers, polygons, outlets, map, run.json.
 
-    ``table`` is :func:`terrain.summary.catchments.catchment_table`'s result.
+    ``summary`` is :func:`terrain.summary.catchments.summarise_catchments`'s
+    result: its tables go into ``catchments.gpkg`` (one layer each) and one
+    CSV each (none without outlets).
     """
     out = Path(outdir)
     created = _now()
     write_layers(out, result, command_line=command_line)
-    write_frames(out / "catchments.gpkg", {"catchments": table})
-    write_csv(out / "catchments.csv", table)
+    if summary.frames:
+        write_frames(out / "catchments.gpkg", summary.frames)
+        for name, frame in summary.frames.items():
+            write_csv(out / f"{name}.csv", frame)
     write_figure(out / "quicklook.png", plot.catchment_map(result))
     job = result.job
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**job.describe(), "outlets_file": outlets_path})
+    renamed = {i: lid for i, lid in zip(job.ids, job.layer_ids) if i != lid}
+    if renamed:
+        run["layer_ids"] = renamed
     write_json(out / "run.json", run)
 
 

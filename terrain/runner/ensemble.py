@@ -53,8 +53,9 @@ class RunResult:
     dem : Dem
     job : the resolved job (every default filled in)
     model : ErrorModel
-    layers : dict
-        Layer name -> (estimate, standard error), float64 arrays on the grid.
+    layers : mapping
+        Layer name -> (estimate, standard error), float64 arrays on the grid
+        (a catchment run computes each layer from its counts when read).
     log : dict
         The per-realisation log (for peaks and depressions the pair log, see
         :data:`terrain.jobs.credit.LOG_FIELDS`).

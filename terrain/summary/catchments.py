@@ -7,9 +7,12 @@ import numpy as np
 from ..layers import LAYERS, layer_name
 from .features import region_polygons
 
-__all__ = ["CATCHMENT_COLUMNS", "LEVELS", "area_summary", "catchment_table"]
+__all__ = ["CATCHMENT_COLUMNS", "CATCHMENT_COLUMN_KINDS", "LEVELS", "area_summary", "catchment_table"]
 
 CATCHMENT_COLUMNS = ("outlet_id", "level", "area_m2", "area_mean_m2", "area_p05_m2", "area_p95_m2")
+#: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`).
+CATCHMENT_COLUMN_KINDS = {"outlet_id": "text", "level": "probability", "area_m2": "area",
+                          "area_mean_m2": "area", "area_p05_m2": "area", "area_p95_m2": "area"}
 LEVELS = (0.5, 0.9)
 
 

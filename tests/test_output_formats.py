@@ -282,6 +282,43 @@ def test_catchment_layers_and_table_carry_the_drainage_note(tmp_path, cairn):
     assert all(len(c.split(".")[1]) <= 2 for r in rows[1:] for c in r[2:] if "." in c)
 
 
+@pytest.mark.parametrize("kernels", [("gaussian",),
+                                     ("gaussian", "epanechnikov", "triangular", "uniform")])
+def test_sweep_figure_reads_at_one_kernel_and_at_four(kernels):
+    # checked through matplotlib's own objects (rendered extents in pixels): nothing cut off,
+    # legends outside the panels, one panel per statistic; common practice, no published source
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from terrain.outputs.plot import sweep_figure
+    from terrain.sweep import sweep, sweep_models
+
+    z = np.zeros((15, 31), np.float32)
+    z[7, 7:24] = 48.0
+    z[7, 7], z[7, 23], z[3, 3] = 50.0, 50.25, 20.0
+    dem = Dem.from_array(z, cellsize=10.0)
+    models = sweep_models(ErrorModel(rmse=1.0), (0.25, 1.0), kernels)
+    res = sweep(dem, CreditJob("peaks", threshold=5.0), models, realisations=8, seed=1,
+                backend="serial")
+    fig = sweep_figure(res, units="metre")
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    page = fig.bbox
+    assert len(fig.axes) == 2  # credit share, P(ranks first)
+    assert [ax.get_ylabel() for ax in fig.axes] == ["share of total credit", "P(ranks first)"]
+    assert "attribution" in fig.get_suptitle()
+    # everything drawn (titles, axis and tick labels, legends) lies on the page
+    drawn = fig.get_tightbbox(renderer).transformed(fig.dpi_scale_trans)
+    assert (drawn.x0 >= page.x0 - 1 and drawn.y0 >= page.y0 - 1 and drawn.x1 <= page.x1 + 1
+            and drawn.y1 <= page.y1 + 1), (drawn, page)
+    legends = [ax.get_legend() for ax in fig.axes]
+    for leg in legends:
+        box = leg.get_window_extent(renderer)
+        assert all(not box.overlaps(ax.get_window_extent(renderer)) for ax in fig.axes)
+    names = [[t.get_text() for t in leg.get_texts()] for leg in legends]
+    assert names[0] == [f"summit #{f}" for f in res.top] and names[1] == list(kernels)
+
+
 def test_every_geopackage_layer_has_a_description():
     from terrain.outputs.manifest import MANIFEST, VECTOR_LAYERS
 

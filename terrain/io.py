@@ -308,45 +308,86 @@ def _json_default(o):
     raise TypeError(type(o).__name__)
 
 
+#: How every raster layer is laid out: a Cloud Optimized GeoTIFF written by GDAL's COG
+#: driver (OGC Cloud Optimized GeoTIFF standard, 2023): 256x256 internal tiles, internal
+#: overviews (average of valid cells) down to one tile, placed as the standard requires,
+#: DEFLATE with the floating-point predictor, per-band statistics stored in the file.
+COG_OPTIONS = dict(driver="COG", compress="deflate", predictor=3, blocksize=256,
+                   overview_resampling="average", statistics="YES", bigtiff="IF_SAFER")
+
+
 def write_layer(dest: str | os.PathLike, dem: Dem, estimate: np.ndarray, se: np.ndarray, *,
-                name: str, units: str, description: str, tags: dict) -> None:
-    """Write one credit layer as a two-band float32 GeoTIFF, atomically.
+                name: str, units: str, description: str, tags: dict, note: str = "") -> None:
+    """Write one layer as a two-band float32 Cloud Optimized GeoTIFF, atomically.
 
     Band 1 is the estimate, band 2 its standard error, both on the DEM's
     grid, CRS and transform, nodata = NaN where the DEM has none. The file is
-    tiled (256x256), DEFLATE-compressed with the floating-point predictor and
-    carries internal overviews; ``tags`` (the run's parameters) are stored as
-    dataset metadata.
+    laid out by GDAL's COG driver (:data:`COG_OPTIONS`): tiled, with internal
+    overviews, DEFLATE with the floating-point predictor, and each band's
+    minimum, maximum, mean, standard deviation and valid percentage stored
+    as ``STATISTICS_*`` band metadata so a GIS can stretch without scanning.
+    ``tags`` (the run's parameters) are dataset metadata; ``note`` (a caution
+    that travels with the layer) is appended to both band descriptions and
+    stored as each band's ``NOTE`` item.
+
+    Memory: 16 bytes per cell while writing (the two float32 bands, and
+    rasterio's in-memory copy of them that the COG driver reads); the
+    overviews are staged in a temporary file beside ``dest``, removed when
+    done. A blocked (out-of-core) writer gets the same layout by copying a
+    tiled staging GeoTIFF with the same :data:`COG_OPTIONS`.
+
+    References
+    ----------
+    .. [1] Open Geospatial Consortium (2023). OGC Cloud Optimized GeoTIFF
+       Standard, OGC 21-026.
+    """
+    e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
+    s = np.where(dem.nodata, np.nan, se).astype(np.float32)
+    suffix = f"; {note}" if note else ""
+    with atomic_path(dest) as tmp, _cog_staging(tmp):
+        with _open_cog(tmp, dem) as ds:
+            ds.write(e, 1)
+            ds.write(s, 2)
+            ds.set_band_description(1, f"{name} ({units}){suffix}")
+            ds.set_band_description(2, f"{name} standard error ({units}){suffix}")
+            ds.units = (units, units)
+            ds.update_tags(**{k: _tag(v) for k, v in tags.items()},
+                           LAYER=name, DESCRIPTION=description)
+            for band, role in ((1, "estimate"), (2, "standard_error")):
+                ds.update_tags(band, ROLE=role, **({"NOTE": note} if note else {}))
+
+
+def _open_cog(tmp: Path, dem: Dem):
+    """A two-band float32 writer on ``dem``'s grid that GDAL's COG driver lays out on close.
+
+    rasterio buffers the bands in memory and hands them to the COG driver's
+    copy when the dataset closes (the driver only creates by copying).
     """
     import rasterio
-    from rasterio.enums import Resampling
     from rasterio.transform import Affine
 
     rows, cols = dem.shape
-    tiled = rows >= 256 and cols >= 256
-    profile = dict(driver="GTiff", height=rows, width=cols, count=2, dtype="float32",
-                   crs=dem.crs, transform=Affine(*dem.transform), nodata=np.nan,
-                   compress="deflate", predictor=3)
-    if tiled:
-        profile.update(tiled=True, blockxsize=256, blockysize=256)
-    e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
-    s = np.where(dem.nodata, np.nan, se).astype(np.float32)
-    with atomic_path(dest) as tmp:
+    return rasterio.open(tmp, "w", height=rows, width=cols, count=2, dtype="float32",
+                         crs=dem.crs, transform=Affine(*dem.transform), nodata=np.nan,
+                         **COG_OPTIONS)
+
+
+@contextlib.contextmanager
+def _cog_staging(tmp: Path):
+    """Silence rasterio's no-CRS warning; remove the COG driver's overview staging files.
+
+    GDAL's COG driver stages overviews in ``<file>.ovr.tmp`` (and
+    ``<file>.msk.ovr.tmp``) beside the file it writes and deletes them
+    itself; this makes sure none is left after an error either.
+    """
+    try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # no-CRS rasters warn in rasterio
-            with rasterio.open(tmp, "w", **profile) as ds:
-                ds.write(e, 1)
-                ds.write(s, 2)
-                ds.set_band_description(1, f"{name} ({units})")
-                ds.set_band_description(2, f"{name} standard error ({units})")
-                ds.units = (units, units)
-                ds.update_tags(**{k: _tag(v) for k, v in tags.items()},
-                               LAYER=name, DESCRIPTION=description)
-                ds.update_tags(1, ROLE="estimate")
-                ds.update_tags(2, ROLE="standard_error")
-                factors = [f for f in (2, 4, 8, 16, 32) if min(rows, cols) // f >= 64]
-                if factors:
-                    ds.build_overviews(factors, Resampling.average)
+            yield
+    finally:
+        for extra in (".ovr.tmp", ".msk.ovr.tmp"):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(f"{tmp}{extra}")
 
 
 def _tag(v) -> str:
@@ -355,16 +396,22 @@ def _tag(v) -> str:
     return str(v)
 
 
-def write_frames(dest: str | os.PathLike, frames: dict) -> None:
+def write_frames(dest: str | os.PathLike, frames: dict, descriptions: dict | None = None) -> None:
     """Write data frames as the layers of one GeoPackage, atomically.
 
-    ``frames`` maps layer name to GeoDataFrame.
+    ``frames`` maps layer name to GeoDataFrame; ``descriptions`` maps layer
+    name to the text stored in the layer's ``gpkg_contents.description``
+    (the ``gpkg_contents`` table of the OGC GeoPackage Encoding Standard
+    1.3), which a GIS shows as the layer's abstract; GDAL's GPKG driver
+    writes it from the ``DESCRIPTION`` layer creation option.
     """
+    descriptions = descriptions or {}
     with atomic_path(dest) as tmp, warnings.catch_warnings():
         # a DEM without CRS was already reported once; pyogrio would repeat it
         warnings.filterwarnings("ignore", "'crs' was not provided", UserWarning)
         for layer, gdf in frames.items():
-            gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio")
+            options = {"DESCRIPTION": descriptions[layer]} if layer in descriptions else None
+            gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio", layer_options=options)
 
 
 def write_csv(dest: str | os.PathLike, frame) -> None:

@@ -35,14 +35,29 @@ from .noise import ErrorModel
 from .runner import RunResult, run_ensemble
 from .summary.features import FigureMatrix, figure_matrix
 
-__all__ = ["SWEEP_COLUMNS", "SENSITIVITY_COLUMNS", "SweepResult", "sweep", "sweep_models",
-           "run_checkpoint"]
+__all__ = ["SWEEP_COLUMNS", "SENSITIVITY_COLUMNS", "SWEEP_COLUMN_KINDS", "SENSITIVITY_COLUMN_KINDS",
+           "SweepResult", "sweep", "sweep_models", "run_checkpoint"]
 
 SWEEP_COLUMNS = ("kernel", "rmse", "feature_id", "unperturbed", "x", "y", "expected", "se",
                  "p_above", "p_above_se", "p_first", "p_first_se", "credit_share", "credit_share_se")
 SENSITIVITY_COLUMNS = ("rmse", "kernel_a", "kernel_b", "layer_max_abs_diff", "layer_max_abs_diff_se",
                        "layer_mean_abs_diff", "layer_noise_floor", "feature_id", "expected_diff",
                        "expected_diff_se", "p_first_diff", "p_first_diff_se")
+#: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`);
+#: credit shares are probabilities' kin (shares of the total), the layer differences are
+#: per-cell credit.
+SWEEP_COLUMN_KINDS = {"kernel": "text", "rmse": "parameter", "feature_id": "id",
+                      "unperturbed": "vertical", "x": "coordinate", "y": "coordinate",
+                      "expected": "vertical", "se": "vertical", "p_above": "probability",
+                      "p_above_se": "probability", "p_first": "probability",
+                      "p_first_se": "probability", "credit_share": "probability",
+                      "credit_share_se": "probability"}
+SENSITIVITY_COLUMN_KINDS = {"rmse": "parameter", "kernel_a": "text", "kernel_b": "text",
+                            "layer_max_abs_diff": "credit", "layer_max_abs_diff_se": "credit",
+                            "layer_mean_abs_diff": "credit", "layer_noise_floor": "credit",
+                            "feature_id": "id", "expected_diff": "vertical",
+                            "expected_diff_se": "vertical", "p_first_diff": "probability",
+                            "p_first_diff_se": "probability"}
 
 
 @dataclass(frozen=True)

@@ -19,7 +19,8 @@ import pyogrio
 import pytest
 import rasterio
 
-from terrain.summary.features import COLUMNS
+from terrain.outputs.tables import rounded
+from terrain.summary.features import COLUMN_KINDS, COLUMNS
 
 from .conftest import smooth_terrain, write_tif
 
@@ -62,9 +63,9 @@ def test_outputs_read_back(cairn, dem_tif, tmp_path, cmd, layers, gpkg, csv, lyr
         df = pyogrio.read_dataframe(out / gpkg, layer=layer)
         assert list(df.columns[:-1]) == list(COLUMNS[cmd])
     table = pyogrio.read_dataframe(out / gpkg, layer=lyr[0])
-    csv_df = pd.read_csv(out / csv)
-    pd.testing.assert_frame_equal(csv_df, pd.DataFrame(table.drop(columns="geometry")),
-                                  check_dtype=False)
+    csv_df = pd.read_csv(out / csv)  # rounded per column kind (see test_output_formats)
+    pd.testing.assert_frame_equal(csv_df, rounded(pd.DataFrame(table.drop(columns="geometry")),
+                                                  COLUMN_KINDS), check_dtype=False)
     run = json.loads((out / "run.json").read_text())
     assert run["realisations_done"] == 12 and run["input"]["sha256"]
     assert run["parameters"]["seed"] == 3
@@ -183,6 +184,17 @@ def test_demo_twin_summit_splits_and_knolls_spread(demo_out):
     np.testing.assert_array_equal(np.sort(pits["unperturbed"].round())[::-1][:3], [6, 4, 3])
     # no clutter: every summit row is counted in most realisations
     assert len(summits) <= 10 and (summits["p_above"] > 0.5).all()
+
+
+def test_demo_layers_are_valid_cogs(demo_out):
+    # OGC Cloud Optimized GeoTIFF Standard (2023), via rio-cogeo's validator, statistics
+    # against numpy, a window and an overview read back (test_output_formats.check_cog)
+    from .test_output_formats import check_cog
+
+    tifs = sorted(demo_out.glob("*/*.tif"))
+    assert len(tifs) == 7
+    for path in tifs:
+        check_cog(path)
 
 
 # -- one option set for every command (the structure issue) --------------------------

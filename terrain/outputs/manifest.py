@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 from ..layers import layers_of
 
-__all__ = ["OutputFile", "MANIFEST", "file_names", "help_text"]
+__all__ = ["OutputFile", "MANIFEST", "VECTOR_LAYERS", "file_names", "help_text"]
 
 
 @dataclass(frozen=True)
@@ -59,6 +59,41 @@ MANIFEST: dict[str, list[OutputFile]] = {
         OutputFile("kernel_sensitivity.csv", "differences between kernels of equal RMSE"),
         OutputFile("sweep.png", "credit share and P(first) against the error level"),
         _COMMON[1]],
+}
+
+#: What each GeoPackage layer holds: the start of its ``gpkg_contents.description`` (the
+#: writer adds the error model and the caution).
+VECTOR_LAYERS: dict[str, str] = {
+    "summits": "Summit features of a peaks run: where each top is (the fewest cells holding 90% "
+               "of the summit births of its region of the DEM as given), one polygon per "
+               "feature, by rank, with its prominence on the DEM as given, expected prominence "
+               "and its spread, and the probabilities of being counted and of ranking first",
+    "summit_points": "Summit features of a peaks run as points at each feature's most credited "
+                     "summit cell, by rank, with the same statistics as the summits layer",
+    "summit_regions": "Summit features of a peaks run: each feature's whole region of the DEM "
+                      "as given (the cells that climb to its summit), by rank, with the same "
+                      "statistics as the summits layer",
+    "pits": "Depression features of a depressions run: each feature's ponded extent (cells of "
+            "its region that hold water in at least half the realisations), one polygon per "
+            "feature, by rank, with its depth on the DEM as given, expected depth and its "
+            "spread, ponded area and volume, and the probabilities of being counted and of "
+            "ranking first",
+    "pit_points": "Depression features of a depressions run as points at each feature's most "
+                  "credited pit cell, by rank, with the same statistics as the pits layer",
+    "pit_regions": "Depression features of a depressions run: each feature's whole region of "
+                   "the DEM as given (the cells that drain to its pit), by rank, with the same "
+                   "statistics as the pits layer",
+    "catchments": "Cells draining to each outlet in at least 50% and at least 90% of "
+                  "realisations, one polygon per outlet and level, with its area and the mean "
+                  "and 5-95% range of the catchment area over realisations (nested outlets "
+                  "included), and the outlets file's attributes",
+    "subcatchments": "Cells whose first chosen outlet downstream is each outlet in at least 50% "
+                     "and at least 90% of realisations (nested outlets split their parent), one "
+                     "polygon per outlet and level, with its area and the mean and 5-95% range "
+                     "of the sub-catchment area, and the outlets file's attributes",
+    "outlets": "Each outlet as given, with its most frequent snapped cell, the share of "
+               "realisations that snapped there and the mean snap distance in metres, and the "
+               "outlets file's attributes",
 }
 
 

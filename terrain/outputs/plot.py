@@ -209,10 +209,27 @@ def _north_arrow(ax) -> None:
                 arrowprops=dict(facecolor="black", width=3, headwidth=10))
 
 
+SWEEP_STATISTICS = (("credit_share", "credit_share_se", "share of total credit"),
+                    ("p_first", "p_first_se", "P(ranks first)"))
+_KERNEL_STYLE = (("o", "-"), ("s", "--"), ("^", "-."), ("D", ":"))
+
+
 def sweep_figure(result, *, units: str):
-    """credit_share and p_first against the error level for the top features
-    of a :class:`terrain.sweep.SweepResult`, one column of panels per kernel,
-    error bars of one standard error."""
+    """One panel per statistic (credit share, P(ranks first)) against the error level.
+
+    Each of the sweep's top features is a colour, each kernel a marker and
+    line style; error bars are one standard error, and the kernels' points
+    are set slightly apart along the (log) error axis so their bars do not
+    hide each other. Legends sit outside the panels, beside the panel they
+    explain, and the figure is laid out with matplotlib's constrained layout
+    so nothing is cut off at one kernel or at four.
+
+    Parameters
+    ----------
+    result : terrain.sweep.SweepResult
+    units : str
+        Vertical units of the error level (x axis).
+    """
     import matplotlib
 
     matplotlib.use("Agg", force=False)
@@ -220,36 +237,50 @@ def sweep_figure(result, *, units: str):
 
     rows = result.rows
     kernels = list(dict.fromkeys(rows["kernel"]))
-    fig = Figure(figsize=(4.2 * len(kernels) + 1.5, 7.2), dpi=110)
-    axes = fig.subplots(2, len(kernels), squeeze=False, sharex=True, sharey="row")
     what = "summit" if result.job.kind == "peaks" else "depression"
+    fig = Figure(figsize=(9.0, 7.4), dpi=110, layout="constrained")
+    axes = fig.subplots(len(SWEEP_STATISTICS), 1, sharex=True)
+    levels = sorted(set(rows["rmse"]))
+    features, kernel_keys = _sweep_lines(axes, rows, result.top, kernels, what)
+    for ax, (_, _, label) in zip(axes, SWEEP_STATISTICS):
+        ax.set_ylabel(label, fontsize=10)
+        ax.set_xscale("log")
+        ax.set_xticks(levels, [f"{v:g}" for v in levels])
+        ax.minorticks_off()
+        ax.grid(alpha=0.3)
+        ax.tick_params(labelsize=9)
+    axes[-1].set_xlabel(f"assumed error RMSE ({units})", fontsize=10)
+    axes[0].legend(handles=features, title=f"{what} feature", fontsize=9, title_fontsize=9,
+                   loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
+    axes[1].legend(handles=kernel_keys, title="error kernel", fontsize=9, title_fontsize=9,
+                   loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
+    fig.suptitle(f"How {what} attribution spreads as the assumed error grows\n"
+                 "(error bars: 1 standard error)", fontsize=11)
+    return fig
+
+
+def _sweep_lines(axes, rows, top, kernels, what):
+    """Draw every (feature, kernel) line on every statistic's panel; return legend handles."""
+    import matplotlib
+    from matplotlib.lines import Line2D
+
     colours = matplotlib.colormaps["tab10"]
-    kern = np.array(rows["kernel"])
-    fid = np.array(rows["feature_id"])
-    rmse = np.array(rows["rmse"])
+    kern, fid = np.array(rows["kernel"]), np.array(rows["feature_id"])
+    rmse = np.array(rows["rmse"], dtype=float)
+    spread = 0.035 * (np.arange(len(kernels)) - (len(kernels) - 1) / 2)  # in natural-log units
     for j, kernel in enumerate(kernels):
-        for n_f, f in enumerate(result.top):
+        marker, style = _KERNEL_STYLE[j % len(_KERNEL_STYLE)]
+        for n_f, f in enumerate(top):
             sel = (kern == kernel) & (fid == f)
             order = np.argsort(rmse[sel])
-            x = rmse[sel][order]
-            for i, (col, se) in enumerate((("credit_share", "credit_share_se"),
-                                           ("p_first", "p_first_se"))):
-                y = np.array(rows[col])[sel][order]
-                e = np.array(rows[se])[sel][order]
-                axes[i, j].errorbar(x, y, yerr=e, marker="o", ms=3, capsize=2, lw=1.2,
-                                    color=colours(n_f % 10), label=f"{what} #{f}")
-        axes[0, j].set_title(f"{kernel} kernel", fontsize=10)
-        axes[1, j].set_xlabel(f"assumed error RMSE ({units})")
-        levels = sorted(set(rows["rmse"]))
-        for i in range(2):
-            axes[i, j].set_xscale("log")
-            axes[i, j].set_xticks(levels, [f"{v:g}" for v in levels])
-            axes[i, j].minorticks_off()
-            axes[i, j].grid(alpha=0.3)
-    axes[0, 0].set_ylabel("share of total credit")
-    axes[1, 0].set_ylabel("P(ranks first)")
-    axes[0, -1].legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.02, 1.0))
-    fig.suptitle(f"How {what} attribution spreads as the assumed error grows "
-                 "(error bars: 1 standard error)", fontsize=11)
-    fig.subplots_adjust(left=0.08, right=0.84, top=0.9, bottom=0.09, wspace=0.08, hspace=0.12)
-    return fig
+            x = rmse[sel][order] * np.exp(spread[j])
+            for ax, (col, se, _) in zip(axes, SWEEP_STATISTICS):
+                ax.errorbar(x, np.array(rows[col])[sel][order], yerr=np.array(rows[se])[sel][order],
+                            marker=marker, ms=4, capsize=2, lw=1.2, ls=style,
+                            color=colours(n_f % 10))
+    features = [Line2D([], [], color=colours(n_f % 10), lw=2, label=f"{what} #{f}")
+                for n_f, f in enumerate(top)]
+    kernel_keys = [Line2D([], [], color="0.25", marker=m, ls=ls, lw=1.2, label=k)
+                   for k, (m, ls) in zip(kernels, (_KERNEL_STYLE[j % len(_KERNEL_STYLE)]
+                                                   for j in range(len(kernels))))]
+    return features, kernel_keys

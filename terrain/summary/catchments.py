@@ -23,13 +23,24 @@ from ..dem import Dem, metres_per_degree
 from ..layers import LAYERS, layer_name
 from .features import region_polygons
 
-__all__ = ["CATCHMENT_COLUMNS", "OUTLET_COLUMNS", "LEVELS", "CatchmentSummary", "area_summary",
+__all__ = ["CATCHMENT_COLUMNS", "OUTLET_COLUMNS", "CATCHMENT_COLUMN_KINDS", "OUTLET_COLUMN_KINDS",
+           "FRAME_COLUMN_KINDS", "LEVELS", "CatchmentSummary", "area_summary",
            "catchment_table", "outlet_table", "summarise_catchments", "snap_distances"]
 
 CATCHMENT_COLUMNS = ("outlet_id", "layer_id", "level", "area_m2", "area_mean_m2", "area_p05_m2",
                      "area_p95_m2")
 OUTLET_COLUMNS = ("outlet_id", "layer_id", "x", "y", "snapped_x", "snapped_y", "snapped_share",
                   "snap_distance_mean_m")
+#: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`);
+#: attribute columns from the outlets file are written as they came.
+CATCHMENT_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "level": "probability",
+                          "area_m2": "area", "area_mean_m2": "area", "area_p05_m2": "area",
+                          "area_p95_m2": "area"}
+OUTLET_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "x": "coordinate",
+                       "y": "coordinate", "snapped_x": "coordinate", "snapped_y": "coordinate",
+                       "snapped_share": "probability", "snap_distance_mean_m": "area"}
+FRAME_COLUMN_KINDS = {"catchments": CATCHMENT_COLUMN_KINDS, "subcatchments": CATCHMENT_COLUMN_KINDS,
+                      "outlets": OUTLET_COLUMN_KINDS}
 LEVELS = (0.5, 0.9)
 _AREA_FIELD = {"membership": "area", "subcatchment": "subarea"}
 

@@ -28,9 +28,9 @@ from ..engine.persistence import count_ponding, pits_and_levels
 from ..jobs.credit import log_weights, region_figures
 from ..layers import layer_name
 
-__all__ = ["COLUMNS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE", "FeatureSummary",
-           "FigureMatrix", "figure_matrix", "summarise_features", "region_polygons",
-           "unperturbed_ponding"]
+__all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE",
+           "FeatureSummary", "FigureMatrix", "figure_matrix", "summarise_features",
+           "region_polygons", "unperturbed_ponding"]
 
 TOP_SHARE = 0.9  # "where the top is": the fewest cells holding 90% of a summit's births
 PONDED_SHARE = 0.5  # the ponded extent: cells ponded in at least half the realisations
@@ -48,6 +48,25 @@ COLUMNS = {
                               "ponded_area_mean_m2", "ponded_area_p05_m2", "ponded_area_p95_m2",
                               "volume_m3", "volume_mean_m3", "volume_p05_m3", "volume_p95_m3",
                               "region_area_m2", "edge_limited_share", "unperturbed_edge_limited"),
+}
+#: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`).
+COLUMN_KINDS = {
+    "feature_id": "id", "rank": "integer", "unperturbed": "vertical", "expected": "vertical",
+    "p05": "vertical", "p50": "vertical", "p95": "vertical", "se": "vertical",
+    "p_above": "probability", "p_above_se": "probability", "p_first": "probability",
+    "p_first_se": "probability", "expected_rank": "mean_rank", "x": "coordinate",
+    "y": "coordinate", "elevation": "vertical", "unperturbed_x": "coordinate",
+    "unperturbed_y": "coordinate", "region_area_m2": "area", "edge_limited_share": "probability",
+    "unperturbed_edge_limited": "flag",
+    "col_x": "coordinate", "col_y": "coordinate", "col_elevation": "vertical",
+    "unperturbed_col_x": "coordinate", "unperturbed_col_y": "coordinate",
+    "unperturbed_col_elevation": "vertical",
+    "spill_x": "coordinate", "spill_y": "coordinate", "spill_elevation": "vertical",
+    "unperturbed_spill_x": "coordinate", "unperturbed_spill_y": "coordinate",
+    "unperturbed_spill_elevation": "vertical",
+    "top_area_m2": "area", "ponded_area_m2": "area", "ponded_area_mean_m2": "area",
+    "ponded_area_p05_m2": "area", "ponded_area_p95_m2": "area", "volume_m3": "volume",
+    "volume_mean_m3": "volume", "volume_p05_m3": "volume", "volume_p95_m3": "volume",
 }
 LAYER_NAMES = {"peaks": ("summits", "summit_points", "summit_regions"),
                "depressions": ("pits", "pit_points", "pit_regions")}

@@ -195,3 +195,19 @@ def test_credit_conservation_and_threshold_jitter():
     assert res.layers["spill_credit"][0].sum() * res.n == pytest.approx(depth.sum(), rel=1e-9)
     # jittered thresholds admit some pairs below the nominal 3.0
     assert depth.min() < 3.0
+
+
+def test_layers_from_the_log_are_the_same_on_any_window():
+    # the credit layers are summed from the pair log; any window holds the same numbers
+    from terrain.jobs.credit import credit_layers
+
+    z = smooth_terrain((70, 90), seed=3)
+    dem = Dem.from_array(z, cellsize=10.0)
+    res = run_ensemble(dem, CreditJob("peaks", threshold=5.0), ErrorModel(rmse=2.0),
+                       realisations=25, seed=6, backend="serial")
+    for window in ((0, 70, 0, 90), (0, 1, 0, 90), (13, 44, 20, 21), (69, 70, 89, 90), (5, 60, 7, 80)):
+        r0, r1, c0, c1 = window
+        part = credit_layers(res.log, res.n, res.job, 90, window)
+        for name, (m, e) in part.items():
+            assert np.array_equal(m, res.layers[name][0][r0:r1, c0:c1]), (name, window)
+            assert np.array_equal(e, res.layers[name][1][r0:r1, c0:c1]), (name, window)

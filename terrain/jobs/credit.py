@@ -27,9 +27,10 @@ layers are integers and exact in any order.
 Standard error of a layer: ``sqrt((mean(x^2) - mean(x)^2) / N)``, which for a
 proportion is the Monte Carlo standard error sqrt(p(1-p)/N).
 
-Memory in the accumulating process: 2 x 2 float64 moments + 1 int32 count
-(+ 1 int32 ponding count for depressions) + scratch (int32 + float64) =
-48-52 bytes per cell.
+Memory in the accumulating process while realisations come in: the logs
+(25 bytes per counted pair) and, for depressions, 4 bytes per cell of
+ponding counts; the credit layers are summed from the log at the end
+(:func:`credit_layers`, 52 bytes per cell of the window summed).
 """
 
 from __future__ import annotations
@@ -49,7 +50,8 @@ from ..layers import layer_name, layers_of
 from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
-           "realise", "log_weights", "concat_logs", "proportion", "region_figures"]
+           "realise", "log_weights", "concat_logs", "proportion", "region_figures",
+           "credit_layers"]
 
 KINDS = ("peaks", "depressions")
 FILTRATION = {"peaks": "peaks", "depressions": "pits"}  # the engine's name for each kind
@@ -176,8 +178,9 @@ class CreditJob:
         return CreditAccumulator(n_cells, self)
 
     def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
-        """Accumulators: 4 float64 moments, 1 int32 count, scratch (float64 +
-        int32), + 1 int32 ponding count for depressions. Worker: the DEM copy,
+        """Accumulating process: the layers summed from the log at the end (4
+        float64 moments, 1 int32 count, scratch float64 + int32) and the int32
+        ponding count of depressions. Worker: the DEM copy,
         noise (4), the perturbed copy and the key copy the pairing sorts on,
         basin labels (4), validity (1), region labels (4), ponding counts (4)."""
         parent = 48 + (4 if self.kind == "depressions" else 0)
@@ -298,13 +301,17 @@ def region_figures(log: dict, *, with_birth: bool = False) -> tuple:
 
 
 @njit(cache=True)
-def _accumulate(real, birth, death, w, bsum, bsq, dsum, dsq, bcount, scratch, mark):
-    """Add logged pairs, realisation by realisation in the given order.
+def _accumulate(real, birth, death, w, nc, r0, r1, c0, c1, bsum, bsq, dsum, dsq, bcount,
+                scratch, mark):
+    """Sum logged pairs into the cells of window rows ``r0:r1``, columns
+    ``c0:c1`` (arrays flat over the window), realisation by realisation in
+    the log's order, so every cell's sum is the same whatever window holds it.
 
     Birth cells are unique within a realisation; death cells may repeat (a
     col where several summits die), so their weights are summed per
     realisation before the squares are taken.
     """
+    wc = c1 - c0
     n = real.size
     t = 0
     while t < n:
@@ -313,60 +320,96 @@ def _accumulate(real, birth, death, w, bsum, bsq, dsum, dsq, bcount, scratch, ma
         while u < n and real[u] == r:
             u += 1
         for k in range(t, u):
-            b = birth[k]
-            bsum[b] += w[k]
-            bsq[b] += w[k] * w[k]
-            bcount[b] += 1
+            br = birth[k] // nc
+            bc = birth[k] - br * nc
+            if r0 <= br < r1 and c0 <= bc < c1:
+                b = (br - r0) * wc + bc - c0
+                bsum[b] += w[k]
+                bsq[b] += w[k] * w[k]
+                bcount[b] += 1
         tag = r + 1
         for k in range(t, u):
-            d = death[k]
-            if d < 0:
+            if death[k] < 0:
                 continue
-            if mark[d] != tag:
-                mark[d] = tag
-                scratch[d] = 0.0
-            scratch[d] += w[k]
+            dr = death[k] // nc
+            dc = death[k] - dr * nc
+            if r0 <= dr < r1 and c0 <= dc < c1:
+                d = (dr - r0) * wc + dc - c0
+                if mark[d] != tag:
+                    mark[d] = tag
+                    scratch[d] = 0.0
+                scratch[d] += w[k]
         for k in range(t, u):
-            d = death[k]
-            if d >= 0 and mark[d] == tag:
-                mark[d] = -tag  # visited once
-                dsum[d] += scratch[d]
-                dsq[d] += scratch[d] * scratch[d]
+            if death[k] < 0:
+                continue
+            dr = death[k] // nc
+            dc = death[k] - dr * nc
+            if r0 <= dr < r1 and c0 <= dc < c1:
+                d = (dr - r0) * wc + dc - c0
+                if mark[d] == tag:
+                    mark[d] = -tag  # visited once
+                    dsum[d] += scratch[d]
+                    dsq[d] += scratch[d] * scratch[d]
         t = u
 
 
+def _moments(s, q, n):
+    n = max(n, 1)
+    m = s / n
+    return m, np.sqrt(np.maximum(q / n - m * m, 0.0) / n)
+
+
+def credit_layers(log: dict, n: int, job: CreditJob, nc: int,
+                  window: tuple[int, int, int, int]) -> dict:
+    """The birth/death credit and birth probability layers on a window.
+
+    Computed from the pair log (sorted by realisation) for the cells of rows
+    ``r0:r1`` and columns ``c0:c1`` of a raster ``nc`` columns wide: each
+    layer's mean and Monte Carlo standard error over ``n`` realisations,
+    float64 arrays of the window's shape. The same cell gets the same
+    numbers from any window. Memory: 52 bytes per window cell while summing.
+    """
+    r0, r1, c0, c1 = window
+    size = (r1 - r0) * (c1 - c0)
+    bsum, bsq, dsum, dsq, scratch = (np.zeros(size) for _ in range(5))
+    bcount = np.zeros(size, np.int32)
+    _accumulate(log["real"], log["birth"].astype(np.int64), log["death"].astype(np.int64),
+                log_weights(log, job.weight), nc, r0, r1, c0, c1, bsum, bsq, dsum, dsq, bcount,
+                scratch, np.zeros(size, np.int32))
+    shape = (r1 - r0, c1 - c0)
+    out = {layer_name(job.kind, "birth_credit"): _moments(bsum, bsq, n),
+           layer_name(job.kind, "death_credit"): _moments(dsum, dsq, n),
+           layer_name(job.kind, "birth_probability"): proportion(bcount, n)}
+    return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
+
+
 class CreditAccumulator:
-    """Streaming sums for one run's layers and features, fed in realisation order.
+    """What a peaks or depressions run keeps while realisations come in.
 
     ``add(log, counts, n)`` folds in the next ``n`` realisations (their log
-    entries sorted by realisation, and their summed integer counts). Per
-    region it also keeps the sum and sum of squares of the realisation's
-    figure and the number of realisations with a counted pair, for the stop
-    rule; the tables are made from the full log at the end.
+    entries sorted by realisation, and their summed integer counts). It keeps
+    the pair log, ponding counts (depressions) and, per region, the sum and
+    sum of squares of the realisation's figure and the number of
+    realisations with a counted pair (for the stop rule). The credit layers
+    are computed from the log when asked for (:func:`credit_layers`), whole
+    or window by window, so nothing dense but the ponding counts is held
+    while the run goes on: 4 bytes per cell (depressions) plus 25 bytes per
+    logged pair.
     """
 
-    _ARRAYS = ("bsum", "bsq", "dsum", "dsq", "bcount", "fsum", "fsq", "fcount")
+    _ARRAYS = ("fsum", "fsq", "fcount")
 
     def __init__(self, n_cells: int, job: CreditJob):
         self.job = job
         self.n = 0
-        self.bsum = np.zeros(n_cells)
-        self.bsq = np.zeros(n_cells)
-        self.dsum = np.zeros(n_cells)
-        self.dsq = np.zeros(n_cells)
-        self.bcount = np.zeros(n_cells, np.int32)
+        self.n_cells = n_cells
         k = len(job.regions) + 1 if job.regions is not None else 1
         self.fsum, self.fsq = np.zeros(k), np.zeros(k)
         self.fcount = np.zeros(k, np.int64)
         self.ponding = np.zeros(n_cells, np.int32) if job.kind == "depressions" else None
-        self._scratch = np.zeros(n_cells)
-        self._mark = np.zeros(n_cells, np.int32)
         self.logs: list[dict] = []
 
     def add(self, log: dict, counts: dict, n: int) -> None:
-        w = log_weights(log, self.job.weight)
-        _accumulate(log["real"], log["birth"].astype(np.int64), log["death"].astype(np.int64), w,
-                    self.bsum, self.bsq, self.dsum, self.dsq, self.bcount, self._scratch, self._mark)
         _, reg, fig, _ = region_figures(log)
         np.add.at(self.fsum, reg, fig)
         np.add.at(self.fsq, reg, fig * fig)
@@ -377,24 +420,20 @@ class CreditAccumulator:
         self.n += n
 
     def log(self) -> dict:
-        """The pair log (and pond log) so far, concatenated."""
+        """The pair log (and pond log) so far, concatenated (kept as one array set)."""
         fields = LOG_FIELDS + (POND_FIELDS if self.job.kind == "depressions" else ())
-        return concat_logs(self.logs, fields)
-
-    def _moments(self, s, q):
-        n = max(self.n, 1)
-        m = s / n
-        return m, np.sqrt(np.maximum(q / n - m * m, 0.0) / n)
+        if len(self.logs) != 1:
+            self.logs = [concat_logs(self.logs, fields)]
+        return self.logs[0]
 
     def layers(self, shape) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-        """Each layer's mean and standard error, reshaped to the grid."""
-        kind = self.job.kind
-        out = {layer_name(kind, "birth_credit"): self._moments(self.bsum, self.bsq),
-               layer_name(kind, "death_credit"): self._moments(self.dsum, self.dsq),
-               layer_name(kind, "birth_probability"): proportion(self.bcount, self.n)}
+        """Each layer's mean and standard error on the whole grid."""
+        out = credit_layers(self.log(), self.n, self.job, shape[1], (0, shape[0], 0, shape[1]))
         if self.ponding is not None:
-            out[layer_name(kind, "ponding_probability")] = proportion(self.ponding, self.n)
-        return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
+            m, e = proportion(self.ponding, self.n)
+            out[layer_name(self.job.kind, "ponding_probability")] = (m.reshape(shape),
+                                                                      e.reshape(shape))
+        return out
 
     def stop_statistic(self) -> float:
         """Largest Monte Carlo standard error of a feature's expected figure
@@ -405,7 +444,7 @@ class CreditAccumulator:
         rows = self.fcount >= self.job.min_presence * self.n
         if not rows.any():
             return math.nan
-        _, se = self._moments(self.fsum[rows], self.fsq[rows])
+        _, se = _moments(self.fsum[rows], self.fsq[rows], self.n)
         return float(se.max())
 
     # -- checkpoint state ------------------------------------------------------

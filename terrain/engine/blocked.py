@@ -6,7 +6,10 @@ order) what :func:`terrain.engine.persistence.pairs` returns on the whole
 raster, while holding one block plus a one-cell halo, and a summary of the
 block boundaries. :func:`blocked_fill` adds the depression-filled surface
 of :func:`~terrain.engine.persistence.pairs_and_fill`, written block by
-block.
+block; :func:`blocked_levels` the fill level and depression depth of each
+cell's basin (``pits_and_levels()`` read per cell), the per-cell data of
+:func:`~terrain.engine.persistence.count_ponding`. The regions of
+``regions()`` are built on these steps in :mod:`terrain.engine.blocked_regions`.
 
 Algorithm
 ---------
@@ -39,6 +42,23 @@ The raster is cut into a grid of blocks. Three pure steps, each on arrays:
    the block's local step, maps every basin to (time it first reached the
    boundary, reduced-graph vertex it then joined), and from the resolved
    value of that vertex computes a per-cell array -- the filled surface.
+
+Per-cell values that belong to a cell's *basin of steepest descent on the
+whole raster* (fill level and depression depth, region) need that basin,
+and near a block line the steepest neighbour may lie in the next block.
+With ``local(..., termini=True)`` each block also follows every cell's
+steepest descent with the halo's neighbours (:func:`descend_block`) and
+hands up, per boundary cell, where the chain ends in the block: a minimum
+of the raster or the neighbouring cell it leaves for; :func:`glue` follows
+those chains from strip to strip to a minimum, and keeps the *merge
+forest* of the reduced graph (each vertex below the root it died into, at
+that cell), from which the second passes read any component's identity and
+age just before any cell (:class:`Forest`). :func:`finish_levels` gives
+each minimum its fill level (the later of its component's first boundary
+time and that vertex's join with the outlet) and its depression depth
+(level minus the deepest cell of its component below the level: the
+block's own merge log while the component is closed, the merge forest
+after).
 
 Ties use the global flat index throughout (inside a block the local
 row-major order equals the global one). Whether a cell is on the raster
@@ -75,6 +95,19 @@ of :func:`glue` 21-30 bytes (terrain plus noise) to 135 (white noise).
 For 2e9 cells in 1024**2 blocks (7.7e6 boundary cells) that is at most
 about 1 GB. The final pairs are the output; they travel in the summaries
 and are merged by :func:`collect`, which the glue does not need.
+
+With termini: the local step holds 4 more bytes per cell while it runs
+(where each cell's descent ends; measured 14.5 against 11.3 bytes per
+block cell, pits). Per boundary cell a summary hands up 8 more bytes
+(``Strip.term``) and, for pits with the edge as outlet, 40 bytes per
+distinct minimum those cells reach (:class:`Roots`): measured +8 (peaks)
+and +10 (pits) bytes per boundary cell on terrain plus noise, +8 and +18
+on white noise. The glue keeps 24 more bytes per reduced-graph vertex
+(merge forest) and 8 per boundary cell (its global vertex and its row of
+:class:`Minima`, int32 each), plus 8-24 per minimum; its measured peak
+is 44 bytes per boundary cell on terrain plus noise (1024**2 blocks; 22-27
+without termini) and unchanged at 145 on white noise. :func:`finish_levels`
+uses 30 bytes per block cell, 16 of them its two float64 outputs.
 
 References
 ----------
@@ -115,7 +148,8 @@ from .basins import descend, fill_cells, resolve
 from .grid import forward_offsets, offsets
 from .persistence import KINDS, Pairs
 
-__all__ = ["Window", "Strip", "Roots", "BlockSummary", "Forest", "Boundary", "Resolution", "windows",
+__all__ = ["Window", "Strip", "Roots", "BlockSummary", "Forest", "Boundary", "Minima", "Resolution",
+           "windows",
            "halo", "read_block", "local", "glue", "collect", "finish", "finish_levels",
            "blocked_pairs", "blocked_fill", "blocked_levels", "local_summaries"]
 
@@ -293,17 +327,27 @@ class Forest:
 
 @dataclass(frozen=True)
 class Boundary:
-    """Per side of one block (as its strips): the global reduced-graph
-    vertex of each cell (``vertex``, -1: none), the raster minimum its
-    steepest descent ends at on the whole raster (``term``, -1: nodata)
-    and, for pits with the edge as outlet, that minimum's fill level and
-    depression depth (``level``, ``depth``; else None)."""
+    """One block's part of the glued boundary: the offset of its
+    reduced-graph vertex ids, and per side (as its strips) the global
+    vertex of each cell (``vertex``, -1: none) and the raster minimum its
+    steepest descent ends at on the whole raster, as a row of
+    :class:`Minima` (``minimum``, -1: nodata). 8 bytes per strip cell."""
 
     offset: int
     vertex: tuple
-    term: tuple
-    level: tuple | None
-    depth: tuple | None
+    minimum: tuple
+
+
+@dataclass(frozen=True)
+class Minima:
+    """The raster minima that boundary cells descend to (global ``cell``,
+    sorted) with, for pits with the edge as outlet, their fill ``level``
+    and the ``depth`` of their depression (else None). 8-24 bytes per
+    minimum."""
+
+    cell: np.ndarray
+    level: np.ndarray | None
+    depth: np.ndarray | None
 
 
 @dataclass(frozen=True)
@@ -313,8 +357,9 @@ class Resolution:
     which its component joins the outlet (-1: never).
 
     When the summaries carry termini, also the merge ``forest``, the
-    per-window :class:`Boundary` and the block grid (``rows``, ``cols``:
-    first row and column of each row and column of blocks), which the
+    per-window :class:`Boundary`, the :class:`Minima` the boundary cells
+    descend to and the block grid (``rows``, ``cols``: first row and
+    column of each row and column of blocks), which the
     per-block second passes (:func:`finish_levels`, the region steps of
     :mod:`terrain.engine.blocked_regions`) read. ``float32``: every block's
     values are exactly float32 (the whole raster's engine then works in
@@ -341,6 +386,7 @@ class Resolution:
     float32: bool = True
     forest: Forest | None = None
     boundary: dict | None = None
+    minima: Minima | None = None
     rows: tuple = ()
     cols: tuple = ()
 
@@ -513,8 +559,9 @@ def descend_block(blk: Block, kind: str, connectivity: int) -> tuple[np.ndarray,
     code = np.empty(n, np.int32 if 2 * n + 2 < 2**31 else np.int64)
     ex_ring = np.empty(2 * (blk.nr + blk.nc) + 4, np.int64)
     dr, dc = offsets(connectivity)
-    ne = _k.global_descend(blk.vals, kind == "peaks", blk.hr, blk.hc, blk.nr, blk.nc, blk.hwin.r0,
-                           blk.hwin.c0, blk.shape[1], dr, dc, code, ex_ring)
+    ne = _k.global_descend(blk.zk, blk.valid, not blk.valid.all(), blk.vals, kind == "peaks", blk.hr,
+                           blk.hc, blk.nr, blk.nc, blk.hwin.r0, blk.hwin.c0, blk.shape[1], dr, dc,
+                           code, ex_ring)
     return code, ex_ring[:ne]
 
 
@@ -736,82 +783,90 @@ def glue(summaries: Sequence[BlockSummary]) -> Resolution:
     order = np.lexsort((ew, ek))
     pb, pbk, pd, pdk, pe, esb, esk, ese, jcell, jkey, up, mcell, mkey = _k.glue_merge(
         vcell, vkey, veff, veffk, ea[order], eb[order], ew[order], ek[order], ef[order])
-    del ea, eb, ew, ek, ef, order
+    n_edges = int(ew.size)
+    del parts, ea, eb, ew, ek, ef, order
     s0 = summaries[0]
     wins = [s.window for s in summaries]
     forest = Forest(vcell, vkey, up, mcell, mkey, jcell, jkey)
     rows, cols, _ = block_grid(summaries)
+    boundary, minima = _boundary(summaries, off, forest)
     return Resolution(s0.shape, s0.kind, s0.connectivity, s0.edge_outlet, pb, pd, pbk, pdk, pe,
                       esb, esk, ese,
                       {w: jcell[off[k]:off[k + 1]] for k, w in enumerate(wins)},
                       {w: jkey[off[k]:off[k + 1]] for k, w in enumerate(wins)},
-                      nv, int(sum(p[0].size for p in parts)),
-                      int(sum(s.boundary_cells() for s in summaries)),
-                      all(s.float32 for s in summaries), forest, _boundary(summaries, off, forest),
+                      nv, n_edges, int(sum(s.boundary_cells() for s in summaries)),
+                      all(s.float32 for s in summaries), forest, boundary, minima,
                       tuple(rows), tuple(cols))
 
 
-def _facing_entries(summaries, base, src, cells) -> np.ndarray:
+def _facing_entries(summaries, base, src, cells, chunk: int = 1 << 12) -> np.ndarray:
     """Flat strip entry of each global cell in ``cells``, read from the
-    side of its block that faces block ``src`` (a neighbour)."""
+    side of its block that faces block ``src`` (a neighbour). Done in
+    chunks, so the temporaries do not grow with the boundary."""
     rows, cols, at = block_grid(summaries)
+    rows, cols = np.asarray(rows), np.asarray(cols)
     ncols = summaries[0].shape[1]
-    grid = np.empty((len(rows), len(cols)), np.int64)
-    for (i, j), k in at.items():
-        grid[i, j] = k
+    grid = np.empty((rows.size, cols.size), np.int64)
     gi, gj = np.empty(len(summaries), np.int64), np.empty(len(summaries), np.int64)
     for (i, j), k in at.items():
-        gi[k], gj[k] = i, j
-    r, c = np.divmod(cells, ncols)
-    bi = np.searchsorted(rows, r, "right") - 1
-    bj = np.searchsorted(cols, c, "right") - 1
-    si, sj = gi[src], gj[src]
-    side = np.where(bi < si, BOTTOM, np.where(bi > si, TOP, np.where(bj < sj, RIGHT, LEFT)))
-    pos = np.where(side <= BOTTOM, c - np.asarray(cols)[bj], r - np.asarray(rows)[bi])
-    return base[grid[bi, bj] * 4 + side] + pos
-
-
-def _boundary(summaries, off, forest: Forest) -> dict | None:
-    """Per window: strip vertices made global, and per strip cell the raster
-    minimum its steepest descent ends at (chains followed across blocks)
-    with, for pits with the edge as outlet, its fill level and depth."""
-    if any(st.term is None for s in summaries for st in s.strips):
-        return None
-    sizes = [st.term.size for s in summaries for st in s.strips]
-    base = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
-    term = np.concatenate([st.term for s in summaries for st in s.strips] + [np.empty(0, np.int64)])
-    src = np.repeat(np.arange(len(sizes)) // 4, sizes)
-    nxt = np.full(term.size, -1, np.int64)
-    ex = np.flatnonzero(term < -1)
-    if ex.size:
-        nxt[ex] = _facing_entries(summaries, base, src[ex], -term[ex] - 2)
-    final = _k.follow_exits(term, nxt)
-    level = depth = None
-    if all(s.roots is not None for s in summaries):
-        level, depth = _root_levels(summaries, off, forest, final)
-    out = {}
-    for k, s in enumerate(summaries):
-        sl = [slice(base[4 * k + q], base[4 * k + q + 1]) for q in range(4)]
-        vert = tuple(np.where(st.vertex >= 0, st.vertex.astype(np.int64) + off[k], -1) for st in s.strips)
-        out[s.window] = Boundary(int(off[k]), vert, tuple(final[q] for q in sl),
-                                 None if level is None else tuple(level[q] for q in sl),
-                                 None if depth is None else tuple(depth[q] for q in sl))
+        grid[i, j], gi[k], gj[k] = k, i, j
+    out = np.empty(cells.size, np.int64)
+    for a in range(0, cells.size, chunk):
+        r, c = np.divmod(cells[a:a + chunk], ncols)
+        bi = np.searchsorted(rows, r, "right") - 1
+        bj = np.searchsorted(cols, c, "right") - 1
+        si, sj = gi[src[a:a + chunk]], gj[src[a:a + chunk]]
+        side = np.where(bi < si, BOTTOM, np.where(bi > si, TOP, np.where(bj < sj, RIGHT, LEFT)))
+        pos = np.where(side <= BOTTOM, c - cols[bj], r - rows[bi])
+        out[a:a + chunk] = base[grid[bi, bj] * 4 + side] + pos
     return out
 
 
-def _root_levels(summaries, off, forest: Forest, final: np.ndarray):
-    """Fill level and depression depth of the minimum each strip cell ends at."""
+def _boundary(summaries, off, forest: Forest) -> tuple[dict | None, Minima | None]:
+    """Per window: strip vertices made global and, per strip cell, the
+    raster minimum its steepest descent ends at (chains followed across
+    blocks) as a row of the :class:`Minima` table."""
+    if any(st.term is None for s in summaries for st in s.strips):
+        return None, None
+    sizes = [st.term.size for s in summaries for st in s.strips]
+    base = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    term = np.concatenate([st.term for s in summaries for st in s.strips] + [np.empty(0, np.int64)])
+    small = np.int32 if term.size < 2**31 and off[-1] < 2**31 - 1 else np.int64
+    nxt = np.full(term.size, -1, small)
+    ex = np.flatnonzero(term < -1)
+    nxt[ex] = _facing_entries(summaries, base, (np.searchsorted(base, ex, "right") - 1) // 4,
+                              -term[ex] - 2)
+    _k.follow_exits(term, nxt)  # term now holds the minimum of every entry
+    del nxt, ex
+    cells = np.unique(term[term >= 0])
+    out = {}
+    for k, s in enumerate(summaries):
+        vert = tuple(np.where(st.vertex >= 0, st.vertex + off[k], -1).astype(small) for st in s.strips)
+        mins = [term[base[4 * k + q]:base[4 * k + q + 1]] for q in range(4)]
+        rows = tuple(np.where(m >= 0, np.searchsorted(cells, m), -1).astype(small) for m in mins)
+        out[s.window] = Boundary(int(off[k]), vert, rows)
+    del term, mins
+    level = depth = None
+    if all(s.roots is not None for s in summaries):
+        level, depth = _root_levels(summaries, off, forest, cells)
+    return out, Minima(cells, level, depth)
+
+
+def _root_levels(summaries, off, forest: Forest, cells: np.ndarray):
+    """Fill level and depression depth of each minimum in ``cells``, from
+    the :class:`Roots` its block handed up."""
     roots = [s.roots for s in summaries]
     cell = np.concatenate([r.cell for r in roots])
     x = np.concatenate([np.where(r.x >= 0, r.x + off[k], r.x) for k, r in enumerate(roots)])
     tc, tk, dk = (np.concatenate([getattr(r, f) for r in roots]) for f in ("tc", "tk", "dk"))
-    lv, dp = np.full(cell.size + 1, np.nan), np.full(cell.size + 1, np.nan)
-    _k.levels_and_depths(tk, tc, x.astype(np.int64), dk, forest.jcell, forest.jkey, forest.up,
-                         forest.mkey, forest.vkey, lv, dp)
-    o = np.argsort(cell)
-    at = np.where(final >= 0, o[np.minimum(np.searchsorted(cell[o], final), cell.size - 1)]
-                  if cell.size else 0, cell.size)
-    return lv[at], dp[at]
+    at = np.searchsorted(cell, cells) if cell.size and np.all(cell[1:] > cell[:-1]) else None
+    if at is None:
+        o = np.argsort(cell)
+        at = o[np.searchsorted(cell[o], cells)]
+    lv, dp = np.empty(at.size), np.empty(at.size)
+    _k.levels_and_depths(tk[at], tc[at], x[at].astype(np.int64), dk[at], forest.jcell, forest.jkey,
+                         forest.up, forest.mkey, forest.vkey, lv, dp)
+    return lv, dp
 
 
 def _empty_pairs(kind: str) -> Pairs:
@@ -891,19 +946,20 @@ def finish(block_values: np.ndarray, window: Window | Sequence[int], resolution:
 
 def ring_values(resolution: Resolution, window: Window, field: str) -> np.ndarray:
     """Per position of ``window``'s halo ring (see
-    :func:`~terrain.engine.blocked_kernels.ring_index`), ``field`` of
-    :class:`Boundary` ("vertex", "term", "level" or "depth") at that cell,
-    read from the facing strip of the neighbouring block; -1 (NaN for
-    level and depth) off the raster."""
+    :func:`~terrain.engine.blocked_kernels.ring_index`), the value at that
+    cell read from the facing strip of the neighbouring block: "vertex"
+    (global reduced-graph vertex), "term" (the raster minimum its steepest
+    descent ends at), "level" or "depth" (that minimum's fill level and
+    depression depth); -1 (NaN for level and depth) off the raster."""
     rows, cols = list(resolution.rows), list(resolution.cols)
     ends_r, ends_c = rows[1:] + [resolution.shape[0]], cols[1:] + [resolution.shape[1]]
     i, j = rows.index(window.r0), cols.index(window.c0)
     nr, nc = window.r1 - window.r0, window.c1 - window.c0
-    real = field in ("level", "depth")
-    out = np.full(2 * (nc + 2) + 2 * nr, np.nan if real else -1, np.float64 if real else np.int64)
+    part = "vertex" if field == "vertex" else "minimum"
+    out = np.full(2 * (nc + 2) + 2 * nr, -1, np.int64)
 
     def side(ii, jj, q):
-        return getattr(resolution.boundary[Window(rows[ii], ends_r[ii], cols[jj], ends_c[jj])], field)[q]
+        return getattr(resolution.boundary[Window(rows[ii], ends_r[ii], cols[jj], ends_c[jj])], part)[q]
 
     for ii, base, q in ((i - 1, 0, BOTTOM), (i + 1, nc + 2, TOP)):
         if 0 <= ii < len(rows):
@@ -916,7 +972,11 @@ def ring_values(resolution: Resolution, window: Window, field: str) -> np.ndarra
         out[2 * (nc + 2):2 * (nc + 2) + nr] = side(i, j - 1, RIGHT)
     if j + 1 < len(cols):
         out[2 * (nc + 2) + nr:] = side(i, j + 1, LEFT)
-    return out
+    if part == "vertex":
+        return out
+    table = getattr(resolution.minima, "cell" if field == "term" else field)
+    vals = table[np.maximum(out, 0)] if table.size else np.zeros(out.size, table.dtype)
+    return np.where(out >= 0, vals, -1 if field == "term" else np.nan)
 
 
 def need_termini(resolution: Resolution, fill: bool = False) -> None:
@@ -925,7 +985,7 @@ def need_termini(resolution: Resolution, fill: bool = False) -> None:
     if resolution.boundary is None:
         raise OptionError("this step needs block summaries made with termini=True")
     if fill and (resolution.kind != "pits" or not resolution.edge_outlet or
-                 resolution.boundary and next(iter(resolution.boundary.values())).level is None):
+                 resolution.minima.level is None):
         raise OptionError("fill levels need kind='pits' with the edge as outlet")
 
 

@@ -27,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .basins import before, find, upsert
+from .basins import before, descend, find, upsert
 
 EDGE = 1  # cell on the raster edge or next to nodata
 TERM = 2  # valid cell with a valid neighbour in another block
@@ -566,64 +566,86 @@ def ring_index(rr, cc, nr, nc):
     return 2 * (nc + 2) + nr + rr
 
 
+@njit(cache=True, inline="always")
+def _point(code, ex_ring, ne, i, r, c, bR, bC, hr, hc, nr, nc):
+    """Record cell ``i``'s lowest neighbour at frame (bR, bC) in ``code``
+    (self, block cell or exit); returns the number of exits."""
+    rr = bR - hr
+    cc = bC - hc
+    if rr == r and cc == c:
+        code[i] = -(i + 1)
+    elif 0 <= rr < nr and 0 <= cc < nc:
+        code[i] = rr * nc + cc
+    else:
+        code[i] = -(nr * nc + 1 + ne)
+        ex_ring[ne] = ring_index(rr, cc, nr, nc)
+        ne += 1
+    return ne
+
+
 @njit(cache=True)
-def global_descend(vals, neg, hr, hc, nr, nc, hr0, hc0, ncols, dr, dc, code, ex_ring):
+def _ring_pointer(vals, sgn, R, C, hr0, hc0, ncols, dr, dc):
+    """Frame (row, column) of the lowest neighbour of frame cell (R, C), itself
+    included, in the total order (key, global index)."""
+    hnr, hnc = vals.shape
+    bz = vals[R, C] * sgn
+    bg = (hr0 + R) * ncols + hc0 + C
+    bR = R
+    bC = C
+    for k in range(dr.size):
+        RR = R + dr[k]
+        CC = C + dc[k]
+        if RR < 0 or RR >= hnr or CC < 0 or CC >= hnc:
+            continue
+        zz = vals[RR, CC] * sgn
+        if not np.isfinite(zz):
+            continue
+        gg = (hr0 + RR) * ncols + hc0 + CC
+        if zz < bz or (zz == bz and gg < bg):
+            bz = zz
+            bg = gg
+            bR = RR
+            bC = CC
+    return bR, bC
+
+
+@njit(cache=True)
+def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, ncols, dr, dc,
+                   code, ex_ring):
     """Steepest descent of a block's cells on the whole raster, resolved to
     where each chain ends inside the block.
 
-    ``vals`` holds the block plus its halo (NaN: nodata), ``neg`` makes the
-    key ``-vals`` (peaks); block cell (r, c) is ``vals[r + hr, c + hc]`` and
-    halo cell (R, C) is global cell ``(hr0 + R) * ncols + hc0 + C``. Each
-    valid cell points to its lowest neighbour in the total order (key,
+    Each valid cell points to its lowest neighbour in the total order (key,
     global index), itself included -- exactly ``basins.descend`` on the
     whole raster, so chains that stay in the block follow the raster's own
-    basins. ``code[i]`` ends as ``-(t + 1)`` when the chain of cell ``i``
-    ends at block cell ``t`` with no lower neighbour (a minimum of the
-    raster), ``-(n + 1 + e)`` when it leaves the block at exit ``e`` (a
-    block cell whose lowest neighbour is the halo cell at ring position
-    ``ex_ring[e]``, see :func:`ring_index`), ``-(2 n + 1)`` on nodata.
-    Returns the number of exits.
+    basins. Cells off the block's outer ring see only block cells, so
+    ``basins.descend`` on the block (``zk``, ``valid``) gives their pointer;
+    the outer ring is redone with the halo: ``vals`` holds the block plus
+    halo (NaN: nodata; ``neg``: the key is ``-vals``), block cell (r, c) is
+    ``vals[r + hr, c + hc]`` and frame cell (R, C) is global cell
+    ``(hr0 + R) * ncols + hc0 + C``. ``code[i]`` ends as ``-(t + 1)`` when
+    the chain of cell ``i`` ends at block cell ``t`` with no lower
+    neighbour (a minimum of the raster), ``-(n + 1 + e)`` when it leaves
+    the block at exit ``e`` (a block cell whose lowest neighbour is the
+    halo cell at ring position ``ex_ring[e]``, see :func:`ring_index`),
+    ``-(2 n + 1)`` on nodata. Returns the number of exits.
     """
     n = nr * nc
-    hnr, hnc = vals.shape
     sgn = -1.0 if neg else 1.0
+    descend(zk, valid, has_nodata, nr, nc, dr, dc, code)
+    for i in range(n):
+        if not valid[i]:
+            code[i] = -(2 * n + 1)
+        elif code[i] == i:
+            code[i] = -(i + 1)
     ne = 0
     for r in range(nr):
-        R = r + hr
-        for c in range(nc):
-            C = c + hc
+        step = 1 if (r == 0 or r == nr - 1) else max(nc - 1, 1)
+        for c in range(0, nc, step):
             i = r * nc + c
-            bz = vals[R, C] * sgn
-            if not np.isfinite(bz):
-                code[i] = -(2 * n + 1)
-                continue
-            bg = (hr0 + R) * ncols + hc0 + C
-            bR = R
-            bC = C
-            for k in range(dr.size):
-                RR = R + dr[k]
-                CC = C + dc[k]
-                if RR < 0 or RR >= hnr or CC < 0 or CC >= hnc:
-                    continue
-                zz = vals[RR, CC] * sgn
-                if not np.isfinite(zz):
-                    continue
-                gg = (hr0 + RR) * ncols + hc0 + CC
-                if zz < bz or (zz == bz and gg < bg):
-                    bz = zz
-                    bg = gg
-                    bR = RR
-                    bC = CC
-            rr = bR - hr
-            cc = bC - hc
-            if rr == r and cc == c:
-                code[i] = -(i + 1)
-            elif 0 <= rr < nr and 0 <= cc < nc:
-                code[i] = rr * nc + cc
-            else:
-                code[i] = -(n + 1 + ne)
-                ex_ring[ne] = ring_index(rr, cc, nr, nc)
-                ne += 1
+            if valid[i]:
+                bR, bC = _ring_pointer(vals, sgn, r + hr, c + hc, hr0, hc0, ncols, dr, dc)
+                ne = _point(code, ex_ring, ne, i, r, c, bR, bC, hr, hc, nr, nc)
     for i in range(n):
         if code[i] >= 0:
             k = i
@@ -714,12 +736,11 @@ def levels_and_depths(tk, tc, xv, dk, jcell, jkey, up, mkey, vkey, level, depth)
 
 
 @njit(cache=True)
-def follow_exits(term, nxt):
-    """Resolve chains between boundary cells: ``term[e] >= 0`` is a raster
-    minimum, -1 nodata, < -1 an exit continuing at entry ``nxt[e]``.
-    Returns per entry the minimum its chain ends at (chains of steepest
-    descent are acyclic)."""
-    out = term.copy()
+def follow_exits(out, nxt):
+    """Resolve chains between boundary cells, in place: ``out[e] >= 0`` is
+    a raster minimum, -1 nodata, < -1 an exit continuing at entry
+    ``nxt[e]``; each entry ends as the minimum its chain ends at (chains
+    of steepest descent are acyclic)."""
     for e in range(out.size):
         if out[e] >= -1:
             continue
@@ -732,7 +753,6 @@ def follow_exits(term, nxt):
             x = nxt[k]
             out[k] = end
             k = x
-    return out
 
 
 @njit(cache=True)

@@ -1160,21 +1160,29 @@ def blocked_fill(source: Any, *, connectivity: int = 8, block: int | tuple[int, 
        for trillion cell digital elevation models on desktops or clusters.
        Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
     """
-    _check("pits", connectivity)
-    shape = raster_shape(source)
-    wins = windows(shape, block)
+    shape, wins = _pits_windows(source, connectivity, block)
     if out is None:
         out = np.empty(shape, np.float64)
     if not wins:
         return _empty_pairs("pits"), out
-    summaries = local_summaries(source, wins, kind="pits", connectivity=connectivity,
-                                edge_outlet=True, map=map, mask=mask)
-    res = glue(summaries)
-    p = collect(summaries, res)
-    del summaries
+    p, res = _pits_pass_one(source, wins, connectivity, map, mask, termini=False)
     for w, filled in zip(wins, map(functools.partial(_finish_task, source, mask, res), wins)):
         out[w.r0:w.r1, w.c0:w.c1] = filled
     return p, out
+
+
+def _pits_windows(source, connectivity, block):
+    _check("pits", connectivity)
+    shape = raster_shape(source)
+    return shape, windows(shape, block)
+
+
+def _pits_pass_one(source, wins, connectivity, map, mask, termini):
+    """Local steps of pits with the edge as outlet, glued; the pairs and the resolution."""
+    summaries = local_summaries(source, wins, kind="pits", connectivity=connectivity,
+                                edge_outlet=True, map=map, mask=mask, termini=termini)
+    res = glue(summaries)
+    return collect(summaries, res), res
 
 
 def _levels_task(source, mask, resolution, window):
@@ -1202,18 +1210,12 @@ def blocked_levels(source: Any, *, connectivity: int = 8, block: int | tuple[int
        for trillion cell digital elevation models on desktops or clusters.
        Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
     """
-    _check("pits", connectivity)
-    shape = raster_shape(source)
-    wins = windows(shape, block)
+    shape, wins = _pits_windows(source, connectivity, block)
     level_out = np.empty(shape, np.float64) if level_out is None else level_out
     depth_out = np.empty(shape, np.float64) if depth_out is None else depth_out
     if not wins:
         return _empty_pairs("pits"), level_out, depth_out
-    summaries = local_summaries(source, wins, kind="pits", connectivity=connectivity,
-                                edge_outlet=True, map=map, mask=mask, termini=True)
-    res = glue(summaries)
-    p = collect(summaries, res)
-    del summaries
+    p, res = _pits_pass_one(source, wins, connectivity, map, mask, termini=True)
     for w, (lv, dp) in zip(wins, map(functools.partial(_levels_task, source, mask, res), wins)):
         level_out[w.r0:w.r1, w.c0:w.c1] = lv
         depth_out[w.r0:w.r1, w.c0:w.c1] = dp

@@ -583,25 +583,29 @@ def _point(code, ex_ring, ne, i, r, c, bR, bC, hr, hc, nr, nc):
     return ne
 
 
+@njit(cache=True, inline="always")
+def frame_neighbour(vals, sgn, R, C, k, dr, dc, hr0, hc0, ncols):
+    """Neighbour ``k`` of frame cell (R, C): (valid, key, global cell, row,
+    column); not valid when off the frame (the raster) or nodata."""
+    RR = R + dr[k]
+    CC = C + dc[k]
+    if RR < 0 or RR >= vals.shape[0] or CC < 0 or CC >= vals.shape[1]:
+        return False, 0.0, -1, RR, CC
+    zz = vals[RR, CC] * sgn
+    return np.isfinite(zz), zz, (hr0 + RR) * ncols + hc0 + CC, RR, CC
+
+
 @njit(cache=True)
 def _ring_pointer(vals, sgn, R, C, hr0, hc0, ncols, dr, dc):
     """Frame (row, column) of the lowest neighbour of frame cell (R, C), itself
     included, in the total order (key, global index)."""
-    hnr, hnc = vals.shape
     bz = vals[R, C] * sgn
     bg = (hr0 + R) * ncols + hc0 + C
     bR = R
     bC = C
     for k in range(dr.size):
-        RR = R + dr[k]
-        CC = C + dc[k]
-        if RR < 0 or RR >= hnr or CC < 0 or CC >= hnc:
-            continue
-        zz = vals[RR, CC] * sgn
-        if not np.isfinite(zz):
-            continue
-        gg = (hr0 + RR) * ncols + hc0 + CC
-        if zz < bz or (zz == bz and gg < bg):
+        ok, zz, gg, RR, CC = frame_neighbour(vals, sgn, R, C, k, dr, dc, hr0, hc0, ncols)
+        if ok and (zz < bz or (zz == bz and gg < bg)):
             bz = zz
             bg = gg
             bR = RR

@@ -31,37 +31,34 @@ import numpy as np
 from numba import njit
 
 from .basins import before, find
-from .blocked_kernels import EDGE, NOTERM, forest_root, ring_index
+from .blocked_kernels import EDGE, NOTERM, forest_root, frame_neighbour, ring_index
 
 NOLINK = -3
 
 
 @njit(cache=True, inline="always")
-def _component(b, parent, tt, node, minc, zk, i, voff, up, mcell, mkey, vcell, vkey, wk, wg,
-               r0, c0, nc, ncols):
-    """(id, key, cell) of the raster component holding block basin ``b``
-    just before block cell ``i`` (key ``wk``, global cell ``wg``): id -1
-    for the outlet, ``r`` for a component closed in the block (root basin
-    ``r``), ``nb + 1 + v`` for glued root vertex ``v``; key and cell of its
-    deepest cell (its age in the elder rule)."""
+def _component(loc, lab, ring_vertex, parent, tt, node, minc, zk, i, voff, up, mcell, mkey, vcell,
+               vkey, wk, wg, r0, c0, nc, ncols):
+    """(id, key, cell) of the raster component holding cell ``loc`` (local;
+    ``-(ring + 1)``: a halo cell) just before block cell ``i`` (key ``wk``,
+    global cell ``wg``): id -1 for the outlet, ``r`` for a component closed
+    in the block (root basin ``r``), ``nb + 1 + v`` for glued root vertex
+    ``v`` (a halo cell's strip vertex, or the vertex a block component
+    joined on reaching the boundary); key and cell of its deepest cell
+    (its age in the elder rule)."""
     nb = minc.size
-    r = find(parent, b)
-    if r == nb:
-        return -1, -np.inf, -1
-    t = tt[r]
-    if t != NOTERM and (t < 0 or before(zk, t, i)):
-        v = forest_root(up, mcell, mkey, voff + node[r], wk, wg)
-        if v == vcell.size - 1:
+    if loc < 0:
+        v = ring_vertex[-loc - 1]
+    else:
+        r = find(parent, -lab[loc] - 1)
+        if r == nb:
             return -1, -np.inf, -1
-        return nb + 1 + v, vkey[v], vcell[v]
-    m = minc[r]
-    return r, np.float64(zk[m]), (r0 + m // nc) * ncols + c0 + m % nc
-
-
-@njit(cache=True, inline="always")
-def _halo_component(ring, ring_vertex, nb, up, mcell, mkey, vcell, vkey, wk, wg):
-    """As :func:`_component` for a halo cell: its strip vertex, glued."""
-    v = forest_root(up, mcell, mkey, ring_vertex[ring], wk, wg)
+        t = tt[r]
+        if t == NOTERM or (t >= 0 and not before(zk, t, i)):
+            m = minc[r]
+            return r, np.float64(zk[m]), (r0 + m // nc) * ncols + c0 + m % nc
+        v = voff + node[r]
+    v = forest_root(up, mcell, mkey, v, wk, wg)
     if v == vcell.size - 1:
         return -1, -np.inf, -1
     return nb + 1 + v, vkey[v], vcell[v]
@@ -135,7 +132,6 @@ def replay(zk, flags, vals, neg, hr, hc, nr, nc, hr0, hc0, ncols, dr, dc, lab, m
     nb = minc.size
     r0 = hr0 + hr
     c0 = hc0 + hc
-    hnr, hnc = vals.shape
     sgn = -1.0 if neg else 1.0
     parent = np.arange(nb + 1).astype(np.int64)
     src = np.empty(64, np.int64)
@@ -161,13 +157,8 @@ def replay(zk, flags, vals, neg, hr, hc, nr, nc, hr0, hc0, ncols, dr, dc, lab, m
         wg = (hr0 + R) * ncols + hc0 + C
         cnt = 0
         for k in range(dr.size):
-            RR = R + dr[k]
-            CC = C + dc[k]
-            if RR < 0 or RR >= hnr or CC < 0 or CC >= hnc:
-                continue
-            zz = vals[RR, CC] * sgn
-            gg = (hr0 + RR) * ncols + hc0 + CC
-            if not np.isfinite(zz) or not (zz < wk or (zz == wk and gg < wg)):
+            ok, zz, gg, RR, CC = frame_neighbour(vals, sgn, R, C, k, dr, dc, hr0, hc0, ncols)
+            if not ok or not (zz < wk or (zz == wk and gg < wg)):
                 continue
             rr = RR - hr
             cc = CC - hc
@@ -185,23 +176,15 @@ def replay(zk, flags, vals, neg, hr, hc, nr, nc, hr0, hc0, ncols, dr, dc, lab, m
             ng[s] = gg
             nloc[s] = loc
             cnt += 1
-        first = nloc[0] if cnt > 0 else i
-        if first >= 0:
-            cid, ck, cg = _component(-lab[first] - 1, parent, tt, node, minc, zk, i, voff, up,
-                                     mcell, mkey, vcell, vkey, wk, wg, r0, c0, nc, ncols)
-        else:
-            cid, ck, cg = _halo_component(-first - 1, ring_vertex, nb, up, mcell, mkey, vcell,
-                                          vkey, wk, wg)
+        cid, ck, cg = _component(nloc[0] if cnt > 0 else i, lab, ring_vertex, parent, tt, node,
+                                 minc, zk, i, voff, up, mcell, mkey, vcell, vkey, wk, wg, r0, c0,
+                                 nc, ncols)
         seen[0] = cid
         ns = 1
         for s in range(1, cnt):
             loc = nloc[s]
-            if loc >= 0:
-                did, dk, dg = _component(-lab[loc] - 1, parent, tt, node, minc, zk, i, voff, up,
-                                         mcell, mkey, vcell, vkey, wk, wg, r0, c0, nc, ncols)
-            else:
-                did, dk, dg = _halo_component(-loc - 1, ring_vertex, nb, up, mcell, mkey, vcell,
-                                              vkey, wk, wg)
+            did, dk, dg = _component(loc, lab, ring_vertex, parent, tt, node, minc, zk, i, voff, up,
+                                     mcell, mkey, vcell, vkey, wk, wg, r0, c0, nc, ncols)
             known = False
             for u in range(ns):
                 if seen[u] == did:

@@ -62,7 +62,7 @@ from numba import njit
 
 from ..errors import OptionError
 from .basins import before, descend, fill_cells, find, resolve, upsert
-from .grid import forward_offsets, is_edge, offsets
+from .grid import forward_offsets, is_edge, neighbour, offsets
 
 __all__ = ["Pairs", "pairs", "Fill", "pits_and_levels", "pairs_and_fill", "count_ponding",
            "Regions", "regions", "KINDS"]
@@ -314,22 +314,13 @@ def _across_cells(zk, valid, lab, nr, nc, dr, dc, ea, eb, ew, nb):
         other = eb[t] if ea[t] == hub else ea[t]
         best = -1
         for k in range(nn):
-            rr = r + dr[k]
-            cc = c + dc[k]
-            if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
-                continue
-            j = rr * nc + cc
-            if valid[j] and -lab[j] - 1 == other and (best < 0 or before(zk, j, best)):
+            j = neighbour(r, c, k, nr, nc, dr, dc)
+            if j >= 0 and valid[j] and -lab[j] - 1 == other and (best < 0 or before(zk, j, best)):
                 best = j
         rank = 0
         for k in range(nn):
-            rr = r + dr[k]
-            cc = c + dc[k]
-            if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
-                continue
-            j = rr * nc + cc
-            if j != best and valid[j] and before(zk, j, best):
-                rank += 1
+            j = neighbour(r, c, k, nr, nc, dr, dc)
+            rank += j >= 0 and j != best and valid[j] and before(zk, j, best)
         out[t] = rank
     return out
 

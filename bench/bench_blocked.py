@@ -16,13 +16,24 @@ on summaries it already holds, divided by the number of boundary cells
 (cells facing another block), for 1024^2 and 256^2 blocks; next to it the
 summaries' boundary part (what glue reads) per boundary cell.
 
+Regions and depression depths: whole-raster ``regions()`` against
+``blocked_regions()`` (three passes: local steps with termini, the region
+replay per block, labels for blocks whose labels wait on others) at merge
+level ``--merge-level``, and ``pits_and_levels()`` read per cell against
+``blocked_levels()``, same raster and blocks, one core, medians. Their
+memory: what the local steps hand up with termini per boundary cell, the
+glue's peak (as above), what the region step hands up per boundary cell,
+and the peak of one local step, region step and level step per block
+cell (fresh subprocess, each measured on its second call on the block).
+
 ``--large N`` adds a run on an N^2 raster (e.g. 16384): a smooth terrain
 upsampled to N^2 plus white noise, written tile by tile to a ``.npy`` on
 /tmp. A fresh process runs ``blocked_pairs`` reading one window at a time,
 another loads the raster and runs ``pairs()``; each prints wall time and
 peak RSS (optionally ``--min-persistence`` to keep fewer output pairs).
 
-Run:  python bench/bench_blocked.py [--side 4096] [--block 1024] [--repeat 3] [--large 16384]
+Run:  python bench/bench_blocked.py [--side 4096] [--block 1024] [--repeat 3] [--merge-level 5]
+                                   [--large 16384] [--only-regions]
 """
 
 from __future__ import annotations
@@ -86,7 +97,8 @@ def _glue_child(path: str) -> None:
         summaries = pickle.load(fh)
     z = noisy_terrain(64)
     kind = summaries[0].kind
-    glue([local(read_block(z, w, z.shape), w, z.shape, kind=kind)
+    termini = summaries[0].strips[0].term is not None
+    glue([local(read_block(z, w, z.shape), w, z.shape, kind=kind, termini=termini)
           for w in windows(z.shape, 16)])  # warm-up on a tiny raster: compiled code loaded
     before = _reset_peak()
     res = glue(summaries)
@@ -147,11 +159,11 @@ def _write_large(path: str, n: int, tile: int = 2048) -> None:
     del mm
 
 
-def glue_bytes_per_boundary_cell(z, block, kind):
+def glue_bytes_per_boundary_cell(z, block, kind, termini=False):
     from terrain.engine.blocked import local, read_block, windows
 
     wins = windows(z.shape, block)
-    sums = [local(read_block(z, w, z.shape), w, z.shape, kind=kind) for w in wins]
+    sums = [local(read_block(z, w, z.shape), w, z.shape, kind=kind, termini=termini) for w in wins]
     cells = sum(s.boundary_cells() for s in sums)
     handed = sum(s.boundary_nbytes() for s in sums) / cells
     with tempfile.TemporaryDirectory() as d:
@@ -203,6 +215,83 @@ def memory_table(z, npy, block):
             print(f"{kind:>5} {block:>6} {cells:>15} {handed:12.1f} {peak:12.1f}", flush=True)
 
 
+def regions_table(z, block, repeat, level):
+    from terrain.engine.blocked import blocked_levels
+    from terrain.engine.blocked_regions import blocked_regions
+    from terrain.engine.persistence import pits_and_levels, regions
+
+    def whole_levels():
+        _, f = pits_and_levels(z)
+        b = -f.labels.astype(np.int64) - 1
+        return f.level[b], f.depth[b]
+
+    print(f"\nregions at merge level {level} and depression depths, blocks {block}^2, one core")
+    print(f"{'what':>14} {'regions':>8} {'whole s':>8} {'blocked s':>10} {'blocked/whole':>14}")
+    for kind in ("peaks", "pits"):
+        n = len(regions(z, kind=kind, merge_level=level))
+        t_whole = median_time(lambda kind=kind: regions(z, kind=kind, merge_level=level), repeat)
+        t_blk = median_time(lambda kind=kind: blocked_regions(z, kind=kind, merge_level=level,
+                                                              block=block), repeat)
+        print(f"{'regions ' + kind:>14} {n:>8} {t_whole:8.2f} {t_blk:10.2f} {t_blk / t_whole:13.2f}x",
+              flush=True)
+    t_whole = median_time(whole_levels, repeat)
+    t_blk = median_time(lambda: blocked_levels(z, block=block), repeat)
+    print(f"{'levels, depths':>14} {'':>8} {t_whole:8.2f} {t_blk:10.2f} {t_blk / t_whole:13.2f}x",
+          flush=True)
+
+
+def _region_child(path: str, block: int, level: float) -> None:
+    from terrain.engine.blocked import finish_levels, local, read_block, windows
+    from terrain.engine.blocked_regions import region_step
+
+    with open(path, "rb") as fh:
+        res, reps = pickle.load(fh)
+    src = NpyWindows(path[:-4] + ".npy")
+    wins = windows(src.shape, block)
+    k = len(wins) // 2 + 1  # an interior block
+    w = wins[k]
+    vals = read_block(src, w, src.shape)
+    steps = {"local()": lambda: local(vals, w, src.shape, kind="pits"),
+             "local(termini=True)": lambda: local(vals, w, src.shape, kind="pits", termini=True),
+             "region_step()": lambda: region_step(vals, w, res, level, reps[k]),
+             "finish_levels()": lambda: finish_levels(vals, w, res)}
+    for name, step in steps.items():
+        step()  # warm-up on the same block: compiled code loaded, arenas settled
+        before = _reset_peak()
+        step()
+        grown = (_status_kib("VmHWM") - before) * 1024 / ((w.r1 - w.r0) * (w.c1 - w.c0))
+        print(f"{name:>22} {grown:8.1f} B")
+
+
+def region_memory(z, npy, block, level):
+    from terrain.engine.blocked import collect, glue, local, read_block, windows
+    from terrain.engine.blocked_regions import region_step, region_table, window_reps
+
+    print(f"\nregions: per boundary cell (blocks {block}^2; region step at merge level {level})")
+    print(f"{'kind':>5} {'boundary cells':>15} {'handed up B':>12} {'+ termini B':>12} {'glue peak B':>12} "
+          f"{'region step B':>14}")
+    for kind in ("peaks", "pits"):
+        cells, plain, _ = glue_bytes_per_boundary_cell(z, block, kind)
+        cells, handed, peak = glue_bytes_per_boundary_cell(z, block, kind, termini=True)
+        wins = windows(z.shape, block)
+        sums = [local(read_block(z, w, z.shape), w, z.shape, kind=kind, termini=True,
+                      merge_level=level) for w in wins]
+        res = glue(sums)
+        table = region_table(collect(sums, res), level, res.float32)
+        reps = window_reps(table, wins, z.shape)
+        steps = [region_step(read_block(z, w, z.shape), w, res, level, r) for w, r in zip(wins, reps)]
+        up = sum(s.source.nbytes + s.value.nbytes + s.needs.nbytes for s in steps) / cells
+        print(f"{kind:>5} {cells:>15} {plain:12.1f} {handed - plain:12.1f} {peak:12.1f} {up:14.1f}",
+              flush=True)
+    with open(npy[:-4] + ".pkl", "wb") as fh:
+        pickle.dump((res, reps), fh)
+    env = dict(os.environ, MALLOC_MMAP_THRESHOLD_="65536")
+    out = subprocess.run([sys.executable, __file__, "--region-child", f"{npy[:-4]}.pkl,{block},{level}"],
+                         capture_output=True, text=True, check=True, env=env)
+    print(f"\nper block cell, one interior {block}^2 block (pits; second call after a warm-up):")
+    print(out.stdout.rstrip())
+
+
 def large_run(n, block, min_pers):
     print(f"\n{n}^2 peaks from a .npy on /tmp ({n * n * 4 / 2**20:.0f} MiB), read one window at a "
           f"time; min_persistence {min_pers}; fresh process each")
@@ -229,7 +318,13 @@ def main():
     ap.add_argument("--glue-child", default=None)
     ap.add_argument("--large-child", default=None)
     ap.add_argument("--local-child", default=None)
+    ap.add_argument("--region-child", default=None)
+    ap.add_argument("--merge-level", type=float, default=5.0)
+    ap.add_argument("--only-regions", action="store_true")
     a = ap.parse_args()
+    if a.region_child:
+        path, block, level = a.region_child.split(",")
+        return _region_child(path, int(block), float(level))
     if a.glue_child:
         return _glue_child(a.glue_child)
     if a.local_child:
@@ -242,8 +337,11 @@ def main():
     with tempfile.TemporaryDirectory(dir="/tmp") as d:
         npy = os.path.join(d, "z.npy")
         np.save(npy, z)
-        timing_table(z, a.block, a.repeat, npy)
-        memory_table(z, npy, a.block)
+        if not a.only_regions:
+            timing_table(z, a.block, a.repeat, npy)
+            memory_table(z, npy, a.block)
+        regions_table(z, a.block, a.repeat, a.merge_level)
+        region_memory(z, npy, a.block, a.merge_level)
     if a.large:
         large_run(a.large, a.block, a.min_persistence)
 

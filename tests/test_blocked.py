@@ -1,9 +1,12 @@
 """Blocked engine: bit for bit the whole-raster engine, block by block.
 
-The reference is ``pairs()`` / ``pairs_and_fill()`` on the whole raster
-(themselves checked against outside references in test_persistence.py);
-small cases are also checked directly against gudhi (The GUDHI Project,
-GUDHI User and Reference Manual, 2024).
+The reference is ``pairs()`` / ``pairs_and_fill()`` / ``regions()`` /
+``pits_and_levels()`` on the whole raster (themselves checked against
+outside references in test_persistence.py and test_features.py: gudhi,
+scikit-image reconstruction by erosion, and the cell-by-cell definition of
+the simplified watershed in tests/reference_regions.py); small cases are
+also checked directly against gudhi (The GUDHI Project, GUDHI User and
+Reference Manual, 2024) and the cell-by-cell definition.
 """
 
 from __future__ import annotations
@@ -19,18 +22,29 @@ from hypothesis.extra.numpy import arrays
 
 from terrain.engine.blocked import (
     blocked_fill,
+    blocked_levels,
     blocked_pairs,
     collect,
     finish,
+    finish_levels,
     glue,
     local,
     read_block,
     windows,
 )
-from terrain.engine.persistence import pairs, pairs_and_fill
+from terrain.engine.blocked_regions import (
+    blocked_regions,
+    glue_regions,
+    region_labels,
+    region_step,
+    region_table,
+    window_reps,
+)
+from terrain.engine.persistence import count_ponding, pairs, pairs_and_fill, pits_and_levels, regions
 from terrain.errors import OptionError
 
 from .conftest import smooth_terrain
+from .reference_regions import regions_by_cells, same_partition
 from .test_persistence import gudhi_pairs, values
 
 FIELDS = ("birth", "death", "birth_value", "death_value", "persistence", "edge_limited")
@@ -147,6 +161,10 @@ def test_properties_fill_equals_whole(a, br, bc, conn):
     p, f = blocked_fill(a, connectivity=conn, block=(br, bc))
     assert_identical(p, p_ref)
     assert f.dtype == f_ref.dtype and f.tobytes() == f_ref.tobytes()
+    # and each cell's fill level and depression depth (pits_and_levels per cell)
+    lv_ref, dp_ref = _levels(a, conn)
+    _, lv, dp = blocked_levels(a, connectivity=conn, block=(br, bc))
+    assert lv.tobytes() == lv_ref.tobytes() and dp.tobytes() == dp_ref.tobytes()
 
 
 @pytest.mark.parametrize("case", ["smooth", "integer-ties", "plateaus", "holes", "white-noise"])
@@ -275,3 +293,219 @@ def test_empty_and_all_nodata():
     z = np.full((6, 7), np.nan)
     for kind in ("peaks", "pits"):
         assert_identical(blocked_pairs(z, kind=kind, block=3), pairs(z, kind=kind))
+
+
+# ----------------------------------------------------------------------------
+# regions and depression depths
+# ----------------------------------------------------------------------------
+REGION_FIELDS = FIELDS
+
+
+def assert_same_regions(got, ref):
+    """Table bit for bit (fields, dtypes, order) and labels equal."""
+    assert (got.kind, got.merge_level, len(got)) == (ref.kind, ref.merge_level, len(ref))
+    for f in REGION_FIELDS:
+        a, b = getattr(got, f), getattr(ref, f)
+        assert a.dtype == b.dtype and a.tobytes() == b.tobytes(), f
+    labels = np.asarray(got.labels)
+    assert labels.dtype == ref.labels.dtype == np.int32
+    assert np.array_equal(labels, ref.labels)
+
+
+# merge levels 0, small and large for each raster (its relief in brackets)
+LEVELS = {"smooth": (0.0, 3.0, 40.0), "integer-ties": (0.0, 1.0, 3.0),
+          "white-noise": (0.0, 0.4, 2.0), "plateaus": (0.0, 1.0, 3.0), "holes": (0.0, 3.0, 40.0)}
+REGION_BLOCKS = [(1, 1000), (7, 6), (1000, 1), (13, 8), (1000, 1000)]
+
+
+@pytest.mark.parametrize("case", sorted(LEVELS))
+@pytest.mark.parametrize("kind", ["peaks", "pits"])
+def test_blocked_regions_equal_whole_raster(case, kind):
+    # both connectivities, with and without the outlet, merge levels 0, small and
+    # large; the block shape turns with them, so every case meets slivers, small
+    # blocks and the whole raster (the property test adds random ones)
+    z = CASES[case]()
+    turn = 0
+    for conn in (8, 4):
+        for outlet in (True, False):
+            for level in LEVELS[case]:
+                ref = regions(z, kind=kind, merge_level=level, connectivity=conn, edge_outlet=outlet)
+                block = REGION_BLOCKS[turn % len(REGION_BLOCKS)]
+                turn += 1
+                got = blocked_regions(z, kind=kind, merge_level=level, connectivity=conn,
+                                      edge_outlet=outlet, block=block)
+                assert_same_regions(got, ref)
+
+
+@settings(max_examples=150, deadline=None)
+@given(a=arrays(np.float32, st.tuples(st.integers(1, 12), st.integers(1, 12)), elements=elements),
+       br=st.integers(1, 13), bc=st.integers(1, 13), kind=st.sampled_from(["peaks", "pits"]),
+       conn=st.sampled_from([4, 8]), outlet=st.sampled_from([None, True, False]),
+       level=st.sampled_from([0.0, 0.3, 1.0, 2.5, 100.0]))
+def test_properties_blocked_regions_equal_whole(a, br, bc, kind, conn, outlet, level):
+    ref = regions(a, kind=kind, merge_level=level, connectivity=conn, edge_outlet=outlet)
+    got = blocked_regions(a, kind=kind, merge_level=level, connectivity=conn, edge_outlet=outlet,
+                          block=(br, bc))
+    assert_same_regions(got, ref)
+
+
+def test_blocked_regions_equal_the_cell_by_cell_definition():
+    # outside reference: the definition cell by cell (tests/reference_regions.py;
+    # Edelsbrunner et al. 2002 elder rule, Najman & Schmitt 1996 merging by dynamics)
+    for seed, (kind, conn, level) in enumerate([("pits", 8, 0.5), ("peaks", 4, 0.5), ("pits", 4, 0.0)]):
+        z = np.random.default_rng(seed).standard_normal((17, 19)).astype(np.float32)
+        z[6:9, 4:15] = np.nan
+        got = blocked_regions(z, kind=kind, merge_level=level, connectivity=conn, block=(5, 6))
+        assert same_partition(got.labels, regions_by_cells(z, kind, level, conn, None))
+
+
+def test_float64_raster_compares_in_float64():
+    # one value that is not a float32 makes the whole raster work in float64:
+    # blocks that are all float32 must not decide the merge level in float32
+    z = np.round(smooth_terrain((24, 30), seed=31) * 8) / 8
+    z = z.astype(np.float32).astype(np.float64)
+    z[0, 0] += 1e-9
+    for level in (0.125, 0.25, 1.0):
+        for kind in ("peaks", "pits"):
+            assert_same_regions(blocked_regions(z, kind=kind, merge_level=level, block=(7, 9)),
+                                regions(z, kind=kind, merge_level=level))
+
+
+def _levels(z, conn=8, mask=None):
+    """pits_and_levels() read per cell: level[basin], depth[basin] (NaN on nodata)."""
+    _, f = pits_and_levels(z, connectivity=conn, mask=mask)
+    b = np.where(f.valid, -f.labels.astype(np.int64) - 1, 0)
+    shape = np.shape(z)
+    if f.level.size == 0:  # all nodata
+        return np.full(shape, np.nan), np.full(shape, np.nan)
+    return (np.where(f.valid, f.level[b], np.nan).reshape(shape),
+            np.where(f.valid, f.depth[b], np.nan).reshape(shape))
+
+
+@pytest.mark.parametrize("case", ["smooth", "integer-ties", "plateaus", "holes", "white-noise"])
+@pytest.mark.parametrize("conn", [8, 4])
+def test_levels_and_depths_equal_whole(case, conn):
+    z = CASES[case]()
+    lv_ref, dp_ref = _levels(z, conn)
+    for block in [(1, 1000), (1000, 1), (6, 7), (1000, 1000)]:
+        p, lv, dp = blocked_levels(z, connectivity=conn, block=block)
+        assert_identical(p, pairs(z, kind="pits", connectivity=conn))
+        assert lv.tobytes() == lv_ref.tobytes() and dp.tobytes() == dp_ref.tobytes()
+
+
+def test_ponding_counted_per_block_equals_whole(usgs_dem):
+    # count_ponding on each block's per-cell levels and depths, with the blocked
+    # region labels, against the whole raster (ponded counts and region areas are
+    # integers here, hence exact; volumes are sums in another order)
+    z = usgs_dem[:90, :110].astype(np.float32)
+    z[40:44, 10:70] = np.nan
+    reg = regions(z, kind="pits", merge_level=2.0).labels.reshape(-1)
+    k = reg.max() + 1
+    for cut in (0.0, 1.0, 3.0):
+        _, f = pits_and_levels(z)
+        want = np.zeros(z.size, np.int32)
+        a_ref, v_ref = np.zeros(k), np.zeros(k)
+        count_ponding(f.zf, f.valid, f.labels, f.level, f.depth, cut, want, reg, np.ones(90), 110,
+                      a_ref, v_ref)
+        got = np.zeros(z.shape, np.int32)
+        area, vol = np.zeros(k), np.zeros(k)
+        sums = [local(read_block(z, w, z.shape), w, z.shape, kind="pits", termini=True)
+                for w in windows(z.shape, (32, 41))]
+        res = glue(sums)
+        out = blocked_regions(z, kind="pits", merge_level=2.0, block=(32, 41)).labels
+        for w in windows(z.shape, (32, 41)):
+            lv, dp = finish_levels(read_block(z, w, z.shape), w, res)
+            zb = np.ascontiguousarray(z[w.r0:w.r1, w.c0:w.c1]).reshape(-1)
+            cnt = np.zeros(zb.size, np.int32)
+            count_ponding(zb, np.isfinite(zb), -(np.arange(zb.size) + 1), lv.reshape(-1),
+                          dp.reshape(-1), cut, cnt, out[w.r0:w.r1, w.c0:w.c1].reshape(-1),
+                          np.ones(w.r1 - w.r0), w.c1 - w.c0, area, vol)
+            got[w.r0:w.r1, w.c0:w.c1] = cnt.reshape(w.r1 - w.r0, w.c1 - w.c0)
+        assert np.array_equal(got.reshape(-1), want) and want.sum() > 0
+        assert np.array_equal(area, a_ref)
+        np.testing.assert_allclose(vol, v_ref, rtol=1e-12)
+
+
+def test_regions_into_memmap_from_lazy_source_with_mask(tmp_path):
+    lazy = LazyTerrain((50, 61), seed=2)
+    z = lazy.full()
+    mask = np.zeros(z.shape, bool)
+    mask[20:24, 3:50] = True
+    out = np.lib.format.open_memmap(tmp_path / "labels.npy", mode="w+", dtype=np.int32, shape=z.shape)
+    lazy.reads.clear()
+    got = blocked_regions(lazy, kind="peaks", merge_level=5.0, block=(16, 20), out=out, mask=mask)
+    assert got.labels is out
+    assert max(lazy.reads) <= 18 * 22  # one block plus halo at a time
+    ref = regions(z, kind="peaks", merge_level=5.0, mask=mask)
+    out.flush()
+    assert_same_regions(got, ref)
+    assert np.array_equal(np.load(tmp_path / "labels.npy"), ref.labels)
+
+
+def test_regions_and_levels_with_processes():
+    z = smooth_terrain((60, 70), seed=26) + np.random.default_rng(1).standard_normal((60, 70))
+    with concurrent.futures.ProcessPoolExecutor(2) as ex:
+        got = blocked_regions(z, kind="pits", merge_level=2.0, block=(25, 25), map=ex.map)
+        _, lv, dp = blocked_levels(z, block=(25, 30), map=ex.map)
+    assert_same_regions(got, regions(z, kind="pits", merge_level=2.0))
+    lv_ref, dp_ref = _levels(z)
+    assert lv.tobytes() == lv_ref.tobytes() and dp.tobytes() == dp_ref.tobytes()
+
+
+def test_region_steps_pickle_and_hand_up_only_boundaries():
+    # the pure steps, pickled as for worker processes; what crosses between
+    # blocks grows with the block boundaries, not with the cells
+    z = smooth_terrain((128, 128), seed=27) + 3 * np.random.default_rng(2).standard_normal((128, 128))
+    z = z.astype(np.float32)
+    level = 8.0
+    wins = windows(z.shape, 32)
+    sums = [local(read_block(z, w, z.shape), w, z.shape, kind="pits", termini=True,
+                  merge_level=level) for w in wins]
+    res = pickle.loads(pickle.dumps(glue(sums)))
+    table = region_table(collect(sums, res), level, res.float32)
+    reps = window_reps(table, wins, z.shape)
+    steps = [pickle.loads(pickle.dumps(region_step(read_block(z, w, z.shape), w, res, level, r)))
+             for w, r in zip(wins, reps)]
+    glued = pickle.loads(pickle.dumps(glue_regions(res, table, steps[::-1])))
+    labels = np.empty(z.shape, np.int32)
+    for w, r, s in zip(wins, reps, steps):
+        lab = s.labels if s.labels is not None else region_labels(read_block(z, w, z.shape), w, glued, r)
+        labels[w.r0:w.r1, w.c0:w.c1] = lab
+    ref = regions(z, kind="pits", merge_level=level)
+    assert np.array_equal(labels, ref.labels)
+    boundary = sum(s.boundary_cells() for s in sums)
+    assert boundary == 2 * 3 * 2 * 128  # three block lines each way, both sides
+    handed = sum(s.source.nbytes + s.value.nbytes + s.needs.nbytes for s in steps)
+    assert handed < 16 * boundary
+    assert sum(s.boundary_nbytes() for s in sums) < 100 * boundary
+
+
+def test_region_and_level_steps_bad_input():
+    z = smooth_terrain((12, 12), seed=28)
+    with pytest.raises(OptionError, match="merge_level"):
+        blocked_regions(z, kind="pits", merge_level=-1.0)
+    with pytest.raises(OptionError, match="merge_level"):
+        blocked_regions(z, kind="pits", merge_level=np.nan)
+    with pytest.raises(OptionError):
+        blocked_regions(z, kind="hills", merge_level=1.0)
+    wins = windows(z.shape, 6)
+    plain = glue([local(read_block(z, w, z.shape), w, z.shape, kind="pits") for w in wins])
+    with pytest.raises(OptionError, match="termini"):
+        finish_levels(read_block(z, wins[0], z.shape), wins[0], plain)
+    with pytest.raises(OptionError, match="termini"):
+        region_step(read_block(z, wins[0], z.shape), wins[0], plain, 1.0,
+                    (np.empty(0, np.int64), np.empty(0, np.int64)))
+    peaks = glue([local(read_block(z, w, z.shape), w, z.shape, kind="peaks", termini=True)
+                  for w in wins])
+    with pytest.raises(OptionError, match="pits"):
+        finish_levels(read_block(z, wins[0], z.shape), wins[0], peaks)
+
+
+def test_regions_empty_and_all_nodata():
+    for shape in [(0, 5), (4, 0)]:
+        got = blocked_regions(np.zeros(shape), kind="peaks", merge_level=1.0)
+        assert len(got) == 0 and got.labels.shape == shape
+    z = np.full((6, 7), np.nan)
+    for kind in ("peaks", "pits"):
+        assert_same_regions(blocked_regions(z, kind=kind, merge_level=1.0, block=3),
+                            regions(z, kind=kind, merge_level=1.0))

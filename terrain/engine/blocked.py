@@ -6,7 +6,10 @@ order) what :func:`terrain.engine.persistence.pairs` returns on the whole
 raster, while holding one block plus a one-cell halo, and a summary of the
 block boundaries. :func:`blocked_fill` adds the depression-filled surface
 of :func:`~terrain.engine.persistence.pairs_and_fill`, written block by
-block.
+block; :func:`blocked_levels` the fill level and depression depth of each
+cell's basin (``pits_and_levels()`` read per cell), the per-cell data of
+:func:`~terrain.engine.persistence.count_ponding`. The regions of
+``regions()`` are built on these steps in :mod:`terrain.engine.blocked_regions`.
 
 Algorithm
 ---------
@@ -39,6 +42,23 @@ The raster is cut into a grid of blocks. Three pure steps, each on arrays:
    the block's local step, maps every basin to (time it first reached the
    boundary, reduced-graph vertex it then joined), and from the resolved
    value of that vertex computes a per-cell array -- the filled surface.
+
+Per-cell values that belong to a cell's *basin of steepest descent on the
+whole raster* (fill level and depression depth, region) need that basin,
+and near a block line the steepest neighbour may lie in the next block.
+With ``local(..., termini=True)`` each block also follows every cell's
+steepest descent with the halo's neighbours (:func:`descend_block`) and
+hands up, per boundary cell, where the chain ends in the block: a minimum
+of the raster or the neighbouring cell it leaves for; :func:`glue` follows
+those chains from strip to strip to a minimum, and keeps the *merge
+forest* of the reduced graph (each vertex below the root it died into, at
+that cell), from which the second passes read any component's identity and
+age just before any cell (:class:`Forest`). :func:`finish_levels` gives
+each minimum its fill level (the later of its component's first boundary
+time and that vertex's join with the outlet) and its depression depth
+(level minus the deepest cell of its component below the level: the
+block's own merge log while the component is closed, the merge forest
+after).
 
 Ties use the global flat index throughout (inside a block the local
 row-major order equals the global one). Whether a cell is on the raster
@@ -75,6 +95,19 @@ of :func:`glue` 21-30 bytes (terrain plus noise) to 135 (white noise).
 For 2e9 cells in 1024**2 blocks (7.7e6 boundary cells) that is at most
 about 1 GB. The final pairs are the output; they travel in the summaries
 and are merged by :func:`collect`, which the glue does not need.
+
+With termini: the local step holds 4 more bytes per cell while it runs
+(where each cell's descent ends; measured 14.5 against 11.3 bytes per
+block cell, pits). Per boundary cell a summary hands up 8 more bytes
+(``Strip.term``) and, for pits with the edge as outlet, 40 bytes per
+distinct minimum those cells reach (:class:`Roots`): measured +8 (peaks)
+and +10 (pits) bytes per boundary cell on terrain plus noise, +8 and +18
+on white noise. The glue keeps 24 more bytes per reduced-graph vertex
+(merge forest) and 8 per boundary cell (its global vertex and its row of
+:class:`Minima`, int32 each), plus 8-24 per minimum; its measured peak
+is 44 bytes per boundary cell on terrain plus noise (1024**2 blocks; 22-27
+without termini) and unchanged at 145 on white noise. :func:`finish_levels`
+uses 30 bytes per block cell, 16 of them its two float64 outputs.
 
 References
 ----------
@@ -115,8 +148,10 @@ from .basins import descend, fill_cells, resolve
 from .grid import forward_offsets, offsets
 from .persistence import KINDS, Pairs
 
-__all__ = ["Window", "Strip", "BlockSummary", "Resolution", "windows", "halo", "read_block", "local",
-           "glue", "collect", "finish", "blocked_pairs", "blocked_fill"]
+__all__ = ["Window", "Strip", "Roots", "BlockSummary", "Forest", "Boundary", "Minima", "Resolution",
+           "windows",
+           "halo", "read_block", "local", "glue", "collect", "finish", "finish_levels",
+           "blocked_pairs", "blocked_fill", "blocked_levels", "local_summaries"]
 
 TOP, BOTTOM, LEFT, RIGHT = range(4)
 
@@ -181,11 +216,34 @@ def read_block(source: Any, window: Window, shape: tuple[int, int], mask: Any = 
 @dataclass(frozen=True)
 class Strip:
     """One side of a block: per cell the reduced-graph vertex (-1: none),
-    the key and the edge flag. Empty on a raster edge."""
+    the key and the edge flag. Empty on a raster edge. With termini
+    (``local(..., termini=True)``) also ``term``: where the cell's steepest
+    descent ends inside its block -- the global cell of a raster minimum,
+    ``-(j + 2)`` when it leaves the block for global cell ``j``, -1 on
+    nodata."""
 
     vertex: np.ndarray
     key: np.ndarray
     edge: np.ndarray
+    term: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class Roots:
+    """Per raster minimum that a strip cell descends to (pits with the edge
+    as outlet, with termini): global ``cell``; the time its component first
+    reached the block boundary (global cell ``tc``, -1: from birth, -2:
+    never; key ``tk``); the reduced-graph vertex it then joined (``x``,
+    block-local id; -1: the outlet, -2: none); and ``dk``, the deepest key
+    of its component below ``tk`` (:func:`~terrain.engine.blocked_kernels.depression_roots`).
+    What the glue needs to give these minima their fill level and
+    depression depth. Sorted by ``cell``."""
+
+    cell: np.ndarray
+    tc: np.ndarray
+    tk: np.ndarray
+    x: np.ndarray
+    dk: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -224,12 +282,17 @@ class BlockSummary:
     edge_key: np.ndarray
     edge_flag: np.ndarray
     strips: tuple[Strip, Strip, Strip, Strip]
+    float32: bool = True
+    roots: Roots | None = None
 
     def boundary_nbytes(self) -> int:
         """Bytes of the boundary part (what :func:`glue` reads)."""
         arrs = [self.vertex_cell, self.vertex_key, self.vertex_eff, self.vertex_eff_key,
                 self.edge_u, self.edge_v, self.edge_w, self.edge_key, self.edge_flag]
-        arrs += [a for s in self.strips for a in (s.vertex, s.key, s.edge)]
+        arrs += [a for s in self.strips for a in (s.vertex, s.key, s.edge, s.term)
+                 if a is not None]
+        if self.roots is not None:
+            arrs += [self.roots.cell, self.roots.tc, self.roots.tk, self.roots.x, self.roots.dk]
         return int(sum(a.nbytes for a in arrs))
 
     def boundary_cells(self) -> int:
@@ -238,10 +301,70 @@ class BlockSummary:
 
 
 @dataclass(frozen=True)
+class Forest:
+    """The glued merge forest over all reduced-graph vertices (global ids;
+    the last one is the outlet): per vertex its birth (``vcell``,
+    ``vkey``), the root it died into (``up``, -1: never) and the cell
+    and key of that merge (``mcell``, ``mkey``), and the cell and key at
+    which its component joins the outlet (``jcell``, -1: never; ``jkey``).
+    A vertex's component just before any cell is found by climbing
+    (:func:`~terrain.engine.blocked_kernels.forest_root`). 48 bytes per
+    vertex."""
+
+    vcell: np.ndarray
+    vkey: np.ndarray
+    up: np.ndarray
+    mcell: np.ndarray
+    mkey: np.ndarray
+    jcell: np.ndarray
+    jkey: np.ndarray
+
+    @property
+    def out_id(self) -> int:
+        """Id of the outlet vertex."""
+        return int(self.vcell.size - 1)
+
+
+@dataclass(frozen=True)
+class Boundary:
+    """One block's part of the glued boundary: the offset of its
+    reduced-graph vertex ids, and per side (as its strips) the global
+    vertex of each cell (``vertex``, -1: none) and the raster minimum its
+    steepest descent ends at on the whole raster, as a row of
+    :class:`Minima` (``minimum``, -1: nodata). 8 bytes per strip cell."""
+
+    offset: int
+    vertex: tuple
+    minimum: tuple
+
+
+@dataclass(frozen=True)
+class Minima:
+    """The raster minima that boundary cells descend to (global ``cell``,
+    sorted) with, for pits with the edge as outlet, their fill ``level``
+    and the ``depth`` of their depression (else None). 8-24 bytes per
+    minimum."""
+
+    cell: np.ndarray
+    level: np.ndarray | None
+    depth: np.ndarray | None
+
+
+@dataclass(frozen=True)
 class Resolution:
     """What :func:`glue` resolves globally: the undecided pairs and, per
     block window, per reduced-graph vertex, the global cell and key at
-    which its component joins the outlet (-1: never)."""
+    which its component joins the outlet (-1: never).
+
+    When the summaries carry termini, also the merge ``forest``, the
+    per-window :class:`Boundary`, the :class:`Minima` the boundary cells
+    descend to and the block grid (``rows``, ``cols``: first row and
+    column of each row and column of blocks), which the
+    per-block second passes (:func:`finish_levels`, the region steps of
+    :mod:`terrain.engine.blocked_regions`) read. ``float32``: every block's
+    values are exactly float32 (the whole raster's engine then works in
+    float32).
+    """
 
     shape: tuple[int, int]
     kind: str
@@ -260,12 +383,23 @@ class Resolution:
     n_vertices: int
     n_edges: int
     n_boundary_cells: int
+    float32: bool = True
+    forest: Forest | None = None
+    boundary: dict | None = None
+    minima: Minima | None = None
+    rows: tuple = ()
+    cols: tuple = ()
 
 
 # ----------------------------------------------------------------------------
 # local step
 # ----------------------------------------------------------------------------
-class _Block(NamedTuple):
+class Block(NamedTuple):
+    """One block ready for the local step: its cells flat (``z``, key
+    ``zk``, ``valid``, ``EDGE``/``TERM`` ``flags``) and the values of the
+    block plus halo (``vals``, block cell (r, c) at ``vals[r + hr, c + hc]``;
+    ``hwin`` the halo window)."""
+
     window: Window
     shape: tuple[int, int]
     nr: int
@@ -274,9 +408,13 @@ class _Block(NamedTuple):
     zk: np.ndarray
     valid: np.ndarray
     flags: np.ndarray
+    vals: np.ndarray
+    hr: int
+    hc: int
+    hwin: Window
 
 
-class _Merged(NamedTuple):
+class Merged(NamedTuple):
     """What ``local_merge`` returns (see its docstring)."""
 
     pb: np.ndarray
@@ -303,7 +441,7 @@ def _check(kind: str, connectivity: int) -> None:
         raise OptionError(f"connectivity must be 4 or 8, got {connectivity!r}")
 
 
-def _prepare_block(block_values, window, shape, kind, connectivity) -> _Block:
+def prepare_block(block_values, window, shape, kind, connectivity) -> Block:
     window = Window(*(int(x) for x in window))
     shape = (int(shape[0]), int(shape[1]))
     h = halo(window, shape)
@@ -327,10 +465,10 @@ def _prepare_block(block_values, window, shape, kind, connectivity) -> _Block:
     sides = np.array([window.r0 == 0, window.r1 == shape[0], window.c0 == 0, window.c1 == shape[1]])
     dr, dc = offsets(connectivity)
     _k.cell_flags(vh, nr, nc, hr, hc, sides, dr, dc, bool(vh.all()), flags)
-    return _Block(window, shape, nr, nc, z, zk, valid, flags)
+    return Block(window, shape, nr, nc, z, zk, valid, flags, vals, hr, hc, h)
 
 
-def _local_engine(blk: _Block, connectivity: int, outlet: bool):
+def local_engine(blk: Block, connectivity: int, outlet: bool):
     """Basins, their lowest passes and the boundary-aware merge of one block."""
     nr, nc = blk.nr, blk.nc
     n = nr * nc
@@ -358,10 +496,20 @@ def _local_engine(blk: _Block, connectivity: int, outlet: bool):
         ew = np.concatenate([ew, emin[has]])
     order = np.lexsort((ew, blk.zk[ew]))
     merged = _k.local_merge(blk.zk, blk.flags, minc, emin, term, ea[order], eb[order], ew[order])
-    return lab, minc, _Merged(*merged)
+    return lab, minc, Merged(*merged)
 
 
-def _to_global(cells: np.ndarray, blk: _Block) -> np.ndarray:
+def to_local(cells: np.ndarray, window: Window, shape: tuple[int, int]) -> np.ndarray:
+    """Global flat cells to the local flat cells of ``window`` (-1 where
+    the cell lies outside the window)."""
+    r, c = np.divmod(np.asarray(cells, np.int64), shape[1])
+    r, c = r - window.r0, c - window.c0
+    nr, nc = window.r1 - window.r0, window.c1 - window.c0
+    inside = (r >= 0) & (r < nr) & (c >= 0) & (c < nc) & (np.asarray(cells) >= 0)
+    return np.where(inside, r * nc + c, -1)
+
+
+def to_global(cells: np.ndarray, blk: Block) -> np.ndarray:
     """Local flat cells of a block to global flat cells (-1 stays -1)."""
     cells = np.asarray(cells, np.int64)
     r, c = np.divmod(cells, blk.nc)
@@ -369,21 +517,92 @@ def _to_global(cells: np.ndarray, blk: _Block) -> np.ndarray:
     return np.where(cells < 0, -1, g)
 
 
-def _strips(blk: _Block, lab: np.ndarray, vertex_of_basin: np.ndarray) -> tuple[Strip, ...]:
-    nr, nc = blk.nr, blk.nc
-    w, shape = blk.window, blk.shape
-    sides = [(w.r0 == 0, np.arange(nc)), (w.r1 == shape[0], (nr - 1) * nc + np.arange(nc)),
-             (w.c0 == 0, np.arange(nr) * nc), (w.c1 == shape[1], np.arange(nr) * nc + nc - 1)]
+def strip_cells(window: Window, shape: tuple[int, int]) -> list[np.ndarray]:
+    """Local flat cells of a block's top, bottom, left and right sides, in
+    strip order (empty on a raster edge)."""
+    nr, nc = window.r1 - window.r0, window.c1 - window.c0
+    sides = [(window.r0 == 0, np.arange(nc)), (window.r1 == shape[0], (nr - 1) * nc + np.arange(nc)),
+             (window.c0 == 0, np.arange(nr) * nc), (window.c1 == shape[1], np.arange(nr) * nc + nc - 1)]
+    return [idx[:0] if on_edge else idx for on_edge, idx in sides]
+
+
+def ring_cells(window: Window, shape: tuple[int, int]) -> np.ndarray:
+    """Global cell at each position of a block's halo ring (see
+    :func:`~terrain.engine.blocked_kernels.ring_index`), -1 off the raster."""
+    r0, r1, c0, c1 = window
+    across = np.arange(c0 - 1, c1 + 1)
+    down = np.arange(r0, r1)
+    rr = np.concatenate([np.full(across.size, r0 - 1), np.full(across.size, r1), down, down])
+    cc = np.concatenate([across, across, np.full(down.size, c0 - 1), np.full(down.size, c1)])
+    inside = (rr >= 0) & (rr < shape[0]) & (cc >= 0) & (cc < shape[1])
+    return np.where(inside, rr * shape[1] + cc, -1).astype(np.int64)
+
+
+def _strips(blk: Block, lab: np.ndarray, vertex_of_basin: np.ndarray) -> tuple[Strip, ...]:
     out = []
-    for on_edge, idx in sides:
-        if on_edge:
-            idx = idx[:0]
+    for idx in strip_cells(blk.window, blk.shape):
         f = blk.flags[idx]
         vid = np.full(idx.size, -1, np.int32)
         t = (f & _k.TERM) != 0
         vid[t] = vertex_of_basin[-lab[idx[t]].astype(np.int64) - 1]
         out.append(Strip(vid, blk.zk[idx].astype(np.float64), (f & _k.EDGE) != 0))
     return tuple(out)
+
+
+def descend_block(blk: Block, kind: str, connectivity: int) -> tuple[np.ndarray, np.ndarray]:
+    """Steepest descent of a block's cells on the whole raster (neighbours
+    read from the halo), resolved inside the block: per cell the code of
+    where its chain ends and per exit its halo ring position (see
+    :func:`~terrain.engine.blocked_kernels.global_descend`). 4 bytes per
+    cell."""
+    n = blk.nr * blk.nc
+    code = np.empty(n, np.int32 if 2 * n + 2 < 2**31 else np.int64)
+    ex_ring = np.empty(2 * (blk.nr + blk.nc) + 4, np.int64)
+    dr, dc = offsets(connectivity)
+    ne = _k.global_descend(blk.zk, blk.valid, not blk.valid.all(), blk.vals, kind == "peaks", blk.hr,
+                           blk.hc, blk.nr, blk.nc, blk.hwin.r0, blk.hwin.c0, blk.shape[1], dr, dc,
+                           code, ex_ring)
+    return code, ex_ring[:ne]
+
+
+def _with_termini(blk: Block, strips, code, ex_ring) -> tuple[Strip, ...]:
+    """The strips with ``term``: where each cell's descent ends in the block."""
+    n = blk.nr * blk.nc
+    ring = ring_cells(blk.window, blk.shape)
+    out = []
+    for s, idx in zip(strips, strip_cells(blk.window, blk.shape)):
+        c = -code[idx].astype(np.int64) - 1
+        term = np.full(idx.size, -1, np.int64)
+        m = c < n
+        term[m] = to_global(c[m], blk)
+        x = (c >= n) & (c < 2 * n)
+        term[x] = -(ring[ex_ring[c[x] - n]] + 2)
+        out.append(Strip(s.vertex, s.key, s.edge, term))
+    return tuple(out)
+
+
+def _roots(blk: Block, lab, minc, m: Merged, strips) -> Roots:
+    """Fill-level and depth data of the minima the strips descend to."""
+    cells = np.unique(np.concatenate([s.term[s.term >= 0] for s in strips]))
+    local_cells = to_local(cells, blk.window, blk.shape)
+    basins = -lab[local_cells].astype(np.int64) - 1
+    T, X = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
+    dk = _k.depression_roots(blk.zk, minc, m.ly, m.lo, m.lw, T, basins)
+    t = T[basins]
+    tk = np.full(t.size, -np.inf)
+    tk[t >= 0] = blk.zk[t[t >= 0]]
+    return Roots(cells, np.where(t >= 0, to_global(t, blk), t), tk, X[basins], dk)
+
+
+def _maybe_regions(bk, dk, merge_level: float, float32: bool) -> np.ndarray:
+    """Pairs that may be regions at ``merge_level``: not below it in float64
+    and, for a float32 block, not below it in float32 either (the whole
+    raster's dtype is not known yet; :func:`regions` compares in it)."""
+    d = dk - bk
+    keep = d >= merge_level
+    if float32:
+        keep |= (dk.astype(np.float32) - bk.astype(np.float32)).astype(np.float64) >= merge_level
+    return keep
 
 
 def _persistence_of_keys(kind: str, bk: np.ndarray, dk: np.ndarray) -> np.ndarray:
@@ -393,7 +612,8 @@ def _persistence_of_keys(kind: str, bk: np.ndarray, dk: np.ndarray) -> np.ndarra
 
 def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple[int, int], *,
           kind: str, connectivity: int = 8, edge_outlet: bool | None = None,
-          min_persistence: float = 0.0) -> BlockSummary:
+          min_persistence: float = 0.0, termini: bool = False,
+          merge_level: float | None = None) -> BlockSummary:
     """Local step: resolve one block, hand up its boundary part.
 
     Parameters
@@ -408,6 +628,15 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
         As :func:`terrain.engine.persistence.pairs`.
     min_persistence : float
         Final pairs of lower persistence are dropped here already.
+    termini : bool
+        Also hand up, per strip cell, where its steepest descent on the
+        whole raster ends inside the block (``Strip.term``) and, for pits
+        with the edge as outlet, the :class:`Roots` of those minima: what
+        the second passes (:func:`finish_levels`, the region steps) need.
+        Costs one more descent pass (4 bytes per cell, freed before return).
+    merge_level : float, optional
+        Keep only final pairs that may be regions at this merge level
+        (see :func:`terrain.engine.persistence.regions`).
 
     Returns
     -------
@@ -421,33 +650,42 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
     """
     _check(kind, connectivity)
     outlet = bool(kind == "pits" if edge_outlet is None else edge_outlet)
-    blk = _prepare_block(block_values, window, shape, kind, connectivity)
-    lab, minc, m = _local_engine(blk, connectivity, outlet)
+    blk = prepare_block(block_values, window, shape, kind, connectivity)
+    lab, minc, m = local_engine(blk, connectivity, outlet)
     pb, pd, pe, esb, ese, hvb, hve = m.pb, m.pd, m.pe, m.esb, m.ese, m.hvb, m.hve
     zk = blk.zk
+    f32 = blk.z.dtype == np.float32
     bk, dk = zk[pb].astype(np.float64), zk[pd].astype(np.float64)
+    keep = np.ones(pb.size, bool)
     if min_persistence > 0:
-        keep = _persistence_of_keys(kind, bk, dk) >= min_persistence
-        pb, pd, pe, bk, dk = pb[keep], pd[keep], pe[keep], bk[keep], dk[keep]
+        keep &= _persistence_of_keys(kind, bk, dk) >= min_persistence
+    if merge_level is not None:
+        keep &= _maybe_regions(bk, dk, merge_level, f32)
+    pb, pd, pe, bk, dk = pb[keep], pd[keep], pe[keep], bk[keep], dk[keep]
     vertex_of_basin = np.full(minc.size, -1, np.int64)
     vertex_of_basin[hvb] = np.arange(hvb.size)
     vb = minc[hvb]
     effk = np.full(hve.size, np.nan)
     effk[hve >= 0] = zk[hve[hve >= 0]]
+    strips, roots = _strips(blk, lab, vertex_of_basin), None
+    if termini:
+        strips = _with_termini(blk, strips, *descend_block(blk, kind, connectivity))
+        if kind == "pits" and outlet:
+            roots = _roots(blk, lab, minc, m, strips)
     return BlockSummary(
         blk.window, blk.shape, kind, connectivity, outlet,
-        _to_global(pb, blk), _to_global(pd, blk), bk, dk, pe,
-        _to_global(esb, blk), zk[esb].astype(np.float64), ese,
-        _to_global(vb, blk), zk[vb].astype(np.float64), _to_global(hve, blk), effk,
-        m.hu.astype(np.int32), m.hv.astype(np.int32), _to_global(m.hw, blk),
+        to_global(pb, blk), to_global(pd, blk), bk, dk, pe,
+        to_global(esb, blk), zk[esb].astype(np.float64), ese,
+        to_global(vb, blk), zk[vb].astype(np.float64), to_global(hve, blk), effk,
+        m.hu.astype(np.int32), m.hv.astype(np.int32), to_global(m.hw, blk),
         zk[m.hw].astype(np.float64), (blk.flags[m.hw] & _k.EDGE) != 0,
-        _strips(blk, lab, vertex_of_basin))
+        strips, bool(f32), roots)
 
 
 # ----------------------------------------------------------------------------
 # global step
 # ----------------------------------------------------------------------------
-def _grid(summaries: Sequence[BlockSummary]):
+def block_grid(summaries: Sequence[BlockSummary]):
     """Block rows and columns of a full grid tiling; (i, j) -> summary index."""
     nr, nc = summaries[0].shape
     rows = sorted({s.window.r0 for s in summaries})
@@ -471,7 +709,7 @@ def _check_same(summaries: Sequence[BlockSummary]) -> None:
         if (s.shape, s.kind, s.connectivity, s.edge_outlet) != (
                 s0.shape, s0.kind, s0.connectivity, s0.edge_outlet):
             raise OptionError("block summaries disagree on shape, kind, connectivity or edge_outlet")
-    _grid(summaries)
+    block_grid(summaries)
 
 
 def _strip_line(summaries, ks, side, off):
@@ -487,7 +725,7 @@ def _cross(summaries, off, nv) -> list[tuple[np.ndarray, ...]]:
     """Cross-block edges: across each horizontal block line (full width,
     diagonals through block corners included), then across each vertical
     line within one block row."""
-    rows, cols, at = _grid(summaries)
+    rows, cols, at = block_grid(summaries)
     ncols = summaries[0].shape[1]
     conn8 = summaries[0].connectivity == 8
     out = []
@@ -543,15 +781,92 @@ def glue(summaries: Sequence[BlockSummary]) -> Resolution:
     ea, eb, ew = (np.asarray(x, np.int64) for x in (ea, eb, ew))
     ek, ef = np.asarray(ek, np.float64), np.asarray(ef, np.bool_)
     order = np.lexsort((ew, ek))
-    pb, pbk, pd, pdk, pe, esb, esk, ese, jcell, jkey = _k.glue_merge(
+    pb, pbk, pd, pdk, pe, esb, esk, ese, jcell, jkey, up, mcell, mkey = _k.glue_merge(
         vcell, vkey, veff, veffk, ea[order], eb[order], ew[order], ek[order], ef[order])
+    n_edges = int(ew.size)
+    del parts, ea, eb, ew, ek, ef, order
     s0 = summaries[0]
     wins = [s.window for s in summaries]
+    forest = Forest(vcell, vkey, up, mcell, mkey, jcell, jkey)
+    rows, cols, _ = block_grid(summaries)
+    boundary, minima = _boundary(summaries, off, forest)
     return Resolution(s0.shape, s0.kind, s0.connectivity, s0.edge_outlet, pb, pd, pbk, pdk, pe,
                       esb, esk, ese,
                       {w: jcell[off[k]:off[k + 1]] for k, w in enumerate(wins)},
                       {w: jkey[off[k]:off[k + 1]] for k, w in enumerate(wins)},
-                      nv, int(ew.size), int(sum(s.boundary_cells() for s in summaries)))
+                      nv, n_edges, int(sum(s.boundary_cells() for s in summaries)),
+                      all(s.float32 for s in summaries), forest, boundary, minima,
+                      tuple(rows), tuple(cols))
+
+
+def _facing_entries(summaries, base, src, cells, chunk: int = 1 << 12) -> np.ndarray:
+    """Flat strip entry of each global cell in ``cells``, read from the
+    side of its block that faces block ``src`` (a neighbour). Done in
+    chunks, so the temporaries do not grow with the boundary."""
+    rows, cols, at = block_grid(summaries)
+    rows, cols = np.asarray(rows), np.asarray(cols)
+    ncols = summaries[0].shape[1]
+    grid = np.empty((rows.size, cols.size), np.int64)
+    gi, gj = np.empty(len(summaries), np.int64), np.empty(len(summaries), np.int64)
+    for (i, j), k in at.items():
+        grid[i, j], gi[k], gj[k] = k, i, j
+    out = np.empty(cells.size, np.int64)
+    for a in range(0, cells.size, chunk):
+        r, c = np.divmod(cells[a:a + chunk], ncols)
+        bi = np.searchsorted(rows, r, "right") - 1
+        bj = np.searchsorted(cols, c, "right") - 1
+        si, sj = gi[src[a:a + chunk]], gj[src[a:a + chunk]]
+        side = np.where(bi < si, BOTTOM, np.where(bi > si, TOP, np.where(bj < sj, RIGHT, LEFT)))
+        pos = np.where(side <= BOTTOM, c - cols[bj], r - rows[bi])
+        out[a:a + chunk] = base[grid[bi, bj] * 4 + side] + pos
+    return out
+
+
+def _boundary(summaries, off, forest: Forest) -> tuple[dict | None, Minima | None]:
+    """Per window: strip vertices made global and, per strip cell, the
+    raster minimum its steepest descent ends at (chains followed across
+    blocks) as a row of the :class:`Minima` table."""
+    if any(st.term is None for s in summaries for st in s.strips):
+        return None, None
+    sizes = [st.term.size for s in summaries for st in s.strips]
+    base = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    term = np.concatenate([st.term for s in summaries for st in s.strips] + [np.empty(0, np.int64)])
+    small = np.int32 if term.size < 2**31 and off[-1] < 2**31 - 1 else np.int64
+    nxt = np.full(term.size, -1, small)
+    ex = np.flatnonzero(term < -1)
+    nxt[ex] = _facing_entries(summaries, base, (np.searchsorted(base, ex, "right") - 1) // 4,
+                              -term[ex] - 2)
+    _k.follow_exits(term, nxt)  # term now holds the minimum of every entry
+    del nxt, ex
+    cells = np.unique(term[term >= 0])
+    out = {}
+    for k, s in enumerate(summaries):
+        vert = tuple(np.where(st.vertex >= 0, st.vertex + off[k], -1).astype(small) for st in s.strips)
+        mins = [term[base[4 * k + q]:base[4 * k + q + 1]] for q in range(4)]
+        rows = tuple(np.where(m >= 0, np.searchsorted(cells, m), -1).astype(small) for m in mins)
+        out[s.window] = Boundary(int(off[k]), vert, rows)
+    del term, mins
+    level = depth = None
+    if all(s.roots is not None for s in summaries):
+        level, depth = _root_levels(summaries, off, forest, cells)
+    return out, Minima(cells, level, depth)
+
+
+def _root_levels(summaries, off, forest: Forest, cells: np.ndarray):
+    """Fill level and depression depth of each minimum in ``cells``, from
+    the :class:`Roots` its block handed up."""
+    roots = [s.roots for s in summaries]
+    cell = np.concatenate([r.cell for r in roots])
+    x = np.concatenate([np.where(r.x >= 0, r.x + off[k], r.x) for k, r in enumerate(roots)])
+    tc, tk, dk = (np.concatenate([getattr(r, f) for r in roots]) for f in ("tc", "tk", "dk"))
+    at = np.searchsorted(cell, cells) if cell.size and np.all(cell[1:] > cell[:-1]) else None
+    if at is None:
+        o = np.argsort(cell)
+        at = o[np.searchsorted(cell[o], cells)]
+    lv, dp = np.empty(at.size), np.empty(at.size)
+    _k.levels_and_depths(tk[at], tc[at], x[at].astype(np.int64), dk[at], forest.jcell, forest.jkey,
+                         forest.up, forest.mkey, forest.vkey, lv, dp)
+    return lv, dp
 
 
 def _empty_pairs(kind: str) -> Pairs:
@@ -619,8 +934,8 @@ def finish(block_values: np.ndarray, window: Window | Sequence[int], resolution:
     if resolution.kind != "pits" or not resolution.edge_outlet:
         raise OptionError("the filled surface needs kind='pits' with the edge as outlet")
     window = Window(*(int(x) for x in window))
-    blk = _prepare_block(block_values, window, resolution.shape, "pits", resolution.connectivity)
-    lab, minc, m = _local_engine(blk, resolution.connectivity, True)
+    blk = prepare_block(block_values, window, resolution.shape, "pits", resolution.connectivity)
+    lab, minc, m = local_engine(blk, resolution.connectivity, True)
     T, X = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
     level = _k.fill_levels(blk.zk, T, X, resolution.join_cell[window], resolution.join_key[window],
                            window.r0, window.c0, blk.nc, resolution.shape[1])
@@ -629,20 +944,138 @@ def finish(block_values: np.ndarray, window: Window | Sequence[int], resolution:
     return out.reshape(blk.nr, blk.nc)
 
 
+def ring_values(resolution: Resolution, window: Window, field: str) -> np.ndarray:
+    """Per position of ``window``'s halo ring (see
+    :func:`~terrain.engine.blocked_kernels.ring_index`), the value at that
+    cell read from the facing strip of the neighbouring block: "vertex"
+    (global reduced-graph vertex), "term" (the raster minimum its steepest
+    descent ends at), "level" or "depth" (that minimum's fill level and
+    depression depth); -1 (NaN for level and depth) off the raster."""
+    rows, cols = list(resolution.rows), list(resolution.cols)
+    ends_r, ends_c = rows[1:] + [resolution.shape[0]], cols[1:] + [resolution.shape[1]]
+    i, j = rows.index(window.r0), cols.index(window.c0)
+    nr, nc = window.r1 - window.r0, window.c1 - window.c0
+    part = "vertex" if field == "vertex" else "minimum"
+    out = np.full(2 * (nc + 2) + 2 * nr, -1, np.int64)
+
+    def side(ii, jj, q):
+        return getattr(resolution.boundary[Window(rows[ii], ends_r[ii], cols[jj], ends_c[jj])], part)[q]
+
+    for ii, base, q in ((i - 1, 0, BOTTOM), (i + 1, nc + 2, TOP)):
+        if 0 <= ii < len(rows):
+            out[base + 1:base + nc + 1] = side(ii, j, q)
+            if j > 0:
+                out[base] = side(ii, j - 1, q)[-1]
+            if j + 1 < len(cols):
+                out[base + nc + 1] = side(ii, j + 1, q)[0]
+    if j > 0:
+        out[2 * (nc + 2):2 * (nc + 2) + nr] = side(i, j - 1, RIGHT)
+    if j + 1 < len(cols):
+        out[2 * (nc + 2) + nr:] = side(i, j + 1, LEFT)
+    if part == "vertex":
+        return out
+    table = getattr(resolution.minima, "cell" if field == "term" else field)
+    vals = table[np.maximum(out, 0)] if table.size else np.zeros(out.size, table.dtype)
+    return np.where(out >= 0, vals, -1 if field == "term" else np.nan)
+
+
+def need_termini(resolution: Resolution, fill: bool = False) -> None:
+    """Raise unless ``resolution`` was glued from summaries with termini
+    (and, with ``fill``, of pits with the edge as outlet)."""
+    if resolution.boundary is None:
+        raise OptionError("this step needs block summaries made with termini=True")
+    if fill and (resolution.kind != "pits" or not resolution.edge_outlet or
+                 resolution.minima.level is None):
+        raise OptionError("fill levels need kind='pits' with the edge as outlet")
+
+
+def _basin_levels(blk: Block, minc, m: Merged, resolution: Resolution):
+    """Fill level and depression depth of every basin of a block whose
+    minimum is a raster minimum (other basins get values never read)."""
+    T, X = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
+    dk = _k.depression_roots(blk.zk, minc, m.ly, m.lo, m.lw, T, np.arange(minc.size))
+    tk = np.full(T.size, -np.inf)
+    tk[T >= 0] = blk.zk[T[T >= 0]]
+    off = resolution.boundary[blk.window].offset
+    f = resolution.forest
+    lv, dp = np.empty(T.size), np.empty(T.size)
+    _k.levels_and_depths(tk, np.where(T >= 0, to_global(T, blk), T), np.where(X >= 0, X + off, X),
+                         dk, f.jcell, f.jkey, f.up, f.mkey, f.vkey, lv, dp)
+    return lv, dp
+
+
+def finish_levels(block_values: np.ndarray, window: Window | Sequence[int],
+                  resolution: Resolution) -> tuple[np.ndarray, np.ndarray]:
+    """Per cell of one block, the fill level and the depression depth of its
+    basin: bit for bit ``level[basin]`` and ``depth[basin]`` of the
+    :class:`~terrain.engine.persistence.Fill` that ``pits_and_levels()``
+    returns for the whole raster (float64; NaN on nodata).
+
+    The level is the elevation at which the cell's basin of steepest
+    descent joins the outlet (-inf: never); the depth is that level minus
+    the deepest cell of the depression the basin lies in -- its component
+    among the cells strictly below the level, so depressions that touch
+    only at the spill level stay apart (-inf: none). A cell is ponded when
+    ``level - z > 0`` and the depth is at least a cut-off, as in
+    :func:`~terrain.engine.persistence.count_ponding`, which accepts these
+    per-cell arrays with ``lab = -(arange(n) + 1)``.
+
+    Needs a resolution of pits with the edge as outlet glued from
+    summaries made with ``termini=True``. Basins are those of steepest
+    descent on the whole raster: a chain that leaves the block continues
+    in the neighbour's strip, resolved by :func:`glue`.
+
+    References
+    ----------
+    .. [1] Barnes, R. (2016). Parallel Priority-Flood depression filling
+       for trillion cell digital elevation models on desktops or clusters.
+       Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
+    .. [2] Grimaud, M. (1992). New measure of contrast: the dynamics. Proc.
+       SPIE 1769 (depth of a depression as the dynamics of its minimum).
+    """
+    need_termini(resolution, fill=True)
+    window = Window(*(int(x) for x in window))
+    blk = prepare_block(block_values, window, resolution.shape, "pits", resolution.connectivity)
+    lab, minc, m = local_engine(blk, resolution.connectivity, True)
+    code, ex_ring = descend_block(blk, "pits", resolution.connectivity)
+    lv, dp = _basin_levels(blk, minc, m, resolution)
+    del m
+    n = blk.nr * blk.nc
+    out = []
+    for bval, field in ((lv, "level"), (dp, "depth")):
+        cell = np.empty(n, np.float64)
+        _k.per_cell(code, lab, n, bval, ring_values(resolution, window, field)[ex_ring], np.nan, cell)
+        out.append(cell.reshape(blk.nr, blk.nc))
+    return out[0], out[1]
+
+
 # ----------------------------------------------------------------------------
 # drivers
 # ----------------------------------------------------------------------------
-def _local_task(source, mask, shape, kind, connectivity, edge_outlet, min_persistence, window):
+def _local_task(source, mask, shape, kind, connectivity, edge_outlet, min_persistence, window,
+                termini=False, merge_level=None):
     vals = read_block(source, window, shape, mask)
     return local(vals, window, shape, kind=kind, connectivity=connectivity,
-                 edge_outlet=edge_outlet, min_persistence=min_persistence)
+                 edge_outlet=edge_outlet, min_persistence=min_persistence, termini=termini,
+                 merge_level=merge_level)
+
+
+def local_summaries(source: Any, wins: list[Window], *, kind: str, connectivity: int,
+                    edge_outlet: bool | None, map: Callable[..., Iterable] = builtins.map,
+                    mask: Any = None, min_persistence: float = 0.0, termini: bool = False,
+                    merge_level: float | None = None) -> list[BlockSummary]:
+    """:func:`local` on every window of ``source`` through ``map``."""
+    task = functools.partial(_local_task, source, mask, raster_shape(source), kind, connectivity,
+                             edge_outlet, min_persistence, termini=termini, merge_level=merge_level)
+    return list(map(task, wins))
 
 
 def _finish_task(source, mask, resolution, window):
     return finish(read_block(source, window, resolution.shape, mask), window, resolution)
 
 
-def _shape_of(source: Any) -> tuple[int, int]:
+def raster_shape(source: Any) -> tuple[int, int]:
+    """``source.shape`` as a 2-tuple of ints (a 2-D raster or OptionError)."""
     shape = tuple(int(x) for x in source.shape)
     if len(shape) != 2:
         raise OptionError(f"expected a 2-D raster, got shape {shape}")
@@ -700,13 +1133,13 @@ def blocked_pairs(source: Any, *, kind: str, connectivity: int = 8, edge_outlet:
     True
     """
     _check(kind, connectivity)
-    shape = _shape_of(source)
+    shape = raster_shape(source)
     wins = windows(shape, block)
     if not wins:
         return _empty_pairs(kind)
-    task = functools.partial(_local_task, source, mask, shape, kind, connectivity, edge_outlet,
-                             min_persistence)
-    summaries = list(map(task, wins))
+    summaries = local_summaries(source, wins, kind=kind, connectivity=connectivity,
+                                edge_outlet=edge_outlet, map=map, mask=mask,
+                                min_persistence=min_persistence)
     return collect(summaries, glue(summaries), min_persistence=min_persistence)
 
 
@@ -727,18 +1160,63 @@ def blocked_fill(source: Any, *, connectivity: int = 8, block: int | tuple[int, 
        for trillion cell digital elevation models on desktops or clusters.
        Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
     """
-    _check("pits", connectivity)
-    shape = _shape_of(source)
-    wins = windows(shape, block)
+    shape, wins = _pits_windows(source, connectivity, block)
     if out is None:
         out = np.empty(shape, np.float64)
     if not wins:
         return _empty_pairs("pits"), out
-    task = functools.partial(_local_task, source, mask, shape, "pits", connectivity, True, 0.0)
-    summaries = list(map(task, wins))
-    res = glue(summaries)
-    p = collect(summaries, res)
-    del summaries
+    p, res = _pits_pass_one(source, wins, connectivity, map, mask, termini=False)
     for w, filled in zip(wins, map(functools.partial(_finish_task, source, mask, res), wins)):
         out[w.r0:w.r1, w.c0:w.c1] = filled
     return p, out
+
+
+def _pits_windows(source, connectivity, block):
+    _check("pits", connectivity)
+    shape = raster_shape(source)
+    return shape, windows(shape, block)
+
+
+def _pits_pass_one(source, wins, connectivity, map, mask, termini):
+    """Local steps of pits with the edge as outlet, glued; the pairs and the resolution."""
+    summaries = local_summaries(source, wins, kind="pits", connectivity=connectivity,
+                                edge_outlet=True, map=map, mask=mask, termini=termini)
+    res = glue(summaries)
+    return collect(summaries, res), res
+
+
+def _levels_task(source, mask, resolution, window):
+    return finish_levels(read_block(source, window, resolution.shape, mask), window, resolution)
+
+
+def blocked_levels(source: Any, *, connectivity: int = 8, block: int | tuple[int, int] = 1024,
+                   level_out: Any = None, depth_out: Any = None,
+                   map: Callable[..., Iterable] = builtins.map,
+                   mask: Any = None) -> tuple[Pairs, Any, Any]:
+    """Pit pairs (edge as outlet) and, per cell, the fill level and the
+    depression depth of its basin, block by block: the blocked counterpart
+    of ``pits_and_levels()`` read per cell (``level[basin]``,
+    ``depth[basin]``; see :func:`finish_levels`).
+
+    ``level_out`` and ``depth_out`` (default: new float64 arrays) receive
+    the values by slice assignment, one block at a time, so they may be
+    ``np.memmap`` or zarr arrays. Other parameters as :func:`blocked_fill`.
+    Two passes over ``source``: local steps with termini, glue, then
+    :func:`finish_levels` per block.
+
+    References
+    ----------
+    .. [1] Barnes, R. (2016). Parallel Priority-Flood depression filling
+       for trillion cell digital elevation models on desktops or clusters.
+       Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
+    """
+    shape, wins = _pits_windows(source, connectivity, block)
+    level_out = np.empty(shape, np.float64) if level_out is None else level_out
+    depth_out = np.empty(shape, np.float64) if depth_out is None else depth_out
+    if not wins:
+        return _empty_pairs("pits"), level_out, depth_out
+    p, res = _pits_pass_one(source, wins, connectivity, map, mask, termini=True)
+    for w, (lv, dp) in zip(wins, map(functools.partial(_levels_task, source, mask, res), wins)):
+        level_out[w.r0:w.r1, w.c0:w.c1] = lv
+        depth_out[w.r0:w.r1, w.c0:w.c1] = dp
+    return p, level_out, depth_out

@@ -3,8 +3,10 @@
 Local step (one block, flat row-major *local* indices; inside one block the
 local order of cells equals their global order, so ties break the same way):
 :func:`cell_flags`, :func:`block_boundaries`, :func:`local_merge`,
-:func:`basin_links`. Global step (flat *global* indices): :func:`cross_edges`,
-:func:`glue_merge`.
+:func:`basin_links`, :func:`global_descend` (steepest descent over the whole
+raster's neighbourhood, read from the halo), :func:`depression_roots`.
+Global step (flat *global* indices): :func:`cross_edges`, :func:`glue_merge`,
+:func:`follow_exits`, :func:`levels_and_depths`, :func:`forest_root`.
 
 Conventions: a *time* is a cell, compared in the total order (key, index);
 ``-1`` stands for "before every cell" (-inf) where a time may be absent.
@@ -25,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .basins import before, find, upsert
+from .basins import before, descend, find, upsert
 
 EDGE = 1  # cell on the raster edge or next to nodata
 TERM = 2  # valid cell with a valid neighbour in another block
@@ -452,9 +454,12 @@ def glue_merge(vcell, vkey, veff, veffk, ea, eb, ew, ewk, ewf):
     sorted by (key, cell) of their weight cell. First edge cells follow the
     same rule as in :func:`local_merge` (each counted from the time it
     joined). Returns pairs (birth cell, birth key, death cell, death key,
-    edge-limited), essential classes (cell, key, edge-limited) and, per
-    vertex, the cell and key at which its component joins the outlet
-    (-1: never).
+    edge-limited), essential classes (cell, key, edge-limited), per
+    vertex the cell and key at which its component joins the outlet
+    (-1: never), and the merge forest: per vertex the root it died into
+    (``up``, -1: never died) and the cell and key of that merge. The
+    component of a vertex just before cell ``w`` is found by climbing the
+    forest while merges come before ``w`` (:func:`forest_root`).
     """
     nv = vcell.size
     out_id = nv - 1
@@ -531,5 +536,239 @@ def glue_merge(vcell, vkey, veff, veffk, ea, eb, ew, ewk, ewf):
         if jt[v] >= 0:
             jcell[v] = ew[jt[v]]
             jkey[v] = ewk[jt[v]]
+    # the merge forest: each vertex hangs below the root it died into, at that cell
+    up = np.full(nv, -1, np.int64)
+    mcell = np.full(nv, -1, np.int64)
+    mkey = np.full(nv, np.inf)
+    for q in range(nlog):
+        up[ly[q]] = lo[q]
+        mcell[ly[q]] = ew[lt[q]]
+        mkey[ly[q]] = ewk[lt[q]]
     return (pb[:npairs], pbk[:npairs], pd[:npairs], pdk[:npairs], pe[:npairs], esb, esk, ese,
-            jcell, jkey)
+            jcell, jkey, up, mcell, mkey)
+
+
+# ----------------------------------------------------------------------------
+# steepest descent across block lines, fill levels and depression depths
+# ----------------------------------------------------------------------------
+@njit(cache=True, inline="always")
+def ring_index(rr, cc, nr, nc):
+    """Position of halo cell (rr, cc) (block coordinates, outside the block)
+    in the block's halo ring: the row above (cc = -1..nc), the row below,
+    then the column left (rr = 0..nr-1) and the column right; length
+    ``2 * (nc + 2) + 2 * nr``."""
+    if rr < 0:
+        return cc + 1
+    if rr >= nr:
+        return nc + 3 + cc
+    if cc < 0:
+        return 2 * (nc + 2) + rr
+    return 2 * (nc + 2) + nr + rr
+
+
+@njit(cache=True, inline="always")
+def _point(code, ex_ring, ne, i, r, c, bR, bC, hr, hc, nr, nc):
+    """Record cell ``i``'s lowest neighbour at frame (bR, bC) in ``code``
+    (self, block cell or exit); returns the number of exits."""
+    rr = bR - hr
+    cc = bC - hc
+    if rr == r and cc == c:
+        code[i] = -(i + 1)
+    elif 0 <= rr < nr and 0 <= cc < nc:
+        code[i] = rr * nc + cc
+    else:
+        code[i] = -(nr * nc + 1 + ne)
+        ex_ring[ne] = ring_index(rr, cc, nr, nc)
+        ne += 1
+    return ne
+
+
+@njit(cache=True, inline="always")
+def frame_neighbour(vals, sgn, R, C, k, dr, dc, hr0, hc0, ncols):
+    """Neighbour ``k`` of frame cell (R, C): (valid, key, global cell, row,
+    column); not valid when off the frame (the raster) or nodata."""
+    RR = R + dr[k]
+    CC = C + dc[k]
+    if RR < 0 or RR >= vals.shape[0] or CC < 0 or CC >= vals.shape[1]:
+        return False, 0.0, -1, RR, CC
+    zz = vals[RR, CC] * sgn
+    return np.isfinite(zz), zz, (hr0 + RR) * ncols + hc0 + CC, RR, CC
+
+
+@njit(cache=True)
+def _ring_pointer(vals, sgn, R, C, hr0, hc0, ncols, dr, dc):
+    """Frame (row, column) of the lowest neighbour of frame cell (R, C), itself
+    included, in the total order (key, global index)."""
+    bz = vals[R, C] * sgn
+    bg = (hr0 + R) * ncols + hc0 + C
+    bR = R
+    bC = C
+    for k in range(dr.size):
+        ok, zz, gg, RR, CC = frame_neighbour(vals, sgn, R, C, k, dr, dc, hr0, hc0, ncols)
+        if ok and (zz < bz or (zz == bz and gg < bg)):
+            bz = zz
+            bg = gg
+            bR = RR
+            bC = CC
+    return bR, bC
+
+
+@njit(cache=True)
+def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, ncols, dr, dc,
+                   code, ex_ring):
+    """Steepest descent of a block's cells on the whole raster, resolved to
+    where each chain ends inside the block.
+
+    Each valid cell points to its lowest neighbour in the total order (key,
+    global index), itself included -- exactly ``basins.descend`` on the
+    whole raster, so chains that stay in the block follow the raster's own
+    basins. Cells off the block's outer ring see only block cells, so
+    ``basins.descend`` on the block (``zk``, ``valid``) gives their pointer;
+    the outer ring is redone with the halo: ``vals`` holds the block plus
+    halo (NaN: nodata; ``neg``: the key is ``-vals``), block cell (r, c) is
+    ``vals[r + hr, c + hc]`` and frame cell (R, C) is global cell
+    ``(hr0 + R) * ncols + hc0 + C``. ``code[i]`` ends as ``-(t + 1)`` when
+    the chain of cell ``i`` ends at block cell ``t`` with no lower
+    neighbour (a minimum of the raster), ``-(n + 1 + e)`` when it leaves
+    the block at exit ``e`` (a block cell whose lowest neighbour is the
+    halo cell at ring position ``ex_ring[e]``, see :func:`ring_index`),
+    ``-(2 n + 1)`` on nodata. Returns the number of exits.
+    """
+    n = nr * nc
+    sgn = -1.0 if neg else 1.0
+    descend(zk, valid, has_nodata, nr, nc, dr, dc, code)
+    for i in range(n):
+        if not valid[i]:
+            code[i] = -(2 * n + 1)
+        elif code[i] == i:
+            code[i] = -(i + 1)
+    ne = 0
+    for r in range(nr):
+        step = 1 if (r == 0 or r == nr - 1) else max(nc - 1, 1)
+        for c in range(0, nc, step):
+            i = r * nc + c
+            if valid[i]:
+                bR, bC = _ring_pointer(vals, sgn, r + hr, c + hc, hr0, hc0, ncols, dr, dc)
+                ne = _point(code, ex_ring, ne, i, r, c, bR, bC, hr, hc, nr, nc)
+    for i in range(n):
+        if code[i] >= 0:
+            k = i
+            while code[k] >= 0:
+                k = code[k]
+            end = code[k]
+            k = i
+            while code[k] >= 0:
+                nxt = code[k]
+                code[k] = end
+                k = nxt
+    return ne
+
+
+@njit(cache=True)
+def depression_roots(zk, minc, ly, lo, lw, T, basins):
+    """Per basin in ``basins``: the key of the deepest cell of its component
+    among the cells strictly below the key of ``T[b]`` (the time its
+    component first reached the block boundary, :func:`basin_links`), read
+    from the local merge log. Up to that time the component is closed, so
+    this is the whole raster's answer; for ``T[b] < 0`` the basin's own
+    minimum is returned (unused)."""
+    nb = minc.size
+    up = np.full(nb + 1, -1, np.int64)
+    mt = np.full(nb + 1, -1, np.int64)
+    for q in range(ly.size):
+        up[ly[q]] = lo[q]
+        mt[ly[q]] = lw[q]
+    out = np.empty(basins.size)
+    for k in range(basins.size):
+        a = basins[k]
+        t = T[a]
+        if t >= 0:
+            lim = zk[t]
+            while up[a] >= 0 and up[a] != nb and zk[mt[a]] < lim:
+                a = up[a]
+        out[k] = zk[minc[a]]
+    return out
+
+
+@njit(cache=True, inline="always")
+def forest_root(up, mcell, mkey, v, wk, wc):
+    """Root of vertex ``v``'s glued component just before cell (``wk``,
+    ``wc``): climb the merge forest while the merge comes earlier."""
+    while up[v] >= 0 and (mkey[v] < wk or (mkey[v] == wk and mcell[v] < wc)):
+        v = up[v]
+    return v
+
+
+@njit(cache=True)
+def levels_and_depths(tk, tc, xv, dk, jcell, jkey, up, mkey, vkey, level, depth):
+    """Per depression root: the fill level and the depth of its depression.
+
+    Entry ``q`` describes a raster minimum by its component's time of first
+    reaching a block boundary (global cell ``tc[q]`` with key ``tk[q]``; -1:
+    from birth; ``NOTERM``: never), the reduced-graph vertex it then joined
+    (global id ``xv[q]``; ``OUT``: the outlet) and ``dk[q]`` from
+    :func:`depression_roots`. The level is the later of that time and the
+    vertex's join with the outlet (as :func:`fill_levels`); the depth is
+    level minus the deepest key of the component among the cells strictly
+    below the level: the glued component's root (the merge forest climbed
+    while merges lie below the level) when the component had reached the
+    boundary below the level, else ``dk[q]``. Both -inf when the minimum
+    never drains (as ``persistence._fill_levels``).
+    """
+    for q in range(tk.size):
+        x = xv[q]
+        lv = -np.inf
+        if x == OUT:
+            if tc[q] >= 0:
+                lv = tk[q]
+        elif x >= 0 and jcell[x] >= 0:
+            jk = jkey[x]
+            if tc[q] >= 0 and (jk < tk[q] or (jk == tk[q] and jcell[x] < tc[q])):
+                lv = tk[q]
+            else:
+                lv = jk
+        level[q] = lv
+        if lv == -np.inf:
+            depth[q] = -np.inf
+        elif tc[q] < 0 or tk[q] < lv:
+            v = x
+            while up[v] >= 0 and mkey[v] < lv:
+                v = up[v]
+            depth[q] = lv - vkey[v]
+        else:
+            depth[q] = lv - dk[q]
+
+
+@njit(cache=True)
+def follow_exits(out, nxt):
+    """Resolve chains between boundary cells, in place: ``out[e] >= 0`` is
+    a raster minimum, -1 nodata, < -1 an exit continuing at entry
+    ``nxt[e]``; each entry ends as the minimum its chain ends at (chains
+    of steepest descent are acyclic)."""
+    for e in range(out.size):
+        if out[e] >= -1:
+            continue
+        k = e
+        while out[k] < -1:
+            k = nxt[k]
+        end = out[k]
+        k = e
+        while out[k] < -1:
+            x = nxt[k]
+            out[k] = end
+            k = x
+
+
+@njit(cache=True)
+def per_cell(code, lab, n, bval, xval, fill, out):
+    """Per cell, a value of where its steepest descent ends: ``bval`` of the
+    block basin holding the chain's minimum, or ``xval`` of its exit;
+    ``fill`` on nodata (``code`` from :func:`global_descend`)."""
+    for i in range(n):
+        c = -code[i] - 1
+        if c < n:
+            out[i] = bval[-lab[c] - 1]
+        elif c < 2 * n:
+            out[i] = xval[c - n]
+        else:
+            out[i] = fill

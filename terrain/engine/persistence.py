@@ -62,7 +62,7 @@ from numba import njit
 
 from ..errors import OptionError
 from .basins import before, descend, fill_cells, find, resolve, upsert
-from .grid import forward_offsets, is_edge, offsets
+from .grid import forward_offsets, is_edge, neighbour, offsets
 
 __all__ = ["Pairs", "pairs", "Fill", "pits_and_levels", "pairs_and_fill", "count_ponding",
            "Regions", "regions", "KINDS"]
@@ -214,7 +214,10 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_leve
     watershed: a component dying with persistence below ``merge_level`` (or
     zero) hands its region to the basin across the pass it dies at (the
     outlet's region is "none"); ``rpar`` is that region union-find over
-    basins and ``pair_of[b]`` the pair at which root basin ``b`` died.
+    basins and ``pair_of[b]`` the pair at which root basin ``b`` died. For
+    regions the edges of a group must come ordered by the cell across
+    (:func:`_across_cells`, outlet last): which basin is "across" when
+    several components meet at one cell depends on that order.
 
     Returns the pairs, per basin the cell at which its component joined the
     outlet (-1: never) and the root basin of that component, ``rpar`` and
@@ -284,6 +287,42 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_leve
     esb, ese = _essential(parent, minc, emin)
     join, jroot = _joins(zk, up, mt, nb, out_id, outlet)
     return pb[:npairs], pd[:npairs], pe[:npairs], esb, ese, join, jroot, rpar, pair_of
+
+
+@njit(cache=True)
+def _across_cells(zk, valid, lab, nr, nc, dr, dc, ea, eb, ew, nb):
+    """Per edge, the rank of the cell across its pass cell ``w``, for ordering.
+
+    Every edge weighing ``w`` joins ``w``'s own basin to the basin of an
+    earlier neighbour of ``w``; the cell across is the earliest neighbour
+    of ``w`` in that other basin. Returns, per edge, that cell's rank among
+    ``w``'s neighbours in the total order (0 = lowest); edges to the outlet
+    (``eb == nb``) rank last. Sorting a pass cell's edges by it makes the
+    merges at one cell follow the neighbours in the total order, the same
+    as visiting the cells one by one.
+    """
+    out = np.empty(ew.size, np.int64)
+    nn = dr.size
+    for t in range(ew.size):
+        if eb[t] == nb:
+            out[t] = nn
+            continue
+        w = ew[t]
+        r = w // nc
+        c = w - r * nc
+        hub = -lab[w] - 1
+        other = eb[t] if ea[t] == hub else ea[t]
+        best = -1
+        for k in range(nn):
+            j = neighbour(r, c, k, nr, nc, dr, dc)
+            if j >= 0 and valid[j] and -lab[j] - 1 == other and (best < 0 or before(zk, j, best)):
+                best = j
+        rank = 0
+        for k in range(nn):
+            j = neighbour(r, c, k, nr, nc, dr, dc)
+            rank += j >= 0 and j != best and valid[j] and before(zk, j, best)
+        out[t] = rank
+    return out
 
 
 @njit(cache=True)
@@ -428,7 +467,13 @@ def _engine(zk, valid, connectivity, outlet, merge_level=-1.0):
         ea = np.concatenate([ea, has])
         eb = np.concatenate([eb, np.full(has.size, nb, np.int64)])
         ew = np.concatenate([ew, emin[has]])
-    order = np.lexsort((ew, zf[ew]))
+    if merge_level >= 0:
+        # regions: edges sharing a pass cell are taken in the order of the cell across
+        # (the hash table's order would otherwise decide which basin is "across")
+        across = _across_cells(zf, vf, lab, nr, nc, dr, dc, ea, eb, ew, nb)
+        order = np.lexsort((across, ew, zf[ew]))
+    else:
+        order = np.lexsort((ew, zf[ew]))
     res = _merge(zf, vf, nr, nc, dr, dc, minc, emin.copy(), ea[order], eb[order], ew[order],
                  outlet, merge_level)
     return res, lab, minc
@@ -567,7 +612,14 @@ def regions(z: np.ndarray, *, kind: str, merge_level: float, connectivity: int =
     pits with the edge as outlet, joining the outlet means belonging to no
     region). Regions are thus the basins of steepest descent (ascent for
     peaks) merged across their lowest passes, computed by the same
-    union-find as :func:`pairs`.
+    union-find as :func:`pairs`. When several components meet at one pass
+    cell, the cell's earlier neighbours are taken in the total order (the
+    outlet last), as if the cell joined them one by one: the first one is
+    the cell's own basin, and each merge with the component of a later
+    neighbour hands the younger side's region across to the other side
+    (the cell's own basin, or that neighbour's basin). The labels are
+    therefore a property of the raster alone (the blocked engine,
+    :mod:`terrain.engine.blocked_regions`, reproduces them bit for bit).
 
     Parameters
     ----------

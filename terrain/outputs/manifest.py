@@ -28,19 +28,25 @@ def _rasters(job: str) -> list[OutputFile]:
             for s in layers_of(job)]
 
 
-_COMMON = [OutputFile("quicklook.png", "quick-look map"),
+_COMMON = [OutputFile("quicklook.png", "quick-look map: the main layer over a hillshade, features, "
+                                       "legend, error model and caution"),
            OutputFile("run.json", "provenance: input checksum, command line, every parameter "
                                   "and default, timings")]
 
+_RANKING = OutputFile("ranking.png", "ranking chart: each top feature's 5-95% range and "
+                                     "P(rank = k) for k = 1..10")
+
 MANIFEST: dict[str, list[OutputFile]] = {
     "peaks": _rasters("peaks") + [
-        OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics",
-                   ("summits", "summit_points", "summit_regions")),
-        OutputFile("summits.csv", "the summit feature table")] + _COMMON,
+        OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics, "
+                                 "and each feature's most credited key col",
+                   ("summits", "summit_points", "summit_regions", "cols")),
+        OutputFile("summits.csv", "the summit feature table"), _RANKING] + _COMMON,
     "depressions": _rasters("depressions") + [
         OutputFile("depressions.gpkg", "depression features: polygons and points with their "
-                                       "statistics", ("pits", "pit_points", "pit_regions")),
-        OutputFile("pits.csv", "the depression feature table")] + _COMMON,
+                                       "statistics, and each feature's most credited spill point",
+                   ("pits", "pit_points", "pit_regions", "spill_points")),
+        OutputFile("pits.csv", "the depression feature table"), _RANKING] + _COMMON,
     "catchments": _rasters("catchments") + [
         OutputFile("catchments.gpkg", "50% and 90% membership polygons per outlet with areas",
                    ("catchments",)),

@@ -60,12 +60,13 @@ PALETTES = {"summits": ("magma", 0.97, 0.22), "water": ("cividis", 0.97, 0.08),
 #: outline colours for catchments, told apart by lightness as well as hue
 OUTLINE_COLOURS = ("#1f5fa8", "#d1600a", "#6a3d9a", "#127a5c", "#b0124a", "#7a5c00",
                    "#0092b8", "#505050")
-#: where a label starts in each placement (pixels right and up of its point, alignment):
-#: right of it; labels that still overlap start left of it, then above, then below
-LABEL_STARTS = ((9.0, 0.0, "left", "center"), (-9.0, 0.0, "right", "center"),
-                (0.0, 9.0, "center", "bottom"), (0.0, -9.0, "center", "top"))
-ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, min_arrow_len=14, force_text=(0.3, 0.4),
-              force_static=(0.3, 0.4))
+#: where a label starts in each placement (pixels right and up of its point, alignment) and
+#: where adjustText may move it: right of it, anywhere; labels that still overlap start left
+#: of it, then above it moving only up, then below it moving only down
+LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center", "xy"),
+                (0.0, 9.0, "center", "bottom", "y+"), (0.0, -9.0, "center", "top", "y-"))
+ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
+LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
 
 
 def palette(name: str):
@@ -178,6 +179,9 @@ class MapFrame:
         self.handles: list = []
         self.avoid: list[tuple[float, float, float]] = []  # (x, y, marker size in points)
         self.texts: list[tuple[float, float, str]] = []
+        self.names: list[str] = []  # each label's short name, for the unplaced note
+        #: the footer's note when some labels find no room ({names}: their short names)
+        self.unplaced = "No room on the map to label {names}."
         self._base()
 
     # -- drawing ---------------------------------------------------------------------
@@ -196,7 +200,6 @@ class MapFrame:
             from matplotlib.patches import Patch
 
             ax.set_facecolor(NODATA)  # under the hillshade's smoothed edge too
-
             flat = np.ma.masked_where(~nodata, np.ones(nodata.shape))
             ax.imshow(flat, cmap=_single(NODATA), vmin=0, vmax=1, extent=self.view_extent,
                       interpolation="nearest", label="no data", gid="nodata")
@@ -308,10 +311,13 @@ class MapFrame:
         """A legend entry for a line style used by several artists (e.g. 90% dashed)."""
         self.handles.append(_line_key(colour, label, lw=lw, ls=ls))
 
-    def label(self, x: float, y: float, text: str) -> None:
-        """A label for the point (x, y); placed when the figure is finished."""
+    def label(self, x: float, y: float, text: str, *, name: str | None = None) -> None:
+        """A label for the point (x, y), the most important first; placed when the
+        figure is finished. ``name`` (default: the text) is how the footer names it
+        if it finds no room."""
         if np.isfinite(x) and np.isfinite(y):
             self.texts.append((float(x), float(y), text))
+            self.names.append(name or text)
 
     # -- finishing -------------------------------------------------------------------------
     def figure(self):
@@ -320,13 +326,25 @@ class MapFrame:
         if self._north_up():
             self.ax.annotate("N", xy=(0.955, 0.965), xytext=(0.955, 0.875),
                              xycoords="axes fraction", ha="center", va="center",
-                             fontsize=FONT_PT + 2, weight="bold", gid="north_arrow",
+                             fontsize=FONT_PT + 2, weight="bold", gid="north_arrow", zorder=8,
+                             bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none",
+                                       alpha=0.8),
                              arrowprops=dict(facecolor=INK, edgecolor="white", width=3,
                                              headwidth=10, lw=0.6))
         self._legend_and_text()
         self.ax.set_aspect(self.aspect())  # imshow resets it
         _lay_out(self)
-        place_labels(self.ax, self.texts, self.avoid)
+        r = self.fig.canvas.get_renderer()
+        fixed = [a.get_window_extent(r) for a in self.ax.artists + self.ax.texts
+                 if a.get_gid() in ("scale_bar", "north_arrow")]
+        fixed += [t.arrow_patch.get_window_extent(r) for t in self.ax.texts
+                  if t.get_gid() == "north_arrow"]
+        kept = {t.get_text() for t in place_labels(self.ax, self.texts, self.avoid, fixed=fixed)}
+        missing = [n for (*_, text), n in zip(self.texts, self.names) if text not in kept]
+        if missing:  # say so in the footer; the map keeps its size, so labels stay clear
+            self.footer += " " + self.unplaced.format(names=", ".join(missing))
+            self.footer_text.set_text(self._footer())
+            _lay_out(self)
         return self.fig
 
     def aspect(self) -> float:
@@ -379,9 +397,11 @@ class MapFrame:
                                      ncols=min(2, len(self.handles)),
                                      fontsize=FONT_PT, frameon=False, handlelength=2.4,
                                      columnspacing=1.6)
-        foot = "\n".join(textwrap.wrap(self.footer, 140) + textwrap.wrap(self.caution, 140))
-        self.footer_text = fig.text(0.5, 0.01, foot, ha="center", va="bottom",
+        self.footer_text = fig.text(0.5, 0.01, self._footer(), ha="center", va="bottom",
                                     fontsize=FONT_PT, color="0.25")
+
+    def _footer(self) -> str:
+        return "\n".join(textwrap.wrap(self.footer, 140) + textwrap.wrap(self.caution, 140))
 
 
 def _single(colour: str):
@@ -449,16 +469,16 @@ def _lay_out(frame: MapFrame) -> None:
     frame.subtitle_text.set_position((0.5, 1 - (pad + title_h + 0.05) / height))
 
 
-def place_labels(ax, items, avoid, *, fontsize: float = FONT_PT) -> list:
+def place_labels(ax, items, avoid, *, fixed=(), fontsize: float = FONT_PT) -> list:
     """Place text labels by their points without overlap (adjustText).
 
     Each label starts beside its point and is pushed off every marker and
-    every other label, with a leader line back to its point where it had to
-    move. Labels come in order of importance. After the placement, a label
-    that still overlaps a more important label or a marker is placed again
-    (with every label kept so far as an obstacle), up to
-    :data:`LABEL_PASSES` times; one that still overlaps is left out (its
-    marker stays), so what is drawn never overlaps.
+    every other label. Labels come in order of importance. After the
+    placement, a label that still overlaps a more important label, a marker
+    or a ``fixed`` box is placed again from another start (every label kept
+    so far an obstacle), through :data:`LABEL_STARTS`; one that still
+    overlaps is left out (its marker stays), so what is drawn never
+    overlaps. A label that ends up away from its point gets a leader line.
 
     Parameters
     ----------
@@ -466,6 +486,8 @@ def place_labels(ax, items, avoid, *, fontsize: float = FONT_PT) -> list:
         With its final position (lay the figure out first).
     items : sequence of (x, y, text)
     avoid : sequence of (x, y, marker size in points)
+    fixed : sequence of display boxes
+        Further places to keep clear (the scale bar, the north arrow).
 
     Returns
     -------
@@ -478,58 +500,102 @@ def place_labels(ax, items, avoid, *, fontsize: float = FONT_PT) -> list:
     """
     if not items:
         return []
-    boxes = _marker_boxes(ax, avoid)
+    boxes = _marker_boxes(ax, avoid) + list(fixed)
     kept: dict[int, object] = {}
     todo = list(range(len(items)))
-    images = [im for im in ax.get_images() if im.get_visible()]
-    for im in images:  # adjustText draws the figure; the images do not move the labels
-        im.set_visible(False)
-    try:
+    r = ax.figure.canvas.get_renderer()
+    with _only_labels(ax):  # adjustText draws the figure; nothing else moves the labels
         for start in LABEL_STARTS:
             if not todo:
                 break
-            obstacles = boxes + [t.get_window_extent(ax.figure.canvas.get_renderer())
-                                 for t in kept.values()]
-            texts, arrows = _adjust(ax, [items[i] for i in todo], obstacles, fontsize, start)
+            obstacles = boxes + [t.get_window_extent(r) for t in kept.values()]
+            near = _near(ax, [items[i] for i in todo], obstacles)
+            texts = _adjust(ax, [items[i] for i in todo], near, fontsize, start)
             placed = _clear(ax, texts, obstacles, [kept[i] for i in sorted(kept)])
-            for i, t, a in zip(todo, texts, arrows):
+            for i, t in zip(todo, texts):
                 if placed.get(id(t)):
                     kept[i] = t
                 else:
                     t.remove()
-                    if a is not None:
-                        a.remove()
             todo = [i for i in todo if i not in kept]
-    finally:
-        for im in images:
-            im.set_visible(True)
+    size = {(x, y): s for x, y, s in avoid}
+    for i, t in kept.items():
+        _leader(ax, t, items[i][:2], size.get(items[i][:2], 0.0))
     return [kept[i] for i in sorted(kept)]
 
 
-def _adjust(ax, items, obstacles, fontsize, start) -> tuple[list, list]:
+class _only_labels:
+    """Hide every artist of the figure but the map's texts for a while (adjustText
+    draws the whole figure each time it starts; the rest only costs time)."""
+
+    def __init__(self, ax):
+        fig = ax.figure
+        others = [a for a in fig.axes if a is not ax] + list(fig.legends) + list(fig.texts)
+        mine = [a for a in ax.get_children() if a not in ax.texts and a is not ax.patch]
+        self.hidden = [a for a in others + mine if a.get_visible()]
+
+    def __enter__(self):
+        for a in self.hidden:
+            a.set_visible(False)
+        return self
+
+    def __exit__(self, *exc):
+        for a in self.hidden:
+            a.set_visible(True)
+        return False
+
+
+def _adjust(ax, items, obstacles, fontsize, start) -> list:
     """One adjustText placement of ``items`` away from ``obstacles`` (display
-    boxes), each label starting at ``start`` (offset in pixels and alignment)
-    from its point; returns the texts and each one's leader line (or None)."""
+    boxes), each label starting at ``start`` (offset in pixels, alignment, the
+    directions it may move) from its point; returns the texts."""
     from adjustText import adjust_text
     from matplotlib.transforms import Bbox
 
-    dx, dy, ha, va = start
+    dx, dy, ha, va, move = start
     xy = np.array([(x, y) for x, y, _ in items], float)
     inv = ax.transData.inverted()
     at = inv.transform(ax.transData.transform(xy) + np.array([dx, dy]))
-    texts = [ax.text(sx, sy, s, fontsize=fontsize, color=INK, zorder=7, ha=ha, va=va,
+    texts = [ax.text(sx, sy, s, fontsize=fontsize, color=INK, zorder=7, ha=ha, va=va, gid="label",
                      path_effects=_halo(HALO_PT)) for (sx, sy), (_, _, s) in zip(at, items)]
     for t in texts:
         t.set_in_layout(False)
     objects = [Bbox(inv.transform(b.get_points())) for b in obstacles]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        _, arrows = adjust_text(texts, objects=objects or None, ax=ax, avoid_self=False,
-                                target_x=xy[:, 0], target_y=xy[:, 1], **ADJUST,
-                                arrowprops=dict(arrowstyle="-", color=INK, lw=0.7, shrinkA=2,
-                                                shrinkB=3))
-    by_text = {id(getattr(a, "patchA", None)): a for a in arrows}
-    return texts, [by_text.get(id(t)) for t in texts]
+        adjust_text(texts, objects=objects or None, ax=ax, avoid_self=False,
+                    target_x=xy[:, 0], target_y=xy[:, 1], **ADJUST,
+                    only_move={"text": move, "static": move, "explode": move, "pull": "xy"})
+    return texts
+
+
+def _leader(ax, text, xy, marker_pt: float) -> None:
+    """A straight leader line from the edge of ``text`` to its point, when the label
+    stands more than :data:`LEADER_PX` pixels off the point's marker."""
+    r = ax.figure.canvas.get_renderer()
+    box = text.get_window_extent(r).padded(2.0)
+    px, py = ax.transData.transform(xy)
+    qx, qy = min(max(px, box.x0), box.x1), min(max(py, box.y0), box.y1)  # nearest point of the box
+    gap = math.hypot(px - qx, py - qy) - marker_pt / 2 * ax.figure.dpi / 72.0
+    if gap <= LEADER_PX:
+        return
+    shrink = (marker_pt / 2 * ax.figure.dpi / 72.0 + 2.0) / math.hypot(px - qx, py - qy)
+    end = (px + (qx - px) * shrink, py + (qy - py) * shrink)
+    (x0, y0), (x1, y1) = ax.transData.inverted().transform([(qx, qy), end])
+    ax.plot([x0, x1], [y0, y1], color=INK, lw=0.7, zorder=6, gid="leader", label="_leader")
+
+
+def _near(ax, items, boxes, reach: float = 160.0, most: int = 160) -> list:
+    """The boxes adjustText is given: those within ``reach`` pixels of a labelled
+    point, at most ``most`` of them, nearest first (its cost grows with the square of
+    the obstacles; labels do not travel far, and :func:`_clear` checks them all)."""
+    if not boxes:
+        return []
+    pts = ax.transData.transform(np.array([(x, y) for x, y, _ in items], float))
+    centres = np.array([[(b.x0 + b.x1) / 2, (b.y0 + b.y1) / 2] for b in boxes])
+    d = np.abs(centres[:, None, :] - pts[None, :, :]).max(axis=2).min(axis=1)
+    order = np.argsort(d, kind="stable")[:most]
+    return [boxes[i] for i in order if d[i] <= reach]
 
 
 def _marker_boxes(ax, avoid) -> list:

@@ -18,7 +18,7 @@ from ..dem import Dem
 from ..layers import LAYERS, layer_name, spec, units
 from ..summary.features import LAYER_NAMES
 from .caution import CAUTION
-from .mapframe import FONT_PT, INK, OUTLINE_COLOURS, MapFrame, hillshade, palette, short_unit
+from .mapframe import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, MapFrame, hillshade, palette, short_unit
 
 __all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_map",
            "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED"]
@@ -47,11 +47,16 @@ _KIND = {
 }
 
 
-def run_footer(result) -> str:
-    """The footer line of a run's figures: error model, vertical units, realisations, seed."""
-    return (f"Error model: {result.model.describe()}, vertical units "
+def run_footer(result, layer: str | None = None) -> str:
+    """The footer line of a run's figures: error model, vertical units, realisations,
+    seed, and the note that travels with ``layer`` (:mod:`terrain.layers`), if any."""
+    text = (f"Error model: {result.model.describe()}, vertical units "
             f"{short_unit(result.dem.vertical_units)}; {result.n} realisations, seed "
             f"{result.params.get('seed')}.")
+    note = spec(layer).note if layer else ""
+    if note:
+        text += f" The {' '.join(spec(layer).name.split('_{id}')[0].split('_'))} layer {note}."
+    return text
 
 
 def bar_label(name: str, vertical_units: str | None, weight: str = "persistence") -> str:
@@ -118,8 +123,7 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     frame = MapFrame(dem, title=title, subtitle="", footer=footer, caution=caution)
     v = np.asarray(layer, np.float64)
     top = vmax if vmax is not None else (float(np.nanmax(v)) if np.isfinite(v).any() else 0.0)
-    frame.layer(v, cmap=palette(cmap or "summits") if isinstance(cmap, str) or cmap is None
-                else cmap,
+    frame.layer(v, cmap=_colour_map(cmap),
                 label=units, vmax=vmax, hide=None if show is None else ~np.asarray(show, bool),
                 floor=frac * top if top > 0 else 0.0)
     for n, (arr, levels, name) in enumerate(contours or []):
@@ -130,6 +134,15 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     for x, y, text in labels or []:
         frame.label(x, y, text)
     return frame.figure()
+
+
+def _colour_map(cmap):
+    """One of our palettes by name, any matplotlib colour map by name, or as given."""
+    import matplotlib
+
+    if cmap is None or cmap in PALETTES:
+        return palette(cmap or "summits")
+    return matplotlib.colormaps[cmap] if isinstance(cmap, str) else cmap
 
 
 def _level_styles(levels) -> tuple:
@@ -160,9 +173,9 @@ def feature_map(result, features):
     unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.vertical_units, job.weight))
     sub = (f"labels: #id, expected {kind['figure']}, P(ranks first) - the {LABELLED} largest "
            f"features counted in at least {LABEL_PRESENCE:.0%} of realisations")
-    frame = MapFrame(dem, title=kind["title"], subtitle=sub, footer=run_footer(result),
-                     caution=CAUTION)
     main = layer_name(job.kind, kind["main"])
+    frame = MapFrame(dem, title=kind["title"], subtitle=sub, footer=run_footer(result, main),
+                     caution=CAUTION)
     values = result.layers[main][0]
     inside = np.isin(features.regions.labels, table["feature_id"].to_numpy())
     if job.kind == "peaks":  # elsewhere, single noise summits would speckle the whole map
@@ -183,14 +196,16 @@ def feature_map(result, features):
                  for g in geoms]
     frame.polygons(geoms, colour=kind["accent"], label=kind["polygons"])
     d = "col" if job.kind == "peaks" else "spill"
+    size = 8.0 if len(table) <= 40 else 6.0 if len(table) <= 150 else 4.5  # crowded: smaller
     frame.points(table["x"], table["y"], marker=kind["birth"][0], face="white",
-                 label=kind["birth"][1], size=8)
+                 label=kind["birth"][1], size=size)
     frame.points(table[f"{d}_x"], table[f"{d}_y"], marker=kind["death"][0], face=kind["accent"],
-                 label=kind["death"][1], size=6)
+                 label=kind["death"][1], size=size * 0.75)
     shown = table[table["p_above"] >= LABEL_PRESENCE].sort_values("rank", kind="stable")
+    frame.unplaced = "No room on the map to label {names}: see ranking.png and the table."
     for row in shown.head(LABELLED).itertuples():
         frame.label(row.x, row.y, f"#{row.feature_id} {figure_text(row.expected)} {unit} · "
-                                  f"first {share_text(row.p_first)}")
+                                  f"first {share_text(row.p_first)}", name=f"#{row.feature_id}")
     return frame.figure()
 
 
@@ -220,7 +235,7 @@ def catchment_map(result):
                                 "divides run",
                      subtitle="outlines: cells draining to the outlet in at least 50% (solid) and "
                               "90% (dashed) of realisations",
-                     footer=run_footer(result), caution=CAUTION)
+                     footer=run_footer(result, main), caution=CAUTION)
     frame.layer(result.layers[main][0], cmap=palette("divides"), vmax=1.0, floor=DIVIDE_FLOOR,
                 label=bar_label(main, dem.vertical_units) + f"; clear under {DIVIDE_FLOOR:.0%}")
     drawn = False
@@ -248,6 +263,7 @@ def ranking_chart(result, features):
     (``features.rank_share``), the probabilities written in the cells (blank
     where the feature never ranked k-th).
     """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
     job, table = result.job, features.table
@@ -259,11 +275,19 @@ def ranking_chart(result, features):
     share = features.rank_share
     kmax = share.shape[1] if share is not None and share.shape[1] else 1
     fig = Figure(figsize=(11.0, max(4.4, 2.6 + 0.4 * n)), dpi=CHART_DPI, layout="constrained")
-    left, right = fig.subplots(1, 2, sharey=True,
-                               gridspec_kw=dict(width_ratios=[1.0, max(0.4, 0.08 * kmax)]))
-    _ranges(left, rows, kind, unit)
-    _rank_matrix(right, rows, share, kmax, kind)
-    left.set_ylim(n - 0.5, -0.5)
+    FigureCanvasAgg(fig)
+    if rows.empty:
+        ax = fig.subplots()
+        ax.set_axis_off()
+        ax.text(0.5, 0.5, f"No {kind['feature']} feature was counted in at least "
+                          f"{job.min_presence:.0%} of realisations.", ha="center",
+                fontsize=FONT_PT + 1, transform=ax.transAxes)
+    else:
+        left, right = fig.subplots(1, 2, sharey=True,
+                                   gridspec_kw=dict(width_ratios=[1.0, max(0.4, 0.08 * kmax)]))
+        _ranges(left, rows, kind, unit)
+        _rank_matrix(right, rows, share, kmax, kind)
+        left.set_ylim(n - 0.5, -0.5)
     fig.suptitle(f"Which {kind['feature']} ranks first, and how sure? The {len(rows)} largest of "
                  f"{len(table)} features by expected {kind['figure']}",
                  fontsize=FONT_PT + 3, weight="bold")
@@ -289,13 +313,13 @@ def _ranges(ax, rows, kind, unit) -> None:
     positive = values[values > 0]
     log = bool(positive.size) and positive.max() / positive.min() > 20
     if log:
-        from matplotlib.ticker import FuncFormatter, LogLocator
+        from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
 
         ax.set_xscale("log")
         ax.set_xlim(positive.min() / 1.4, positive.max() * 1.4)
         ax.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
         ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-        ax.xaxis.set_minor_formatter(FuncFormatter(lambda v, _: ""))
+        ax.xaxis.set_minor_locator(NullLocator())
     ax.set_xlabel(f"{kind['figure']} ({unit}{', log scale' if log else ''})", fontsize=FONT_PT + 1)
     ax.set_yticks(y, [f"#{i}" for i in rows["feature_id"]])
     ax.tick_params(labelsize=FONT_PT)

@@ -21,8 +21,11 @@ A :class:`MapFrame` draws a map of one DEM the same way for every command:
 
 Memory: rasters with more than :data:`MAX_PIXELS` cells a side are pooled in
 blocks before drawing (elevations by mean, layers by maximum so single cells
-stay visible), so a map holds a few float64 arrays of at most
-``MAX_PIXELS`` squared cells whatever the DEM's size.
+stay visible), so a finished map holds a few float64 arrays of at most
+``MAX_PIXELS`` squared cells whatever the DEM's size; while a layer is
+pooled, one float64 copy of it on the DEM's grid exists for a moment (8
+bytes per cell; the hillshade of a DEM with nodata adds 16 for the nearest-
+cell indices).
 
 Colour maps are slices of matplotlib's perceptually uniform maps, each
 running from light to dark, so they read in greyscale and by colour-blind
@@ -37,10 +40,16 @@ from __future__ import annotations
 import math
 import textwrap
 import warnings
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ..dem import Dem, metres_per_degree
+
+if TYPE_CHECKING:
+    from matplotlib.axes import Axes
+    from matplotlib.colors import Colormap
+    from matplotlib.figure import Figure
 
 __all__ = ["MapFrame", "PALETTES", "OUTLINE_COLOURS", "INK", "palette", "hillshade", "nice_length",
            "short_unit", "boxes_overlap", "place_labels", "FONT_PT", "DPI"]
@@ -62,14 +71,18 @@ OUTLINE_COLOURS = ("#1f5fa8", "#d1600a", "#6a3d9a", "#127a5c", "#b0124a", "#7a5c
                    "#0092b8", "#505050")
 #: where a label starts in each placement (pixels right and up of its point, alignment) and
 #: where adjustText may move it: right of it, anywhere; labels that still overlap start left
-#: of it, then above it moving only up, then below it moving only down
+#: of it, above it moving only up, below it moving only down, then at the four diagonals,
+#: then further out
 LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center", "xy"),
-                (0.0, 9.0, "center", "bottom", "y+"), (0.0, -9.0, "center", "top", "y-"))
+                (0.0, 9.0, "center", "bottom", "y+"), (0.0, -9.0, "center", "top", "y-"),
+                (8.0, -8.0, "left", "top", "xy"), (-8.0, -8.0, "right", "top", "xy"),
+                (8.0, 8.0, "left", "bottom", "xy"), (-8.0, 8.0, "right", "bottom", "xy"),
+                (0.0, -40.0, "center", "top", "y-"), (0.0, 40.0, "center", "bottom", "y+"))
 ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
 LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
 
 
-def palette(name: str):
+def palette(name: str) -> Colormap:
     """A named colour map of :data:`PALETTES` (light = low, dark = high).
 
     References
@@ -276,7 +289,8 @@ class MapFrame:
         self.ax.add_collection(coll)
         self.handles.append(_line_key(colour, label, lw=lw))
 
-    def points(self, x, y, *, marker: str, face: str, label: str, size: float = 8.0) -> None:
+    def points(self, x: np.ndarray, y: np.ndarray, *, marker: str, face: str, label: str,
+               size: float = 8.0) -> None:
         """Markers at CRS coordinates (NaN skipped), as one legend entry."""
         x, y = np.asarray(x, float), np.asarray(y, float)
         ok = np.isfinite(x) & np.isfinite(y)
@@ -320,7 +334,7 @@ class MapFrame:
             self.names.append(name or text)
 
     # -- finishing -------------------------------------------------------------------------
-    def figure(self):
+    def figure(self) -> Figure:
         """Lay the map out, place the labels and return the Figure."""
         self._scale_bar()
         if self._north_up():
@@ -469,7 +483,7 @@ def _lay_out(frame: MapFrame) -> None:
     frame.subtitle_text.set_position((0.5, 1 - (pad + title_h + 0.05) / height))
 
 
-def place_labels(ax, items, avoid, *, fixed=(), fontsize: float = FONT_PT) -> list:
+def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT) -> list:
     """Place text labels by their points without overlap (adjustText).
 
     Each label starts beside its point and is pushed off every marker and

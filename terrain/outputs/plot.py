@@ -11,6 +11,7 @@ shows is decided here, by layer role (:mod:`terrain.layers`).
 from __future__ import annotations
 
 import textwrap
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -19,6 +20,12 @@ from ..layers import LAYERS, layer_name, spec, units
 from ..summary.features import LAYER_NAMES
 from .caution import CAUTION
 from .mapframe import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, MapFrame, hillshade, palette, short_unit
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
+
+    from ..runner.ensemble import RunResult
+    from ..summary.features import FeatureSummary
 
 __all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_map",
            "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED"]
@@ -47,7 +54,7 @@ _KIND = {
 }
 
 
-def run_footer(result, layer: str | None = None) -> str:
+def run_footer(result: RunResult, layer: str | None = None) -> str:
     """The footer line of a run's figures: error model, vertical units, realisations,
     seed, and the note that travels with ``layer`` (:mod:`terrain.layers`), if any."""
     text = (f"Error model: {result.model.describe()}, vertical units "
@@ -90,7 +97,7 @@ def share_text(p: float) -> str:
 def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: float = 0.01,
               polygons=None, labels=None, outlets=None, cmap=None, vmax: float | None = None,
               show: np.ndarray | None = None, contours=None, footer: str = "",
-              caution: str = CAUTION):
+              caution: str = CAUTION) -> Figure:
     """A map of any one layer in the shared design.
 
     Parameters
@@ -157,7 +164,7 @@ def _outlets(frame: MapFrame, outlets) -> None:
             frame.label(x, y, str(name))
 
 
-def feature_map(result, features):
+def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     """The quick-look of a peaks or depressions run.
 
     Peaks: summit probability; depressions: ponding probability with its 50%
@@ -217,7 +224,7 @@ def _round_up(x: float) -> float:
     return 1.0
 
 
-def catchment_map(result):
+def catchment_map(result: RunResult) -> Figure:
     """The quick-look of a catchment run.
 
     The divide layer in colour; each outlet's membership layer outlined where
@@ -253,7 +260,7 @@ def catchment_map(result):
     return frame.figure()
 
 
-def ranking_chart(result, features):
+def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
     """Which feature is first, and how sure: the ranking chart of a peaks or
     depressions run.
 

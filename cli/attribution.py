@@ -128,4 +128,5 @@ def demo_cmd(outdir, workers, overwrite, quiet):
                    label=f"demo {kind}")
     if not quiet:
         click.echo(f"demo outputs in {outdir}/peaks and {outdir}/depressions "
-                   "(open quicklook.png, or load the .tif and .gpkg files in a GIS)")
+                   "(open quicklook.png and ranking.png, or load the .tif and .gpkg files in "
+                   "a GIS)")

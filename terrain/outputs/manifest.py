@@ -31,19 +31,25 @@ def _rasters(job: str) -> list[OutputFile]:
             for s in layers_of(job)]
 
 
-_COMMON = [OutputFile("quicklook.png", "quick-look map"),
+_COMMON = [OutputFile("quicklook.png", "quick-look map: the main layer over a hillshade, features, "
+                                       "legend, error model and caution"),
            OutputFile("run.json", "provenance: input checksum, command line, every parameter "
                                   "and default, timings")]
 
+_RANKING = OutputFile("ranking.png", "ranking chart: each top feature's 5-95% range and "
+                                     "P(rank = k) for k = 1..10")
+
 MANIFEST: dict[str, list[OutputFile]] = {
     "peaks": _rasters("peaks") + [
-        OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics",
-                   ("summits", "summit_points", "summit_regions")),
-        OutputFile("summits.csv", "the summit feature table")] + _COMMON,
+        OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics, "
+                                 "and each feature's most credited key col",
+                   ("summits", "summit_points", "summit_regions", "cols")),
+        OutputFile("summits.csv", "the summit feature table"), _RANKING] + _COMMON,
     "depressions": _rasters("depressions") + [
         OutputFile("depressions.gpkg", "depression features: polygons and points with their "
-                                       "statistics", ("pits", "pit_points", "pit_regions")),
-        OutputFile("pits.csv", "the depression feature table")] + _COMMON,
+                                       "statistics, and each feature's most credited spill point",
+                   ("pits", "pit_points", "pit_regions", "spill_points")),
+        OutputFile("pits.csv", "the depression feature table"), _RANKING] + _COMMON,
     "catchments": _rasters("catchments") + [
         OutputFile("catchments.gpkg", "per outlet: 50% and 90% catchment and sub-catchment "
                                       "polygons with areas, and the outlet as given and snapped, "
@@ -83,6 +89,15 @@ VECTOR_LAYERS: dict[str, str] = {
     "pit_regions": "Depression features of a depressions run: each feature's whole region of "
                    "the DEM as given (the cells that drain to its pit), by rank, with the same "
                    "statistics as the pits layer",
+    "cols": "Each summit feature's most credited key col (the cell where its pairs died most, "
+            "by credit), with feature_id and rank to join the summits layer, col_share (its "
+            "share of the feature's col credit) and col_elevation (mean over the realisations "
+            "in which it was the col)",
+    "spill_points": "Each depression feature's most credited spill point (the cell where its "
+                    "pairs died most, by credit), with feature_id and rank to join the pits "
+                    "layer, spill_share (its share of the feature's spill credit) and "
+                    "spill_elevation (mean over the realisations in which it was the spill "
+                    "point)",
     "catchments": "Cells draining to each outlet in at least 50% and at least 90% of "
                   "realisations, one polygon per outlet and level, with its area and the mean "
                   "and 5-95% range of the catchment area over realisations (nested outlets "

@@ -1,212 +1,376 @@
-"""Figures: quick-look maps (hillshade, a layer, features) and the sweep figure.
+"""Figures: quick-look maps, the ranking chart and the sweep figure.
 
 Rendering only; every function returns a matplotlib Figure and the writer
-saves it (atomically, through :mod:`terrain.io`).
+saves it (atomically, through :mod:`terrain.io`). Every map is drawn in the
+one design of :class:`terrain.outputs.mapframe.MapFrame` (hillshade, masked
+nodata, aspect, scale bar, north arrow, legend, labels, footer with the
+error model, the realisations and the caution); what each command's map
+shows is decided here, by layer role (:mod:`terrain.layers`).
 """
 
 from __future__ import annotations
 
-import math
+import textwrap
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ..dem import Dem
-from ..layers import LAYERS, layer_name, units
+from ..layers import LAYERS, layer_name, spec, units
 from ..outlets import short
+from ..summary.features import LAYER_NAMES
+from .caution import CAUTION
+from .mapframe import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, MapFrame, hillshade, palette, short_unit
 
-__all__ = ["quicklook", "hillshade", "feature_map", "catchment_map", "sweep_figure"]
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
+
+    from ..runner.ensemble import RunResult
+    from ..summary.features import FeatureSummary
+
+__all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_map",
+           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED"]
+
+LABELLED = 12  # features labelled on a map, at most
+LABEL_PRESENCE = 0.5  # ... among those counted in at least this share of realisations
+RANKED = 15  # features on the ranking chart, at most
+ENVELOPE_CELLS = 1.5  # the peaks map outlines a top's cells this many cells out
+PONDING_FLOOR = 0.05  # ponding probability below this is left clear on the depressions map
+DIVIDE_FLOOR = 0.05  # and divide probability on the catchments map
+
+#: what a feature map of each kind draws, in a reader's words
+_KIND = {
+    "peaks": dict(
+        feature="summit", figure="prominence", main="birth_probability", sqrt=True,
+        palette="summits", accent="#0a6fa8", birth=("^", "most credited summit cell"),
+        death=("D", "most credited key col"),
+        title="Summits: where each top is, and how often a cell is the summit",
+        polygons="where the top is (around the cells holding 90% of a feature's summits)"),
+    "depressions": dict(
+        feature="depression", figure="depth", main="ponding_probability", sqrt=False,
+        palette="water", accent="#d8432b", birth=("v", "most credited pit cell"),
+        death=("D", "most credited spill point"),
+        title="Depressions: where water ponds, and where each one spills",
+        polygons="ponded extent of a feature (ponded in at least 50% of realisations)"),
+}
 
 
-def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0) -> np.ndarray:
-    """Hillshade in [0, 1] (matplotlib LightSource, cell sizes in metres)."""
-    from matplotlib.colors import LightSource
+def run_footer(result: RunResult, layer: str | None = None) -> str:
+    """The footer line of a run's figures: error model, vertical units, realisations,
+    seed, and the note that travels with ``layer`` (:mod:`terrain.layers`), if any."""
+    text = (f"Error model: {result.model.describe()}, vertical units "
+            f"{short_unit(result.dem.vertical_units)}; {result.n} realisations, seed "
+            f"{result.params.get('seed')}.")
+    note = spec(layer).note if layer else ""
+    if note:
+        text += f" The {' '.join(spec(layer).name.split('_{id}')[0].split('_'))} layer {note}."
+    return text
 
-    if min(dem.shape) < 2:  # no gradient on a single row or column: flat grey
-        return np.full(dem.shape, 0.5)
-    w, h = dem.cell_metres()
-    z = np.where(dem.nodata, np.nanmean(dem.z), dem.z).astype(np.float64)
-    ls = LightSource(azdeg=azimuth, altdeg=altitude)
-    return ls.hillshade(z, vert_exag=1.0, dx=float(np.mean(w)), dy=float(np.mean(h)))
+
+def bar_label(name: str, vertical_units: str | None, weight: str = "persistence") -> str:
+    """A colour-bar label in words: the layer's description and its units."""
+    s = spec(name)
+    what = " ".join(s.name.split("_{id}")[0].split("_"))
+    if s.unit == "probability":
+        return f"{what}: {s.description}"
+    u = units(name, vertical_units, weight)
+    return f"{s.description} ({short_unit(u) if u != 'count' else 'count'})"
 
 
-def _nice(x: float) -> float:
-    e = 10 ** math.floor(math.log10(x))
-    for m in (1, 2, 5, 10):
-        if m * e >= x:
-            return m * e
-    return 10 * e
+def figure_text(v: float) -> str:
+    """A figure (prominence, depth) to three significant digits."""
+    if not np.isfinite(v):
+        return "-"
+    return f"{v:.0f}" if abs(v) >= 100 else f"{v:.3g}"
+
+
+def share_text(p: float) -> str:
+    """A probability as a percentage, with <1% and >99% kept apart from 0 and 1."""
+    if p <= 0:
+        return "0%"
+    if p >= 1:
+        return "100%"
+    if p < 0.01:
+        return "<1%"
+    return ">99%" if p > 0.99 else f"{p:.0%}"
 
 
 def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: float = 0.01,
-              polygons=None, labels=None, outlets=None, cmap: str = "magma_r",
-              vmax: float | None = None, show: np.ndarray | None = None, contours=None):
-    """A map a person can read at a glance.
+              polygons=None, labels=None, outlets=None, cmap=None, vmax: float | None = None,
+              show: np.ndarray | None = None, contours=None, footer: str = "",
+              caution: str = CAUTION) -> Figure:
+    """A map of any one layer in the shared design.
 
     Parameters
     ----------
     dem : Dem
     layer : (rows, cols) array
-        Drawn over the hillshade where it is at least ``frac`` of its maximum.
+        Drawn over the hillshade where it is at least ``frac`` of ``vmax``
+        (default: its maximum).
     title, units : str
         Title and colour-bar label.
     polygons : sequence of shapely geometries, optional
-        Feature outlines.
+        Outlines (legend: "features").
     labels : sequence of (x, y, text), optional
-        Text placed at the given CRS coordinates.
+        Labels placed without overlap near the given CRS coordinates.
     outlets : sequence of (x, y, text), optional
-        Marked with a triangle.
+        Marked with a triangle and labelled.
+    cmap : colour map or name, optional
+        Default: the ``summits`` palette.
     show : (rows, cols) bool array, optional
-        Draw the layer only where True (e.g. inside features).
+        Draw the layer only where True.
     contours : sequence of (array, levels, label), optional
-        Contour lines of further layers (e.g. membership probabilities).
+        Contour lines of further layers, one colour each.
+    footer, caution : str
+        The footer's first line(s) and the caution below them.
 
     Returns
     -------
     matplotlib.figure.Figure
     """
+    frame = MapFrame(dem, title=title, subtitle="", footer=footer, caution=caution)
+    v = np.asarray(layer, np.float64)
+    top = vmax if vmax is not None else (float(np.nanmax(v)) if np.isfinite(v).any() else 0.0)
+    frame.layer(v, cmap=_colour_map(cmap),
+                label=units, vmax=vmax, hide=None if show is None else ~np.asarray(show, bool),
+                floor=frac * top if top > 0 else 0.0)
+    for n, (arr, levels, name) in enumerate(contours or []):
+        frame.contours(arr, levels, colour=OUTLINE_COLOURS[n % len(OUTLINE_COLOURS)],
+                       label=str(name), styles=_level_styles(levels))
+    frame.polygons(polygons or [], colour=INK, label="features")
+    _outlets(frame, outlets or [])
+    for x, y, text in labels or []:
+        frame.label(x, y, text)
+    return frame.figure()
+
+
+def _colour_map(cmap):
+    """One of our palettes by name, any matplotlib colour map by name, or as given."""
+    import matplotlib
+
+    if cmap is None or cmap in PALETTES:
+        return palette(cmap or "summits")
+    return matplotlib.colormaps[cmap] if isinstance(cmap, str) else cmap
+
+
+def _level_styles(levels) -> tuple:
+    return tuple("dashed" if lev >= 0.9 else "dotted" if lev < 0.5 else "solid" for lev in levels)
+
+
+def _outlets(frame: MapFrame, outlets) -> None:
+    if outlets:
+        xs, ys, names = zip(*outlets)
+        frame.points(xs, ys, marker="v", face="white", label="outlet, as given", size=9)
+        for x, y, name in outlets:
+            frame.label(x, y, str(name))
+
+
+def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
+    """The quick-look of a peaks or depressions run.
+
+    Peaks: summit probability; depressions: ponding probability with its 50%
+    contour outside the features. Over it, each feature's polygon (where the
+    top is / the ponded extent), a marker at its most credited summit or pit
+    cell and another at its most credited key col or spill point; labels
+    (#id, expected figure, P(ranks first)) on at most :data:`LABELLED`
+    features, the largest by expected figure among those counted in at least
+    :data:`LABEL_PRESENCE` of realisations.
+    """
+    dem, job, table = result.dem, result.job, features.table
+    kind = _KIND[job.kind]
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.vertical_units, job.weight))
+    sub = (f"labels: #id, expected {kind['figure']}, P(ranks first) - the {LABELLED} largest "
+           f"features counted in at least {LABEL_PRESENCE:.0%} of realisations")
+    main = layer_name(job.kind, kind["main"])
+    frame = MapFrame(dem, title=kind["title"], subtitle=sub, footer=run_footer(result, main),
+                     caution=CAUTION)
+    values = result.layers[main][0]
+    inside = np.isin(features.regions.labels, table["feature_id"].to_numpy())
+    if job.kind == "peaks":  # elsewhere, single noise summits would speckle the whole map
+        values = np.where(features.top > 0, values, 0.0)
+        vmax, note = _round_up(float(np.nanmax(values, initial=0.0))), ", where the tops are"
+    else:
+        vmax, note = 1.0, f"; clear under {PONDING_FLOOR:.0%}"
+    frame.layer(values, cmap=palette(kind["palette"]), vmax=vmax, sqrt=kind["sqrt"],
+                label=bar_label(main, dem.vertical_units) + note,
+                floor=0.0 if job.kind == "peaks" else PONDING_FLOOR)
+    if job.kind == "depressions":
+        frame.contours(np.where(inside, np.nan, values), [0.5], colour=INK,
+                       label="ponded in 50% of realisations, outside the features",
+                       styles=("dashed",), widths=(1.0,))
+    geoms = features.frames[LAYER_NAMES[job.kind][0]].geometry
+    if job.kind == "peaks":  # a top's cells are scattered: outline them together
+        geoms = [g.buffer(ENVELOPE_CELLS * max(dem.cellsize)) if g is not None else None
+                 for g in geoms]
+    frame.polygons(geoms, colour=kind["accent"], label=kind["polygons"])
+    d = "col" if job.kind == "peaks" else "spill"
+    size = 8.0 if len(table) <= 40 else 6.0 if len(table) <= 150 else 4.5  # crowded: smaller
+    frame.points(table["x"], table["y"], marker=kind["birth"][0], face="white",
+                 label=kind["birth"][1], size=size)
+    frame.points(table[f"{d}_x"], table[f"{d}_y"], marker=kind["death"][0], face=kind["accent"],
+                 label=kind["death"][1], size=size * 0.75)
+    shown = table[table["p_above"] >= LABEL_PRESENCE].sort_values("rank", kind="stable")
+    frame.unplaced = "No room on the map to label {names}: see ranking.png and the table."
+    for row in shown.head(LABELLED).itertuples():
+        frame.label(row.x, row.y, f"#{row.feature_id} {figure_text(row.expected)} {unit} · "
+                                  f"first {share_text(row.p_first)}", name=f"#{row.feature_id}")
+    return frame.figure()
+
+
+def _round_up(x: float) -> float:
+    """The smallest of 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1 at least ``x`` (probabilities)."""
+    for step in (0.01, 0.02, 0.05, 0.1, 0.2, 0.5):
+        if x <= step:
+            return step
+    return 1.0
+
+
+def catchment_map(result: RunResult) -> Figure:
+    """The quick-look of a catchment run.
+
+    With outlets: the divide layer in colour, each outlet's sub-catchment
+    outlined where it holds in at least 50% (solid) and 90% (dashed) of
+    realisations, one colour per outlet, outlets marked as given and
+    labelled. Without outlets: channel probability. Layers are found by their
+    role in :mod:`terrain.layers`.
+    """
+    job, dem = result.job, result.dem
+    how = f"{job.conditioning}, D{job.connectivity}"
+    if not job.ids:
+        main = layer_name("catchments", "channel")
+        frame = MapFrame(dem, title="Channels: where the drainage area reaches the channel area",
+                         subtitle=f"drainage area >= {job.channel_area:g} m²; {how}",
+                         footer=run_footer(result, main), caution=CAUTION)
+        frame.layer(result.layers[main][0], cmap=palette("water"), vmax=1.0, floor=DIVIDE_FLOOR,
+                    label=bar_label(main, dem.vertical_units) + f"; clear under {DIVIDE_FLOOR:.0%}")
+        return frame.figure()
+    main = layer_name("catchments", "divide")
+    sub = LAYERS[layer_name("catchments", "subcatchment")]
+    frame = MapFrame(dem, title="Sub-catchments: where each outlet's share holds, and where the "
+                                "divides run",
+                     subtitle="outlines: cells whose first chosen outlet downstream is this one in "
+                              f"at least 50% (solid) and 90% (dashed) of realisations; {how}",
+                     footer=run_footer(result, main), caution=CAUTION)
+    frame.layer(result.layers[main][0], cmap=palette("divides"), vmax=1.0, floor=DIVIDE_FLOOR,
+                label=bar_label(main, dem.vertical_units) + f"; clear under {DIVIDE_FLOOR:.0%}")
+    drawn = False
+    for n, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
+        name = sub.concrete(lid)
+        if name in result.layers:
+            drawn |= frame.contours(result.layers[name][0], (0.5, 0.9),
+                                    colour=OUTLINE_COLOURS[n % len(OUTLINE_COLOURS)],
+                                    label=f"sub-catchment of outlet {short(oid, 24)}",
+                                    styles=("solid", "dashed"), widths=(1.8, 1.2))
+    if drawn:
+        frame.key("in at least 50% of realisations", ls="solid")
+        frame.key("in at least 90% of realisations", ls="dashed")
+    _outlets(frame, [(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)])
+    return frame.figure()
+
+
+def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
+    """Which feature is first, and how sure: the ranking chart of a peaks or
+    depressions run.
+
+    For the top :data:`RANKED` features by expected figure: on the left each
+    feature's 5-95% range over realisations as a bar, its expected value and
+    its value on the DEM as given; on the right P(rank = k) for k = 1..10
+    (``features.rank_share``), the probabilities written in the cells (blank
+    where the feature never ranked k-th).
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    rows, cols = dem.shape
-    a, _, c, _, e, f = dem.transform
-    extent = (c, c + a * cols, f + e * rows, f)
-    fig = Figure(figsize=(9, 9 * rows / cols * 0.88 + 1.1), dpi=110)
-    ax = fig.add_axes((0.08, 0.06, 0.76, 0.82))
-    cax = fig.add_axes((0.87, 0.2, 0.025, 0.6))
-    ax.imshow(hillshade(dem), cmap="gray", extent=extent, vmin=0, vmax=1, interpolation="bilinear")
-    _draw_layer(fig, ax, cax, dem, layer, extent, frac=frac, vmax=vmax, show=show, cmap=cmap,
-                units=units)
-    _draw_contours(ax, dem, contours or [], extent)
-    _draw_outlines(ax, polygons or [])
-    _draw_labels(ax, labels or [], outlets or [], extent)
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
-    ax.set_title(title, fontsize=10, pad=10)
-    ax.ticklabel_format(useOffset=False, style="plain")
-    ax.tick_params(labelsize=7)
-    _scale_bar(ax, dem, extent)
-    _north_arrow(ax)
+    job, table = result.job, features.table
+    kind = _KIND[job.kind]
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.vertical_units,
+                            job.weight))
+    rows = table.sort_values("rank", kind="stable").head(RANKED)
+    n = max(len(rows), 1)
+    share = features.rank_share
+    kmax = share.shape[1] if share is not None and share.shape[1] else 1
+    fig = Figure(figsize=(11.0, max(4.4, 2.6 + 0.4 * n)), dpi=CHART_DPI, layout="constrained")
+    FigureCanvasAgg(fig)
+    if rows.empty:
+        ax = fig.subplots()
+        ax.set_axis_off()
+        ax.text(0.5, 0.5, f"No {kind['feature']} feature was counted in at least "
+                          f"{job.min_presence:.0%} of realisations.", ha="center",
+                fontsize=FONT_PT + 1, transform=ax.transAxes)
+    else:
+        left, right = fig.subplots(1, 2, sharey=True,
+                                   gridspec_kw=dict(width_ratios=[1.0, max(0.4, 0.08 * kmax)]))
+        _ranges(left, rows, kind, unit)
+        _rank_matrix(right, rows, share, kmax, kind)
+        left.set_ylim(n - 0.5, -0.5)
+    fig.suptitle(f"Which {kind['feature']} ranks first, and how sure? The {len(rows)} largest of "
+                 f"{len(table)} features by expected {kind['figure']}",
+                 fontsize=FONT_PT + 3, weight="bold")
+    fig.supxlabel("\n".join(textwrap.wrap(run_footer(result), 150) + textwrap.wrap(CAUTION, 150)),
+                  fontsize=FONT_PT, color="0.25")
     return fig
 
 
-def _draw_layer(fig, ax, cax, dem, layer, extent, *, frac, vmax, show, cmap, units):
-    from matplotlib.colors import PowerNorm
-
-    v = np.where(dem.nodata, np.nan, layer).astype(np.float64)
-    top = vmax if vmax is not None else (np.nanmax(v) if np.isfinite(v).any() else 1.0)
-    hide = ~(v >= frac * top) | ~(v > 0)
-    if show is not None:
-        hide |= ~show
-    # square-root colour scale: small credit stays visible beside a dominant feature
-    im = ax.imshow(np.ma.masked_where(hide, v), cmap=cmap, extent=extent, alpha=0.85,
-                   interpolation="nearest", norm=PowerNorm(0.5, vmin=0, vmax=top if top > 0 else 1))
-    fig.colorbar(im, cax=cax).set_label(units + " (square-root scale)")
+CHART_DPI = 110
 
 
-_CONTOUR_STYLE = {0.1: ("dotted", 0.8), 0.5: ("solid", 1.6), 0.9: ("dashed", 1.0)}
+def _ranges(ax, rows, kind, unit) -> None:
+    """The left panel: 5-95% bars, expected and unperturbed markers, and their legend."""
+    y = np.arange(len(rows))
+    colour = palette(kind["palette"])(0.45)
+    p05, p95 = rows["p05"].to_numpy(float), rows["p95"].to_numpy(float)
+    bars = ax.hlines(y, p05, p95, color=colour, lw=8, label="5-95% of realisations")
+    mean, = ax.plot(rows["expected"], y, ls="none", marker="o", ms=7, mfc=INK, mec="white",
+                    label="expected (mean)")
+    given, = ax.plot(rows["unperturbed"], y, ls="none", marker="D", ms=7, mfc="none",
+                     mec=kind["accent"], mew=1.8, label="on the DEM as given")
+    values = np.r_[p05, p95, rows["unperturbed"].to_numpy(float)]
+    positive = values[values > 0]
+    log = bool(positive.size) and positive.max() / positive.min() > 20
+    if log:
+        from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
+
+        ax.set_xscale("log")
+        ax.set_xlim(positive.min() / 1.4, positive.max() * 1.4)
+        ax.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+        ax.xaxis.set_minor_locator(NullLocator())
+    ax.set_xlabel(f"{kind['figure']} ({unit}{', log scale' if log else ''})", fontsize=FONT_PT + 1)
+    ax.set_yticks(y, [f"#{i}" for i in rows["feature_id"]])
+    ax.tick_params(labelsize=FONT_PT)
+    ax.tick_params(which="minor", axis="y", length=0)
+    ax.grid(axis="x", alpha=0.3)
+    ax.legend(handles=[bars, mean, given], loc="lower left", bbox_to_anchor=(0.0, 1.01), ncols=3,
+              fontsize=FONT_PT, frameon=False, borderaxespad=0.0)
 
 
-def _draw_contours(ax, dem, contours, extent):
-    colours = ["#e76f51", "#2a9d8f", "#e9c46a", "#264653", "#f4a261", "#8338ec"]
-    for n, (arr, levels, label) in enumerate(contours if min(dem.shape) >= 2 else []):
-        a_ = np.where(dem.nodata, np.nan, arr)
-        if np.nanmax(a_) >= min(levels):
-            style = [_CONTOUR_STYLE.get(v, ("solid", 1.0)) for v in levels]
-            cs = ax.contour(a_, levels=levels, extent=extent,
-                            origin="upper", colors=colours[n % len(colours)],
-                            linewidths=[w for _, w in style], linestyles=[s for s, _ in style])
-            ax.clabel(cs, fmt=lambda v, label=label: f"{label} {v:.0%}", fontsize=7)
+def _rank_matrix(ax, rows, share, kmax, kind) -> None:
+    """The right panel: P(rank = k), written in the cells."""
+    from matplotlib.colors import Normalize
 
-
-def _draw_outlines(ax, polygons):
-    for geom in polygons:
-        if geom is None:
-            continue
-        for g in getattr(geom, "geoms", [geom]):
-            x, y = g.exterior.xy
-            ax.plot(x, y, color="#00b4d8", lw=1.0)
-
-
-def _draw_labels(ax, labels, outlets, extent):
-    near_top = extent[3] - 0.06 * (extent[3] - extent[2])
-    near_right = extent[1] - 0.2 * (extent[1] - extent[0])
-    for x, y, text in labels:
-        off = (6 if x < near_right else -6, -12 if y > near_top else 6)
-        ax.annotate(text, (x, y), xytext=off, textcoords="offset points", fontsize=7.5,
-                    ha="left" if off[0] > 0 else "right", annotation_clip=True,
-                    color="black", bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="none",
-                                             alpha=0.8))
-    for x, y, text in outlets:
-        ax.plot([x], [y], marker="v", color="#0077b6", ms=9, mec="white")
-        ax.annotate(text, (x, y), xytext=(6, -12), textcoords="offset points", fontsize=8,
-                    color="#0077b6", weight="bold")
-
-
-def feature_map(result, features):
-    """The quick-look of a peaks or depressions run: its summit/pit credit over
-    a hillshade, feature outlines and the top features labelled."""
-    dem, job = result.dem, result.job
-    main = layer_name(job.kind, "birth_credit")
-    unit = units(main, dem.vertical_units, job.weight)
-    figure = "prominence" if job.kind == "peaks" else "depth"
-    table = features.table
-    order = np.arange(min(len(table), 12))
-    labels = [(table["x"].iloc[i], table["y"].iloc[i],
-               f"#{table['feature_id'].iloc[i]} {table['expected'].iloc[i]:.1f} · "
-               f"p₁ {table['p_first'].iloc[i]:.2f}") for i in order]
-    poly = next(iter(features.frames.values())).geometry.tolist()
-    title = (f"{main.replace('_', ' ')} — {result.n} realisations, error "
-             f"{result.model.describe()}\nlabels: #id, expected {figure} ({unit}), "
-             "p₁ = probability of ranking first")
-    return quicklook(dem, result.layers[main][0], title=title,
-                     units=f"{main.replace('_', ' ')} ({unit})", polygons=poly, labels=labels,
-                     show=np.isin(features.regions.labels, table["feature_id"].to_numpy()))
-
-
-def catchment_map(result):
-    """The quick-look of a catchment run: divide probability with each outlet's
-    sub-catchment outlined where it holds in 50% (solid) and 90% (dashed) of
-    realisations, outlets marked; without outlets, channel probability."""
-    job, dem = result.job, result.dem
-    what = f"{result.n} realisations, error {result.model.describe()}, {job.conditioning}, " \
-           f"D{job.connectivity}"
-    if not job.ids:
-        name = layer_name("catchments", "channel")
-        return quicklook(dem, result.layers[name][0], vmax=1.0, cmap="Blues",
-                         units="channel probability",
-                         title=f"channel probability (drainage area >= {job.channel_area:g} m²)"
-                               f"\n{what}")
-    sub = LAYERS[layer_name("catchments", "subcatchment")]
-    contours = [(result.layers[sub.concrete(lid)][0], [0.5, 0.9], short(oid, 24))
-                for oid, lid in zip(job.ids, job.layer_ids)]
-    return quicklook(dem, result.layers[layer_name("catchments", "divide")][0],
-                     title=f"divide probability; sub-catchments held in 50% (solid) and 90% "
-                           f"(dashed) of realisations\n{what}",
-                     units="divide probability", cmap="Purples", contours=contours,
-                     outlets=[(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)],
-                     vmax=1.0)
-
-
-def _scale_bar(ax, dem: Dem, extent) -> None:
-    w_m, _ = dem.cell_metres()
-    m_per_unit = float(np.mean(w_m)) / dem.cellsize[0]
-    width_units = extent[1] - extent[0]
-    length_m = _nice(width_units * m_per_unit / 5)
-    length_units = length_m / m_per_unit
-    x0 = extent[0] + 0.05 * width_units
-    y0 = extent[2] + 0.05 * (extent[3] - extent[2])
-    ax.plot([x0, x0 + length_units], [y0, y0], color="black", lw=4, solid_capstyle="butt")
-    ax.plot([x0, x0 + length_units], [y0, y0], color="white", lw=2, solid_capstyle="butt")
-    label = f"{length_m / 1000:g} km" if length_m >= 1000 else f"{length_m:g} m"
-    if dem.crs is None:
-        label = f"{length_units:g} cell units"
-    ax.text(x0 + length_units / 2, y0, label + "\n", ha="center", va="bottom", fontsize=8,
-            bbox=dict(fc="white", ec="none", alpha=0.7, pad=1))
-
-
-def _north_arrow(ax) -> None:
-    ax.annotate("N", xy=(0.95, 0.95), xytext=(0.95, 0.85), xycoords="axes fraction",
-                ha="center", va="center", fontsize=11, weight="bold",
-                arrowprops=dict(facecolor="black", width=3, headwidth=10))
+    ids = rows["feature_id"].to_numpy()
+    m = share.reindex(ids).to_numpy(float) if share is not None else np.zeros((len(ids), kmax))
+    cmap, norm = palette(kind["palette"]), Normalize(0.0, 1.0)
+    ax.imshow(np.ma.masked_where(m <= 0, m), cmap=cmap, norm=norm, aspect="auto",
+              interpolation="nearest", extent=(0.5, kmax + 0.5, len(ids) - 0.5, -0.5))
+    for i, row in enumerate(m):
+        for k, p in enumerate(row):
+            if p > 0:
+                r_, g_, b_, _ = cmap(norm(p))
+                dark = 0.2126 * r_ + 0.7152 * g_ + 0.0722 * b_ < 0.5  # relative luminance
+                ax.text(k + 1, i, "<.01" if p < 0.005 else f"{p:.2f}", ha="center", va="center",
+                        fontsize=FONT_PT, color="white" if dark else INK,
+                        gid=f"p_rank_{ids[i]}_{k + 1}")
+    ax.set_xticks(np.arange(1, kmax + 1))
+    ax.set_xticks(np.arange(0.5, kmax + 1), minor=True)
+    ax.set_yticks(np.arange(-0.5, len(ids)), minor=True)
+    ax.grid(which="minor", color="0.85", lw=0.8)
+    ax.tick_params(which="both", length=0, labelsize=FONT_PT)
+    ax.xaxis.set_ticks_position("top")
+    ax.xaxis.set_label_position("top")
+    label = "P(rank = k): share of realisations in which the feature ranks k-th"
+    ax.set_xlabel("\n".join(textwrap.wrap(label, max(24, 6 * kmax))), fontsize=FONT_PT + 1)
+    ax.set_xlim(0.5, kmax + 0.5)
 
 
 SWEEP_STATISTICS = (("credit_share", "credit_share_se", "share of total credit"),

@@ -28,16 +28,12 @@ from ..summary.features import COLUMN_KINDS
 from ..sweep import SENSITIVITY_COLUMN_KINDS, SWEEP_COLUMN_KINDS
 from ..version import __version__
 from . import plot
+from .caution import CAUTION
 from .manifest import MANIFEST, VECTOR_LAYERS
 from .tables import rounded
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
            "vector_descriptions"]
-
-CAUTION = ("Caution: cairn's layers are analysis aids, not engineering design or official flood "
-           "mapping; do not use them alone to decide flood extents, drainage design or anything "
-           "that can hurt someone; defer to local codes, official flood maps and licensed "
-           "professionals.")
 
 
 def _now():
@@ -135,7 +131,8 @@ def vector_descriptions(result, names, *, note: str = "") -> dict:
 
 def write_credit_run(outdir: str | Path, result, features, *, input_path: str | None,
                      command_line: str | None = None) -> None:
-    """Write a peaks or depressions run: layers, feature tables, quick-look, run.json.
+    """Write a peaks or depressions run: layers, feature tables, quick-look, ranking chart,
+    run.json.
 
     ``features`` is a :class:`terrain.summary.features.FeatureSummary`.
     """
@@ -151,6 +148,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
         write_csv(out / csv, rounded(features.table, COLUMN_KINDS, geographic=result.dem.geographic))
     with clock("figures"):
         write_figure(out / "quicklook.png", plot.feature_map(result, features))
+        write_figure(out / "ranking.png", plot.ranking_chart(result, features))
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**result.job.describe(), "features": features.settings})
     run.update({"features": int(len(features.table)),

@@ -28,12 +28,13 @@ from ..engine.persistence import count_ponding, pits_and_levels
 from ..jobs.credit import log_weights, region_figures
 from ..layers import layer_name
 
-__all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE",
-           "FeatureSummary", "FigureMatrix", "figure_matrix", "summarise_features",
+__all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE", "RANKS",
+           "FeatureSummary", "FigureMatrix", "figure_matrix", "rank_shares", "summarise_features",
            "region_polygons", "unperturbed_ponding"]
 
 TOP_SHARE = 0.9  # "where the top is": the fewest cells holding 90% of a summit's births
 PONDED_SHARE = 0.5  # the ponded extent: cells ponded in at least half the realisations
+RANKS = 10  # rank_shares: P(rank = k) for k = 1..RANKS
 
 _COMMON = ("feature_id", "rank", "unperturbed", "expected", "p05", "p50", "p95", "se",
            "p_above", "p_above_se", "p_first", "p_first_se", "expected_rank", "x", "y", "elevation")
@@ -68,8 +69,8 @@ COLUMN_KINDS = {
     "ponded_area_p05_m2": "area", "ponded_area_p95_m2": "area", "volume_m3": "volume",
     "volume_mean_m3": "volume", "volume_p05_m3": "volume", "volume_p95_m3": "volume",
 }
-LAYER_NAMES = {"peaks": ("summits", "summit_points", "summit_regions"),
-               "depressions": ("pits", "pit_points", "pit_regions")}
+LAYER_NAMES = {"peaks": ("summits", "summit_points", "summit_regions", "cols"),
+               "depressions": ("pits", "pit_points", "pit_regions", "spill_points")}
 _DEATH = {"peaks": "col", "depressions": "spill"}
 
 
@@ -129,6 +130,9 @@ class FeatureSummary:
         ponded extent (depressions) it belongs to; 0 elsewhere.
     settings : dict
         The rules that made the rows (recorded in run.json).
+    rank_share : pandas.DataFrame, optional
+        P(rank = k) per feature (rows by ``feature_id``, in table order) and
+        rank k = 1.. (columns), from :func:`rank_shares`.
     """
 
     regions: object
@@ -136,6 +140,7 @@ class FeatureSummary:
     frames: dict
     top: np.ndarray
     settings: dict
+    rank_share: pd.DataFrame | None = None
 
 
 def _mc(share: np.ndarray, n: int) -> np.ndarray:
@@ -160,13 +165,14 @@ def _figure_columns(fm: FigureMatrix, cols: np.ndarray, n: int) -> dict:
 
 
 def _most_credited_deaths(log: dict, ids: np.ndarray, n_cells: int):
-    """Per region in ``ids``: the death cell credited most, and its mean elevation."""
+    """Per region in ``ids``: the death cell credited most, its mean elevation, and its
+    share of the region's death credit (NaN where no pair born in it ever died)."""
     keep = (log["region"] > 0) & (log["death"] >= 0)
     reg = log["region"][keep].astype(np.int64)
     death = log["death"][keep].astype(np.int64)
     w = log_weights({k: log[k][keep] for k in ("birth", "birth_value", "death_value")})
     cell = np.full(ids.size, -1, np.int64)
-    elev = np.full(ids.size, np.nan)
+    elev, share = np.full(ids.size, np.nan), np.full(ids.size, np.nan)
     if reg.size:
         uk, inv = np.unique(reg * n_cells + death, return_inverse=True)
         wsum = np.bincount(inv, weights=w)
@@ -181,7 +187,9 @@ def _most_credited_deaths(log: dict, ids: np.ndarray, n_cells: int):
         ok = (pos < ids.size) & (ids[np.minimum(pos, ids.size - 1)] == ur[sel])
         cell[pos[ok]] = uk[sel][ok] % n_cells
         elev[pos[ok]] = vsum[sel][ok] / cnt[sel][ok]
-    return cell, elev
+        total = np.bincount(np.searchsorted(ur[sel], ur), weights=wsum)
+        share[pos[ok]] = wsum[sel][ok] / total[ok]
+    return cell, elev, share
 
 
 def _xy(dem: Dem, cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -278,12 +286,12 @@ def _table(result, fm: FigureMatrix, rows: np.ndarray) -> pd.DataFrame:
     best = np.asarray(ndimage.maximum_position(credit, labels, index=ids), np.int64).reshape(-1, 2)
     best = best[:, 0] * dem.shape[1] + best[:, 1] if ids.size else np.zeros(0, np.int64)
     bx, by = _xy(dem, best)
-    dcell, delev = _most_credited_deaths(result.log, ids, dem.z.size)
+    dcell, delev, dshare = _most_credited_deaths(result.log, ids, dem.z.size)
     dx, dy = _xy(dem, dcell)
     d = _DEATH[job.kind]
     data = {"feature_id": ids, **cols, "x": bx, "y": by,
             "elevation": dem.z.reshape(-1)[best].astype(np.float64),
-            f"{d}_x": dx, f"{d}_y": dy, f"{d}_elevation": delev,
+            f"{d}_x": dx, f"{d}_y": dy, f"{d}_elevation": delev, f"{d}_share": dshare,
             **_unperturbed(dem, job, ids), "region_area_m2": _areas(dem, labels, ids)}
     if job.kind == "depressions":
         data.update(_pond_columns(result, ids))
@@ -301,6 +309,7 @@ def summarise_features(result) -> FeatureSummary:
     rows = np.flatnonzero(p_above >= job.min_presence)
     data = _table(result, fm, rows)
     ids = data["feature_id"]
+    share = dict(zip(ids.tolist(), data.pop(f"{_DEATH[job.kind]}_share")))
     if job.kind == "peaks":
         top = _top_cells(result.log, job.regions.labels, ids)
         data["top_area_m2"] = _areas(dem, top, ids)
@@ -313,7 +322,29 @@ def summarise_features(result) -> FeatureSummary:
                 "top_share": TOP_SHARE if job.kind == "peaks" else None,
                 "ponded_share": PONDED_SHARE if job.kind == "depressions" else None,
                 "regions": len(job.regions), "features": len(table)}
-    return FeatureSummary(job.regions, table, _frames(dem, job, table, top), top, settings)
+    frames = _frames(dem, job, table, top, table["feature_id"].map(share).to_numpy(float))
+    ranked = rank_shares(fm, table["feature_id"].to_numpy(), min(RANKS, max(fm.ids.size, 1)))
+    return FeatureSummary(job.regions, table, frames, top, settings, ranked)
+
+
+def rank_shares(fm: FigureMatrix, ids: np.ndarray, kmax: int = RANKS) -> pd.DataFrame:
+    """P(rank = k) of each region in ``ids`` for k = 1..``kmax``: the share of
+    realisations in which the region is counted and exactly k - 1 regions have
+    a larger figure (regions tied at the top all rank first).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index ``feature_id`` (in the order of ``ids``), columns 1..kmax.
+    """
+    ids = np.asarray(ids, np.int64)
+    out = np.zeros((ids.size, kmax))
+    if ids.size and fm.figure.shape[0]:
+        cols = np.searchsorted(fm.ids, ids)
+        ranks = np.where(fm.present[:, cols], fm.ranks()[:, cols], 0)
+        for k in range(1, kmax + 1):
+            out[:, k - 1] = (ranks == k).mean(axis=0)
+    return pd.DataFrame(out, index=pd.Index(ids, name="feature_id"), columns=range(1, kmax + 1))
 
 
 def region_polygons(dem: Dem, labels: np.ndarray, ids, *, connectivity: int = 8) -> list:
@@ -334,7 +365,10 @@ def region_polygons(dem: Dem, labels: np.ndarray, ids, *, connectivity: int = 8)
     return [unary_union(p) if p else None for p in parts]
 
 
-def _frames(dem: Dem, job, table: pd.DataFrame, top: np.ndarray) -> dict:
+def _frames(dem: Dem, job, table: pd.DataFrame, top: np.ndarray, share: np.ndarray) -> dict:
+    """The GeoPackage layers (:data:`LAYER_NAMES`): the polygons and the points of
+    the table's rows, and a point layer of each feature's most credited key col /
+    spill point (``share``: its share of the feature's col / spill credit)."""
     import geopandas as gpd
     from shapely.geometry import Point
 
@@ -342,7 +376,14 @@ def _frames(dem: Dem, job, table: pd.DataFrame, top: np.ndarray) -> dict:
     tops = region_polygons(dem, top, ids, connectivity=job.connectivity)
     whole = region_polygons(dem, job.regions.labels, ids, connectivity=job.connectivity)
     points = [Point(x, y) for x, y in zip(table["x"], table["y"])]
-    top_name, point_name, region_name = LAYER_NAMES[job.kind]
+    top_name, point_name, region_name, death_name = LAYER_NAMES[job.kind]
+    d = _DEATH[job.kind]
+    has = (np.isfinite(table[f"{d}_x"]) & np.isfinite(share)).to_numpy()
+    deaths = pd.DataFrame({"feature_id": ids[has], "rank": table["rank"].to_numpy()[has],
+                           f"{d}_share": share[has],
+                           f"{d}_elevation": table[f"{d}_elevation"].to_numpy()[has]})
+    at = [Point(x, y) for x, y in zip(table[f"{d}_x"][has], table[f"{d}_y"][has])]
     return {top_name: gpd.GeoDataFrame(table, geometry=tops, crs=dem.crs),
             point_name: gpd.GeoDataFrame(table, geometry=points, crs=dem.crs),
-            region_name: gpd.GeoDataFrame(table, geometry=whole, crs=dem.crs)}
+            region_name: gpd.GeoDataFrame(table, geometry=whole, crs=dem.crs),
+            death_name: gpd.GeoDataFrame(deaths, geometry=at, crs=dem.crs)}

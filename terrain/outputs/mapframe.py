@@ -1,0 +1,646 @@
+"""One design for every quick-look map: the map frame.
+
+A :class:`MapFrame` draws a map of one DEM the same way for every command:
+
+- a hillshade base (nodata filled from the nearest valid cell before shading,
+  so its edges make no false cliffs), with nodata cells masked and shown as
+  such, hatched, with a legend entry;
+- the command's main layer on top, with a colour bar whose label says what
+  the layer is and its units in words;
+- aspect correct for geographic CRSs (a degree of longitude drawn
+  ``cos(latitude)`` times as long as a degree of latitude), a scale bar of a
+  round length, and a north arrow only when the grid is north-up in a known
+  CRS;
+- polygons, points and contour lines, each with a legend entry (the legend
+  names every symbol and colour drawn);
+- labels placed by adjustText so that they overlap neither each other nor
+  any marker, with leader lines where a label had to move; a label that the
+  placement could not clear is left out (its marker stays);
+- a title, and a footer with the error model, the realisation count and the
+  caution; fonts of at least 9 pt at the saved size, laid out tightly.
+
+Memory: rasters with more than :data:`MAX_PIXELS` cells a side are pooled in
+blocks before drawing (elevations by mean, layers by maximum so single cells
+stay visible), so a finished map holds a few float64 arrays of at most
+``MAX_PIXELS`` squared cells whatever the DEM's size; while a layer is
+pooled, one float64 copy of it on the DEM's grid exists for a moment (8
+bytes per cell; the hillshade of a DEM with nodata adds 16 for the nearest-
+cell indices).
+
+Colour maps are slices of matplotlib's perceptually uniform maps, each
+running from light to dark, so they read in greyscale and by colour-blind
+readers (matplotlib's maps were designed for both; van der Walt & Smith,
+"A Better Default Colormap for Matplotlib", SciPy 2015; Nuñez, Anderton &
+Renslow, "Optimizing colormaps with consideration for color vision
+deficiency", PLoS ONE 13, 2018, for ``cividis``).
+"""
+
+from __future__ import annotations
+
+import math
+import textwrap
+import warnings
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from ..dem import Dem, metres_per_degree
+
+if TYPE_CHECKING:
+    from matplotlib.axes import Axes
+    from matplotlib.colors import Colormap
+    from matplotlib.figure import Figure
+
+__all__ = ["MapFrame", "PALETTES", "OUTLINE_COLOURS", "INK", "palette", "hillshade", "nice_length",
+           "short_unit", "boxes_overlap", "place_labels", "FONT_PT", "DPI"]
+
+FONT_PT = 9.0  # the smallest text on any figure, at the saved size
+DPI = 120
+MAX_PIXELS = 1600  # cells a side drawn at most; larger rasters are pooled
+INK = "#1a1a1a"
+NODATA = "#ece6da"
+HALO_PT = 2.6
+WIDTH_IN = 10.0  # every map is this wide
+MAP_HEIGHT_IN = 8.5  # and its map at most this tall
+
+#: name -> (matplotlib map, start, end): light (low values) to dark (high values)
+PALETTES = {"summits": ("magma", 0.97, 0.22), "water": ("cividis", 0.97, 0.08),
+            "divides": ("viridis", 0.97, 0.12)}
+#: outline colours for catchments, told apart by lightness as well as hue
+OUTLINE_COLOURS = ("#1f5fa8", "#d1600a", "#6a3d9a", "#127a5c", "#b0124a", "#7a5c00",
+                   "#0092b8", "#505050")
+#: where a label starts in each placement (pixels right and up of its point, alignment) and
+#: where adjustText may move it: right of it, anywhere; labels that still overlap start left
+#: of it, above it moving only up, below it moving only down, then at the four diagonals,
+#: then further out
+LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center", "xy"),
+                (0.0, 9.0, "center", "bottom", "y+"), (0.0, -9.0, "center", "top", "y-"),
+                (8.0, -8.0, "left", "top", "xy"), (-8.0, -8.0, "right", "top", "xy"),
+                (8.0, 8.0, "left", "bottom", "xy"), (-8.0, 8.0, "right", "bottom", "xy"),
+                (0.0, -40.0, "center", "top", "y-"), (0.0, 40.0, "center", "bottom", "y+"))
+ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
+LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
+
+
+def palette(name: str) -> Colormap:
+    """A named colour map of :data:`PALETTES` (light = low, dark = high).
+
+    References
+    ----------
+    .. [1] van der Walt, S. & Smith, N. (2015). A Better Default Colormap for
+       Matplotlib. SciPy 2015 (the perceptually uniform maps sliced here).
+    """
+    import matplotlib
+    from matplotlib.colors import ListedColormap
+
+    base, start, end = PALETTES[name]
+    return ListedColormap(matplotlib.colormaps[base](np.linspace(start, end, 256)), name=name)
+
+
+def nice_length(x: float) -> float:
+    """The largest round length (1, 2 or 5 x 10^k) not above ``x`` (x > 0)."""
+    e = 10.0 ** math.floor(math.log10(x))
+    return max(m * e for m in (1, 2, 5) if m * e <= x * (1 + 1e-9))
+
+
+def short_unit(unit: str | None) -> str:
+    """A vertical unit as a reader writes it (``metre`` -> ``m``)."""
+    u = (unit or "").strip().lower()
+    return {"metre": "m", "meter": "m", "metres": "m", "meters": "m", "m": "m",
+            "foot": "ft", "feet": "ft", "ft": "ft", "us survey foot": "ft (US survey)"}.get(
+        u, unit or "DEM units")
+
+
+def _pool(a: np.ndarray, k: int, how) -> np.ndarray:
+    if k == 1:
+        return a
+    r, c = a.shape
+    pad = np.full((-(-r // k) * k, -(-c // k) * k), np.nan)
+    pad[:r, :c] = a
+    blocks = pad.reshape(pad.shape[0] // k, k, pad.shape[1] // k, k)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-nodata blocks
+        return how(blocks, axis=(1, 3))
+
+
+def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
+              k: int = 1) -> np.ndarray:
+    """Hillshade in [0, 1] (matplotlib's LightSource, cell sizes in metres).
+
+    Nodata cells take the elevation of the nearest valid cell before shading,
+    so the edges of nodata areas make no false cliffs; mask them when drawing.
+    ``k`` pools the DEM in k x k blocks first (mean).
+
+    References
+    ----------
+    .. [1] Horn, B. K. P. (1981). Hill shading and the reflectance map.
+       Proceedings of the IEEE 69(1) (the shading model; matplotlib's
+       ``LightSource.hillshade`` implements a Lambertian variant).
+    """
+    from matplotlib.colors import LightSource
+    from scipy import ndimage
+
+    z = dem.z.astype(np.float64)
+    if dem.nodata.any():
+        idx = ndimage.distance_transform_edt(dem.nodata, return_distances=False,
+                                             return_indices=True)
+        z = z[tuple(idx)]
+    z = _pool(z, k, np.nanmean)
+    if min(z.shape) < 2:  # no gradient on a single row or column: flat grey
+        return np.full(z.shape, 0.5)
+    w, h = dem.cell_metres()
+    ls = LightSource(azdeg=azimuth, altdeg=altitude)
+    return ls.hillshade(z, vert_exag=1.0, dx=float(np.mean(w)) * k, dy=float(np.mean(h)) * k)
+
+
+class MapFrame:
+    """A quick-look map of one DEM (see the module docstring).
+
+    Draw with :meth:`layer`, :meth:`polygons`, :meth:`points`,
+    :meth:`contours` and :meth:`label`, then take the finished figure from
+    :meth:`figure`.
+
+    Parameters
+    ----------
+    dem : Dem
+    title : str
+        What the map shows (one line, bold).
+    subtitle : str
+        How to read it (one or two lines, or empty).
+    footer : str
+        The error model and realisations line; the caution is added below it.
+    caution : str
+        The caution every output carries.
+    """
+
+    def __init__(self, dem: Dem, *, title: str, subtitle: str, footer: str, caution: str):
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
+
+        self.dem = dem
+        self.k = max(1, math.ceil(max(dem.shape) / MAX_PIXELS))
+        rows, cols = dem.shape
+        a, _, c, _, e, f = dem.transform
+        self.extent = (c, c + a * cols, f + e * rows, f)
+        k = self.k
+        self.view_extent = (c, c + a * k * -(-cols // k), f + e * k * -(-rows // k), f)
+        self.fig = Figure(figsize=(10, 10), dpi=DPI)
+        FigureCanvasAgg(self.fig)
+        self.ax = self.fig.add_axes((0.1, 0.1, 0.7, 0.7))
+        self.cax = None
+        self.title, self.subtitle, self.footer, self.caution = title, subtitle, footer, caution
+        self.handles: list = []
+        self.avoid: list[tuple[float, float, float]] = []  # (x, y, marker size in points)
+        self.texts: list[tuple[float, float, str]] = []
+        self.names: list[str] = []  # each label's short name, for the unplaced note
+        #: the footer's note when some labels find no room ({names}: their short names)
+        self.unplaced = "No room on the map to label {names}."
+        self._base()
+
+    # -- drawing ---------------------------------------------------------------------
+    def view(self, values: np.ndarray, *, how=np.nanmax) -> np.ndarray:
+        """``values`` on the drawn grid: nodata as NaN, pooled like the base."""
+        v = np.where(self.dem.nodata, np.nan, np.asarray(values, np.float64))
+        return _pool(v, self.k, how)
+
+    def _base(self) -> None:
+        ax, dem = self.ax, self.dem
+        nodata = _pool(dem.nodata.astype(np.float64), self.k, np.nanmin) > 0
+        shade = np.ma.masked_where(nodata, hillshade(dem, k=self.k))
+        ax.imshow(shade, cmap="gray", vmin=-0.45, vmax=1.05, extent=self.view_extent,
+                  interpolation="bilinear" if self.k == 1 else "nearest", gid="hillshade")
+        if nodata.any():
+            from matplotlib.patches import Patch
+
+            ax.set_facecolor(NODATA)  # under the hillshade's smoothed edge too
+            flat = np.ma.masked_where(~nodata, np.ones(nodata.shape))
+            ax.imshow(flat, cmap=_single(NODATA), vmin=0, vmax=1, extent=self.view_extent,
+                      interpolation="nearest", label="no data", gid="nodata")
+            if min(nodata.shape) >= 2:
+                ax.contourf(nodata.astype(float), levels=[0.5, 1.5], colors="none",
+                            hatches=["////"], extent=self.view_extent, origin="upper"
+                            ).set_label("no data")
+            self.handles.append(Patch(facecolor=NODATA, edgecolor="0.45", hatch="////",
+                                      label="no data"))
+        ax.set_xlim(self.extent[0], self.extent[1])
+        ax.set_ylim(self.extent[2], self.extent[3])
+        self._axes_style()
+
+    def _axes_style(self) -> None:
+        from matplotlib.ticker import MaxNLocator
+
+        ax, dem = self.ax, self.dem
+        if dem.geographic:
+            names = ("longitude (degrees)", "latitude (degrees)")
+        else:
+            unit = "m" if dem.linear_unit_m == 1.0 else "CRS units"
+            names = (f"easting ({unit})", f"northing ({unit})") if dem.crs else \
+                ("x (no CRS: cell units)", "y (no CRS: cell units)")
+        ax.set_aspect(self.aspect())
+        ax.set_xlabel(names[0], fontsize=FONT_PT)
+        ax.set_ylabel(names[1], fontsize=FONT_PT)
+        ax.ticklabel_format(useOffset=False, style="plain")
+        for axis in (ax.xaxis, ax.yaxis):
+            axis.set_major_locator(MaxNLocator(nbins=5))
+        ax.tick_params(labelsize=FONT_PT)
+
+    def layer(self, values: np.ndarray, *, cmap, label: str, vmax: float | None = None,
+              sqrt: bool = False, hide: np.ndarray | None = None, floor: float = 0.0):
+        """The main layer over the hillshade with its colour bar.
+
+        Cells at 0 or below ``floor``, nodata and cells where ``hide`` is True
+        are left transparent. ``sqrt`` draws a square-root colour scale
+        (said in the colour bar's label).
+        """
+        from matplotlib.colors import Normalize, PowerNorm
+
+        v = self.view(values)
+        mask = ~(v > 0) | (v < floor) | np.isnan(v)
+        if hide is not None:
+            mask |= _pool(np.asarray(hide, np.float64), self.k, np.nanmin) > 0
+        top = vmax if vmax is not None else (float(np.nanmax(v)) if np.isfinite(v).any() else 1.0)
+        top = top if top > 0 else 1.0
+        norm = PowerNorm(0.5, vmin=0.0, vmax=top) if sqrt else Normalize(0.0, top)
+        # low values more transparent: the hillshade shows through where little is going on
+        alpha = np.clip(0.45 + 0.5 * np.nan_to_num(norm(v).filled(0.0)), 0.0, 0.95)
+        im = self.ax.imshow(np.ma.masked_where(mask, v), cmap=cmap, norm=norm, alpha=alpha,
+                            extent=self.view_extent, interpolation="nearest", gid="layer")
+        self.cax = self.fig.add_axes((0.85, 0.1, 0.03, 0.7))
+        bar = self.fig.colorbar(im, cax=self.cax)
+        text = label + (" (square-root scale)" if sqrt else "")
+        bar.set_label("\n".join(textwrap.wrap(text, 44)), fontsize=FONT_PT + 1)
+        bar.ax.tick_params(labelsize=FONT_PT)
+        return im
+
+    def polygons(self, geoms, *, colour: str, label: str, lw: float = 1.5) -> None:
+        """Outlines of shapely (multi)polygons, as one legend entry."""
+        from matplotlib.collections import PathCollection
+        from matplotlib.path import Path
+
+        paths = []
+        for geom in geoms:
+            for g in getattr(geom, "geoms", [geom]) if geom is not None else []:
+                rings = [np.asarray(g.exterior.coords)] + [np.asarray(r.coords) for r in g.interiors]
+                paths.append(Path.make_compound_path(*[Path(r, closed=True) for r in rings]))
+        if not paths:
+            return
+        coll = PathCollection(paths, facecolors="none", edgecolors=colour, linewidths=lw,
+                              label=label, zorder=3, path_effects=_halo(lw + 1.6))
+        self.ax.add_collection(coll)
+        self.handles.append(_line_key(colour, label, lw=lw))
+
+    def points(self, x: np.ndarray, y: np.ndarray, *, marker: str, face: str, label: str,
+               size: float = 8.0) -> None:
+        """Markers at CRS coordinates (NaN skipped), as one legend entry."""
+        x, y = np.asarray(x, float), np.asarray(y, float)
+        ok = np.isfinite(x) & np.isfinite(y)
+        if not ok.any():
+            return
+        line, = self.ax.plot(x[ok], y[ok], ls="none", marker=marker, ms=size, mfc=face, mec=INK,
+                             mew=1.0, label=label, zorder=5)
+        self.handles.append(line)
+        self.avoid += [(a, b, size) for a, b in zip(x[ok], y[ok])]
+
+    def contours(self, values: np.ndarray, levels, *, colour: str, label: str,
+                 styles=("solid",), widths=(1.4,)) -> bool:
+        """Contour lines of a layer (e.g. a probability at 50% and 90%) in one
+        colour, one style per level, as one legend entry (say what the styles
+        mean with :meth:`key`); returns whether any line was drawn."""
+        v = self.view(values)
+        if min(v.shape) < 2 or not np.isfinite(v).any() or np.nanmax(v) < min(levels):
+            return False
+        n = len(levels)
+        cs = self.ax.contour(v, levels=list(levels), extent=self.view_extent, origin="upper",
+                             colors=colour, linestyles=list(styles)[:n],
+                             linewidths=list(widths)[:n], zorder=4)
+        if not any(len(p.vertices) for p in cs.get_paths()):
+            cs.remove()
+            return False
+        cs.set_label(label)
+        cs.set(path_effects=_halo(max(widths) + 1.6))
+        self.handles.append(_line_key(colour, label, lw=widths[0], ls=styles[0]))
+        return True
+
+    def key(self, label: str, *, colour: str = "0.35", ls: str = "solid", lw: float = 1.4) -> None:
+        """A legend entry for a line style used by several artists (e.g. 90% dashed)."""
+        self.handles.append(_line_key(colour, label, lw=lw, ls=ls))
+
+    def label(self, x: float, y: float, text: str, *, name: str | None = None) -> None:
+        """A label for the point (x, y), the most important first; placed when the
+        figure is finished. ``name`` (default: the text) is how the footer names it
+        if it finds no room."""
+        if np.isfinite(x) and np.isfinite(y):
+            self.texts.append((float(x), float(y), text))
+            self.names.append(name or text)
+
+    # -- finishing -------------------------------------------------------------------------
+    def figure(self) -> Figure:
+        """Lay the map out, place the labels and return the Figure."""
+        self._scale_bar()
+        if self._north_up():
+            self.ax.annotate("N", xy=(0.955, 0.965), xytext=(0.955, 0.875),
+                             xycoords="axes fraction", ha="center", va="center",
+                             fontsize=FONT_PT + 2, weight="bold", gid="north_arrow", zorder=8,
+                             bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none",
+                                       alpha=0.8),
+                             arrowprops=dict(facecolor=INK, edgecolor="white", width=3,
+                                             headwidth=10, lw=0.6))
+        self._legend_and_text()
+        self.ax.set_aspect(self.aspect())  # imshow resets it
+        _lay_out(self)
+        r = self.fig.canvas.get_renderer()
+        fixed = [a.get_window_extent(r) for a in self.ax.artists + self.ax.texts
+                 if a.get_gid() in ("scale_bar", "north_arrow")]
+        fixed += [t.arrow_patch.get_window_extent(r) for t in self.ax.texts
+                  if t.get_gid() == "north_arrow"]
+        kept = {t.get_text() for t in place_labels(self.ax, self.texts, self.avoid, fixed=fixed)}
+        missing = [n for (*_, text), n in zip(self.texts, self.names) if text not in kept]
+        if missing:  # say so in the footer; the map keeps its size, so labels stay clear
+            self.footer += " " + self.unplaced.format(names=", ".join(missing))
+            self.footer_text.set_text(self._footer())
+            _lay_out(self)
+        return self.fig
+
+    def aspect(self) -> float:
+        """Data aspect of the map: 1 in a projected CRS; 1 / cos(latitude of the
+        raster's centre) in a geographic one, so a degree of longitude is drawn
+        as long as it is on the ground there."""
+        if not self.dem.geographic:
+            return 1.0
+        return 1.0 / math.cos(math.radians(float(np.mean(self.dem.row_latitudes()))))
+
+    def _north_up(self) -> bool:
+        a, b, _, d, e, _ = self.dem.transform
+        return self.dem.crs is not None and b == 0 and d == 0 and a > 0 and e < 0
+
+    def _scale_bar(self) -> None:
+        from matplotlib.font_manager import FontProperties
+        from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+        dem = self.dem
+        width = self.extent[1] - self.extent[0]
+        if dem.crs is None:
+            m_per_unit, unit = 1.0, " cell units"
+        elif dem.geographic:
+            lat = float(np.mean(dem.row_latitudes()))
+            m_per_unit, unit = float(metres_per_degree(lat)[0]), None
+        else:
+            m_per_unit, unit = dem.linear_unit_m, None
+        length = nice_length(abs(width) * m_per_unit / 4)
+        if unit:
+            text = f"{length:g}{unit}"
+        else:
+            text = f"{length / 1000:g} km" if length >= 1000 else f"{length:g} m"
+        bar = AnchoredSizeBar(self.ax.transData, length / m_per_unit, text, "lower left",
+                              pad=0.4, borderpad=0.6, sep=3, frameon=True,
+                              size_vertical=abs(self.extent[3] - self.extent[2]) / 150,
+                              fontproperties=FontProperties(size=FONT_PT), color=INK)
+        bar.patch.set(alpha=0.8, edgecolor="none")
+        bar.set_gid("scale_bar")
+        self.ax.add_artist(bar)
+
+    def _legend_and_text(self) -> None:
+        fig = self.fig
+        self.title_text = fig.text(0.5, 0.98, self.title, ha="center", va="top",
+                                   fontsize=FONT_PT + 3, weight="bold")
+        self.subtitle_text = fig.text(0.5, 0.98, "\n".join(textwrap.wrap(self.subtitle, 120)),
+                                      ha="center", va="top", fontsize=FONT_PT + 1)
+        self.legend = None
+        if self.handles:
+            self.legend = fig.legend(handles=self.handles, loc="upper center",
+                                     ncols=min(2, len(self.handles)),
+                                     fontsize=FONT_PT, frameon=False, handlelength=2.4,
+                                     columnspacing=1.6)
+        self.footer_text = fig.text(0.5, 0.01, self._footer(), ha="center", va="bottom",
+                                    fontsize=FONT_PT, color="0.25")
+
+    def _footer(self) -> str:
+        return "\n".join(textwrap.wrap(self.footer, 140) + textwrap.wrap(self.caution, 140))
+
+
+def _single(colour: str):
+    from matplotlib.colors import ListedColormap
+
+    return ListedColormap([colour])
+
+
+def _halo(width: float):
+    from matplotlib import patheffects
+
+    return [patheffects.Stroke(linewidth=width, foreground="white", alpha=0.85),
+            patheffects.Normal()]
+
+
+def _line_key(colour: str, label: str, *, lw: float = 1.5, ls: str = "solid"):
+    from matplotlib.lines import Line2D
+
+    return Line2D([], [], color=colour, lw=lw, ls=ls, label=label)
+
+
+def _lay_out(frame: MapFrame) -> None:
+    """Size the figure to the map and place every part, measured in inches.
+
+    The figure is :data:`WIDTH_IN` wide; the map takes the width its tick
+    labels and colour bar leave (at most :data:`MAP_HEIGHT_IN` tall), with
+    the title above and the legend and footer below.
+    """
+    fig, ax, cax = frame.fig, frame.ax, frame.cax
+    r = fig.canvas.get_renderer()
+    dpi, width, pad, gap = fig.dpi, WIDTH_IN, 0.15, 0.14
+
+    def height_of(artist) -> float:
+        return artist.get_window_extent(r).height / dpi if artist is not None else 0.0
+
+    if frame.legend is not None and frame.legend.get_window_extent(r).width / dpi > width - 2 * pad:
+        frame.legend.set_ncols(1)
+    tight, box = ax.get_tightbbox(r), ax.get_window_extent(r)
+    left, below = (box.x0 - tight.x0) / dpi, (box.y0 - tight.y0) / dpi
+    above = max(tight.y1 - box.y1, 0) / dpi
+    bar_room = 0.0
+    if cax is not None:
+        bar_room = 0.25 + 0.2 + (cax.get_tightbbox(r).x1 - cax.get_window_extent(r).x1) / dpi
+    x0, x1, y0, y1 = frame.extent
+    ratio = abs((y1 - y0) / (x1 - x0)) * ax.get_aspect()
+    room = width - 2 * pad - left - max((tight.x1 - box.x1) / dpi, 0) - bar_room
+    map_w = min(room, MAP_HEIGHT_IN / ratio)
+    map_h = map_w * ratio
+    foot_h, leg_h = height_of(frame.footer_text), height_of(frame.legend)
+    title_h = height_of(frame.title_text)
+    sub_h = height_of(frame.subtitle_text) if frame.subtitle else 0.0
+    y_map = pad + foot_h + gap + (leg_h + gap if leg_h else 0.0) + below
+    height = y_map + map_h + above + gap + sub_h + 0.05 + title_h + pad
+    fig.set_size_inches(width, height)
+    x_map = pad + left + (room - map_w) / 2
+    ax.set_position((x_map / width, y_map / height, map_w / width, map_h / height))
+    if cax is not None:
+        cax.set_position(((x_map + map_w + 0.25) / width, y_map / height, 0.2 / width,
+                          map_h / height))
+    frame.footer_text.set_position((0.5, pad / height))
+    if frame.legend is not None:
+        frame.legend.set_bbox_to_anchor((0.5, (pad + foot_h + gap + leg_h) / height),
+                                        transform=fig.transFigure)
+    frame.title_text.set_position((0.5, 1 - pad / height))
+    frame.subtitle_text.set_position((0.5, 1 - (pad + title_h + 0.05) / height))
+
+
+def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT) -> list:
+    """Place text labels by their points without overlap (adjustText).
+
+    Each label starts beside its point and is pushed off every marker and
+    every other label. Labels come in order of importance. After the
+    placement, a label that still overlaps a more important label, a marker
+    or a ``fixed`` box is placed again from another start (every label kept
+    so far an obstacle), through :data:`LABEL_STARTS`; one that still
+    overlaps is left out (its marker stays), so what is drawn never
+    overlaps. A label that ends up away from its point gets a leader line.
+
+    Parameters
+    ----------
+    ax : Axes
+        With its final position (lay the figure out first).
+    items : sequence of (x, y, text)
+    avoid : sequence of (x, y, marker size in points)
+    fixed : sequence of display boxes
+        Further places to keep clear (the scale bar, the north arrow).
+
+    Returns
+    -------
+    list of the Text objects kept, in the order of ``items``.
+
+    References
+    ----------
+    .. [1] adjustText (Flyamer et al., Zenodo, 2024): iterative repulsion of
+       text bounding boxes from each other and from given objects.
+    """
+    if not items:
+        return []
+    boxes = _marker_boxes(ax, avoid) + list(fixed)
+    kept: dict[int, object] = {}
+    todo = list(range(len(items)))
+    r = ax.figure.canvas.get_renderer()
+    with _only_labels(ax):  # adjustText draws the figure; nothing else moves the labels
+        for start in LABEL_STARTS:
+            if not todo:
+                break
+            obstacles = boxes + [t.get_window_extent(r) for t in kept.values()]
+            near = _near(ax, [items[i] for i in todo], obstacles)
+            texts = _adjust(ax, [items[i] for i in todo], near, fontsize, start)
+            placed = _clear(ax, texts, obstacles, [kept[i] for i in sorted(kept)])
+            for i, t in zip(todo, texts):
+                if placed.get(id(t)):
+                    kept[i] = t
+                else:
+                    t.remove()
+            todo = [i for i in todo if i not in kept]
+    size = {(x, y): s for x, y, s in avoid}
+    for i, t in kept.items():
+        _leader(ax, t, items[i][:2], size.get(items[i][:2], 0.0))
+    return [kept[i] for i in sorted(kept)]
+
+
+class _only_labels:
+    """Hide every artist of the figure but the map's texts for a while (adjustText
+    draws the whole figure each time it starts; the rest only costs time)."""
+
+    def __init__(self, ax):
+        fig = ax.figure
+        others = [a for a in fig.axes if a is not ax] + list(fig.legends) + list(fig.texts)
+        mine = [a for a in ax.get_children() if a not in ax.texts and a is not ax.patch]
+        self.hidden = [a for a in others + mine if a.get_visible()]
+
+    def __enter__(self):
+        for a in self.hidden:
+            a.set_visible(False)
+        return self
+
+    def __exit__(self, *exc):
+        for a in self.hidden:
+            a.set_visible(True)
+        return False
+
+
+def _adjust(ax, items, obstacles, fontsize, start) -> list:
+    """One adjustText placement of ``items`` away from ``obstacles`` (display
+    boxes), each label starting at ``start`` (offset in pixels, alignment, the
+    directions it may move) from its point; returns the texts."""
+    from adjustText import adjust_text
+    from matplotlib.transforms import Bbox
+
+    dx, dy, ha, va, move = start
+    xy = np.array([(x, y) for x, y, _ in items], float)
+    inv = ax.transData.inverted()
+    at = inv.transform(ax.transData.transform(xy) + np.array([dx, dy]))
+    texts = [ax.text(sx, sy, s, fontsize=fontsize, color=INK, zorder=7, ha=ha, va=va, gid="label",
+                     path_effects=_halo(HALO_PT)) for (sx, sy), (_, _, s) in zip(at, items)]
+    for t in texts:
+        t.set_in_layout(False)
+    objects = [Bbox(inv.transform(b.get_points())) for b in obstacles]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        adjust_text(texts, objects=objects or None, ax=ax, avoid_self=False,
+                    target_x=xy[:, 0], target_y=xy[:, 1], **ADJUST,
+                    only_move={"text": move, "static": move, "explode": move, "pull": "xy"})
+    return texts
+
+
+def _leader(ax, text, xy, marker_pt: float) -> None:
+    """A straight leader line from the edge of ``text`` to its point, when the label
+    stands more than :data:`LEADER_PX` pixels off the point's marker."""
+    r = ax.figure.canvas.get_renderer()
+    box = text.get_window_extent(r).padded(2.0)
+    px, py = ax.transData.transform(xy)
+    qx, qy = min(max(px, box.x0), box.x1), min(max(py, box.y0), box.y1)  # nearest point of the box
+    gap = math.hypot(px - qx, py - qy) - marker_pt / 2 * ax.figure.dpi / 72.0
+    if gap <= LEADER_PX:
+        return
+    shrink = (marker_pt / 2 * ax.figure.dpi / 72.0 + 2.0) / math.hypot(px - qx, py - qy)
+    end = (px + (qx - px) * shrink, py + (qy - py) * shrink)
+    (x0, y0), (x1, y1) = ax.transData.inverted().transform([(qx, qy), end])
+    ax.plot([x0, x1], [y0, y1], color=INK, lw=0.7, zorder=6, gid="leader", label="_leader")
+
+
+def _near(ax, items, boxes, reach: float = 160.0, most: int = 160) -> list:
+    """The boxes adjustText is given: those within ``reach`` pixels of a labelled
+    point, at most ``most`` of them, nearest first (its cost grows with the square of
+    the obstacles; labels do not travel far, and :func:`_clear` checks them all)."""
+    if not boxes:
+        return []
+    pts = ax.transData.transform(np.array([(x, y) for x, y, _ in items], float))
+    centres = np.array([[(b.x0 + b.x1) / 2, (b.y0 + b.y1) / 2] for b in boxes])
+    d = np.abs(centres[:, None, :] - pts[None, :, :]).max(axis=2).min(axis=1)
+    order = np.argsort(d, kind="stable")[:most]
+    return [boxes[i] for i in order if d[i] <= reach]
+
+
+def _marker_boxes(ax, avoid) -> list:
+    from matplotlib.transforms import Bbox
+
+    if not avoid:
+        return []
+    xy = ax.transData.transform(np.array([(x, y) for x, y, _ in avoid]))
+    half = np.array([s for *_, s in avoid]) / 2 * ax.figure.dpi / 72.0 + 1.0
+    return [Bbox([[px - h, py - h], [px + h, py + h]]) for (px, py), h in zip(xy, half)]
+
+
+def boxes_overlap(a, b, tol: float = 0.5) -> bool:
+    """Whether two display boxes share an area wider and taller than ``tol`` pixels."""
+    return (min(a.x1, b.x1) - max(a.x0, b.x0) > tol) and (min(a.y1, b.y1) - max(a.y0, b.y0) > tol)
+
+
+def _clear(ax, texts, obstacles, earlier) -> dict:
+    """Which of ``texts`` (in order of importance) overlap nothing: no obstacle,
+    no label kept earlier, no more important text of this pass, and lie inside
+    the axes. Returns {id(text): bool}."""
+    r = ax.figure.canvas.get_renderer()
+    frame = ax.get_window_extent(r)
+    taken = [t.get_window_extent(r) for t in earlier]
+    out = {}
+    for t in texts:
+        e = t.get_window_extent(r)
+        inside = (frame.x0 - 1 <= e.x0 and e.x1 <= frame.x1 + 1 and frame.y0 - 1 <= e.y0
+                  and e.y1 <= frame.y1 + 1)
+        ok = inside and not any(boxes_overlap(e, b) for b in obstacles + taken)
+        out[id(t)] = ok
+        if ok:
+            taken.append(e)
+    return out

@@ -13,7 +13,7 @@ from terrain.summary.features import summarise_features
 
 from . import options
 from .common import CAUTION, command_line, guarded
-from .execute import error_model, execution, outputs, read, run_job
+from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
 from .summary import print_summary
 
 __all__ = ["peaks_cmd", "depressions_cmd", "demo_cmd"]
@@ -25,9 +25,11 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     job = CreditJob(kind, threshold=threshold, threshold_jitter=opts["threshold_jitter"],
                     weight=opts["weight"], connectivity=opts["connectivity"], base=base)
     ex = execution(opts)
+    head = header(dem_path, opts)
+    out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
+    guard_memory(head, job, ex, opts, model=model)
     dem = read(dem_path, opts)
     job = job.resolved(dem, model)
-    out = outputs(outdir, file_names(kind), opts)
     figure = "prominence" if kind == "peaks" else "depth"
     res = run_job(dem, job, model, ex, opts, label=label or kind,
                   headline=f"minimum {figure} " + (f"{threshold:g}" if threshold is not None
@@ -84,7 +86,7 @@ def depressions_cmd(dem, outdir, min_depth, **opts):
 
 DEMO = dict(rmse=1.0, le90=None, a95=None, kernel="gaussian", range_m=0.0,
             covariance="exponential", nugget=0.0, threshold_jitter=0.5, weight="persistence",
-            connectivity=8, band=None, bbox=None, realisations=300, seed=2026, scheduler=None,
+            connectivity=8, band=None, bbox=None, nodata=None, realisations=300, seed=2026, scheduler=None,
             checkpoint=None, resume=False, target_se=None, force=False)
 DEMO_CUTOFF = 3.0
 

@@ -12,7 +12,7 @@ from terrain.summary.catchments import catchment_table
 
 from . import options
 from .common import CAUTION, command_line, guarded
-from .execute import error_model, execution, outputs, read, run_job
+from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
 from .summary import print_catchments
 
 __all__ = ["catchments_cmd"]
@@ -56,10 +56,13 @@ def catchments_cmd(dem, outlets, outdir, snap, **opts):
     """
     model = error_model(opts)
     ex = execution(opts)
+    head = header(dem, opts)
+    ids, xy = read_outlets(outlets, head)  # in the DEM's CRS, from its header
+    job = CatchmentJob(ids, xy, snap_m=snap, source=str(outlets))
+    out = outputs(outdir, file_names("catchments", job.ids), opts, inputs=[dem, outlets])
+    guard_memory(head, job, ex, opts, model=model)
     d = read(dem, opts)
-    ids, xy = read_outlets(outlets, d)
-    job = CatchmentJob(ids, xy, snap_m=snap, source=str(outlets)).resolved(d, model)
-    out = outputs(outdir, file_names("catchments", job.ids), opts)
+    job = job.resolved(d, model)
     res = run_job(d, job, model, ex, opts, label="catchments",
                   headline=f"{len(ids)} outlet(s), snap " + (f"{snap:g} m" if snap is not None
                                                              else "2 cells"))

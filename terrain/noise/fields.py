@@ -93,10 +93,12 @@ class CorrelatedField:
                 break
             factor *= 2
             if factor > max_factor:
+                # a nugget is drawn apart from the field, so it cannot help here
+                other = " or use the exponential {covariance}" if model != "exponential" else ""
                 raise EmbeddingError(
                     f"circulant embedding of the {model} covariance (range {practical_range:g} m) "
-                    f"is not non-negative definite up to {max_factor}x the grid; add a "
-                    "{nugget} or shorten the {range_m}", "nugget", "range_m")
+                    f"is not non-negative definite up to {max_factor}x the grid; shorten the "
+                    "{range_m}" + other, "range_m", "covariance")
         self.shape = (rows, cols)
         self.embed = (mr, mc)
         self.factor = factor

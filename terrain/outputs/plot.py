@@ -13,6 +13,8 @@ import numpy as np
 from ..dem import Dem
 from ..layers import layer_name, units
 
+MAX_ASPECT = 2.5  # quick-look pages are at most 2.5 times taller than wide (or wider than tall)
+
 __all__ = ["quicklook", "hillshade", "feature_map", "catchment_map", "sweep_figure"]
 
 
@@ -68,7 +70,9 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     rows, cols = dem.shape
     a, _, c, _, e, f = dem.transform
     extent = (c, c + a * cols, f + e * rows, f)
-    fig = Figure(figsize=(9, 9 * rows / cols * 0.88 + 1.1), dpi=110)
+    ratio = rows * abs(e) / (cols * abs(a)) if a and e else rows / cols
+    shown = min(max(ratio, 1 / MAX_ASPECT), MAX_ASPECT)  # a strip of cells stays a readable page
+    fig = Figure(figsize=(9, 9 * shown * 0.88 + 1.1), dpi=110)
     ax = fig.add_axes((0.08, 0.06, 0.76, 0.82))
     cax = fig.add_axes((0.87, 0.2, 0.025, 0.6))
     ax.imshow(hillshade(dem), cmap="gray", extent=extent, vmin=0, vmax=1, interpolation="bilinear")
@@ -77,8 +81,11 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     _draw_contours(ax, dem, contours or [], extent)
     _draw_outlines(ax, polygons or [])
     _draw_labels(ax, labels or [], outlets or [], extent)
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
+    ax.set_xlim(*sorted(extent[:2]))
+    ax.set_ylim(*sorted(extent[2:]))  # north up, bottom-up rasters included
+    if shown != ratio:
+        ax.set_aspect("auto")
+        title += " (stretched: the raster is a thin strip)"
     ax.set_title(title, fontsize=10, pad=10)
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
@@ -111,6 +118,10 @@ def _draw_contours(ax, dem, contours, extent):
                             linewidths=[0.8, 1.6, 0.8][: len(levels)],
                             linestyles=["dotted", "solid", "dashed"][: len(levels)])
             ax.clabel(cs, fmt=lambda v, label=label: f"{label} {v:.0%}", fontsize=7)
+            # the lines are drawn; matplotlib's contour generator would keep its own
+            # float64 copies of the grid (~28 bytes per cell per contoured layer)
+            if hasattr(cs, "_contour_generator"):
+                cs._contour_generator = None
 
 
 def _draw_outlines(ax, polygons):
@@ -204,7 +215,7 @@ def sweep_figure(result, *, units: str):
     from matplotlib.figure import Figure
 
     rows = result.rows
-    kernels = list(dict.fromkeys(rows["kernel"]))
+    kernels = list(dict.fromkeys(kernel for kernel, _ in result.runs))
     fig = Figure(figsize=(4.2 * len(kernels) + 1.5, 7.2), dpi=110)
     axes = fig.subplots(2, len(kernels), squeeze=False, sharex=True, sharey="row")
     what = "summit" if result.job.kind == "peaks" else "depression"
@@ -225,7 +236,7 @@ def sweep_figure(result, *, units: str):
                                     color=colours(n_f % 10), label=f"{what} #{f}")
         axes[0, j].set_title(f"{kernel} kernel", fontsize=10)
         axes[1, j].set_xlabel(f"assumed error RMSE ({units})")
-        levels = sorted(set(rows["rmse"]))
+        levels = sorted({level for _, level in result.runs})
         for i in range(2):
             axes[i, j].set_xscale("log")
             axes[i, j].set_xticks(levels, [f"{v:g}" for v in levels])
@@ -233,7 +244,11 @@ def sweep_figure(result, *, units: str):
             axes[i, j].grid(alpha=0.3)
     axes[0, 0].set_ylabel("share of total credit")
     axes[1, 0].set_ylabel("P(ranks first)")
-    axes[0, -1].legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.02, 1.0))
+    if result.top:
+        axes[0, -1].legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.02, 1.0))
+    else:
+        axes[0, 0].text(0.5, 0.5, f"no {what} above the cut-off in any run", ha="center",
+                        va="center", transform=axes[0, 0].transAxes)
     fig.suptitle(f"How {what} attribution spreads as the assumed error grows "
                  "(error bars: 1 standard error)", fontsize=11)
     fig.subplots_adjust(left=0.08, right=0.84, top=0.9, bottom=0.09, wspace=0.08, hspace=0.12)

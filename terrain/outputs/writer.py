@@ -1,5 +1,10 @@
 """Writing a finished run: GeoTIFF layers, tables, figures and provenance.
 
+A run's files are published as a set: each writer writes into a staging
+folder inside the output folder and :func:`terrain.io.staged_outputs` moves
+the complete set into place, so a failed or interrupted write leaves the
+previous set (or nothing), never a mixture.
+
 The writer only writes: summaries (feature tables, catchment tables) come
 in as data frames from :mod:`terrain.summary`, figures come from
 :mod:`terrain.outputs.plot`, and every file goes through :mod:`terrain.io`
@@ -11,23 +16,56 @@ in as data frames from :mod:`terrain.summary`, figures come from
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import platform
 from pathlib import Path
 
 import numpy as np
 
-from ..io import file_sha256, write_csv, write_figure, write_frames, write_json, write_layer
+from ..io import (
+    file_sha256,
+    staged_outputs,
+    write_csv,
+    write_figure,
+    write_frames,
+    write_json,
+    write_layer,
+)
 from ..layers import spec, units
 from ..version import __version__
 from . import plot
 from .manifest import MANIFEST
 
-__all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance"]
+__all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
+           "published", "READ_SETTINGS"]
+
+# how the DEM was read, as recorded in run.json: band, box, declared nodata,
+# the window of the file read, scale and offset applied, the file's own nodata
+READ_SETTINGS = ("band", "bbox", "nodata", "window", "scale", "offset", "nodata_value")
 
 CAUTION = ("Caution: cairn's layers are analysis aids, not engineering design or official flood "
            "mapping; do not use them alone to decide flood extents, drainage design or anything "
            "that can hurt someone; defer to local codes, official flood maps and licensed "
            "professionals.")
+
+
+def published(command):
+    """Decorate a writer ``fn(outdir, result, ...)`` so that it writes into a
+    staging folder and its files are published together when it returns.
+    ``command(result)`` names the manifest entry: earlier files of a
+    per-outlet pattern (``{id}``) that the new set lacks are removed with the
+    publication."""
+
+    def decorate(fn):
+        @functools.wraps(fn)
+        def wrapper(outdir, result, *args, **kwargs):
+            patterns = tuple(f.name.replace("{id}", "*") for f in MANIFEST[command(result)]
+                             if "{id}" in f.name)
+            with staged_outputs(outdir, replaces=patterns) as stage:
+                return fn(stage, result, *args, **kwargs)
+        return wrapper
+
+    return decorate
 
 
 def _now():
@@ -44,7 +82,8 @@ def provenance(result, *, input_path: str | None, command_line: str | None, crea
         "input": {"path": input_path, "sha256": file_sha256(input_path) if input_path else None,
                   "dem_checksum": result.params["dem_checksum"], "shape": list(dem.shape),
                   "crs": dem.crs, "transform": list(dem.transform),
-                  "vertical_units": dem.vertical_units or "DEM units"},
+                  "vertical_units": dem.vertical_units or "DEM units",
+                  **{k: dem.meta.get(k) for k in READ_SETTINGS}},
         "parameters": {**parameters, "error_model": result.model.as_dict(),
                        "seed": result.params["seed"]},
         "defaults": result.info.get("defaults", {}),
@@ -76,6 +115,7 @@ def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
                     tags={**tags, **({"note": s.note} if s.note else {})})
 
 
+@published(lambda result: result.job.kind)
 def write_credit_run(outdir: str | Path, result, features, *, input_path: str | None,
                      command_line: str | None = None) -> None:
     """Write a peaks or depressions run: layers, feature tables, quick-look, run.json.
@@ -99,6 +139,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     write_json(out / "run.json", run)
 
 
+@published(lambda result: "catchments")
 def write_catchment_run(outdir: str | Path, result, table, *, input_path: str | None,
                         outlets_path: str | None, command_line: str | None = None) -> None:
     """Write a catchment run: probability layers, polygons and areas, map, run.json.
@@ -117,6 +158,7 @@ def write_catchment_run(outdir: str | Path, result, table, *, input_path: str | 
     write_json(out / "run.json", run)
 
 
+@published(lambda result: "sweep")
 def write_sweep(outdir: str | Path, result, *, input_path: str | None,
                 command_line: str | None = None) -> None:
     """Write ``sweep.csv``, ``kernel_sensitivity.csv``, ``sweep.png`` and ``run.json``.

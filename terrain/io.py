@@ -39,7 +39,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
-           "STAGING_PREFIX", "same_file", "file_exists", "remove_file", "check_file_folder"]
+           "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder"]
 
 
 # Common nodata values of DEM products and GIS packages that files often hold

@@ -182,7 +182,7 @@ def test_demo_twin_summit_splits_and_knolls_spread(demo_out):
 
 # -- one option set for every command (the structure issue) --------------------------
 SHARED = {"--rmse", "--le90", "--a95", "--kernel", "--range", "--covariance", "--nugget",
-          "--band", "--bbox", "--realisations", "--seed", "--workers", "--scheduler",
+          "--band", "--bbox", "--nodata", "--realisations", "--seed", "--workers", "--scheduler",
           "--checkpoint", "--resume", "--target-se", "--overwrite", "--quiet", "--force"}
 ATTRIBUTION = {"--threshold-jitter", "--weight", "--connectivity"}
 

@@ -14,7 +14,8 @@ and layers, the error model and the execution:
 - finishing: the layers (a float64 estimate and standard error each) while
   the accumulators are still held;
 - writing: the layers, summaries, GeoTIFF encoding and the quick-look figure
-  (measured per cell).
+  (measured per cell; a quick-look draws at most
+  :data:`~terrain.outputs.plot.QUICKLOOK_CELLS` blocks of a bigger grid).
 
 The peak is the largest of these phases, plus each worker process's own
 footprint and arrays. ``cairn inspect`` prints the same figure the guard
@@ -23,10 +24,12 @@ compares with the memory available.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from .errors import MemoryGuardError
 from .io import available_memory
+from .outputs.plot import QUICKLOOK_CELLS
 
 __all__ = ["MemoryEstimate", "estimate_run", "check_memory", "describe_memory", "read_bytes",
            "available_bytes", "PROCESS_BYTES", "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR"]
@@ -43,8 +46,9 @@ CHECKSUM_SCRATCH = 13  # float64 copy of the DEM while it is hashed (counted)
 CONTEXT = 4  # the float32 DEM the realisations read (counted)
 LAYER = 16  # one finished layer: float64 estimate and standard error (counted)
 MOMENTS_SCRATCH = 24  # float64 temporaries of a layer's mean and standard error (counted)
-SUMMARY_SCRATCH = 110  # feature or catchment summaries and GeoTIFF encoding (measured)
-QUICKLOOK_SCRATCH = 130  # the quick-look map: hillshade, images and their rendering (measured)
+SUMMARY_SCRATCH = 100  # feature or catchment summaries and GeoTIFF encoding (measured)
+BLOCKS_SCRATCH = 10  # the quick-look's float32 copies of a layer reduced to blocks (counted)
+QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, rendering (measured)
 SWEEP_KEPT = 2 * LAYER  # a sweep keeps two layers of every finished run (counted)
 FIELD_KEPT = 16  # correlated error: square roots of the embedding's eigenvalues (2x grid)
 FIELD_DRAW = 100  # correlated error: one draw's white noise and FFTs (2x grid)
@@ -156,10 +160,11 @@ def estimate_run(grid, job, ex=None, *, model=None, runs: int = 1,
         running = held + max(CHECKSUM_SCRATCH, worker_job + draw)
     else:  # results in flight, one more being unpickled, the DEM pickled for a worker
         running = held + max(CHECKSUM_SCRATCH, (2 * ex.n_workers + 1) * counts + CONTEXT + kept)
+    drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)  # a big grid is drawn in blocks
     phases = {"read": 2 * stored + value + READ_SCRATCH, "running": running,
               "finishing": held + layers + MOMENTS_SCRATCH,
-              "writing": dem + layers + SUMMARY_SCRATCH + QUICKLOOK_SCRATCH * quicklook
-              + SWEEP_KEPT * (runs - 1)}
+              "writing": dem + layers + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
+              + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
     worker_cell = CONTEXT + kept + worker_job + draw + 2 * counts if local else 0
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
     parent = PROCESS_BYTES + max(phases.values()) * cells + log

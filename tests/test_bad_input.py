@@ -668,7 +668,7 @@ def test_growing_log_stops_the_run_in_one_line(cairn, dem, tmp_path, monkeypatch
     import terrain.runner.ensemble as ens
 
     monkeypatch.setattr(ens, "available_memory", lambda: 1000)
-    monkeypatch.setattr(ens.LogWatch.__init__, "__defaults__", (1,))  # check after every chunk
+    monkeypatch.setattr(ens, "LOG_CHECK_BYTES", 1)  # look after every chunk
     ck = tmp_path / "ck.npz"
     code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", "--rmse", "1", "-n", "60",
                          "--workers", "1", "-q", "--checkpoint", ck)
@@ -850,3 +850,22 @@ def test_embedding_error_does_not_advise_a_nugget():
     with pytest.raises(EmbeddingError) as e:
         CorrelatedField((64, 64), (1.0, 1.0), "gaussian", 400.0, max_factor=2)
     assert "nugget" not in e.value.render(lambda p: p) and "range_m" in e.value.params
+
+
+def test_quicklook_of_a_big_grid_is_drawn_in_blocks(cairn, dem, tmp_path, monkeypatch):
+    # reference: scikit-image's block_reduce (a general-purpose library) for the blocks
+    from PIL import Image
+    from skimage.measure import block_reduce
+
+    import terrain.outputs.plot as plot
+
+    z = smooth_terrain((23, 17), seed=2)
+    nodata = np.zeros(z.shape, bool)
+    nodata[3, 4] = True
+    ref = block_reduce(np.where(nodata, np.nan, z), (5, 5), func=np.nanmax, cval=np.nan)
+    assert np.allclose(plot.blocks(z, nodata, 5, np.nanmax), ref, equal_nan=True)
+    monkeypatch.setattr(plot, "QUICKLOOK_CELLS", 100)  # the 40 x 40 test DEM now needs blocks
+    code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", *RUN)
+    assert code == 0, err
+    with Image.open(tmp_path / "o" / "quicklook.png") as im:
+        assert im.size[0] > 300

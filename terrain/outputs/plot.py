@@ -7,6 +7,7 @@ saves it (atomically, through :mod:`terrain.io`).
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 
@@ -14,20 +15,50 @@ from ..dem import Dem
 from ..layers import layer_name, units
 
 MAX_ASPECT = 2.5  # quick-look pages are at most 2.5 times taller than wide (or wider than tall)
+QUICKLOOK_CELLS = 2 ** 21  # a quick-look draws at most ~2.1 million cells (blocks of a bigger grid)
 
-__all__ = ["quicklook", "hillshade", "feature_map", "catchment_map", "sweep_figure"]
+__all__ = ["quicklook", "hillshade", "blocks", "block_step", "QUICKLOOK_CELLS", "feature_map",
+           "catchment_map", "sweep_figure"]
 
 
-def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0) -> np.ndarray:
-    """Hillshade in [0, 1] (matplotlib LightSource, cell sizes in metres)."""
+def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
+              step: int = 1) -> np.ndarray:
+    """Hillshade in [0, 1] (matplotlib LightSource, cell sizes in metres), of
+    the grid averaged over ``step`` x ``step`` blocks (see :func:`blocks`)."""
     from matplotlib.colors import LightSource
 
-    if min(dem.shape) < 2:  # no gradient on a single row or column: flat grey
-        return np.full(dem.shape, 0.5)
+    z = blocks(dem.z, dem.nodata, step, np.nanmean).astype(np.float64)
+    if min(z.shape) < 2:  # no gradient on a single row or column: flat grey
+        return np.full(z.shape, 0.5)
+    z = np.where(np.isnan(z), np.nanmean(z), z)
     w, h = dem.cell_metres()
-    z = np.where(dem.nodata, np.nanmean(dem.z), dem.z).astype(np.float64)
     ls = LightSource(azdeg=azimuth, altdeg=altitude)
-    return ls.hillshade(z, vert_exag=1.0, dx=float(np.mean(w)), dy=float(np.mean(h)))
+    return ls.hillshade(z, vert_exag=1.0, dx=float(np.mean(w)) * step, dy=float(np.mean(h)) * step)
+
+
+def blocks(a: np.ndarray, nodata: np.ndarray, step: int, how) -> np.ndarray:
+    """``a`` with NaN on ``nodata``, reduced over ``step`` x ``step`` blocks by
+    ``how`` (``np.nanmax`` keeps a single credited cell visible, ``np.nanmean``
+    smooths), as float32; the last blocks are padded with NaN. ``step`` 1
+    returns the grid itself (as float32, NaN on nodata)."""
+    v = np.array(a, dtype=np.float32)
+    v[nodata] = np.nan
+    if step == 1:
+        return v
+    r, c = v.shape
+    rr, cc = -(-r // step), -(-c // step)
+    pad = np.full((rr * step, cc * step), np.nan, np.float32)
+    pad[:r, :c] = v
+    del v
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # blocks of nodata only
+        return how(pad.reshape(rr, step, cc, step), axis=(1, 3))
+
+
+def block_step(shape) -> int:
+    """Cells per block side so that a quick-look draws at most
+    :data:`QUICKLOOK_CELLS` blocks (1 for grids up to that size)."""
+    return max(1, math.ceil(math.sqrt(shape[0] * shape[1] / QUICKLOOK_CELLS)))
 
 
 def _nice(x: float) -> float:
@@ -70,15 +101,19 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     rows, cols = dem.shape
     a, _, c, _, e, f = dem.transform
     extent = (c, c + a * cols, f + e * rows, f)
+    step = block_step(dem.shape)  # big grids are drawn in blocks: memory stays bounded
+    sr, sc = -(-rows // step) * step, -(-cols // step) * step
+    drawn = (c, c + a * sc, f + e * sr, f)  # the blocks' extent (the last ones padded)
     ratio = rows * abs(e) / (cols * abs(a)) if a and e else rows / cols
     shown = min(max(ratio, 1 / MAX_ASPECT), MAX_ASPECT)  # a strip of cells stays a readable page
     fig = Figure(figsize=(9, 9 * shown * 0.88 + 1.1), dpi=110)
     ax = fig.add_axes((0.08, 0.06, 0.76, 0.82))
     cax = fig.add_axes((0.87, 0.2, 0.025, 0.6))
-    ax.imshow(hillshade(dem), cmap="gray", extent=extent, vmin=0, vmax=1, interpolation="bilinear")
-    _draw_layer(fig, ax, cax, dem, layer, extent, frac=frac, vmax=vmax, show=show, cmap=cmap,
-                units=units)
-    _draw_contours(ax, dem, contours or [], extent)
+    ax.imshow(hillshade(dem, step=step), cmap="gray", extent=drawn, vmin=0, vmax=1,
+              interpolation="bilinear")
+    _draw_layer(fig, ax, cax, dem, layer, drawn, frac=frac, vmax=vmax, show=show, cmap=cmap,
+                units=units, step=step)
+    _draw_contours(ax, dem, contours or [], drawn, step)
     _draw_outlines(ax, polygons or [])
     _draw_labels(ax, labels or [], outlets or [], extent)
     ax.set_xlim(*sorted(extent[:2]))
@@ -94,24 +129,24 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     return fig
 
 
-def _draw_layer(fig, ax, cax, dem, layer, extent, *, frac, vmax, show, cmap, units):
+def _draw_layer(fig, ax, cax, dem, layer, extent, *, frac, vmax, show, cmap, units, step):
     from matplotlib.colors import PowerNorm
 
-    v = np.where(dem.nodata, np.nan, layer).astype(np.float64)
+    v = blocks(layer, dem.nodata, step, np.nanmax)
     top = vmax if vmax is not None else (np.nanmax(v) if np.isfinite(v).any() else 1.0)
     hide = ~(v >= frac * top) | ~(v > 0)
     if show is not None:
-        hide |= ~show
+        hide |= ~(blocks(show, np.zeros(show.shape, bool), step, np.nanmax) > 0)
     # square-root colour scale: small credit stays visible beside a dominant feature
     im = ax.imshow(np.ma.masked_where(hide, v), cmap=cmap, extent=extent, alpha=0.85,
                    interpolation="nearest", norm=PowerNorm(0.5, vmin=0, vmax=top if top > 0 else 1))
     fig.colorbar(im, cax=cax).set_label(units + " (square-root scale)")
 
 
-def _draw_contours(ax, dem, contours, extent):
+def _draw_contours(ax, dem, contours, extent, step):
     colours = ["#e76f51", "#2a9d8f", "#e9c46a", "#264653", "#f4a261", "#8338ec"]
     for n, (arr, levels, label) in enumerate(contours if min(dem.shape) >= 2 else []):
-        a_ = np.where(dem.nodata, np.nan, arr)
+        a_ = blocks(arr, dem.nodata, step, np.nanmean)
         if np.nanmax(a_) >= min(levels):
             cs = ax.contour(a_, levels=levels, extent=extent,
                             origin="upper", colors=colours[n % len(colours)],

@@ -339,6 +339,9 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     return _Start(job, used, sampler, z, params, acc)
 
 
+LOG_CHECK_BYTES = 64 * 2**20  # the log watch looks at the memory after each 64 MiB of log
+
+
 class LogWatch:
     """Stops a run before its log outgrows the memory available.
 
@@ -350,10 +353,11 @@ class LogWatch:
     """
 
     def __init__(self, source: str, realisations: int, stop: StopRule | None,
-                 step: int = 64 * 2**20):
-        self.source, self.realisations, self.stop, self.step = source, realisations, stop, step
+                 step: int | None = None):
+        self.source, self.realisations, self.stop = source, realisations, stop
+        self.step = step if step is not None else LOG_CHECK_BYTES
         self.bytes = self.n = 0
-        self.next_check = step
+        self.next_check = self.step
 
     def add(self, log: dict, done: int) -> None:
         self.bytes += sum(int(v.nbytes) for v in log.values())

@@ -106,15 +106,17 @@ def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline:
             return run_ensemble(dem, job, model, progress=bar,
                                 **{k: getattr(ex, k) for k in EXEC_KEYS})
     except RunInterrupted as exc:
-        interrupted(exc)
+        interrupted(exc, ex.checkpoint)
 
 
-def interrupted(exc: RunInterrupted):
+def interrupted(exc: RunInterrupted, checkpoint=None):
     """Say what an interrupted run kept, and exit 128 + the signal."""
     what = "terminated" if exc.signal == 15 else "interrupted"
     if exc.checkpoint:
         click.echo(f"cairn: {what} after {exc.done} realisations; saved {exc.checkpoint}. "
                    "Resume with the same command plus --resume.", err=True)
+    elif checkpoint:
+        click.echo(f"cairn: {what} before any realisation finished; nothing written.", err=True)
     else:
         click.echo(f"cairn: {what} after {exc.done} realisations; nothing written "
                    "(use --checkpoint FILE to be able to resume).", err=True)

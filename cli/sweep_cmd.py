@@ -92,7 +92,7 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label="sweep") as bar:
             result = sweep(d, job, models, progress=bar, **run_kw)
     except RunInterrupted as exc:
-        interrupted(exc)
+        interrupted(exc, ex.checkpoint)
     write_sweep(out, result, input_path=str(dem), command_line=command_line())
     if not opts["quiet"]:
         print_sensitivity(result, outdir=out, caution=CAUTION)

@@ -980,9 +980,9 @@ def load_npz(path: str | os.PathLike, keys: tuple[str, ...] | None = None) -> di
     except ValueError as exc:
         if "pickle" in str(exc).lower() or "object arrays" in str(exc).lower():
             raise ValueError("holds pickled (object) arrays, which cairn never loads") from None
-        raise ValueError(f"damaged archive: {_short(exc)}") from None
+        raise ValueError(f"truncated or damaged archive: {_short(exc)}") from None
     except Exception as exc:  # zipfile, zlib and numpy raise many classes for damage
-        raise ValueError(f"damaged archive: {_short(exc)}") from None
+        raise ValueError(f"truncated or damaged archive: {_short(exc)}") from None
 
 
 def same_file(a: str | os.PathLike, b: str | os.PathLike) -> bool:

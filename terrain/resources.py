@@ -27,9 +27,13 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from .dem import Dem, RasterHeader
 from .errors import MemoryGuardError
 from .io import available_memory
+from .noise import ErrorModel
 from .outputs.plot import QUICKLOOK_CELLS
+from .runner import Execution
+from .runner.protocols import Job
 
 __all__ = ["MemoryEstimate", "estimate_run", "check_memory", "describe_memory", "read_bytes",
            "available_bytes", "PROCESS_BYTES", "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR"]
@@ -109,7 +113,7 @@ def _grid(grid) -> tuple[int, int, int]:
     return int(grid.z.size), int(grid.z.itemsize), int(grid.z.itemsize)
 
 
-def read_bytes(grid) -> int:
+def read_bytes(grid: RasterHeader | Dem) -> int:
     """Bytes the read of the DEM itself needs at its peak (``inspect``)."""
     cells, value, stored = _grid(grid)
     return (2 * stored + value + READ_SCRATCH) * cells
@@ -125,7 +129,8 @@ def _planned(ex) -> int:
     return min(ex.realisations, first)
 
 
-def estimate_run(grid, job, ex=None, *, model=None, runs: int = 1,
+def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
+                 model: ErrorModel | None = None, runs: int = 1,
                  quicklook: bool = True) -> MemoryEstimate:
     """The bytes a run of ``job`` on ``grid`` needs at its peak, in every process.
 
@@ -144,8 +149,6 @@ def estimate_run(grid, job, ex=None, *, model=None, runs: int = 1,
     quicklook : bool
         Whether the run draws a quick-look map of the grid (a sweep does not).
     """
-    from .runner import Execution
-
     ex = ex if ex is not None else Execution()
     cells, value, stored = _grid(grid)
     parent_job, worker_job = job.memory_per_cell(value)
@@ -174,7 +177,8 @@ def estimate_run(grid, job, ex=None, *, model=None, runs: int = 1,
                           per_cell={**phases, "worker": worker_cell})
 
 
-def check_memory(grid, job, ex=None, *, model=None, runs: int = 1, quicklook: bool = True,
+def check_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
+                 model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True,
                  force: bool = False) -> MemoryEstimate:
     """The run's :func:`estimate_run`; raises :class:`MemoryGuardError` when it
     exceeds the memory available (unless ``force``)."""
@@ -189,10 +193,9 @@ def check_memory(grid, job, ex=None, *, model=None, runs: int = 1, quicklook: bo
     return est
 
 
-def describe_memory(grid, job, ex=None, *, model=None) -> str:
+def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
+                    model: ErrorModel | None = None) -> str:
     """One line on the memory a run of ``job`` needs: the guard's own figure."""
-    from .runner import Execution
-
     ex = ex if ex is not None else Execution()
     est = estimate_run(grid, job, ex, model=model)
     return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "

@@ -18,6 +18,7 @@ from __future__ import annotations
 import datetime as _dt
 import functools
 import platform
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -49,7 +50,7 @@ CAUTION = ("Caution: cairn's layers are analysis aids, not engineering design or
            "professionals.")
 
 
-def published(command):
+def published(command: Callable[[object], str]) -> Callable:
     """Decorate a writer ``fn(outdir, result, ...)`` so that it writes into a
     staging folder and its files are published together when it returns.
     ``command(result)`` names the manifest entry: earlier files of a

@@ -12,7 +12,7 @@ from terrain.outputs.writer import write_credit_run
 from terrain.summary.features import summarise_features
 
 from . import options
-from .common import CAUTION, command_line, guarded
+from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
 from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
 from .summary import print_summary
 
@@ -23,7 +23,8 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     """One peaks or depressions run, from options to files and the console table."""
     model = error_model(opts)
     job = CreditJob(kind, threshold=threshold, threshold_jitter=opts["threshold_jitter"],
-                    weight=opts["weight"], connectivity=opts["connectivity"], base=base)
+                    weight=opts["weight"], connectivity=opts["connectivity"], base=base,
+                    merge_level=opts["merge_level"], min_presence=opts["min_presence"])
     ex = execution(opts)
     head = header(dem_path, opts)
     out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
@@ -34,6 +35,8 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     res = run_job(dem, job, model, ex, opts, label=label or kind,
                   headline=f"minimum {figure} " + (f"{threshold:g}" if threshold is not None
                                                    else "3 x RMSE"))
+    if model.range_m == 0:
+        warn(INDEPENDENT_ERROR)
     features = summarise_features(res)
     write_credit_run(out, res, features, input_path=str(dem_path), command_line=command_line())
     if not opts["quiet"]:
@@ -63,6 +66,10 @@ def peaks_cmd(dem, outdir, min_prominence, base, **opts):
 
     Perturbs DEM with its stated vertical error, pairs every summit with its
     key col in each realisation (superlevel-set persistence) and averages.
+    Features are regions of the DEM as given; the table shows each one's
+    prominence on the DEM, its expected prominence and 5-95% range under the
+    error (the DEM uncertainty), and the Monte Carlo standard error (the
+    run's precision) in a column of its own.
     """
     run_credit("peaks", dem, outdir, opts, threshold=min_prominence, base=base)
 
@@ -79,14 +86,18 @@ def depressions_cmd(dem, outdir, min_depth, **opts):
 
     Water leaves over the raster edge and into nodata; each depression is
     paired with its spill point in each realisation (sublevel-set
-    persistence) and the results are averaged.
+    persistence) and the results are averaged. Features are regions of the
+    DEM as given; the table shows each one's depth on the DEM, its expected
+    depth and 5-95% range under the error (the DEM uncertainty), and the
+    Monte Carlo standard error (the run's precision) in a column of its own.
     """
     run_credit("depressions", dem, outdir, opts, threshold=min_depth)
 
 
 DEMO = dict(rmse=1.0, le90=None, a95=None, kernel="gaussian", range_m=0.0,
             covariance="exponential", nugget=0.0, threshold_jitter=0.5, weight="persistence",
-            connectivity=8, band=None, bbox=None, nodata=None, realisations=300, seed=2026, scheduler=None,
+            connectivity=8, merge_level=None, min_presence=0.1, band=None, bbox=None,
+            nodata=None, realisations=300, seed=2026, scheduler=None,
             checkpoint=None, resume=False, target_se=None, force=False)
 DEMO_CUTOFF = 3.0
 

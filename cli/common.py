@@ -16,7 +16,15 @@ import click
 from terrain.errors import CairnError, CairnWarning
 from terrain.outputs.writer import CAUTION
 
-__all__ = ["CAUTION", "guarded", "flag", "command_line", "warn", "Terminated"]
+__all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn",
+           "Terminated"]
+
+INDEPENDENT_ERROR = (
+    "independent per-cell error deepens flat floors and raises flat tops (the lowest of n noisy "
+    "cells lies about RMSE x sqrt(2 ln n) below a flat floor); compare with the figure on "
+    "the DEM as given ('unperturbed'), and give --range when the DEM's error is spatially "
+    "correlated, as it usually is "
+    "(Holmes, Chadwick & Kyriakidis 2000, J. Hydrology 233; review: Wechsler 2007, HESS 11)")
 
 FLAGS = {
     "rmse": "--rmse", "le90": "--le90", "a95": "--a95", "kernel": "--kernel",
@@ -27,7 +35,9 @@ FLAGS = {
     "scheduler": "--scheduler", "checkpoint": "--checkpoint", "resume": "--resume",
     "target_se": "--target-se", "overwrite": "--overwrite", "force": "--force",
     "snap_m": "--snap", "outlets": "--outlets", "kind": "--kind", "backend": "--workers",
-    "draw": "--kernel", "nodata": "--nodata", "memory_check": "--force",
+    "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
+    "channel_area": "--channel-area", "conditioning": "--conditioning",
+    "max_breach_depth": "--max-breach-depth", "nodata": "--nodata", "memory_check": "--force",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 

@@ -5,8 +5,9 @@ from __future__ import annotations
 import math
 
 import click
+import numpy as np
 
-from terrain.jobs import CreditJob
+from terrain.jobs import CatchmentJob, CreditJob
 from terrain.resources import available_bytes, describe_memory, read_bytes
 from terrain.runner import Execution
 
@@ -55,6 +56,8 @@ def inspect_cmd(dem, band, bbox, nodata):
     ex = Execution()
     lines += [(f"memory ({kind})", describe_memory(head, CreditJob(kind), ex))
               for kind in ("peaks", "depressions")]
+    lines.append(("memory (catchments, 3 outlets)",
+                  describe_memory(head, CatchmentJob(("1", "2", "3"), np.zeros((3, 2))), ex)))
     width = max(len(k) for k, _ in lines)
     for k, v in lines:
         click.echo(f"{k:<{width}}  {v}")

@@ -8,10 +8,12 @@ from __future__ import annotations
 
 import click
 
+from terrain import defaults
 from terrain.noise import COVARIANCES, KERNELS
 
-__all__ = ["compose", "accuracy", "error_model", "cutoff", "attribution", "dem_input", "run",
-           "outdir", "RESUME_HELP", "TARGET_SE_HELP", "BBOX_HELP", "NODATA_HELP"]
+__all__ = ["compose", "accuracy", "error_model", "cutoff", "attribution", "connectivity",
+           "drainage", "dem_input", "run", "outdir", "RESUME_HELP", "TARGET_SE_HELP", "BBOX_HELP",
+           "NODATA_HELP"]
 
 
 def compose(*decorators):
@@ -106,15 +108,45 @@ base = click.option("--base", type=float, default=None,
                     help="Level the highest summit's prominence is measured to, in vertical "
                          "units [default: the lowest valid cell; e.g. 0 for sea level].")
 
+connectivity = click.option(
+    "--connectivity", type=int, default=8, show_default=True,
+    help="Cell neighbourhood: 8 (with diagonals) or 4 (edge neighbours only); for drainage, "
+         "D8 or D4 flow.")
+
 attribution = compose(
     click.option("--threshold-jitter", type=float, default=0.0, show_default=True,
                  help="Standard deviation (vertical units) of a cut-off drawn per realisation "
                       "around the minimum prominence or depth; 0 = a fixed cut-off."),
     click.option("--weight", default="persistence", show_default=True,
                  help="Credit a counted pair its prominence/depth (persistence) or 1 (count)."),
-    click.option("--connectivity", type=int, default=8, show_default=True,
-                 help="Cell neighbourhood: 8 (with diagonals) or 4."),
+    connectivity,
+    click.option("--merge-level", type=float, default=None,
+                 help="Knobs and hollows of the DEM less persistent than this (vertical units) "
+                      "belong to the feature around them [default: 2 x RMSE, or the cut-off if "
+                      "lower; in a sweep, of the smallest RMSE]."),
+    click.option("--min-presence", type=float, default=0.1, show_default=True,
+                 help="A region is a feature (a table row) when counted in at least this share "
+                      "of realisations (0 to 1)."),
 )
+
+
+def drainage():
+    """--channel-area, --conditioning, --max-breach-depth (defaults stated from the library)."""
+    return compose(
+        click.option("--channel-area", type=float, default=None, metavar="M2",
+                     help="Drainage area, in square metres, at which a cell counts as channel "
+                          f"[default: {defaults.CHANNEL_AREA_M2:g} m² = 0.1 km²; common "
+                          "practice, no single source]."),
+        click.option("--conditioning", default=None, metavar="breach|fill",
+                     help="Remove depressions by least-cost breaching (cut a channel from the "
+                          "pit to lower ground) or by filling to the spill level "
+                          f"[default: {defaults.CONDITIONING}]."),
+        click.option("--max-breach-depth", type=float, default=None, metavar="DEPTH",
+                     help="Breach depressions at most this deep and fill deeper ones, in the "
+                          "DEM's vertical units (metres for most DEMs); no cell is cut deeper "
+                          f"[default: {defaults.MAX_BREACH_DEPTH:g}]."),
+    )
+
 
 BBOX_HELP = ("Read only the cells whose area meets this box, in the DEM's CRS units (a box "
              "inside one cell reads that cell); north-up or bottom-up rasters only.")
@@ -132,9 +164,9 @@ dem_input = compose(
 RESUME_HELP = ("Continue the run saved in --checkpoint (same DEM, seed and options), or extend "
                "a finished one to -n realisations; replaces that run's outputs.")
 TARGET_SE_HELP = ("Stop early once the run's Monte Carlo standard error is below this: the "
-                  "largest over cells holding >= 1% of the top summit/pit credit, in the DEM's "
-                  "vertical units (catchments: the largest over all probabilities, 0 to 1). "
-                  "-n is then the maximum.")
+                  "largest standard error of a feature's expected prominence/depth, in the "
+                  "DEM's vertical units (catchments: the largest over all probabilities, 0 to "
+                  "1). -n is then the maximum.")
 
 
 def run(*, per_model: bool = False):

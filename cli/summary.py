@@ -1,4 +1,4 @@
-"""The table of top features printed at the end of a run."""
+"""The tables printed at the end of a run."""
 
 from __future__ import annotations
 
@@ -6,80 +6,104 @@ import sys
 
 import numpy as np
 
+__all__ = ["print_summary", "print_catchments", "print_sensitivity", "READING"]
 
-def print_summary(table: dict, *, kind: str, units: str, n: int, outdir, caution: str,
-                  top: int = 10) -> None:
+READING = ("'on DEM' is the figure on the DEM as given; 'expected' and '5-95%' are the mean and "
+           "spread over realisations (the uncertainty the DEM error causes); 'MC s.e.' is the "
+           "Monte Carlo standard error of 'expected' (how precisely this run estimated it).")
+
+
+def _console():
     from rich.console import Console
+
+    return Console(file=sys.stdout, width=120)
+
+
+def print_summary(table, *, kind: str, units: str, n: int, outdir, caution: str,
+                  top: int = 10) -> None:
+    """The top features: DEM figure, expected figure with its 5-95% range,
+    P(counted), P(first), edge-limited share and the Monte Carlo s.e. apart."""
     from rich.table import Table
 
     figure = "prominence" if kind == "peaks" else "depth"
     what = "summits" if kind == "peaks" else "depressions"
-    t = Table(title=f"Top {what} by expected {figure} ({n} realisations)", title_justify="left")
-    for col, just in (("rank", "right"), ("id", "right"), (f"expected {figure} ({units})", "right"),
-                      ("p05–p95", "right"), ("P(counted)", "right"), ("P(first)", "right"),
-                      ("x", "right"), ("y", "right"), ("elevation", "right"), ("edge", "right")):
-        t.add_column(col, justify=just)
-    order = np.argsort(table["rank"].to_numpy(), kind="stable")[:top]
-    for i in order:
-        t.add_row(str(table["rank"][i]), str(table["feature_id"][i]),
-                  f"{table['expected'][i]:.2f} ± {table['se'][i]:.2f}",
-                  f"{table['p05'][i]:.1f}–{table['p95'][i]:.1f}", f"{table['p_above'][i]:.2f}",
-                  f"{table['p_first'][i]:.2f}", f"{table['x'][i]:.1f}", f"{table['y'][i]:.1f}",
-                  f"{table['elevation'][i]:.1f}",
-                  "–" if np.isnan(table["edge_limited_share"][i])
-                  else f"{table['edge_limited_share'][i]:.0%}")
-    console = Console(file=sys.stdout, width=120)
-    if len(order) == 0:
-        console.print(f"No {what} above the threshold in any realisation.")
+    t = Table(title=f"Top {what} by expected {figure}, {units} ({n} realisations)",
+              title_justify="left")
+    for col in ("rank", "id", "on DEM", "expected", "5-95%", "P(counted)", "P(first)",
+                "edge-limited", "MC s.e."):
+        t.add_column(col, justify="right", style="dim" if col == "MC s.e." else None)
+    for _, r in table.head(top).iterrows():
+        edge = r["edge_limited_share"]
+        t.add_row(str(r["rank"]), str(r["feature_id"]), f"{r['unperturbed']:.2f}",
+                  f"{r['expected']:.2f}", f"{r['p05']:.1f}-{r['p95']:.1f}",
+                  f"{r['p_above']:.2f}", f"{r['p_first']:.2f}",
+                  "-" if np.isnan(edge) else f"{edge:.0%}", f"{r['se']:.2f}")
+    console = _console()
+    if len(table) == 0:
+        console.print(f"No {what} counted in enough realisations to be a feature.")
     else:
         console.print(t)
-    console.print(f"{len(table['rank'])} features; outputs in {outdir}")
-    console.print(f"[italic]{caution}[/italic]")
+        console.print(READING, style="italic")
+    console.print(f"{len(table)} features; outputs in {outdir}")
+    console.print(caution, style="italic")
 
 
-def print_catchments(rows: dict, *, n: int, outdir, caution: str) -> None:
-    from rich.console import Console
+def print_catchments(summary, result, *, outdir, caution: str) -> None:
+    """Per outlet and level: catchment and sub-catchment areas; where each outlet snapped."""
     from rich.table import Table
 
-    t = Table(title=f"Catchments ({n} realisations)", title_justify="left")
-    for col in ("outlet", "level", "area km²", "mean km²", "5–95% km²"):
-        t.add_column(col, justify="right")
-    for i in range(len(rows["outlet_id"])):
-        t.add_row(rows["outlet_id"][i], f"{rows['level'][i]:.0%}", f"{rows['area_m2'][i] / 1e6:.3f}",
-                  f"{rows['area_mean_m2'][i] / 1e6:.3f}",
-                  f"{rows['area_p05_m2'][i] / 1e6:.3f}–{rows['area_p95_m2'][i] / 1e6:.3f}")
-    console = Console(file=sys.stdout, width=120)
-    console.print(t)
+    from terrain.outlets import short
+    from terrain.summary.catchments import LEVELS
+
+    console = _console()
+    frames = summary.frames
+    if frames:
+        t = Table(title=f"Catchments and sub-catchments ({result.n} realisations)",
+                  title_justify="left")
+        for col in ("outlet", "level", "catchment km²", "mean (5–95%) km²", "sub-catchment km²",
+                    "snapped (share)", "snap m"):
+            t.add_column(col, justify="right")
+        c, sc, o = frames["catchments"], frames["subcatchments"], frames["outlets"]
+        for i in range(len(c)):
+            k = i // len(LEVELS)
+            t.add_row(short(str(c["outlet_id"][i]), 24), f"{c['level'][i]:.0%}",
+                      f"{c['area_m2'][i] / 1e6:.3f}",
+                      f"{c['area_mean_m2'][i] / 1e6:.3f} ({c['area_p05_m2'][i] / 1e6:.3f}–"
+                      f"{c['area_p95_m2'][i] / 1e6:.3f})", f"{sc['area_m2'][i] / 1e6:.3f}",
+                      f"{o['snapped_share'][k]:.0%}", f"{o['snap_distance_mean_m'][k]:.0f}")
+        console.print(t)
+    name = "channel_probability"
+    p = result.layers[name][0]
+    share = float(np.nanmean(p[~result.dem.nodata] >= 0.5))
+    console.print(f"channel in >= 50% of realisations: {share:.1%} of cells "
+                  f"(drainage area >= {result.job.channel_area:g} m², {result.job.conditioning}, "
+                  f"D{result.job.connectivity})")
     console.print(f"outputs in {outdir}")
-    console.print(f"[italic]{caution}[/italic]")
+    console.print(caution, style="italic")
 
 
 def print_sensitivity(result, *, outdir, caution: str) -> None:
     """Per level and kernel pair: layer differences and the largest p_first difference."""
-    from rich.console import Console
     from rich.table import Table
 
     sens = result.sensitivity
-    console = Console(file=sys.stdout, width=120)
+    console = _console()
     if sens.empty:
         console.print(f"one kernel: no kernel sensitivity to report; outputs in {outdir}")
-        console.print(f"[italic]{caution}[/italic]")
+        console.print(caution, style="italic")
         return
     t = Table(title="Kernel sensitivity (equal RMSE)", title_justify="left")
     for col in ("rmse", "kernels", "layer max |Δ| ± se", "layer mean |Δ|", "noise floor",
                 "max |Δ p_first| ± se (feature)"):
         t.add_column(col, justify="right")
-    keys = list(dict.fromkeys(zip(sens["rmse"], sens["kernel_a"], sens["kernel_b"])))
-    for key in keys:
-        idx = [i for i, k in enumerate(zip(sens["rmse"], sens["kernel_a"], sens["kernel_b"]))
-               if k == key]
-        j = max(idx, key=lambda i: abs(sens["p_first_diff"][i]))
-        i0 = idx[0]
-        t.add_row(f"{key[0]:g}", f"{key[1]}–{key[2]}",
+    for (rmse, ka, kb), g in sens.groupby(["rmse", "kernel_a", "kernel_b"], sort=False):
+        j = g["p_first_diff"].abs().idxmax()
+        i0 = g.index[0]
+        t.add_row(f"{rmse:g}", f"{ka}–{kb}",
                   f"{sens['layer_max_abs_diff'][i0]:.3g} ± {sens['layer_max_abs_diff_se'][i0]:.2g}",
                   f"{sens['layer_mean_abs_diff'][i0]:.3g}", f"{sens['layer_noise_floor'][i0]:.2g}",
                   f"{abs(sens['p_first_diff'][j]):.3f} ± {sens['p_first_diff_se'][j]:.3f} "
                   f"(#{sens['feature_id'][j]})")
     console.print(t)
     console.print(f"outputs in {outdir}")
-    console.print(f"[italic]{caution}[/italic]")
+    console.print(caution, style="italic")

@@ -15,7 +15,7 @@ from terrain.runner import RunInterrupted
 from terrain.sweep import run_checkpoint, sweep, sweep_models
 
 from . import options
-from .common import CAUTION, command_line, guarded
+from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
 from .execute import EXEC_KEYS, error_model, execution, guard_memory, header, interrupted, outputs, read
 from .progress import progress_bar
 from .summary import print_sensitivity
@@ -74,7 +74,8 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     """
     job = CreditJob(kind, threshold=_cutoff(kind, min_prominence, min_depth),
                     threshold_jitter=opts["threshold_jitter"], weight=opts["weight"],
-                    connectivity=opts["connectivity"], base=base)
+                    connectivity=opts["connectivity"], base=base,
+                    merge_level=opts["merge_level"], min_presence=opts["min_presence"])
     levels = _levels(opts)
     models = sweep_models(error_model({**opts, "kernel": "gaussian"}, rmse=levels[0]), levels,
                           opts["kernel"] or ["gaussian"])
@@ -93,6 +94,8 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
             result = sweep(d, job, models, progress=bar, **run_kw)
     except RunInterrupted as exc:
         interrupted(exc, ex.checkpoint)
+    if opts["range_m"] == 0:
+        warn(INDEPENDENT_ERROR)
     write_sweep(out, result, input_path=str(dem), command_line=command_line())
     if not opts["quiet"]:
         print_sensitivity(result, outdir=out, caution=CAUTION)

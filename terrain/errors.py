@@ -18,7 +18,7 @@ from collections.abc import Callable
 
 __all__ = [
     "CairnError", "DemError", "DemNotFoundError", "NotARasterError", "CorruptRasterError",
-    "NoValidCellsError", "BandError", "WindowError", "OptionError", "EmbeddingError",
+    "NoValidCellsError", "BandError", "WindowError", "OptionError",
     "OutputError", "CheckpointError", "MemoryGuardError", "SchedulerError", "WorkerError",
     "OutletError", "RasterTypeError", "CairnWarning",
 ]
@@ -94,10 +94,6 @@ class RasterTypeError(DemError, TypeError):
 # --- options and models --------------------------------------------------------
 class OptionError(CairnError, ValueError):
     """A parameter value is out of range or inconsistent with others."""
-
-
-class EmbeddingError(CairnError, ValueError):
-    """Circulant embedding of a covariance never became non-negative definite."""
 
 
 # --- outputs, runs, resources ---------------------------------------------------

@@ -30,10 +30,12 @@ from .errors import (
     DemNotFoundError,
     NotARasterError,
     OptionError,
+    OutletError,
     OutputError,
     RasterTypeError,
     WindowError,
 )
+from .outlets import Outlets, outlet_ids
 
 __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings", "atomic_path",
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
@@ -261,49 +263,26 @@ def available_memory() -> int:
     return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_AVPHYS_PAGES")
 
 
-def read_outlets(path: str | os.PathLike, dem: Dem) -> tuple[list[str], np.ndarray]:
+def read_outlets(path: str | os.PathLike, dem: Dem) -> Outlets:
     """Outlet points from a GeoPackage, GeoJSON, Shapefile or CSV, in the DEM's CRS.
 
     A CSV needs columns ``x`` and ``y`` (the DEM's CRS) and may have ``id``.
     Vector files are reprojected to the DEM's CRS when both declare one.
-    Ids default to 1..n.
+    Ids follow :mod:`terrain.outlets` (an outlet without one takes its row
+    number); every column other than the geometry (a CSV's x and y) is
+    kept as the outlets' attributes.
 
     Raises
     ------
     OutletError
         Missing or unreadable file, no points, non-point geometries, missing
-        x/y columns.
+        x/y columns, non-finite coordinates, repeated ids.
     """
-    from .errors import OutletError
-
     p = Path(path)
     if not p.exists():
         raise OutletError(f"{p}: no such outlets file")
     try:
-        if p.suffix.lower() == ".csv":
-            import pandas as pd
-
-            df = pd.read_csv(p)
-            cols = {c.lower().strip(): c for c in df.columns}
-            if "x" not in cols or "y" not in cols:
-                raise OutletError(f"{p}: a CSV of outlets needs columns x and y (and optionally id)")
-            xy = df[[cols["x"], cols["y"]]].to_numpy(dtype=np.float64)
-            ids = df[cols["id"]].astype(str).tolist() if "id" in cols else None
-        else:
-            import pyogrio
-            from pyproj import CRS
-
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                gdf = pyogrio.read_dataframe(p)
-            if len(gdf) and dem.crs is not None and gdf.crs is not None and \
-                    not CRS.from_user_input(gdf.crs).equals(CRS.from_user_input(dem.crs)):
-                gdf = gdf.to_crs(dem.crs)
-            geom = gdf.geometry
-            if len(gdf) and not all(t in ("Point",) for t in geom.geom_type):
-                raise OutletError(f"{p}: outlets must be points, found {sorted(set(geom.geom_type))}")
-            xy = np.column_stack([geom.x, geom.y]) if len(gdf) else np.empty((0, 2))
-            ids = gdf["id"].astype(str).tolist() if "id" in gdf.columns else None
+        table, xy = _outlet_csv(p) if p.suffix.lower() == ".csv" else _outlet_vector(p, dem)
     except OutletError:
         raise
     except Exception as exc:  # pyogrio / pandas raise many classes for bad files
@@ -312,10 +291,42 @@ def read_outlets(path: str | os.PathLike, dem: Dem) -> tuple[list[str], np.ndarr
         raise OutletError(f"{p}: no outlet points in the file")
     if not np.isfinite(xy).all():
         raise OutletError(f"{p}: outlet coordinates must be finite numbers")
-    if ids is None:
-        ids = [str(i) for i in range(1, xy.shape[0] + 1)]
-    ids = ["".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in i) for i in ids]
-    return ids, xy
+    cols = {str(c).lower().strip(): c for c in table.columns}
+    values = table[cols["id"]].tolist() if "id" in cols else None
+    ids, numbered = outlet_ids(values, xy.shape[0], str(p))
+    attributes = table.drop(columns=[cols["id"]]) if "id" in cols else table
+    return Outlets(ids, xy, attributes.reset_index(drop=True), str(p), numbered)
+
+
+def _outlet_csv(p: Path):
+    import pandas as pd
+
+    head = pd.read_csv(p, nrows=0).columns
+    ids = [c for c in head if str(c).lower().strip() == "id"]
+    df = pd.read_csv(p, dtype={c: str for c in ids})  # ids stay text ("007")
+    cols = {str(c).lower().strip(): c for c in df.columns}
+    if "x" not in cols or "y" not in cols:
+        raise OutletError(f"{p}: a CSV of outlets needs columns x and y (and optionally id)")
+    xy = df[[cols["x"], cols["y"]]].to_numpy(dtype=np.float64)
+    return df.drop(columns=[cols["x"], cols["y"]]), xy
+
+
+def _outlet_vector(p: Path, dem: Dem):
+    import pyogrio
+    from pyproj import CRS
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        gdf = pyogrio.read_dataframe(p)
+    if len(gdf) and dem.crs is not None and gdf.crs is not None and \
+            not CRS.from_user_input(gdf.crs).equals(CRS.from_user_input(dem.crs)):
+        gdf = gdf.to_crs(dem.crs)
+    geom = gdf.geometry
+    if len(gdf) and (geom.isna().any() or not all(t == "Point" for t in geom.geom_type)):
+        kinds = sorted({str(t) for t in geom.geom_type})
+        raise OutletError(f"{p}: outlets must be points, found {kinds}")
+    xy = np.column_stack([geom.x, geom.y]) if len(gdf) else np.empty((0, 2))
+    return gdf.drop(columns=gdf.geometry.name), xy
 
 
 def dem_warnings(dem: Dem) -> list[CairnWarning]:
@@ -853,45 +864,86 @@ def _json_default(o):
     raise TypeError(type(o).__name__)
 
 
+#: How every raster layer is laid out: a Cloud Optimized GeoTIFF written by GDAL's COG
+#: driver (OGC Cloud Optimized GeoTIFF standard, 2023): 256x256 internal tiles, internal
+#: overviews (average of valid cells) down to one tile, placed as the standard requires,
+#: DEFLATE with the floating-point predictor, per-band statistics stored in the file.
+COG_OPTIONS = dict(driver="COG", compress="deflate", predictor=3, blocksize=256,
+                   overview_resampling="average", statistics="YES", bigtiff="IF_SAFER")
+
+
 def write_layer(dest: str | os.PathLike, dem: Dem, estimate: np.ndarray, se: np.ndarray, *,
-                name: str, units: str, description: str, tags: dict) -> None:
-    """Write one credit layer as a two-band float32 GeoTIFF, atomically.
+                name: str, units: str, description: str, tags: dict, note: str = "") -> None:
+    """Write one layer as a two-band float32 Cloud Optimized GeoTIFF, atomically.
 
     Band 1 is the estimate, band 2 its standard error, both on the DEM's
     grid, CRS and transform, nodata = NaN where the DEM has none. The file is
-    tiled (256x256), DEFLATE-compressed with the floating-point predictor and
-    carries internal overviews; ``tags`` (the run's parameters) are stored as
-    dataset metadata.
+    laid out by GDAL's COG driver (:data:`COG_OPTIONS`): tiled, with internal
+    overviews, DEFLATE with the floating-point predictor, and each band's
+    minimum, maximum, mean, standard deviation and valid percentage stored
+    as ``STATISTICS_*`` band metadata so a GIS can stretch without scanning.
+    ``tags`` (the run's parameters) are dataset metadata; ``note`` (a caution
+    that travels with the layer) is appended to both band descriptions and
+    stored as each band's ``NOTE`` item.
+
+    Memory: 16 bytes per cell while writing (the two float32 bands, and
+    rasterio's in-memory copy of them that the COG driver reads); the
+    overviews are staged in a temporary file beside ``dest``, removed when
+    done. A blocked (out-of-core) writer gets the same layout by copying a
+    tiled staging GeoTIFF with the same :data:`COG_OPTIONS`.
+
+    References
+    ----------
+    .. [1] Open Geospatial Consortium (2023). OGC Cloud Optimized GeoTIFF
+       Standard, OGC 21-026.
+    """
+    e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
+    s = np.where(dem.nodata, np.nan, se).astype(np.float32)
+    suffix = f"; {note}" if note else ""
+    with atomic_path(dest, bands=2) as tmp, _cog_staging(tmp):
+        with _open_cog(tmp, dem) as ds:
+            ds.write(e, 1)
+            ds.write(s, 2)
+            ds.set_band_description(1, f"{name} ({units}){suffix}")
+            ds.set_band_description(2, f"{name} standard error ({units}){suffix}")
+            ds.units = (units, units)
+            ds.update_tags(**{k: _tag(v) for k, v in tags.items()},
+                           LAYER=name, DESCRIPTION=description)
+            for band, role in ((1, "estimate"), (2, "standard_error")):
+                ds.update_tags(band, ROLE=role, **({"NOTE": note} if note else {}))
+
+
+def _open_cog(tmp: Path, dem: Dem):
+    """A two-band float32 writer on ``dem``'s grid that GDAL's COG driver lays out on close.
+
+    rasterio buffers the bands in memory and hands them to the COG driver's
+    copy when the dataset closes (the driver only creates by copying).
     """
     import rasterio
-    from rasterio.enums import Resampling
     from rasterio.transform import Affine
 
     rows, cols = dem.shape
-    tiled = rows >= 256 and cols >= 256
-    profile = dict(driver="GTiff", height=rows, width=cols, count=2, dtype="float32",
-                   crs=dem.crs, transform=Affine(*dem.transform), nodata=np.nan,
-                   compress="deflate", predictor=3)
-    if tiled:
-        profile.update(tiled=True, blockxsize=256, blockysize=256)
-    e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
-    s = np.where(dem.nodata, np.nan, se).astype(np.float32)
-    with atomic_path(dest, bands=2) as tmp:
+    return rasterio.open(tmp, "w", height=rows, width=cols, count=2, dtype="float32",
+                         crs=dem.crs, transform=Affine(*dem.transform), nodata=np.nan,
+                         **COG_OPTIONS)
+
+
+@contextlib.contextmanager
+def _cog_staging(tmp: Path):
+    """Silence rasterio's no-CRS warning; remove the COG driver's overview staging files.
+
+    GDAL's COG driver stages overviews in ``<file>.ovr.tmp`` (and
+    ``<file>.msk.ovr.tmp``) beside the file it writes and deletes them
+    itself; this makes sure none is left after an error either.
+    """
+    try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # no-CRS rasters warn in rasterio
-            with rasterio.open(tmp, "w", **profile) as ds:
-                ds.write(e, 1)
-                ds.write(s, 2)
-                ds.set_band_description(1, f"{name} ({units})")
-                ds.set_band_description(2, f"{name} standard error ({units})")
-                ds.units = (units, units)
-                ds.update_tags(**{k: _tag(v) for k, v in tags.items()},
-                               LAYER=name, DESCRIPTION=description)
-                ds.update_tags(1, ROLE="estimate")
-                ds.update_tags(2, ROLE="standard_error")
-                factors = [f for f in (2, 4, 8, 16, 32) if min(rows, cols) // f >= 64]
-                if factors:
-                    ds.build_overviews(factors, Resampling.average)
+            yield
+    finally:
+        for extra in (".ovr.tmp", ".msk.ovr.tmp"):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(f"{tmp}{extra}")
 
 
 def _tag(v) -> str:
@@ -900,16 +952,22 @@ def _tag(v) -> str:
     return str(v)
 
 
-def write_frames(dest: str | os.PathLike, frames: dict) -> None:
+def write_frames(dest: str | os.PathLike, frames: dict, descriptions: dict | None = None) -> None:
     """Write data frames as the layers of one GeoPackage, atomically.
 
-    ``frames`` maps layer name to GeoDataFrame.
+    ``frames`` maps layer name to GeoDataFrame; ``descriptions`` maps layer
+    name to the text stored in the layer's ``gpkg_contents.description``
+    (the ``gpkg_contents`` table of the OGC GeoPackage Encoding Standard
+    1.3), which a GIS shows as the layer's abstract; GDAL's GPKG driver
+    writes it from the ``DESCRIPTION`` layer creation option.
     """
+    descriptions = descriptions or {}
     with atomic_path(dest) as tmp, warnings.catch_warnings():
         # a DEM without CRS was already reported once; pyogrio would repeat it
         warnings.filterwarnings("ignore", "'crs' was not provided", UserWarning)
         for layer, gdf in frames.items():
-            gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio")
+            options = {"DESCRIPTION": descriptions[layer]} if layer in descriptions else None
+            gdf.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio", layer_options=options)
 
 
 def write_csv(dest: str | os.PathLike, frame) -> None:

@@ -36,6 +36,8 @@ class LayerSpec:
         One sentence a user reads (band description, help text).
     note : str
         A caution that travels with the layer (empty when none).
+    needs_outlets : bool
+        Written only by a catchment run with outlets.
     """
 
     name: str
@@ -44,6 +46,7 @@ class LayerSpec:
     unit: str
     description: str
     note: str = ""
+    needs_outlets: bool = False
 
     def file_name(self, oid: str | None = None) -> str:
         return self.concrete(oid) + ".tif"
@@ -69,10 +72,17 @@ LAYERS: dict[str, LayerSpec] = {s.name: s for s in (
               "share of realisations in which the cell holds water at least the minimum depth "
               "deep after depression filling", DRAINAGE_NOTE),
     LayerSpec("catchment_probability_{id}", "catchments", "membership", "probability",
-              "share of realisations in which the cell drains to outlet {id}", DRAINAGE_NOTE),
+              "share of realisations in which the cell drains to outlet {id} (its whole upstream "
+              "area, nested outlets included)", DRAINAGE_NOTE, True),
+    LayerSpec("subcatchment_probability_{id}", "catchments", "subcatchment", "probability",
+              "share of realisations in which outlet {id} is the first chosen outlet downstream "
+              "of the cell", DRAINAGE_NOTE, True),
     LayerSpec("divide_probability", "catchments", "divide", "probability",
-              "share of realisations in which the cell and a neighbour drain to different exits",
-              DRAINAGE_NOTE),
+              "share of realisations in which the cell and a neighbour lie in different "
+              "sub-catchments (each chosen outlet's, or elsewhere)", DRAINAGE_NOTE, True),
+    LayerSpec("channel_probability", "catchments", "channel", "probability",
+              "share of realisations in which the area draining through the cell reaches the "
+              "channel area", DRAINAGE_NOTE),
 )}
 
 

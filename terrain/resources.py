@@ -3,18 +3,20 @@
 :func:`estimate_run` counts what a run holds at its peak, in every process it
 uses, from the grid's size and types (:func:`terrain.io.read_header`; the
 pixels are not read), the job's own bytes per cell
-(:meth:`~terrain.runner.protocols.Job.memory_per_cell`), its per-cell counts
-and layers, the error model and the execution:
+(:meth:`~terrain.runner.protocols.Job.memory_per_cell`: its accumulators and
+finished layers in the accumulating process, one realisation in a worker),
+its per-cell chunk counts (``new_counts``), the error model and the
+execution:
 
 - a process's own footprint (interpreter and libraries; measured);
 - reading: the band as stored, its mask and the elevations;
-- running: the DEM, the workers' copy of it, the accumulators, one
+- running: the DEM, the workers' copy of it, the job's figure, one
   realisation's work where realisations run, the chunk results in flight
   (at most two per worker, see :mod:`terrain.runner.backends`) and the log;
-- finishing: the layers (a float64 estimate and standard error each) while
-  the accumulators are still held;
-- writing: the layers, summaries, GeoTIFF encoding and the quick-look figure
-  (measured per cell; a quick-look draws at most
+- finishing: the same while the layers' means and standard errors are
+  computed;
+- writing: the DEM, the job's figure, summaries, GeoTIFF encoding and the
+  quick-look figure (measured per cell; a quick-look draws at most
   :data:`~terrain.outputs.plot.QUICKLOOK_CELLS` blocks of a bigger grid).
 
 The peak is the largest of these phases, plus each worker process's own
@@ -48,14 +50,12 @@ WORKER_PROCESS_BYTES = 190 * MiB
 READ_SCRATCH = 4  # nodata mask and boolean temporaries while reading (counted)
 CHECKSUM_SCRATCH = 13  # float64 copy of the DEM while it is hashed (counted)
 CONTEXT = 4  # the float32 DEM the realisations read (counted)
-LAYER = 16  # one finished layer: float64 estimate and standard error (counted)
 MOMENTS_SCRATCH = 24  # float64 temporaries of a layer's mean and standard error (counted)
 SUMMARY_SCRATCH = 100  # feature or catchment summaries and GeoTIFF encoding (measured)
 BLOCKS_SCRATCH = 10  # the quick-look's float32 copies of a layer reduced to blocks (counted)
 QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, rendering (measured)
-SWEEP_KEPT = 2 * LAYER  # a sweep keeps two layers of every finished run (counted)
-FIELD_KEPT = 16  # correlated error: square roots of the embedding's eigenvalues (2x grid)
-FIELD_DRAW = 100  # correlated error: one draw's white noise and FFTs (2x grid)
+SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run
+FIELD_DRAW = 24  # correlated error: a draw's float64 field and noise tiles, float32 copy (counted)
 LOG_BYTES_PER_PAIR = 21  # one logged pair on grids below 2**31 cells (counted)
 PAIRS_PER_REALISATION = 2000  # assumed; the run re-checks its log as it grows
 
@@ -139,7 +139,7 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     grid : RasterHeader or Dem
         The grid read (a header is enough: the pixels are not needed).
     job : a :class:`~terrain.runner.protocols.Job`
-        Its ``memory_per_cell``, ``new_counts`` and ``layers`` are read.
+        Its ``memory_per_cell`` and ``new_counts`` are read.
     ex : Execution, optional
         Workers, backend and realisations (default: ``Execution()``).
     model : ErrorModel, optional
@@ -153,8 +153,7 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     cells, value, stored = _grid(grid)
     parent_job, worker_job = job.memory_per_cell(value)
     counts = sum(a.nbytes for a in job.new_counts(1).values())  # one chunk result per cell
-    layers = LAYER * len(job.layers)
-    kept, draw = (FIELD_KEPT, FIELD_DRAW) if model is not None and model.correlated else (0, 0)
+    kept, draw = 0, FIELD_DRAW if model is not None and model.correlated else 0
     backend = ex.resolved_backend
     local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
     dem = value + 1
@@ -165,8 +164,8 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
         running = held + max(CHECKSUM_SCRATCH, (2 * ex.n_workers + 1) * counts + CONTEXT + kept)
     drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)  # a big grid is drawn in blocks
     phases = {"read": 2 * stored + value + READ_SCRATCH, "running": running,
-              "finishing": held + layers + MOMENTS_SCRATCH,
-              "writing": dem + layers + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
+              "finishing": held + MOMENTS_SCRATCH,
+              "writing": dem + parent_job + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
               + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
     worker_cell = CONTEXT + kept + worker_job + draw + 2 * counts if local else 0
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
@@ -198,5 +197,7 @@ def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = N
     """One line on the memory a run of ``job`` needs: the guard's own figure."""
     ex = ex if ex is not None else Execution()
     est = estimate_run(grid, job, ex, model=model)
+    parent, worker = job.memory_per_cell(_grid(grid)[1])
     return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
-            f"{_gib(available_bytes())} available)")
+            f"{_gib(available_bytes())} available); the job itself: ~{worker} bytes per cell "
+            f"per worker, {parent} in the accumulating process")

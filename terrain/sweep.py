@@ -4,8 +4,11 @@ Every (kernel, RMSE) run uses the same seed and quantile draws (one uniform
 per cell mapped through each kernel's inverse CDF, scaled to the level), so
 runs differ only by the kernel's shape and scale: common random numbers
 across levels and kernels make the curves smooth and the paired
-differences precise. Features are defined once, from the union of the credit
-regions of all runs, and followed across runs.
+differences precise. Every run shares one set of feature regions (the
+unperturbed DEM's, at the merge level of the smallest RMSE), so a feature
+resolvable at some level has its row at every level, and the sweep shows
+credit spreading between features as the error grows; kernel differences
+are not artefacts of splitting.
 
 Kernel sensitivity is reported as measured differences (a bound of the form
 ||f||_inf ||K1 - K2||_1 holds for the joint kernel over all cells, whose L1
@@ -22,7 +25,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from scipy import ndimage
 
 from . import defaults
 from .dem import Dem
@@ -31,16 +33,31 @@ from .jobs.credit import CreditJob, log_weights
 from .layers import layer_name
 from .noise import ErrorModel
 from .runner import RunResult, run_ensemble
-from .summary.features import feature_figures, feature_table, find_features, first_indicator
+from .summary.features import FigureMatrix, figure_matrix
 
-__all__ = ["SWEEP_COLUMNS", "SENSITIVITY_COLUMNS", "SweepResult", "sweep", "sweep_models",
-           "run_checkpoint"]
+__all__ = ["SWEEP_COLUMNS", "SENSITIVITY_COLUMNS", "SWEEP_COLUMN_KINDS", "SENSITIVITY_COLUMN_KINDS",
+           "SweepResult", "sweep", "sweep_models", "run_checkpoint"]
 
-SWEEP_COLUMNS = ("kernel", "rmse", "feature_id", "x", "y", "expected", "se", "p_above", "p_first",
-                 "p_first_se", "credit_share", "credit_share_se")
+SWEEP_COLUMNS = ("kernel", "rmse", "feature_id", "unperturbed", "x", "y", "expected", "se",
+                 "p_above", "p_above_se", "p_first", "p_first_se", "credit_share", "credit_share_se")
 SENSITIVITY_COLUMNS = ("rmse", "kernel_a", "kernel_b", "layer_max_abs_diff", "layer_max_abs_diff_se",
                        "layer_mean_abs_diff", "layer_noise_floor", "feature_id", "expected_diff",
                        "expected_diff_se", "p_first_diff", "p_first_diff_se")
+#: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`);
+#: credit shares are probabilities' kin (shares of the total), the layer differences are
+#: per-cell credit.
+SWEEP_COLUMN_KINDS = {"kernel": "text", "rmse": "parameter", "feature_id": "id",
+                      "unperturbed": "vertical", "x": "coordinate", "y": "coordinate",
+                      "expected": "vertical", "se": "vertical", "p_above": "probability",
+                      "p_above_se": "probability", "p_first": "probability",
+                      "p_first_se": "probability", "credit_share": "probability",
+                      "credit_share_se": "probability"}
+SENSITIVITY_COLUMN_KINDS = {"rmse": "parameter", "kernel_a": "text", "kernel_b": "text",
+                            "layer_max_abs_diff": "credit", "layer_max_abs_diff_se": "credit",
+                            "layer_mean_abs_diff": "credit", "layer_noise_floor": "credit",
+                            "feature_id": "id", "expected_diff": "vertical",
+                            "expected_diff_se": "vertical", "p_first_diff": "probability",
+                            "p_first_diff_se": "probability"}
 
 
 @dataclass(frozen=True)
@@ -48,12 +65,11 @@ class SweepResult:
     """All runs of a sweep and the tables made from them."""
 
     runs: dict  # (kernel, rmse) -> RunResult
-    job: CreditJob  # resolved (one threshold for every run)
-    labels: np.ndarray
-    n_features: int
+    job: CreditJob  # resolved: one cut-off and one set of regions for every run
+    ids: np.ndarray  # feature (region) ids with a row
     rows: pd.DataFrame  # SWEEP_COLUMNS
     sensitivity: pd.DataFrame  # SENSITIVITY_COLUMNS
-    top: list  # feature ids, largest first
+    top: list  # feature ids, largest expected figure first
     defaults: dict
 
 
@@ -84,7 +100,8 @@ def sweep(dem: Dem, job: CreditJob, models, *, realisations: int = 200, seed: in
     ----------
     dem : Dem
     job : CreditJob
-        Fixed across runs; a default threshold is 3 x the largest RMSE.
+        Fixed across runs; a default cut-off is 3 x the largest RMSE and the
+        default merge level min(2 x the smallest RMSE, cut-off).
     models : sequence of ErrorModel
         Usually :func:`sweep_models` (every kernel at every level).
     realisations, seed : as for :func:`terrain.runner.run_ensemble`
@@ -106,119 +123,89 @@ def sweep(dem: Dem, job: CreditJob, models, *, realisations: int = 200, seed: in
     models = list(models)
     if not models:
         raise OptionError("{rmse} needs at least one level", "rmse")
-    used = {"threshold": defaults.RULES["threshold"]} if job.threshold is None else {}
-    job = dataclasses.replace(job, threshold=defaults.cutoff(job.threshold,
-                                                             max(m.rmse for m in models)))
+    job = _shared_job(dem, job, models)
+    main = layer_name(job.kind, "birth_credit")
     runs: dict[tuple[str, float], RunResult] = {}
     total = len(models) * realisations
     for j, model in enumerate(models):
         cb = (lambda d, t, j=j: progress(j * realisations + d, total)) if progress else None
         res = run_ensemble(dem, job, model, realisations=realisations, seed=seed, progress=cb,
                            checkpoint=run_checkpoint(checkpoint, model), **run_kw)
-        # keep what the tables need: 4 float64 arrays per cell per run
-        keep = (layer_name(job.kind, "birth_credit"), layer_name(job.kind, "birth_probability"))
-        runs[(model.kernel, model.rmse)] = dataclasses.replace(
-            res, layers={n: res.layers[n] for n in keep})
-    job = next(iter(runs.values())).job
-    labels, k = _union_features(runs, job, dem)
-    rows, per_run = _sweep_rows(runs, job, labels, k)
-    expected_max = np.zeros(k)
-    for _figs, _, table in per_run.values():
-        expected_max = np.maximum(expected_max, table["expected"].to_numpy())
-    top_ids = [int(i) + 1 for i in np.argsort(-expected_max, kind="stable")[:top]]
+        # keep what the tables need: 2 float64 arrays per cell per run
+        runs[(model.kernel, model.rmse)] = dataclasses.replace(res, layers={main: res.layers[main]})
+    fms = {key: figure_matrix(r.log, r.n) for key, r in runs.items()}
+    ids = _row_ids(fms, job.min_presence)
+    rows, expected_max = _sweep_rows(runs, fms, job, ids)
+    top_ids = [int(i) for i in ids[np.argsort(-expected_max, kind="stable")[:top]]]
     kernels = list(dict.fromkeys(m.kernel for m in models))
     levels = sorted({m.rmse for m in models})
-    sens = _kernel_sensitivity(runs, per_run, kernels, levels, top_ids,
-                               layer_name(job.kind, "birth_credit"))
-    return SweepResult(runs, job, labels, k, rows, sens, top_ids, used)
+    sens = _kernel_sensitivity(runs, fms, kernels, levels, top_ids, main)
+    return SweepResult(runs, job, ids, rows, sens, top_ids, job.defaults_used())
 
 
-def _sweep_rows(runs, job, labels, k):
-    main = layer_name(job.kind, "birth_credit")
+def _shared_job(dem: Dem, job: CreditJob, models) -> CreditJob:
+    """The job every run shares: cut-off from the largest RMSE, regions from the smallest."""
+    thr = defaults.cutoff(job.threshold, max(m.rmse for m in models))
+    merge = defaults.merge_level(job.merge_level, min(m.rmse for m in models), thr)
+    used = tuple(n for n, v in (("threshold", job.threshold), ("merge_level", job.merge_level))
+                 if v is None)
+    fixed = dataclasses.replace(job, threshold=thr, merge_level=merge,
+                                from_defaults=job.from_defaults + used)
+    return fixed.resolved(dem, min(models, key=lambda m: m.rmse))
+
+
+def _row_ids(fms: dict, min_presence: float) -> np.ndarray:
+    """Regions counted in at least ``min_presence`` of realisations in some run."""
+    keep = [fm.ids[fm.present.mean(axis=0) >= min_presence] for fm in fms.values()
+            if fm.present.shape[0]]
+    return np.unique(np.concatenate(keep)).astype(np.int64) if keep else np.zeros(0, np.int64)
+
+
+def _columns_of(fm: FigureMatrix, ids: np.ndarray) -> FigureMatrix:
+    """The figure matrix restricted (and padded with absent columns) to ``ids``."""
+    n = fm.figure.shape[0]
+    out = [np.zeros((n, ids.size)), np.zeros((n, ids.size), bool), np.zeros((n, ids.size), bool)]
+    if fm.ids.size:
+        pos = np.minimum(np.searchsorted(fm.ids, ids), fm.ids.size - 1)
+        has = fm.ids[pos] == ids
+        for dst, src in zip(out, (fm.figure, fm.present, fm.edge)):
+            dst[:, has] = src[:, pos[has]]
+    return FigureMatrix(ids, *out)
+
+
+def _firsts(fm: FigureMatrix, ids: np.ndarray) -> np.ndarray:
+    """(n_real, len(ids)) bool: the region ranks first among all regions."""
+    first = fm.first()
+    return _columns_of(FigureMatrix(fm.ids, first.astype(float), first, first), ids).present
+
+
+def _sweep_rows(runs, fms, job, ids):
+    reg = job.regions
+    dem = next(iter(runs.values())).dem
+    ux, uy = dem.xy(reg.birth[ids - 1])
+    unperturbed = np.where(np.isinf(reg.persistence[ids - 1]), np.nan, reg.persistence[ids - 1])
     rows = {c: [] for c in SWEEP_COLUMNS}
-    per_run = {}
+    expected_max = np.zeros(ids.size)
     for (kernel, level), res in runs.items():
-        table = feature_table(res.dem, labels, k, res.layers[main][0], res.log, res.n, base=job.base)
-        figs, present, _ = feature_figures(labels, k, res.log, res.n, base=job.base)
-        first = first_indicator(figs, present)
-        share, share_se = _credit_shares(res, labels, k, job)
-        per_run[(kernel, level)] = (figs, first, table)
+        fm = _columns_of(fms[(kernel, level)], ids)
         n = max(res.n, 1)
-        p1 = table["p_first"].to_numpy()
-        block = {"kernel": [kernel] * k, "rmse": [level] * k, "feature_id": np.arange(1, k + 1),
-                 "x": table["x"], "y": table["y"], "expected": table["expected"],
-                 "se": table["se"], "p_above": table["p_above"], "p_first": p1,
+        p1 = _firsts(fms[(kernel, level)], ids).sum(axis=0) / n
+        pa = fm.present.sum(axis=0) / n
+        exp = fm.figure.sum(axis=0) / n
+        expected_max = np.maximum(expected_max, exp)
+        share, share_se = _credit_shares(res, ids, job)
+        block = {"kernel": [kernel] * ids.size, "rmse": [level] * ids.size, "feature_id": ids,
+                 "unperturbed": unperturbed, "x": ux, "y": uy, "expected": exp,
+                 "se": fm.figure.std(axis=0) / np.sqrt(n) if res.n else np.zeros(ids.size),
+                 "p_above": pa, "p_above_se": np.sqrt(pa * (1 - pa) / n), "p_first": p1,
                  "p_first_se": np.sqrt(p1 * (1 - p1) / n), "credit_share": share,
                  "credit_share_se": share_se}
         for col in SWEEP_COLUMNS:
             rows[col].extend(np.asarray(block[col]).tolist())
-    return pd.DataFrame(rows, columns=list(SWEEP_COLUMNS)), per_run
+    return pd.DataFrame(rows, columns=list(SWEEP_COLUMNS)), expected_max
 
 
-def _union_features(runs, job, dem) -> tuple[np.ndarray, int]:
-    """Features from the union of every run's credit regions.
-
-    A connected component of the union is split between the features of the
-    run that resolves the most distinct features inside it (lowest error
-    level on ties), each cell going to the nearest of them; so two summits
-    that are distinct at some level and bridged at another stay two features.
-    """
-    main = layer_name(job.kind, "birth_credit")
-    prob = layer_name(job.kind, "birth_probability")
-    structure = np.ones((3, 3), int) if job.connectivity == 8 else None
-    per_run = []
-    union = np.zeros(dem.shape, bool)
-    for key in sorted(runs, key=lambda kr: (kr[1], kr[0])):
-        res = runs[key]
-        lab, _ = find_features(res.layers[main][0], dem.nodata, probability=res.layers[prob][0],
-                               connectivity=job.connectivity)
-        per_run.append(lab)
-        union |= lab > 0
-    comp, nc = ndimage.label(union, structure=structure)
-    best_count = np.zeros(nc + 1, np.int64)
-    best_run = np.zeros(nc + 1, np.int64)
-    for r, lab in enumerate(per_run):
-        on = lab > 0
-        pairs = np.unique(np.stack([comp[on], lab[on]]), axis=1) if on.any() else np.zeros((2, 0), int)
-        count = np.bincount(pairs[0], minlength=nc + 1)
-        better = count > best_count
-        best_count[better] = count[better]
-        best_run[better] = r
-    seeds = np.zeros(dem.shape, np.int64)
-    next_id = 1
-    for r, lab in enumerate(per_run):
-        comps = np.flatnonzero((best_run == r) & (best_count > 1))
-        if comps.size == 0:
-            continue
-        sel = np.isin(comp, comps) & (lab > 0)
-        uniq, inv = np.unique(lab[sel], return_inverse=True)
-        seeds[sel] = next_id + inv
-        next_id += uniq.size
-    if next_id > 1:
-        _, (ir, ic) = ndimage.distance_transform_edt(seeds == 0, return_indices=True)
-        nearest = seeds[ir, ic]
-    else:
-        nearest = np.zeros(dem.shape, np.int64)
-    split = best_count[comp] > 1
-    key = np.where(split, (nc + 1) + nearest, comp)
-    key = np.where(union, key, 0)
-    return _renumber(key)
-
-
-def _renumber(key: np.ndarray) -> tuple[np.ndarray, int]:
-    """Labels 1..k in raster order of each key's first cell (0 stays 0)."""
-    flat = key.reshape(-1)
-    nz = np.flatnonzero(flat)
-    vals, first_pos = np.unique(flat[nz], return_index=True)
-    vals = vals[np.argsort(first_pos, kind="stable")]
-    lut = {int(v): i + 1 for i, v in enumerate(vals)}
-    labels = np.zeros(flat.size, np.int32)
-    if nz.size:
-        labels[nz] = np.array([lut[int(v)] for v in flat[nz]], np.int32)
-    return labels.reshape(key.shape), len(vals)
-
-
-def _credit_shares(res: RunResult, labels, k, job) -> tuple[np.ndarray, np.ndarray]:
+def _credit_shares(res: RunResult, ids: np.ndarray, job) -> tuple[np.ndarray, np.ndarray]:
     """Each feature's share of the total birth credit, with a delta-method SE.
 
     Per realisation A_f = weights born in feature f, T = all weights;
@@ -226,16 +213,17 @@ def _credit_shares(res: RunResult, labels, k, job) -> tuple[np.ndarray, np.ndarr
     """
     n = max(res.n, 1)
     log = res.log
-    w = log_weights(log, job.weight, job.base)
+    w = log_weights(log, job.weight)
     real = log["real"].astype(np.int64)
-    fid = labels.reshape(-1)[log["birth"].astype(np.int64)] if w.size else np.zeros(0, np.int32)
     t = np.bincount(real, weights=w, minlength=n)[:n]
-    a = np.zeros((n, k))
-    inside = fid > 0
-    np.add.at(a, (real[inside], fid[inside] - 1), w[inside])
+    a = np.zeros((n, ids.size))
+    if ids.size:
+        col = np.minimum(np.searchsorted(ids, log["region"]), ids.size - 1)
+        inside = ids[col] == log["region"]
+        np.add.at(a, (real[inside], col[inside]), w[inside])
     mt = t.mean()
     if not mt > 0:
-        return np.zeros(k), np.zeros(k)
+        return np.zeros(ids.size), np.zeros(ids.size)
     ma = a.mean(axis=0)
     r = ma / mt
     cov = ((a - ma) * (t - mt)[:, None]).mean(axis=0)
@@ -243,26 +231,27 @@ def _credit_shares(res: RunResult, labels, k, job) -> tuple[np.ndarray, np.ndarr
     return r, np.sqrt(var)
 
 
-def _pair_rows(level, ka, kb, ra, rb, per_run, top_ids, main):
+def _pair_rows(level, ka, kb, ra, rb, fms, top_ids, main):
     (ea, sa), (eb, sb) = ra.layers[main], rb.layers[main]
     d = np.abs(ea - eb)
     valid = ~ra.dem.nodata
     i = int(np.argmax(np.where(valid, d, -1)))
     se_pair = np.sqrt(sa ** 2 + sb ** 2)  # conservative: ignores the CRN correlation
-    fa, firsta, _ = per_run[(ka, level)]
-    fb, firstb, _ = per_run[(kb, level)]
+    ids = np.asarray(top_ids, np.int64)
+    fa, fb = _columns_of(fms[(ka, level)], ids), _columns_of(fms[(kb, level)], ids)
+    first_a, first_b = _firsts(fms[(ka, level)], ids), _firsts(fms[(kb, level)], ids)
     n = max(min(ra.n, rb.n), 1)
-    for f in top_ids:
-        dfig = fa[:n, f - 1] - fb[:n, f - 1]  # paired by realisation (common random numbers)
-        dfirst = firsta[:n, f - 1].astype(float) - firstb[:n, f - 1]
+    for j, f in enumerate(top_ids):
+        dfig = fa.figure[:n, j] - fb.figure[:n, j]  # paired by realisation (common random numbers)
+        dfirst = first_a[:n, j].astype(float) - first_b[:n, j]
         yield (level, ka, kb, float(d.reshape(-1)[i]), float(se_pair.reshape(-1)[i]),
                float(d[valid].mean()), float(se_pair[valid].mean()), f, float(dfig.mean()),
                float(dfig.std() / np.sqrt(n)), float(dfirst.mean()),
                float(dfirst.std() / np.sqrt(n)))
 
 
-def _kernel_sensitivity(runs, per_run, kernels, levels, top_ids, main) -> pd.DataFrame:
+def _kernel_sensitivity(runs, fms, kernels, levels, top_ids, main) -> pd.DataFrame:
     rows = [row for level in levels for ka, kb in itertools.combinations(kernels, 2)
-            for row in _pair_rows(level, ka, kb, runs[(ka, level)], runs[(kb, level)], per_run,
+            for row in _pair_rows(level, ka, kb, runs[(ka, level)], runs[(kb, level)], fms,
                                   top_ids, main)]
     return pd.DataFrame(rows, columns=list(SENSITIVITY_COLUMNS))

@@ -81,8 +81,9 @@ def write_tif(path, z, *, crs="EPSG:32633", transform=None, nodata=None, dtype=N
 @pytest.fixture
 def cairn(monkeypatch):
     """Run the cairn CLI in-process; returns (exit code, stdout, stderr)."""
-    from cairn_cli.main import run
     from click.testing import CliRunner
+
+    from cairn_cli.main import run
 
     def invoke(*args):
         runner = CliRunner()
@@ -101,3 +102,41 @@ class _Entry:
 
     def main(self, args=None, prog_name=None, **kwargs):
         self.fn(args)
+
+
+def upland(shape=(200, 260), cell=1.0):
+    """An invented lidar-like upland (1 m cells, metres), built for the feature tests.
+
+    Ground falling gently in every direction from a flat-topped hill about
+    21 m high (a top of ~1,500 cells); a flat-surfaced lake about 4 m below
+    its spill point (a floor of ~2,100 cells, the water surface a DEM
+    records); a 10 m dome whose top carries knobs of 0.08 and 0.2 m prominence;
+    a small cone-shaped hollow about 1.4 m deep. Returns (z, footprints): each feature's cells.
+    """
+    rows, cols = shape
+    r, c = np.mgrid[0:rows, 0:cols].astype(np.float64)
+
+    def dist(r0, c0):
+        return np.hypot(r - r0, c - c0)
+
+    ground = 80 - 0.05 * dist(60, 190)
+    z = ground.copy()
+    # flat-topped hill at the top of the ground
+    d = dist(60, 190)
+    z = np.maximum(z, np.where(d <= 22, 101.0, 101.0 - 1.2 * (d - 22)))
+    # lake: a flat floor 4 m below the lowest ground around it
+    d = dist(60, 60)
+    floor = ground[d <= 27.5].min() - 4.0
+    z = np.where(d <= 26, floor, z)
+    # dome with knobs smaller than 2 x RMSE
+    d = dist(150, 80)
+    bump = 10.0 * np.exp(-(d / 18.0) ** 4)
+    for dr, dc in ((-5, -3), (4, 5), (5, -5)):
+        bump += 0.4 * np.exp(-(dist(150 + dr, 80 + dc) / 1.5) ** 2)
+    z = z + bump
+    # cone-shaped hollow
+    d = dist(160, 200)
+    z = np.where(d < 6, z - 1.7 * (1 - d / 6), z)
+    feet = {"lake": dist(60, 60) <= 26, "hill": dist(60, 190) <= 22,
+            "dome": dist(150, 80) <= 5, "hollow": dist(160, 200) <= 2}
+    return z.astype(np.float32), feet

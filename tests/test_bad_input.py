@@ -22,7 +22,8 @@ RUN = ("--rmse", "1", "-n", "4", "--workers", "1", "-q")
 
 
 def one_line_error(code, err, *needles):
-    lines = err.strip().splitlines()
+    # warnings said before the error (e.g. about independent error) are not part of it
+    lines = [line for line in err.strip().splitlines() if not line.startswith("cairn: warning:")]
     assert code == 2, err
     assert len(lines) == 1 and lines[0].startswith("cairn: error:"), err
     for n in needles:
@@ -395,7 +396,8 @@ def test_interrupt_while_writing_keeps_the_previous_set(cairn, dem, done, monkey
 
     monkeypatch.setattr(plot, "feature_map", ctrl_c)
     code, _, err = cairn("peaks", dem, "-o", done, *RUN, "--seed", "7", "--overwrite")
-    assert code == 130 and err.strip() == "cairn: interrupted", err
+    assert code == 130 and err.strip().splitlines()[-1] == "cairn: interrupted", err
+    no_traceback(err)
     assert snapshot(done) == before
 
 
@@ -841,15 +843,6 @@ def test_nugget_without_range_refused(cairn, dem, tmp_path):
     code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--nugget", "0.3")
     one_line_error(code, err, "--nugget", "--range")
     nothing_written(tmp_path / "o")
-
-
-def test_embedding_error_does_not_advise_a_nugget():
-    from terrain.errors import EmbeddingError
-    from terrain.noise.fields import CorrelatedField
-
-    with pytest.raises(EmbeddingError) as e:
-        CorrelatedField((64, 64), (1.0, 1.0), "gaussian", 400.0, max_factor=2)
-    assert "nugget" not in e.value.render(lambda p: p) and "range_m" in e.value.params
 
 
 def test_quicklook_of_a_big_grid_is_drawn_in_blocks(cairn, dem, tmp_path, monkeypatch):

@@ -24,7 +24,9 @@ from terrain.engine.persistence import pairs_and_fill
 from terrain.errors import OutletError
 from terrain.jobs import CatchmentJob
 from terrain.noise import ErrorModel
+from terrain.outputs.tables import rounded
 from terrain.runner import run_ensemble
+from terrain.summary.catchments import CATCHMENT_COLUMN_KINDS
 
 from .conftest import smooth_terrain, write_tif
 from .reference_fill import fill_depressions
@@ -63,7 +65,8 @@ def test_tilted_plane_drains_to_low_edge():
     # beats the diagonal 0.1/(10 sqrt 2))
     assert np.array_equal(rec[:, 1:], idx[:, :-1])
     assert np.all(rec[:, 0] == -1)
-    assert np.array_equal(fl.acc.reshape(nr, nc)[:, 0], np.full(nr, float(nc)))
+    # accumulation in m^2: the whole row of 10 m x 10 m cells drains through its west cell
+    assert np.array_equal(fl.acc.reshape(nr, nc)[:, 0], np.full(nr, nc * 100.0))
 
 
 def test_cone_drains_radially():
@@ -83,8 +86,8 @@ def test_flow_accumulation_is_conserved_with_nodata_holes():
     z[20:25, 30:40] = np.nan
     z[50, 5] = np.nan
     fl = flow(z, cell_w=10.0, cell_h=10.0)
-    # conservation: accumulation at the exits sums to the number of valid cells
-    assert fl.acc[(fl.rec < 0) & fl.valid].sum() == np.isfinite(z).sum()
+    # conservation: accumulation at the exits sums to the area of the valid cells
+    assert fl.acc[(fl.rec < 0) & fl.valid].sum() == np.isfinite(z).sum() * 100.0
 
 
 def _run_valley(outlets_rc, n=30, rmse=1e-3, seed=0, snap=0.0):
@@ -136,8 +139,8 @@ def test_outlet_edge_cases(tmp_path):
     x, y = dem.xy(np.array([5 * 21 + 5]))
     with pytest.raises(OutletError, match="nodata"):
         CatchmentJob(["a"], [[x[0], y[0]]], snap_m=10.0).resolved(dem, ErrorModel(rmse=1.0))
-    with pytest.raises(OutletError, match="no outlet"):
-        CatchmentJob([], np.empty((0, 2)), snap_m=10.0)
+    with pytest.raises(OutletError, match="not unique"):
+        CatchmentJob(["a", "a"], [[x[0], y[0]]] * 2, snap_m=10.0)
 
 
 def test_cli_catchments_end_to_end(tmp_path, cairn):
@@ -147,29 +150,70 @@ def test_cli_catchments_end_to_end(tmp_path, cairn):
     dem = write_tif(tmp_path / "v.tif", z.astype(np.float32),
                     transform=from_origin(500000.0, 6800000.0, cell, cell))
     with rasterio.open(dem) as ds:
-        x, y = ds.xy(50, 20)
-    # outlets given in geographic coordinates: reprojected to the DEM's UTM grid
+        (x, y), (x2, y2) = ds.xy(50, 20), ds.xy(30, 20)
+    # outlets given in geographic coordinates: reprojected to the DEM's UTM grid; their
+    # attribute columns travel to every table row about them
     import geopandas as gpd
     from shapely.geometry import Point
 
-    pts = gpd.GeoDataFrame({"id": ["ford"]}, geometry=[Point(x, y)], crs="EPSG:32633").to_crs(4326)
+    pts = gpd.GeoDataFrame({"id": ["ford", "weir"], "name": ["Ford Gauge", "Weir Gauge"],
+                            "river": ["Veld Beck", "Veld Beck"], "level": [3, 4]},
+                           geometry=[Point(x, y), Point(x2, y2)], crs="EPSG:32633").to_crs(4326)
     pts.to_file(tmp_path / "o.geojson", driver="GeoJSON")
     code, out, err = cairn("catchments", dem, "--outlets", tmp_path / "o.geojson", "-o",
                            tmp_path / "out", "--rmse", "0.001", "-n", "8", "--workers", "1", "-q",
                            "--snap", "0")
     assert code == 0, err
-    for name in ("catchment_probability_ford.tif", "divide_probability.tif"):
+    for name in ("catchment_probability_ford.tif", "subcatchment_probability_weir.tif",
+                 "divide_probability.tif", "channel_probability.tif"):
         with rasterio.open(tmp_path / "out" / name) as ds:
-            assert ds.count == 2 and ds.descriptions[1].endswith("standard error (probability)")
+            assert ds.count == 2 and "standard error (probability)" in ds.descriptions[1]
+            assert "flood behaviour" in ds.tags()["note"]
     gdf = pyogrio.read_dataframe(tmp_path / "out" / "catchments.gpkg", layer="catchments")
-    assert list(gdf.columns[:-1]) == ["outlet_id", "level", "area_m2", "area_mean_m2",
-                                      "area_p05_m2", "area_p95_m2"]
+    assert list(gdf.columns[:-1]) == ["outlet_id", "layer_id", "level", "area_m2", "area_mean_m2",
+                                      "area_p05_m2", "area_p95_m2", "name", "river", "input_level"]
     csv = pd.read_csv(tmp_path / "out" / "catchments.csv", dtype={"outlet_id": str})
-    pd.testing.assert_frame_equal(csv, pd.DataFrame(gdf.drop(columns="geometry")), check_dtype=False)
-    assert gdf.area_m2.iloc[0] == pytest.approx(51 * 41 * 100.0, rel=0.02)
-    assert json.loads((tmp_path / "out" / "run.json").read_text())["parameters"]["snap_m"] == 0.0
+    pd.testing.assert_frame_equal(csv, rounded(pd.DataFrame(gdf.drop(columns="geometry")),
+                                               CATCHMENT_COLUMN_KINDS), check_dtype=False)
+    ford = gdf[gdf.outlet_id == "ford"]
+    assert list(ford.name) == ["Ford Gauge"] * 2 and list(ford.input_level) == [3, 3]
+    # valley worked example: 51 rows x 41 columns drain through row 50; the weir's 31 rows
+    # are nested in the ford's catchment and split from its sub-catchment
+    assert ford.area_m2.iloc[0] == pytest.approx(51 * 41 * 100.0, rel=0.02)
+    sub = pyogrio.read_dataframe(tmp_path / "out" / "catchments.gpkg", layer="subcatchments")
+    sub_ford = sub[(sub.outlet_id == "ford") & (sub.level == 0.5)]
+    assert sub_ford.area_m2.iloc[0] == pytest.approx(20 * 41 * 100.0, rel=0.03)
+    assert list(sub_ford.river) == ["Veld Beck"]
+    outs = pyogrio.read_dataframe(tmp_path / "out" / "catchments.gpkg", layer="outlets")
+    assert list(outs.outlet_id) == ["ford", "weir"] and list(outs.name) == ["Ford Gauge", "Weir Gauge"]
+    assert outs.snapped_share.tolist() == [1.0, 1.0]
+    # snap 0: the snapped cell is the given cell; the distance is the reprojection's round trip
+    assert outs.snap_distance_mean_m.max() < 0.01
+    assert np.allclose(outs[["snapped_x", "snapped_y"]].to_numpy(), [[x, y], [x2, y2]])
+    run = json.loads((tmp_path / "out" / "run.json").read_text())
+    assert run["parameters"]["snap_m"] == 0.0 and run["parameters"]["conditioning"] == "breach"
+    assert set(run["defaults"]) == {"channel_area", "conditioning", "max_breach_depth"}
     code, _, err = cairn("catchments", dem, "--help")
     assert code == 0
+
+
+def test_cli_channels_without_outlets(tmp_path, cairn):
+    z, cell = _valley(40, 21)
+    dem = write_tif(tmp_path / "v.tif", z.astype(np.float32))
+    code, _, err = cairn("catchments", dem, "-o", tmp_path / "out", "--rmse", "0.01", "-n", "4",
+                         "--workers", "1", "-q", "--channel-area", "5000", "--connectivity", "4",
+                         "--conditioning", "fill")
+    assert code == 0, err
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [
+        "channel_probability.tif", "quicklook.png", "run.json"]
+    with rasterio.open(tmp_path / "out" / "channel_probability.tif") as ds:
+        p = ds.read(1)
+    # worked example: each row's sides drain straight to the valley floor (column 10), so
+    # floor cell r holds (r + 1) x 21 cells of 100 m^2, >= 5000 m^2 from row 2 on
+    assert p[:2, 10].max() == 0 and p[2:, 10].min() == 1
+    run = json.loads((tmp_path / "out" / "run.json").read_text())
+    assert run["parameters"]["connectivity"] == 4 and run["parameters"]["max_breach_depth"] is None
+    assert run["parameters"]["channel_area"] == 5000
 
 
 @pytest.mark.parametrize("content,needle", [
@@ -187,18 +231,58 @@ def test_cli_bad_outlets(tmp_path, cairn, content, needle):
     assert not (tmp_path / "out").exists()
 
 
-def test_catchments_identical_across_backends():
-    z = smooth_terrain((50, 60), seed=11).astype(np.float32)
-    dem = Dem.from_array(z, cellsize=10.0)
-    x, y = dem.xy(np.array([25 * 60 + 30, 10 * 60 + 12]))
-    job = CatchmentJob(["a", "b"], np.column_stack([x, y]), snap_m=20.0)
-    m = ErrorModel(rmse=0.5, range_m=100.0)
-    a = run_ensemble(dem, job, m, realisations=12, seed=4, backend="serial")
-    b = run_ensemble(dem, job, m, realisations=12, seed=4, backend="processes", workers=2, chunk=5)
+def _same_layers(a, b):
+    assert list(a.layers) == list(b.layers) and a.n == b.n
     for name in a.layers:
         for u, v in zip(a.layers[name], b.layers[name]):
-            assert np.array_equal(u, v)
-    assert np.array_equal(a.log["area"], b.log["area"])
+            assert np.array_equal(u, v), name
+    for k in a.log:
+        assert np.array_equal(a.log[k], b.log[k]), k
+
+
+def _hilly_job():
+    z = smooth_terrain((50, 60), seed=11).astype(np.float32)
+    dem = Dem.from_array(z, cellsize=10.0)
+    x, y = dem.xy(np.array([25 * 60 + 30, 10 * 60 + 12, 40 * 60 + 50]))
+    job = CatchmentJob(["a", "b", "c"], np.column_stack([x, y]), snap_m=20.0, channel_area=2e4,
+                       max_breach_depth=30.0)
+    return dem, job, ErrorModel(rmse=0.5, range_m=100.0)
+
+
+def test_catchments_identical_across_backends():
+    # every layer (channel, divides, catchments, sub-catchments) and the log, bit for bit
+    dem, job, m = _hilly_job()
+    a = run_ensemble(dem, job, m, realisations=12, seed=4, backend="serial")
+    _same_layers(a, run_ensemble(dem, job, m, realisations=12, seed=4, backend="processes",
+                                 workers=2, chunk=5))
+    _same_layers(a, run_ensemble(dem, job, m, realisations=12, seed=4, backend="dask", workers=2,
+                                 chunk=7))
+    assert len(a.layers) == 2 + 2 * 3 and a.log["subarea"].shape == (36,)
+
+
+def test_catchments_checkpoint_resume_and_adaptive_stopping(tmp_path):
+    from terrain.runner import RunInterrupted
+
+    dem, job, m = _hilly_job()
+    full = run_ensemble(dem, job, m, realisations=30, seed=2, backend="serial")
+    ck = tmp_path / "ck.npz"
+
+    def interrupt_at(done, total):
+        if done >= 12:
+            raise KeyboardInterrupt
+
+    with pytest.raises(RunInterrupted):
+        run_ensemble(dem, job, m, realisations=30, seed=2, backend="serial", chunk=4,
+                     checkpoint=ck, checkpoint_every=4, progress=interrupt_at)
+    _same_layers(full, run_ensemble(dem, job, m, realisations=30, seed=2, backend="serial",
+                                    checkpoint=ck, resume=True))
+    # adaptive stopping: decided at multiples of the check interval, below the target
+    res = run_ensemble(dem, job, m, realisations=400, seed=2, backend="serial", target_se=0.15,
+                       check_every=10, min_realisations=10)
+    assert res.info["stopped_early"] and res.n % 10 == 0 and res.n < 400
+    assert res.info["stop_statistic"] < 0.15
+    worst = max(float(se.max()) for _, se in res.layers.values())
+    assert worst == pytest.approx(res.info["stop_statistic"])
 
 
 def test_cli_outlet_on_nodata(tmp_path, cairn):
@@ -239,3 +323,90 @@ def test_quicklook_contours_are_not_flipped():
     ys = np.concatenate([p.vertices[:, 1] for c in ax.collections for p in c.get_paths()
                          if len(p.vertices)])
     assert ys.size and ys.min() > 250  # drawn in the north, where the cells are
+
+
+# -- outlet ids and attributes ---------------------------------------------------------
+def _two_gauges(tmp_path):
+    from rasterio.transform import from_origin
+
+    z, cell = _valley(40, 21)
+    dem = write_tif(tmp_path / "v.tif", z.astype(np.float32),
+                    transform=from_origin(0.0, 400.0, cell, cell))
+    return dem, [(105.0, 95.0), (105.0, 295.0)]  # floor cells of rows 30 and 10
+
+
+def _catchments(cairn, dem, outlets, out, *extra):
+    return cairn("catchments", dem, "--outlets", outlets, "-o", out, "--rmse", "0.01", "-n", "2",
+                 "--workers", "1", "-q", "--snap", "0", *extra)
+
+
+def test_cli_blank_ids_are_numbered_by_row(tmp_path, cairn):
+    dem, (a, b) = _two_gauges(tmp_path)
+    (tmp_path / "o.csv").write_text(f"id,x,y,name\n  ,{a[0]},{a[1]},lower\n007,{b[0]},{b[1]},upper\n")
+    code, _, err = _catchments(cairn, dem, tmp_path / "o.csv", tmp_path / "out")
+    assert code == 0 and "row number (rows 1)" in err
+    t = pd.read_csv(tmp_path / "out" / "outlets.csv", dtype={"outlet_id": str})
+    assert t.outlet_id.tolist() == ["1", "007"] and t.name.tolist() == ["lower", "upper"]
+    assert (tmp_path / "out" / "catchment_probability_007.tif").exists()
+    # a null id in a GeoPackage is numbered the same way
+    import geopandas as gpd
+    from shapely.geometry import Point
+
+    gpd.GeoDataFrame({"id": ["ford", None], "name": ["x", "y"]}, geometry=[Point(*a), Point(*b)],
+                     crs="EPSG:32633").to_file(tmp_path / "o.gpkg")
+    code, _, err = _catchments(cairn, dem, tmp_path / "o.gpkg", tmp_path / "out2")
+    assert code == 0, err
+    t = pyogrio.read_dataframe(tmp_path / "out2" / "catchments.gpkg", layer="outlets")
+    assert t.outlet_id.tolist() == ["ford", "2"]
+
+
+def test_cli_repeated_id_is_refused_in_one_line(tmp_path, cairn):
+    dem, (a, b) = _two_gauges(tmp_path)
+    (tmp_path / "o.csv").write_text(f"id,x,y\n2,{a[0]},{a[1]}\n,{b[0]},{b[1]}\n")
+    code, _, err = _catchments(cairn, dem, tmp_path / "o.csv", tmp_path / "out")
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "o.csv" in err and "'2' is used more than once" in err and "row number" in err
+    assert not (tmp_path / "out").exists()
+
+
+def test_cli_long_and_clashing_ids_get_short_unique_file_names(tmp_path, cairn):
+    dem, (a, b) = _two_gauges(tmp_path)
+    long_id = ("Veld Beck at the old packhorse bridge " * 8).strip()  # 303 characters
+    (tmp_path / "o.csv").write_text(f'id,x,y\n"{long_id}",{a[0]},{a[1]}\n"a b",{b[0]},{b[1]}\n'
+                                    f'"a_b",{b[0] + 10},{b[1]}\n')
+    code, _, err = _catchments(cairn, dem, tmp_path / "o.csv", tmp_path / "out")
+    assert code == 0, err
+    t = pd.read_csv(tmp_path / "out" / "outlets.csv", dtype=str)
+    assert t.outlet_id.tolist() == [long_id, "a b", "a_b"]  # full ids in the tables
+    names = t.layer_id.tolist()
+    assert len(set(names)) == 3 and all(len(n) <= 41 for n in names)
+    assert names[0].startswith("Veld_Beck_at_the_old_packhorse_b-")
+    for n in names:
+        assert (tmp_path / "out" / f"catchment_probability_{n}.tif").exists()
+    # deterministic: the same ids give the same names
+    code, _, err = _catchments(cairn, dem, tmp_path / "o.csv", tmp_path / "out", "--overwrite")
+    assert pd.read_csv(tmp_path / "out" / "outlets.csv", dtype=str).layer_id.tolist() == names
+    assert json.loads((tmp_path / "out" / "run.json").read_text())["layer_ids"][long_id] == names[0]
+
+
+@pytest.mark.parametrize("args,needle", [
+    (("--conditioning", "carve"), "--conditioning"),
+    (("--channel-area", "-5"), "--channel-area"),
+    (("--max-breach-depth", "-1"), "--max-breach-depth"),
+    (("--connectivity", "6"), "--connectivity"),
+])
+def test_cli_bad_drainage_options(tmp_path, cairn, args, needle):
+    dem, _ = _two_gauges(tmp_path)
+    code, _, err = cairn("catchments", dem, "-o", tmp_path / "out", "--rmse", "0.1", "-n", "2",
+                         *args)
+    assert code == 2 and needle in err and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "out").exists()
+
+
+def test_catchment_memory_is_stated_and_small(cairn, tmp_path):
+    dem, _ = _two_gauges(tmp_path)
+    parent, worker = CatchmentJob(["a", "b", "c"], np.zeros((3, 2))).memory_per_cell(4)
+    assert parent < 60 and worker < 60  # the issue's budget for 3 outlets
+    code, out, _ = cairn("inspect", dem)
+    assert code == 0 and f"~{worker} bytes per cell per worker" in out
+    assert "memory (catchments, 3 outlets)" in out

@@ -50,7 +50,7 @@ def test_pipeline_properties(tmp_path_factory, z, kind, weight, kernel, thr, jit
         assert np.all(se[valid] >= 0)
         if name.endswith("probability"):
             assert np.all((est[valid] >= 0) & (est[valid] <= 1))
-    w = log_weights(res.log, weight, base)
+    w = log_weights(res.log, weight)
     birth_total = res.layers[layer_name(kind, "birth_credit")][0][~dem.nodata].sum() * res.n
     assert birth_total == pytest.approx(w.sum(), rel=1e-9, abs=1e-9)
     features = summarise_features(res)

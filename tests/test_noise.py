@@ -4,7 +4,8 @@ Sources: kernel variances -- Silverman, B. W. (1986), Density Estimation for
 Statistics and Data Analysis, Table 3.1; accuracy conversions -- FGDC-STD-007.3-1998
 (NSSDA) and ASPRS Positional Accuracy Standards (2014); semivariogram check of
 simulated DEM error -- Holmes, Chadwick & Kyriakidis (2000), J. Hydrology 233;
-circulant embedding -- Dietrich & Newsam (1997), SIAM J. Sci. Comput. 18(4).
+process convolution -- Higdon (2002), Space and space-time modeling using process
+convolutions; circulant eigenvalues -- Dietrich & Newsam (1997), SIAM J. Sci. Comput. 18(4).
 """
 
 from __future__ import annotations
@@ -15,10 +16,9 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from terrain.errors import EmbeddingError, OptionError
+from terrain.errors import OptionError
 from terrain.noise import (
     KERNELS,
-    CorrelatedField,
     ErrorModel,
     ErrorSampler,
     covariance,
@@ -97,9 +97,9 @@ def test_same_stream_for_same_seed_and_index():
 def test_semivariogram_matches_model(model):
     # Holmes et al. (2000) check simulated error fields by their semivariogram.
     spacing, rng_m = 10.0, 150.0
-    f = CorrelatedField((64, 64), (spacing, spacing), model, rng_m)
-    rng = np.random.default_rng(0)
-    fields = np.stack([f.standard(rng) for _ in range(300)]).astype(np.float64)
+    s = ErrorSampler(ErrorModel(rmse=1.0, range_m=rng_m, covariance=model), (64, 64),
+                     (spacing, spacing))
+    fields = np.stack([s.draw(0, i) for i in range(300)]).astype(np.float64)
     for lag in (1, 3, 6, 12):
         gx = 0.5 * np.mean((fields[:, :, lag:] - fields[:, :, :-lag]) ** 2)
         gy = 0.5 * np.mean((fields[:, lag:, :] - fields[:, :-lag, :]) ** 2)
@@ -119,9 +119,18 @@ def test_nugget_and_sill():
     assert g1 == pytest.approx(expect, rel=0.08)
 
 
-def test_embedding_failure_is_reported():
-    with pytest.raises(EmbeddingError):
-        CorrelatedField((64, 64), (1, 1), "gaussian", 400.0, max_factor=2)
+@pytest.mark.parametrize("model", [ErrorModel(rmse=1.5), ErrorModel(rmse=1.5, kernel="triangular",
+                                                                    draw="quantile"),
+                                   ErrorModel(rmse=1.5, range_m=400, nugget=0.3),
+                                   ErrorModel(rmse=1.5, range_m=3000, covariance="gaussian")])
+def test_any_window_draws_the_same_error(model):
+    # counter-based tiles: the error at a cell does not depend on the window asked for
+    s = ErrorSampler(model, (700, 530), (30.0, 30.0))
+    whole = s.draw(4, 7)
+    for r0, r1, c0, c1 in ((0, 700, 0, 530), (0, 1, 0, 530), (255, 257, 3, 529), (300, 700, 256, 512),
+                           (699, 700, 529, 530), (17, 444, 100, 101)):
+        np.testing.assert_array_equal(s.draw_window(4, 7, r0, r1, c0, c1), whole[r0:r1, c0:c1])
+    assert not np.array_equal(whole, s.draw(4, 8)) and not np.array_equal(whole, s.draw(5, 7))
 
 
 @pytest.mark.parametrize("kernel", KERNELS)

@@ -61,9 +61,11 @@ import numpy as np
 from numba import njit
 
 from ..errors import OptionError
+from .basins import before, descend, fill_cells, find, resolve, upsert
 from .grid import forward_offsets, is_edge, offsets
 
-__all__ = ["Pairs", "pairs", "pits_and_levels", "pairs_and_fill", "count_ponding", "KINDS"]
+__all__ = ["Pairs", "pairs", "Fill", "pits_and_levels", "pairs_and_fill", "count_ponding",
+           "Regions", "regions", "KINDS"]
 
 KINDS = ("peaks", "pits")
 
@@ -116,167 +118,6 @@ class Pairs:
 # ----------------------------------------------------------------------------
 # compiled kernels
 # ----------------------------------------------------------------------------
-@njit(cache=True, inline="always")
-def _before(zk, a, b):
-    """True when cell ``a`` precedes cell ``b`` in the (key, index) order."""
-    za = zk[a]
-    zb = zk[b]
-    return za < zb or (za == zb and a < b)
-
-
-@njit(cache=True, inline="always")
-def _lower(zk, bz, bi, j):
-    """The lower of (value ``bz``, cell ``bi``) and cell ``j`` (ties keep ``bi``)."""
-    zj = zk[j]
-    if zj < bz:
-        return zj, j
-    return bz, bi
-
-
-@njit(cache=True)
-def _descend_inner(zk, nr, nc, conn8, lab):
-    """Pass 1 on interior cells of a raster without nodata (unrolled).
-
-    Neighbours are visited in ascending flat index with the cell itself in
-    its place, so a strict ``<`` breaks ties by index.
-    """
-    for r in range(1, nr - 1):
-        for i in range(r * nc + 1, r * nc + nc - 1):
-            if conn8:
-                bi = i - nc - 1
-                bz = zk[bi]
-                bz, bi = _lower(zk, bz, bi, i - nc)
-                bz, bi = _lower(zk, bz, bi, i - nc + 1)
-            else:
-                bi = i - nc
-                bz = zk[bi]
-            bz, bi = _lower(zk, bz, bi, i - 1)
-            bz, bi = _lower(zk, bz, bi, i)
-            bz, bi = _lower(zk, bz, bi, i + 1)
-            if conn8:
-                bz, bi = _lower(zk, bz, bi, i + nc - 1)
-            bz, bi = _lower(zk, bz, bi, i + nc)
-            if conn8:
-                bz, bi = _lower(zk, bz, bi, i + nc + 1)
-            lab[i] = bi
-
-
-@njit(cache=True)
-def _descend(zk, valid, has_nodata, nr, nc, dr, dc, lab):
-    """Pass 1: each valid cell points to its lowest neighbour in the total
-    order, itself included (a cell pointing to itself is a local minimum)."""
-    fast = not has_nodata and nr >= 3 and nc >= 3
-    if fast:
-        _descend_inner(zk, nr, nc, dr.size == 8, lab)
-    nn = dr.size
-    for r in range(nr):
-        step = nc - 1 if (fast and 0 < r < nr - 1) else 1
-        for c in range(0, nc, max(step, 1)):
-            i = r * nc + c
-            if not valid[i]:
-                continue
-            bi = i
-            bz = zk[i]
-            for k in range(nn):
-                rr = r + dr[k]
-                cc = c + dc[k]
-                if rr < 0 or rr >= nr or cc < 0 or cc >= nc:
-                    continue
-                j = rr * nc + cc
-                if valid[j]:
-                    zj = zk[j]
-                    if zj < bz or (zj == bz and j < bi):
-                        bz = zj
-                        bi = j
-            lab[i] = bi
-
-
-@njit(cache=True)
-def _resolve(valid, lab):
-    """Pass 2: number the minima and label every cell ``-(basin + 1)``.
-
-    Returns the cell of each basin's minimum.
-    """
-    n = lab.size
-    cap = max(16, n // 64)
-    minc = np.empty(cap, np.int64)
-    nb = 0
-    for i in range(n):
-        if not valid[i]:
-            continue
-        j = lab[i]
-        if j < 0:
-            continue
-        if j < i:  # target already resolved: the common case
-            lab[i] = lab[j]
-            continue
-        k = i
-        while True:
-            x = lab[k]
-            if x < 0:
-                root = x
-                break
-            if x == k:  # an unnumbered minimum
-                if nb == cap:
-                    cap *= 2
-                    grown = np.empty(cap, np.int64)
-                    grown[:nb] = minc[:nb]
-                    minc = grown
-                minc[nb] = k
-                nb += 1
-                root = -nb
-                lab[k] = root
-                break
-            k = x
-        k = i
-        while lab[k] >= 0:
-            nxt = lab[k]
-            lab[k] = root
-            k = nxt
-    return minc[:nb]
-
-
-@njit(cache=True, inline="always")
-def _hslot(a, b, mask):
-    """Home slot of basin pair (a, b) in the open-addressing table."""
-    # each basin's partners share a small region of the table: basins met
-    # together in raster order stay together in cache
-    return (a * 8 + (b & 7)) & mask
-
-
-@njit(cache=True, inline="always")
-def _upsert(zk, hk, hw, hz, nb, i, j, li, lj):
-    """Record edge (i, j) between basins; returns 1 when a new pair is added."""
-    zi = zk[i]
-    zj = zk[j]
-    if zj < zi or (zj == zi and j < i):
-        w = i
-        zw = zi
-    else:
-        w = j
-        zw = zj
-    a = -li - 1
-    b = -lj - 1
-    if a > b:
-        a, b = b, a
-    key = a * nb + b
-    mask = hk.size - 1
-    s = _hslot(a, b, mask)
-    while True:
-        kk = hk[s]
-        if kk == key:
-            if zw < hz[s] or (zw == hz[s] and w < hw[s]):
-                hz[s] = zw
-                hw[s] = w
-            return 0
-        if kk < 0:
-            hk[s] = key
-            hz[s] = zw
-            hw[s] = w
-            return 1
-        s = (s + 1) & mask
-
-
 @njit(cache=True)
 def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, cap):
     """Pass 3: lowest pass between every two adjacent basins.
@@ -307,18 +148,18 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
             if fast and not last_row and 0 < c < nc - 1:
                 j = i + 1
                 if lab[j] != li:
-                    used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 if conn8:
                     j = i + nc - 1
                     if lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 j = i + nc
                 if lab[j] != li:
-                    used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
                 if conn8:
                     j = i + nc + 1
                     if lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
             else:
                 for k in range(nf):
                     rr = r + fr[k]
@@ -327,7 +168,7 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
                         continue
                     j = rr * nc + cc
                     if valid[j] and lab[j] != li:
-                        used += _upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
+                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
             if 2 * used > cap:
                 return hk[:0], hk[:0], hk[:0], False
             border = r == 0 or c == 0 or last_row or c == nc - 1
@@ -350,20 +191,16 @@ def _boundaries(zk, valid, has_nodata, nr, nc, dr, dc, fr, fc, lab, nb, emin, ca
 
 
 @njit(cache=True, inline="always")
-def _find(parent, a):
-    """Union-find root of ``a``, compressing the path."""
-    root = a
-    while parent[root] != root:
-        root = parent[root]
-    while parent[a] != root:
-        nxt = parent[a]
-        parent[a] = root
-        a = nxt
-    return root
+def _rfind(rpar, a):
+    """Region union-find root of basin ``a`` (path halving)."""
+    while rpar[a] != a:
+        rpar[a] = rpar[rpar[a]]
+        a = rpar[a]
+    return a
 
 
 @njit(cache=True)
-def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
+def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet, merge_level):
     """Pass 4: elder-rule union-find over basins, edges in total order.
 
     Basin ``nb`` is the virtual outlet (born at -inf). Edges that share their
@@ -371,13 +208,23 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
     judged on the component it was just before ``w`` entered the filtration
     (its first edge cell ``emin`` is updated only when the group ends), so a
     pair's ``edge_limited`` flag does not depend on the order in which
-    several components meeting at one cell are merged. Returns the pairs
-    and, per basin, the cell at which its component joined the outlet (-1:
-    never).
+    several components meeting at one cell are merged.
+
+    With ``merge_level >= 0`` it also builds the persistence-simplified
+    watershed: a component dying with persistence below ``merge_level`` (or
+    zero) hands its region to the basin across the pass it dies at (the
+    outlet's region is "none"); ``rpar`` is that region union-find over
+    basins and ``pair_of[b]`` the pair at which root basin ``b`` died.
+
+    Returns the pairs, per basin the cell at which its component joined the
+    outlet (-1: never) and the root basin of that component, ``rpar`` and
+    ``pair_of``.
     """
     nb = minc.size
     out_id = nb
     parent = np.arange(nb + 1).astype(np.int64)
+    rpar = np.arange(nb + 1).astype(np.int64)
+    pair_of = np.full(nb + 1, -1, np.int64)
     up = np.full(nb + 1, -1, np.int64)
     mt = np.full(nb + 1, -1, np.int64)
     pb = np.empty(nb, np.int64)
@@ -394,8 +241,8 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
         w_edge = is_edge(valid, r, w - r * nc, nr, nc, dr, dc)
         npend = 0
         while t < ne and ew[t] == w:
-            ra = _find(parent, ea[t])
-            rb = _find(parent, eb[t])
+            ra = find(parent, ea[t])
+            rb = find(parent, eb[t])
             t += 1
             if ra == rb:
                 continue
@@ -404,7 +251,7 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
                 old, young = ra, rb
             elif rb == out_id:
                 old, young = rb, ra
-            elif _before(zk, minc[ra], minc[rb]):
+            elif before(zk, minc[ra], minc[rb]):
                 old, young = ra, rb
             else:
                 old, young = rb, ra
@@ -413,8 +260,12 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
                 e = emin[young]
                 pb[npairs] = b
                 pd[npairs] = w
-                pe[npairs] = (e >= 0 and not _before(zk, w, e)) or w_edge
+                pe[npairs] = (e >= 0 and not before(zk, w, e)) or w_edge
+                pair_of[young] = npairs
                 npairs += 1
+            if merge_level >= 0 and (zk[b] == zk[w] or zk[w] - zk[b] < merge_level):
+                across = eb[t - 1] if young == ra else ea[t - 1]
+                rpar[young] = _rfind(rpar, across)
             parent[young] = old
             up[young] = old
             mt[young] = w
@@ -428,9 +279,18 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
                 continue
             eo = emin[old]
             ey = emin[pend_young[q]]
-            if ey >= 0 and (eo < 0 or _before(zk, ey, eo)):
+            if ey >= 0 and (eo < 0 or before(zk, ey, eo)):
                 emin[old] = ey
-    # essential classes: surviving roots that never met the outlet
+    esb, ese = _essential(parent, minc, emin)
+    join, jroot = _joins(zk, up, mt, nb, out_id, outlet)
+    return pb[:npairs], pd[:npairs], pe[:npairs], esb, ese, join, jroot, rpar, pair_of
+
+
+@njit(cache=True)
+def _essential(parent, minc, emin):
+    """Essential classes: surviving roots that never met the outlet, with
+    their edge flag."""
+    nb = minc.size
     ness = 0
     for b in range(nb):
         if parent[b] == b:
@@ -443,8 +303,18 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
             esb[q] = minc[b]
             ese[q] = emin[b] >= 0
             q += 1
-    # cell at which each basin's component joined the outlet
+    return esb, ese
+
+
+@njit(cache=True)
+def _joins(zk, up, mt, nb, out_id, outlet):
+    """Per basin: the cell at which its component joined the outlet (-1:
+    never), and the root basin of the depression it lies in: the oldest
+    component it reached by merges strictly below that level (its minimum is
+    the depression's deepest cell). Depressions that only touch at the spill
+    level stay apart, as their ponded cells do."""
     join = np.full(nb, -1, np.int64)
+    droot = np.full(nb, -1, np.int64)
     if outlet:
         for b in range(nb):
             a = b
@@ -452,42 +322,54 @@ def _merge(zk, valid, nr, nc, dr, dc, minc, emin, ea, eb, ew, outlet):
                 a = up[a]
             if up[a] == out_id:
                 join[b] = mt[a]
-    return pb[:npairs], pd[:npairs], pe[:npairs], esb, ese, join
+                level = zk[mt[a]]
+                a = b
+                while up[a] != out_id and zk[mt[a]] < level:
+                    a = up[a]
+                droot[b] = a
+    return join, droot
 
 
 @njit(cache=True)
-def _fill_levels(zf, join):
-    """Per basin, the elevation at which it joins the outlet (-inf: never)."""
-    out = np.full(join.size, -np.inf)
+def _fill_levels(zf, join, jroot, minc):
+    """Per basin, the elevation at which it joins the outlet (-inf: never),
+    and the depth of the filled depression it lies in (its deepest cell
+    below that level; -inf: none)."""
+    level = np.full(join.size, -np.inf)
+    depth = np.full(join.size, -np.inf)
     for b in range(join.size):
         if join[b] >= 0:
-            out[b] = zf[join[b]]
-    return out
+            level[b] = zf[join[b]]
+            depth[b] = level[b] - zf[minc[jroot[b]]]
+    return level, depth
 
 
 @njit(cache=True)
-def _filled(zf, valid, lab, level, out):
-    """Filled surface: max(z, the fill level of the cell's basin); NaN on nodata."""
-    for i in range(zf.size):
-        if valid[i]:
-            lv = level[-lab[i] - 1]
-            out[i] = lv if lv > zf[i] else zf[i]
-        else:
-            out[i] = np.nan
+def count_ponding(zf, valid, lab, level, depth, min_depth, counts, region, area_row, nc,
+                  r_area, r_volume):
+    """Ponding of one filled surface, counted in place.
 
-
-@njit(cache=True)
-def count_ponding(zf, valid, lab, level, min_depth, counts):
-    """Add 1 to ``counts`` where the filled depth is > 0 and >= ``min_depth``.
-
-    ``lab`` and ``level`` come from :func:`pits_and_levels`; no dense
-    temporary is made.
+    A cell is ponded when it lies below its depression's fill level and the
+    depression is at least ``min_depth`` deep (its deepest cell below the
+    spill level). Adds 1 to ``counts`` at ponded cells; when ``region`` (per
+    cell, 0 = none) is not empty, also adds each ponded cell's area
+    (``area_row`` per row) and its water volume (depth x area) to ``r_area``
+    and ``r_volume`` of its region. ``lab``, ``level`` and ``depth`` come
+    from :func:`pits_and_levels`; no dense temporary is made.
     """
+    with_regions = region.size > 0
     for i in range(zf.size):
         if valid[i]:
-            d = level[-lab[i] - 1] - zf[i]
-            if d > 0 and d >= min_depth:
+            b = -lab[i] - 1
+            d = level[b] - zf[i]
+            if d > 0 and depth[b] >= min_depth:
                 counts[i] += 1
+                if with_regions:
+                    r = region[i]
+                    if r > 0:
+                        a = area_row[i // nc]
+                        r_area[r] += a
+                        r_volume[r] += d * a
 
 
 # ----------------------------------------------------------------------------
@@ -520,7 +402,7 @@ def _prepare(z, kind, connectivity, mask):
     return np.ascontiguousarray(z), np.ascontiguousarray(zk), valid
 
 
-def _engine(zk, valid, connectivity, outlet):
+def _engine(zk, valid, connectivity, outlet, merge_level=-1.0):
     nr, nc = zk.shape
     n = nr * nc
     dr, dc = offsets(connectivity)
@@ -529,8 +411,8 @@ def _engine(zk, valid, connectivity, outlet):
     vf = valid.reshape(-1)
     lab = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
     has_nodata = not vf.all()
-    _descend(zf, vf, has_nodata, nr, nc, dr, dc, lab)
-    minc = _resolve(vf, lab)
+    descend(zf, vf, has_nodata, nr, nc, dr, dc, lab)
+    minc = resolve(vf, lab)
     nb = minc.size
     cap = 1024
     while cap < 8 * nb:
@@ -547,8 +429,9 @@ def _engine(zk, valid, connectivity, outlet):
         eb = np.concatenate([eb, np.full(has.size, nb, np.int64)])
         ew = np.concatenate([ew, emin[has]])
     order = np.lexsort((ew, zf[ew]))
-    res = _merge(zf, vf, nr, nc, dr, dc, minc, emin.copy(), ea[order], eb[order], ew[order], outlet)
-    return res, lab
+    res = _merge(zf, vf, nr, nc, dr, dc, minc, emin.copy(), ea[order], eb[order], ew[order],
+                 outlet, merge_level)
+    return res, lab, minc
 
 
 def pairs(z: np.ndarray, *, kind: str, connectivity: int = 8,
@@ -606,7 +489,7 @@ def pairs(z: np.ndarray, *, kind: str, connectivity: int = 8,
     z, zk, valid = _prepare(z, kind, connectivity, mask)
     if edge_outlet is None:
         edge_outlet = kind == "pits"
-    (pb, pd, pe, eb, ee, _join), _lab = _engine(zk, valid, connectivity, bool(edge_outlet))
+    (pb, pd, pe, eb, ee, *_), _lab, _minc = _engine(zk, valid, connectivity, bool(edge_outlet))
     return _assemble(z, kind, pb, pd, pe, eb, ee)
 
 
@@ -627,19 +510,150 @@ def _assemble(z, kind, pb, pd, pe, eb, ee) -> Pairs:
     return Pairs(kind, birth, death, bv, dv, pers, np.concatenate([pe, ee]))
 
 
-def pits_and_levels(z: np.ndarray, *, connectivity: int = 8, mask: np.ndarray | None = None):
+@njit(cache=True)
+def _region_cells(lab, valid, rpar, id_of_rep, out):
+    """Per cell: the id of its basin's region (0 for none and for nodata)."""
+    for i in range(lab.size):
+        if valid[i]:
+            out[i] = id_of_rep[_rfind(rpar, -lab[i] - 1)]
+        else:
+            out[i] = 0
+
+
+@dataclass(frozen=True)
+class Regions:
+    """The persistence-simplified watershed of a raster, and each region's pair.
+
+    Region ``k`` (1-based) is the set of cells that climb (peaks) or drain
+    (pits) to the ``k``-th surviving extremum once every pair of persistence
+    below ``merge_level`` is cancelled; ``labels`` holds ``k`` per cell and 0
+    for nodata and, with the edge as outlet, for cells that drain off the
+    edge. Regions are numbered by the persistence of their own pair,
+    largest first (essential classes first), ties by the total order of
+    their extremum, which is their rank among all pairs of the raster: the
+    same extremum keeps its number whatever the merge level. Cells of a flat
+    that is neither a summit nor a pit follow their steepest descent (ascent)
+    in the raster's tie order, so such a flat joins one neighbouring region.
+
+    Attributes (one entry per region, index ``k - 1``)
+    ----------
+    birth, death : int64
+        Extremum cell and the cell where its pair dies (-1 when essential).
+    birth_value, death_value, persistence : float64
+    edge_limited : bool
+        As in :class:`Pairs`.
+    """
+
+    kind: str
+    merge_level: float
+    labels: np.ndarray
+    birth: np.ndarray
+    death: np.ndarray
+    birth_value: np.ndarray
+    death_value: np.ndarray
+    persistence: np.ndarray
+    edge_limited: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.birth.size)
+
+
+def regions(z: np.ndarray, *, kind: str, merge_level: float, connectivity: int = 8,
+            edge_outlet: bool | None = None, mask: np.ndarray | None = None) -> Regions:
+    """Regions of the persistence-simplified watershed (peaks or pits).
+
+    Every pair of persistence below ``merge_level`` is cancelled: the dying
+    component's region joins the region across the pass where it dies (for
+    pits with the edge as outlet, joining the outlet means belonging to no
+    region). Regions are thus the basins of steepest descent (ascent for
+    peaks) merged across their lowest passes, computed by the same
+    union-find as :func:`pairs`.
+
+    Parameters
+    ----------
+    z, kind, connectivity, edge_outlet, mask : as for :func:`pairs`
+    merge_level : float
+        Pairs less persistent than this are cancelled (>= 0).
+
+    Returns
+    -------
+    Regions
+
+    References
+    ----------
+    .. [1] Edelsbrunner, H., Letscher, D., Zomorodian, A. (2002). Topological
+       persistence and simplification. Discrete Comput. Geom. 28, 511-533.
+    .. [2] Najman, L., Schmitt, M. (1996). Geodesic saliency of watershed
+       contours and hierarchical segmentation. IEEE TPAMI 18(12), 1163-1173
+       (watershed regions merged by the dynamics of their minima).
+
+    Examples
+    --------
+    >>> z = np.array([[3, 3, 3, 3, 3], [3, 0, 2, 1, 3], [3, 3, 3, 3, 3]], dtype=np.float32)
+    >>> r = regions(z, kind="pits", merge_level=1.5, edge_outlet=False)
+    >>> r.labels[1].tolist(), r.persistence.tolist()
+    ([1, 1, 1, 1, 1], [inf])
+    >>> regions(z, kind="pits", merge_level=0.5, edge_outlet=False).labels[1].tolist()
+    [1, 1, 1, 2, 2]
+    """
+    if not (np.isfinite(merge_level) and merge_level >= 0):
+        raise OptionError(f"{{merge_level}} must be >= 0 and finite, got {merge_level}",
+                          "merge_level")
+    z, zk, valid = _prepare(z, kind, connectivity, mask)
+    if edge_outlet is None:
+        edge_outlet = kind == "pits"
+    (pb, pd, pe, esb, ese, _j, _jr, rpar, pair_of), lab, minc = _engine(
+        zk, valid, connectivity, bool(edge_outlet), float(merge_level))
+    nb = minc.size
+    reps = np.array([b for b in range(nb) if rpar[b] == b], np.int64)
+    k = pair_of[reps]
+    birth = minc[reps]
+    ess = k < 0
+    death = np.where(ess, -1, pd[np.maximum(k, 0)] if pd.size else -1)
+    flags = np.where(ess, np.isin(birth, esb[ese]), pe[np.maximum(k, 0)] if pe.size else False)
+    zf, key = z.reshape(-1), zk.reshape(-1)
+    pers = np.where(ess, np.inf, np.abs(zf[birth].astype(np.float64) - zf[np.maximum(death, 0)]))
+    order = np.lexsort((birth, key[birth], -pers))
+    id_of_rep = np.zeros(nb + 1, np.int32)
+    id_of_rep[reps[order]] = np.arange(1, reps.size + 1, dtype=np.int32)
+    labels = np.empty(zf.size, np.int32)
+    _region_cells(lab, valid.reshape(-1), rpar, id_of_rep, labels)
+    birth, death = birth[order], death[order]
+    dv = np.where(death < 0, np.nan, zf[np.maximum(death, 0)].astype(np.float64))
+    return Regions(kind, float(merge_level), labels.reshape(z.shape), birth, death,
+                   zf[birth].astype(np.float64), dv, pers[order], flags[order].astype(bool))
+
+
+@dataclass(frozen=True)
+class Fill:
+    """What the depression-filled surface of one raster is made of.
+
+    ``zf``, ``valid``: the flat elevations and validity the engine used;
+    ``labels``: per cell its basin as ``-(basin + 1)``; ``level``: per basin
+    the fill level (the elevation at which it joins the outlet); ``depth``:
+    per basin the depth of the filled depression it lies in. Memory: the
+    labels (4 bytes per cell) and 16 bytes per basin.
+    """
+
+    zf: np.ndarray
+    valid: np.ndarray
+    labels: np.ndarray
+    level: np.ndarray
+    depth: np.ndarray
+
+
+def pits_and_levels(z: np.ndarray, *, connectivity: int = 8,
+                    mask: np.ndarray | None = None) -> tuple[Pairs, Fill]:
     """Pit pairs (edge as outlet) with what the filled surface needs.
 
-    Returns ``(pairs, zf, valid, labels, level)``: the flat elevations and
-    validity the engine used, per-cell basin labels (``-(basin + 1)``) and
-    per-basin fill level; :func:`count_ponding` and :func:`pairs_and_fill`
-    turn them into depths. Memory: the labels (4 bytes per cell).
+    :func:`count_ponding` and :func:`pairs_and_fill` turn the :class:`Fill`
+    into ponding and depths.
     """
     z, zk, valid = _prepare(z, "pits", connectivity, mask)
-    (pb, pd, pe, eb, ee, join), lab = _engine(zk, valid, connectivity, True)
+    (pb, pd, pe, eb, ee, join, jroot, _r, _p), lab, minc = _engine(zk, valid, connectivity, True)
     zf = z.reshape(-1)
-    level = _fill_levels(zf, join)
-    return _assemble(z, "pits", pb, pd, pe, eb, ee), zf, valid.reshape(-1), lab, level
+    level, depth = _fill_levels(zf, join, jroot, minc)
+    return _assemble(z, "pits", pb, pd, pe, eb, ee), Fill(zf, valid.reshape(-1), lab, level, depth)
 
 
 def pairs_and_fill(z: np.ndarray, *, connectivity: int = 8,
@@ -665,7 +679,7 @@ def pairs_and_fill(z: np.ndarray, *, connectivity: int = 8,
     .. [2] Soille, P. (2004). Morphological Image Analysis, 2nd ed., Springer
        (fill holes by reconstruction by erosion).
     """
-    p, zf, valid, lab, level = pits_and_levels(z, connectivity=connectivity, mask=mask)
-    filled = np.empty(zf.size, np.float64)
-    _filled(zf, valid, lab, level, filled)
+    p, fill = pits_and_levels(z, connectivity=connectivity, mask=mask)
+    filled = np.empty(fill.zf.size, np.float64)
+    fill_cells(fill.zf, fill.valid, fill.labels, fill.level, filled)
     return p, filled.reshape(np.shape(z))

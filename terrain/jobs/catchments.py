@@ -1,38 +1,66 @@
-"""Catchments under DEM error: outlet membership and drainage-divide probability.
+"""Catchments under DEM error: channels, sub-catchments, outlet membership, divides.
 
 A :class:`CatchmentJob` is run by :func:`terrain.runner.run_ensemble` like
-the peak and depression attribution: realisation ``i`` perturbs the DEM,
-fills its depressions, routes D8 flow, snaps each outlet to the cell of
-highest flow accumulation within the snap radius (common practice, no
-source), and adds 1 to each outlet's membership count for every cell
-draining through it, and to the divide count for every cell with a
-neighbour draining to another exit. Counts are integers, exact in any
-order; the log holds each realisation's snapped cell and catchment area per
-outlet.
+the peak and depression attribution. Realisation ``i`` perturbs the DEM,
+removes its depressions (least-cost breaching with a depth limit, or
+filling), routes D8 or D4 flow, accumulates drainage area in m^2 and adds
+1 to:
 
-Memory in the accumulating process: 8 bytes per cell per outlet plus 8 for
-the divide count; each worker adds 4 per cell per outlet.
+- ``channel`` where the area draining through the cell reaches the channel
+  area;
+
+and, with outlets (each snapped, per realisation, to the cell of highest
+accumulation within the snap radius; common practice, no source):
+
+- ``sub[o]`` where outlet ``o`` is the first chosen outlet downstream (its
+  sub-catchment; nested outlets split their parent);
+- ``member[o]`` where the cell drains through ``o`` (its whole catchment);
+- ``divide`` where a neighbour lies in another sub-catchment; cells that
+  reach no chosen outlet share one label (elsewhere), so hillslopes
+  draining off the raster edge are not divides.
+
+Counts are integers, exact in any order; the log holds each realisation's
+snapped cell, catchment and sub-catchment area per outlet.
+
+Memory per cell (stated by :meth:`CatchmentJob.memory_per_cell`), for k
+outlets: per worker, the run's float32 DEM (4 bytes), one realisation's
+drainage (26, see :mod:`terrain.engine.hydro`) and uint8 counts for its
+chunk (2k + 2; widened should a chunk exceed 255 realisations, which the
+default chunks of at most 25 never do), counted three times: the worker's
+own and up to two finished chunks awaiting their turn in the accumulating
+process: 36 + 6k bytes, 54 for 3 outlets. The accumulating process holds
+the DEM (its value bytes + 1 for the mask) and the float32 run copy (4),
+int32 counts (4 x (2k + 2); at most 2**31 - 1 realisations) and, while the
+outputs are written, one layer's estimate and standard error (16): for a
+float32 DEM 33 + 8k bytes, 57 for 3 outlets.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import math
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from .. import defaults
 from ..dem import Dem
-from ..engine.hydro import count_divides, count_membership, flow, snap_to_max
-from ..errors import CheckpointError, OutletError
+from ..engine.grid import offsets
+from ..engine.hydro import CONDITIONING, condition, count_drainage, route, snap_to_max, subcatchment_labels
+from ..errors import CheckpointError, OptionError, OutletError
 from ..layers import LAYERS, layer_name
 from ..noise import ErrorModel
-from .credit import concat_logs, proportion
+from ..outlets import layer_ids, short
+from .credit import concat_logs
 
-__all__ = ["CatchmentJob", "CatchmentAccumulator", "snap_candidates", "LOG_FIELDS"]
+__all__ = ["CatchmentJob", "CatchmentAccumulator", "ProbabilityLayers", "snap_candidates",
+           "LOG_FIELDS", "COUNTS", "RUN_LIMIT"]
 
-LOG_FIELDS = ("real", "outlet", "cell", "area")
+LOG_FIELDS = ("real", "outlet", "cell", "area", "subarea")
+COUNTS = ("channel", "divide", "member", "sub")
+RUN_LIMIT = 2**31 - 1  # realisations the accumulator counts in int32
+_ROUTING_BYTES = 26  # one realisation's drainage per cell (terrain.engine.hydro)
 
 
 def _outlet_cell(dem: Dem, oid: str, x: float, y: float, source: str) -> tuple[int, int]:
@@ -42,11 +70,11 @@ def _outlet_cell(dem: Dem, oid: str, x: float, y: float, source: str) -> tuple[i
     col = (e * (x - c) - b * (y - f)) / det
     row = (-d * (x - c) + a * (y - f)) / det
     if not (0 <= row < rows and 0 <= col < cols):
-        raise OutletError(f"{source}: outlet {oid} at ({x:g}, {y:g}) lies outside the raster; "
+        raise OutletError(f"{source}: outlet {short(oid)} at ({x:g}, {y:g}) lies outside the raster; "
                           "check its coordinates and CRS")
     r0, c0 = int(row), int(col)
     if dem.nodata[r0, c0]:
-        raise OutletError(f"{source}: outlet {oid} at ({x:g}, {y:g}) lies on a nodata cell; "
+        raise OutletError(f"{source}: outlet {short(oid)} at ({x:g}, {y:g}) lies on a nodata cell; "
                           "move it onto the channel")
     return r0, c0
 
@@ -79,7 +107,7 @@ def snap_candidates(dem: Dem, ids, xy: np.ndarray, snap_m: float, *,
         ok[r0 - rr[0, 0], c0 - cc[0, 0]] = True
         cand.append(np.sort((rr[ok] * cols + cc[ok]).astype(np.int64)))
         ptr.append(ptr[-1] + cand[-1].size)
-    return np.concatenate(cand), np.array(ptr, np.int64)
+    return np.concatenate(cand) if cand else np.empty(0, np.int64), np.array(ptr, np.int64)
 
 
 @dataclass(frozen=True, eq=False)
@@ -89,11 +117,25 @@ class CatchmentJob:
     Attributes
     ----------
     ids : tuple of str
-        Outlet ids (used in layer names).
+        Outlet ids, in full (tables); file and layer names use
+        :attr:`layer_ids` (see :func:`terrain.outlets.layer_ids`). Empty:
+        the run computes channel probability only.
     xy : (k, 2) array
         Outlet coordinates in the DEM's CRS.
     snap_m : float, optional
         Snap radius in metres. Default: 2 x the mean cell width.
+    channel_area : float, optional
+        Drainage area (m^2) at which a cell counts as channel. Default 0.1 km^2.
+    conditioning : {"breach", "fill"}, optional
+        How depressions are removed. Default: breach.
+    max_breach_depth : float, optional
+        Depressions deeper than this (vertical units) are filled, not
+        breached; no cell is lowered by more. Default 3; ``inf`` breaches
+        every depression.
+    connectivity : {8, 4}
+        D8 (steepest of 8 neighbours, diagonals included) or D4 (of the 4
+        edge neighbours); depressions, flats and divides use the same
+        neighbourhood.
     source : str
         Where the outlets came from (for messages).
 
@@ -101,9 +143,13 @@ class CatchmentJob:
     filled in by :meth:`resolved`.
     """
 
-    ids: tuple
-    xy: np.ndarray
+    ids: tuple = ()
+    xy: np.ndarray | None = None
     snap_m: float | None = None
+    channel_area: float | None = None
+    conditioning: str | None = None
+    max_breach_depth: float | None = None
+    connectivity: int = 8
     source: str = "outlets"
     cand: np.ndarray | None = None
     cand_ptr: np.ndarray | None = None
@@ -111,122 +157,222 @@ class CatchmentJob:
     cell_h: np.ndarray | None = None
     area_row: np.ndarray | None = None
     from_defaults: tuple = ()
+    layer_ids: tuple = field(init=False, default=())
 
     def __post_init__(self):
         ids = tuple(str(i) for i in self.ids)
-        xy = np.asarray(self.xy, np.float64).reshape(-1, 2)
-        if xy.shape[0] == 0:
-            raise OutletError(f"{self.source}: no outlet points")
+        xy = np.asarray(self.xy if self.xy is not None else np.empty((0, 2)),
+                        np.float64).reshape(-1, 2)
+        if xy.shape[0] != len(ids):
+            raise OutletError(f"{self.source}: {len(ids)} ids for {xy.shape[0]} outlet points")
         if len(set(ids)) != len(ids):
             raise OutletError(f"{self.source}: outlet ids are not unique")
-        if self.snap_m is not None and not (math.isfinite(self.snap_m) and self.snap_m >= 0):
-            raise OutletError(f"{{snap_m}} must be >= 0 metres and finite, got {self.snap_m}",
-                              "snap_m")
+        _check(self)
         object.__setattr__(self, "ids", ids)
         object.__setattr__(self, "xy", xy)
+        object.__setattr__(self, "layer_ids", layer_ids(ids))
 
     # -- job interface ----------------------------------------------------------
     name = "catchments"
 
     @property
     def layers(self) -> tuple[str, ...]:
-        member = LAYERS[layer_name("catchments", "membership")]
-        return tuple(member.concrete(i) for i in self.ids) + (layer_name("catchments", "divide"),)
+        """Channel; with outlets also divides, then membership and sub-catchment per outlet."""
+        names = [layer_name("catchments", "channel")]
+        if self.ids:
+            names.append(layer_name("catchments", "divide"))
+            for role in ("membership", "subcatchment"):
+                names += [LAYERS[layer_name("catchments", role)].concrete(i) for i in self.layer_ids]
+        return tuple(names)
 
     def resolved(self, dem: Dem, model: ErrorModel) -> CatchmentJob:
-        """This job with its snap radius resolved and the grid's arrays prepared."""
-        snap = defaults.snap_radius(self.snap_m, dem)
-        cand, ptr = snap_candidates(dem, self.ids, self.xy, snap, source=self.source)
+        """This job with its defaults resolved and the grid's arrays prepared."""
+        method = defaults.conditioning(self.conditioning)
+        snap = defaults.snap_radius(self.snap_m, dem) if self.ids else self.snap_m
+        cand, ptr = snap_candidates(dem, self.ids, self.xy, snap or 0.0, source=self.source)
         w, h = dem.cell_metres()
-        return dataclasses.replace(self, snap_m=snap, cand=cand, cand_ptr=ptr, cell_w=w,
-                                   cell_h=h, area_row=dem.cell_area_m2(),
-                                   from_defaults=tuple(self.defaults_used()))
+        return dataclasses.replace(
+            self, snap_m=snap, cand=cand, cand_ptr=ptr, cell_w=w, cell_h=h,
+            area_row=dem.cell_area_m2(), channel_area=defaults.channel_area(self.channel_area),
+            conditioning=method, max_breach_depth=defaults.max_breach_depth(self.max_breach_depth,
+                                                                            method),
+            from_defaults=tuple(self.defaults_used()))
 
     def defaults_used(self) -> dict:
         """The settings left to library defaults, with the rule each follows."""
-        used = self.snap_m is None or "snap_m" in self.from_defaults
-        return {"snap_m": defaults.RULES["snap_m"]} if used else {}
+        names = (["snap_m"] if self.ids else []) + ["channel_area", "conditioning"]
+        if defaults.conditioning(self.conditioning) == "breach":
+            names.append("max_breach_depth")
+        return {n: defaults.RULES[n] for n in names
+                if getattr(self, n) is None or n in self.from_defaults}
 
     def describe(self) -> dict:
         return {"job": "catchments", "outlets": dict(zip(self.ids, self.xy.tolist())),
-                "snap_m": self.snap_m}
+                "snap_m": self.snap_m, "channel_area": self.channel_area,
+                "conditioning": self.conditioning, "max_breach_depth": self.max_breach_depth,
+                "connectivity": self.connectivity}
 
     def new_counts(self, n_cells: int) -> dict:
-        return {"member": np.zeros((len(self.ids), n_cells), np.int32),
-                "divide": np.zeros(n_cells, np.int32)}
+        """uint8 counts for one chunk (widened to uint16, then uint32, should a chunk
+        hold more than 255, then 65535 realisations)."""
+        k = len(self.ids) if self.ids else 0
+        m = n_cells if k else 0
+        return {"channel": np.zeros(n_cells, np.uint8), "divide": np.zeros(m, np.uint8),
+                "member": np.zeros((k, m), np.uint8), "sub": np.zeros((k, m), np.uint8),
+                "realised": np.zeros(1, np.int64)}
 
     def realise(self, z, sampler, seed, i, counts) -> dict:
+        _make_room(counts)
         zi = sampler.draw(seed, i)
         zi += z
-        nr, nc = z.shape
-        fl = flow(zi, cell_w=self.cell_w, cell_h=self.cell_h)
-        snapped = snap_to_max(fl.acc, self.cand, self.cand_ptr)
-        area = count_membership(fl.order, fl.rec, snapped, nr, nc, self.area_row, counts["member"])
-        count_divides(fl.exit, fl.valid, nr, nc, counts["divide"])
+        condition(zi, connectivity=self.connectivity, method=self.conditioning,
+                  max_depth=math.inf if self.max_breach_depth is None else self.max_breach_depth)
+        fl = route(zi, cell_w=self.cell_w, cell_h=self.cell_h, cell_area=self.area_row,
+                   connectivity=self.connectivity)
+        del zi
         k = len(self.ids)
+        snapped = snap_to_max(fl.acc, self.cand, self.cand_ptr)
+        if k:
+            lab, _, parent, alias = subcatchment_labels(fl, snapped)
+        else:
+            lab, parent, alias = np.empty(0, np.int32), np.empty(0, np.int64), np.empty(0, np.int64)
+        area, subarea = np.zeros(k), np.zeros(k)
+        dr, dc = offsets(self.connectivity)
+        count_drainage(lab, fl.valid, fl.acc, *z.shape, dr, dc, parent, alias, self.area_row,
+                       float(self.channel_area), counts["member"], counts["sub"], counts["divide"],
+                       counts["channel"], area, subarea)
         return {"real": np.full(k, i, np.int32), "outlet": np.arange(k, dtype=np.int32),
-                "cell": snapped.astype(np.int64), "area": area}
+                "cell": snapped.astype(np.int64), "area": area, "subarea": subarea}
 
     def accumulator(self, n_cells: int) -> CatchmentAccumulator:
         return CatchmentAccumulator(n_cells, self)
 
     def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
-        """Accumulators: an int64 membership count per outlet and the divide
-        count. Worker: the DEM copy and noise, filled surface, receivers, order,
-        accumulation and exits (8 each), flags and queue, int32 counts per
-        outlet and for divides."""
-        k = len(self.ids)
-        return 8 * k + 8, value_bytes + 4 + 49 + 4 * k + 4
+        """Bytes per cell (accumulating process, each worker), as itemised in the
+        module docstring: the process holds the DEM, its float32 copy, int32
+        counts and one layer being written; per worker, the float32 DEM, one
+        realisation's drainage and three sets of uint8 chunk counts (the
+        worker's, and up to two finished chunks awaiting their turn to be
+        folded in). Not counted: an error field's FFT work arrays
+        (correlated error) and a figure's rendering."""
+        counters = 2 * len(self.ids) + (2 if self.ids else 1)
+        return value_bytes + 1 + 4 + 4 * counters + 16, 4 + _ROUTING_BYTES + 3 * counters
+
+
+def _make_room(counts: dict) -> None:
+    """Count one more realisation in ``counts``: widen its arrays when full."""
+    full = np.iinfo(counts["channel"].dtype).max
+    if counts["realised"][0] >= full:
+        wider = np.uint16 if full < 2**16 - 1 else np.uint32
+        for name in COUNTS:
+            counts[name] = counts[name].astype(wider)
+    counts["realised"][0] += 1
+
+
+def _check(job: CatchmentJob) -> None:
+    """Validate a job's settings (each error names its parameter)."""
+    if job.snap_m is not None and not (math.isfinite(job.snap_m) and job.snap_m >= 0):
+        raise OutletError(f"{{snap_m}} must be >= 0 metres and finite, got {job.snap_m}", "snap_m")
+    if job.channel_area is not None and not (math.isfinite(job.channel_area)
+                                             and job.channel_area > 0):
+        raise OptionError(f"{{channel_area}} must be a positive area in m^2, got "
+                          f"{job.channel_area}", "channel_area")
+    if job.conditioning is not None and job.conditioning not in CONDITIONING:
+        raise OptionError(f"{{conditioning}} must be one of {', '.join(CONDITIONING)}, got "
+                          f"{job.conditioning!r}", "conditioning")
+    if job.max_breach_depth is not None and not job.max_breach_depth >= 0:
+        raise OptionError(f"{{max_breach_depth}} must be >= 0 (vertical units), got "
+                          f"{job.max_breach_depth}", "max_breach_depth")
+    if job.connectivity not in (4, 8):
+        raise OptionError(f"{{connectivity}} must be 4 or 8, got {job.connectivity!r}",
+                          "connectivity")
+
+
+class ProbabilityLayers(Mapping):
+    """Layers computed from integer counts when read: name -> (share, standard error).
+
+    Nothing is held but the counts, so a run with many outlets never has all
+    its float layers in memory at once; each access returns new float64
+    arrays on the grid (the Monte Carlo standard error is sqrt(p(1-p)/N)).
+    """
+
+    def __init__(self, counts: dict, n: int, shape):
+        self._counts, self._n, self._shape = counts, n, tuple(shape)
+
+    def __getitem__(self, name):
+        c = self._counts[name]
+        n = max(self._n, 1)
+        p = np.divide(c, n, dtype=np.float64).reshape(self._shape)
+        se = 1.0 - p
+        se *= p
+        se /= n
+        np.sqrt(se, out=se)
+        return p, se
+
+    def __iter__(self):
+        return iter(self._counts)
+
+    def __len__(self):
+        return len(self._counts)
 
 
 class CatchmentAccumulator:
-    """Integer membership and divide counts plus the per-realisation log."""
+    """int32 channel, divide, membership and sub-catchment counts plus the log."""
 
     def __init__(self, n_cells: int, job: CatchmentJob):
         self.job = job
         self.n = 0
-        self.member = np.zeros((len(job.ids), n_cells), np.int64)
-        self.divide = np.zeros(n_cells, np.int64)
+        k = len(job.ids)
+        m = n_cells if k else 0
+        self.channel = np.zeros(n_cells, np.int32)
+        self.divide = np.zeros(m, np.int32)
+        self.member = np.zeros((k, m), np.int32)
+        self.sub = np.zeros((k, m), np.int32)
         self.logs: list[dict] = []
 
     def add(self, log: dict, counts: dict, n: int) -> None:
-        self.member += counts["member"]
-        self.divide += counts["divide"]
+        if self.n + n > RUN_LIMIT:
+            raise OptionError(f"{{realisations}} must be at most {RUN_LIMIT} for catchments",
+                              "realisations")
+        for name in COUNTS:
+            getattr(self, name).__iadd__(counts[name])
         self.logs.append(log)
         self.n += n
 
     def log(self) -> dict:
         return concat_logs(self.logs, LOG_FIELDS)
 
-    def layers(self, shape) -> dict:
+    def _named(self) -> dict:
         names = self.job.layers
-        out = {}
-        for k, name in enumerate(names[:-1]):
-            p, se = proportion(self.member[k], self.n)
-            out[name] = (p.reshape(shape), se.reshape(shape))
-        p, se = proportion(self.divide, self.n)
-        out[names[-1]] = (p.reshape(shape), se.reshape(shape))
-        return out
+        k = len(self.job.ids)
+        arrays = [self.channel] + ([self.divide] + list(self.member) + list(self.sub) if k else [])
+        return dict(zip(names, arrays))
+
+    def layers(self, shape) -> Mapping:
+        return ProbabilityLayers(self._named(), self.n, shape)
 
     def stop_statistic(self) -> float:
-        """Largest standard error of any membership or divide probability."""
+        """Largest standard error of any channel, divide, membership or sub-catchment
+        probability."""
         if self.n == 0:
             return math.nan
         # the largest p(1 - p) is at the count closest to n / 2
-        closest = min(int(np.abs(2 * self.member - self.n).min()),
-                      int(np.abs(2 * self.divide - self.n).min()))
+        closest = min(int(np.abs(2 * a.astype(np.int64) - self.n).min())
+                      for a in self._named().values() if a.size)
         p = 0.5 - closest / (2 * self.n)
         return math.sqrt(p * (1 - p) / self.n)
 
     def state(self) -> dict:
-        st = {"n": np.array(self.n), "member": self.member, "divide": self.divide}
+        st = {"n": np.array(self.n), "channel": self.channel, "divide": self.divide,
+              "member": self.member, "sub": self.sub}
         st.update({f"log_{k}": v for k, v in self.log().items()})
         return st
 
     def restore(self, st: dict) -> None:
-        if st.get("member") is None or st["member"].shape != self.member.shape:
-            raise CheckpointError("checkpoint arrays do not match this DEM and these outlets")
-        self.member[:] = st["member"]
-        self.divide[:] = st["divide"]
+        for name in COUNTS:
+            have = getattr(self, name)
+            if st.get(name) is None or st[name].shape != have.shape:
+                raise CheckpointError("checkpoint arrays do not match this DEM and these outlets")
+            have[:] = st[name]
         self.n = int(st["n"])
         self.logs = [{k: st[f"log_{k}"] for k in LOG_FIELDS}]

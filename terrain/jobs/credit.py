@@ -6,9 +6,18 @@ threshold credits its weight to its birth cell (summit / pit) and its death
 cell (key col / spill point). Weight is the persistence (prominence or
 depth) or 1 (count mode); the essential peak is credited its elevation minus
 the base. A realisation's contribution is *sparse*, so the per-realisation
-output is a compact **pair log** (:data:`LOG_FIELDS`, 21 bytes per logged pair
+output is a compact **pair log** (:data:`LOG_FIELDS`, 25 bytes per logged pair
 on grids below 2**31 cells) plus, for depressions, ponding counts added in
-place.
+place and a **pond log** (:data:`POND_FIELDS`: per region holding water, its
+ponded area and volume).
+
+Feature regions are fixed before any realisation: the persistence-simplified
+watershed of the *unperturbed* DEM (:func:`terrain.engine.persistence.regions`)
+at the merge level. Each logged pair carries the region of its birth cell,
+so a feature's figure in a realisation is the largest counted figure born in
+it. The highest summit of a realisation is measured to the base, or to the
+realisation's lowest cell when that is lower, so it always has the largest
+figure.
 
 Credit layers are streaming means with standard errors, accumulated from the
 log strictly in realisation order, so the float sums are the same whatever
@@ -20,7 +29,8 @@ proportion is the Monte Carlo standard error sqrt(p(1-p)/N).
 
 Memory in the accumulating process: 2 x 2 float64 moments + 1 int32 count
 (+ 1 int32 ponding count for depressions) + scratch (int32 + float64) =
-48-52 bytes per cell.
+48-52 bytes per cell, and the finished layers, 16 bytes per cell each (96
+for peaks, 116 for depressions in all; :meth:`CreditJob.memory_per_cell`).
 """
 
 from __future__ import annotations
@@ -34,21 +44,22 @@ from numba import njit
 
 from .. import defaults
 from ..dem import Dem
-from ..engine.persistence import count_ponding, pairs, pits_and_levels
+from ..engine.persistence import Regions, count_ponding, pairs, pits_and_levels, regions
 from ..errors import CheckpointError, OptionError
 from ..layers import layer_name, layers_of
 from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
 
-__all__ = ["KINDS", "LOG_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator", "realise",
-           "log_weights", "concat_logs", "proportion"]
+__all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
+           "realise", "log_weights", "concat_logs", "proportion", "region_figures"]
 
 KINDS = ("peaks", "depressions")
 FILTRATION = {"peaks": "peaks", "depressions": "pits"}  # the engine's name for each kind
-LOG_FIELDS = ("real", "birth", "death", "birth_value", "death_value", "edge_limited")
+LOG_FIELDS = ("real", "birth", "death", "birth_value", "death_value", "edge_limited", "region")
+POND_FIELDS = ("pond_real", "pond_region", "pond_area", "pond_volume")
 WEIGHTS = ("persistence", "count")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class CreditJob:
     """What a peaks or depressions realisation counts and how it weighs it.
 
@@ -60,7 +71,7 @@ class CreditJob:
     kind : {"peaks", "depressions"}
     threshold : float, optional
         Minimum prominence (peaks) or depth (depressions) of a counted pair,
-        and the minimum ponding depth. Default: 3 x RMSE.
+        and the minimum depth of a ponding depression. Default: 3 x RMSE.
     threshold_jitter : float
         Standard deviation of the threshold: each realisation draws its own
         from the error model's kernel centred on ``threshold`` (clipped at
@@ -70,6 +81,15 @@ class CreditJob:
     base : float, optional
         Level the essential peak's prominence is measured to. Default: the
         lowest valid cell (peaks only).
+    merge_level : float, optional
+        Persistence below which the unperturbed DEM's regions merge into the
+        feature around them. Default: min(2 x RMSE, threshold).
+    min_presence : float
+        A region is a feature (a row of the tables) when a counted pair is
+        born in it in at least this share of realisations.
+    regions : Regions, optional
+        The unperturbed DEM's regions at ``merge_level`` (filled in by
+        :meth:`resolved`, or given to share them between runs).
     """
 
     kind: str
@@ -78,6 +98,10 @@ class CreditJob:
     weight: str = "persistence"
     connectivity: int = 8
     base: float | None = None
+    merge_level: float | None = None
+    min_presence: float = defaults.MIN_PRESENCE
+    regions: Regions | None = None
+    area_row: np.ndarray | None = None
     from_defaults: tuple = ()
 
     def __post_init__(self):
@@ -90,12 +114,15 @@ class CreditJob:
         if self.connectivity not in (4, 8):
             raise OptionError(f"{{connectivity}} must be 8 or 4, got {self.connectivity}",
                               "connectivity")
-        for name in ("threshold", "threshold_jitter"):
+        for name in ("threshold", "threshold_jitter", "merge_level"):
             v = getattr(self, name)
             if v is not None and not (math.isfinite(v) and v >= 0):
                 raise OptionError(f"{{{name}}} must be >= 0 and finite, got {v}", name)
         if self.base is not None and not math.isfinite(self.base):
             raise OptionError(f"{{base}} must be finite, got {self.base}", "base")
+        if not 0 < self.min_presence <= 1:
+            raise OptionError(f"{{min_presence}} is a share in (0, 1], got {self.min_presence}",
+                              "min_presence")
 
     # -- the job interface (terrain.runner.protocols.Job) ---------------------------
     @property
@@ -103,18 +130,30 @@ class CreditJob:
         return self.kind
 
     @property
+    def filtration(self) -> str:
+        """The engine's name for the kind: peaks or pits."""
+        return FILTRATION[self.kind]
+
+    @property
     def layers(self) -> tuple[str, ...]:
         return tuple(s.name for s in layers_of(self.kind))
 
     def _defaulted(self) -> tuple[str, ...]:
-        names = ("threshold", "base") if self.kind == "peaks" else ("threshold",)
+        names = ("threshold", "merge_level") + (("base",) if self.kind == "peaks" else ())
         return tuple(n for n in names if getattr(self, n) is None or n in self.from_defaults)
 
     def resolved(self, dem: Dem, model: ErrorModel) -> CreditJob:
         """This job with every ``None`` setting replaced by its library default
-        (resolving twice changes nothing)."""
+        and the unperturbed DEM's regions computed (resolving twice changes
+        nothing)."""
+        thr = defaults.cutoff(self.threshold, model.rmse)
+        merge = defaults.merge_level(self.merge_level, model.rmse, thr)
+        reg = self.regions
+        if reg is None or reg.merge_level != merge or reg.labels.shape != dem.shape:
+            reg = regions(dem.z, kind=self.filtration, merge_level=merge,
+                          connectivity=self.connectivity, mask=dem.nodata)
         return dataclasses.replace(
-            self, threshold=defaults.cutoff(self.threshold, model.rmse),
+            self, threshold=thr, merge_level=merge, regions=reg, area_row=dem.cell_area_m2(),
             base=defaults.base_level(self.base, dem) if self.kind == "peaks" else None,
             from_defaults=self._defaulted())
 
@@ -123,8 +162,8 @@ class CreditJob:
         return {n: defaults.RULES[n] for n in self._defaulted()}
 
     def describe(self) -> dict:
-        d = dataclasses.asdict(self)
-        d.pop("from_defaults")
+        d = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
+             if f.name not in ("regions", "area_row", "from_defaults")}
         return {"job": self.kind, **d}
 
     def new_counts(self, n_cells: int) -> dict:
@@ -138,12 +177,14 @@ class CreditJob:
         return CreditAccumulator(n_cells, self)
 
     def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
-        """Accumulators: 4 float64 moments, 1 int32 count, scratch (float64 +
-        int32), + 1 int32 ponding count for depressions. Worker: the DEM copy,
-        noise (4), the perturbed copy and the key copy the pairing sorts on,
-        basin labels (4), validity (1), ponding counts (4)."""
-        parent = 48 + (4 if self.kind == "depressions" else 0)
-        return parent, 3 * value_bytes + 13
+        """Accumulating process: 4 float64 moments, 1 int32 count, scratch
+        (float64 + int32), + 1 int32 ponding count for depressions, and the
+        finished layers (a float64 estimate and standard error each, 3 or 4
+        layers). Worker: the DEM copy, noise (4), the perturbed copy and the
+        key copy the pairing sorts on, basin labels (4), validity (1), region
+        labels (4), ponding counts (4)."""
+        parent = 48 + (4 if self.kind == "depressions" else 0) + 16 * len(self.layers)
+        return parent, 3 * value_bytes + 17
 
 
 def realisation_threshold(job: CreditJob, kernel: Kernel, seed: int, i: int) -> float:
@@ -157,7 +198,7 @@ def realisation_threshold(job: CreditJob, kernel: Kernel, seed: int, i: int) -> 
 
 def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: int,
             ponding: np.ndarray | None = None) -> dict:
-    """Compute realisation ``i``: perturb, pair, select; return its pair log.
+    """Compute realisation ``i``: perturb, pair, select; return its logs.
 
     Parameters
     ----------
@@ -166,32 +207,53 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
     job : CreditJob (resolved)
     seed, i : the run's seed and the realisation index
     ponding : flat int32 array, optional
-        For depressions, incremented in place where the cell holds water at
-        least the threshold deep after depression filling.
+        For depressions, incremented in place where the cell lies in a
+        depression at least the threshold deep.
 
     Returns
     -------
-    dict of arrays named :data:`LOG_FIELDS`.
+    dict of arrays: the pair log (:data:`LOG_FIELDS`) and, for depressions,
+    the pond log (:data:`POND_FIELDS`).
     """
     zi = sampler.draw(seed, i)
     zi += z
     thr = realisation_threshold(job, sampler.kernel, seed, i)
+    reg = job.regions.labels.reshape(-1)
+    ponds = {}
     if job.kind == "peaks":
         p = pairs(zi, kind="peaks", connectivity=job.connectivity)
+        # the highest summit is measured to the base, or lower if the realisation is
+        floor = min(job.base, float(np.nanmin(zi))) if p.essential.any() else 0.0
+        death_value = np.where(p.essential, floor, p.death_value)
     else:
-        p, zf, valid, lab, level = pits_and_levels(zi, connectivity=job.connectivity)
+        p, fill = pits_and_levels(zi, connectivity=job.connectivity)
+        death_value = p.death_value
         if ponding is not None:
-            count_ponding(zf, valid, lab, level, thr, ponding)
+            ponds = _ponds(fill, thr, ponding, reg, job, i, z.shape[1])
     keep = p.persistence >= thr
     cell_t = np.int32 if z.size < 2**31 - 1 else np.int64
+    birth = p.birth[keep]
     return {
         "real": np.full(int(keep.sum()), i, np.int32),
-        "birth": p.birth[keep].astype(cell_t),
+        "birth": birth.astype(cell_t),
         "death": p.death[keep].astype(cell_t),
         "birth_value": p.birth_value[keep].astype(np.float32),
-        "death_value": p.death_value[keep].astype(np.float32),
+        "death_value": death_value[keep].astype(np.float32),
         "edge_limited": p.edge_limited[keep],
+        "region": reg[birth].astype(np.int32),
+        **ponds,
     }
+
+
+def _ponds(fill, thr, ponding, reg, job, i, nc) -> dict:
+    """Count ponding and log each region's ponded area and volume."""
+    k = len(job.regions) + 1
+    area, vol = np.zeros(k), np.zeros(k)
+    count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, thr, ponding, reg,
+                  job.area_row, nc, area, vol)
+    wet = np.flatnonzero(area > 0)
+    return {"pond_real": np.full(wet.size, i, np.int32), "pond_region": wet.astype(np.int32),
+            "pond_area": area[wet], "pond_volume": vol[wet]}
 
 
 def concat_logs(logs: list[dict], fields) -> dict:
@@ -207,15 +269,35 @@ def proportion(count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
     return p, np.sqrt(p * (1 - p) / max(n, 1))
 
 
-def log_weights(log: dict, weight: str, base: float | None) -> np.ndarray:
-    """Weight of each logged pair: persistence (essential: elevation - base) or 1."""
+def log_weights(log: dict, weight: str = "persistence") -> np.ndarray:
+    """Weight of each logged pair: its figure (prominence or depth; for the
+    highest summit its height above the level logged as its death value) or 1."""
     if weight == "count":
         return np.ones(log["birth"].size)
-    bv = log["birth_value"].astype(np.float64)
-    dv = log["death_value"].astype(np.float64)
-    ess = log["death"] < 0
-    b = 0.0 if base is None else base
-    return np.where(ess, np.maximum(bv - b, 0.0), np.abs(bv - np.where(ess, 0.0, dv)))
+    return np.abs(log["birth_value"].astype(np.float64) - log["death_value"].astype(np.float64))
+
+
+def region_figures(log: dict, *, with_birth: bool = False) -> tuple:
+    """Per (realisation, region) with a counted pair: the largest figure born in it.
+
+    Returns ``(real, region, figure, edge_limited)`` sorted by realisation,
+    then region; ``edge_limited`` is the flag of the largest pair, and with
+    ``with_birth`` its birth cell comes fifth. Pairs born outside every
+    region are left out.
+    """
+    inside = log["region"] > 0
+    real = log["real"][inside].astype(np.int64)
+    reg = log["region"][inside].astype(np.int64)
+    fig = log_weights({k: log[k][inside] for k in ("birth", "birth_value", "death_value")})
+    edge = log["edge_limited"][inside]
+    order = np.lexsort((fig, reg, real))
+    real, reg, fig, edge = real[order], reg[order], fig[order], edge[order]
+    last = np.ones(order.size, bool)
+    last[:-1] = (real[1:] != real[:-1]) | (reg[1:] != reg[:-1])
+    out = real[last], reg[last], fig[last], edge[last]
+    if with_birth:
+        out += (log["birth"][inside][order][last].astype(np.int64),)
+    return out
 
 
 @njit(cache=True)
@@ -257,13 +339,16 @@ def _accumulate(real, birth, death, w, bsum, bsq, dsum, dsq, bcount, scratch, ma
 
 
 class CreditAccumulator:
-    """Streaming sums for one run's layers, fed in realisation order.
+    """Streaming sums for one run's layers and features, fed in realisation order.
 
     ``add(log, counts, n)`` folds in the next ``n`` realisations (their log
-    entries sorted by realisation, and their summed integer counts).
+    entries sorted by realisation, and their summed integer counts). Per
+    region it also keeps the sum and sum of squares of the realisation's
+    figure and the number of realisations with a counted pair, for the stop
+    rule; the tables are made from the full log at the end.
     """
 
-    _ARRAYS = ("bsum", "bsq", "dsum", "dsq", "bcount")
+    _ARRAYS = ("bsum", "bsq", "dsum", "dsq", "bcount", "fsum", "fsq", "fcount")
 
     def __init__(self, n_cells: int, job: CreditJob):
         self.job = job
@@ -273,23 +358,31 @@ class CreditAccumulator:
         self.dsum = np.zeros(n_cells)
         self.dsq = np.zeros(n_cells)
         self.bcount = np.zeros(n_cells, np.int32)
+        k = len(job.regions) + 1 if job.regions is not None else 1
+        self.fsum, self.fsq = np.zeros(k), np.zeros(k)
+        self.fcount = np.zeros(k, np.int64)
         self.ponding = np.zeros(n_cells, np.int32) if job.kind == "depressions" else None
         self._scratch = np.zeros(n_cells)
         self._mark = np.zeros(n_cells, np.int32)
         self.logs: list[dict] = []
 
     def add(self, log: dict, counts: dict, n: int) -> None:
-        w = log_weights(log, self.job.weight, self.job.base)
+        w = log_weights(log, self.job.weight)
         _accumulate(log["real"], log["birth"].astype(np.int64), log["death"].astype(np.int64), w,
                     self.bsum, self.bsq, self.dsum, self.dsq, self.bcount, self._scratch, self._mark)
+        _, reg, fig, _ = region_figures(log)
+        np.add.at(self.fsum, reg, fig)
+        np.add.at(self.fsq, reg, fig * fig)
+        np.add.at(self.fcount, reg, 1)
         if counts.get("ponding") is not None and self.ponding is not None:
             self.ponding += counts["ponding"]
         self.logs.append(log)
         self.n += n
 
     def log(self) -> dict:
-        """All logged pairs so far, concatenated."""
-        return concat_logs(self.logs, LOG_FIELDS)
+        """The pair log (and pond log) so far, concatenated."""
+        fields = LOG_FIELDS + (POND_FIELDS if self.job.kind == "depressions" else ())
+        return concat_logs(self.logs, fields)
 
     def _moments(self, s, q):
         n = max(self.n, 1)
@@ -307,13 +400,16 @@ class CreditAccumulator:
         return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
 
     def stop_statistic(self) -> float:
-        """Largest standard error of the summit/pit credit among cells holding
-        at least 1% of the top credit (DEM units; NaN before any credit)."""
-        m, se = self._moments(self.bsum, self.bsq)
-        top = np.nanmax(m) if m.size else 0.0
-        if not top > 0:
+        """Largest Monte Carlo standard error of a feature's expected figure
+        (DEM units) among the regions counted in at least ``min_presence`` of
+        the realisations so far (NaN while there are none)."""
+        if self.n == 0:
             return math.nan
-        return float(np.nanmax(se[m >= 0.01 * top]))
+        rows = self.fcount >= self.job.min_presence * self.n
+        if not rows.any():
+            return math.nan
+        _, se = self._moments(self.fsum[rows], self.fsq[rows])
+        return float(se.max())
 
     # -- checkpoint state ------------------------------------------------------
     def state(self) -> dict:
@@ -326,7 +422,8 @@ class CreditAccumulator:
     def restore(self, st: dict) -> None:
         for k in self._ARRAYS + (("ponding",) if self.ponding is not None else ()):
             if k not in st or st[k].shape != getattr(self, k).shape:
-                raise CheckpointError("checkpoint arrays do not match the DEM's size")
+                raise CheckpointError("checkpoint arrays do not match the DEM's size or regions")
             getattr(self, k)[:] = st[k]
         self.n = int(st["n"])
-        self.logs = [{k: st[f"log_{k}"] for k in LOG_FIELDS}]
+        fields = LOG_FIELDS + (POND_FIELDS if self.job.kind == "depressions" else ())
+        self.logs = [{k: st[f"log_{k}"] for k in fields}]

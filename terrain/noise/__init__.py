@@ -1,8 +1,8 @@
 """DEM error models: kernels, correlated fields, the model a run draws from."""
 
-from .fields import COVARIANCES, CorrelatedField, covariance
+from .fields import COVARIANCES, ConvolutionKernel, covariance
 from .kernels import KERNELS, Kernel, kernel
-from .model import ErrorModel, ErrorSampler, realisation_rng, rmse_from
+from .model import ErrorModel, ErrorSampler, realisation_rng, rmse_from, tile_rng
 
-__all__ = ["KERNELS", "Kernel", "kernel", "COVARIANCES", "CorrelatedField", "covariance",
-           "ErrorModel", "ErrorSampler", "realisation_rng", "rmse_from"]
+__all__ = ["KERNELS", "Kernel", "kernel", "COVARIANCES", "ConvolutionKernel", "covariance",
+           "ErrorModel", "ErrorSampler", "realisation_rng", "rmse_from", "tile_rng"]

@@ -4,8 +4,13 @@ A realisation of the DEM is ``z + e`` where ``e`` is drawn from an
 :class:`ErrorModel`: independent per-cell error from a kernel
 (:mod:`terrain.noise.kernels`) scaled to the stated RMSE, or a stationary
 Gaussian random field (:mod:`terrain.noise.fields`) with an optional
-independent nugget. Realisation ``i`` draws only from its own random stream,
-so results do not depend on how realisations are spread over workers.
+independent nugget.
+
+Counter-based streams: the random numbers of realisation ``i`` are drawn
+tile by tile, each fixed 256 x 256 noise tile from its own stream keyed by
+(seed, realisation, stream, tile row, tile column), so the error at a cell is
+the same whether the raster is drawn whole or window by window, on any
+number of workers or backends.
 
 References
 ----------
@@ -20,17 +25,19 @@ References
 from __future__ import annotations
 
 import math
-import warnings
 from dataclasses import asdict, dataclass
 
 import numpy as np
 
 from ..errors import OptionError
-from .fields import COVARIANCES, CorrelatedField
+from .fields import COVARIANCES, ConvolutionKernel
 from .kernels import kernel
 
-__all__ = ["ErrorModel", "ErrorSampler", "rmse_from", "realisation_rng", "LE90_FACTOR",
-           "A95_FACTOR", "DRAWS", "ACCURACY_HINT"]
+__all__ = ["ErrorModel", "ErrorSampler", "rmse_from", "realisation_rng", "tile_rng", "NOISE_TILE",
+           "LE90_FACTOR", "A95_FACTOR", "DRAWS", "ACCURACY_HINT"]
+
+NOISE_TILE = 256  # cells per side of a noise tile (fixed: it defines the streams)
+_TILE_OFFSET = 1 << 20  # tile indices may be negative (fields look past the raster edge)
 
 # Normal error: LE90 = 1.6449 RMSE, accuracy at 95% = 1.9600 RMSE
 # (FGDC-STD-007.3-1998 NSSDA; ASPRS 2014).
@@ -78,6 +85,16 @@ def realisation_rng(seed: int, i: int, stream: int = 0) -> np.random.Generator:
     error field, 1 the nugget, 2 the jittered threshold.
     """
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=(i, stream))))
+
+
+def tile_rng(seed: int, i: int, stream: int, tr: int, tc: int) -> np.random.Generator:
+    """The stream of noise tile (``tr``, ``tc``) of realisation ``i``.
+
+    ``SeedSequence(seed, spawn_key=(i, stream, tr + 2**20, tc + 2**20))``:
+    a counter-based key, so any tile can be drawn alone, in any order.
+    """
+    key = (i, stream, tr + _TILE_OFFSET, tc + _TILE_OFFSET)
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=key)))
 
 
 @dataclass(frozen=True)
@@ -161,11 +178,12 @@ class ErrorModel:
 
 
 class ErrorSampler:
-    """Draws the error fields of one grid under an :class:`ErrorModel`.
+    """Draws the error of one grid under an :class:`ErrorModel`, whole or by window.
 
     ``draw(seed, i)`` returns the error of realisation ``i`` in DEM units
-    (float32, the grid's shape): a unit-scale draw times the model's RMSE,
-    so models that differ only in RMSE use common random numbers.
+    (float32, the grid's shape); ``draw_window(seed, i, r0, r1, c0, c1)`` the
+    same values on a window. A unit-scale draw is multiplied by the model's
+    RMSE, so models that differ only in RMSE use common random numbers.
     """
 
     def __init__(self, model: ErrorModel, shape, spacing_m):
@@ -174,28 +192,65 @@ class ErrorSampler:
         self.kernel = kernel(model.kernel)
         self.field = None
         if model.correlated:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                self.field = CorrelatedField(self.shape, spacing_m, model.covariance, model.range_m)
+            self.field = ConvolutionKernel(spacing_m, model.covariance, model.range_m)
+            self.field_tile = self.field.tile_size(self.shape)
 
-    def _kernel_draw(self, rng: np.random.Generator) -> np.ndarray:
+    def _tiles(self, seed, i, stream, r0, r1, c0, c1, normal: bool, cache=None) -> np.ndarray:
+        """Unit draws on a window, assembled from the fixed noise tiles (``cache``
+        keeps tiles already drawn for this window's neighbours)."""
+        t = NOISE_TILE
+        out = np.empty((r1 - r0, c1 - c0), np.float64 if normal else np.float32)
+        for tr in range(r0 // t, (r1 - 1) // t + 1):
+            for tc in range(c0 // t, (c1 - 1) // t + 1):
+                tile = None if cache is None else cache.get((tr, tc))
+                if tile is None:
+                    rng = tile_rng(seed, i, stream, tr, tc)
+                    tile = rng.standard_normal((t, t)) if normal else self._kernel_draw(rng, (t, t))
+                    if cache is not None:
+                        cache[(tr, tc)] = tile
+                a, b = max(r0, tr * t), min(r1, (tr + 1) * t)
+                c, d = max(c0, tc * t), min(c1, (tc + 1) * t)
+                out[a - r0:b - r0, c - c0:d - c0] = tile[a - tr * t:b - tr * t, c - tc * t:d - tc * t]
+        return out
+
+    def _kernel_draw(self, rng: np.random.Generator, shape) -> np.ndarray:
         if self.model.draw == "quantile":
-            u = rng.random(self.shape)
+            u = rng.random(shape)
             np.maximum(u, 2.0 ** -60, out=u)  # the quantile is finite on (0, 1)
             return self.kernel.quantile(u).astype(np.float32)
-        return self.kernel.sample(rng, self.shape)
+        return self.kernel.sample(rng, shape)
 
-    def draw(self, seed: int, i: int) -> np.ndarray:
+    def _field(self, seed, i, r0, r1, c0, c1) -> np.ndarray:
+        """Unit-variance correlated field on a window, from fixed field tiles."""
+        f, (ry, rx) = self.field_tile, self.field.radius
+        out = np.empty((r1 - r0, c1 - c0), np.float64)
+        cache: dict = {}
+        for fr in range(r0 // f, (r1 - 1) // f + 1):
+            for fc in range(c0 // f, (c1 - 1) // f + 1):
+                noise = self._tiles(seed, i, 0, fr * f - ry, (fr + 1) * f + ry,
+                                    fc * f - rx, (fc + 1) * f + rx, True, cache)
+                tile = self.field.convolve(noise)
+                a, b = max(r0, fr * f), min(r1, (fr + 1) * f)
+                c, d = max(c0, fc * f), min(c1, (fc + 1) * f)
+                out[a - r0:b - r0, c - c0:d - c0] = tile[a - fr * f:b - fr * f, c - fc * f:d - fc * f]
+        return out
+
+    def draw_window(self, seed: int, i: int, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+        """The error of realisation ``i`` on rows ``r0:r1``, columns ``c0:c1``."""
         m = self.model
         unit_sd = math.sqrt(self.kernel.unit_variance)
         if self.field is None:
-            e = self._kernel_draw(realisation_rng(seed, i))
+            e = self._tiles(seed, i, 0, r0, r1, c0, c1, False)
             e *= np.float32(m.rmse / unit_sd)
             return e
-        corr = self.field.standard(realisation_rng(seed, i))
+        corr = self._field(seed, i, r0, r1, c0, c1).astype(np.float32)
         corr *= np.float32(m.rmse * math.sqrt(1 - m.nugget))
         if m.nugget > 0:
-            e = self._kernel_draw(realisation_rng(seed, i, 1))
+            e = self._tiles(seed, i, 1, r0, r1, c0, c1, False)
             e *= np.float32(m.rmse * math.sqrt(m.nugget) / unit_sd)
             corr += e
         return corr
+
+    def draw(self, seed: int, i: int) -> np.ndarray:
+        """The error of realisation ``i`` on the whole grid."""
+        return self.draw_window(seed, i, 0, self.shape[0], 0, self.shape[1])

@@ -11,20 +11,23 @@ from dataclasses import dataclass
 
 from ..layers import layers_of
 
-__all__ = ["OutputFile", "MANIFEST", "file_names", "help_text"]
+__all__ = ["OutputFile", "MANIFEST", "VECTOR_LAYERS", "file_names", "help_text"]
 
 
 @dataclass(frozen=True)
 class OutputFile:
-    """One output file: its name, what it holds, and its layers (GeoPackage)."""
+    """One output file: its name, what it holds, its layers (GeoPackage), and
+    whether only a catchment run with outlets writes it."""
 
     name: str
     what: str
     layers: tuple[str, ...] = ()
+    needs_outlets: bool = False
 
 
 def _rasters(job: str) -> list[OutputFile]:
-    return [OutputFile(s.name + ".tif", s.description + " (band 1), its standard error (band 2)")
+    return [OutputFile(s.name + ".tif", s.description + " (band 1), its standard error (band 2)",
+                       needs_outlets=s.needs_outlets)
             for s in layers_of(job)]
 
 
@@ -35,16 +38,21 @@ _COMMON = [OutputFile("quicklook.png", "quick-look map"),
 MANIFEST: dict[str, list[OutputFile]] = {
     "peaks": _rasters("peaks") + [
         OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics",
-                   ("summits", "summit_points")),
+                   ("summits", "summit_points", "summit_regions")),
         OutputFile("summits.csv", "the summit feature table")] + _COMMON,
     "depressions": _rasters("depressions") + [
         OutputFile("depressions.gpkg", "depression features: polygons and points with their "
-                                       "statistics", ("pits", "pit_points")),
+                                       "statistics", ("pits", "pit_points", "pit_regions")),
         OutputFile("pits.csv", "the depression feature table")] + _COMMON,
     "catchments": _rasters("catchments") + [
-        OutputFile("catchments.gpkg", "50% and 90% membership polygons per outlet with areas",
-                   ("catchments",)),
-        OutputFile("catchments.csv", "the catchment table")] + _COMMON,
+        OutputFile("catchments.gpkg", "per outlet: 50% and 90% catchment and sub-catchment "
+                                      "polygons with areas, and the outlet as given and snapped, "
+                                      "each with the outlets file's attributes",
+                   ("catchments", "subcatchments", "outlets"), True),
+        OutputFile("catchments.csv", "the catchments layer as a table", needs_outlets=True),
+        OutputFile("subcatchments.csv", "the subcatchments layer as a table", needs_outlets=True),
+        OutputFile("outlets.csv", "the outlets layer as a table", needs_outlets=True),
+    ] + _COMMON,
     "sweep": [
         OutputFile("sweep.csv", "per error model and feature: expected figure, P(counted), "
                                 "P(first), credit share, with standard errors"),
@@ -53,24 +61,63 @@ MANIFEST: dict[str, list[OutputFile]] = {
         _COMMON[1]],
 }
 
+#: What each GeoPackage layer holds: the start of its ``gpkg_contents.description`` (the
+#: writer adds the error model and the caution).
+VECTOR_LAYERS: dict[str, str] = {
+    "summits": "Summit features of a peaks run: where each top is (the fewest cells holding 90% "
+               "of the summit births of its region of the DEM as given), one polygon per "
+               "feature, by rank, with its prominence on the DEM as given, expected prominence "
+               "and its spread, and the probabilities of being counted and of ranking first",
+    "summit_points": "Summit features of a peaks run as points at each feature's most credited "
+                     "summit cell, by rank, with the same statistics as the summits layer",
+    "summit_regions": "Summit features of a peaks run: each feature's whole region of the DEM "
+                      "as given (the cells that climb to its summit), by rank, with the same "
+                      "statistics as the summits layer",
+    "pits": "Depression features of a depressions run: each feature's ponded extent (cells of "
+            "its region that hold water in at least half the realisations), one polygon per "
+            "feature, by rank, with its depth on the DEM as given, expected depth and its "
+            "spread, ponded area and volume, and the probabilities of being counted and of "
+            "ranking first",
+    "pit_points": "Depression features of a depressions run as points at each feature's most "
+                  "credited pit cell, by rank, with the same statistics as the pits layer",
+    "pit_regions": "Depression features of a depressions run: each feature's whole region of "
+                   "the DEM as given (the cells that drain to its pit), by rank, with the same "
+                   "statistics as the pits layer",
+    "catchments": "Cells draining to each outlet in at least 50% and at least 90% of "
+                  "realisations, one polygon per outlet and level, with its area and the mean "
+                  "and 5-95% range of the catchment area over realisations (nested outlets "
+                  "included), and the outlets file's attributes",
+    "subcatchments": "Cells whose first chosen outlet downstream is each outlet in at least 50% "
+                     "and at least 90% of realisations (nested outlets split their parent), one "
+                     "polygon per outlet and level, with its area and the mean and 5-95% range "
+                     "of the sub-catchment area, and the outlets file's attributes",
+    "outlets": "Each outlet as given, with its most frequent snapped cell, the share of "
+               "realisations that snapped there and the mean snap distance in metres, and the "
+               "outlets file's attributes",
+}
+
 
 def file_names(command: str, ids=()) -> list[str]:
-    """The concrete file names ``command`` writes (one per outlet where a name holds ``{id}``)."""
+    """The concrete file names ``command`` writes (one per outlet where a name
+    holds ``{id}``; ``ids`` are file-name ids, and without any the files that
+    need outlets are left out)."""
     out = []
     for f in MANIFEST[command]:
         if "{id}" in f.name:
             out += [f.name.replace("{id}", str(i)) for i in ids]
-        else:
+        elif ids or not f.needs_outlets:
             out.append(f.name)
     return out
 
 
 def help_text(command: str) -> str:
     """A plain list of the files ``command`` writes, for the help text."""
-    names = []
-    for f in MANIFEST[command]:
-        name = f.name.replace("{id}", "<id>")
-        names.append(f"{name} ({', '.join(f.layers)})" if f.layers else name)
-    return "Writes " + ", ".join(names) + "."
+    def names(files):
+        return ", ".join(f"{f.name.replace('{id}', '<id>')} ({', '.join(f.layers)})" if f.layers
+                         else f.name.replace("{id}", "<id>") for f in files)
+
+    always = [f for f in MANIFEST[command] if not f.needs_outlets]
+    extra = [f for f in MANIFEST[command] if f.needs_outlets]
+    return "Writes " + names(always) + (f"; with outlets also {names(extra)}" if extra else "") + "."
 
 

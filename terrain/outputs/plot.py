@@ -6,13 +6,15 @@ saves it (atomically, through :mod:`terrain.io`).
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 
 import numpy as np
 
 from ..dem import Dem
-from ..layers import layer_name, units
+from ..layers import LAYERS, layer_name, units
+from ..outlets import short
 
 MAX_ASPECT = 2.5  # quick-look pages are at most 2.5 times taller than wide (or wider than tall)
 QUICKLOOK_CELLS = 2 ** 21  # a quick-look draws at most ~2.1 million cells (blocks of a bigger grid)
@@ -90,7 +92,8 @@ def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: floa
     show : (rows, cols) bool array, optional
         Draw the layer only where True (e.g. inside features).
     contours : sequence of (array, levels, label), optional
-        Contour lines of further layers (e.g. membership probabilities).
+        Contour lines of further layers (e.g. membership probabilities); an
+        array may be given as a function returning it, called when drawn.
 
     Returns
     -------
@@ -143,15 +146,18 @@ def _draw_layer(fig, ax, cax, dem, layer, extent, *, frac, vmax, show, cmap, uni
     fig.colorbar(im, cax=cax).set_label(units + " (square-root scale)")
 
 
+_CONTOUR_STYLE = {0.1: ("dotted", 0.8), 0.5: ("solid", 1.6), 0.9: ("dashed", 1.0)}
+
+
 def _draw_contours(ax, dem, contours, extent, step):
     colours = ["#e76f51", "#2a9d8f", "#e9c46a", "#264653", "#f4a261", "#8338ec"]
     for n, (arr, levels, label) in enumerate(contours if min(dem.shape) >= 2 else []):
-        a_ = blocks(arr, dem.nodata, step, np.nanmean)
+        a_ = blocks(arr() if callable(arr) else arr, dem.nodata, step, np.nanmean)
         if np.nanmax(a_) >= min(levels):
+            style = [_CONTOUR_STYLE.get(v, ("solid", 1.0)) for v in levels]
             cs = ax.contour(a_, levels=levels, extent=extent,
                             origin="upper", colors=colours[n % len(colours)],
-                            linewidths=[0.8, 1.6, 0.8][: len(levels)],
-                            linestyles=["dotted", "solid", "dashed"][: len(levels)])
+                            linewidths=[w for _, w in style], linestyles=[s for s, _ in style])
             ax.clabel(cs, fmt=lambda v, label=label: f"{label} {v:.0%}", fontsize=7)
             # the lines are drawn; matplotlib's contour generator would keep its own
             # float64 copies of the grid (~28 bytes per cell per contoured layer)
@@ -191,7 +197,7 @@ def feature_map(result, features):
     unit = units(main, dem.vertical_units, job.weight)
     figure = "prominence" if job.kind == "peaks" else "depth"
     table = features.table
-    order = np.argsort(table["rank"].to_numpy(), kind="stable")[:12]
+    order = np.arange(min(len(table), 12))
     labels = [(table["x"].iloc[i], table["y"].iloc[i],
                f"#{table['feature_id'].iloc[i]} {table['expected'].iloc[i]:.1f} · "
                f"p₁ {table['p_first'].iloc[i]:.2f}") for i in order]
@@ -201,20 +207,37 @@ def feature_map(result, features):
              "p₁ = probability of ranking first")
     return quicklook(dem, result.layers[main][0], title=title,
                      units=f"{main.replace('_', ' ')} ({unit})", polygons=poly, labels=labels,
-                     show=features.labels > 0)
+                     show=np.isin(features.regions.labels, table["feature_id"].to_numpy()))
 
 
 def catchment_map(result):
-    """The quick-look of a catchment run: divide probability with 10/50/90%
-    membership contours per outlet."""
-    job = result.job
-    contours = [(result.layers[name][0], [0.1, 0.5, 0.9], oid)
-                for oid, name in zip(job.ids, job.layers[:-1])]
-    return quicklook(result.dem, result.layers[job.layers[-1]][0],
-                     title=f"drainage-divide probability; membership contours 10% (dotted), 50%, "
-                           f"90% (dashed)\n{result.n} realisations, error {result.model.describe()}",
-                     units="divide probability", cmap="viridis_r", contours=contours,
-                     outlets=[(x, y, oid) for oid, (x, y) in zip(job.ids, job.xy)], vmax=1.0)
+    """The quick-look of a catchment run: divide probability with each outlet's
+    sub-catchment outlined where it holds in 50% (solid) and 90% (dashed) of
+    realisations, outlets marked; without outlets, channel probability."""
+    job, dem = result.job, result.dem
+    what = f"{result.n} realisations, error {result.model.describe()}, {job.conditioning}, " \
+           f"D{job.connectivity}"
+    if not job.ids:
+        name = layer_name("catchments", "channel")
+        return quicklook(dem, result.layers[name][0], vmax=1.0, cmap="Blues",
+                         units="channel probability",
+                         title=f"channel probability (drainage area >= {job.channel_area:g} m²)"
+                               f"\n{what}")
+    sub = LAYERS[layer_name("catchments", "subcatchment")]
+    # each layer is computed from its counts when drawn: one at a time in memory
+    contours = [(functools.partial(_first, result.layers, sub.concrete(lid)), [0.5, 0.9],
+                 short(oid, 24)) for oid, lid in zip(job.ids, job.layer_ids)]
+    return quicklook(dem, result.layers[layer_name("catchments", "divide")][0],
+                     title=f"divide probability; sub-catchments held in 50% (solid) and 90% "
+                           f"(dashed) of realisations\n{what}",
+                     units="divide probability", cmap="Purples", contours=contours,
+                     outlets=[(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)],
+                     vmax=1.0)
+
+
+def _first(layers, name):
+    """A layer's estimate (computed when drawn, see catchment_map)."""
+    return layers[name][0]
 
 
 def _scale_bar(ax, dem: Dem, extent) -> None:
@@ -240,51 +263,81 @@ def _north_arrow(ax) -> None:
                 arrowprops=dict(facecolor="black", width=3, headwidth=10))
 
 
+SWEEP_STATISTICS = (("credit_share", "credit_share_se", "share of total credit"),
+                    ("p_first", "p_first_se", "P(ranks first)"))
+_KERNEL_STYLE = (("o", "-"), ("s", "--"), ("^", "-."), ("D", ":"))
+
+
 def sweep_figure(result, *, units: str):
-    """credit_share and p_first against the error level for the top features
-    of a :class:`terrain.sweep.SweepResult`, one column of panels per kernel,
-    error bars of one standard error."""
+    """One panel per statistic (credit share, P(ranks first)) against the error level.
+
+    Each of the sweep's top features is a colour, each kernel a marker and
+    line style; error bars are one standard error, and the kernels' points
+    are set slightly apart along the (log) error axis so their bars do not
+    hide each other. Legends sit outside the panels, beside the panel they
+    explain, and the figure is laid out with matplotlib's constrained layout
+    so nothing is cut off at one kernel or at four.
+
+    Parameters
+    ----------
+    result : terrain.sweep.SweepResult
+    units : str
+        Vertical units of the error level (x axis).
+    """
     import matplotlib
 
     matplotlib.use("Agg", force=False)
     from matplotlib.figure import Figure
 
     rows = result.rows
-    kernels = list(dict.fromkeys(kernel for kernel, _ in result.runs))
-    fig = Figure(figsize=(4.2 * len(kernels) + 1.5, 7.2), dpi=110)
-    axes = fig.subplots(2, len(kernels), squeeze=False, sharex=True, sharey="row")
+    kernels = list(dict.fromkeys(kernel for kernel, _ in result.runs))  # rows may be empty
     what = "summit" if result.job.kind == "peaks" else "depression"
+    fig = Figure(figsize=(9.0, 7.4), dpi=110, layout="constrained")
+    axes = fig.subplots(len(SWEEP_STATISTICS), 1, sharex=True)
+    levels = sorted({level for _, level in result.runs})
+    features, kernel_keys = _sweep_lines(axes, rows, result.top, kernels, what)
+    if not result.top:
+        axes[0].text(0.5, 0.5, f"no {what}s above the cut-off in any run", ha="center",
+                     va="center", transform=axes[0].transAxes)
+    for ax, (_, _, label) in zip(axes, SWEEP_STATISTICS):
+        ax.set_ylabel(label, fontsize=10)
+        ax.set_xscale("log")
+        ax.set_xticks(levels, [f"{v:g}" for v in levels])
+        ax.minorticks_off()
+        ax.grid(alpha=0.3)
+        ax.tick_params(labelsize=9)
+    axes[-1].set_xlabel(f"assumed error RMSE ({units})", fontsize=10)
+    axes[0].legend(handles=features, title=f"{what} feature", fontsize=9, title_fontsize=9,
+                   loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
+    axes[1].legend(handles=kernel_keys, title="error kernel", fontsize=9, title_fontsize=9,
+                   loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
+    fig.suptitle(f"How {what} attribution spreads as the assumed error grows\n"
+                 "(error bars: 1 standard error)", fontsize=11)
+    return fig
+
+
+def _sweep_lines(axes, rows, top, kernels, what):
+    """Draw every (feature, kernel) line on every statistic's panel; return legend handles."""
+    import matplotlib
+    from matplotlib.lines import Line2D
+
     colours = matplotlib.colormaps["tab10"]
-    kern = np.array(rows["kernel"])
-    fid = np.array(rows["feature_id"])
-    rmse = np.array(rows["rmse"])
+    kern, fid = np.array(rows["kernel"]), np.array(rows["feature_id"])
+    rmse = np.array(rows["rmse"], dtype=float)
+    spread = 0.035 * (np.arange(len(kernels)) - (len(kernels) - 1) / 2)  # in natural-log units
     for j, kernel in enumerate(kernels):
-        for n_f, f in enumerate(result.top):
+        marker, style = _KERNEL_STYLE[j % len(_KERNEL_STYLE)]
+        for n_f, f in enumerate(top):
             sel = (kern == kernel) & (fid == f)
             order = np.argsort(rmse[sel])
-            x = rmse[sel][order]
-            for i, (col, se) in enumerate((("credit_share", "credit_share_se"),
-                                           ("p_first", "p_first_se"))):
-                y = np.array(rows[col])[sel][order]
-                e = np.array(rows[se])[sel][order]
-                axes[i, j].errorbar(x, y, yerr=e, marker="o", ms=3, capsize=2, lw=1.2,
-                                    color=colours(n_f % 10), label=f"{what} #{f}")
-        axes[0, j].set_title(f"{kernel} kernel", fontsize=10)
-        axes[1, j].set_xlabel(f"assumed error RMSE ({units})")
-        levels = sorted({level for _, level in result.runs})
-        for i in range(2):
-            axes[i, j].set_xscale("log")
-            axes[i, j].set_xticks(levels, [f"{v:g}" for v in levels])
-            axes[i, j].minorticks_off()
-            axes[i, j].grid(alpha=0.3)
-    axes[0, 0].set_ylabel("share of total credit")
-    axes[1, 0].set_ylabel("P(ranks first)")
-    if result.top:
-        axes[0, -1].legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.02, 1.0))
-    else:
-        axes[0, 0].text(0.5, 0.5, f"no {what} above the cut-off in any run", ha="center",
-                        va="center", transform=axes[0, 0].transAxes)
-    fig.suptitle(f"How {what} attribution spreads as the assumed error grows "
-                 "(error bars: 1 standard error)", fontsize=11)
-    fig.subplots_adjust(left=0.08, right=0.84, top=0.9, bottom=0.09, wspace=0.08, hspace=0.12)
-    return fig
+            x = rmse[sel][order] * np.exp(spread[j])
+            for ax, (col, se, _) in zip(axes, SWEEP_STATISTICS):
+                ax.errorbar(x, np.array(rows[col])[sel][order], yerr=np.array(rows[se])[sel][order],
+                            marker=marker, ms=4, capsize=2, lw=1.2, ls=style,
+                            color=colours(n_f % 10))
+    features = [Line2D([], [], color=colours(n_f % 10), lw=2, label=f"{what} #{f}")
+                for n_f, f in enumerate(top)]
+    kernel_keys = [Line2D([], [], color="0.25", marker=m, ls=ls, lw=1.2, label=k)
+                   for k, (m, ls) in zip(kernels, (_KERNEL_STYLE[j % len(_KERNEL_STYLE)]
+                                                   for j in range(len(kernels))))]
+    return features, kernel_keys

@@ -10,14 +10,18 @@ in as data frames from :mod:`terrain.summary`, figures come from
 :mod:`terrain.outputs.plot`, and every file goes through :mod:`terrain.io`
 (a temporary name, renamed when complete). File names come from
 :mod:`terrain.outputs.manifest`; layer descriptions, units and notes from
-:mod:`terrain.layers`.
+:mod:`terrain.layers`; the precision of each CSV column from its kind
+(:mod:`terrain.outputs.tables`). ``run.json`` records how long writing took
+(``timings``).
 """
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import functools
 import platform
+import time
 from collections.abc import Callable
 from pathlib import Path
 
@@ -32,13 +36,18 @@ from ..io import (
     write_json,
     write_layer,
 )
-from ..layers import spec, units
+from ..jobs.credit import LOG_FIELDS
+from ..layers import DRAINAGE_NOTE, spec, units
+from ..summary.catchments import FRAME_COLUMN_KINDS
+from ..summary.features import COLUMN_KINDS
+from ..sweep import SENSITIVITY_COLUMN_KINDS, SWEEP_COLUMN_KINDS
 from ..version import __version__
 from . import plot
-from .manifest import MANIFEST
+from .manifest import MANIFEST, VECTOR_LAYERS
+from .tables import rounded
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
-           "published", "READ_SETTINGS"]
+           "vector_descriptions", "published", "READ_SETTINGS"]
 
 # how the DEM was read, as recorded in run.json: band, box, declared nodata,
 # the window of the file read, scale and offset applied, the file's own nodata
@@ -103,17 +112,64 @@ def _tags(result, command_line: str | None) -> dict:
             "caution": CAUTION}
 
 
+class _Clock:
+    """Wall time of each writing step, for ``run.json``'s ``timings``."""
+
+    def __init__(self):
+        self.seconds: dict[str, float] = {}
+
+    @contextlib.contextmanager
+    def __call__(self, step: str):
+        t0 = time.perf_counter()
+        try:
+            yield
+        finally:
+            self.seconds[step] = self.seconds.get(step, 0.0) + time.perf_counter() - t0
+
+    def timings(self, realisations_s: float) -> dict:
+        """Seconds per step and the shares of the run's wall time.
+
+        The run's wall time is the realisations' plus the writing's (reading
+        the DEM and summarising are left out, so the shares are upper bounds);
+        ``layers`` is the GeoTIFFs, ``tables`` the GeoPackage and CSV files,
+        ``figures`` drawing and saving the PNGs.
+        """
+        writing = sum(self.seconds.values())
+        run = realisations_s + writing
+        out = {"realisations_s": round(realisations_s, 3)}
+        out.update({f"{k}_s": round(v, 3) for k, v in self.seconds.items()})
+        out.update({"writing_s": round(writing, 3), "run_s": round(run, 3),
+                    "writing_share": round(writing / run, 4) if run > 0 else None})
+        if "layers" in self.seconds:
+            out["layers_share"] = round(self.seconds["layers"] / run, 4) if run > 0 else None
+        return out
+
+
 def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
-    """Every layer of ``result`` as a two-band GeoTIFF named after it."""
+    """Every layer of ``result`` as a two-band Cloud Optimized GeoTIFF named after it."""
     tags = _tags(result, command_line)
     weight = getattr(result.job, "weight", "persistence")
+    full = dict(zip(getattr(result.job, "layer_ids", ()), getattr(result.job, "ids", ())))
     for name, (est, se) in result.layers.items():
         s = spec(name)
         oid = name[len(s.name.split("{id}")[0]):] if "{id}" in s.name else None
-        desc = s.description.replace("{id}", oid) if oid else s.description
+        desc = s.description.replace("{id}", full.get(oid, oid)) if oid else s.description
         write_layer(outdir / f"{name}.tif", result.dem, est, se, name=name,
                     units=units(name, result.dem.vertical_units, weight), description=desc,
-                    tags={**tags, **({"note": s.note} if s.note else {})})
+                    tags={**tags, **({"note": s.note} if s.note else {})}, note=s.note)
+
+
+def vector_descriptions(result, names, *, note: str = "") -> dict:
+    """``gpkg_contents.description`` of each GeoPackage layer in ``names``.
+
+    What the layer is (:data:`~terrain.outputs.manifest.VECTOR_LAYERS`), the
+    error model and realisations, the layer's note (if any) and the caution.
+    """
+    model = (f"Error model: {result.model.describe()}, vertical units: "
+             f"{result.dem.vertical_units or 'DEM units'}; {result.n} realisations, seed "
+             f"{result.params['seed']}.")
+    extra = f" It {note}." if note else ""
+    return {n: f"{VECTOR_LAYERS.get(n, n)}. {model}{extra} {CAUTION}" for n in names}
 
 
 @published(lambda result: result.job.kind)
@@ -126,36 +182,55 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     out = Path(outdir)
     kind = result.job.kind
     created = _now()
-    write_layers(out, result, command_line=command_line)
+    clock = _Clock()
+    with clock("layers"):
+        write_layers(out, result, command_line=command_line)
     gpkg, csv = (f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv")))
-    write_frames(out / gpkg, features.frames)
-    write_csv(out / csv, next(iter(features.frames.values())))  # by rank, as the GeoPackage
-    write_figure(out / "quicklook.png", plot.feature_map(result, features))
+    with clock("tables"):
+        write_frames(out / gpkg, features.frames, vector_descriptions(result, features.frames))
+        write_csv(out / csv, rounded(features.table, COLUMN_KINDS, geographic=result.dem.geographic))
+    with clock("figures"):
+        write_figure(out / "quicklook.png", plot.feature_map(result, features))
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
-                     parameters={**result.job.describe(), **features.settings})
+                     parameters={**result.job.describe(), "features": features.settings})
     run.update({"features": int(len(features.table)),
                 "pair_log_entries": int(result.log["birth"].size),
-                "pair_log_bytes_per_entry": int(sum(np.dtype(v.dtype).itemsize
-                                                    for v in result.log.values()))})
+                "pair_log_bytes_per_entry": int(sum(np.dtype(result.log[k].dtype).itemsize
+                                                    for k in LOG_FIELDS)),
+                "timings": clock.timings(result.info.get("wall_seconds", 0.0))})
     write_json(out / "run.json", run)
 
 
 @published(lambda result: "catchments")
-def write_catchment_run(outdir: str | Path, result, table, *, input_path: str | None,
+def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str | None,
                         outlets_path: str | None, command_line: str | None = None) -> None:
-    """Write a catchment run: probability layers, polygons and areas, map, run.json.
+    """Write a catchment run: probability layers, polygons, outlets, map, run.json.
 
-    ``table`` is :func:`terrain.summary.catchments.catchment_table`'s result.
+    ``summary`` is :func:`terrain.summary.catchments.summarise_catchments`'s
+    result: its tables go into ``catchments.gpkg`` (one layer each) and one
+    CSV each (none without outlets).
     """
     out = Path(outdir)
     created = _now()
-    write_layers(out, result, command_line=command_line)
-    write_frames(out / "catchments.gpkg", {"catchments": table})
-    write_csv(out / "catchments.csv", table)
-    write_figure(out / "quicklook.png", plot.catchment_map(result))
+    clock = _Clock()
+    with clock("layers"):
+        write_layers(out, result, command_line=command_line)
+    if summary.frames:
+        with clock("tables"):
+            write_frames(out / "catchments.gpkg", summary.frames,
+                         vector_descriptions(result, summary.frames, note=DRAINAGE_NOTE))
+            for name, frame in summary.frames.items():
+                write_csv(out / f"{name}.csv",
+                          rounded(frame, FRAME_COLUMN_KINDS[name], geographic=result.dem.geographic))
+    with clock("figures"):
+        write_figure(out / "quicklook.png", plot.catchment_map(result))
     job = result.job
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**job.describe(), "outlets_file": outlets_path})
+    renamed = {i: lid for i, lid in zip(job.ids, job.layer_ids) if i != lid}
+    if renamed:
+        run["layer_ids"] = renamed
+    run["timings"] = clock.timings(result.info.get("wall_seconds", 0.0))
     write_json(out / "run.json", run)
 
 
@@ -170,12 +245,17 @@ def write_sweep(outdir: str | Path, result, *, input_path: str | None,
     out = Path(outdir)
     created = _now()
     any_run = next(iter(result.runs.values()))
-    write_csv(out / "sweep.csv", result.rows)
-    write_csv(out / "kernel_sensitivity.csv", result.sensitivity)
-    write_figure(out / "sweep.png",
-                 plot.sweep_figure(result, units=any_run.dem.vertical_units or "DEM units"))
+    geographic = any_run.dem.geographic
+    clock = _Clock()
+    with clock("tables"):
+        write_csv(out / "sweep.csv", rounded(result.rows, SWEEP_COLUMN_KINDS, geographic=geographic))
+        write_csv(out / "kernel_sensitivity.csv",
+                  rounded(result.sensitivity, SENSITIVITY_COLUMN_KINDS, geographic=geographic))
+    with clock("figures"):
+        write_figure(out / "sweep.png",
+                     plot.sweep_figure(result, units=any_run.dem.vertical_units or "DEM units"))
     run = provenance(any_run, input_path=input_path, command_line=command_line, created=created,
-                     parameters={**result.job.describe(), "features": int(result.n_features),
+                     parameters={**result.job.describe(), "features": int(result.ids.size),
                                  "top_features": result.top})
     run["parameters"].pop("error_model")
     run["defaults"] = result.defaults
@@ -183,4 +263,6 @@ def write_sweep(outdir: str | Path, result, *, input_path: str | None,
                     "execution": r.info} for r in result.runs.values()]
     run.pop("execution")
     run.pop("realisations_done")
+    run["timings"] = clock.timings(sum(r.info.get("wall_seconds", 0.0)
+                                       for r in result.runs.values()))
     write_json(out / "run.json", run)

@@ -56,8 +56,9 @@ class RunResult:
     dem : Dem
     job : the resolved job (every default filled in)
     model : ErrorModel
-    layers : dict
-        Layer name -> (estimate, standard error), float64 arrays on the grid.
+    layers : mapping
+        Layer name -> (estimate, standard error), float64 arrays on the grid
+        (a catchment run computes each layer from its counts when read).
     log : dict
         The per-realisation log (for peaks and depressions the pair log, see
         :data:`terrain.jobs.credit.LOG_FIELDS`).
@@ -309,7 +310,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
             "resumed_from": start, "stopped_early": stopped_early,
             "stop_statistic": acc.stop_statistic() if stop.active else None,
             "defaults": st.used,
-            "embedding_factor": st.sampler.field.factor if st.sampler.field is not None else None}
+            "field_kernel_radius_cells": list(st.sampler.field.radius) if st.sampler.field else None}
     return RunResult(dem, st.job, model, acc.layers(dem.shape), acc.log(), acc.n, st.params, info)
 
 

@@ -1,55 +1,169 @@
-"""Catchment summaries: membership polygons at 50% and 90%, areas over realisations."""
+"""Catchment summaries as data frames: polygons at 50% and 90%, areas, outlets.
+
+Three tables, one row per outlet (and level), each carrying every attribute
+column of the outlets file (a column whose name is one of ours is renamed
+``input_<name>``):
+
+- ``catchments``: cells draining to the outlet (its whole upstream area) in
+  at least 50% / 90% of realisations;
+- ``subcatchments``: cells whose first chosen outlet downstream is this one
+  in at least 50% / 90% of realisations;
+- ``outlets``: the point as given, its most frequent snapped cell with the
+  share of realisations that chose it, and the mean snap distance.
+"""
 
 from __future__ import annotations
 
-import numpy as np
+from dataclasses import dataclass
 
+import numpy as np
+import pandas as pd
+
+from ..dem import Dem, metres_per_degree
 from ..layers import LAYERS, layer_name
 from .features import region_polygons
 
-__all__ = ["CATCHMENT_COLUMNS", "LEVELS", "area_summary", "catchment_table"]
+__all__ = ["CATCHMENT_COLUMNS", "OUTLET_COLUMNS", "CATCHMENT_COLUMN_KINDS", "OUTLET_COLUMN_KINDS",
+           "FRAME_COLUMN_KINDS", "LEVELS", "CatchmentSummary", "area_summary",
+           "catchment_table", "outlet_table", "summarise_catchments", "snap_distances"]
 
-CATCHMENT_COLUMNS = ("outlet_id", "level", "area_m2", "area_mean_m2", "area_p05_m2", "area_p95_m2")
+CATCHMENT_COLUMNS = ("outlet_id", "layer_id", "level", "area_m2", "area_mean_m2", "area_p05_m2",
+                     "area_p95_m2")
+OUTLET_COLUMNS = ("outlet_id", "layer_id", "x", "y", "snapped_x", "snapped_y", "snapped_share",
+                  "snap_distance_mean_m")
+#: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`);
+#: attribute columns from the outlets file are written as they came.
+CATCHMENT_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "level": "probability",
+                          "area_m2": "area", "area_mean_m2": "area", "area_p05_m2": "area",
+                          "area_p95_m2": "area"}
+OUTLET_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "x": "coordinate",
+                       "y": "coordinate", "snapped_x": "coordinate", "snapped_y": "coordinate",
+                       "snapped_share": "probability", "snap_distance_mean_m": "area"}
+FRAME_COLUMN_KINDS = {"catchments": CATCHMENT_COLUMN_KINDS, "subcatchments": CATCHMENT_COLUMN_KINDS,
+                      "outlets": OUTLET_COLUMN_KINDS}
 LEVELS = (0.5, 0.9)
+_AREA_FIELD = {"membership": "area", "subcatchment": "subarea"}
 
 
-def area_summary(log: dict, ids) -> dict:
-    """Mean, 5th and 95th percentile of each outlet's catchment area (m^2)."""
+@dataclass(frozen=True)
+class CatchmentSummary:
+    """The GeoPackage layers of a catchment run: layer name -> GeoDataFrame
+    (``catchments``, ``subcatchments``, ``outlets``; none without outlets)."""
+
+    frames: dict
+
+
+def area_summary(log: dict, ids, field: str = "area") -> dict:
+    """Mean, 5th and 95th percentile of each outlet's catchment (``field="area"``)
+    or sub-catchment (``"subarea"``) area over realisations (m^2)."""
     out = {}
     for k, oid in enumerate(ids):
-        a = log["area"][log["outlet"] == k]
+        a = np.asarray(log[field])[np.asarray(log["outlet"]) == k]
         out[oid] = (float(a.mean()) if a.size else np.nan,
                     float(np.percentile(a, 5)) if a.size else np.nan,
                     float(np.percentile(a, 95)) if a.size else np.nan)
     return out
 
 
-def catchment_table(result):
-    """One row per outlet and membership level (50%, 90%): polygon and areas.
+def _attach(frame: pd.DataFrame, outlet_index, attributes) -> pd.DataFrame:
+    """``frame`` with each row's outlet attributes appended (clashing names get ``input_``)."""
+    if attributes is None or len(attributes.columns) == 0:
+        return frame
+    attrs = attributes.reset_index(drop=True).iloc[list(outlet_index)].reset_index(drop=True)
+    taken = set(frame.columns) | {"geometry"}
+    attrs.columns = [f"input_{c}" if str(c) in taken else str(c) for c in attrs.columns]
+    return pd.concat([frame.reset_index(drop=True), attrs], axis=1)
 
-    ``area_m2`` is the area of the cells draining to the outlet in at least
-    that share of realisations; ``area_mean_m2`` and the 5-95% range are
-    over realisations.
+
+def catchment_table(result, attributes=None, *, role: str = "membership"):
+    """One row per outlet and level (50%, 90%): polygon and areas.
+
+    ``role="membership"``: the outlet's catchment (whole upstream area);
+    ``role="subcatchment"``: its sub-catchment (cells whose first chosen
+    outlet downstream it is). ``area_m2`` is the area of the cells in it in
+    at least that share of realisations; ``area_mean_m2`` and the 5-95%
+    range are over realisations. ``attributes`` (one row per outlet, e.g.
+    :attr:`terrain.outlets.Outlets.attributes`) are appended to each row.
 
     Returns
     -------
-    geopandas.GeoDataFrame with columns :data:`CATCHMENT_COLUMNS` and geometry.
+    geopandas.GeoDataFrame with columns :data:`CATCHMENT_COLUMNS`, the
+    attributes and geometry.
     """
     import geopandas as gpd
 
     dem, job = result.dem, result.job
-    member = LAYERS[layer_name("catchments", "membership")]
-    areas = area_summary(result.log, job.ids)
+    spec = LAYERS[layer_name("catchments", role)]
+    areas = area_summary(result.log, job.ids, _AREA_FIELD[role])
     area_row = dem.cell_area_m2()
     rows = {c: [] for c in CATCHMENT_COLUMNS}
-    geoms = []
-    for oid in job.ids:
-        p = result.layers[member.concrete(oid)][0]
+    geoms, index = [], []
+    for k, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
+        p = result.layers[spec.concrete(lid)][0]
         for level in LEVELS:
             m = (p >= level) & ~dem.nodata
-            geoms.append(region_polygons(dem, m.astype(np.int32), 1)[0])
+            geoms.append(region_polygons(dem, m.astype(np.int32), [1],
+                                         connectivity=job.connectivity)[0])
+            index.append(k)
             mean, p05, p95 = areas[oid]
-            for col, v in zip(CATCHMENT_COLUMNS, (oid, level, float((m * area_row[:, None]).sum()),
+            for col, v in zip(CATCHMENT_COLUMNS, (oid, lid, level, float((m * area_row[:, None]).sum()),
                                                   mean, p05, p95)):
                 rows[col].append(v)
-    return gpd.GeoDataFrame(rows, geometry=geoms, crs=dem.crs)
+    frame = _attach(pd.DataFrame(rows), index, attributes)
+    return gpd.GeoDataFrame(frame, geometry=geoms, crs=dem.crs)
+
+
+def snap_distances(dem: Dem, x0: float, y0: float, cells: np.ndarray) -> np.ndarray:
+    """Distances (m) from a point to the centres of ``cells`` (flat indices):
+    CRS units times the linear unit, or on a geographic grid degrees scaled
+    by the WGS84 lengths of a degree at the point's latitude."""
+    x, y = dem.xy(cells)
+    if dem.geographic:
+        mlon, mlat = metres_per_degree(y0)
+        return np.hypot((x - x0) * mlon, (y - y0) * mlat)
+    return np.hypot(x - x0, y - y0) * dem.linear_unit_m
+
+
+def outlet_table(result, attributes=None):
+    """One row per outlet: the point as given (geometry, ``x``, ``y``), its most
+    frequent snapped cell (``snapped_x``, ``snapped_y``; lowest cell index on
+    ties) with the share of realisations that chose it, and the mean
+    distance (m) from the point to the snapped cell's centre over
+    realisations; then the outlet's attributes.
+
+    Returns
+    -------
+    geopandas.GeoDataFrame with columns :data:`OUTLET_COLUMNS`, the
+    attributes and point geometry.
+    """
+    import geopandas as gpd
+    from shapely.geometry import Point
+
+    dem, job, log = result.dem, result.job, result.log
+    rows = {c: [] for c in OUTLET_COLUMNS}
+    for k, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
+        x0, y0 = (float(v) for v in job.xy[k])
+        cells = np.asarray(log["cell"])[np.asarray(log["outlet"]) == k]
+        if cells.size:
+            values, counts = np.unique(cells, return_counts=True)
+            best = int(values[np.argmax(counts)])
+            sx, sy = (float(v[0]) for v in dem.xy(np.array([best])))
+            share, dist = float(counts.max() / cells.size), float(snap_distances(dem, x0, y0,
+                                                                                 cells).mean())
+        else:
+            sx = sy = share = dist = np.nan
+        for col, v in zip(OUTLET_COLUMNS, (oid, lid, x0, y0, sx, sy, share, dist)):
+            rows[col].append(v)
+    frame = _attach(pd.DataFrame(rows), range(len(job.ids)), attributes)
+    return gpd.GeoDataFrame(frame, geometry=[Point(x, y) for x, y in job.xy], crs=dem.crs)
+
+
+def summarise_catchments(result, attributes=None) -> CatchmentSummary:
+    """The ``catchments``, ``subcatchments`` and ``outlets`` tables of a run
+    (no tables when the run had no outlets)."""
+    if not result.job.ids:
+        return CatchmentSummary({})
+    return CatchmentSummary({
+        "catchments": catchment_table(result, attributes, role="membership"),
+        "subcatchments": catchment_table(result, attributes, role="subcatchment"),
+        "outlets": outlet_table(result, attributes)})

@@ -1,11 +1,18 @@
-"""Features: connected credit regions, their statistics and polygons.
+"""Features: the regions of the DEM as given, and what the realisations say about them.
 
-A *feature* is a connected region of cells holding credit (see
-:func:`find_features` for the stated fractions). Each logged pair born in a
-feature gives that feature a *figure* in its realisation (prominence or
-depth; for the essential peak, elevation minus base); the largest figure
-counts when several pairs are born in one feature, and a realisation without
-one counts as 0.
+A *feature* is a region of the unperturbed DEM's persistence-simplified
+watershed (:func:`terrain.engine.persistence.regions`): the cells that climb
+to a surviving summit, or drain to a surviving pit. Regions are fixed before
+any realisation; a realisation's counted pair belongs to the region holding
+its birth cell, and the region's *figure* in that realisation is the largest
+counted figure born in it (0 when none). Every statistic is then a plain
+Monte Carlo mean over realisations, with a valid standard error. A region
+is a row of the tables when it is counted in at least the job's
+``min_presence`` share of realisations.
+
+Two kinds of uncertainty are kept apart: ``p05``/``p95`` (and the other
+5-95% columns) are the spread the DEM error causes; ``se`` and the ``*_se``
+columns are how precisely the Monte Carlo run estimated a mean.
 """
 
 from __future__ import annotations
@@ -17,232 +24,325 @@ import pandas as pd
 from scipy import ndimage
 
 from ..dem import Dem
-from ..jobs.credit import log_weights
+from ..engine.persistence import count_ponding, pits_and_levels
+from ..jobs.credit import log_weights, region_figures
 from ..layers import layer_name
 
-__all__ = ["COLUMNS", "FeatureSummary", "summarise_features", "find_features", "feature_table",
-           "feature_figures", "first_indicator", "region_polygons", "LAYER_NAMES"]
+__all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE",
+           "FeatureSummary", "FigureMatrix", "figure_matrix", "summarise_features",
+           "region_polygons", "unperturbed_ponding"]
 
-COLUMNS = ("feature_id", "rank", "expected", "se", "p05", "p50", "p95", "p_above", "p_first",
-           "expected_rank", "x", "y", "elevation", "col_x", "col_y", "col_elevation", "area_m2",
-           "edge_limited_share")
-LAYER_NAMES = {"peaks": ("summits", "summit_points"), "depressions": ("pits", "pit_points")}
-FEATURE_WINDOW = 5  # cells
-FEATURE_LOCAL_MIN = 0.05  # births per realisation within the window
-MIN_PRESENCE = 0.1  # births per realisation within the region
+TOP_SHARE = 0.9  # "where the top is": the fewest cells holding 90% of a summit's births
+PONDED_SHARE = 0.5  # the ponded extent: cells ponded in at least half the realisations
+
+_COMMON = ("feature_id", "rank", "unperturbed", "expected", "p05", "p50", "p95", "se",
+           "p_above", "p_above_se", "p_first", "p_first_se", "expected_rank", "x", "y", "elevation")
+COLUMNS = {
+    "peaks": _COMMON + ("col_x", "col_y", "col_elevation", "unperturbed_x", "unperturbed_y",
+                        "unperturbed_col_x", "unperturbed_col_y", "unperturbed_col_elevation",
+                        "top_area_m2", "region_area_m2", "edge_limited_share",
+                        "unperturbed_edge_limited"),
+    "depressions": _COMMON + ("spill_x", "spill_y", "spill_elevation", "unperturbed_x",
+                              "unperturbed_y", "unperturbed_spill_x", "unperturbed_spill_y",
+                              "unperturbed_spill_elevation", "ponded_area_m2",
+                              "ponded_area_mean_m2", "ponded_area_p05_m2", "ponded_area_p95_m2",
+                              "volume_m3", "volume_mean_m3", "volume_p05_m3", "volume_p95_m3",
+                              "region_area_m2", "edge_limited_share", "unperturbed_edge_limited"),
+}
+#: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`).
+COLUMN_KINDS = {
+    "feature_id": "id", "rank": "integer", "unperturbed": "vertical", "expected": "vertical",
+    "p05": "vertical", "p50": "vertical", "p95": "vertical", "se": "vertical",
+    "p_above": "probability", "p_above_se": "probability", "p_first": "probability",
+    "p_first_se": "probability", "expected_rank": "mean_rank", "x": "coordinate",
+    "y": "coordinate", "elevation": "vertical", "unperturbed_x": "coordinate",
+    "unperturbed_y": "coordinate", "region_area_m2": "area", "edge_limited_share": "probability",
+    "unperturbed_edge_limited": "flag",
+    "col_x": "coordinate", "col_y": "coordinate", "col_elevation": "vertical",
+    "unperturbed_col_x": "coordinate", "unperturbed_col_y": "coordinate",
+    "unperturbed_col_elevation": "vertical",
+    "spill_x": "coordinate", "spill_y": "coordinate", "spill_elevation": "vertical",
+    "unperturbed_spill_x": "coordinate", "unperturbed_spill_y": "coordinate",
+    "unperturbed_spill_elevation": "vertical",
+    "top_area_m2": "area", "ponded_area_m2": "area", "ponded_area_mean_m2": "area",
+    "ponded_area_p05_m2": "area", "ponded_area_p95_m2": "area", "volume_m3": "volume",
+    "volume_mean_m3": "volume", "volume_p05_m3": "volume", "volume_p95_m3": "volume",
+}
+LAYER_NAMES = {"peaks": ("summits", "summit_points", "summit_regions"),
+               "depressions": ("pits", "pit_points", "pit_regions")}
+_DEATH = {"peaks": "col", "depressions": "spill"}
 
 
-def _structure(connectivity: int) -> np.ndarray:
-    return np.ones((3, 3), int) if connectivity == 8 else ndimage.generate_binary_structure(2, 1)
+@dataclass(frozen=True)
+class FigureMatrix:
+    """Per realisation and region (columns ``ids``, every region with a
+    counted pair in some realisation): the largest figure (0 when none), its
+    presence, and whether that pair was edge-limited."""
+
+    ids: np.ndarray
+    figure: np.ndarray
+    present: np.ndarray
+    edge: np.ndarray
+
+    def first(self) -> np.ndarray:
+        """(n_real, k) bool: the region ranks first in the realisation (ties: lowest id)."""
+        first = np.zeros(self.figure.shape, bool)
+        anyp = self.present.any(axis=1)
+        if self.ids.size:
+            w = np.argmax(np.where(self.present, self.figure, -np.inf), axis=1)
+            first[np.flatnonzero(anyp), w[anyp]] = True
+        return first
+
+    def ranks(self) -> np.ndarray:
+        """(n_real, k): 1 + the number of regions with a larger figure."""
+        srt = np.sort(self.figure, axis=1)
+        k = self.ids.size
+        return np.stack([k + 1 - np.searchsorted(s, f, side="right") for s, f in
+                         zip(srt, self.figure)]) if self.figure.size else self.figure.astype(int)
 
 
-def find_features(credit: np.ndarray, nodata: np.ndarray, *, probability: np.ndarray,
-                  connectivity: int = 8, window: int = FEATURE_WINDOW,
-                  local_min: float = FEATURE_LOCAL_MIN,
-                  min_presence: float = MIN_PRESENCE) -> tuple[np.ndarray, int]:
-    """Label credit regions.
+def figure_matrix(log: dict, n_real: int) -> FigureMatrix:
+    """The :class:`FigureMatrix` of a run's pair log (n_real x regions present)."""
+    real, reg, fig, edge = region_figures(log)
+    ids = np.unique(reg)
+    col = np.searchsorted(ids, reg)
+    shape = (n_real, ids.size)
+    figure, present, edge_m = np.zeros(shape), np.zeros(shape, bool), np.zeros(shape, bool)
+    figure[real, col], present[real, col], edge_m[real, col] = fig, True, edge
+    return FigureMatrix(ids, figure, present, edge_m)
 
-    A cell is in a feature's core when counted pairs are born in its
-    ``window`` x ``window`` neighbourhood at a rate of at least ``local_min``
-    per realisation (the window sum of ``probability``). Cores are grown by
-    the window's half-width, joined with the run's ``connectivity``, and the
-    cells of a grown region that hold credit form the feature. A region is
-    kept when a counted pair is born in it in at least ``min_presence`` of
-    realisations on average.
 
-    Returns
-    -------
-    (labels, n): int32 labels (0 = no feature, 1..n in raster order of each
-    region's first cell) and the number of features.
+@dataclass(frozen=True)
+class FeatureSummary:
+    """The features of a run.
+
+    Attributes
+    ----------
+    regions : Regions
+        The unperturbed DEM's regions (``labels`` per cell).
+    table : pandas.DataFrame
+        One row per feature, by rank (columns :data:`COLUMNS` of the kind).
+    frames : dict
+        GeoDataFrames by layer name (:data:`LAYER_NAMES`).
+    top : (rows, cols) int32 array
+        Per cell, the feature whose top (peaks: where the top is, 90%) or
+        ponded extent (depressions) it belongs to; 0 elsewhere.
+    settings : dict
+        The rules that made the rows (recorded in run.json).
     """
-    p = np.where(nodata, 0.0, np.nan_to_num(probability))
-    c = np.where(nodata, 0.0, np.nan_to_num(credit))
-    local = ndimage.uniform_filter(p, size=window, mode="constant") * window * window
-    core = local >= local_min
-    grown = ndimage.binary_dilation(core, structure=np.ones((window, window), bool))
-    lab, n = ndimage.label(grown, structure=_structure(connectivity))
-    lab = np.where(c > 0, lab, 0)
-    keep = np.unique(lab[lab > 0])
-    if keep.size:
-        mass = ndimage.sum_labels(p, lab, index=keep)
-        keep = keep[mass >= min_presence]
-    remap = np.zeros(n + 1, np.int32)
-    remap[keep] = np.arange(1, keep.size + 1, dtype=np.int32)
-    return remap[lab].astype(np.int32), int(keep.size)
+
+    regions: object
+    table: pd.DataFrame
+    frames: dict
+    top: np.ndarray
+    settings: dict
 
 
-def feature_figures(labels: np.ndarray, n_features: int, log: dict, n_real: int, *,
-                    base: float | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per realisation and feature: the largest figure, presence, edge flag.
-
-    Returns three (n_real, n_features) arrays: figure (0 when absent),
-    present (bool) and edge_limited (bool, of the largest pair).
-    """
-    k = n_features
-    flat = labels.reshape(-1)
-    fid = flat[log["birth"].astype(np.int64)] if log["birth"].size else np.zeros(0, np.int32)
-    inside = fid > 0
-    real = log["real"][inside].astype(np.int64)
-    f = fid[inside].astype(np.int64) - 1
-    fig = np.maximum(log_weights({key: v[inside] for key, v in log.items()}, "persistence", base), 0.0)
-    edge = log["edge_limited"][inside]
-    figures = np.zeros((n_real, k))
-    present = np.zeros((n_real, k), bool)
-    edge_rf = np.zeros((n_real, k), bool)
-    if f.size:
-        order = np.lexsort((fig, f, real))
-        r_s, f_s, g_s, e_s = real[order], f[order], fig[order], edge[order]
-        last = np.ones(order.size, bool)
-        last[:-1] = (r_s[1:] != r_s[:-1]) | (f_s[1:] != f_s[:-1])
-        figures[r_s[last], f_s[last]] = g_s[last]
-        present[r_s[last], f_s[last]] = True
-        edge_rf[r_s[last], f_s[last]] = e_s[last]
-    return figures, present, edge_rf
+def _mc(share: np.ndarray, n: int) -> np.ndarray:
+    return np.sqrt(share * (1 - share) / max(n, 1))
 
 
-def first_indicator(figures: np.ndarray, present: np.ndarray) -> np.ndarray:
-    """(n_real, k) bool: the feature ranks first in the realisation (ties: lowest id)."""
-    first = np.zeros(figures.shape, bool)
-    any_present = present.any(axis=1)
-    if figures.shape[1]:
-        w = np.argmax(np.where(present, figures, -np.inf), axis=1)
-        first[np.flatnonzero(any_present), w[any_present]] = True
-    return first
-
-
-def _most_credited_deaths(log, inside, f, k, n_cells, base):
-    """Per feature: the death cell credited most, and its mean elevation."""
-    death = log["death"][inside].astype(np.int64)
-    dval = log["death_value"][inside].astype(np.float64)
-    col_cell = np.full(k, -1, np.int64)
-    col_elev = np.full(k, np.nan)
-    has = death >= 0
-    if has.any():
-        w = log_weights({key: v[inside] for key, v in log.items()}, "persistence", base)[has]
-        key = f[has] * n_cells + death[has]
-        uk, inv = np.unique(key, return_inverse=True)
-        wsum = np.bincount(inv, weights=w)
-        vsum = np.bincount(inv, weights=dval[has])
-        cnt = np.bincount(inv)
-        uf = uk // n_cells
-        order = np.lexsort((-wsum, uf))
-        first = np.ones(order.size, bool)
-        first[1:] = uf[order][1:] != uf[order][:-1]
-        sel = order[first]
-        col_cell[uf[sel]] = uk[sel] % n_cells
-        col_elev[uf[sel]] = vsum[sel] / cnt[sel]
-    return col_cell, col_elev
-
-
-def _ranks(figures: np.ndarray) -> np.ndarray:
-    """Rank of each feature in each realisation: 1 + features with a larger figure."""
-    if figures.shape[1] <= 2000:
-        return 1 + (figures[:, None, :] > figures[:, :, None]).sum(axis=2)
-    return 1 + np.argsort(np.argsort(-figures, axis=1, kind="stable"), axis=1)
-
-
-def feature_table(dem: Dem, labels: np.ndarray, n_features: int, credit: np.ndarray,
-                  log: dict, n_real: int, *, base: float | None) -> pd.DataFrame:
-    """Per-feature statistics over realisations (columns :data:`COLUMNS`).
-
-    ``credit`` (the main credit layer) locates each feature's most credited
-    cell; everything else comes from the pair log. One row per feature, in
-    ``feature_id`` order.
-    """
-    k = n_features
-    flat = labels.reshape(-1)
-    figures, present, edge_rf = feature_figures(labels, k, log, n_real, base=base)
-    fid = flat[log["birth"].astype(np.int64)] if log["birth"].size else np.zeros(0, np.int32)
-    inside = fid > 0
-    f = fid[inside].astype(np.int64) - 1
-    n = max(n_real, 1)
-    empty = n_real == 0
-    expected = np.zeros(k) if empty else figures.mean(axis=0)
-    pct = np.zeros((3, k)) if empty else np.percentile(figures, [5, 50, 95], axis=0)
+def _figure_columns(fm: FigureMatrix, cols: np.ndarray, n: int) -> dict:
+    f = fm.figure[:, cols]
+    empty = n == 0
+    p_above = fm.present[:, cols].mean(axis=0) if not empty else np.zeros(cols.size)
+    p_first = fm.first()[:, cols].sum(axis=0) / max(n, 1)
+    pct = np.percentile(f, [5, 50, 95], axis=0) if not empty else np.zeros((3, cols.size))
     with np.errstate(invalid="ignore", divide="ignore"):
-        edge_share = np.where(present.sum(0) > 0, edge_rf.sum(0) / present.sum(0), np.nan)
-    cflat = np.nan_to_num(credit.reshape(-1))
-    best = np.asarray(ndimage.maximum_position(cflat, flat, index=np.arange(1, k + 1)),
-                      dtype=np.int64).reshape(-1) if k else np.zeros(0, np.int64)
-    bx, by = dem.xy(best)
-    col_cell, col_elev = _most_credited_deaths(log, inside, f, k, flat.size, base)
-    cx, cy = dem.xy(np.maximum(col_cell, 0))
-    rank = np.empty(k, np.int64)
-    rank[np.lexsort((np.arange(k), -expected))] = np.arange(1, k + 1)
-    return pd.DataFrame({
-        "feature_id": np.arange(1, k + 1), "rank": rank, "expected": expected,
-        "se": np.zeros(k) if empty else figures.std(axis=0) / np.sqrt(n),
-        "p05": pct[0], "p50": pct[1], "p95": pct[2],
-        "p_above": np.zeros(k) if empty else present.mean(axis=0),
-        "p_first": first_indicator(figures, present).sum(axis=0) / n,
-        "expected_rank": np.zeros(k) if empty else _ranks(figures).mean(axis=0),
-        "x": bx, "y": by, "elevation": dem.z.reshape(-1)[best].astype(np.float64),
-        "col_x": np.where(col_cell >= 0, cx, np.nan), "col_y": np.where(col_cell >= 0, cy, np.nan),
-        "col_elevation": col_elev, "area_m2": feature_areas(dem, labels, k),
-        "edge_limited_share": edge_share,
-    }, columns=list(COLUMNS))
+        edge = fm.edge[:, cols].sum(0) / fm.present[:, cols].sum(0)
+    return {"expected": f.mean(axis=0) if not empty else np.zeros(cols.size),
+            "p05": pct[0], "p50": pct[1], "p95": pct[2],
+            "se": f.std(axis=0) / np.sqrt(max(n, 1)),
+            "p_above": p_above, "p_above_se": _mc(p_above, n),
+            "p_first": p_first, "p_first_se": _mc(p_first, n),
+            "expected_rank": fm.ranks()[:, cols].mean(axis=0) if not empty else np.zeros(cols.size),
+            "edge_limited_share": edge}
 
 
-def feature_areas(dem: Dem, labels: np.ndarray, k: int) -> np.ndarray:
-    """Area of each feature in square metres (exact ellipsoidal cell areas for a
-    geographic CRS, see :meth:`Dem.cell_area_m2`; CRS units squared when there
-    is no CRS)."""
-    if k == 0:
+def _most_credited_deaths(log: dict, ids: np.ndarray, n_cells: int):
+    """Per region in ``ids``: the death cell credited most, and its mean elevation."""
+    keep = (log["region"] > 0) & (log["death"] >= 0)
+    reg = log["region"][keep].astype(np.int64)
+    death = log["death"][keep].astype(np.int64)
+    w = log_weights({k: log[k][keep] for k in ("birth", "birth_value", "death_value")})
+    cell = np.full(ids.size, -1, np.int64)
+    elev = np.full(ids.size, np.nan)
+    if reg.size:
+        uk, inv = np.unique(reg * n_cells + death, return_inverse=True)
+        wsum = np.bincount(inv, weights=w)
+        vsum = np.bincount(inv, weights=log["death_value"][keep].astype(np.float64))
+        cnt = np.bincount(inv)
+        ur = uk // n_cells
+        order = np.lexsort((-wsum, ur))
+        first = np.ones(order.size, bool)
+        first[1:] = ur[order][1:] != ur[order][:-1]
+        sel = order[first]
+        pos = np.searchsorted(ids, ur[sel])
+        ok = (pos < ids.size) & (ids[np.minimum(pos, ids.size - 1)] == ur[sel])
+        cell[pos[ok]] = uk[sel][ok] % n_cells
+        elev[pos[ok]] = vsum[sel][ok] / cnt[sel][ok]
+    return cell, elev
+
+
+def _xy(dem: Dem, cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    x, y = dem.xy(np.maximum(cells, 0))
+    return np.where(cells >= 0, x, np.nan), np.where(cells >= 0, y, np.nan)
+
+
+def _areas(dem: Dem, labels: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    if ids.size == 0:
         return np.zeros(0)
     weights = np.broadcast_to(dem.cell_area_m2()[:, None], labels.shape)
-    return ndimage.sum_labels(weights, labels, index=np.arange(1, k + 1))
+    return ndimage.sum_labels(weights, labels, index=ids)
 
 
-def region_polygons(dem: Dem, labels: np.ndarray, k: int, *, connectivity: int = 8) -> list:
-    """Shapely polygons (or multipolygons) of regions ``1..k``, in CRS coordinates."""
+def _top_cells(log: dict, labels: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    """Per region in ``ids``: the fewest cells holding TOP_SHARE of the births
+    of its figure's pair (the feature's summit in each realisation), most
+    frequent first; returns a label raster (0 elsewhere)."""
+    *_, birth = region_figures(log, with_birth=True)
+    lab = labels.reshape(-1)
+    flat = np.bincount(birth, minlength=lab.size).astype(np.float64)
+    cand = np.flatnonzero((flat > 0) & np.isin(lab, ids))
+    order = cand[np.lexsort((cand, -flat[cand], lab[cand]))]
+    g, c = lab[order], flat[order].astype(np.float64)
+    start = np.r_[0, np.flatnonzero(g[1:] != g[:-1]) + 1]
+    total = np.add.reduceat(c, start) if c.size else c
+    group = np.repeat(np.arange(start.size), np.diff(np.r_[start, c.size]))
+    before = np.cumsum(c) - c - np.r_[0, np.cumsum(c)][start][group] if c.size else c
+    keep = order[before < TOP_SHARE * total[group]] if c.size else order
+    out = np.zeros(flat.size, np.int32)
+    out[keep] = lab[keep]
+    return out.reshape(labels.shape)
+
+
+def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
+    reg = job.regions
+    k = ids - 1
+    base = job.base if job.base is not None else 0.0
+    death = reg.death[k]
+    fig = np.where(death < 0, reg.birth_value[k] - min(base, float(np.nanmin(
+        np.where(dem.nodata, np.nan, dem.z)))), reg.persistence[k])
+    bx, by = _xy(dem, reg.birth[k])
+    dx, dy = _xy(dem, death)
+    d = _DEATH[job.kind]
+    return {"unperturbed": fig, "unperturbed_x": bx, "unperturbed_y": by,
+            f"unperturbed_{d}_x": dx, f"unperturbed_{d}_y": dy,
+            f"unperturbed_{d}_elevation": reg.death_value[k],
+            "unperturbed_edge_limited": reg.edge_limited[k]}
+
+
+def unperturbed_ponding(dem: Dem, job) -> tuple[np.ndarray, np.ndarray]:
+    """Ponded area (m^2) and storage volume (vertical unit x m^2) of every region
+    on the DEM as given, indexed by region id (index 0: cells in no region).
+
+    A cell is ponded when it lies below its depression's spill level and the
+    depression is at least the job's cut-off deep; its volume is the depth
+    to the filled level times the cell's area. On a DEM a water surface is
+    the floor, so this is storage above the surface the DEM captured.
+    """
+    _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
+    k = len(job.regions) + 1
+    area, volume = np.zeros(k), np.zeros(k)
+    count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
+                  np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
+                  job.area_row, dem.shape[1], area, volume)
+    return area, volume
+
+
+def _pond_columns(result, ids: np.ndarray) -> dict:
+    """Ponded area and volume per region: unperturbed, and mean / 5% / 95%
+    over realisations (0 when a region holds no water)."""
+    log, n = result.log, result.n
+    area0, vol0 = unperturbed_ponding(result.dem, result.job)
+    col = np.searchsorted(ids, log["pond_region"]) if ids.size else log["pond_region"]
+    hit = (col < ids.size) & (ids[np.minimum(col, max(ids.size - 1, 0))] == log["pond_region"]) \
+        if ids.size else np.zeros(0, bool)
+    out = {"ponded_area_m2": area0[ids], "volume_m3": vol0[ids]}
+    for name, values in (("ponded_area", log["pond_area"]), ("volume", log["pond_volume"])):
+        m = np.zeros((n, ids.size))
+        m[log["pond_real"][hit].astype(np.int64), col[hit]] = values[hit]
+        unit = "m2" if name == "ponded_area" else "m3"
+        pct = np.percentile(m, [5, 95], axis=0) if n else np.zeros((2, ids.size))
+        out.update({f"{name}_mean_{unit}": m.mean(axis=0) if n else np.zeros(ids.size),
+                    f"{name}_p05_{unit}": pct[0], f"{name}_p95_{unit}": pct[1]})
+    return out
+
+
+def _table(result, fm: FigureMatrix, rows: np.ndarray) -> pd.DataFrame:
+    dem, job, n = result.dem, result.job, result.n
+    ids = fm.ids[rows]
+    cols = _figure_columns(fm, rows, n)
+    labels = job.regions.labels
+    credit = np.nan_to_num(result.layers[layer_name(job.kind, "birth_credit")][0])
+    best = np.asarray(ndimage.maximum_position(credit, labels, index=ids), np.int64).reshape(-1, 2)
+    best = best[:, 0] * dem.shape[1] + best[:, 1] if ids.size else np.zeros(0, np.int64)
+    bx, by = _xy(dem, best)
+    dcell, delev = _most_credited_deaths(result.log, ids, dem.z.size)
+    dx, dy = _xy(dem, dcell)
+    d = _DEATH[job.kind]
+    data = {"feature_id": ids, **cols, "x": bx, "y": by,
+            "elevation": dem.z.reshape(-1)[best].astype(np.float64),
+            f"{d}_x": dx, f"{d}_y": dy, f"{d}_elevation": delev,
+            **_unperturbed(dem, job, ids), "region_area_m2": _areas(dem, labels, ids)}
+    if job.kind == "depressions":
+        data.update(_pond_columns(result, ids))
+    rank = np.empty(ids.size, np.int64)
+    rank[np.lexsort((ids, -data["expected"]))] = np.arange(1, ids.size + 1)
+    data["rank"] = rank
+    return data
+
+
+def summarise_features(result) -> FeatureSummary:
+    """The features of a peaks or depressions run (see the module docstring)."""
+    dem, job = result.dem, result.job
+    fm = figure_matrix(result.log, result.n)
+    p_above = fm.present.mean(axis=0) if result.n else np.zeros(fm.ids.size)
+    rows = np.flatnonzero(p_above >= job.min_presence)
+    data = _table(result, fm, rows)
+    ids = data["feature_id"]
+    if job.kind == "peaks":
+        top = _top_cells(result.log, job.regions.labels, ids)
+        data["top_area_m2"] = _areas(dem, top, ids)
+    else:
+        wet = result.layers[layer_name("depressions", "ponding_probability")][0] >= PONDED_SHARE
+        top = np.where(wet & np.isin(job.regions.labels, ids), job.regions.labels, 0)
+    table = pd.DataFrame(data, columns=list(COLUMNS[job.kind])).sort_values(
+        "rank", kind="stable").reset_index(drop=True)
+    settings = {"merge_level": job.merge_level, "min_presence": job.min_presence,
+                "top_share": TOP_SHARE if job.kind == "peaks" else None,
+                "ponded_share": PONDED_SHARE if job.kind == "depressions" else None,
+                "regions": len(job.regions), "features": len(table)}
+    return FeatureSummary(job.regions, table, _frames(dem, job, table, top), top, settings)
+
+
+def region_polygons(dem: Dem, labels: np.ndarray, ids, *, connectivity: int = 8) -> list:
+    """Shapely (multi)polygons of the cells labelled with each of ``ids``, in CRS coordinates."""
     from rasterio.features import shapes
     from rasterio.transform import Affine
     from shapely.geometry import shape
     from shapely.ops import unary_union
 
-    parts: list[list] = [[] for _ in range(k)]
-    if k:
-        for geom, value in shapes(labels.astype(np.int32), mask=labels > 0,
-                                  connectivity=connectivity, transform=Affine(*dem.transform)):
-            parts[int(value) - 1].append(shape(geom))
+    ids = list(ids)
+    where = {int(i): k for k, i in enumerate(ids)}
+    parts: list[list] = [[] for _ in ids]
+    mask = np.isin(labels, ids) & (labels > 0)
+    if mask.any():
+        for geom, value in shapes(labels.astype(np.int32), mask=mask, connectivity=connectivity,
+                                  transform=Affine(*dem.transform)):
+            parts[where[int(value)]].append(shape(geom))
     return [unary_union(p) if p else None for p in parts]
 
 
-def feature_frames(dem: Dem, table: pd.DataFrame, labels: np.ndarray, kind: str, *,
-                   connectivity: int = 8) -> dict:
-    """GeoDataFrames for the polygon and point layers of a feature table, by rank."""
+def _frames(dem: Dem, job, table: pd.DataFrame, top: np.ndarray) -> dict:
     import geopandas as gpd
     from shapely.geometry import Point
 
-    polys = region_polygons(dem, labels, len(table), connectivity=connectivity)
-    order = np.argsort(table["rank"].to_numpy(), kind="stable")
-    rows = table.iloc[order].reset_index(drop=True)
-    poly_name, point_name = LAYER_NAMES[kind]
-    poly = gpd.GeoDataFrame(rows, geometry=[polys[i] for i in order], crs=dem.crs)
-    pts = gpd.GeoDataFrame(rows, geometry=[Point(x, y) for x, y in zip(rows["x"], rows["y"])],
-                           crs=dem.crs)
-    return {poly_name: poly, point_name: pts}
-
-
-@dataclass(frozen=True)
-class FeatureSummary:
-    """The features of a run: region labels, the table and its GeoPackage layers."""
-
-    labels: np.ndarray
-    table: pd.DataFrame
-    frames: dict
-    settings: dict
-
-
-def summarise_features(result, *, min_presence: float = MIN_PRESENCE) -> FeatureSummary:
-    """Features of a peaks or depressions run (see :func:`find_features`)."""
-    job, dem = result.job, result.dem
-    credit = result.layers[layer_name(job.kind, "birth_credit")][0]
-    prob = result.layers[layer_name(job.kind, "birth_probability")][0]
-    labels, k = find_features(credit, dem.nodata, probability=prob, connectivity=job.connectivity,
-                              min_presence=min_presence)
-    table = feature_table(dem, labels, k, credit, result.log, result.n, base=job.base)
-    frames = feature_frames(dem, table, labels, job.kind, connectivity=job.connectivity)
-    settings = {"feature_min_presence": min_presence, "feature_window_cells": FEATURE_WINDOW,
-                "feature_local_min": FEATURE_LOCAL_MIN}
-    return FeatureSummary(labels, table, frames, settings)
+    ids = table["feature_id"].to_numpy()
+    tops = region_polygons(dem, top, ids, connectivity=job.connectivity)
+    whole = region_polygons(dem, job.regions.labels, ids, connectivity=job.connectivity)
+    points = [Point(x, y) for x, y in zip(table["x"], table["y"])]
+    top_name, point_name, region_name = LAYER_NAMES[job.kind]
+    return {top_name: gpd.GeoDataFrame(table, geometry=tops, crs=dem.crs),
+            point_name: gpd.GeoDataFrame(table, geometry=points, crs=dem.crs),
+            region_name: gpd.GeoDataFrame(table, geometry=whole, crs=dem.crs)}

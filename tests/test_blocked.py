@@ -1,0 +1,277 @@
+"""Blocked engine: bit for bit the whole-raster engine, block by block.
+
+The reference is ``pairs()`` / ``pairs_and_fill()`` on the whole raster
+(themselves checked against outside references in test_persistence.py);
+small cases are also checked directly against gudhi (The GUDHI Project,
+GUDHI User and Reference Manual, 2024).
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import pickle
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+
+from terrain.engine.blocked import (
+    blocked_fill,
+    blocked_pairs,
+    collect,
+    finish,
+    glue,
+    local,
+    read_block,
+    windows,
+)
+from terrain.engine.persistence import pairs, pairs_and_fill
+from terrain.errors import OptionError
+
+from .conftest import smooth_terrain
+from .test_persistence import gudhi_pairs, values
+
+FIELDS = ("birth", "death", "birth_value", "death_value", "persistence", "edge_limited")
+
+
+def assert_identical(p, q):
+    """Every field equal bit for bit, with the same dtype and order."""
+    assert p.kind == q.kind
+    for f in FIELDS:
+        a, b = getattr(p, f), getattr(q, f)
+        assert a.dtype == b.dtype and a.shape == b.shape, f
+        assert a.tobytes() == b.tobytes(), f
+
+
+def _plateaus(shape, seed):
+    # equal-valued flats several cells wide, crossing every block line
+    z = np.round(smooth_terrain(shape, seed=seed, scales=(4, 9)) / 60)
+    z[5:12, :] = 2.0
+    z[:, 8:11] = -1.0
+    return z.astype(np.float32)
+
+
+def _holes(shape, seed):
+    z = smooth_terrain(shape, seed=seed)
+    rng = np.random.default_rng(seed)
+    z[rng.random(shape) < 0.08] = np.nan
+    z[10:14, 3:25] = np.nan  # a long hole across block lines
+    z[0, :] = np.inf  # +-inf is nodata too
+    return z
+
+
+CASES = {
+    "smooth": lambda: smooth_terrain((37, 45), seed=11),
+    "integer-ties": lambda: np.round(smooth_terrain((33, 29), seed=12) / 40).astype(np.int16),
+    "white-noise": lambda: np.random.default_rng(13).standard_normal((31, 26)),
+    "few-levels": lambda: np.random.default_rng(14).integers(0, 3, (27, 30)).astype(np.int32),
+    "plateaus": lambda: _plateaus((30, 34), 15),
+    "holes": lambda: _holes((32, 36), 16),
+}
+BLOCKS = [(1, 1000), (1000, 1), (2, 3), (5, 4), (7, 7), (16, 9), (1000, 1000)]
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+@pytest.mark.parametrize("kind", ["peaks", "pits"])
+@pytest.mark.parametrize("conn", [8, 4])
+@pytest.mark.parametrize("outlet", [True, False])  # the default (None) is in the property tests
+def test_blocked_equals_whole_raster(case, kind, conn, outlet):
+    z = CASES[case]()
+    ref = pairs(z, kind=kind, connectivity=conn, edge_outlet=outlet)
+    for block in BLOCKS:
+        got = blocked_pairs(z, kind=kind, connectivity=conn, edge_outlet=outlet, block=block)
+        assert_identical(got, ref)
+
+
+@pytest.mark.parametrize("kind", ["peaks", "pits"])
+def test_single_cell_blocks(kind):
+    # every cell its own block: everything is decided by the global step
+    z = np.round(smooth_terrain((9, 11), seed=3) / 50).astype(np.float32)
+    z[4, 2:6] = np.nan
+    for conn in (4, 8):
+        assert_identical(blocked_pairs(z, kind=kind, connectivity=conn, block=1),
+                         pairs(z, kind=kind, connectivity=conn))
+
+
+def test_usgs_dem(usgs_dem):
+    # real integer-metre DEM full of ties, blocks of uneven size
+    z = usgs_dem[:120, :150]
+    for kind in ("peaks", "pits"):
+        for conn in (8, 4):
+            assert_identical(blocked_pairs(z, kind=kind, connectivity=conn, block=(37, 41)),
+                             pairs(z, kind=kind, connectivity=conn))
+
+
+@pytest.mark.parametrize("case", ["smooth", "white-noise", "few-levels"])
+@pytest.mark.parametrize("kind", ["peaks", "pits"])
+@pytest.mark.parametrize("conn", [8, 4])
+def test_blocked_equals_gudhi(case, kind, conn):
+    # outside reference: gudhi (The GUDHI Project, GUDHI User and Reference Manual, 2024);
+    # CubicalComplex(top_dimensional_cells=A) is the 8-connected sublevel filtration,
+    # CubicalComplex(vertices=A) the 4-connected one
+    z = CASES[case]().astype(np.float64)
+    outlet = kind == "pits"
+    ref = gudhi_pairs(z, kind, conn, outlet)
+    p = blocked_pairs(z, kind=kind, connectivity=conn, block=(6, 5))
+    f = ~p.essential
+    got = list(zip(p.birth_value[f], p.death_value[f], p.birth[f], p.death[f]))
+    assert values(got) == values(ref)
+    if case != "few-levels":  # distinct values: cells match too
+        assert sorted((b, d) for *_, b, d in got) == sorted((b, d) for *_, b, d in ref)
+
+
+elements = st.one_of(st.sampled_from([0.0, 1.0, 2.0, 3.0]), st.just(np.nan),
+                     st.floats(-4, 4, width=32), st.just(np.inf), st.sampled_from([-0.0]))
+
+
+@settings(max_examples=250, deadline=None)
+@given(a=arrays(np.float32, st.tuples(st.integers(1, 12), st.integers(1, 12)), elements=elements),
+       br=st.integers(1, 13), bc=st.integers(1, 13), kind=st.sampled_from(["peaks", "pits"]),
+       conn=st.sampled_from([4, 8]), outlet=st.sampled_from([None, True, False]))
+def test_properties_blocked_equals_whole(a, br, bc, kind, conn, outlet):
+    ref = pairs(a, kind=kind, connectivity=conn, edge_outlet=outlet)
+    got = blocked_pairs(a, kind=kind, connectivity=conn, edge_outlet=outlet, block=(br, bc))
+    assert_identical(got, ref)
+
+
+@settings(max_examples=100, deadline=None)
+@given(a=arrays(np.int16, st.tuples(st.integers(1, 14), st.integers(1, 14)),
+                elements=st.integers(0, 3)),
+       br=st.integers(1, 15), bc=st.integers(1, 15), conn=st.sampled_from([4, 8]))
+def test_properties_fill_equals_whole(a, br, bc, conn):
+    a = a.astype(np.float64)
+    a[a == 3] = np.nan  # nodata: an outlet too
+    p_ref, f_ref = pairs_and_fill(a, connectivity=conn)
+    p, f = blocked_fill(a, connectivity=conn, block=(br, bc))
+    assert_identical(p, p_ref)
+    assert f.dtype == f_ref.dtype and f.tobytes() == f_ref.tobytes()
+
+
+@pytest.mark.parametrize("case", ["smooth", "integer-ties", "plateaus", "holes", "white-noise"])
+@pytest.mark.parametrize("conn", [8, 4])
+def test_fill_equals_whole(case, conn):
+    z = CASES[case]()
+    p_ref, f_ref = pairs_and_fill(z, connectivity=conn)
+    for block in [(1, 1000), (1000, 1), (3, 4), (8, 11), (1000, 1000)]:
+        p, f = blocked_fill(z, connectivity=conn, block=block)
+        assert_identical(p, p_ref)
+        assert f.tobytes() == f_ref.tobytes()
+
+
+def test_fill_into_memmap(tmp_path):
+    z = smooth_terrain((40, 50), seed=21)
+    out = np.lib.format.open_memmap(tmp_path / "filled.npy", mode="w+", dtype=np.float64,
+                                    shape=z.shape)
+    _, f = blocked_fill(z, block=(16, 16), out=out)
+    assert f is out
+    np.testing.assert_array_equal(np.load(tmp_path / "filled.npy"), pairs_and_fill(z)[1])
+
+
+class LazyTerrain:
+    """Computes DEM plus noise per window; never holds the raster."""
+
+    def __init__(self, shape, seed):
+        self.shape = shape
+        self.seed = seed
+        self.reads = []
+
+    def __getitem__(self, key):
+        rows, cols = key
+        r = np.arange(rows.start, rows.stop)[:, None]
+        c = np.arange(cols.start, cols.stop)[None, :]
+        self.reads.append((rows.stop - rows.start) * (cols.stop - cols.start))
+        noise = np.sin(r * 12.9898 + c * 78.233 + self.seed) * 43758.5453 % 1.0
+        return (np.sin(r / 7.0) * np.cos(c / 5.0) * 50 + noise).astype(np.float32)
+
+    def full(self):
+        return self[0:self.shape[0], 0:self.shape[1]]
+
+
+def test_sources_memmap_lazy_and_mask(tmp_path):
+    lazy = LazyTerrain((50, 61), seed=1)
+    z = lazy.full()
+    lazy.reads.clear()
+    got = blocked_pairs(lazy, kind="peaks", block=(16, 20))
+    assert_identical(got, pairs(z, kind="peaks"))
+    assert max(lazy.reads) <= 18 * 22  # one block plus halo at a time
+    mm = np.lib.format.open_memmap(tmp_path / "z.npy", mode="w+", dtype=z.dtype, shape=z.shape)
+    mm[:] = z
+    mask = np.zeros(z.shape, bool)
+    mask[20:30, 5:40] = True
+    assert_identical(blocked_pairs(mm, kind="pits", block=(13, 17), mask=mask),
+                     pairs(z, kind="pits", mask=mask))
+
+
+def test_min_persistence_is_the_filtered_subset():
+    z = smooth_terrain((40, 44), seed=22)
+    for kind in ("peaks", "pits"):
+        full = pairs(z, kind=kind)
+        keep = full.persistence >= 25.0
+        got = blocked_pairs(z, kind=kind, block=(9, 13), min_persistence=25.0)
+        for f in FIELDS:
+            np.testing.assert_array_equal(getattr(got, f), getattr(full, f)[keep])
+        assert len(got) < len(full)
+
+
+def test_parallel_map_with_processes():
+    z = smooth_terrain((60, 70), seed=23)
+    with concurrent.futures.ProcessPoolExecutor(2) as ex:
+        got = blocked_pairs(z, kind="pits", block=(25, 25), map=ex.map)
+        p, f = blocked_fill(z, block=(25, 30), map=ex.map)
+    assert_identical(got, pairs(z, kind="pits"))
+    assert f.tobytes() == pairs_and_fill(z)[1].tobytes()
+
+
+def test_pure_steps_pickle_and_any_order():
+    z = smooth_terrain((45, 40), seed=24)
+    wins = windows(z.shape, (12, 17))
+    sums = [pickle.loads(pickle.dumps(local(read_block(z, w, z.shape), w, z.shape, kind="pits")))
+            for w in wins]
+    res = glue(sums[::-1])  # order of summaries does not matter
+    assert_identical(collect(sums, res), pairs(z, kind="pits"))
+    filled = np.empty(z.shape)
+    for w in wins:
+        filled[w.r0:w.r1, w.c0:w.c1] = finish(read_block(z, w, z.shape), w, pickle.loads(pickle.dumps(res)))
+    assert filled.tobytes() == pairs_and_fill(z)[1].tobytes()
+
+
+def test_blocks_resolve_most_pairs_and_hand_up_only_boundaries():
+    z = smooth_terrain((128, 128), seed=25) + 30 * np.random.default_rng(0).standard_normal((128, 128))
+    wins = windows(z.shape, 64)
+    sums = [local(read_block(z, w, z.shape), w, z.shape, kind="peaks") for w in wins]
+    res = glue(sums)
+    total = sum(s.birth.size for s in sums) + res.birth.size
+    assert res.birth.size < 0.2 * total  # most pairs are final in their block
+    boundary = sum(s.boundary_cells() for s in sums)
+    assert boundary == 2 * 2 * 128  # two block lines, both sides, 128 cells long
+    assert sum(s.boundary_nbytes() for s in sums) < 100 * boundary  # no per-cell arrays
+
+
+def test_bad_input():
+    z = np.zeros((4, 4))
+    with pytest.raises(OptionError):
+        blocked_pairs(z, kind="hills")
+    with pytest.raises(OptionError):
+        blocked_pairs(z, kind="pits", connectivity=6)
+    with pytest.raises(OptionError):
+        blocked_pairs(z, kind="pits", block=0)
+    with pytest.raises(OptionError):
+        blocked_pairs(np.zeros((2, 2, 2)), kind="pits")
+    wins = windows(z.shape, 2)
+    sums = [local(read_block(z, w, z.shape), w, z.shape, kind="peaks") for w in wins]
+    with pytest.raises(OptionError):
+        glue(sums[:-1])  # a block missing
+    with pytest.raises(OptionError):
+        finish(read_block(z, wins[0], z.shape), wins[0], glue(sums))  # fill needs pits
+    with pytest.raises(OptionError):
+        local(z, wins[0], z.shape, kind="peaks")  # values must cover the window plus halo
+
+
+def test_empty_and_all_nodata():
+    for shape in [(0, 5), (4, 0)]:
+        assert_identical(blocked_pairs(np.zeros(shape), kind="peaks"), pairs(np.zeros(shape), kind="peaks"))
+    z = np.full((6, 7), np.nan)
+    for kind in ("peaks", "pits"):
+        assert_identical(blocked_pairs(z, kind=kind, block=3), pairs(z, kind=kind))

@@ -465,7 +465,8 @@ def hold_outdir(outdir: str | os.PathLike):
 
 
 def _lock(out: Path) -> int | None:
-    """An exclusive ``flock`` on ``out/.cairn.lock`` (None where flock is missing)."""
+    """An exclusive ``flock`` on ``out/.cairn.lock`` (None where flock is missing
+    or the file system does not support it)."""
     try:
         import fcntl
     except ImportError:  # pragma: no cover - not POSIX
@@ -479,12 +480,17 @@ def _lock(out: Path) -> int | None:
                               "another output folder") from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
+        except BlockingIOError:
             pid = os.read(fd, 32).decode(errors="replace").strip()
             os.close(fd)
             who = f" (process {pid})" if pid.isdigit() else ""
             raise OutputError(f"{out}: another cairn run is writing to this folder{who}; wait "
                               "for it to finish or choose another output folder") from None
+        except OSError:  # a file system without locks (some network mounts): go on unlocked
+            os.close(fd)
+            with contextlib.suppress(OSError):
+                os.unlink(path)
+            return None
         try:
             same = os.fstat(fd).st_ino == os.stat(path).st_ino
         except FileNotFoundError:

@@ -614,6 +614,8 @@ _DISK_FULL_ERRNO = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG}
 _DISK_FULL_TEXT = ("no space left", "disk is full", "disk full", "quota exceeded",
                    "file too large")
 _IO_LIBRARIES = ("rasterio", "pyogrio", "fiona", "sqlite3", "zipfile", "PIL")
+_IO_FAILURE = re.compile(r"no space|disk|quota|too large|write|writing|i/?o error|seek|flush|"
+                         r"truncat|cannot open|read error", re.IGNORECASE)
 
 
 @contextlib.contextmanager
@@ -725,7 +727,9 @@ class _NativeErrors:
         class Handler(logging.Handler):
             def emit(self, record):
                 msg = record.getMessage()
-                if "signalled an error" in msg:
+                # GDAL reports some harmless failures too (statistics of an all-nodata
+                # band); only input/output errors mean the file is not what was written
+                if "signalled an error" in msg and _IO_FAILURE.search(msg):
                     records.append(msg)
 
         self.logger = logging.getLogger("rasterio._env")

@@ -386,6 +386,27 @@ def test_gdal_write_error_is_raised_not_renamed(cairn, dem, tmp_path, monkeypatc
     assert not (tmp_path / "g").exists()
 
 
+def test_harmless_gdal_error_does_not_fail_a_write(cairn, dem, tmp_path, monkeypatch):
+    # GDAL also logs failures that leave the file whole (the COG driver on an all-nodata
+    # band: no statistics); those are not write errors
+    import logging
+
+    import rasterio as rio
+
+    real = rio.open
+
+    def logging_open(path, mode="r", **kw):
+        if mode == "w":
+            logging.getLogger("rasterio._env").info(
+                "GDAL signalled an error: err_no=1, msg='Failed to compute statistics, no valid "
+                "pixels found in sampling.'")
+        return real(path, mode, **kw)
+
+    monkeypatch.setattr(rio, "open", logging_open)
+    code, _, err = cairn("peaks", dem, "-o", tmp_path / "g", *RUN)
+    assert code == 0, err
+
+
 def test_interrupt_while_writing_keeps_the_previous_set(cairn, dem, done, monkeypatch):
     import terrain.outputs.plot as plot
 

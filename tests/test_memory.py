@@ -91,8 +91,7 @@ def dems(tmp_path_factory):
 
 CASES = {  # name: (command, dem size, extra arguments, workers)
     "peaks": ("peaks", 600, ("--min-prominence", "10"), 1),
-    "peaks-2-workers": ("peaks", 600, ("--min-prominence", "10"), 2),
-    "depressions": ("depressions", 600, ("--min-depth", "10"), 1),
+    "depressions-2-workers": ("depressions", 600, ("--min-depth", "10"), 2),
     "catchments-1": ("catchments", 600, (), 1),
     "catchments-100": ("catchments", 250, (), 1),
     "sweep": ("sweep", 600, ("--kind", "peaks", "--min-prominence", "10"), 1),

@@ -36,7 +36,6 @@ def _saved(fig):
 
 def main():
     from cairn_demo_data import DEM_PATH
-
     from terrain import CreditJob, Dem, ErrorModel, run_ensemble
     from terrain.io import read_dem
     from terrain.outputs import plot

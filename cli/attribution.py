@@ -13,7 +13,7 @@ from terrain.summary.features import summarise_features
 
 from . import options
 from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
-from .execute import error_model, execution, outputs, read, run_job
+from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
 from .summary import print_summary
 
 __all__ = ["peaks_cmd", "depressions_cmd", "demo_cmd"]
@@ -26,9 +26,11 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
                     weight=opts["weight"], connectivity=opts["connectivity"], base=base,
                     merge_level=opts["merge_level"], min_presence=opts["min_presence"])
     ex = execution(opts)
+    head = header(dem_path, opts)
+    out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
+    guard_memory(head, job, ex, opts, model=model)
     dem = read(dem_path, opts)
     job = job.resolved(dem, model)
-    out = outputs(outdir, file_names(kind), opts)
     figure = "prominence" if kind == "peaks" else "depth"
     res = run_job(dem, job, model, ex, opts, label=label or kind,
                   headline=f"minimum {figure} " + (f"{threshold:g}" if threshold is not None
@@ -95,7 +97,7 @@ def depressions_cmd(dem, outdir, min_depth, **opts):
 DEMO = dict(rmse=1.0, le90=None, a95=None, kernel="gaussian", range_m=0.0,
             covariance="exponential", nugget=0.0, threshold_jitter=0.5, weight="persistence",
             connectivity=8, merge_level=None, min_presence=0.1, band=None, bbox=None,
-            realisations=300, seed=2026, scheduler=None,
+            nodata=None, realisations=300, seed=2026, scheduler=None,
             checkpoint=None, resume=False, target_se=None, force=False)
 DEMO_CUTOFF = 3.0
 

@@ -12,7 +12,7 @@ from terrain.summary.catchments import summarise_catchments
 
 from . import options
 from .common import CAUTION, command_line, guarded, warn
-from .execute import error_model, execution, outputs, read, run_job
+from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
 from .summary import print_catchments
 
 __all__ = ["catchments_cmd"]
@@ -74,8 +74,8 @@ def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, max_b
     """
     model = error_model(opts)
     ex = execution(opts)
-    d = read(dem, opts)
-    pts = read_outlets(outlets, d) if outlets is not None else None
+    head = header(dem, opts)
+    pts = read_outlets(outlets, head) if outlets is not None else None  # DEM's CRS, from its header
     if pts is not None and pts.numbered:
         rows = ", ".join(map(str, pts.numbered[:5])) + (" ..." if len(pts.numbered) > 5 else "")
         warn(f"{outlets}: {len(pts.numbered)} outlet(s) without an id take their row number "
@@ -83,8 +83,12 @@ def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, max_b
     job = CatchmentJob(pts.ids if pts else (), pts.xy if pts else None, snap_m=snap,
                        channel_area=channel_area, conditioning=conditioning,
                        max_breach_depth=max_breach_depth, connectivity=connectivity,
-                       source=str(outlets)).resolved(d, model)
-    out = outputs(outdir, file_names("catchments", job.layer_ids), opts)
+                       source=str(outlets))
+    out = outputs(outdir, file_names("catchments", job.layer_ids), opts,
+                  inputs=[dem] + ([outlets] if outlets else []))
+    guard_memory(head, job, ex, opts, model=model)
+    d = read(dem, opts)
+    job = job.resolved(d, model)
     what = f"{len(job.ids)} outlet(s), snap {job.snap_m:g} m" if job.ids else "no outlets"
     res = run_job(d, job, model, ex, opts, label="catchments",
                   headline=f"{what}, {job.conditioning}, D{job.connectivity}, channels from "

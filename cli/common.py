@@ -13,10 +13,11 @@ import sys
 
 import click
 
-from terrain.errors import CairnError
+from terrain.errors import CairnError, CairnWarning
 from terrain.outputs.writer import CAUTION
 
-__all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn"]
+__all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn",
+           "Terminated"]
 
 INDEPENDENT_ERROR = (
     "independent per-cell error deepens flat floors and raises flat tops (the lowest of n noisy "
@@ -36,7 +37,7 @@ FLAGS = {
     "snap_m": "--snap", "outlets": "--outlets", "kind": "--kind", "backend": "--workers",
     "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
     "channel_area": "--channel-area", "conditioning": "--conditioning",
-    "max_breach_depth": "--max-breach-depth",
+    "max_breach_depth": "--max-breach-depth", "nodata": "--nodata", "memory_check": "--force",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 
@@ -55,22 +56,51 @@ def _kind() -> str | None:
     return ctx.params.get("kind") or (ctx.command.name if ctx.command.name in _CUTOFF else None)
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM outside a run's realisations (a run handles it itself)."""
+
+
+def _terminate(signum, frame):
+    raise Terminated()
+
+
 def guarded(fn):
-    """Turn cairn's own errors into one line + exit 2, and Ctrl-C into exit 130."""
+    """Turn cairn's own errors and running out of memory into one line + exit 2,
+    Ctrl-C into exit 130 and SIGTERM into exit 143 (outputs in progress are
+    dropped whole: see terrain.io.staged_outputs)."""
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
+        previous = _on_sigterm(_terminate)
         try:
             return fn(*args, **kwargs)
         except CairnError as exc:
             kind = _kind()
             click.echo(f"cairn: error: {exc.render(lambda p: flag(p, kind))}", err=True)
             sys.exit(2)
-        except KeyboardInterrupt:
-            click.echo("cairn: interrupted", err=True)
-            sys.exit(130)
+        except MemoryError:
+            click.echo("cairn: error: out of memory (the machine could not provide what the run "
+                       f"needed); use {flag('bbox')} for a smaller window or fewer "
+                       f"{flag('workers')}", err=True)
+            sys.exit(2)
+        except KeyboardInterrupt as exc:
+            term = isinstance(exc, Terminated)
+            click.echo(f"cairn: {'terminated' if term else 'interrupted'}", err=True)
+            sys.exit(143 if term else 130)
+        finally:
+            _on_sigterm(previous)
 
     return wrapper
+
+
+def _on_sigterm(handler):
+    """Install ``handler`` for SIGTERM (main thread only); returns the previous one."""
+    import signal
+    import threading
+
+    if handler is None or threading.current_thread() is not threading.main_thread():
+        return None
+    return signal.signal(signal.SIGTERM, handler)
 
 
 def command_line() -> str:
@@ -80,5 +110,7 @@ def command_line() -> str:
     return shlex.join(["cairn", *(argv if argv is not None else sys.argv[1:])])
 
 
-def warn(line: str) -> None:
-    click.echo(f"cairn: warning: {line}", err=True)
+def warn(line) -> None:
+    """Print a warning once; a :class:`terrain.errors.CairnWarning` names flags."""
+    text = line.render(flag) if isinstance(line, CairnWarning) else str(line)
+    click.echo(f"cairn: warning: {text}", err=True)

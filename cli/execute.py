@@ -6,24 +6,25 @@ only wires the options through and prints.
 
 from __future__ import annotations
 
-import os
 import sys
 from pathlib import Path
 
 import click
 
 from terrain.errors import OutputError
-from terrain.io import dem_warnings, prepare_outdir, read_dem
+from terrain.io import claim_outdir, dem_warnings, file_exists, read_dem, read_header, remove_file, same_file
 from terrain.noise import ErrorModel, rmse_from
 from terrain.resources import check_memory
 from terrain.runner import Execution, RunInterrupted, run_ensemble
+from terrain.runner.checkpoint import prepare_checkpoint
 
 from .common import warn
 from .progress import progress_bar
 
-__all__ = ["error_model", "read", "execution", "outputs", "run_job"]
+__all__ = ["EXEC_KEYS", "error_model", "read", "header", "execution", "outputs", "guard_memory", "run_job"]
 
 RUN_KEYS = ("realisations", "seed", "workers", "scheduler", "checkpoint", "resume", "target_se")
+EXEC_KEYS = RUN_KEYS + ("memory_check",)  # what run_ensemble takes from an Execution
 
 
 def error_model(opts: dict, rmse: float | None = None) -> ErrorModel:
@@ -34,9 +35,14 @@ def error_model(opts: dict, rmse: float | None = None) -> ErrorModel:
                       covariance=opts["covariance"], nugget=opts["nugget"])
 
 
+def header(path, opts: dict):
+    """What the DEM's header says (grid, band, type) without reading its pixels."""
+    return read_header(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"))
+
+
 def read(path, opts: dict):
     """Read the DEM and say once what a user should know about it."""
-    dem = read_dem(path, band=opts.get("band"), bbox=opts.get("bbox"))
+    dem = read_dem(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"))
     for line in dem_warnings(dem):
         warn(line)
     return dem
@@ -44,38 +50,74 @@ def read(path, opts: dict):
 
 def execution(opts: dict) -> Execution:
     """The run's execution settings, validated before any output is touched."""
-    return Execution(**{k: opts[k] for k in RUN_KEYS})
+    return Execution(**{k: opts[k] for k in RUN_KEYS}, memory_check=not opts.get("force", False))
 
 
-def outputs(outdir, names: list[str], opts: dict) -> Path:
-    """Check the output folder (and the checkpoint) before the run starts."""
-    out = prepare_outdir(outdir, names, overwrite=opts["overwrite"] or opts["resume"])
+def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None) -> Path:
+    """Claim the output folder for this command (locked until it ends) and check
+    the checkpoint files against the inputs and outputs, before the run starts.
+
+    ``checkpoints`` are the files the run will save (default: ``--checkpoint``).
+    """
     ck = opts["checkpoint"]
-    if ck and Path(ck).exists() and not opts["resume"]:
-        if not opts["overwrite"]:
-            raise OutputError(f"{ck}: checkpoint exists; pass {{resume}} to continue it or "
-                              "{overwrite} to start afresh", "resume", "overwrite")
-        os.unlink(ck)
+    cks = [Path(c) for c in (checkpoints if checkpoints is not None else [ck] if ck else [])]
+    _distinct(cks, inputs, [Path(outdir) / n for n in names])
+    ctx = click.get_current_context()
+    out = ctx.with_resource(claim_outdir(outdir, names,
+                                         overwrite=opts["overwrite"] or opts["resume"]))
+    for c in cks:  # the folder is writable; a file there is a cairn checkpoint
+        prepare_checkpoint(c, resume=opts["resume"])
+    if opts["resume"]:
+        return out
+    existing = [c for c in cks if file_exists(c)]
+    if existing and not opts["overwrite"]:
+        raise OutputError(f"{existing[0]}: checkpoint exists; pass {{resume}} to continue it or "
+                          "{overwrite} to start afresh", "resume", "overwrite")
+    for c in existing:
+        remove_file(c)
     return out
 
 
+def _distinct(checkpoints, inputs, outputs) -> None:
+    """A checkpoint may never be an input or an output of the run."""
+    for c in checkpoints:
+        for what, paths in (("input", inputs), ("output", outputs)):
+            for p in paths:
+                if p is not None and same_file(c, p):
+                    raise OutputError(f"{c}: the checkpoint would overwrite the {what} file {p}; "
+                                      "choose another {checkpoint} file", "checkpoint")
+
+
+def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int = 1,
+                 quicklook: bool = True):
+    """Refuse a run that would not fit in memory, from the DEM's header alone."""
+    return check_memory(head, job, ex, model=model, runs=runs, quicklook=quicklook,
+                        force=opts["force"])
+
+
 def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str):
-    """Check memory, run the ensemble with a progress bar, turn Ctrl-C into exit 130."""
-    check_memory(dem, job, workers=ex.n_workers, force=opts["force"],
-                 realisations=ex.realisations)
+    """Run the ensemble with a progress bar; Ctrl-C exits 130, SIGTERM 143."""
     if not opts["quiet"]:
         click.echo(f"cairn {label}: {dem.shape[0]}x{dem.shape[1]} cells, error "
-                   f"{model.describe()}, {headline}, {ex.realisations} realisations, "
-                   f"seed {ex.seed}", err=True)
+                   f"{model.describe()}, {headline}, {ex.realisations} realisations"
+                   f"{' at most' if ex.target_se is not None else ''}, seed {ex.seed}", err=True)
     try:
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label=label) as bar:
             return run_ensemble(dem, job, model, progress=bar,
-                                **{k: getattr(ex, k) for k in RUN_KEYS})
+                                **{k: getattr(ex, k) for k in EXEC_KEYS})
     except RunInterrupted as exc:
-        if exc.checkpoint:
-            click.echo(f"cairn: interrupted after {exc.done} realisations; saved {exc.checkpoint}. "
-                       "Resume with the same command plus --resume.", err=True)
-        else:
-            click.echo(f"cairn: interrupted after {exc.done} realisations; nothing written "
-                       "(use --checkpoint FILE to be able to resume).", err=True)
-        sys.exit(130)
+        interrupted(exc, ex.checkpoint)
+
+
+def interrupted(exc: RunInterrupted, checkpoint=None):
+    """Say what an interrupted run kept, and exit 128 + the signal."""
+    what = "terminated" if exc.signal == 15 else "interrupted"
+    if exc.checkpoint:
+        click.echo(f"cairn: {what} after {exc.done} realisations; saved {exc.checkpoint}. "
+                   "Resume with the same command plus --resume.", err=True)
+    elif checkpoint:
+        click.echo(f"cairn: {what} before any realisation finished; nothing written.", err=True)
+    else:
+        click.echo(f"cairn: {what} after {exc.done} realisations; nothing written "
+                   "(use --checkpoint FILE to be able to resume).", err=True)
+    sys.exit(128 + exc.signal)

@@ -12,7 +12,8 @@ from terrain import defaults
 from terrain.noise import COVARIANCES, KERNELS
 
 __all__ = ["compose", "accuracy", "error_model", "cutoff", "attribution", "connectivity",
-           "drainage", "dem_input", "run", "outdir", "RESUME_HELP", "TARGET_SE_HELP"]
+           "drainage", "dem_input", "run", "outdir", "RESUME_HELP", "TARGET_SE_HELP", "BBOX_HELP",
+           "NODATA_HELP"]
 
 
 def compose(*decorators):
@@ -146,11 +147,18 @@ def drainage():
                           f"[default: {defaults.MAX_BREACH_DEPTH:g}]."),
     )
 
+
+BBOX_HELP = ("Read only the cells whose area meets this box, in the DEM's CRS units (a box "
+             "inside one cell reads that cell); north-up or bottom-up rasters only.")
+NODATA_HELP = ("Treat cells holding this value as nodata (in the file's stored units, before its "
+               "scale and offset), e.g. -9999 when the file does not declare it.")
+
 dem_input = compose(
     click.option("--band", type=int, default=None,
                  help="Band to read (1-based); required for multi-band files."),
     click.option("--bbox", callback=_bbox, default=None, metavar="XMIN,YMIN,XMAX,YMAX",
-                 help="Read only this window, in the DEM's CRS units."),
+                 help=BBOX_HELP),
+    click.option("--nodata", type=float, default=None, metavar="VALUE", help=NODATA_HELP),
 )
 
 RESUME_HELP = ("Continue the run saved in --checkpoint (same DEM, seed and options), or extend "

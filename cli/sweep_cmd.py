@@ -11,12 +11,12 @@ from terrain.jobs import CreditJob
 from terrain.noise import rmse_from
 from terrain.outputs.manifest import file_names, help_text
 from terrain.outputs.writer import write_sweep
-from terrain.resources import check_memory
-from terrain.sweep import sweep, sweep_models
+from terrain.runner import RunInterrupted
+from terrain.sweep import run_checkpoint, sweep, sweep_models
 
 from . import options
 from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
-from .execute import RUN_KEYS, error_model, execution, outputs, read
+from .execute import EXEC_KEYS, error_model, execution, guard_memory, header, interrupted, outputs, read
 from .progress import progress_bar
 from .summary import print_sensitivity
 
@@ -80,16 +80,20 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     models = sweep_models(error_model({**opts, "kernel": "gaussian"}, rmse=levels[0]), levels,
                           opts["kernel"] or ["gaussian"])
     ex = execution(opts)
+    head = header(dem, opts)
+    checkpoints = [run_checkpoint(ex.checkpoint, m) for m in models] if ex.checkpoint else []
+    out = outputs(outdir, file_names("sweep"), opts, inputs=[dem], checkpoints=checkpoints)
+    guard_memory(head, job, ex, opts, model=models[-1], runs=len(models), quicklook=False)
     d = read(dem, opts)
-    out = outputs(outdir, file_names("sweep"), opts)
-    check_memory(d, job, workers=ex.n_workers, force=opts["force"],
-                 realisations=ex.realisations * len(models))
     if not opts["quiet"]:
         click.echo(f"cairn sweep: {len(models)} error model(s) x {ex.realisations} "
                    f"realisations, seed {ex.seed}", err=True)
-    run_kw = {k: getattr(ex, k) for k in RUN_KEYS}
-    with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label="sweep") as bar:
-        result = sweep(d, job, models, progress=bar, **run_kw)
+    run_kw = {k: getattr(ex, k) for k in EXEC_KEYS}
+    try:
+        with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label="sweep") as bar:
+            result = sweep(d, job, models, progress=bar, **run_kw)
+    except RunInterrupted as exc:
+        interrupted(exc, ex.checkpoint)
     if opts["range_m"] == 0:
         warn(INDEPENDENT_ERROR)
     write_sweep(out, result, input_path=str(dem), command_line=command_line())

@@ -12,7 +12,7 @@ import numpy as np
 
 from .errors import NoValidCellsError, OptionError
 
-__all__ = ["Dem", "metres_per_degree"]
+__all__ = ["Dem", "RasterHeader", "metres_per_degree"]
 
 # WGS84 ellipsoid (NIMA TR8350.2, 2000)
 _A = 6378137.0
@@ -42,6 +42,61 @@ def metres_per_degree(lat_deg: np.ndarray | float) -> tuple[np.ndarray, np.ndarr
     n = _A / np.sqrt(1 - _E2 * s2)  # prime vertical radius
     m = _A * (1 - _E2) / (1 - _E2 * s2) ** 1.5  # meridional radius
     return np.pi / 180 * n * np.cos(phi), np.pi / 180 * m
+
+
+@dataclass(frozen=True)
+class RasterHeader:
+    """What a raster's header says about the grid a read would return.
+
+    Read without the pixels (:func:`terrain.io.read_header`), so the memory a
+    run needs can be judged before the raster is read.
+
+    Attributes
+    ----------
+    source : str
+        The file.
+    shape : (rows, cols)
+        Of the window that would be read (the whole band without a box).
+    dtype : str
+        How the band is stored (e.g. ``int16``).
+    value_bytes : int
+        Bytes per elevation once read: 4 (float32) for bands of at most 16-bit
+        integers or float32, else 8 (float64).
+    transform, crs, geographic, linear_unit_m, vertical_units
+        As for :class:`Dem`, of the window.
+    band : int
+        1-based band number.
+    window : (col_off, row_off, width, height) or None
+        The cells read from the file, or None for the whole band.
+    scale, offset : float
+        Stored value x scale + offset = elevation (GDAL band scale/offset).
+    nodata_value : float or None
+        The nodata value the file declares for the band.
+    """
+
+    source: str
+    shape: tuple
+    dtype: str
+    value_bytes: int
+    transform: tuple
+    crs: str | None
+    geographic: bool
+    linear_unit_m: float
+    vertical_units: str | None
+    band: int
+    window: tuple | None
+    scale: float = 1.0
+    offset: float = 0.0
+    nodata_value: float | None = None
+
+    @property
+    def cells(self) -> int:
+        return int(self.shape[0]) * int(self.shape[1])
+
+    @property
+    def stored_bytes(self) -> int:
+        """Bytes per cell of the band as stored (the read's raw buffer)."""
+        return np.dtype(self.dtype).itemsize
 
 
 @dataclass
@@ -132,11 +187,14 @@ class Dem:
 
         For a geographic CRS the exact area of the ellipsoidal quadrangle
         between the row's bounding parallels (WGS84; Snyder 1987, eq. 3-12
-        for the authalic ``q``); otherwise cell width x height.
+        for the authalic ``q``); otherwise the area of the cell's
+        parallelogram, ``|a e - b d|`` (the determinant of the affine
+        transform) in square CRS units, times the CRS unit squared -- on a
+        rotated or sheared grid less than width x height.
         """
         if not self.geographic:
-            w, h = self.cell_metres()
-            return w * h
+            a, b, _, d, e, _ = self.transform
+            return np.full(self.shape[0], abs(a * e - b * d) * self.linear_unit_m ** 2)
         dx, dy = self.cellsize
         lat_c = self.row_latitudes()
         lo = np.radians(lat_c - dy / 2)

@@ -20,12 +20,12 @@ __all__ = [
     "CairnError", "DemError", "DemNotFoundError", "NotARasterError", "CorruptRasterError",
     "NoValidCellsError", "BandError", "WindowError", "OptionError",
     "OutputError", "CheckpointError", "MemoryGuardError", "SchedulerError", "WorkerError",
-    "OutletError",
+    "OutletError", "RasterTypeError", "CairnWarning",
 ]
 
 
-class CairnError(Exception):
-    """Root of all errors raised by cairn on purpose.
+class _Templated:
+    """A one-line message whose ``{param}`` names a front end may relabel.
 
     Parameters
     ----------
@@ -46,6 +46,15 @@ class CairnError(Exception):
         for p in self.params:
             text = text.replace("{" + p + "}", label(p))
         return text
+
+
+class CairnError(_Templated, Exception):
+    """Root of all errors raised by cairn on purpose (see :class:`_Templated`)."""
+
+
+class CairnWarning(_Templated, UserWarning):
+    """Something a user should be told once, not an error; its message may
+    name parameters like a :class:`CairnError`'s."""
 
 
 # --- input rasters -----------------------------------------------------------
@@ -74,7 +83,12 @@ class BandError(DemError, ValueError):
 
 
 class WindowError(DemError, ValueError):
-    """The requested bounding box does not overlap the raster."""
+    """The requested bounding box is empty, misses the raster, or cannot
+    window it (a rotated or sheared grid)."""
+
+
+class RasterTypeError(DemError, TypeError):
+    """The band holds values that are not real numbers (complex)."""
 
 
 # --- options and models --------------------------------------------------------
@@ -84,7 +98,8 @@ class OptionError(CairnError, ValueError):
 
 # --- outputs, runs, resources ---------------------------------------------------
 class OutputError(CairnError, OSError):
-    """An output path cannot be used (exists, is a file, not writable)."""
+    """An output path cannot be used (exists, is a file, not writable, in use
+    by another run) or a file could not be written (disk full)."""
 
 
 class CheckpointError(CairnError, ValueError):

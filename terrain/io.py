@@ -9,33 +9,63 @@ never a partial one.
 from __future__ import annotations
 
 import contextlib
+import errno
+import glob
 import json
+import math
 import os
+import re
+import shutil
 import tempfile
 import warnings
 from pathlib import Path
 
 import numpy as np
 
-from .dem import Dem
+from .dem import Dem, RasterHeader
 from .errors import (
     BandError,
+    CairnWarning,
     CorruptRasterError,
     DemNotFoundError,
     NotARasterError,
+    OptionError,
     OutletError,
     OutputError,
+    RasterTypeError,
     WindowError,
 )
 from .outlets import Outlets, outlet_ids
 
-__all__ = ["read_dem", "read_outlets", "dem_warnings", "atomic_path", "write_json", "write_layer",
-           "prepare_outdir", "write_frames", "write_csv", "write_figure", "save_npz", "load_npz",
-           "file_sha256", "available_memory"]
+__all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings", "atomic_path",
+           "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
+           "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
+           "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
+           "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder"]
+
+
+# Common nodata values of DEM products and GIS packages that files often hold
+# without declaring them (common practice, no source).
+SENTINELS = (-9999.0, -99999.0, -32768.0, -32767.0, float(np.finfo(np.float32).min),
+             float(np.float32(-3.4e38)))
+
+
+def read_header(path: str | os.PathLike, *, band: int | None = None,
+                bbox: tuple[float, float, float, float] | None = None,
+                nodata: float | None = None) -> RasterHeader:
+    """What :func:`read_dem` would read, from the header alone (no pixels).
+
+    Same parameters and errors as :func:`read_dem`; used to judge the memory
+    a run needs before reading the raster.
+    """
+    p = Path(path)
+    with _open_raster(p) as ds:
+        return _header(p, ds, band, bbox, nodata)
 
 
 def read_dem(path: str | os.PathLike, *, band: int | None = None,
-             bbox: tuple[float, float, float, float] | None = None) -> Dem:
+             bbox: tuple[float, float, float, float] | None = None,
+             nodata: float | None = None) -> Dem:
     """Read one band of any raster GDAL can open into a :class:`~terrain.dem.Dem`.
 
     Parameters
@@ -45,37 +75,81 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
     band : int, optional
         1-based band number. Required for multi-band files.
     bbox : (xmin, ymin, xmax, ymax), optional
-        Window in CRS units; cells whose area meets the box are read.
+        Window in CRS units: every cell whose area meets the box is read (a
+        box inside one cell reads that cell). North-up and bottom-up grids
+        only; a rotated or sheared grid with a box is refused.
+    nodata : float, optional
+        Cells holding this value (as stored, before scale and offset) are
+        nodata, in addition to any nodata value the file declares.
+
+    The band's scale and offset (GDAL metadata) are applied: elevation =
+    stored value x scale + offset. ``Dem.meta`` records the band, box,
+    nodata, scale, offset and window read.
 
     Raises
     ------
     DemNotFoundError, NotARasterError, CorruptRasterError, BandError,
-    WindowError, NoValidCellsError
+    WindowError, RasterTypeError, NoValidCellsError, OptionError
         Each message names the file and the problem.
     """
     p = Path(path)
     with _open_raster(p) as ds:
-        band = _band(p, ds, band)
-        window = _window(p, ds, bbox)
-        arr = _read_band(p, ds, band, window)
-        transform = ds.window_transform(window) if window is not None else ds.transform
-        crs = ds.crs
-        units = ds.units[band - 1] if ds.units and ds.units[band - 1] else None
-        nodata_value = ds.nodatavals[band - 1]
-        dtype = np.dtype(ds.dtypes[band - 1])
+        h = _header(p, ds, band, bbox, nodata)
+        arr = _read_band(p, ds, h.band, h.window)
     data = np.asarray(arr.data)
     mask = np.ma.getmaskarray(arr)
-    small = dtype.kind == "f" and dtype.itemsize == 4 or dtype.kind in "iub" and dtype.itemsize <= 2
-    z = data.astype(np.float32 if small else np.float64)
+    if nodata is not None and _fits(nodata, data.dtype):
+        mask |= data == data.dtype.type(nodata)
+    meta = _meta(data, mask, h, nodata)
+    z = data.astype(np.float32 if h.value_bytes == 4 else np.float64)
+    del data, arr
+    if h.scale != 1.0:
+        z *= z.dtype.type(h.scale)
+    if h.offset != 0.0:
+        z += z.dtype.type(h.offset)
+    return Dem(z=z, nodata=mask, transform=h.transform, crs=h.crs, geographic=h.geographic,
+               linear_unit_m=h.linear_unit_m, vertical_units=h.vertical_units, source=str(p),
+               meta={**meta, "bbox": list(bbox) if bbox is not None else None})
+
+
+def _fits(value: float, dtype: np.dtype) -> bool:
+    """True when ``value`` can be held by ``dtype`` (always for floats)."""
+    if dtype.kind == "f":
+        return True
+    if dtype.kind == "b":
+        return value in (0, 1)
+    info = np.iinfo(dtype)
+    return float(value).is_integer() and info.min <= value <= info.max
+
+
+def _header(p: Path, ds, band: int | None, bbox, nodata) -> RasterHeader:
+    band = _band(p, ds, band)
+    dtype = np.dtype(ds.dtypes[band - 1])
+    if dtype.kind == "c":
+        raise RasterTypeError(f"{p}: band {band} holds complex numbers ({dtype}); cairn needs "
+                              "real elevations -- convert the band to real values first")
+    if nodata is not None and not (isinstance(nodata, (int, float, np.number))
+                                   and math.isfinite(nodata)):
+        raise OptionError(f"{{nodata}} must be a finite number, got {nodata}", "nodata")
+    window = _window(p, ds, bbox)
+    transform = ds.window_transform(window) if window is not None else ds.transform
+    crs = ds.crs
     geographic = bool(crs is not None and crs.is_geographic)
     unit_m = 1.0
     if crs is not None and not geographic:
         with contextlib.suppress(Exception):
             unit_m = float(crs.linear_units_factor[1])
-    return Dem(z=z, nodata=mask, transform=tuple(transform)[:6],
-               crs=crs.to_wkt() if crs is not None else None, geographic=geographic,
-               linear_unit_m=unit_m, vertical_units=units, source=str(p),
-               meta=_meta(data, mask, dtype, nodata_value, band))
+    small = dtype.kind == "f" and dtype.itemsize == 4 or dtype.kind in "iub" and dtype.itemsize <= 2
+    scale, offset = (float(v) for v in (ds.scales[band - 1], ds.offsets[band - 1]))
+    shape = (int(window.height), int(window.width)) if window is not None else (ds.height, ds.width)
+    return RasterHeader(
+        source=str(p), shape=shape, dtype=str(dtype), value_bytes=4 if small else 8,
+        transform=tuple(transform)[:6], crs=crs.to_wkt() if crs is not None else None,
+        geographic=geographic, linear_unit_m=unit_m,
+        vertical_units=ds.units[band - 1] if ds.units and ds.units[band - 1] else None,
+        band=band, scale=scale, offset=offset, nodata_value=ds.nodatavals[band - 1],
+        window=None if window is None else (int(window.col_off), int(window.row_off),
+                                            int(window.width), int(window.height)))
 
 
 def _open_raster(p: Path):
@@ -108,39 +182,72 @@ def _band(p: Path, ds, band: int | None) -> int:
 
 
 def _window(p: Path, ds, bbox):
-    from rasterio.windows import from_bounds
+    """The cells whose area meets the box, as a rasterio Window (None: all)."""
+    from rasterio.windows import Window
 
     if bbox is None:
         return None
-    xmin, ymin, xmax, ymax = bbox
-    l, b, r, t = ds.bounds
-    if not (xmin < xmax and ymin < ymax):
-        raise WindowError(f"{p}: bounding box {bbox} is empty (need xmin<xmax, ymin<ymax)")
-    if xmax <= l or xmin >= r or ymax <= b or ymin >= t:
-        raise WindowError(f"{p}: bounding box {bbox} lies outside the raster "
-                          f"(bounds {l:g}, {b:g}, {r:g}, {t:g})")
-    return from_bounds(max(xmin, l), max(ymin, b), min(xmax, r), min(ymax, t),
-                       ds.transform).round_offsets().round_lengths()
+    xmin, ymin, xmax, ymax = (float(v) for v in bbox)
+    if not all(map(math.isfinite, (xmin, ymin, xmax, ymax))) or not (xmin < xmax and ymin < ymax):
+        raise WindowError(f"{p}: bounding box {tuple(bbox)} is empty (need finite numbers with "
+                          "xmin<xmax, ymin<ymax)")
+    a, b, c, d, e, f = tuple(ds.transform)[:6]
+    if b != 0 or d != 0:
+        raise WindowError(f"{p}: the grid is rotated or sheared, so a {{bbox}} in CRS units is "
+                          "not a block of rows and columns; crop or warp the raster to a "
+                          "north-up grid first, or leave out {bbox}", "bbox")
+    c0, c1 = _cell_span((xmin - c) / a, (xmax - c) / a, ds.width)
+    r0, r1 = _cell_span((ymin - f) / e, (ymax - f) / e, ds.height)
+    if c1 <= c0 or r1 <= r0:
+        xs = sorted((c, c + a * ds.width))
+        ys = sorted((f, f + e * ds.height))
+        raise WindowError(f"{p}: bounding box {tuple(bbox)} lies outside the raster "
+                          f"(bounds {xs[0]:g}, {ys[0]:g}, {xs[1]:g}, {ys[1]:g})")
+    return Window(c0, r0, c1 - c0, r1 - r0)
+
+
+def _cell_span(u: float, v: float, n: int) -> tuple[int, int]:
+    """Cells ``[i0, i1)`` of ``0..n`` whose extent meets the interval between
+    fractional cell coordinates ``u`` and ``v``. A box edge within 1e-9 cells
+    of a cell edge lies on it; an interval inside one cell selects that cell."""
+    lo, hi = min(u, v), max(u, v)
+    if hi <= 1e-9 or lo >= n - 1e-9:
+        return 0, 0
+    i0 = math.floor(lo + 1e-9)
+    i1 = max(math.ceil(hi - 1e-9), i0 + 1)
+    return max(i0, 0), min(i1, n)
 
 
 def _read_band(p: Path, ds, band: int, window):
+    from rasterio.windows import Window
+
+    window = Window(*window) if window is not None else None
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             return ds.read(band, window=window, masked=True)
+    except MemoryError:
+        raise
     except Exception as exc:  # rasterio raises several classes for damaged files
         raise CorruptRasterError(f"{p}: pixels cannot be read, file truncated or damaged "
                                  f"({_short(exc)})") from None
 
 
-def _meta(data, mask, dtype, nodata_value, band) -> dict:
+def _meta(data, mask, h: RasterHeader, nodata) -> dict:
     nonfinite = int((~np.isfinite(data) & ~mask).sum()) if data.dtype.kind == "f" else 0
-    meta = {"dtype": str(dtype), "nodata_value": nodata_value, "nonfinite_cells": nonfinite,
-            "band": band}
+    meta = {"dtype": h.dtype, "nodata_value": h.nodata_value, "nonfinite_cells": nonfinite,
+            "band": h.band, "nodata": nodata, "scale": h.scale, "offset": h.offset,
+            "window": list(h.window) if h.window is not None else None}
     valid_vals = data[~mask & np.isfinite(data)] if data.size else data
-    if nodata_value is not None and np.isfinite(nodata_value) and valid_vals.size:
+    if h.nodata_value is not None and np.isfinite(h.nodata_value) and valid_vals.size:
         lo, hi = float(valid_vals.min()), float(valid_vals.max())
-        meta["nodata_in_range"] = bool(lo <= nodata_value <= hi)
+        meta["nodata_in_range"] = bool(lo <= h.nodata_value <= hi)
+    if h.nodata_value is None and nodata is None and valid_vals.size:
+        for value in SENTINELS:
+            count = int(np.count_nonzero(valid_vals == value)) if _fits(value, data.dtype) else 0
+            if count:
+                meta["undeclared_sentinel"] = {"value": value, "cells": count}
+                break
     return meta
 
 
@@ -222,10 +329,18 @@ def _outlet_vector(p: Path, dem: Dem):
     return gdf.drop(columns=gdf.geometry.name), xy
 
 
-def dem_warnings(dem: Dem) -> list[str]:
-    """Things about a DEM a user should be told once (not errors)."""
-    out = []
+def dem_warnings(dem: Dem) -> list[CairnWarning]:
+    """Things about a DEM a user should be told once (not errors); a message
+    may name a parameter (``{nodata}``), as errors do."""
+    out: list = []
     m = dem.meta
+    sentinel = m.get("undeclared_sentinel")
+    if sentinel:
+        v = sentinel["value"]
+        out.append(CairnWarning(
+            f"{dem.source}: {sentinel['cells']} cells hold {v:g}, a common nodata value, but the "
+            f"file declares no nodata; they are read as elevations -- if they are voids, "
+            f"declare them with {{nodata}} {v:g}", "nodata"))
     if m.get("nonfinite_cells"):
         out.append(f"{dem.source}: {m['nonfinite_cells']} NaN or infinite cells treated as nodata")
     if m.get("nodata_in_range"):
@@ -238,7 +353,7 @@ def dem_warnings(dem: Dem) -> list[str]:
     if dem.geographic:
         out.append(f"{dem.source}: geographic CRS; cell sizes in metres follow the latitude "
                    "of each row (WGS84)")
-    return out
+    return [w if isinstance(w, CairnWarning) else CairnWarning(w) for w in out]
 
 
 def _short(exc: BaseException) -> str:
@@ -254,42 +369,493 @@ def prepare_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bo
     Raises :class:`OutputError` when the path is an existing file, cannot be
     created or written, or when one of ``names`` exists and ``overwrite`` is
     False (the message lists them and names the ``overwrite`` parameter).
+    :func:`claim_outdir` does the same and also locks the folder.
     """
     out = Path(outdir)
+    _make_outdir(out)
+    _refuse_clash(out, names, overwrite)
+    return out
+
+
+def _make_outdir(out: Path) -> bool:
+    """Create ``out`` if missing (True when this call created it); refuse files
+    and folders that cannot be written."""
     if out.exists() and not out.is_dir():
         raise OutputError(f"{out}: exists and is a file, not a folder; choose another output folder")
+    existed = out.is_dir()
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise OutputError(f"{out}: cannot create the output folder ({exc.strerror})") from None
     if not os.access(out, os.W_OK | os.X_OK):
         raise OutputError(f"{out}: output folder is not writable; choose another output folder")
+    return not existed
+
+
+def _refuse_clash(out: Path, names: list[str], overwrite: bool) -> None:
     clash = [n for n in names if (out / n).exists()]
     if clash and not overwrite:
         more = f" and {len(clash) - 3} more" if len(clash) > 3 else ""
         raise OutputError(f"{out}: would overwrite {', '.join(clash[:3])}{more}; "
                           "pass {overwrite} to replace them", "overwrite")
-    return out
+
+
+# -- one run per output folder -------------------------------------------------------
+LOCK_NAME = ".cairn.lock"
+STAGING_PREFIX = ".cairn-staging-"
+PUBLISHING = ".publishing.json"  # inside a staging folder: its files are being moved into place
+_PART = re.compile(r"^\..+\.[a-z0-9_]{8}\.part(\.\w+)?$")  # atomic_path's temporary names
+_HELD: dict[str, list] = {}  # output folder (real path) -> [lock fd, depth] held by this process
 
 
 @contextlib.contextmanager
-def atomic_path(dest: str | os.PathLike):
-    """Yield a temporary path beside ``dest``; rename it onto ``dest`` on success.
+def claim_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bool):
+    """Hold an output folder for one run: create and check it, lock it, tidy it.
 
-    On any exception (or interrupt) the temporary file is removed and
+    While the block runs no other cairn run can write into the folder (a lock
+    file, released when the block ends or the process dies, even by kill -9).
+    Leftovers of a killed run are cleaned first: temporary files are removed,
+    and a set of outputs whose publication was cut short is completed. Then
+    ``names`` are checked as :func:`prepare_outdir` does. A folder this call
+    created is removed again if the run leaves it empty.
+
+    Raises
+    ------
+    OutputError
+        The folder cannot be used, is held by another run, or would be
+        overwritten without ``overwrite``.
+    """
+    out = Path(outdir)
+    created = _make_outdir(out)
+    try:
+        with hold_outdir(out):
+            clean_leftovers(out)
+            _refuse_clash(out, names, overwrite)
+            yield out
+    finally:
+        if created:
+            with contextlib.suppress(OSError):
+                out.rmdir()  # only when empty
+
+
+@contextlib.contextmanager
+def hold_outdir(outdir: str | os.PathLike):
+    """Lock ``outdir`` for this process (re-entrant); another process holding
+    it makes this raise :class:`OutputError` at once."""
+    out = Path(outdir)
+    key = os.path.realpath(out)
+    held = _HELD.get(key)
+    if held is not None:
+        held[1] += 1
+        try:
+            yield out
+        finally:
+            held[1] -= 1
+        return
+    fd = _lock(out)
+    _HELD[key] = [fd, 1]
+    try:
+        yield out
+    finally:
+        del _HELD[key]
+        if fd is not None:
+            with contextlib.suppress(OSError):
+                os.unlink(out / LOCK_NAME)  # while still holding it
+            os.close(fd)
+
+
+def _lock(out: Path) -> int | None:
+    """An exclusive ``flock`` on ``out/.cairn.lock`` (None where flock is missing
+    or the file system does not support it)."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        return None
+    path = out / LOCK_NAME
+    for _ in range(10):
+        try:
+            fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise OutputError(f"{out}: cannot create its lock file ({exc.strerror}); choose "
+                              "another output folder") from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            pid = os.read(fd, 32).decode(errors="replace").strip()
+            os.close(fd)
+            who = f" (process {pid})" if pid.isdigit() else ""
+            raise OutputError(f"{out}: another cairn run is writing to this folder{who}; wait "
+                              "for it to finish or choose another output folder") from None
+        except OSError:  # a file system without locks (some network mounts): go on unlocked
+            os.close(fd)
+            with contextlib.suppress(OSError):
+                os.unlink(path)
+            return None
+        try:
+            same = os.fstat(fd).st_ino == os.stat(path).st_ino
+        except FileNotFoundError:
+            same = False  # the previous holder removed it after we opened it
+        if same:
+            with contextlib.suppress(OSError):
+                os.ftruncate(fd, 0)
+                os.write(fd, f"{os.getpid()}\n".encode())
+            return fd
+        os.close(fd)
+    raise OutputError(f"{out}: cannot lock the output folder; choose another output folder")
+
+
+def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
+    """Tidy what a killed run left in ``outdir`` (call while holding it).
+
+    Temporary files of :func:`atomic_path` are removed; a staging folder is
+    removed, after moving its files into place when its publication had
+    begun (so the folder ends with the complete new set, never a mix).
+    Returns the names removed or completed.
+    """
+    out = Path(outdir)
+    done = []
+    for p in sorted(out.iterdir()):
+        if p.is_dir() and p.name.startswith(STAGING_PREFIX):
+            marker = p / PUBLISHING
+            if marker.is_file():
+                with contextlib.suppress(OSError, ValueError):
+                    for name in json.loads(marker.read_text()):
+                        if (p / name).is_file():
+                            os.replace(p / name, out / name)
+                            done.append(name)
+            shutil.rmtree(p, ignore_errors=True)
+            done.append(p.name)
+        elif p.is_file() and _PART.match(p.name):
+            with contextlib.suppress(OSError):
+                p.unlink()
+                done.append(p.name)
+    return done
+
+
+@contextlib.contextmanager
+def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ()):
+    """Yield a staging folder inside ``outdir``; publish its files as a set.
+
+    Write every file of a run into the staging folder; when the block ends
+    without error the files are moved into ``outdir`` together (Ctrl-C and
+    SIGTERM wait for the few renames), earlier files matching a glob pattern
+    in ``replaces`` that the new set does not include are removed, and the
+    staging folder goes. On any error or interrupt the staging folder is
+    removed and ``outdir`` keeps its previous files untouched. Holds the
+    folder's lock (:func:`hold_outdir`) throughout.
+    """
+    out = Path(outdir)
+    _make_outdir(out)
+    with hold_outdir(out):
+        try:
+            stage = Path(tempfile.mkdtemp(prefix=STAGING_PREFIX, dir=out))
+        except OSError as exc:
+            raise _write_error(out, exc) from None
+        try:
+            yield stage
+            _publish(stage, out, replaces)
+        finally:
+            shutil.rmtree(stage, ignore_errors=True)
+
+
+def _publish(stage: Path, out: Path, replaces) -> None:
+    names = sorted(p.name for p in stage.iterdir())
+    try:
+        _sync_dir(stage)
+        with _signals_held():
+            marker = stage / PUBLISHING
+            with open(marker, "w") as fh:
+                fh.write(json.dumps(names))
+                fh.flush()
+                os.fsync(fh.fileno())
+            for pattern in replaces:
+                for old in out.glob(pattern):
+                    if old.name not in names and old.is_file():
+                        old.unlink()
+            for name in names:
+                os.replace(stage / name, out / name)
+            _sync_dir(out)
+    except OSError as exc:
+        raise _write_error(out, exc) from None
+
+
+@contextlib.contextmanager
+def _signals_held():
+    """Ctrl-C and SIGTERM wait until the block is done (main thread only)."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught: list[int] = []
+    sigs = (signal.SIGINT, signal.SIGTERM)
+    previous = {s: signal.signal(s, lambda signum, frame: caught.append(signum)) for s in sigs}
+    try:
+        yield
+    finally:
+        for s, h in previous.items():
+            signal.signal(s, h)
+        for s in dict.fromkeys(caught):
+            signal.raise_signal(s)
+
+
+def _sync_dir(folder: Path) -> None:
+    with contextlib.suppress(OSError):  # not every file system syncs folders
+        fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+# -- checked writes ----------------------------------------------------------------------
+_DISK_FULL_ERRNO = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG}
+_DISK_FULL_TEXT = ("no space left", "disk is full", "disk full", "quota exceeded",
+                   "file too large")
+_IO_LIBRARIES = ("rasterio", "pyogrio", "fiona", "sqlite3", "zipfile", "PIL")
+_IO_FAILURE = re.compile(r"no space|disk|quota|too large|write|writing|i/?o error|seek|flush|"
+                         r"truncat|cannot open|read error", re.IGNORECASE)
+
+
+@contextlib.contextmanager
+def atomic_path(dest: str | os.PathLike, *, bands: int | None = None):
+    """Yield a temporary path beside ``dest``; check it and rename it onto ``dest``.
+
+    After the block the file is checked before it takes ``dest``'s name:
+    errors GDAL reported while writing and text C libraries printed on the
+    process's error stream are raised; the file must exist, be non-empty and
+    read back (GeoTIFF: every block of every band, and ``bands`` bands when
+    given; GeoPackage: its layers; PNG: complete; JSON: parses; npz: every
+    member passes its CRC). Then it is fsynced and renamed, and the folder
+    fsynced. On any error or interrupt the temporary file is removed and
     ``dest`` is untouched.
+
+    Raises
+    ------
+    OutputError
+        One line naming the file: disk full (no space, quota, file size
+        limit), or the write failed or does not read back.
     """
     dest = Path(dest)
-    fd, tmp = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".part" + dest.suffix,
-                               dir=dest.parent)
-    os.close(fd)
-    os.unlink(tmp)
+    tmp = None
     try:
-        yield Path(tmp)
+        fd, name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".part" + dest.suffix,
+                                    dir=dest.parent)
+        os.close(fd)
+        os.unlink(name)
+        tmp = Path(name)
+        failed = None
+        with _NativeErrors() as seen:
+            try:
+                yield tmp
+            except Exception as exc:
+                failed = exc
+        if failed is not None:
+            raise _write_error(dest, failed, seen.text()) from None
+        problem = seen.failure() or _verify(tmp, bands)
+        if problem:
+            raise _write_error(dest, problem, seen.text())
+        seen.replay()
+        _fsync_file(tmp)
         os.replace(tmp, dest)
+        _sync_dir(dest.parent)
+    except OSError as exc:
+        if isinstance(exc, OutputError):
+            raise
+        raise _write_error(dest, exc) from None
     finally:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
+        if tmp is not None:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+
+
+def _write_error(dest: Path, problem, native: str = "") -> BaseException:
+    """The one-line error for a failed write; ``problem`` is an exception or text.
+
+    Exceptions that are not I/O (a bug) come back unchanged."""
+    if isinstance(problem, OutputError):
+        return problem
+    if isinstance(problem, BaseException):
+        lib = type(problem).__module__.split(".")[0]
+        if not isinstance(problem, (OSError, MemoryError)) and lib not in _IO_LIBRARIES:
+            return problem
+        if isinstance(problem, MemoryError):
+            return problem
+        why = problem.strerror if isinstance(problem, OSError) and problem.strerror \
+            else _short(problem)
+        full = getattr(problem, "errno", None) in _DISK_FULL_ERRNO
+        text = f"{problem} {native}".lower()
+    else:
+        why, full, text = str(problem), False, f"{problem} {native}".lower()
+    folder = dest if dest.is_dir() else dest.parent
+    free = _free_bytes(folder)
+    # a library may report a full disk as something else (sqlite: "no such table")
+    full = full or any(t in text for t in _DISK_FULL_TEXT) or (free is not None and free < 2**20)
+    if folder.name.startswith(STAGING_PREFIX):  # name what the user chose, not our staging
+        folder = folder.parent
+        dest = folder / dest.name
+    if full:
+        if not any(t in why.lower() for t in _DISK_FULL_TEXT) and free is not None:
+            why = f"{free // 1024} kB left"  # rather than the library's own words
+        return OutputError(f"{folder}: disk full while writing {dest.name} ({why}); free some "
+                           "space or choose another output folder")
+    return OutputError(f"{dest}: could not be written ({why})")
+
+
+def _free_bytes(folder: Path) -> int | None:
+    try:
+        st = os.statvfs(folder)
+    except (OSError, AttributeError):
+        return None
+    return st.f_bavail * st.f_frsize
+
+
+class _NativeErrors:
+    """Collects, while a file is written, the errors GDAL reports through
+    rasterio's log and the text C libraries print on file descriptor 2
+    (libtiff reports a full disk there, past Python). :meth:`replay` passes
+    the text on when the write succeeded."""
+
+    def __enter__(self):
+        import logging
+        import sys
+
+        self.records: list[str] = []
+        records = self.records
+
+        class Handler(logging.Handler):
+            def emit(self, record):
+                msg = record.getMessage()
+                # GDAL reports some harmless failures too (statistics of an all-nodata
+                # band); only input/output errors mean the file is not what was written
+                if "signalled an error" in msg and _IO_FAILURE.search(msg):
+                    records.append(msg)
+
+        self.logger = logging.getLogger("rasterio._env")
+        self.handler = Handler(logging.INFO)
+        self.level = self.logger.level
+        self.logger.addHandler(self.handler)
+        if not self.logger.isEnabledFor(logging.INFO):
+            self.logger.setLevel(logging.INFO)
+        self.captured = b""
+        self.saved = self.sink = None
+        with contextlib.suppress(OSError, AttributeError, ValueError):
+            sys.stderr.flush()
+            self.sink = os.memfd_create("cairn-stderr")  # in memory: works on a full disk
+            self.saved = os.dup(2)
+            os.dup2(self.sink, 2)
+        return self
+
+    def __exit__(self, *exc):
+        import sys
+
+        with contextlib.suppress(OSError, ValueError, AttributeError):
+            sys.stderr.flush()
+        if self.saved is not None:
+            os.dup2(self.saved, 2)
+            os.close(self.saved)
+            with contextlib.suppress(OSError):
+                os.lseek(self.sink, 0, os.SEEK_SET)
+                self.captured = os.read(self.sink, 1 << 16)
+        if self.sink is not None:
+            os.close(self.sink)
+        self.logger.removeHandler(self.handler)
+        self.logger.setLevel(self.level)
+        return False
+
+    def replay(self) -> None:
+        """Pass captured text on to file descriptor 2 (not ours to swallow)."""
+        if self.captured:
+            with contextlib.suppress(OSError):
+                os.write(2, self.captured)
+
+    def text(self) -> str:
+        return self.captured.decode(errors="replace").strip()
+
+    def failure(self) -> str | None:
+        """The first error reported while writing, or None."""
+        if self.records:
+            msg = self.records[0]
+            return msg.split("msg=", 1)[-1].strip("'\"") if "msg=" in msg else msg
+        text = self.text()
+        if any(t in text.lower() for t in _DISK_FULL_TEXT):
+            return text.splitlines()[0]
+        return None
+
+
+def _verify(tmp: Path, bands: int | None) -> str | None:
+    """None when the written file reads back, else what is wrong with it."""
+    try:
+        size = tmp.stat().st_size
+    except FileNotFoundError:
+        return "nothing was written"
+    if size == 0:
+        return "the file is empty"
+    check = _CHECKS.get(tmp.suffix.lower())
+    try:
+        return check(tmp, bands) if check is not None else None
+    except MemoryError:
+        raise
+    except Exception as exc:  # each reader raises its own classes for a bad file
+        return f"the written file does not read back: {_short(exc)}"
+
+
+def _check_raster(tmp: Path, bands: int | None) -> str | None:
+    import rasterio
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with rasterio.open(tmp) as ds:
+            if bands is not None and ds.count != bands:
+                return f"the written file has {ds.count} bands, not {bands}"
+            for b in range(1, ds.count + 1):
+                for _, window in ds.block_windows(b):
+                    ds.read(b, window=window)
+    return None
+
+
+def _check_gpkg(tmp: Path, bands) -> str | None:
+    import pyogrio
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for layer, _ in pyogrio.list_layers(tmp):
+            pyogrio.read_info(tmp, layer=layer)
+    return None
+
+
+def _check_png(tmp: Path, bands) -> str | None:
+    with open(tmp, "rb") as fh:
+        head = fh.read(8)
+        fh.seek(-12, os.SEEK_END)
+        tail = fh.read(12)
+    return None if head == b"\x89PNG\r\n\x1a\n" and tail[4:8] == b"IEND" else "incomplete PNG"
+
+
+def _check_json(tmp: Path, bands) -> str | None:
+    json.loads(tmp.read_text())
+    return None
+
+
+def _check_npz(tmp: Path, bands) -> str | None:
+    import zipfile
+
+    with zipfile.ZipFile(tmp) as zf:
+        bad = zf.testzip()
+    return f"member {bad} fails its CRC check" if bad else None
+
+
+_CHECKS = {".tif": _check_raster, ".tiff": _check_raster, ".gpkg": _check_gpkg,
+           ".png": _check_png, ".json": _check_json, ".npz": _check_npz}
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
 
 
 def write_json(dest: str | os.PathLike, obj: dict) -> None:
@@ -344,7 +910,7 @@ def write_layer(dest: str | os.PathLike, dem: Dem, estimate: np.ndarray, se: np.
     e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
     s = np.where(dem.nodata, np.nan, se).astype(np.float32)
     suffix = f"; {note}" if note else ""
-    with atomic_path(dest) as tmp, _cog_staging(tmp):
+    with atomic_path(dest, bands=2) as tmp, _cog_staging(tmp):
         with _open_cog(tmp, dem) as ds:
             ds.write(e, 1)
             ds.write(s, 2)
@@ -448,7 +1014,92 @@ def save_npz(dest: str | os.PathLike, **arrays) -> None:
             os.fsync(fh.fileno())
 
 
-def load_npz(path: str | os.PathLike) -> dict:
-    """Load an ``.npz`` with ``allow_pickle=False`` into a dict of arrays."""
-    with np.load(path, allow_pickle=False) as f:
-        return {k: f[k] for k in f.files}
+def load_npz(path: str | os.PathLike, keys: tuple[str, ...] | None = None) -> dict:
+    """Load an ``.npz`` with ``allow_pickle=False`` into a dict of arrays.
+
+    ``keys`` limits the members read (all by default).
+
+    Raises
+    ------
+    FileNotFoundError
+        No such file.
+    OSError
+        The file cannot be read (permissions, a folder).
+    ValueError
+        Anything that is not a complete archive of plain arrays, in one line
+        saying what: empty, not an npz archive, a bare ``.npy`` array, pickled
+        objects (never loaded), a missing member, a damaged archive.
+    """
+    p = Path(path)
+    with open(p, "rb") as fh:
+        head = fh.read(6)
+    if not head:
+        raise ValueError("the file is empty")
+    if not head.startswith(b"PK\x03\x04"):
+        bare = head.startswith(b"\x93NUMPY")
+        raise ValueError("a bare .npy array, not an npz archive" if bare else "not an npz archive")
+    try:
+        with np.load(p, allow_pickle=False) as f:
+            return {k: f[k] for k in (f.files if keys is None else keys)}
+    except MemoryError:
+        raise
+    except KeyError as exc:
+        raise ValueError(f"member {exc.args[0]!r} is missing") from None
+    except ValueError as exc:
+        if "pickle" in str(exc).lower() or "object arrays" in str(exc).lower():
+            raise ValueError("holds pickled (object) arrays, which cairn never loads") from None
+        raise ValueError(f"truncated or damaged archive: {_short(exc)}") from None
+    except Exception as exc:  # zipfile, zlib and numpy raise many classes for damage
+        raise ValueError(f"truncated or damaged archive: {_short(exc)}") from None
+
+
+def same_file(a: str | os.PathLike, b: str | os.PathLike) -> bool:
+    """True when two paths name one file (the same path, or links to one file)."""
+    if os.path.realpath(a) == os.path.realpath(b):
+        return True
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return False
+
+
+def file_exists(path: str | os.PathLike) -> bool:
+    """True when ``path`` is an existing file."""
+    return Path(path).is_file()
+
+
+def remove_file(path: str | os.PathLike) -> None:
+    """Remove one file (callers decide it is theirs to remove)."""
+    os.unlink(path)
+
+
+def check_file_folder(path: str | os.PathLike) -> Path:
+    """Make sure a file can be created at ``path`` before any work is done.
+
+    Creates (and removes) a probe file beside it, and removes temporary files
+    :func:`atomic_path` left there for this name by a killed run.
+
+    Raises
+    ------
+    OutputError
+        The folder does not exist, is not writable, or ``path`` is a folder.
+    """
+    p = Path(path)
+    folder = p.parent
+    if p.is_dir():
+        raise OutputError(f"{p}: is a folder; give a file name")
+    if not folder.is_dir():
+        raise OutputError(f"{p}: the folder {folder} does not exist; create it or choose "
+                          "another path")
+    try:
+        fd, probe = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".probe", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise OutputError(f"{p}: cannot write in {folder} ({exc.strerror}); choose another "
+                          "folder") from None
+    for q in folder.glob(f".{glob.escape(p.name)}.*.part*"):
+        if _PART.match(q.name):
+            with contextlib.suppress(OSError):
+                q.unlink()
+    return p

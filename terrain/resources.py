@@ -1,14 +1,64 @@
-"""Memory guard: refuse runs that would not fit, before allocating."""
+"""Memory guard: judge, from the DEM's header, whether a run fits before it starts.
+
+:func:`estimate_run` counts what a run holds at its peak, in every process it
+uses, from the grid's size and types (:func:`terrain.io.read_header`; the
+pixels are not read), the job's own bytes per cell
+(:meth:`~terrain.runner.protocols.Job.memory_per_cell`: its accumulators and
+finished layers in the accumulating process, one realisation in a worker),
+its per-cell chunk counts (``new_counts``), the error model and the
+execution:
+
+- a process's own footprint (interpreter and libraries; measured);
+- reading: the band as stored, its mask and the elevations;
+- running: the DEM, the workers' copy of it, the job's figure, one
+  realisation's work where realisations run, the chunk results in flight
+  (at most two per worker, see :mod:`terrain.runner.backends`) and the log;
+- finishing: the same while the layers' means and standard errors are
+  computed;
+- writing: the DEM, the job's figure, summaries, GeoTIFF encoding and the
+  quick-look figure (measured per cell; a quick-look draws at most
+  :data:`~terrain.outputs.mapframe.QUICKLOOK_CELLS` pooled cells of a bigger grid).
+
+The peak is the largest of these phases, plus each worker process's own
+footprint and arrays. ``cairn inspect`` prints the same figure the guard
+compares with the memory available.
+"""
 
 from __future__ import annotations
 
-from .dem import Dem
+import math
+from dataclasses import dataclass
+
+from .dem import Dem, RasterHeader
 from .errors import MemoryGuardError
 from .io import available_memory
+from .noise import ErrorModel
+from .outputs.mapframe import QUICKLOOK_CELLS
+from .runner import Execution
+from .runner.protocols import Job
 
-__all__ = ["available_bytes", "estimate_bytes", "check_memory", "describe_memory"]
+__all__ = ["MemoryEstimate", "estimate_run", "check_memory", "describe_memory", "read_bytes",
+           "available_bytes", "PROCESS_BYTES", "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR"]
 
-LOG_BYTES_PER_PAIR = 21  # pair log entry on grids below 2**31 cells
+MiB = 2 ** 20
+# Resident size of the processes before their arrays (interpreter, numpy, GDAL,
+# numba's compiled kernels, matplotlib, GeoPandas), measured with cairn's own
+# runs on Linux x86-64, Python 3.11 (the peak of small runs, rounded up).
+PROCESS_BYTES = 400 * MiB
+WORKER_PROCESS_BYTES = 190 * MiB
+# Bytes per cell (measured or counted, as noted).
+READ_SCRATCH = 4  # nodata mask and boolean temporaries while reading (counted)
+CHECKSUM_SCRATCH = 13  # float64 copy of the DEM while it is hashed (counted)
+CONTEXT = 4  # the float32 DEM the realisations read (counted)
+MOMENTS_SCRATCH = 24  # float64 temporaries of a layer's mean and standard error (counted)
+SUMMARY_SCRATCH = 100  # feature or catchment summaries and GeoTIFF encoding (measured)
+BLOCKS_SCRATCH = 32  # the quick-look's float64 copy of a layer and its padded copy while it is
+#                      pooled, or the hillshade's nearest-cell indices (counted)
+QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, rendering (measured)
+SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run
+FIELD_DRAW = 24  # correlated error: a draw's float64 field and noise tiles, float32 copy (counted)
+LOG_BYTES_PER_PAIR = 21  # one logged pair on grids below 2**31 cells (counted)
+PAIRS_PER_REALISATION = 2000  # assumed; the run re-checks its log as it grows
 
 
 def available_bytes() -> int:
@@ -16,39 +66,139 @@ def available_bytes() -> int:
     return available_memory()
 
 
-def estimate_bytes(dem: Dem, job, *, workers: int, realisations: int,
-                   pairs_per_real: int = 2000) -> int:
-    """Bytes a run needs: each worker's realisation, the parent's accumulators and log.
+@dataclass(frozen=True)
+class MemoryEstimate:
+    """Bytes a run holds at its peak.
 
-    Per cell, the job states what the accumulating process and each worker
-    hold (:meth:`memory_per_cell`); the parent also keeps about 21 bytes per
-    logged pair (an assumed ``pairs_per_real`` per realisation).
+    Attributes
+    ----------
+    total : int
+        All processes together (what the guard compares).
+    parent : int
+        The process that reads, accumulates and writes.
+    worker : int
+        Each worker process (0 when realisations run in the parent).
+    workers : int
+        Worker processes on this machine.
+    cells : int
+    per_cell : dict
+        Bytes per cell of each phase of the parent and of a worker.
     """
-    cells = dem.z.size
-    parent, worker = job.memory_per_cell(dem.z.itemsize)
-    return workers * worker * cells + parent * cells + \
-        LOG_BYTES_PER_PAIR * pairs_per_real * realisations
+
+    total: int
+    parent: int
+    worker: int
+    workers: int
+    cells: int
+    per_cell: dict
+
+    def describe(self) -> str:
+        """One line, e.g. ``~1.20 GiB = 0.60 GiB + 2 workers x 0.30 GiB (250 bytes
+        per cell at the peak)``."""
+        text = f"~{_gib(self.total)}"
+        if self.workers:
+            text += f" = {_gib(self.parent)} + {self.workers} workers x {_gib(self.worker)}"
+        peak = max(v for k, v in self.per_cell.items() if k != "worker")
+        return text + f" ({peak:,} bytes per cell at the peak)"
 
 
-def check_memory(dem: Dem, job, *, workers: int, realisations: int, force: bool = False) -> int:
-    """Estimated bytes of the run; raises :class:`MemoryGuardError` when they exceed
-    the available memory (unless ``force``)."""
-    need = estimate_bytes(dem, job, workers=workers, realisations=realisations)
+def _gib(n: int) -> str:
+    return f"{n / 2**30:.2f} GiB" if n < 100 * 2**30 else f"{n / 2**30:,.0f} GiB"
+
+
+def _grid(grid) -> tuple[int, int, int]:
+    """(cells, bytes per elevation once read, bytes per stored value) of a
+    :class:`~terrain.dem.RasterHeader` or a :class:`~terrain.dem.Dem`."""
+    if hasattr(grid, "value_bytes"):
+        return grid.cells, grid.value_bytes, grid.stored_bytes
+    return int(grid.z.size), int(grid.z.itemsize), int(grid.z.itemsize)
+
+
+def read_bytes(grid: RasterHeader | Dem) -> int:
+    """Bytes the read of the DEM itself needs at its peak (``inspect``)."""
+    cells, value, stored = _grid(grid)
+    return (2 * stored + value + READ_SCRATCH) * cells
+
+
+def _planned(ex) -> int:
+    """Realisations the log is planned for: all of them, or with a target
+    standard error those up to the first stopping check (planned lazily: the
+    run watches its log as it grows)."""
+    if ex.target_se is None:
+        return ex.realisations
+    first = max(ex.check_every, -(-ex.min_realisations // ex.check_every) * ex.check_every)
+    return min(ex.realisations, first)
+
+
+def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
+                 model: ErrorModel | None = None, runs: int = 1,
+                 quicklook: bool = True) -> MemoryEstimate:
+    """The bytes a run of ``job`` on ``grid`` needs at its peak, in every process.
+
+    Parameters
+    ----------
+    grid : RasterHeader or Dem
+        The grid read (a header is enough: the pixels are not needed).
+    job : a :class:`~terrain.runner.protocols.Job`
+        Its ``memory_per_cell`` and ``new_counts`` are read.
+    ex : Execution, optional
+        Workers, backend and realisations (default: ``Execution()``).
+    model : ErrorModel, optional
+        A spatially correlated model adds its circulant-embedding arrays.
+    runs : int
+        Runs one after another (a sweep keeps two layers of each).
+    quicklook : bool
+        Whether the run draws a quick-look map of the grid (a sweep does not).
+    """
+    ex = ex if ex is not None else Execution()
+    cells, value, stored = _grid(grid)
+    parent_job, worker_job = job.memory_per_cell(value)
+    counts = sum(a.nbytes for a in job.new_counts(1).values())  # one chunk result per cell
+    kept, draw = 0, FIELD_DRAW if model is not None and model.correlated else 0
+    backend = ex.resolved_backend
+    local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
+    dem = value + 1
+    held = dem + CONTEXT + kept + parent_job + SWEEP_KEPT * (runs - 1)
+    if backend == "serial":
+        running = held + max(CHECKSUM_SCRATCH, worker_job + draw)
+    else:  # results in flight, one more being unpickled, the DEM pickled for a worker
+        running = held + max(CHECKSUM_SCRATCH, (2 * ex.n_workers + 1) * counts + CONTEXT + kept)
+    drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)  # a big grid is drawn in blocks
+    phases = {"read": 2 * stored + value + READ_SCRATCH, "running": running,
+              "finishing": held + MOMENTS_SCRATCH,
+              "writing": dem + parent_job + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
+              + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
+    worker_cell = CONTEXT + kept + worker_job + draw + 2 * counts if local else 0
+    log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
+    parent = PROCESS_BYTES + max(phases.values()) * cells + log
+    worker = WORKER_PROCESS_BYTES + worker_cell * cells if local else 0
+    return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
+                          workers=local, cells=cells,
+                          per_cell={**phases, "worker": worker_cell})
+
+
+def check_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
+                 model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True,
+                 force: bool = False) -> MemoryEstimate:
+    """The run's :func:`estimate_run`; raises :class:`MemoryGuardError` when it
+    exceeds the memory available (unless ``force``)."""
+    est = estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook)
     have = available_bytes()
-    if need > have and not force:
-        _, worker = job.memory_per_cell(dem.z.itemsize)
+    if est.total > have and not force:
+        source = getattr(grid, "source", "the DEM")
         raise MemoryGuardError(
-            f"{dem.source}: the run needs about {need / 2**30:.1f} GiB "
-            f"({worker} bytes per cell per worker x {workers} workers) but "
-            f"{have / 2**30:.1f} GiB is available; use {{bbox}} for a smaller window, fewer "
+            f"{source}: the run needs {est.describe()} for {est.cells:,} cells but "
+            f"{_gib(have)} is available; use {{bbox}} for a smaller window, fewer "
             "{workers}, or {force}", "bbox", "workers", "force")
-    return need
+    return est
 
 
-def describe_memory(dem: Dem, job) -> str:
-    """One line on the memory a run of ``job`` on ``dem`` needs (for ``inspect``)."""
-    cells = dem.z.size
-    parent, worker = job.memory_per_cell(dem.z.itemsize)
-    return (f"~{worker} bytes per cell per worker = {worker * cells / 2**20:.1f} MiB per worker, "
-            f"plus {parent} bytes per cell = {parent * cells / 2**20:.1f} MiB in the accumulating "
-            "process")
+def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
+                    model: ErrorModel | None = None) -> str:
+    """One line on the memory a run of ``job`` needs: the guard's own figure."""
+    ex = ex if ex is not None else Execution()
+    est = estimate_run(grid, job, ex, model=model)
+    parent, worker = job.memory_per_cell(_grid(grid)[1])
+    return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
+            f"{_gib(available_bytes())} available); the job itself: ~{worker} bytes per cell "
+            f"per worker, {parent} in the accumulating process")

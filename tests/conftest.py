@@ -81,8 +81,9 @@ def write_tif(path, z, *, crs="EPSG:32633", transform=None, nodata=None, dtype=N
 @pytest.fixture
 def cairn(monkeypatch):
     """Run the cairn CLI in-process; returns (exit code, stdout, stderr)."""
-    from cairn_cli.main import run
     from click.testing import CliRunner
+
+    from cairn_cli.main import run
 
     def invoke(*args):
         runner = CliRunner()

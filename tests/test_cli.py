@@ -200,7 +200,7 @@ def test_demo_layers_are_valid_cogs(demo_out):
 
 # -- one option set for every command (the structure issue) --------------------------
 SHARED = {"--rmse", "--le90", "--a95", "--kernel", "--range", "--covariance", "--nugget",
-          "--band", "--bbox", "--realisations", "--seed", "--workers", "--scheduler",
+          "--band", "--bbox", "--nodata", "--realisations", "--seed", "--workers", "--scheduler",
           "--checkpoint", "--resume", "--target-se", "--overwrite", "--quiet", "--force"}
 ATTRIBUTION = {"--threshold-jitter", "--weight", "--connectivity"}
 

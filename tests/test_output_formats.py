@@ -96,8 +96,9 @@ def check_cog(path) -> tuple[np.ndarray, np.ndarray]:
 @pytest.fixture(scope="module")
 def runs(tmp_path_factory):
     """peaks and depressions from the CLI on a raster big enough for overviews, with a hole."""
-    from cairn_cli.main import cli
     from click.testing import CliRunner
+
+    from cairn_cli.main import cli
 
     tmp = tmp_path_factory.mktemp("formats")
     z = np.round(smooth_terrain((300, 270), seed=8)).astype(np.int16)

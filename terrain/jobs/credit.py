@@ -30,7 +30,10 @@ proportion is the Monte Carlo standard error sqrt(p(1-p)/N).
 Memory in the accumulating process while realisations come in: the logs
 (25 bytes per counted pair) and, for depressions, 4 bytes per cell of
 ponding counts; the credit layers are summed from the log at the end
-(:func:`credit_layers`, 52 bytes per cell of the window summed).
+(:func:`credit_layers`, 48 bytes per cell of the window summed: 2 x 2
+float64 moments, 1 int32 count, scratch int32 + float64) into the finished
+layers, 16 bytes per cell each (96 for peaks, 116 for depressions in all;
+:meth:`CreditJob.memory_per_cell`).
 """
 
 from __future__ import annotations
@@ -179,11 +182,13 @@ class CreditJob:
 
     def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
         """Accumulating process: the layers summed from the log at the end (4
-        float64 moments, 1 int32 count, scratch float64 + int32) and the int32
-        ponding count of depressions. Worker: the DEM copy,
-        noise (4), the perturbed copy and the key copy the pairing sorts on,
-        basin labels (4), validity (1), region labels (4), ponding counts (4)."""
-        parent = 48 + (4 if self.kind == "depressions" else 0)
+        float64 moments, 1 int32 count, scratch float64 + int32), the int32
+        ponding count of depressions, and the finished layers (a float64
+        estimate and standard error each, 3 or 4 layers). Worker: the DEM
+        copy, noise (4), the perturbed copy and the key copy the pairing sorts
+        on, basin labels (4), validity (1), region labels (4), ponding counts
+        (4)."""
+        parent = 48 + (4 if self.kind == "depressions" else 0) + 16 * len(self.layers)
         return parent, 3 * value_bytes + 17
 
 

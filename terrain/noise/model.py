@@ -151,6 +151,10 @@ class ErrorModel:
             raise OptionError(f"{{range_m}} must be >= 0 metres, got {self.range_m}", "range_m")
         if not 0 <= self.nugget <= 1:
             raise OptionError(f"{{nugget}} is a share between 0 and 1, got {self.nugget}", "nugget")
+        if self.nugget > 0 and self.range_m == 0:
+            raise OptionError("{nugget} is the independent share of spatially correlated error; "
+                              "give its {range_m} too (without one, all of the error is "
+                              "independent already)", "nugget", "range_m")
         if self.draw not in DRAWS:
             raise OptionError(f"{{draw}} must be one of {', '.join(DRAWS)}, got {self.draw!r}",
                               "draw")

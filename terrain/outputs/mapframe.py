@@ -57,6 +57,7 @@ __all__ = ["MapFrame", "PALETTES", "OUTLINE_COLOURS", "INK", "palette", "hillsha
 FONT_PT = 9.0  # the smallest text on any figure, at the saved size
 DPI = 120
 MAX_PIXELS = 1600  # cells a side drawn at most; larger rasters are pooled
+QUICKLOOK_CELLS = MAX_PIXELS ** 2  # so a map draws at most this many (pooled) cells
 INK = "#1a1a1a"
 NODATA = "#ece6da"
 HALO_PT = 2.6
@@ -318,6 +319,10 @@ class MapFrame:
             return False
         cs.set_label(label)
         cs.set(path_effects=_halo(max(widths) + 1.6))
+        # the lines are drawn; matplotlib's contour generator would keep its own
+        # float64 copies of the grid (~28 bytes per drawn cell per contoured layer)
+        if hasattr(cs, "_contour_generator"):
+            cs._contour_generator = None
         self.handles.append(_line_key(colour, label, lw=widths[0], ls=styles[0]))
         return True
 

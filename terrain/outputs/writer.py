@@ -1,5 +1,10 @@
 """Writing a finished run: GeoTIFF layers, tables, figures and provenance.
 
+A run's files are published as a set: each writer writes into a staging
+folder inside the output folder and :func:`terrain.io.staged_outputs` moves
+the complete set into place, so a failed or interrupted write leaves the
+previous set (or nothing), never a mixture.
+
 The writer only writes: summaries (feature tables, catchment tables) come
 in as data frames from :mod:`terrain.summary`, figures come from
 :mod:`terrain.outputs.plot`, and every file goes through :mod:`terrain.io`
@@ -14,13 +19,23 @@ from __future__ import annotations
 
 import contextlib
 import datetime as _dt
+import functools
 import platform
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 
-from ..io import file_sha256, write_csv, write_figure, write_frames, write_json, write_layer
+from ..io import (
+    file_sha256,
+    staged_outputs,
+    write_csv,
+    write_figure,
+    write_frames,
+    write_json,
+    write_layer,
+)
 from ..jobs.credit import LOG_FIELDS
 from ..layers import DRAINAGE_NOTE, spec, units
 from ..summary.catchments import FRAME_COLUMN_KINDS
@@ -33,7 +48,30 @@ from .manifest import MANIFEST, VECTOR_LAYERS
 from .tables import rounded
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
-           "vector_descriptions"]
+           "vector_descriptions", "published", "READ_SETTINGS"]
+
+# how the DEM was read, as recorded in run.json: band, box, declared nodata,
+# the window of the file read, scale and offset applied, the file's own nodata
+READ_SETTINGS = ("band", "bbox", "nodata", "window", "scale", "offset", "nodata_value")
+
+
+def published(command: Callable[[object], str]) -> Callable:
+    """Decorate a writer ``fn(outdir, result, ...)`` so that it writes into a
+    staging folder and its files are published together when it returns.
+    ``command(result)`` names the manifest entry: earlier files of a
+    per-outlet pattern (``{id}``) that the new set lacks are removed with the
+    publication."""
+
+    def decorate(fn):
+        @functools.wraps(fn)
+        def wrapper(outdir, result, *args, **kwargs):
+            patterns = tuple(f.name.replace("{id}", "*") for f in MANIFEST[command(result)]
+                             if "{id}" in f.name)
+            with staged_outputs(outdir, replaces=patterns) as stage:
+                return fn(stage, result, *args, **kwargs)
+        return wrapper
+
+    return decorate
 
 
 def _now():
@@ -50,7 +88,8 @@ def provenance(result, *, input_path: str | None, command_line: str | None, crea
         "input": {"path": input_path, "sha256": file_sha256(input_path) if input_path else None,
                   "dem_checksum": result.params["dem_checksum"], "shape": list(dem.shape),
                   "crs": dem.crs, "transform": list(dem.transform),
-                  "vertical_units": dem.vertical_units or "DEM units"},
+                  "vertical_units": dem.vertical_units or "DEM units",
+                  **{k: dem.meta.get(k) for k in READ_SETTINGS}},
         "parameters": {**parameters, "error_model": result.model.as_dict(),
                        "seed": result.params["seed"]},
         "defaults": result.info.get("defaults", {}),
@@ -129,6 +168,7 @@ def vector_descriptions(result, names, *, note: str = "") -> dict:
     return {n: f"{VECTOR_LAYERS.get(n, n)}. {model}{extra} {CAUTION}" for n in names}
 
 
+@published(lambda result: result.job.kind)
 def write_credit_run(outdir: str | Path, result, features, *, input_path: str | None,
                      command_line: str | None = None) -> None:
     """Write a peaks or depressions run: layers, feature tables, quick-look, ranking chart,
@@ -159,6 +199,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     write_json(out / "run.json", run)
 
 
+@published(lambda result: "catchments")
 def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str | None,
                         outlets_path: str | None, command_line: str | None = None) -> None:
     """Write a catchment run: probability layers, polygons, outlets, map, run.json.
@@ -191,6 +232,7 @@ def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str 
     write_json(out / "run.json", run)
 
 
+@published(lambda result: "sweep")
 def write_sweep(outdir: str | Path, result, *, input_path: str | None,
                 command_line: str | None = None) -> None:
     """Write ``sweep.csv``, ``kernel_sensitivity.csv``, ``sweep.png`` and ``run.json``.

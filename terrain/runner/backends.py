@@ -16,7 +16,11 @@ dies. A worker pool that cannot start or breaks ends the run with a
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
+import re
+import socket
+import struct
 import sys
 import time
 from collections.abc import Callable, Iterator
@@ -27,8 +31,13 @@ import numpy as np
 from ..errors import SchedulerError, WorkerError
 from ..noise import ErrorSampler
 
-__all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child"]
+__all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child",
+           "check_scheduler_address", "HANDSHAKE_SECONDS"]
 
+HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
+_ADDRESS = re.compile(r"^(?:(?P<scheme>[a-z]+)://)?(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)"
+                      r":(?P<port>\d{1,5})/?$")
+_SCHEMES = ("tcp", "tls", "ws", "wss", "ucx")
 MAIN_GUARD_HINT = ('a script that starts cairn\'s worker processes must do so under '
                    '`if __name__ == "__main__":` (each worker re-imports the script)')
 
@@ -66,12 +75,54 @@ def refuse_in_bootstrapping_child() -> None:
 _CTX: Context | None = None
 
 
-def _init_worker(ctx: Context) -> None:
+def _init_worker(ctx: Context, parent: int) -> None:
+    import os
     import signal
 
     global _CTX
-    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+    # Ctrl-C is the parent's to handle: the worker was started with SIGINT
+    # blocked (see _spawning) and from here on ignores it too
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _die_with_parent(parent)
+    if os.getppid() != parent:  # the parent died before we were ready
+        os._exit(1)
     _CTX = ctx
+
+
+def _die_with_parent(parent: int) -> None:
+    """Ask Linux to kill this process when its parent dies (prctl
+    PR_SET_PDEATHSIG); elsewhere a no-op."""
+    if not sys.platform.startswith("linux"):
+        return
+    import ctypes
+    import signal
+
+    try:
+        ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)
+    except (OSError, AttributeError):
+        pass
+
+
+class _spawning:
+    """Block SIGINT in this thread while worker processes start: a spawned
+    process inherits the blocked signal, so a Ctrl-C during its start-up
+    never reaches it (the parent receives it when the block ends)."""
+
+    def __enter__(self):
+        import signal
+        import threading
+
+        self.old = None
+        if hasattr(signal, "pthread_sigmask") and threading.current_thread() is threading.main_thread():
+            self.old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        return self
+
+    def __exit__(self, *exc):
+        import signal
+
+        if self.old is not None:
+            signal.pthread_sigmask(signal.SIG_SETMASK, self.old)
+        return False
 
 
 def _chunk_in_worker(start: int, stop: int):
@@ -99,31 +150,131 @@ def _broken(started: bool) -> WorkerError:
 def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
     import concurrent.futures as cf
     import multiprocessing as mp
+    import os
     from concurrent.futures.process import BrokenProcessPool
 
     started = False
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                initializer=_init_worker, initargs=(ctx,)) as pool:
-        pending: set = set()
-        try:
-            while True:
-                while len(pending) < 2 * workers and not stop():
-                    nxt = next(plan, None)
-                    if nxt is None:
-                        break
-                    pending.add(pool.submit(_chunk_in_worker, *nxt))
-                if not pending:
-                    return
-                done, pending = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-                for f in done:
-                    res = f.result()
-                    started = True
-                    yield res
-        except BrokenProcessPool:
-            raise _broken(started) from None
-        finally:
-            for f in pending:
-                f.cancel()
+    pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
+                                  initializer=_init_worker, initargs=(ctx, os.getpid()))
+    window = _Window(2 * workers)
+    pending: dict = {}
+    try:
+        while True:
+            while window.room(pending) and not stop():
+                nxt = next(plan, None)
+                if nxt is None:
+                    break
+                with _spawning():
+                    pending[pool.submit(_chunk_in_worker, *nxt)] = nxt[0]
+            if not pending:
+                return
+            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+            for f in sorted(done, key=pending.get):
+                res = f.result()
+                del pending[f]
+                started = True
+                window.yielded(res[0])
+                yield res
+    except BrokenProcessPool:
+        raise _broken(started) from None
+    finally:
+        _stop_pool(pool, pending)
+
+
+class _Window:
+    """At most ``size`` chunk results alive in the parent at once: submitted
+    and not yet returned, or returned but held by the in-order fold because
+    an earlier chunk is still out (their starts exceed the lowest pending)."""
+
+    def __init__(self, size: int):
+        self.size = size
+        self.out: list[int] = []  # starts of chunks returned, possibly held
+
+    def yielded(self, start: int) -> None:
+        self.out.append(start)
+
+    def room(self, pending: dict) -> bool:
+        low = min(pending.values()) if pending else None
+        self.out = [a for a in self.out if low is not None and a > low]
+        return len(pending) + len(self.out) < self.size
+
+
+def _stop_pool(pool, pending) -> None:
+    """Shut the pool down without waiting for chunks nobody will fold: when
+    the run ends early (interrupt, error) the workers are killed."""
+    early = any(not f.done() for f in pending)
+    for f in pending:
+        f.cancel()
+    if early:
+        for proc in list((getattr(pool, "_processes", None) or {}).values()):
+            with contextlib.suppress(Exception):
+                proc.kill()
+    pool.shutdown(wait=True, cancel_futures=True)
+
+
+def check_scheduler_address(address: str) -> str:
+    """Refuse a scheduler address that is not ``[scheme://]host:port`` with a
+    Dask scheme (tcp, tls, ws, wss, ucx); returns it unchanged.
+
+    Raises
+    ------
+    SchedulerError
+        Naming the address and what a valid one looks like.
+    """
+    m = _ADDRESS.match(str(address).strip())
+    scheme = m and m.group("scheme")
+    if m is None or (scheme and scheme not in _SCHEMES) or not 0 < int(m.group("port")) < 65536:
+        hint = " (an http address is a dashboard, not the scheduler)" \
+            if str(address).lower().startswith(("http://", "https://")) else ""
+        raise SchedulerError(f"{address}: not a Dask scheduler address{hint}; give "
+                             "tcp://host:port, e.g. tcp://scheduler-host:8786, to {scheduler}",
+                             "scheduler")
+    return address
+
+
+def _unreachable(address: str, why: str) -> SchedulerError:
+    return SchedulerError(f"{address}: cannot reach a Dask scheduler within "
+                          f"{HANDSHAKE_SECONDS:g} s ({why}); check the address or drop "
+                          "{scheduler}", "scheduler")
+
+
+def _probe(address: str) -> None:
+    """Connect and read the scheduler's opening handshake within
+    :data:`HANDSHAKE_SECONDS` (tcp only): a Dask comm sends it at once, as
+    an 8-byte frame length and a small frame. Silence, a refusal or bytes
+    that are not such a frame raise :class:`SchedulerError`."""
+    m = _ADDRESS.match(address.strip())
+    if m is None or (m.group("scheme") or "tcp") != "tcp":
+        return
+    host, port = m.group("host").strip("[]"), int(m.group("port"))
+    deadline = time.monotonic() + HANDSHAKE_SECONDS
+    try:
+        with socket.create_connection((host, port), timeout=HANDSHAKE_SECONDS) as sock:
+            head = _recv(sock, 8, deadline)
+            (size,) = struct.unpack("<Q", head)
+            if not 0 < size < 1 << 20:
+                raise _unreachable(address, "it does not answer like a Dask scheduler")
+            _recv(sock, size, deadline)
+    except SchedulerError:
+        raise
+    except TimeoutError:
+        raise _unreachable(address, "no Dask handshake") from None
+    except OSError as exc:
+        raise _unreachable(address, exc.strerror or type(exc).__name__) from None
+
+
+def _recv(sock, n: int, deadline: float) -> bytes:
+    buf = b""
+    while len(buf) < n:
+        left = deadline - time.monotonic()
+        if left <= 0:
+            raise TimeoutError
+        sock.settimeout(left)
+        got = sock.recv(n - len(buf))
+        if not got:
+            raise ConnectionResetError("connection closed during the handshake")
+        buf += got
+    return buf
 
 
 def _client(scheduler: str | None, workers: int):
@@ -132,12 +283,12 @@ def _client(scheduler: str | None, workers: int):
     from distributed import Client, LocalCluster
 
     if scheduler:
+        check_scheduler_address(scheduler)
+        _probe(scheduler)
         try:
-            return Client(scheduler, timeout="10s"), None
-        except (OSError, TimeoutError) as exc:
-            raise SchedulerError(f"{scheduler}: cannot reach the Dask scheduler within 10 s "
-                                 f"({type(exc).__name__}); check the address or drop "
-                                 "{scheduler}", "scheduler") from None
+            return Client(scheduler, timeout=f"{HANDSHAKE_SECONDS:g}s"), None
+        except Exception as exc:  # distributed raises many classes for a bad peer
+            raise _unreachable(scheduler, type(exc).__name__) from None
     cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                            dashboard_address=None, silence_logs=logging.ERROR)
     return Client(cluster), cluster
@@ -153,23 +304,25 @@ def _dask(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
             ctx_f = client.scatter(ctx, broadcast=True)
             token = hashlib.sha1(f"{id(ctx)}-{time.time_ns()}".encode()).hexdigest()[:10]
             ac = as_completed()
-            inflight = 0
+            window = _Window(2 * nworkers)
+            pending: dict = {}
 
             def top_up():
-                nonlocal inflight
-                while inflight < 2 * nworkers and not stop():
+                while window.room(pending) and not stop():
                     nxt = next(plan, None)
                     if nxt is None:
                         return
-                    ac.add(client.submit(run_chunk, ctx_f, *nxt, key=f"cairn-{token}-{nxt[0]}",
-                                         retries=3, pure=False))
-                    inflight += 1
+                    fut = client.submit(run_chunk, ctx_f, *nxt, key=f"cairn-{token}-{nxt[0]}",
+                                        retries=3, pure=False)
+                    pending[fut.key] = nxt[0]
+                    ac.add(fut)
 
             top_up()
             for fut in ac:
-                inflight -= 1
                 res = fut.result()
+                del pending[fut.key]
                 fut.release()
+                window.yielded(res[0])
                 yield res
                 top_up()
     finally:

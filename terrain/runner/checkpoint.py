@@ -17,11 +17,12 @@ import numpy as np
 
 from ..dem import Dem
 from ..errors import CheckpointError
-from ..io import load_npz, save_npz
+from ..io import check_file_folder, file_exists, load_npz, save_npz
 from ..noise import ErrorModel
 from ..version import __version__
 
-__all__ = ["run_params", "save_checkpoint", "load_checkpoint"]
+__all__ = ["run_params", "save_checkpoint", "load_checkpoint", "is_checkpoint",
+           "prepare_checkpoint"]
 
 _IDENTITY = ("seed", "settings", "model")
 
@@ -55,7 +56,9 @@ def _check_identity(path: Path, st: dict, params: dict) -> None:
     try:
         saved = json.loads(str(st["params_json"]))
     except (KeyError, ValueError):
-        raise CheckpointError(f"{path}: not a cairn checkpoint (no parameters)") from None
+        saved = None
+    if not isinstance(saved, dict):
+        raise CheckpointError(f"{path}: not a cairn checkpoint (no parameters)")
     if saved.get("dem_checksum") != params["dem_checksum"]:
         raise CheckpointError(f"{path}: checkpoint was made from another DEM (checksum differs); "
                               "use a new {checkpoint} file", "checkpoint")
@@ -72,18 +75,64 @@ def load_checkpoint(path: str | os.PathLike, acc, params: dict) -> None:
     Raises
     ------
     CheckpointError
-        Missing, damaged, from another run, or its digest does not match.
+        Missing, damaged (of any kind: empty, truncated, bit-flipped, not an
+        npz archive, pickled objects), from another run, or its digest does
+        not match.
     """
     path = Path(path)
-    try:
-        st = load_npz(path)
-    except FileNotFoundError:
-        raise CheckpointError(f"{path}: no checkpoint to resume from") from None
-    except (OSError, ValueError) as exc:
-        raise CheckpointError(f"{path}: damaged checkpoint ({exc}); start afresh without "
-                              "{resume}", "resume") from None
+    st = _load(path)
     _check_identity(path, st, params)
     digest = st.get("digest")
     if digest is None or str(digest) != _digest(st):
-        raise CheckpointError(f"{path}: checkpoint content does not match its checksum (damaged)")
-    acc.restore(st)
+        raise _damaged(path, "its content does not match its checksum")
+    try:
+        acc.restore(st)
+    except CheckpointError:
+        raise
+    except (KeyError, ValueError, TypeError, IndexError) as exc:
+        raise _damaged(path, f"missing or malformed arrays ({type(exc).__name__})") from None
+
+
+def _load(path: Path, keys=None) -> dict:
+    try:
+        return load_npz(path, keys)
+    except FileNotFoundError:
+        raise CheckpointError(f"{path}: no checkpoint to resume from") from None
+    except ValueError as exc:
+        raise _damaged(path, str(exc)) from None
+    except OSError as exc:
+        raise CheckpointError(f"{path}: cannot read the checkpoint ({exc.strerror})") from None
+
+
+def _damaged(path: Path, why: str) -> CheckpointError:
+    return CheckpointError(f"{path}: damaged checkpoint ({why}); start afresh without {{resume}} "
+                           "or choose another {checkpoint} file", "resume", "checkpoint")
+
+
+def is_checkpoint(path: str | os.PathLike) -> bool:
+    """True when ``path`` loads as a cairn checkpoint (its parameters and
+    digest members; the arrays are not read)."""
+    try:
+        st = load_npz(path, ("params_json", "digest"))
+        return "dem_checksum" in json.loads(str(st["params_json"]))
+    except (OSError, ValueError, TypeError):
+        return False
+
+
+def prepare_checkpoint(path: str | os.PathLike, *, resume: bool) -> None:
+    """Before any realisation: the checkpoint can be written, and a file already
+    at ``path`` is one cairn may replace.
+
+    Raises
+    ------
+    OutputError
+        The folder is missing or not writable.
+    CheckpointError
+        Without ``resume``, ``path`` holds a file that is not a cairn
+        checkpoint (cairn only ever replaces its own checkpoints).
+    """
+    check_file_folder(path)
+    if not resume and file_exists(path) and not is_checkpoint(path):
+        raise CheckpointError(f"{path}: exists and is not a cairn checkpoint; cairn only replaces "
+                              "its own checkpoints -- choose another {checkpoint} file",
+                              "checkpoint")

@@ -26,22 +26,25 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..dem import Dem
-from ..errors import OptionError
+from ..errors import MemoryGuardError, OptionError
+from ..io import available_memory
 from ..noise import ErrorModel, ErrorSampler
-from .backends import BACKENDS, Context, refuse_in_bootstrapping_child
-from .checkpoint import load_checkpoint, run_params, save_checkpoint
+from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
+from .checkpoint import load_checkpoint, prepare_checkpoint, run_params, save_checkpoint
 from .plan import InOrder, StopRule, chunk_size, chunks
 
 __all__ = ["run_ensemble", "RunResult", "RunInterrupted", "Execution"]
 
 
 class RunInterrupted(KeyboardInterrupt):
-    """Ctrl-C during realisations; ``done`` realisations are in ``checkpoint``."""
+    """Ctrl-C (or SIGTERM) during realisations; ``done`` realisations are in
+    ``checkpoint``; ``signal`` is the signal number (2 or 15)."""
 
-    def __init__(self, done: int, checkpoint: str | None):
-        super().__init__(done, checkpoint)
+    def __init__(self, done: int, checkpoint: str | None, signal: int = 2):
+        super().__init__(done, checkpoint, signal)
         self.done = done
         self.checkpoint = checkpoint
+        self.signal = signal
 
 
 @dataclass(frozen=True)
@@ -78,26 +81,30 @@ class RunResult:
 
 
 def _catch_sigint(flag: dict) -> Callable[[], None]:
-    """While a run is in progress, Ctrl-C only sets ``flag["interrupted"]``.
+    """While a run is in progress, Ctrl-C and SIGTERM only set ``flag["interrupted"]``
+    (to the signal number).
 
     The run then stops at the next chunk boundary, saves its checkpoint and
     raises :class:`RunInterrupted` (an interrupt inside compiled code would
-    otherwise surface as a SystemError). A second Ctrl-C interrupts at once.
-    Returns a function restoring the previous handler.
+    otherwise surface as a SystemError). A second Ctrl-C interrupts at once,
+    a second SIGTERM ends the process. Returns a function restoring the
+    previous handlers.
     """
     import signal
     import threading
 
     if threading.current_thread() is not threading.main_thread():
         return lambda: None
-    previous = signal.getsignal(signal.SIGINT)
+    previous = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
 
     def handler(signum, frame):
-        flag["interrupted"] = True
-        signal.signal(signal.SIGINT, signal.default_int_handler)
+        flag["interrupted"] = signum
+        signal.signal(signum, signal.default_int_handler if signum == signal.SIGINT
+                      else signal.SIG_DFL)
 
-    signal.signal(signal.SIGINT, handler)
-    return lambda: signal.signal(signal.SIGINT, previous)
+    for s in previous:
+        signal.signal(s, handler)
+    return lambda: [signal.signal(s, h) for s, h in previous.items()] and None
 
 
 @dataclass(frozen=True)
@@ -120,6 +127,7 @@ class Execution:
     target_se: float | None = None
     check_every: int = 20
     min_realisations: int = 20
+    memory_check: bool = True
 
     def __post_init__(self):
         for name in ("realisations", "seed", "checkpoint_every", "check_every", "min_realisations"):
@@ -127,6 +135,8 @@ class Execution:
             low = 0 if name in ("seed", "min_realisations") else 1
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < low:
                 raise OptionError(f"{{{name}}} must be a whole number >= {low}, got {v}", name)
+        if self.scheduler is not None:
+            check_scheduler_address(self.scheduler)
         backend = "dask" if self.scheduler else self.backend
         if backend not in BACKENDS:
             raise OptionError(f"unknown {{backend}} {backend!r}; choose one of "
@@ -151,7 +161,7 @@ class Execution:
 
 
 def _fold(runner, acc, order: InOrder, realisations: int, stop: StopRule, flag: dict, *,
-          on_fold: Callable[[], None]) -> bool:
+          on_fold: Callable[[dict], None]) -> bool:
     """Fold chunk results into ``acc`` in realisation order until done.
 
     Returns True when adaptive stopping fired; raises KeyboardInterrupt after
@@ -164,7 +174,7 @@ def _fold(runner, acc, order: InOrder, realisations: int, stop: StopRule, flag: 
                 break
             before = acc.n
             acc.add(lg, ct, _b - _a)
-            on_fold()
+            on_fold(lg)
             if stop.met(before, acc):
                 flag["stop"] = stopped_early = True
         if flag["stop"] or acc.n >= realisations:
@@ -176,12 +186,38 @@ def _fold(runner, acc, order: InOrder, realisations: int, stop: StopRule, flag: 
     return stopped_early
 
 
+def _fold_or_save(runner, acc, order: InOrder, realisations: int, stop: StopRule, flag: dict,
+                  *, on_fold, saver) -> bool:
+    """:func:`_fold` with Ctrl-C and SIGTERM caught; whatever ends the run, the
+    realisations folded so far are saved (the accumulator is whole at chunk
+    boundaries). An interrupt becomes :class:`RunInterrupted`."""
+    restore = _catch_sigint(flag)
+    try:
+        stopped_early = _fold(runner, acc, order, realisations, stop, flag, on_fold=on_fold)
+    except BaseException as exc:
+        interrupted = isinstance(exc, KeyboardInterrupt) or bool(flag["interrupted"])
+        try:
+            saver.save(only_if_new=True)
+        except Exception:
+            if interrupted:
+                raise
+        if interrupted:
+            raise RunInterrupted(acc.n, str(saver.path) if saver.has_file else None,
+                                 int(flag["interrupted"] or 2)) from None
+        raise
+    finally:
+        restore()
+        runner.close()
+    saver.save(only_if_new=True)
+    return stopped_early
+
+
 def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, seed: int = 0,
                  backend: str = "processes", workers: int | None = None,
                  scheduler: str | None = None, chunk: int | None = None,
                  checkpoint: str | os.PathLike | None = None, checkpoint_every: int = 50,
                  resume: bool = False, target_se: float | None = None, check_every: int = 20,
-                 min_realisations: int = 20,
+                 min_realisations: int = 20, memory_check: bool = True,
                  progress: Callable[[int, int], None] | None = None) -> RunResult:
     """Run ``realisations`` perturbed realisations of a job and average them.
 
@@ -213,6 +249,10 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
         ``stop_statistic``; for peaks and depressions in the DEM's vertical
         units) is below this, checked every ``check_every`` realisations
         after ``min_realisations``.
+    memory_check : bool
+        Watch the log as it grows and stop (saving the checkpoint) before it
+        would outgrow the memory available; with ``target_se`` the run only
+        plans as far as its next stopping check.
     progress : callable(done, total), optional
 
     Returns
@@ -225,6 +265,8 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
         On Ctrl-C, after saving the checkpoint (when one was requested).
     WorkerError
         When worker processes cannot start or die.
+    MemoryGuardError
+        When the log would outgrow the memory available (``memory_check``).
 
     References
     ----------
@@ -233,7 +275,8 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
     """
     refuse_in_bootstrapping_child()
     ex = Execution(realisations, seed, backend, workers, scheduler, chunk, checkpoint,
-                   checkpoint_every, resume, target_se, check_every, min_realisations)
+                   checkpoint_every, resume, target_se, check_every, min_realisations,
+                   memory_check)
     t0 = time.perf_counter()
     st = _start(dem, job, model, ex)
     acc, start = st.acc, st.acc.n
@@ -242,28 +285,23 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
                                checkpoint_every=checkpoint_every,
                                check_every=check_every if stop.active else None)
     flag = {"stop": False, "interrupted": False}
-    saver = _Saver(checkpoint, checkpoint_every, acc, st.params)
+    saver = _Saver(checkpoint, checkpoint_every, acc, st.params, resumed=resume)
+    watch = LogWatch(dem.source, realisations, stop if stop.active else None) if memory_check \
+        else None
 
-    def on_fold():
+    def on_fold(log=None):
         if progress:
             progress(acc.n, realisations)
         saver.maybe()
+        if watch is not None and log is not None:
+            watch.add(log, acc.n)
 
     on_fold()
     runner = BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(seed)),
                                            chunks(start, realisations, size), ex.n_workers,
                                            scheduler, lambda: flag["stop"] or flag["interrupted"])
-    restore = _catch_sigint(flag)
-    try:
-        stopped_early = _fold(runner, acc, InOrder(start), realisations, stop, flag,
-                              on_fold=on_fold)
-    except KeyboardInterrupt:
-        saver.save()
-        raise RunInterrupted(acc.n, str(checkpoint) if checkpoint is not None else None) from None
-    finally:
-        restore()
-        runner.close()
-    saver.save(only_if_new=True)
+    stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
+                                  on_fold=on_fold, saver=saver)
     wall = time.perf_counter() - t0
     info = {"backend": ex.resolved_backend,
             "workers": ex.n_workers if ex.resolved_backend != "serial" else 1,
@@ -288,6 +326,8 @@ class _Start:
 
 def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     """Resolve the job, build the sampler and accumulator, restore a checkpoint."""
+    if ex.checkpoint is not None:
+        prepare_checkpoint(ex.checkpoint, resume=ex.resume)
     used = job.defaults_used()
     job = job.resolved(dem, model)
     w_m, h_m = dem.cell_metres()
@@ -300,12 +340,52 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     return _Start(job, used, sampler, z, params, acc)
 
 
+LOG_CHECK_BYTES = 64 * 2**20  # the log watch looks at the memory after each 64 MiB of log
+
+
+class LogWatch:
+    """Stops a run before its log outgrows the memory available.
+
+    Every time the log has grown by ``step`` bytes, the bytes per realisation
+    so far are projected over the realisations still planned (with adaptive
+    stopping: up to the next check) and doubled for the concatenation at the
+    end; more than the memory available raises :class:`MemoryGuardError`
+    (the run saves its checkpoint first).
+    """
+
+    def __init__(self, source: str, realisations: int, stop: StopRule | None,
+                 step: int | None = None):
+        self.source, self.realisations, self.stop = source, realisations, stop
+        self.step = step if step is not None else LOG_CHECK_BYTES
+        self.bytes = self.n = 0
+        self.next_check = self.step
+
+    def add(self, log: dict, done: int) -> None:
+        self.bytes += sum(int(v.nbytes) for v in log.values())
+        if self.bytes < self.next_check:
+            return
+        self.next_check = self.bytes + self.step
+        upto = self.realisations
+        if self.stop is not None:
+            upto = min(upto, (done // self.stop.every + 1) * self.stop.every)
+        per = self.bytes / max(done, 1)
+        need = 2 * per * max(upto - done, 0) + self.bytes
+        have = available_memory()
+        if need > have:
+            raise MemoryGuardError(
+                f"{self.source}: the run's log holds {self.bytes / 2**20:.0f} MiB after {done} "
+                f"realisations and would need {need / 2**30:.1f} GiB more than the "
+                f"{have / 2**30:.1f} GiB available; resume from the checkpoint with fewer "
+                "{realisations} or a larger {target_se}", "realisations", "target_se")
+
+
 class _Saver:
     """Saves the checkpoint every ``every`` realisations, on interrupt and at the end."""
 
-    def __init__(self, path, every: int, acc, params: dict):
+    def __init__(self, path, every: int, acc, params: dict, *, resumed: bool = False):
         self.path, self.every, self.acc, self.params = path, every, acc, params
         self.last = acc.n
+        self.has_file = resumed  # a checkpoint of this run exists at ``path``
 
     def maybe(self) -> None:
         if self.path is not None and self.acc.n - self.last >= self.every:
@@ -316,3 +396,4 @@ class _Saver:
             return
         save_checkpoint(self.path, self.acc, self.params)
         self.last = self.acc.n
+        self.has_file = True

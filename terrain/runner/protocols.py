@@ -82,4 +82,11 @@ class Job(Protocol):
 
     def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
         """Bytes per cell (accumulating process, each worker while realising) for
-        a DEM whose values take ``value_bytes`` (4 or 8); the memory guard's input."""
+        a DEM whose values take ``value_bytes`` (4 or 8); the memory guard's input.
+
+        The accumulating process's figure covers what the job holds there at
+        once: its accumulators and the finished layers of the result (all of
+        them, or as many as it materialises at a time); the worker's covers
+        one realisation's arrays and its chunk's counts. The guard adds the
+        DEM, the runner's copies, results in flight, summaries and figures
+        (:mod:`terrain.resources`)."""

@@ -28,7 +28,7 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     ex = execution(opts)
     head = header(dem_path, opts)
     out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
-    guard_memory(head, job, ex, opts, model=model)
+    ex = guard_memory(head, job, ex, opts, model=model)
     dem = read(dem_path, opts)
     job = job.resolved(dem, model)
     figure = "prominence" if kind == "peaks" else "depth"
@@ -50,7 +50,7 @@ def _epilog(example: str, command: str) -> str:
 
 
 shared = options.compose(options.accuracy(), options.error_model(), options.attribution,
-                         options.dem_input, options.run())
+                         options.dem_input, options.run(), options.block)
 
 
 @click.command("peaks", epilog=_epilog("cairn peaks dem.tif -o out --le90 4 --min-prominence 30 "

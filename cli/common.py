@@ -38,6 +38,7 @@ FLAGS = {
     "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
     "channel_area": "--channel-area", "conditioning": "--conditioning",
     "max_breach_depth": "--max-breach-depth", "nodata": "--nodata", "memory_check": "--force",
+    "block": "--block",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 

@@ -14,7 +14,7 @@ import click
 from terrain.errors import OutputError
 from terrain.io import claim_outdir, dem_warnings, file_exists, read_dem, read_header, remove_file, same_file
 from terrain.noise import ErrorModel, rmse_from
-from terrain.resources import check_memory
+from terrain.resources import check_memory, choose_block
 from terrain.runner import Execution, RunInterrupted, run_ensemble
 from terrain.runner.checkpoint import prepare_checkpoint
 
@@ -24,7 +24,7 @@ from .progress import progress_bar
 __all__ = ["EXEC_KEYS", "error_model", "read", "header", "execution", "outputs", "guard_memory", "run_job"]
 
 RUN_KEYS = ("realisations", "seed", "workers", "scheduler", "checkpoint", "resume", "target_se")
-EXEC_KEYS = RUN_KEYS + ("memory_check",)  # what run_ensemble takes from an Execution
+EXEC_KEYS = RUN_KEYS + ("memory_check", "block")  # what run_ensemble takes from an Execution
 
 
 def error_model(opts: dict, rmse: float | None = None) -> ErrorModel:
@@ -50,7 +50,8 @@ def read(path, opts: dict):
 
 def execution(opts: dict) -> Execution:
     """The run's execution settings, validated before any output is touched."""
-    return Execution(**{k: opts[k] for k in RUN_KEYS}, memory_check=not opts.get("force", False))
+    return Execution(**{k: opts[k] for k in RUN_KEYS}, memory_check=not opts.get("force", False),
+                     block=opts.get("block"))
 
 
 def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None) -> Path:
@@ -90,9 +91,15 @@ def _distinct(checkpoints, inputs, outputs) -> None:
 
 def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int = 1,
                  quicklook: bool = True):
-    """Refuse a run that would not fit in memory, from the DEM's header alone."""
-    return check_memory(head, job, ex, model=model, runs=runs, quicklook=quicklook,
-                        force=opts["force"])
+    """Refuse a run that would not fit in memory, from the DEM's header alone;
+    return the execution to use (blocked mode when only that fits, said once)."""
+    chosen = choose_block(head, job, ex, model=model, runs=runs, quicklook=quicklook)
+    check_memory(head, job, chosen, model=model, runs=runs, quicklook=quicklook,
+                 force=opts["force"])
+    if chosen is not ex:
+        warn(f"a whole-grid run would not fit in memory; computing each realisation in blocks "
+             f"of {chosen.block} x {chosen.block} cells (--block; the layers are the same)")
+    return chosen
 
 
 def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str):

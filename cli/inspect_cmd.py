@@ -8,7 +8,7 @@ import click
 import numpy as np
 
 from terrain.jobs import CatchmentJob, CreditJob
-from terrain.resources import available_bytes, describe_memory, read_bytes
+from terrain.resources import DEFAULT_BLOCK, available_bytes, describe_memory, read_bytes
 from terrain.runner import Execution
 
 from . import options
@@ -54,8 +54,11 @@ def inspect_cmd(dem, band, bbox, nodata):
         lines.append(("scale, offset", f"elevation = stored x {head.scale:g} + {head.offset:g}"))
     lines += _pixels(dem, opts, head, dx, dy)
     ex = Execution()
-    lines += [(f"memory ({kind})", describe_memory(head, CreditJob(kind), ex))
-              for kind in ("peaks", "depressions")]
+    blocked = Execution(block=DEFAULT_BLOCK)
+    for kind in ("peaks", "depressions"):
+        lines += [(f"memory ({kind})", describe_memory(head, CreditJob(kind), ex)),
+                  (f"memory ({kind}, --block {DEFAULT_BLOCK})",
+                   describe_memory(head, CreditJob(kind), blocked))]
     lines.append(("memory (catchments, 3 outlets)",
                   describe_memory(head, CatchmentJob(("1", "2", "3"), np.zeros((3, 2))), ex)))
     width = max(len(k) for k, _ in lines)

@@ -37,8 +37,9 @@ from .outputs.mapframe import QUICKLOOK_CELLS
 from .runner import Execution
 from .runner.protocols import Job
 
-__all__ = ["MemoryEstimate", "estimate_run", "check_memory", "describe_memory", "read_bytes",
-           "available_bytes", "PROCESS_BYTES", "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR"]
+__all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_block", "DEFAULT_BLOCK",
+           "describe_memory", "read_bytes", "available_bytes", "PROCESS_BYTES",
+           "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR"]
 
 MiB = 2 ** 20
 # Resident size of the processes before their arrays (interpreter, numpy, GDAL,
@@ -58,6 +59,16 @@ QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, 
 SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run
 FIELD_DRAW = 24  # correlated error: a draw's float64 field and noise tiles, float32 copy (counted)
 LOG_BYTES_PER_PAIR = 21  # one logged pair on grids below 2**31 cells (counted)
+# Blocked mode (terrain.runner.blocked), per cell of a block task: block plus halo
+# (4), its error and the noise tiles it is drawn from (4 + 8), the local step on
+# white noise, the worst case (44), or the second pass of depressions (30) with
+# the block's counts and region labels (4 + 8), the summary handed up (8): counted
+# from the stated figures of terrain.engine.blocked, rounded up.
+BLOCK_TASK = 80
+# The glue, per boundary cell (cells facing another block), white noise (145,
+# measured in bench/bench_blocked.py), and the summaries it reads (40).
+GLUE_PER_BOUNDARY_CELL = 185
+DEFAULT_BLOCK = 1024  # blocked mode's block side when the guard chooses it
 PAIRS_PER_REALISATION = 2000  # assumed; the run re-checks its log as it grows
 
 
@@ -91,6 +102,7 @@ class MemoryEstimate:
     workers: int
     cells: int
     per_cell: dict
+    block: int | None = None
 
     def describe(self) -> str:
         """One line, e.g. ``~1.20 GiB = 0.60 GiB + 2 workers x 0.30 GiB (250 bytes
@@ -99,7 +111,10 @@ class MemoryEstimate:
         if self.workers:
             text += f" = {_gib(self.parent)} + {self.workers} workers x {_gib(self.worker)}"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
-        return text + f" ({peak:,} bytes per cell at the peak)"
+        text += f" ({peak:,} bytes per cell at the peak"
+        if self.block:
+            text += f"; blocks of {self.block} x {self.block}"
+        return text + ")"
 
 
 def _gib(n: int) -> str:
@@ -152,6 +167,8 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     """
     ex = ex if ex is not None else Execution()
     cells, value, stored = _grid(grid)
+    if getattr(ex, "block", None):
+        return _estimate_blocked(grid, job, ex, model=model, runs=runs, quicklook=quicklook)
     parent_job, worker_job = job.memory_per_cell(value)
     counts = sum(a.nbytes for a in job.new_counts(1).values())  # one chunk result per cell
     kept, draw = 0, FIELD_DRAW if model is not None and model.correlated else 0
@@ -177,6 +194,60 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
                           per_cell={**phases, "worker": worker_cell})
 
 
+def _estimate_blocked(grid, job, ex, *, model, runs, quicklook) -> MemoryEstimate:
+    """:func:`estimate_run` in blocked mode: a worker holds one block task at a
+    time; this process what the default mode holds for the grid, one chunk's
+    counts, the region labels and the glue of the block boundaries."""
+    cells, value, stored = _grid(grid)
+    parent_job, _ = job.memory_per_cell(value)
+    rows, cols = grid.shape if hasattr(grid, "shape") else (cells, 1)
+    b = int(ex.block)
+    block_cells = min(b, rows) * min(b, cols)
+    nbr, nbc = -(-rows // b), -(-cols // b)
+    boundary = 2 * ((nbr - 1) * cols + (nbc - 1) * rows)  # both sides of every block line
+    counts = sum(a.nbytes for a in job.new_counts(1).values())
+    draw = FIELD_DRAW if model is not None and model.correlated else 0
+    backend = ex.resolved_backend
+    local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
+    dem = value + 1
+    labels = 4  # the region labels, read at birth cells and by the ponding pass
+    held = dem + CONTEXT + labels + parent_job + SWEEP_KEPT * (runs - 1)
+    task = (BLOCK_TASK + draw) * block_cells
+    glue = GLUE_PER_BOUNDARY_CELL * boundary
+    # files for the workers: the DEM and labels are saved once, a block at a time
+    running = held + max(CHECKSUM_SCRATCH, counts)
+    drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)
+    phases = {"read": 2 * stored + value + READ_SCRATCH, "running": running,
+              "finishing": held + MOMENTS_SCRATCH,
+              "writing": dem + parent_job + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
+              + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
+    log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
+    parent = PROCESS_BYTES + max(phases.values()) * cells + log + glue + (0 if local else task)
+    worker = WORKER_PROCESS_BYTES + task if local else 0
+    return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
+                          workers=local, cells=cells,
+                          per_cell={**phases, "worker": math.ceil(task / max(cells, 1))},
+                          block=b)
+
+
+def choose_block(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
+                 model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True):
+    """The execution a run should use: ``ex`` itself when it fits in memory or
+    already names a block (or the job has no blocked mode); else ``ex`` in
+    blocked mode with :data:`DEFAULT_BLOCK` when that fits."""
+    import dataclasses
+
+    if ex.block or getattr(job, "kind", None) not in ("peaks", "depressions"):
+        return ex
+    have = available_bytes()
+    if estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook).total <= have:
+        return ex
+    blocked = dataclasses.replace(ex, block=DEFAULT_BLOCK)
+    if estimate_run(grid, job, blocked, model=model, runs=runs, quicklook=quicklook).total <= have:
+        return blocked
+    return ex
+
+
 def check_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
                  model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True,
                  force: bool = False) -> MemoryEstimate:
@@ -199,6 +270,10 @@ def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = N
     ex = ex if ex is not None else Execution()
     est = estimate_run(grid, job, ex, model=model)
     parent, worker = job.memory_per_cell(_grid(grid)[1])
+    if getattr(ex, "block", None):
+        return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
+                f"{_gib(available_bytes())} available); a worker holds one block task, "
+                f"~{BLOCK_TASK} bytes per block cell")
     return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
             f"{_gib(available_bytes())} available); the job itself: ~{worker} bytes per cell "
             f"per worker, {parent} in the accumulating process")

@@ -47,7 +47,15 @@ from numba import njit
 
 from .. import defaults
 from ..dem import Dem
-from ..engine.persistence import Regions, count_ponding, pairs, pits_and_levels, regions
+from ..engine.persistence import (
+    AREA_QUANTUM,
+    VOLUME_QUANTUM,
+    Regions,
+    count_ponding,
+    pairs,
+    pits_and_levels,
+    regions,
+)
 from ..errors import CheckpointError, OptionError
 from ..layers import layer_name, layers_of
 from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
@@ -253,12 +261,18 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
 def _ponds(fill, thr, ponding, reg, job, i, nc) -> dict:
     """Count ponding and log each region's ponded area and volume."""
     k = len(job.regions) + 1
-    area, vol = np.zeros(k), np.zeros(k)
+    area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
     count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, thr, ponding, reg,
                   job.area_row, nc, area, vol)
+    return pond_log(i, area, vol)
+
+
+def pond_log(i: int, area: np.ndarray, vol: np.ndarray) -> dict:
+    """The pond log of realisation ``i`` from its per-region fixed-point sums
+    (:func:`~terrain.engine.persistence.count_ponding`): regions holding water."""
     wet = np.flatnonzero(area > 0)
     return {"pond_real": np.full(wet.size, i, np.int32), "pond_region": wet.astype(np.int32),
-            "pond_area": area[wet], "pond_volume": vol[wet]}
+            "pond_area": area[wet] * AREA_QUANTUM, "pond_volume": vol[wet] * VOLUME_QUANTUM}
 
 
 def concat_logs(logs: list[dict], fields) -> dict:

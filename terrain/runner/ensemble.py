@@ -18,6 +18,7 @@ References
 
 from __future__ import annotations
 
+import contextlib
 import os
 import time
 from collections.abc import Callable
@@ -30,6 +31,7 @@ from ..errors import MemoryGuardError, OptionError
 from ..io import available_memory
 from ..noise import ErrorModel, ErrorSampler
 from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
+from .blocked import BlockedContext, blocked_runner, check_block, scratch_arrays
 from .checkpoint import load_checkpoint, prepare_checkpoint, run_params, save_checkpoint
 from .plan import InOrder, StopRule, chunk_size, chunks
 
@@ -128,6 +130,7 @@ class Execution:
     check_every: int = 20
     min_realisations: int = 20
     memory_check: bool = True
+    block: int | None = None
 
     def __post_init__(self):
         for name in ("realisations", "seed", "checkpoint_every", "check_every", "min_realisations"):
@@ -149,6 +152,7 @@ class Execution:
             raise OptionError("{resume} needs a {checkpoint} file to continue from", "resume",
                               "checkpoint")
         StopRule(self.target_se, self.check_every, self.min_realisations)  # validates target_se
+        check_block(self.block)
 
     @property
     def n_workers(self) -> int:
@@ -218,7 +222,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
                  checkpoint: str | os.PathLike | None = None, checkpoint_every: int = 50,
                  resume: bool = False, target_se: float | None = None, check_every: int = 20,
                  min_realisations: int = 20, memory_check: bool = True,
-                 progress: Callable[[int, int], None] | None = None) -> RunResult:
+                 block: int | None = None, progress: Callable[[int, int], None] | None = None) -> RunResult:
     """Run ``realisations`` perturbed realisations of a job and average them.
 
     Parameters
@@ -276,7 +280,8 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
     refuse_in_bootstrapping_child()
     ex = Execution(realisations, seed, backend, workers, scheduler, chunk, checkpoint,
                    checkpoint_every, resume, target_se, check_every, min_realisations,
-                   memory_check)
+                   memory_check, block)
+    check_block(block, job)
     t0 = time.perf_counter()
     st = _start(dem, job, model, ex)
     acc, start = st.acc, st.acc.n
@@ -297,13 +302,23 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
             watch.add(log, acc.n)
 
     on_fold()
-    runner = BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(seed)),
-                                           chunks(start, realisations, size), ex.n_workers,
-                                           scheduler, lambda: flag["stop"] or flag["interrupted"])
-    stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
-                                  on_fold=on_fold, saver=saver)
+    halt = lambda: flag["stop"] or flag["interrupted"]  # noqa: E731
+    with contextlib.ExitStack() as scope:
+        if block is None:
+            runner = BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(seed)),
+                                                   chunks(start, realisations, size), ex.n_workers,
+                                                   scheduler, halt)
+        else:
+            dem_src, reg_src = scope.enter_context(scratch_arrays(
+                st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
+            runner = blocked_runner(
+                BlockedContext(dem_src, reg_src, st.sampler, st.job, int(seed), int(block)),
+                chunks(start, realisations, size), ex.resolved_backend, ex.n_workers, scheduler,
+                halt)
+        stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
+                                      on_fold=on_fold, saver=saver)
     wall = time.perf_counter() - t0
-    info = {"backend": ex.resolved_backend,
+    info = {"backend": ex.resolved_backend, "block": block,
             "workers": ex.n_workers if ex.resolved_backend != "serial" else 1,
             "scheduler": scheduler, "wall_seconds": round(wall, 3),
             "realisations_per_second": round((acc.n - start) / wall, 3) if wall > 0 else None,

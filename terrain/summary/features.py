@@ -24,7 +24,7 @@ import pandas as pd
 from scipy import ndimage
 
 from ..dem import Dem
-from ..engine.persistence import count_ponding, pits_and_levels
+from ..engine.persistence import AREA_QUANTUM, VOLUME_QUANTUM, count_ponding, pits_and_levels
 from ..jobs.credit import log_weights, region_figures
 from ..layers import layer_name
 
@@ -251,11 +251,11 @@ def unperturbed_ponding(dem: Dem, job) -> tuple[np.ndarray, np.ndarray]:
     """
     _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
     k = len(job.regions) + 1
-    area, volume = np.zeros(k), np.zeros(k)
+    area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)
     count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
                   np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
                   job.area_row, dem.shape[1], area, volume)
-    return area, volume
+    return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
 
 
 def _pond_columns(result, ids: np.ndarray) -> dict:

@@ -1,0 +1,192 @@
+"""A peaks or depressions realisation computed block by block.
+
+:func:`realise_blocked` returns bit for bit the log of
+:func:`terrain.jobs.credit.realise` (and adds the same ponding counts)
+while no step holds more than one block of the perturbed DEM: realisation
+``i`` is read window by window from :class:`PerturbedSource` (the DEM's
+window plus the error of :meth:`~terrain.noise.ErrorSampler.draw_window`,
+which gives every cell the same error whatever window it is drawn in), the
+pairs come from the blocked engine (:mod:`terrain.engine.blocked`: local
+steps, glue, collect), and for depressions a second pass gives each cell
+its fill level and depression depth (:func:`~terrain.engine.blocked.finish_levels`)
+from which the ponding counts and the ponded area and volume per region are
+counted block by block (fixed-point sums, exact in any order).
+
+The local and second-pass steps are tasks run through ``map`` (a process
+pool's or a Dask client's), each reading its own window from paths, so a
+task pickles a few hundred bytes. Memory per task: the block plus halo
+(4 bytes per cell), its error (4, and the correlated field's tiles), the
+local step's 12-15 bytes per cell (40-44 on white noise) or the second
+pass's 30; the glue's is stated per boundary cell in
+:mod:`terrain.engine.blocked`.
+
+References
+----------
+.. [1] Morozov, D., Weber, G. H. (2013). Distributed merge trees. Proc.
+   PPoPP '13, 93-102. doi:10.1145/2442516.2442526
+.. [2] Barnes, R. (2016). Parallel Priority-Flood depression filling for
+   trillion cell digital elevation models on desktops or clusters.
+   Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
+"""
+
+from __future__ import annotations
+
+import builtins
+import functools
+import math
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..engine.blocked import Window, collect, finish_levels, glue, local, read_block, windows
+from ..engine.persistence import count_ponding
+from ..noise import ErrorSampler
+from .credit import CreditJob, pond_log, realisation_threshold
+
+__all__ = ["PerturbedSource", "realise_blocked", "NOISE_ALIGN"]
+
+NOISE_ALIGN = 256  # blocks of a multiple of this size keep the error's tiles whole
+
+
+@dataclass(frozen=True)
+class PerturbedSource:
+    """Realisation ``i`` of the DEM, read by window: ``source[r0:r1, c0:c1]``
+    is the DEM's window (float32, NaN on nodata) plus realisation ``i``'s
+    error there, the very float32 sum :func:`~terrain.jobs.credit.realise`
+    makes on the whole grid.
+
+    ``dem`` is an array or a path to a ``.npy`` file (opened memory-mapped
+    per read, so the source pickles as a path).
+    """
+
+    dem: Any
+    sampler: ErrorSampler
+    seed: int
+    i: int
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(self.sampler.shape)
+
+    def _dem(self):
+        return np.load(self.dem, mmap_mode="r") if isinstance(self.dem, str) else self.dem
+
+    def __getitem__(self, key) -> np.ndarray:
+        rs, cs = key
+        r0, r1, _ = rs.indices(self.shape[0])
+        c0, c1, _ = cs.indices(self.shape[1])
+        e = self.sampler.draw_window(self.seed, self.i, r0, r1, c0, c1)
+        e += np.asarray(self._dem()[r0:r1, c0:c1], np.float32)
+        return e
+
+
+def _local_task(src: PerturbedSource, kind: str, connectivity: int, thr: float, termini: bool,
+                window: Window):
+    """The local step of one block and the block's lowest value (for the base)."""
+    vals = read_block(src, window, src.shape)
+    s = local(vals, window, src.shape, kind="peaks" if kind == "peaks" else "pits",
+              connectivity=connectivity, min_persistence=thr, termini=termini)
+    inner = vals[window.r0 - max(window.r0 - 1, 0):, window.c0 - max(window.c0 - 1, 0):]
+    inner = inner[:window.r1 - window.r0, :window.c1 - window.c0]
+    valid = inner[np.isfinite(inner)]
+    return s, (float(valid.min()) if valid.size else math.inf)
+
+
+def _pond_task(src: PerturbedSource, regions: Any, area_row: np.ndarray, thr: float, resolution,
+               window: Window):
+    """Ponding of one block: its counts, and the ponded area and volume per
+    region in fixed point, as (regions, area, volume) of the wet regions."""
+    vals = read_block(src, window, src.shape)
+    lv, dp = finish_levels(vals, window, resolution)
+    r0, r1, c0, c1 = window
+    zb = np.ascontiguousarray(src[r0:r1, c0:c1]).reshape(-1)
+    reg = np.load(regions, mmap_mode="r") if isinstance(regions, str) else regions
+    reg = np.ascontiguousarray(reg[r0:r1, c0:c1]).reshape(-1).astype(np.int64)
+    cnt = np.zeros(zb.size, np.int32)
+    k = int(reg.max()) + 1 if reg.size else 1
+    area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
+    count_ponding(zb, np.isfinite(zb), -(np.arange(zb.size) + 1), lv.reshape(-1), dp.reshape(-1),
+                  thr, cnt, reg, np.ascontiguousarray(area_row[r0:r1]), c1 - c0, area, vol)
+    wet = np.flatnonzero(area > 0)
+    return cnt.reshape(r1 - r0, c1 - c0), wet, area[wet], vol[wet]
+
+
+def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, i: int, *,
+                    block: int, regions: Any, ponding: np.ndarray | None = None,
+                    map: Callable[..., Iterable] = builtins.map) -> dict:
+    """Realisation ``i`` block by block: the log of :func:`~terrain.jobs.credit.realise`.
+
+    Parameters
+    ----------
+    dem : (rows, cols) float32 array with NaN on nodata, or a path to one saved as ``.npy``
+    sampler, job, seed, i
+        As :func:`~terrain.jobs.credit.realise` (``job`` resolved).
+    block : int
+        Block side in cells.
+    regions : (rows, cols) int array or ``.npy`` path
+        The unperturbed DEM's region labels (``job.regions.labels``).
+    ponding : (rows, cols) int32 array, optional
+        For depressions, incremented in place, block by block, where the
+        cell is ponded (any array taking slice assignment: a memmap too).
+    map : callable
+        ``map(fn, windows)`` returning results in order (a pool's or a Dask
+        client's); the default runs the blocks here, one after another.
+
+    Returns
+    -------
+    dict
+        Exactly what :func:`~terrain.jobs.credit.realise` returns.
+
+    References
+    ----------
+    .. [1] Morozov, D., Weber, G. H. (2013). Distributed merge trees.
+       PPoPP '13, 93-102. doi:10.1145/2442516.2442526
+    """
+    src = PerturbedSource(dem, sampler, int(seed), int(i))
+    shape = src.shape
+    wins = windows(shape, block)
+    thr = realisation_threshold(job, sampler.kernel, seed, i)
+    depressions = job.kind == "depressions"
+    out = list(map(functools.partial(_local_task, src, job.kind, job.connectivity, thr,
+                                     depressions), wins))
+    summaries = [s for s, _ in out]
+    lowest = min((v for _, v in out), default=math.inf)
+    del out
+    res = glue(summaries)
+    p = collect(summaries, res, min_persistence=thr)
+    del summaries
+    ponds = {}
+    if job.kind == "peaks":
+        # the highest summit is measured to the base, or lower if the realisation is
+        floor = min(job.base, lowest) if p.essential.any() else 0.0
+        death_value = np.where(p.essential, floor, p.death_value)
+    else:
+        death_value = p.death_value
+        if ponding is not None:
+            k = len(job.regions) + 1
+            area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
+            task = functools.partial(_pond_task, src, regions, job.area_row, thr, res)
+            for w, (cnt, wet, a, v) in zip(wins, map(task, wins)):
+                ponding[w.r0:w.r1, w.c0:w.c1] += cnt
+                area[wet] += a
+                vol[wet] += v
+            ponds = pond_log(i, area, vol)
+    keep = p.persistence >= thr
+    cell_t = np.int32 if math.prod(shape) < 2**31 - 1 else np.int64
+    birth = p.birth[keep]
+    reg = np.load(regions, mmap_mode="r") if isinstance(regions, str) else regions
+    nc = shape[1]
+    rb = np.asarray(reg[birth // nc, birth % nc], np.int32) if birth.size else \
+        np.empty(0, np.int32)
+    return {
+        "real": np.full(int(keep.sum()), i, np.int32),
+        "birth": birth.astype(cell_t),
+        "death": p.death[keep].astype(cell_t),
+        "birth_value": p.birth_value[keep].astype(np.float32),
+        "death_value": death_value[keep].astype(np.float32),
+        "edge_limited": p.edge_limited[keep],
+        "region": rb,
+        **ponds,
+    }

@@ -1,0 +1,161 @@
+"""Blocked mode: each realisation computed block by block, its blocks run as tasks.
+
+In the default mode a worker computes whole realisations, so each worker
+holds the whole grid. In blocked mode (``run_ensemble(..., block=N)``,
+``--block N``) the realisations are taken one after another and the
+*blocks* of each run as tasks on the chosen backend -- this process, local
+processes or a Dask cluster -- through
+:func:`terrain.jobs.credit_blocked.realise_blocked`, so a worker holds one
+block (plus halo) at a time and the global step only the block boundaries.
+The log is the same bit for bit, hence the layers: a run gives the same
+layers with or without ``--block``, with any block size, workers or
+backend.
+
+The tasks read the DEM and the unperturbed DEM's region labels from
+``.npy`` files written once into a scratch folder (memory-mapped per read),
+so a task pickles a few hundred bytes; on a Dask cluster whose workers run
+on other machines that folder must be on a file system they share
+(``scratch``). The folder is removed when the run ends.
+
+This process still holds what the default mode holds for the run as a
+whole (the DEM, the region labels, the ponding counts and the log).
+"""
+
+from __future__ import annotations
+
+import builtins
+import contextlib
+import os
+import shutil
+import tempfile
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..errors import OptionError, WorkerError
+from ..noise import ErrorSampler
+from .backends import _broken, _client, _init_worker, _spawning
+
+__all__ = ["BlockedContext", "blocked_runner", "check_block", "MIN_BLOCK", "scratch_arrays"]
+
+MIN_BLOCK = 16  # cells a side, at least
+
+
+def check_block(block: int | None, job=None) -> None:
+    """Refuse a block size below :data:`MIN_BLOCK` or (given) a job that has no blocked mode."""
+    if block is None:
+        return
+    if isinstance(block, bool) or int(block) != block or block < MIN_BLOCK:
+        raise OptionError(f"{{block}} must be a whole number of cells >= {MIN_BLOCK}, got {block}",
+                          "block")
+    if job is not None and getattr(job, "kind", None) not in ("peaks", "depressions"):
+        raise OptionError("{block} is for peaks and depressions runs (catchments need the "
+                          "whole grid's flow directions)", "block")
+
+
+@dataclass
+class BlockedContext:
+    """What the blocked runner needs: the DEM and region labels (arrays, or
+    ``.npy`` paths for tasks in other processes), the sampler, the resolved
+    job, the seed and the block side."""
+
+    dem: Any
+    regions: Any
+    sampler: ErrorSampler
+    job: Any
+    seed: int
+    block: int
+
+
+@contextlib.contextmanager
+def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
+                   scratch: str | os.PathLike | None = None):
+    """Yield ``(dem, regions)``: the arrays themselves, or (``to_files``) paths
+    of ``.npy`` copies in a new folder under ``scratch`` (default: the
+    system's temporary folder), removed on exit."""
+    if not to_files:
+        yield z, labels
+        return
+    folder = tempfile.mkdtemp(prefix="cairn-blocks-", dir=scratch)
+    try:
+        dem_path, reg_path = os.path.join(folder, "dem.npy"), os.path.join(folder, "regions.npy")
+        np.save(dem_path, z)
+        np.save(reg_path, labels)
+        yield dem_path, reg_path
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+@contextlib.contextmanager
+def _block_map(backend: str, workers: int, scheduler: str | None):
+    """``map(fn, windows)`` running the block tasks on ``backend``, in order."""
+    if backend == "serial":
+        yield builtins.map
+        return
+    if backend == "processes":
+        import concurrent.futures as cf
+        import multiprocessing as mp
+        from concurrent.futures.process import BrokenProcessPool
+
+        with _spawning():
+            pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
+                                          initializer=_init_worker, initargs=(None, os.getpid()))
+        state = {"started": False}
+
+        def pmap(fn, items):
+            try:
+                with _spawning():
+                    out = list(pool.map(fn, items))
+            except BrokenProcessPool:
+                raise _broken(state["started"]) from None
+            state["started"] = True
+            return out
+
+        try:
+            yield pmap
+        finally:
+            for proc in list((getattr(pool, "_processes", None) or {}).values()):
+                with contextlib.suppress(Exception):
+                    proc.kill()
+            pool.shutdown(wait=True, cancel_futures=True)
+        return
+    client, cluster = _client(scheduler, workers)
+    try:
+        with client:
+            def dmap(fn, items):
+                futures = client.map(fn, list(items), pure=False, retries=3)
+                try:
+                    return client.gather(futures)
+                except Exception as exc:
+                    if isinstance(exc, (KeyboardInterrupt, OptionError)):
+                        raise
+                    raise WorkerError(f"a block task failed on the Dask cluster "
+                                      f"({type(exc).__name__}: {exc})") from None
+            yield dmap
+    finally:
+        if cluster is not None:
+            cluster.close()
+
+
+def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
+                   scheduler: str | None, stop) -> Iterator[tuple]:
+    """The backend generator of blocked mode: yields ``(a, b, log, counts)``
+    for chunks of realisations taken from ``plan`` while ``stop()`` is
+    false, each realisation's blocks mapped over ``backend``."""
+    from ..jobs.credit_blocked import realise_blocked
+
+    job = ctx.job
+    shape = tuple(ctx.sampler.shape)
+    with _block_map(backend, workers, scheduler) as bmap:
+        for a, b in plan:
+            if stop():
+                return
+            counts = job.new_counts(shape[0] * shape[1])
+            ponding = counts.get("ponding")
+            grid = ponding.reshape(shape) if ponding is not None else None
+            logs = [realise_blocked(ctx.dem, ctx.sampler, job, ctx.seed, i, block=ctx.block,
+                                    regions=ctx.regions, ponding=grid, map=bmap)
+                    for i in range(a, b)]
+            yield a, b, {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}, counts

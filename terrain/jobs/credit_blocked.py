@@ -34,6 +34,8 @@ from __future__ import annotations
 import builtins
 import functools
 import math
+import os
+import tempfile
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from typing import Any
@@ -45,7 +47,7 @@ from ..engine.persistence import count_ponding
 from ..noise import ErrorSampler
 from .credit import CreditJob, pond_log, realisation_threshold
 
-__all__ = ["PerturbedSource", "realise_blocked", "NOISE_ALIGN"]
+__all__ = ["PerturbedSource", "NpySource", "materialise", "realise_blocked", "NOISE_ALIGN"]
 
 NOISE_ALIGN = 256  # blocks of a multiple of this size keep the error's tiles whole
 
@@ -82,7 +84,58 @@ class PerturbedSource:
         return e
 
 
-def _local_task(src: PerturbedSource, kind: str, connectivity: int, thr: float, termini: bool,
+@dataclass(frozen=True)
+class NpySource:
+    """A ``.npy`` raster read by window (memory-mapped per read; pickles as its path)."""
+
+    path: str
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(np.load(self.path, mmap_mode="r").shape)
+
+    def __getitem__(self, key) -> np.ndarray:
+        return np.array(np.load(self.path, mmap_mode="r")[key])
+
+
+def _is_npy(path: str, shape) -> bool:
+    """Whether ``path`` already holds a float32 ``.npy`` of ``shape`` (reused for the
+    next realisation: every cell is drawn again)."""
+    try:
+        a = np.load(path, mmap_mode="r")
+    except (OSError, ValueError, EOFError):
+        return False
+    return a.shape == tuple(shape) and a.dtype == np.float32
+
+
+def _draw_task(src: PerturbedSource, out: Any, window: Window) -> None:
+    """Write realisation ``src.i`` on one window into ``out`` (an array or a ``.npy`` path)."""
+    r0, r1, c0, c1 = window
+    vals = src[r0:r1, c0:c1]
+    if isinstance(out, str):
+        # a shared mapping: the other processes read the values from the page
+        # cache at once; no msync (the file is scratch, never read after the run)
+        mm = np.load(out, mmap_mode="r+")
+        mm[r0:r1, c0:c1] = vals
+        del mm
+    else:
+        out[r0:r1, c0:c1] = vals
+
+
+def materialise(src: PerturbedSource, wins, out: Any, map: Callable[..., Iterable]):
+    """Realisation ``src.i`` drawn once, window by window, into ``out`` (a float32
+    array, or the path of a ``.npy`` file made here), so the passes over it read
+    values instead of drawing the error again for every window and its halo
+    (a correlated field's halo would need its neighbours' field tiles);
+    returns what the passes read."""
+    if isinstance(out, str) and not _is_npy(out, src.shape):
+        np.lib.format.open_memmap(out, mode="w+", dtype=np.float32, shape=src.shape).flush()
+    for _ in map(functools.partial(_draw_task, src, out), wins):
+        pass
+    return NpySource(out) if isinstance(out, str) else out
+
+
+def _local_task(src: Any, kind: str, connectivity: int, thr: float, termini: bool,
                 window: Window):
     """The local step of one block and the block's lowest value (for the base)."""
     vals = read_block(src, window, src.shape)
@@ -94,7 +147,7 @@ def _local_task(src: PerturbedSource, kind: str, connectivity: int, thr: float, 
     return s, (float(valid.min()) if valid.size else math.inf)
 
 
-def _pond_task(src: PerturbedSource, regions: Any, area_row: np.ndarray, thr: float, resolution,
+def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolution,
                window: Window):
     """Ponding of one block: its counts, and the ponded area and volume per
     region in fixed point, as (regions, area, volume) of the wet regions."""
@@ -115,7 +168,7 @@ def _pond_task(src: PerturbedSource, regions: Any, area_row: np.ndarray, thr: fl
 
 def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, i: int, *,
                     block: int, regions: Any, ponding: np.ndarray | None = None,
-                    map: Callable[..., Iterable] = builtins.map) -> dict:
+                    map: Callable[..., Iterable] = builtins.map, scratch: Any = None) -> dict:
     """Realisation ``i`` block by block: the log of :func:`~terrain.jobs.credit.realise`.
 
     Parameters
@@ -133,6 +186,11 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     map : callable
         ``map(fn, windows)`` returning results in order (a pool's or a Dask
         client's); the default runs the blocks here, one after another.
+    scratch : str, optional
+        Path of a ``.npy`` file to draw the realisation into (see
+        :func:`materialise`). Default: a float32 array in this process when
+        ``dem`` is an array, a temporary file beside ``dem`` when it is a path
+        (the tasks may then run in other processes).
 
     Returns
     -------
@@ -147,6 +205,24 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     src = PerturbedSource(dem, sampler, int(seed), int(i))
     shape = src.shape
     wins = windows(shape, block)
+    own = None
+    if scratch is None and isinstance(dem, str):  # tasks elsewhere: a file beside the DEM's
+        fd, own = tempfile.mkstemp(prefix="cairn-realisation-", suffix=".npy",
+                                   dir=os.path.dirname(os.path.abspath(dem)))
+        os.close(fd)
+        scratch = own
+    try:
+        src = materialise(src, wins, np.empty(shape, np.float32) if scratch is None else scratch,
+                          map)
+        return _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map)
+    finally:
+        if own is not None:
+            os.unlink(own)
+
+
+def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict:
+    """:func:`realise_blocked` on the drawn realisation ``src``."""
+    shape = tuple(int(x) for x in src.shape)
     thr = realisation_threshold(job, sampler.kernel, seed, i)
     depressions = job.kind == "depressions"
     out = list(map(functools.partial(_local_task, src, job.kind, job.connectivity, thr,

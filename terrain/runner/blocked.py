@@ -13,7 +13,9 @@ backend.
 
 The tasks read the DEM and the unperturbed DEM's region labels from
 ``.npy`` files written once into a scratch folder (memory-mapped per read),
-so a task pickles a few hundred bytes; on a Dask cluster whose workers run
+and each realisation is drawn once, block by block, into a third file there
+that the passes read (4 bytes per cell on disk), so a task pickles a few
+hundred bytes; on a Dask cluster whose workers run
 on other machines that folder must be on a file system they share
 (``scratch``). The folder is removed when the run ends.
 
@@ -67,23 +69,25 @@ class BlockedContext:
     job: Any
     seed: int
     block: int
+    realisation: str | None = None
 
 
 @contextlib.contextmanager
 def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
                    scratch: str | os.PathLike | None = None):
-    """Yield ``(dem, regions)``: the arrays themselves, or (``to_files``) paths
-    of ``.npy`` copies in a new folder under ``scratch`` (default: the
-    system's temporary folder), removed on exit."""
+    """Yield ``(dem, regions, realisation)``: the arrays themselves and None, or
+    (``to_files``) paths of ``.npy`` copies in a new folder under ``scratch``
+    (default: the system's temporary folder) and the path each realisation
+    is drawn into; the folder is removed on exit."""
     if not to_files:
-        yield z, labels
+        yield z, labels, None
         return
     folder = tempfile.mkdtemp(prefix="cairn-blocks-", dir=scratch)
     try:
         dem_path, reg_path = os.path.join(folder, "dem.npy"), os.path.join(folder, "regions.npy")
         np.save(dem_path, z)
         np.save(reg_path, labels)
-        yield dem_path, reg_path
+        yield dem_path, reg_path, os.path.join(folder, "realisation.npy")
     finally:
         shutil.rmtree(folder, ignore_errors=True)
 
@@ -156,6 +160,7 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
             ponding = counts.get("ponding")
             grid = ponding.reshape(shape) if ponding is not None else None
             logs = [realise_blocked(ctx.dem, ctx.sampler, job, ctx.seed, i, block=ctx.block,
-                                    regions=ctx.regions, ponding=grid, map=bmap)
+                                    regions=ctx.regions, ponding=grid, map=bmap,
+                                    scratch=ctx.realisation)
                     for i in range(a, b)]
             yield a, b, {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}, counts

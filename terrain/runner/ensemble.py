@@ -309,10 +309,10 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
                                                    chunks(start, realisations, size), ex.n_workers,
                                                    scheduler, halt)
         else:
-            dem_src, reg_src = scope.enter_context(scratch_arrays(
+            dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
                 st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
             runner = blocked_runner(
-                BlockedContext(dem_src, reg_src, st.sampler, st.job, int(seed), int(block)),
+                BlockedContext(dem_src, reg_src, st.sampler, st.job, int(seed), int(block), drawn),
                 chunks(start, realisations, size), ex.resolved_backend, ex.n_workers, scheduler,
                 halt)
         stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,

@@ -18,6 +18,7 @@ import re
 import shutil
 import tempfile
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -41,7 +42,9 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
-           "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder"]
+           "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
+           "NpyWindows", "create_npy", "write_npy_window", "save_npy", "scratch_folder",
+           "SCRATCH_PREFIX"]
 
 
 # Common nodata values of DEM products and GIS packages that files often hold
@@ -1103,3 +1106,79 @@ def check_file_folder(path: str | os.PathLike) -> Path:
             with contextlib.suppress(OSError):
                 q.unlink()
     return p
+
+
+# -- scratch arrays of blocked runs --------------------------------------------------
+SCRATCH_PREFIX = "cairn-blocks-"
+
+
+@dataclass(frozen=True)
+class NpyWindows:
+    """A ``.npy`` raster read window by window: ``source[r0:r1, c0:c1]`` maps the
+    file for the read only (so the pages read do not stay in this process's
+    resident set) and returns a copy; pickles as its path, so a task in another
+    process or on a Dask worker reads its own window."""
+
+    path: str
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(int(x) for x in np.load(self.path, mmap_mode="r").shape)
+
+    def __getitem__(self, key) -> np.ndarray:
+        return np.array(np.load(self.path, mmap_mode="r")[key])
+
+
+def create_npy(path: str, shape, dtype) -> None:
+    """A ``.npy`` file of ``shape`` and ``dtype`` (contents undefined until written),
+    unless ``path`` already holds one (reused: every cell is written again)."""
+    try:
+        a = np.load(path, mmap_mode="r")
+        if a.shape == tuple(shape) and a.dtype == np.dtype(dtype):
+            return
+    except (OSError, ValueError, EOFError):
+        pass
+    np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=tuple(shape)).flush()
+
+
+def write_npy_window(path: str, r0: int, c0: int, values: np.ndarray) -> None:
+    """Write ``values`` into the ``.npy`` at ``path`` from row ``r0``, column ``c0``.
+
+    A shared mapping: other processes read the values from the page cache at
+    once; no msync, as the file is scratch, never read after the run."""
+    mm = np.load(path, mmap_mode="r+")
+    mm[r0:r0 + values.shape[0], c0:c0 + values.shape[1]] = values
+    del mm
+
+
+def save_npy(path: str, a: np.ndarray) -> str:
+    """Save ``a`` as ``.npy`` at ``path``; return the path."""
+    np.save(path, a)
+    return path
+
+
+@contextlib.contextmanager
+def scratch_folder(parent: str | os.PathLike | None = None):
+    """A new folder for a run's scratch files under ``parent`` (default: the
+    system's temporary folder), removed on exit; folders left by runs whose
+    process is gone (killed) are removed first."""
+    parent = str(parent) if parent is not None else tempfile.gettempdir()
+    for folder in glob.glob(os.path.join(glob.escape(parent), SCRATCH_PREFIX + "*-*")):
+        pid = os.path.basename(folder)[len(SCRATCH_PREFIX):].split("-")[0]
+        if pid.isdigit() and not _alive(int(pid)):
+            shutil.rmtree(folder, ignore_errors=True)
+    folder = tempfile.mkdtemp(prefix=f"{SCRATCH_PREFIX}{os.getpid()}-", dir=parent)
+    try:
+        yield folder
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # another user's live process
+        return True
+    return True

@@ -32,10 +32,10 @@ References
 from __future__ import annotations
 
 import builtins
+import contextlib
 import functools
 import math
 import os
-import tempfile
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from typing import Any
@@ -44,10 +44,11 @@ import numpy as np
 
 from ..engine.blocked import Window, collect, finish_levels, glue, local, read_block, windows
 from ..engine.persistence import count_ponding
+from ..io import NpyWindows, create_npy, scratch_folder, write_npy_window
 from ..noise import ErrorSampler
 from .credit import CreditJob, pond_log, realisation_threshold
 
-__all__ = ["PerturbedSource", "NpySource", "materialise", "realise_blocked", "NOISE_ALIGN"]
+__all__ = ["PerturbedSource", "materialise", "realise_blocked", "NOISE_ALIGN"]
 
 NOISE_ALIGN = 256  # blocks of a multiple of this size keep the error's tiles whole
 
@@ -72,40 +73,18 @@ class PerturbedSource:
     def shape(self) -> tuple[int, int]:
         return tuple(self.sampler.shape)
 
-    def _dem(self):
-        return np.load(self.dem, mmap_mode="r") if isinstance(self.dem, str) else self.dem
-
     def __getitem__(self, key) -> np.ndarray:
         rs, cs = key
         r0, r1, _ = rs.indices(self.shape[0])
         c0, c1, _ = cs.indices(self.shape[1])
         e = self.sampler.draw_window(self.seed, self.i, r0, r1, c0, c1)
-        e += np.asarray(self._dem()[r0:r1, c0:c1], np.float32)
+        e += np.asarray(_array(self.dem)[r0:r1, c0:c1], np.float32)
         return e
 
 
-@dataclass(frozen=True)
-class NpySource:
-    """A ``.npy`` raster read by window (memory-mapped per read; pickles as its path)."""
-
-    path: str
-
-    @property
-    def shape(self) -> tuple[int, int]:
-        return tuple(np.load(self.path, mmap_mode="r").shape)
-
-    def __getitem__(self, key) -> np.ndarray:
-        return np.array(np.load(self.path, mmap_mode="r")[key])
-
-
-def _is_npy(path: str, shape) -> bool:
-    """Whether ``path`` already holds a float32 ``.npy`` of ``shape`` (reused for the
-    next realisation: every cell is drawn again)."""
-    try:
-        a = np.load(path, mmap_mode="r")
-    except (OSError, ValueError, EOFError):
-        return False
-    return a.shape == tuple(shape) and a.dtype == np.float32
+def _array(a: Any):
+    """An array argument: the array itself, or a ``.npy`` path read by window."""
+    return NpyWindows(a) if isinstance(a, str) else a
 
 
 def _draw_task(src: PerturbedSource, out: Any, window: Window) -> None:
@@ -113,26 +92,22 @@ def _draw_task(src: PerturbedSource, out: Any, window: Window) -> None:
     r0, r1, c0, c1 = window
     vals = src[r0:r1, c0:c1]
     if isinstance(out, str):
-        # a shared mapping: the other processes read the values from the page
-        # cache at once; no msync (the file is scratch, never read after the run)
-        mm = np.load(out, mmap_mode="r+")
-        mm[r0:r1, c0:c1] = vals
-        del mm
+        write_npy_window(out, r0, c0, vals)
     else:
         out[r0:r1, c0:c1] = vals
 
 
 def materialise(src: PerturbedSource, wins, out: Any, map: Callable[..., Iterable]):
     """Realisation ``src.i`` drawn once, window by window, into ``out`` (a float32
-    array, or the path of a ``.npy`` file made here), so the passes over it read
-    values instead of drawing the error again for every window and its halo
-    (a correlated field's halo would need its neighbours' field tiles);
-    returns what the passes read."""
-    if isinstance(out, str) and not _is_npy(out, src.shape):
-        np.lib.format.open_memmap(out, mode="w+", dtype=np.float32, shape=src.shape).flush()
+    array, or the path of a ``.npy`` file, made here if need be), so the passes
+    over it read values instead of drawing the error again for every window and
+    its halo (a correlated field's halo would need its neighbours' field
+    tiles); returns what the passes read."""
+    if isinstance(out, str):
+        create_npy(out, src.shape, np.float32)
     for _ in map(functools.partial(_draw_task, src, out), wins):
         pass
-    return NpySource(out) if isinstance(out, str) else out
+    return _array(out)
 
 
 def _local_task(src: Any, kind: str, connectivity: int, thr: float, termini: bool,
@@ -155,8 +130,7 @@ def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolut
     lv, dp = finish_levels(vals, window, resolution)
     r0, r1, c0, c1 = window
     zb = np.ascontiguousarray(src[r0:r1, c0:c1]).reshape(-1)
-    reg = np.load(regions, mmap_mode="r") if isinstance(regions, str) else regions
-    reg = np.ascontiguousarray(reg[r0:r1, c0:c1]).reshape(-1).astype(np.int64)
+    reg = np.ascontiguousarray(_array(regions)[r0:r1, c0:c1]).reshape(-1).astype(np.int64)
     cnt = np.zeros(zb.size, np.int32)
     k = int(reg.max()) + 1 if reg.size else 1
     area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
@@ -205,19 +179,13 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     src = PerturbedSource(dem, sampler, int(seed), int(i))
     shape = src.shape
     wins = windows(shape, block)
-    own = None
-    if scratch is None and isinstance(dem, str):  # tasks elsewhere: a file beside the DEM's
-        fd, own = tempfile.mkstemp(prefix="cairn-realisation-", suffix=".npy",
-                                   dir=os.path.dirname(os.path.abspath(dem)))
-        os.close(fd)
-        scratch = own
-    try:
+    with contextlib.ExitStack() as scope:
+        if scratch is None and isinstance(dem, str):  # tasks elsewhere: a scratch file
+            folder = scope.enter_context(scratch_folder(os.path.dirname(os.path.abspath(dem))))
+            scratch = os.path.join(folder, "realisation.npy")
         src = materialise(src, wins, np.empty(shape, np.float32) if scratch is None else scratch,
                           map)
         return _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map)
-    finally:
-        if own is not None:
-            os.unlink(own)
 
 
 def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict:
@@ -252,10 +220,7 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
     keep = p.persistence >= thr
     cell_t = np.int32 if math.prod(shape) < 2**31 - 1 else np.int64
     birth = p.birth[keep]
-    reg = np.load(regions, mmap_mode="r") if isinstance(regions, str) else regions
-    nc = shape[1]
-    rb = np.asarray(reg[birth // nc, birth % nc], np.int32) if birth.size else \
-        np.empty(0, np.int32)
+    rb = _region_at(regions, birth, shape[1])
     return {
         "real": np.full(int(keep.sum()), i, np.int32),
         "birth": birth.astype(cell_t),
@@ -266,3 +231,20 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
         "region": rb,
         **ponds,
     }
+
+
+def _region_at(regions: Any, cells: np.ndarray, nc: int) -> np.ndarray:
+    """Region labels at flat ``cells`` (int32), read 256 rows at a time."""
+    out = np.empty(cells.size, np.int32)
+    rows = cells // nc
+    order = np.argsort(rows, kind="stable")
+    srt = rows[order]
+    src = _array(regions)
+    lo = 0
+    while lo < order.size:
+        r0 = int(srt[lo])
+        hi = int(np.searchsorted(srt, r0 + 256))
+        sel = order[lo:hi]
+        out[sel] = np.asarray(src[r0:r0 + 256, :])[rows[sel] - r0, cells[sel] % nc]
+        lo = hi
+    return out

@@ -32,7 +32,8 @@ from ..errors import SchedulerError, WorkerError
 from ..noise import ErrorSampler
 
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child",
-           "check_scheduler_address", "HANDSHAKE_SECONDS"]
+           "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
+           "init_worker", "spawning"]
 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
 _ADDRESS = re.compile(r"^(?:(?P<scheme>[a-z]+)://)?(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)"
@@ -75,13 +76,13 @@ def refuse_in_bootstrapping_child() -> None:
 _CTX: Context | None = None
 
 
-def _init_worker(ctx: Context, parent: int) -> None:
+def init_worker(ctx: Context, parent: int) -> None:
     import os
     import signal
 
     global _CTX
     # Ctrl-C is the parent's to handle: the worker was started with SIGINT
-    # blocked (see _spawning) and from here on ignores it too
+    # blocked (see spawning) and from here on ignores it too
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     _die_with_parent(parent)
     if os.getppid() != parent:  # the parent died before we were ready
@@ -103,7 +104,7 @@ def _die_with_parent(parent: int) -> None:
         pass
 
 
-class _spawning:
+class spawning:
     """Block SIGINT in this thread while worker processes start: a spawned
     process inherits the blocked signal, so a Ctrl-C during its start-up
     never reaches it (the parent receives it when the block ends)."""
@@ -138,7 +139,7 @@ def _serial(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
         yield run_chunk(ctx, a, b)
 
 
-def _broken(started: bool) -> WorkerError:
+def broken_pool(started: bool) -> WorkerError:
     main = sys.modules.get("__main__")
     script = getattr(main, "__file__", None) and getattr(main, "__spec__", None) is None
     if not started and script:
@@ -155,7 +156,7 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
 
     started = False
     pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                  initializer=_init_worker, initargs=(ctx, os.getpid()))
+                                  initializer=init_worker, initargs=(ctx, os.getpid()))
     window = _Window(2 * workers)
     pending: dict = {}
     try:
@@ -164,7 +165,7 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
                 nxt = next(plan, None)
                 if nxt is None:
                     break
-                with _spawning():
+                with spawning():
                     pending[pool.submit(_chunk_in_worker, *nxt)] = nxt[0]
             if not pending:
                 return
@@ -176,7 +177,7 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
                 window.yielded(res[0])
                 yield res
     except BrokenProcessPool:
-        raise _broken(started) from None
+        raise broken_pool(started) from None
     finally:
         _stop_pool(pool, pending)
 
@@ -277,7 +278,7 @@ def _recv(sock, n: int, deadline: float) -> bytes:
     return buf
 
 
-def _client(scheduler: str | None, workers: int):
+def dask_client(scheduler: str | None, workers: int):
     import logging
 
     from distributed import Client, LocalCluster
@@ -297,7 +298,7 @@ def _client(scheduler: str | None, workers: int):
 def _dask(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
     from distributed import as_completed
 
-    client, cluster = _client(scheduler, workers)
+    client, cluster = dask_client(scheduler, workers)
     try:
         with client:
             nworkers = max(1, len(client.scheduler_info().get("workers", {})) or workers)

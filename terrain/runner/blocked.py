@@ -28,8 +28,6 @@ from __future__ import annotations
 import builtins
 import contextlib
 import os
-import shutil
-import tempfile
 from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
@@ -37,8 +35,9 @@ from typing import Any
 import numpy as np
 
 from ..errors import OptionError, WorkerError
+from ..io import save_npy, scratch_folder
 from ..noise import ErrorSampler
-from .backends import _broken, _client, _init_worker, _spawning
+from .backends import broken_pool, dask_client, init_worker, spawning
 
 __all__ = ["BlockedContext", "blocked_runner", "check_block", "MIN_BLOCK", "scratch_arrays"]
 
@@ -76,20 +75,16 @@ class BlockedContext:
 def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
                    scratch: str | os.PathLike | None = None):
     """Yield ``(dem, regions, realisation)``: the arrays themselves and None, or
-    (``to_files``) paths of ``.npy`` copies in a new folder under ``scratch``
-    (default: the system's temporary folder) and the path each realisation
-    is drawn into; the folder is removed on exit."""
+    (``to_files``) paths of ``.npy`` copies in a new scratch folder under
+    ``scratch`` (default: the system's temporary folder) and the path each
+    realisation is drawn into; the folder is removed on exit."""
     if not to_files:
         yield z, labels, None
         return
-    folder = tempfile.mkdtemp(prefix="cairn-blocks-", dir=scratch)
-    try:
-        dem_path, reg_path = os.path.join(folder, "dem.npy"), os.path.join(folder, "regions.npy")
-        np.save(dem_path, z)
-        np.save(reg_path, labels)
-        yield dem_path, reg_path, os.path.join(folder, "realisation.npy")
-    finally:
-        shutil.rmtree(folder, ignore_errors=True)
+    with scratch_folder(scratch) as folder:
+        yield (save_npy(os.path.join(folder, "dem.npy"), z),
+               save_npy(os.path.join(folder, "regions.npy"), labels),
+               os.path.join(folder, "realisation.npy"))
 
 
 @contextlib.contextmanager
@@ -103,17 +98,17 @@ def _block_map(backend: str, workers: int, scheduler: str | None):
         import multiprocessing as mp
         from concurrent.futures.process import BrokenProcessPool
 
-        with _spawning():
+        with spawning():
             pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                          initializer=_init_worker, initargs=(None, os.getpid()))
+                                          initializer=init_worker, initargs=(None, os.getpid()))
         state = {"started": False}
 
         def pmap(fn, items):
             try:
-                with _spawning():
+                with spawning():
                     out = list(pool.map(fn, items))
             except BrokenProcessPool:
-                raise _broken(state["started"]) from None
+                raise broken_pool(state["started"]) from None
             state["started"] = True
             return out
 
@@ -125,7 +120,7 @@ def _block_map(backend: str, workers: int, scheduler: str | None):
                     proc.kill()
             pool.shutdown(wait=True, cancel_futures=True)
         return
-    client, cluster = _client(scheduler, workers)
+    client, cluster = dask_client(scheduler, workers)
     try:
         with client:
             def dmap(fn, items):

@@ -286,9 +286,11 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
     st = _start(dem, job, model, ex)
     acc, start = st.acc, st.acc.n
     stop = StopRule(target_se, check_every, min_realisations)
-    size = chunk or chunk_size(start, realisations, workers=ex.n_workers,
-                               checkpoint_every=checkpoint_every,
-                               check_every=check_every if stop.active else None)
+    # blocked mode takes realisations one at a time (its tasks are the blocks), so
+    # Ctrl-C stops after the realisation under way
+    size = chunk or (1 if block is not None else chunk_size(
+        start, realisations, workers=ex.n_workers, checkpoint_every=checkpoint_every,
+        check_every=check_every if stop.active else None))
     flag = {"stop": False, "interrupted": False}
     saver = _Saver(checkpoint, checkpoint_every, acc, st.params, resumed=resume)
     watch = LogWatch(dem.source, realisations, stop if stop.active else None) if memory_check \

@@ -92,6 +92,8 @@ def dems(tmp_path_factory):
 CASES = {  # name: (command, dem size, extra arguments, workers)
     "peaks": ("peaks", 600, ("--min-prominence", "10"), 1),
     "depressions-2-workers": ("depressions", 600, ("--min-depth", "10"), 2),
+    "depressions-blocks-2-workers": ("depressions", 600, ("--min-depth", "10", "--block", "256"),
+                                     2),
     "catchments-1": ("catchments", 600, (), 1),
     "catchments-100": ("catchments", 250, (), 1),
     "sweep": ("sweep", 600, ("--kind", "peaks", "--min-prominence", "10"), 1),
@@ -117,7 +119,9 @@ def test_estimate_covers_the_measured_peak_at_most_twice(dems, tmp_path, case):
         args += ["--rmse", "1"]
     measured, code, err = peak_resident(args)
     assert code == 0, err
-    est = estimate_run(read_header(dem), job, Execution(realisations=n, workers=workers),
+    block = int(extra[extra.index("--block") + 1]) if "--block" in extra else None
+    est = estimate_run(read_header(dem), job,
+                       Execution(realisations=n, workers=workers, block=block),
                        runs=runs, quicklook=quicklook)
     print(f"{case}: measured {measured / 2**20:.0f} MiB, estimate {est.total / 2**20:.0f} MiB")
     assert measured <= est.total <= 2 * measured, (measured / 2**20, est.total / 2**20)

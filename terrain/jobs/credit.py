@@ -61,7 +61,7 @@ from ..layers import layer_name, layers_of
 from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
-           "realise", "log_weights", "concat_logs", "proportion", "region_figures",
+           "realise", "pair_log", "pond_log", "log_weights", "concat_logs", "proportion", "region_figures",
            "credit_layers"]
 
 KINDS = ("peaks", "depressions")
@@ -243,8 +243,16 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
         death_value = p.death_value
         if ponding is not None:
             ponds = _ponds(fill, thr, ponding, reg, job, i, z.shape[1])
+    return {**pair_log(p, death_value, thr, i, z.size, lambda b: reg[b].astype(np.int32)),
+            **ponds}
+
+
+def pair_log(p, death_value: np.ndarray, thr: float, i: int, n_cells: int, region) -> dict:
+    """The pair log (:data:`LOG_FIELDS`) of realisation ``i``: the pairs of ``p`` at
+    least ``thr`` persistent, with ``death_value`` for their death values and
+    ``region(birth cells)`` for the unperturbed DEM's region of each birth."""
     keep = p.persistence >= thr
-    cell_t = np.int32 if z.size < 2**31 - 1 else np.int64
+    cell_t = np.int32 if n_cells < 2**31 - 1 else np.int64
     birth = p.birth[keep]
     return {
         "real": np.full(int(keep.sum()), i, np.int32),
@@ -253,8 +261,7 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
         "birth_value": p.birth_value[keep].astype(np.float32),
         "death_value": death_value[keep].astype(np.float32),
         "edge_limited": p.edge_limited[keep],
-        "region": reg[birth].astype(np.int32),
-        **ponds,
+        "region": region(birth),
     }
 
 

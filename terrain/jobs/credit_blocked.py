@@ -46,7 +46,7 @@ from ..engine.blocked import Window, collect, finish_levels, glue, local, read_b
 from ..engine.persistence import count_ponding
 from ..io import NpyWindows, create_npy, scratch_folder, write_npy_window
 from ..noise import ErrorSampler
-from .credit import CreditJob, pond_log, realisation_threshold
+from .credit import CreditJob, pair_log, pond_log, realisation_threshold
 
 __all__ = ["PerturbedSource", "materialise", "realise_blocked", "NOISE_ALIGN"]
 
@@ -217,20 +217,8 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
                 area[wet] += a
                 vol[wet] += v
             ponds = pond_log(i, area, vol)
-    keep = p.persistence >= thr
-    cell_t = np.int32 if math.prod(shape) < 2**31 - 1 else np.int64
-    birth = p.birth[keep]
-    rb = _region_at(regions, birth, shape[1])
-    return {
-        "real": np.full(int(keep.sum()), i, np.int32),
-        "birth": birth.astype(cell_t),
-        "death": p.death[keep].astype(cell_t),
-        "birth_value": p.birth_value[keep].astype(np.float32),
-        "death_value": death_value[keep].astype(np.float32),
-        "edge_limited": p.edge_limited[keep],
-        "region": rb,
-        **ponds,
-    }
+    return {**pair_log(p, death_value, thr, i, math.prod(shape),
+                       lambda b: _region_at(regions, b, shape[1])), **ponds}
 
 
 def _region_at(regions: Any, cells: np.ndarray, nc: int) -> np.ndarray:

@@ -8,7 +8,11 @@ Prints, measured in this run:
   processes (timed from the first accumulated chunk; the pool's start-up,
   spawn + imports + numba cache loading, is printed apart), and the scaling
   efficiency rate_2 / (2 rate_1);
-- the projected wall time of 1000 realisations of peaks and pits on 2 workers.
+- the projected wall time of 1000 realisations of peaks and pits on 2 workers;
+- feature bookkeeping: a realisation with its region lookups, ponded area and
+  volume per region and the per-region figures folded, against the same
+  realisation without them (error, pairs, selection, ponding counts); and the
+  run's one ``regions()`` call against one ``pairs()`` call.
 
 Run:  python bench/bench_attribution.py [--side 1024] [--n 160]
 """
@@ -38,10 +42,11 @@ def main():
     dem = Dem.from_array(z, cellsize=30.0)
     model = ErrorModel(rmse=2.0)
     sampler = ErrorSampler(model, z.shape, (30.0, 30.0))
-    rows = []
+    rows, book = [], []
     total_1000 = 0.0
     for kind in ("peaks", "depressions"):
-        s = CreditJob(kind, threshold=6.0, base=float(z.min()))
+        s = CreditJob(kind, threshold=6.0, base=float(z.min())).resolved(dem, model)
+        book.append(_bookkeeping(z, sampler, s))
         perturbed = [z + sampler.draw(0, i) for i in range(4)]
         bare_fn = ((lambda zz: pairs(zz, kind="peaks")) if kind == "peaks"
                    else (lambda zz: pits_and_levels(zz)))
@@ -89,6 +94,53 @@ def main():
     for kind, tb, tf, ov, r1, r2, eff, st in rows:
         print(f"{kind:>5} {tb:7.3f} {tf:7.3f} {ov:8.0%} {r1:10.2f} {r2:10.2f} {eff:9.0%} {st:12.1f}")
     print(f"projected wall for 1000 realisations of peaks + pits on 2 processes: {total_1000:.0f} s")
+    print("feature bookkeeping per realisation (region of each birth, ponded area and volume per "
+          "region, per-region figures), and the run's one regions() call against one pairs() call")
+    print(f"{'kind':>12} {'plain s':>8} {'with s':>7} {'overhead':>9} {'regions s':>10} "
+          f"{'pairs s':>8} {'ratio':>6}")
+    for kind, tp, tk, ov, tr, tpa in book:
+        print(f"{kind:>12} {tp:8.3f} {tk:7.3f} {ov:8.0%} {tr:10.3f} {tpa:8.3f} {tr / tpa:6.2f}")
+
+
+def _bookkeeping(z, sampler, job) -> tuple:
+    from terrain.engine.persistence import pairs, regions
+    from terrain.jobs.credit import CreditAccumulator, realise
+
+    pond = np.zeros(z.size, np.int32) if job.kind == "depressions" else None
+    t_regions = _median(lambda: regions(z, kind=job.filtration, merge_level=job.merge_level))
+    t_pairs = _median(lambda: pairs(z, kind=job.filtration))
+    t_plain = _median(lambda: _plain(z, sampler, job))
+    t_kept = _median(lambda: CreditAccumulator(z.size, job).add(
+        realise(z, sampler, job, 0, 0, pond), {}, 1))
+    return job.kind, t_plain, t_kept, t_kept / t_plain - 1, t_regions, t_pairs
+
+
+def _median(fn, repeat: int = 3) -> float:
+    fn()
+    ts = []
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        ts.append(time.perf_counter() - t)
+    return statistics.median(ts)
+
+
+def _plain(z, sampler, job):
+    """A realisation without feature bookkeeping: error, pairs, selection, and for
+    depressions the ponding counts without per-region sums."""
+    from terrain.engine.persistence import count_ponding, pairs, pits_and_levels
+
+    zi = sampler.draw(0, 0)
+    zi += z
+    if job.kind == "peaks":
+        p = pairs(zi, kind="peaks")
+    else:
+        p, f = pits_and_levels(zi)
+        count_ponding(f.zf, f.valid, f.labels, f.level, f.depth, job.threshold,
+                      np.zeros(z.size, np.int32), np.empty(0, np.int32), job.area_row,
+                      z.shape[1], np.zeros(1, np.int64), np.zeros(1, np.int64))
+    keep = p.persistence >= job.threshold
+    return p.birth[keep], p.death[keep]
 
 
 if __name__ == "__main__":

@@ -200,10 +200,11 @@ def run(*, per_model: bool = False):
 
 block = click.option(
     "--block", type=int, default=None, metavar="CELLS",
-    help="Compute each realisation block by block, in blocks of CELLS x CELLS cells (a "
-         "multiple of 256 is fastest): a worker then holds one block, not the whole grid, and "
-         "the layers are the same bit for bit. Chosen (1024) when a whole-grid run would not "
-         "fit in memory and blocks would.")
+    help="Compute each realisation block by block, in blocks of CELLS x CELLS cells (at least "
+         "16; 1024 or more, a multiple of 256, is fastest: small blocks cost many times a "
+         "whole-grid run): a worker then holds one block, not the whole grid, and the layers "
+         "are the same bit for bit. Chosen (1024) when a whole-grid run would not fit in "
+         "memory and blocks would. Scratch files go under TMPDIR.")
 
 
 outdir = click.option("-o", "--outdir", required=True, type=click.Path(file_okay=True),

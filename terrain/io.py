@@ -44,6 +44,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
            "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
            "NpyWindows", "create_npy", "write_npy_window", "save_npy", "scratch_folder",
+           "remove_orphan_scratch",
            "SCRATCH_PREFIX"]
 
 
@@ -1163,15 +1164,23 @@ def scratch_folder(parent: str | os.PathLike | None = None):
     system's temporary folder), removed on exit; folders left by runs whose
     process is gone (killed) are removed first."""
     parent = str(parent) if parent is not None else tempfile.gettempdir()
-    for folder in glob.glob(os.path.join(glob.escape(parent), SCRATCH_PREFIX + "*-*")):
-        pid = os.path.basename(folder)[len(SCRATCH_PREFIX):].split("-")[0]
-        if pid.isdigit() and not _alive(int(pid)):
-            shutil.rmtree(folder, ignore_errors=True)
+    remove_orphan_scratch(parent)
     folder = tempfile.mkdtemp(prefix=f"{SCRATCH_PREFIX}{os.getpid()}-", dir=parent)
     try:
         yield folder
     finally:
         shutil.rmtree(folder, ignore_errors=True)
+
+
+def remove_orphan_scratch(parent: str | os.PathLike | None = None) -> None:
+    """Remove the scratch folders of blocked runs whose process is gone (killed)
+    under ``parent`` (default: the system's temporary folder). A folder whose
+    process number was reused by a live process stays until that one ends."""
+    parent = str(parent) if parent is not None else tempfile.gettempdir()
+    for folder in glob.glob(os.path.join(glob.escape(parent), SCRATCH_PREFIX + "*-*")):
+        pid = os.path.basename(folder)[len(SCRATCH_PREFIX):].split("-")[0]
+        if pid.isdigit() and int(pid) != os.getpid() and not _alive(int(pid)):
+            shutil.rmtree(folder, ignore_errors=True)
 
 
 def _alive(pid: int) -> bool:

@@ -111,10 +111,10 @@ class MemoryEstimate:
         if self.workers:
             text += f" = {_gib(self.parent)} + {self.workers} workers x {_gib(self.worker)}"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
-        text += f" ({peak:,} bytes per cell at the peak"
         if self.block:
-            text += f"; blocks of {self.block} x {self.block}"
-        return text + ")"
+            return text + (f" ({peak:,} bytes per cell at the peak in the accumulating process; "
+                           f"a worker holds one block of {self.block} x {self.block})")
+        return text + f" ({peak:,} bytes per cell at the peak)"
 
 
 def _gib(n: int) -> str:
@@ -271,9 +271,13 @@ def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = N
     est = estimate_run(grid, job, ex, model=model)
     parent, worker = job.memory_per_cell(_grid(grid)[1])
     if getattr(ex, "block", None):
-        return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
-                f"{_gib(available_bytes())} available); a worker holds one block task, "
-                f"~{BLOCK_TASK} bytes per block cell")
+        text = (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
+                f"{_gib(available_bytes())} available); ~{BLOCK_TASK} bytes per block cell "
+                "per worker")
+        rows, cols = grid.shape
+        if rows <= ex.block and cols <= ex.block:
+            text += "; the grid fits in one block, so blocks save nothing here"
+        return text
     return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
             f"{_gib(available_bytes())} available); the job itself: ~{worker} bytes per cell "
             f"per worker, {parent} in the accumulating process")

@@ -174,3 +174,21 @@ def test_guard_chooses_blocks_when_only_they_fit(monkeypatch):
     assert resources.choose_block(head, job, ex).block == resources.DEFAULT_BLOCK
     monkeypatch.setattr(resources, "available_bytes", lambda: whole.total + 1)
     assert resources.choose_block(head, job, ex) is ex
+
+
+def test_scratch_of_a_killed_run_is_removed_by_the_next_run(tmp_path, monkeypatch):
+    import subprocess
+    import sys
+    import tempfile
+
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True, check=True).stdout.strip()
+    left = tmp_path / f"cairn-blocks-{dead}-abc123"
+    left.mkdir()
+    (left / "dem.npy").write_bytes(b"x")
+    mine = tmp_path / "cairn-blocks-notapid-x"  # not a cairn name: kept
+    mine.mkdir()
+    run_ensemble(_dem((20, 20)), CreditJob("peaks"), MODELS["independent"], realisations=1,
+                 backend="serial")  # any run, blocked or not
+    assert not left.exists() and mine.exists()

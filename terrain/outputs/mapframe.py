@@ -37,6 +37,7 @@ deficiency", PLoS ONE 13, 2018, for ``cividis``).
 
 from __future__ import annotations
 
+import logging
 import math
 import textwrap
 import warnings
@@ -580,11 +581,19 @@ def _adjust(ax, items, obstacles, fontsize, start) -> list:
     for t in texts:
         t.set_in_layout(False)
     objects = [Bbox(inv.transform(b.get_points())) for b in obstacles]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        adjust_text(texts, objects=objects or None, ax=ax, avoid_self=False,
-                    target_x=xy[:, 0], target_y=xy[:, 1], **ADJUST,
-                    only_move={"text": move, "static": move, "explode": move, "pull": "xy"})
+    # adjustText logs when labels cannot fit (a thin strip of a map); the labels it
+    # cannot clear are left out and named in the footer, so its message is not ours
+    log = logging.getLogger("adjustText")
+    level = log.level
+    log.setLevel(logging.ERROR)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            adjust_text(texts, objects=objects or None, ax=ax, avoid_self=False,
+                        target_x=xy[:, 0], target_y=xy[:, 1], **ADJUST,
+                        only_move={"text": move, "static": move, "explode": move, "pull": "xy"})
+    finally:
+        log.setLevel(level)
     return texts
 
 

@@ -28,7 +28,7 @@ import numpy as np
 
 from ..dem import Dem
 from ..errors import MemoryGuardError, OptionError
-from ..io import available_memory
+from ..io import available_memory, remove_orphan_scratch
 from ..noise import ErrorModel, ErrorSampler
 from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
 from .blocked import BlockedContext, blocked_runner, check_block, scratch_arrays
@@ -282,6 +282,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
                    checkpoint_every, resume, target_se, check_every, min_realisations,
                    memory_check, block)
     check_block(block, job)
+    remove_orphan_scratch()  # what a killed blocked run left in the temporary folder
     t0 = time.perf_counter()
     st = _start(dem, job, model, ex)
     acc, start = st.acc, st.acc.n

@@ -44,9 +44,12 @@ __all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_block", "DE
 MiB = 2 ** 20
 # Resident size of the processes before their arrays (interpreter, numpy, GDAL,
 # numba's compiled kernels, matplotlib, GeoPandas), measured with cairn's own
-# runs on Linux x86-64, Python 3.11 (the peak of small runs, rounded up).
-PROCESS_BYTES = 400 * MiB
-WORKER_PROCESS_BYTES = 190 * MiB
+# runs on Linux x86-64, Python 3.11 (the peak of small runs, rounded up): the
+# footprint depends on the installed wheels -- a fresh install from the package
+# index measured 60-90 MiB more per process than an older environment -- so
+# these are the larger figures.
+PROCESS_BYTES = 480 * MiB
+WORKER_PROCESS_BYTES = 240 * MiB
 # Bytes per cell (measured or counted, as noted).
 READ_SCRATCH = 4  # nodata mask and boolean temporaries while reading (counted)
 CHECKSUM_SCRATCH = 13  # float64 copy of the DEM while it is hashed (counted)

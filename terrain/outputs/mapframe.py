@@ -64,6 +64,8 @@ NODATA = "#ece6da"
 HALO_PT = 2.6
 WIDTH_IN = 10.0  # every map is this wide
 MAP_HEIGHT_IN = 8.5  # and its map at most this tall
+MAX_STRETCH = 3.0  # a map at most this many times wider than tall (or taller than wide); a
+#                     thinner strip of raster is drawn stretched, and the subtitle says so
 
 #: name -> (matplotlib map, start, end): light (low values) to dark (high values)
 PALETTES = {"summits": ("magma", 0.97, 0.22), "water": ("cividis", 0.97, 0.08),
@@ -353,6 +355,11 @@ class MapFrame:
                                              headwidth=10, lw=0.6))
         self._legend_and_text()
         self.ax.set_aspect(self.aspect())  # imshow resets it
+        self.shown = self._shown_ratio()
+        if self.shown is not None:
+            self.ax.set_aspect("auto")
+            self.subtitle_text.set_text(self.subtitle_text.get_text() + "\nDrawn stretched: the "
+                                        "raster is a thin strip.")
         _lay_out(self)
         r = self.fig.canvas.get_renderer()
         fixed = [a.get_window_extent(r) for a in self.ax.artists + self.ax.texts
@@ -366,6 +373,14 @@ class MapFrame:
             self.footer_text.set_text(self._footer())
             _lay_out(self)
         return self.fig
+
+    def _shown_ratio(self) -> float | None:
+        """The height/width ratio to draw a thin strip at (None: true to scale)."""
+        x0, x1, y0, y1 = self.extent
+        ratio = abs((y1 - y0) / (x1 - x0)) * self.aspect()
+        if 1 / MAX_STRETCH <= ratio <= MAX_STRETCH:
+            return None
+        return min(max(ratio, 1 / MAX_STRETCH), MAX_STRETCH)
 
     def aspect(self) -> float:
         """Data aspect of the map: 1 in a projected CRS; 1 / cos(latitude of the
@@ -466,7 +481,7 @@ def _lay_out(frame: MapFrame) -> None:
     if cax is not None:
         bar_room = 0.25 + 0.2 + (cax.get_tightbbox(r).x1 - cax.get_window_extent(r).x1) / dpi
     x0, x1, y0, y1 = frame.extent
-    ratio = abs((y1 - y0) / (x1 - x0)) * ax.get_aspect()
+    ratio = getattr(frame, "shown", None) or abs((y1 - y0) / (x1 - x0)) * ax.get_aspect()
     room = width - 2 * pad - left - max((tight.x1 - box.x1) / dpi, 0) - bar_room
     map_w = min(room, MAP_HEIGHT_IN / ratio)
     map_h = map_w * ratio
@@ -518,12 +533,15 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
     .. [1] adjustText (Flyamer et al., Zenodo, 2024): iterative repulsion of
        text bounding boxes from each other and from given objects.
     """
+    r = ax.figure.canvas.get_renderer()
+    items = list(items)
+    if items and not _fits(ax, r, items[0][2], fontsize):
+        items = []  # a thin strip of a map: no label fits inside it (the footer names them)
     if not items:
         return []
     boxes = _marker_boxes(ax, avoid) + list(fixed)
     kept: dict[int, object] = {}
     todo = list(range(len(items)))
-    r = ax.figure.canvas.get_renderer()
     with _only_labels(ax):  # adjustText draws the figure; nothing else moves the labels
         for start in LABEL_STARTS:
             if not todo:
@@ -542,6 +560,15 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
     for i, t in kept.items():
         _leader(ax, t, items[i][:2], size.get(items[i][:2], 0.0))
     return [kept[i] for i in sorted(kept)]
+
+
+def _fits(ax: Axes, r, text: str, fontsize: float) -> bool:
+    """Whether a label like ``text`` fits inside the map's axes (with room to move)."""
+    t = ax.text(0, 0, text, fontsize=fontsize, transform=None)
+    box = t.get_window_extent(r)
+    t.remove()
+    axes = ax.get_window_extent(r)
+    return axes.height >= 2 * box.height and axes.width >= box.width
 
 
 class _only_labels:

@@ -24,7 +24,7 @@ import statistics
 import time
 
 import numpy as np
-from common import terrain
+from common import median_time, terrain
 
 
 def main():
@@ -107,22 +107,12 @@ def _bookkeeping(z, sampler, job) -> tuple:
     from terrain.jobs.credit import CreditAccumulator, realise
 
     pond = np.zeros(z.size, np.int32) if job.kind == "depressions" else None
-    t_regions = _median(lambda: regions(z, kind=job.filtration, merge_level=job.merge_level))
-    t_pairs = _median(lambda: pairs(z, kind=job.filtration))
-    t_plain = _median(lambda: _plain(z, sampler, job))
-    t_kept = _median(lambda: CreditAccumulator(z.size, job).add(
+    t_regions = median_time(lambda: regions(z, kind=job.filtration, merge_level=job.merge_level))
+    t_pairs = median_time(lambda: pairs(z, kind=job.filtration))
+    t_plain = median_time(lambda: _plain(z, sampler, job))
+    t_kept = median_time(lambda: CreditAccumulator(z.size, job).add(
         realise(z, sampler, job, 0, 0, pond), {}, 1))
     return job.kind, t_plain, t_kept, t_kept / t_plain - 1, t_regions, t_pairs
-
-
-def _median(fn, repeat: int = 3) -> float:
-    fn()
-    ts = []
-    for _ in range(repeat):
-        t = time.perf_counter()
-        fn()
-        ts.append(time.perf_counter() - t)
-    return statistics.median(ts)
 
 
 def _plain(z, sampler, job):

@@ -26,6 +26,7 @@ compares with the memory available.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
@@ -170,67 +171,49 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     """
     ex = ex if ex is not None else Execution()
     cells, value, stored = _grid(grid)
-    if getattr(ex, "block", None):
-        return _estimate_blocked(grid, job, ex, model=model, runs=runs, quicklook=quicklook)
     parent_job, worker_job = job.memory_per_cell(value)
     counts = sum(a.nbytes for a in job.new_counts(1).values())  # one chunk result per cell
     kept, draw = 0, FIELD_DRAW if model is not None and model.correlated else 0
     backend = ex.resolved_backend
     local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
     dem = value + 1
-    held = dem + CONTEXT + kept + parent_job + SWEEP_KEPT * (runs - 1)
-    if backend == "serial":
-        running = held + max(CHECKSUM_SCRATCH, worker_job + draw)
-    else:  # results in flight, one more being unpickled, the DEM pickled for a worker
-        running = held + max(CHECKSUM_SCRATCH, (2 * ex.n_workers + 1) * counts + CONTEXT + kept)
+    block = getattr(ex, "block", None)
+    labels = 4 if block else 0  # blocked: the region labels, read at birth cells
+    held = dem + CONTEXT + kept + labels + parent_job + SWEEP_KEPT * (runs - 1)
+    here = 0  # bytes of this process that do not scale with the grid's cells
+    if block:  # a worker holds one block task; this process the glue (and the task if serial)
+        task, glue = _block_bytes(grid, cells, int(block), draw)
+        running = held + max(CHECKSUM_SCRATCH, counts)
+        worker_cell, worker_bytes = math.ceil(task / max(cells, 1)), task
+        here = glue + (0 if local else task)
+    else:
+        if backend == "serial":
+            running = held + max(CHECKSUM_SCRATCH, worker_job + draw)
+        else:  # results in flight, one more being unpickled, the DEM pickled for a worker
+            running = held + max(CHECKSUM_SCRATCH,
+                                 (2 * ex.n_workers + 1) * counts + CONTEXT + kept)
+        worker_cell = CONTEXT + kept + worker_job + draw + 2 * counts if local else 0
+        worker_bytes = worker_cell * cells
     drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)  # a big grid is drawn in blocks
     phases = {"read": 2 * stored + value + READ_SCRATCH, "running": running,
               "finishing": held + MOMENTS_SCRATCH,
               "writing": dem + parent_job + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
               + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
-    worker_cell = CONTEXT + kept + worker_job + draw + 2 * counts if local else 0
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
-    parent = PROCESS_BYTES + max(phases.values()) * cells + log
-    worker = WORKER_PROCESS_BYTES + worker_cell * cells if local else 0
+    parent = PROCESS_BYTES + max(phases.values()) * cells + log + here
+    worker = WORKER_PROCESS_BYTES + worker_bytes if local else 0
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
-                          workers=local, cells=cells,
-                          per_cell={**phases, "worker": worker_cell})
+                          workers=local, cells=cells, per_cell={**phases, "worker": worker_cell},
+                          block=int(block) if block else None)
 
 
-def _estimate_blocked(grid, job, ex, *, model, runs, quicklook) -> MemoryEstimate:
-    """:func:`estimate_run` in blocked mode: a worker holds one block task at a
-    time; this process what the default mode holds for the grid, one chunk's
-    counts, the region labels and the glue of the block boundaries."""
-    cells, value, stored = _grid(grid)
-    parent_job, _ = job.memory_per_cell(value)
+def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:
+    """Blocked mode: the bytes of one block task and of the glue of the block
+    boundaries (both sides of every block line)."""
     rows, cols = grid.shape if hasattr(grid, "shape") else (cells, 1)
-    b = int(ex.block)
-    block_cells = min(b, rows) * min(b, cols)
     nbr, nbc = -(-rows // b), -(-cols // b)
-    boundary = 2 * ((nbr - 1) * cols + (nbc - 1) * rows)  # both sides of every block line
-    counts = sum(a.nbytes for a in job.new_counts(1).values())
-    draw = FIELD_DRAW if model is not None and model.correlated else 0
-    backend = ex.resolved_backend
-    local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
-    dem = value + 1
-    labels = 4  # the region labels, read at birth cells and by the ponding pass
-    held = dem + CONTEXT + labels + parent_job + SWEEP_KEPT * (runs - 1)
-    task = (BLOCK_TASK + draw) * block_cells
-    glue = GLUE_PER_BOUNDARY_CELL * boundary
-    # files for the workers: the DEM and labels are saved once, a block at a time
-    running = held + max(CHECKSUM_SCRATCH, counts)
-    drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)
-    phases = {"read": 2 * stored + value + READ_SCRATCH, "running": running,
-              "finishing": held + MOMENTS_SCRATCH,
-              "writing": dem + parent_job + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
-              + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
-    log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
-    parent = PROCESS_BYTES + max(phases.values()) * cells + log + glue + (0 if local else task)
-    worker = WORKER_PROCESS_BYTES + task if local else 0
-    return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
-                          workers=local, cells=cells,
-                          per_cell={**phases, "worker": math.ceil(task / max(cells, 1))},
-                          block=b)
+    boundary = 2 * ((nbr - 1) * cols + (nbc - 1) * rows)
+    return (BLOCK_TASK + draw) * min(b, rows) * min(b, cols), GLUE_PER_BOUNDARY_CELL * boundary
 
 
 def choose_block(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
@@ -238,8 +221,6 @@ def choose_block(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
     """The execution a run should use: ``ex`` itself when it fits in memory or
     already names a block (or the job has no blocked mode); else ``ex`` in
     blocked mode with :data:`DEFAULT_BLOCK` when that fits."""
-    import dataclasses
-
     if ex.block or getattr(job, "kind", None) not in ("peaks", "depressions"):
         return ex
     have = available_bytes()

@@ -48,9 +48,7 @@ from ..io import NpyWindows, create_npy, scratch_folder, write_npy_window
 from ..noise import ErrorSampler
 from .credit import CreditJob, pair_log, pond_log, realisation_threshold
 
-__all__ = ["PerturbedSource", "materialise", "realise_blocked", "NOISE_ALIGN"]
-
-NOISE_ALIGN = 256  # blocks of a multiple of this size keep the error's tiles whole
+__all__ = ["PerturbedSource", "materialise", "realise_blocked"]
 
 
 @dataclass(frozen=True)
@@ -110,14 +108,19 @@ def materialise(src: PerturbedSource, wins, out: Any, map: Callable[..., Iterabl
     return _array(out)
 
 
+def _interior(vals: np.ndarray, window: Window) -> np.ndarray:
+    """The window's own cells of ``vals``, the values of the window plus its halo."""
+    r, c = window.r0 - max(window.r0 - 1, 0), window.c0 - max(window.c0 - 1, 0)
+    return vals[r:r + window.r1 - window.r0, c:c + window.c1 - window.c0]
+
+
 def _local_task(src: Any, kind: str, connectivity: int, thr: float, termini: bool,
                 window: Window):
     """The local step of one block and the block's lowest value (for the base)."""
     vals = read_block(src, window, src.shape)
     s = local(vals, window, src.shape, kind="peaks" if kind == "peaks" else "pits",
               connectivity=connectivity, min_persistence=thr, termini=termini)
-    inner = vals[window.r0 - max(window.r0 - 1, 0):, window.c0 - max(window.c0 - 1, 0):]
-    inner = inner[:window.r1 - window.r0, :window.c1 - window.c0]
+    inner = _interior(vals, window)
     valid = inner[np.isfinite(inner)]
     return s, (float(valid.min()) if valid.size else math.inf)
 
@@ -129,7 +132,7 @@ def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolut
     vals = read_block(src, window, src.shape)
     lv, dp = finish_levels(vals, window, resolution)
     r0, r1, c0, c1 = window
-    zb = np.ascontiguousarray(src[r0:r1, c0:c1]).reshape(-1)
+    zb = np.ascontiguousarray(_interior(vals, window)).reshape(-1)
     reg = np.ascontiguousarray(_array(regions)[r0:r1, c0:c1]).reshape(-1).astype(np.int64)
     cnt = np.zeros(zb.size, np.int32)
     k = int(reg.max()) + 1 if reg.size else 1

@@ -65,7 +65,7 @@ def base_level(base: float | None, dem: Dem) -> float:
     """The level the highest summit is measured to: ``base`` or the DEM's lowest cell."""
     if base is not None:
         return float(base)
-    return float(np.nanmin(np.where(dem.nodata, np.nan, dem.z)))
+    return dem.lowest()
 
 
 def snap_radius(snap_m: float | None, dem: Dem) -> float:

@@ -12,7 +12,9 @@ import numpy as np
 
 from .errors import NoValidCellsError, OptionError
 
-__all__ = ["Dem", "RasterHeader", "metres_per_degree"]
+__all__ = ["Dem", "DiskDem", "RasterHeader", "metres_per_degree", "BAND_ROWS", "DemChecksum"]
+
+BAND_ROWS = 256  # rows per band when a DEM is read, hashed or reduced band by band
 
 # WGS84 ellipsoid (NIMA TR8350.2, 2000)
 _A = 6378137.0
@@ -215,11 +217,111 @@ class Dem:
         y = d * (c + 0.5) + e * (r + 0.5) + f
         return x, y
 
+    on_disk = False
+
+    def bands(self, rows: int = BAND_ROWS):
+        """Yield ``(r0, z, nodata)`` for bands of ``rows`` rows, top to bottom
+        (views of the arrays here; reads for a :class:`DiskDem`)."""
+        for r0 in range(0, self.shape[0], rows):
+            yield r0, self.z[r0:r0 + rows], self.nodata[r0:r0 + rows]
+
+    def window(self, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+        """Elevations of rows ``r0:r1`` and columns ``c0:c1`` (NaN on nodata)."""
+        return np.asarray(self.z[r0:r1, c0:c1])
+
+    def values_at(self, cells: np.ndarray) -> np.ndarray:
+        """Elevations (float64) at flat row-major ``cells``."""
+        cells = np.asarray(cells, np.int64)
+        return np.asarray(self.z).reshape(-1)[cells].astype(np.float64)
+
+    def lowest(self) -> float:
+        """The lowest valid elevation."""
+        return min(float(np.nanmin(np.where(nd, np.nan, z), initial=np.inf))
+                   for _, z, nd in self.bands())
+
     def checksum(self) -> str:
-        """SHA-256 of the elevations and mask (identifies the DEM in checkpoints)."""
-        h = hashlib.sha256()
-        h.update(str(self.z.shape).encode())
-        h.update(np.ascontiguousarray(np.where(self.nodata, 0, self.z), dtype=np.float64).tobytes())
-        h.update(np.packbits(self.nodata).tobytes())
+        """SHA-256 of the elevations and mask (identifies the DEM in checkpoints),
+        hashed band by band, so a DEM on disk gets it while it is read."""
+        h = DemChecksum(self.shape)
+        for _, z, nd in self.bands():
+            h.update(z, nd)
         return h.hexdigest()
+
+
+class DemChecksum:
+    """The DEM checksum fed band by band (bands of :data:`BAND_ROWS` rows, in order):
+    the shape, then per band its elevations as float64 (0 on nodata) and its
+    packed nodata mask."""
+
+    def __init__(self, shape):
+        self.h = hashlib.sha256()
+        self.h.update(str(tuple(int(x) for x in shape)).encode())
+
+    def update(self, z: np.ndarray, nodata: np.ndarray) -> None:
+        self.h.update(np.ascontiguousarray(np.where(nodata, 0, z), dtype=np.float64).tobytes())
+        self.h.update(np.packbits(nodata).tobytes())
+
+    def hexdigest(self) -> str:
+        return self.h.hexdigest()
+
+
+class _NanMask:
+    """The nodata mask of elevations on disk, read by window (NaN = nodata)."""
+
+    def __init__(self, z):
+        self.z = z
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(self.z.shape)
+
+    def __getitem__(self, key) -> np.ndarray:
+        return np.isnan(np.asarray(self.z[key]))
+
+
+@dataclass
+class DiskDem(Dem):
+    """A :class:`Dem` whose elevations stay on disk (out-of-core runs).
+
+    ``z`` reads windows (``z[r0:r1, c0:c1]`` returns an array, NaN on
+    nodata) of a file written once when the DEM was read
+    (:func:`terrain.io.read_dem` with ``scratch``); ``nodata`` reads the
+    mask the same way. Georeferencing and cell sizes are as for
+    :class:`Dem`. ``digest`` is the checksum, computed while reading;
+    ``scratch`` is the folder holding the file; ``new_grid(name, shape,
+    dtype)`` makes another grid-sized array on disk there (region labels).
+    """
+
+    digest: str = ""
+    scratch: str = ""
+    new_grid: object = None
+    lowest_value: float = float("nan")
+
+    on_disk = True
+
+    def __post_init__(self):
+        self.nodata = _NanMask(self.z)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(int(x) for x in self.z.shape)
+
+    def bands(self, rows: int = BAND_ROWS):
+        for r0 in range(0, self.shape[0], rows):
+            z = np.asarray(self.z[r0:r0 + rows, :])
+            yield r0, z, np.isnan(z)
+
+    def values_at(self, cells: np.ndarray) -> np.ndarray:
+        cells = np.asarray(cells, np.int64)
+        out = np.empty(cells.size)
+        rows, cols = np.divmod(cells, self.shape[1])
+        for k in range(cells.size):  # a few hundred cells: one small read each
+            out[k] = float(np.asarray(self.z[rows[k]:rows[k] + 1, cols[k]:cols[k] + 1])[0, 0])
+        return out
+
+    def lowest(self) -> float:
+        return float(self.lowest_value)
+
+    def checksum(self) -> str:
+        return self.digest
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import functools
 import glob
 import json
 import math
@@ -23,12 +24,14 @@ from pathlib import Path
 
 import numpy as np
 
-from .dem import Dem, RasterHeader
+from .dem import Dem, DiskDem, RasterHeader
 from .errors import (
     BandError,
     CairnWarning,
+    CheckpointError,
     CorruptRasterError,
     DemNotFoundError,
+    NoValidCellsError,
     NotARasterError,
     OptionError,
     OutletError,
@@ -44,7 +47,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
            "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
            "NpyWindows", "create_npy", "write_npy_window", "save_npy", "scratch_folder",
-           "remove_orphan_scratch",
+           "remove_orphan_scratch", "CountStore", "remove_store",
            "SCRATCH_PREFIX"]
 
 
@@ -69,7 +72,7 @@ def read_header(path: str | os.PathLike, *, band: int | None = None,
 
 def read_dem(path: str | os.PathLike, *, band: int | None = None,
              bbox: tuple[float, float, float, float] | None = None,
-             nodata: float | None = None) -> Dem:
+             nodata: float | None = None, scratch: str | os.PathLike | None = None) -> Dem:
     """Read one band of any raster GDAL can open into a :class:`~terrain.dem.Dem`.
 
     Parameters
@@ -85,6 +88,11 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
     nodata : float, optional
         Cells holding this value (as stored, before scale and offset) are
         nodata, in addition to any nodata value the file declares.
+    scratch : path-like, optional
+        A folder (see :func:`scratch_folder`): the DEM is read band by band
+        into a ``.npy`` file there and stays on disk -- a
+        :class:`~terrain.dem.DiskDem`, for out-of-core runs. Memory: one band
+        of :data:`~terrain.dem.BAND_ROWS` x 16 rows at a time.
 
     The band's scale and offset (GDAL metadata) are applied: elevation =
     stored value x scale + offset. ``Dem.meta`` records the band, box,
@@ -99,21 +107,109 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
     p = Path(path)
     with _open_raster(p) as ds:
         h = _header(p, ds, band, bbox, nodata)
+        if scratch is not None:
+            return _read_to_disk(p, ds, h, nodata, bbox, Path(scratch))
         arr = _read_band(p, ds, h.band, h.window)
     data = np.asarray(arr.data)
     mask = np.ma.getmaskarray(arr)
-    if nodata is not None and _fits(nodata, data.dtype):
-        mask |= data == data.dtype.type(nodata)
-    meta = _meta(data, mask, h, nodata)
-    z = data.astype(np.float32 if h.value_bytes == 4 else np.float64)
+    z, mask = _elevations(data, mask, h, nodata)
+    stats = _BandStats()
+    stats.add(data, mask)
+    meta = stats.meta(h, nodata)
     del data, arr
+    return Dem(z=z, nodata=mask, **_grid(h, p, meta, bbox))
+
+
+def _grid(h: RasterHeader, p: Path, meta: dict, bbox) -> dict:
+    """The georeferencing and metadata fields of a Dem read from ``p``."""
+    return dict(transform=h.transform, crs=h.crs, geographic=h.geographic,
+                linear_unit_m=h.linear_unit_m, vertical_units=h.vertical_units, source=str(p),
+                meta={**meta, "bbox": list(bbox) if bbox is not None else None})
+
+
+def _elevations(data: np.ndarray, mask: np.ndarray, h: RasterHeader, nodata):
+    """Stored values to elevations (scale, offset; NaN on nodata) and the full mask."""
+    if nodata is not None and _fits(nodata, data.dtype):
+        mask = mask | (data == data.dtype.type(nodata))
+    z = data.astype(np.float32 if h.value_bytes == 4 else np.float64)
     if h.scale != 1.0:
         z *= z.dtype.type(h.scale)
     if h.offset != 0.0:
         z += z.dtype.type(h.offset)
-    return Dem(z=z, nodata=mask, transform=h.transform, crs=h.crs, geographic=h.geographic,
-               linear_unit_m=h.linear_unit_m, vertical_units=h.vertical_units, source=str(p),
-               meta={**meta, "bbox": list(bbox) if bbox is not None else None})
+    return z, mask
+
+
+def _read_to_disk(p: Path, ds, h: RasterHeader, nodata, bbox, folder: Path) -> DiskDem:
+    """The DEM read band by band into ``folder/dem.npy`` (NaN on nodata)."""
+    from .dem import BAND_ROWS, DemChecksum
+
+    rows, cols = h.shape
+    dtype = np.float32 if h.value_bytes == 4 else np.float64
+    store = folder / "dem.npy"
+    create_npy(str(store), (rows, cols), dtype)
+    check, stats = DemChecksum(h.shape), _BandStats()
+    col_off, row_off = (h.window[0], h.window[1]) if h.window is not None else (0, 0)
+    step = BAND_ROWS * max(1, min(16, (64 << 20) // max(cols * 8 * BAND_ROWS, 1)))
+    for r0 in range(0, rows, step):
+        n = min(step, rows - r0)
+        arr = _read_band(p, ds, h.band, (col_off, row_off + r0, cols, n))
+        data = np.asarray(arr.data)
+        z, mask = _elevations(data, np.ma.getmaskarray(arr), h, nodata)
+        stats.add(data, mask)
+        mask |= ~np.isfinite(z)
+        z[mask] = np.nan
+        for s in range(0, n, BAND_ROWS):
+            check.update(z[s:s + BAND_ROWS], mask[s:s + BAND_ROWS])
+        write_npy_window(str(store), r0, 0, z)
+    if stats.valid == 0:
+        raise NoValidCellsError(f"{p}: no valid cells (all nodata or non-finite)")
+    z = NpyWindows(str(store))
+    return DiskDem(z=z, nodata=None, digest=check.hexdigest(), lowest_value=stats.lo,
+                   scratch=str(folder),
+                   new_grid=functools.partial(_new_grid, folder), **_grid(h, p, stats.meta(h, nodata),
+                                                                            bbox))
+
+
+def _new_grid(folder: Path, name: str, shape, dtype) -> NpyWindows:
+    """A grid-sized ``.npy`` array ``name`` in ``folder``, zeroed, read and written by window."""
+    path = str(folder / f"{name}.npy")
+    np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=tuple(shape)).flush()
+    return NpyWindows(path)
+
+
+class _BandStats:
+    """What the metadata says of the values read, summed band by band: non-finite
+    cells, the valid range, counts of common nodata sentinels."""
+
+    def __init__(self):
+        self.nonfinite = self.valid = 0
+        self.lo, self.hi = math.inf, -math.inf
+        self.sentinels = dict.fromkeys(SENTINELS, 0)
+
+    def add(self, data: np.ndarray, mask: np.ndarray) -> None:
+        if data.dtype.kind == "f":
+            self.nonfinite += int((~np.isfinite(data) & ~mask).sum())
+        vals = data[~mask & np.isfinite(data)] if data.size else data
+        self.valid += int(vals.size)
+        if vals.size:
+            self.lo, self.hi = min(self.lo, float(vals.min())), max(self.hi, float(vals.max()))
+            for value in SENTINELS:
+                if _fits(value, data.dtype):
+                    self.sentinels[value] += int(np.count_nonzero(vals == value))
+
+    def meta(self, h: RasterHeader, nodata) -> dict:
+        meta = {"dtype": h.dtype, "nodata_value": h.nodata_value,
+                "nonfinite_cells": self.nonfinite, "band": h.band, "nodata": nodata,
+                "scale": h.scale, "offset": h.offset,
+                "window": list(h.window) if h.window is not None else None}
+        if h.nodata_value is not None and np.isfinite(h.nodata_value) and self.valid:
+            meta["nodata_in_range"] = bool(self.lo <= h.nodata_value <= self.hi)
+        if h.nodata_value is None and nodata is None and self.valid:
+            for value, count in self.sentinels.items():
+                if count:
+                    meta["undeclared_sentinel"] = {"value": value, "cells": count}
+                    break
+        return meta
 
 
 def _fits(value: float, dtype: np.dtype) -> bool:
@@ -235,24 +331,6 @@ def _read_band(p: Path, ds, band: int, window):
     except Exception as exc:  # rasterio raises several classes for damaged files
         raise CorruptRasterError(f"{p}: pixels cannot be read, file truncated or damaged "
                                  f"({_short(exc)})") from None
-
-
-def _meta(data, mask, h: RasterHeader, nodata) -> dict:
-    nonfinite = int((~np.isfinite(data) & ~mask).sum()) if data.dtype.kind == "f" else 0
-    meta = {"dtype": h.dtype, "nodata_value": h.nodata_value, "nonfinite_cells": nonfinite,
-            "band": h.band, "nodata": nodata, "scale": h.scale, "offset": h.offset,
-            "window": list(h.window) if h.window is not None else None}
-    valid_vals = data[~mask & np.isfinite(data)] if data.size else data
-    if h.nodata_value is not None and np.isfinite(h.nodata_value) and valid_vals.size:
-        lo, hi = float(valid_vals.min()), float(valid_vals.max())
-        meta["nodata_in_range"] = bool(lo <= h.nodata_value <= hi)
-    if h.nodata_value is None and nodata is None and valid_vals.size:
-        for value in SENTINELS:
-            count = int(np.count_nonzero(valid_vals == value)) if _fits(value, data.dtype) else 0
-            if count:
-                meta["undeclared_sentinel"] = {"value": value, "cells": count}
-                break
-    return meta
 
 
 def available_memory() -> int:
@@ -1126,8 +1204,17 @@ class NpyWindows:
     def shape(self) -> tuple[int, int]:
         return tuple(int(x) for x in np.load(self.path, mmap_mode="r").shape)
 
+    @property
+    def dtype(self) -> np.dtype:
+        return np.load(self.path, mmap_mode="r").dtype
+
     def __getitem__(self, key) -> np.ndarray:
         return np.array(np.load(self.path, mmap_mode="r")[key])
+
+    def __setitem__(self, key, values) -> None:
+        mm = np.load(self.path, mmap_mode="r+")
+        mm[key] = values
+        del mm
 
 
 def create_npy(path: str, shape, dtype) -> None:
@@ -1191,3 +1278,95 @@ def _alive(pid: int) -> bool:
     except OSError:  # another user's live process
         return True
     return True
+
+
+class CountStore:
+    """Per-cell int32 counts of a run kept on disk (out-of-core runs): a Zarr
+    group chunked by block, each chunk stamped with the realisations it holds.
+
+    ``add(window, i, counts)`` adds realisation ``i``'s counts of one block
+    (windows aligned to the block grid): it reads the chunk's buffer holding
+    the realisations so far, writes the sum into the chunk's *other* buffer
+    and only then stamps the chunk, so a process killed between the writes
+    leaves the old buffer and stamp intact; a resumed run adds realisation
+    ``i`` again only where the stamp says it is missing. ``store[r0:r1,
+    c0:c1]`` reads counts by window. Memory: one chunk at a time; disk: 8
+    bytes per cell (two int32 buffers, compressed).
+
+    References
+    ----------
+    .. [1] Zarr storage specification, version 3 (2023), zarr-specs.readthedocs.io.
+    """
+
+    def __init__(self, path: str | os.PathLike, shape, block: int, *, resume: bool = False):
+        import zarr
+
+        self.path, self.shape, self.block = str(path), tuple(int(x) for x in shape), int(block)
+        nb = tuple(-(-s // self.block) for s in self.shape)
+        if resume:
+            try:
+                self.group = zarr.open_group(self.path, mode="r+")
+                arrays = [self.group[k] for k in ("counts_0", "counts_1", "applied")]
+            except Exception as exc:  # zarr raises several classes for a missing or bad store
+                raise CheckpointError(f"{self.path}: the run's per-cell counts are missing or "
+                                      f"damaged ({_short(exc)}); start afresh without "
+                                      "{resume}", "resume") from None
+            if arrays[0].shape != self.shape or arrays[0].chunks != (self.block,) * 2:
+                raise CheckpointError(f"{self.path}: the per-cell counts were made with another "
+                                      "grid or {block}; resume with the same {block}", "block")
+        else:
+            shutil.rmtree(self.path, ignore_errors=True)
+            self.group = zarr.open_group(self.path, mode="w")
+            for k in ("counts_0", "counts_1"):
+                self.group.create_array(k, shape=self.shape, chunks=(self.block,) * 2,
+                                        dtype="int32", fill_value=0)
+            self.group.create_array("applied", shape=nb, chunks=(1, 1), dtype="int64",
+                                    fill_value=0)
+        self.counts = (self.group["counts_0"], self.group["counts_1"])
+        self.applied = self.group["applied"]
+
+    def __getstate__(self):
+        raise TypeError("a CountStore stays in the process that opened it")
+
+    def add(self, window, i: int, counts: np.ndarray) -> None:
+        """Add realisation ``i``'s ``counts`` on ``window`` (one block) unless it is in already."""
+        r0, r1, c0, c1 = (int(v) for v in window[:4])
+        bi, bj = r0 // self.block, c0 // self.block
+        done = int(self.applied[bi, bj])
+        if done > i:
+            return
+        if done < i:
+            raise CheckpointError(f"{self.path}: block {bi},{bj} holds {done} realisations, "
+                                  f"not the {i} before this one; start afresh without {{resume}}",
+                                  "resume")
+        total = self.counts[done % 2][r0:r1, c0:c1] + np.asarray(counts, np.int32)
+        self.counts[(done + 1) % 2][r0:r1, c0:c1] = total
+        self.applied[bi, bj] = done + 1
+
+    def check(self, n: int, *, exact: bool = False) -> None:
+        """Every chunk holds at least (``exact``: exactly) ``n`` realisations."""
+        a = np.asarray(self.applied[:, :])
+        if a.min() < n or (exact and a.max() != n):
+            raise CheckpointError(f"{self.path}: the per-cell counts hold {a.min()} to {a.max()} "
+                                  f"realisations, not the checkpoint's {n}; start afresh without "
+                                  "{resume}", "resume")
+
+    def __getitem__(self, key) -> np.ndarray:
+        rs, cs = key
+        r0, r1, _ = rs.indices(self.shape[0])
+        c0, c1, _ = cs.indices(self.shape[1])
+        out = np.empty((r1 - r0, c1 - c0), np.int32)
+        b = self.block
+        a = np.asarray(self.applied[r0 // b:-(-r1 // b), c0 // b:-(-c1 // b)])
+        for bi in range(r0 // b, -(-r1 // b)):
+            for bj in range(c0 // b, -(-c1 // b)):
+                y0, y1 = max(r0, bi * b), min(r1, (bi + 1) * b)
+                x0, x1 = max(c0, bj * b), min(c1, (bj + 1) * b)
+                buf = self.counts[int(a[bi - r0 // b, bj - c0 // b]) % 2]
+                out[y0 - r0:y1 - r0, x0 - c0:x1 - c0] = buf[y0:y1, x0:x1]
+        return out
+
+
+def remove_store(path: str | os.PathLike) -> None:
+    """Remove a run's on-disk counts (a folder), if any."""
+    shutil.rmtree(path, ignore_errors=True)

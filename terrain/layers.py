@@ -10,7 +10,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["LayerSpec", "LAYERS", "spec", "layer_name", "layers_of", "units"]
+__all__ = ["LayerSpec", "LAYERS", "spec", "layer_name", "layers_of", "units", "read_window",
+           "layer_windows"]
 
 DRAINAGE_NOTE = ("describes the DEM's drainage under its stated error, not flood behaviour or "
                  "where water runs in a storm")
@@ -116,3 +117,28 @@ def units(name: str, vertical_units: str | None, weight: str = "persistence") ->
     if weight == "count":
         return "count"
     return vertical_units or "DEM units"
+
+
+def read_window(layers, r0: int, r1: int, c0: int, c1: int) -> dict:
+    """Every layer's (estimate, standard error) on rows ``r0:r1`` and columns ``c0:c1``.
+
+    ``layers`` is a run's layers: a dict of whole arrays, or a set computed
+    window by window when read (its ``read`` method; out-of-core runs).
+    """
+    if hasattr(layers, "read"):
+        return layers.read(r0, r1, c0, c1)
+    return {k: (m[r0:r1, c0:c1], e[r0:r1, c0:c1]) for k, (m, e) in layers.items()}
+
+
+def layer_windows(shape: tuple[int, int], cells: int = 1 << 22) -> list[tuple[int, int, int, int]]:
+    """Windows ``(r0, r1, c0, c1)`` covering a grid, row-major, about ``cells``
+    cells each (squares of whole 256-cell tiles, or full rows when the grid is
+    narrow), for reading and writing layers window by window."""
+    rows, cols = (int(x) for x in shape)
+    side = max(256, int(cells ** 0.5) // 256 * 256)
+    if cols <= 2 * side:
+        side_c, side_r = cols, max(256, cells // max(cols, 1) // 256 * 256)
+    else:
+        side_c = side_r = side
+    return [(r0, min(r0 + side_r, rows), c0, min(c0 + side_c, cols))
+            for r0 in range(0, rows, side_r) for c0 in range(0, cols, side_c)]

@@ -62,7 +62,7 @@ from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
            "realise", "pair_log", "pond_log", "log_weights", "concat_logs", "proportion", "region_figures",
-           "credit_layers"]
+           "credit_layers", "CreditLayers", "dem_regions"]
 
 KINDS = ("peaks", "depressions")
 FILTRATION = {"peaks": "peaks", "depressions": "pits"}  # the engine's name for each kind
@@ -161,9 +161,9 @@ class CreditJob:
         thr = defaults.cutoff(self.threshold, model.rmse)
         merge = defaults.merge_level(self.merge_level, model.rmse, thr)
         reg = self.regions
-        if reg is None or reg.merge_level != merge or reg.labels.shape != dem.shape:
-            reg = regions(dem.z, kind=self.filtration, merge_level=merge,
-                          connectivity=self.connectivity, mask=dem.nodata)
+        if reg is None or reg.merge_level != merge or tuple(reg.labels.shape) != dem.shape:
+            reg = dem_regions(dem, kind=self.filtration, merge_level=merge,
+                              connectivity=self.connectivity)
         return dataclasses.replace(
             self, threshold=thr, merge_level=merge, regions=reg, area_row=dem.cell_area_m2(),
             base=defaults.base_level(self.base, dem) if self.kind == "peaks" else None,
@@ -185,8 +185,8 @@ class CreditJob:
     def realise(self, z, sampler, seed, i, counts) -> dict:
         return realise(z, sampler, self, seed, i, counts.get("ponding"))
 
-    def accumulator(self, n_cells: int) -> CreditAccumulator:
-        return CreditAccumulator(n_cells, self)
+    def accumulator(self, n_cells: int, ponding=None) -> CreditAccumulator:
+        return CreditAccumulator(n_cells, self, ponding)
 
     def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
         """Accumulating process: the layers summed from the log at the end (4
@@ -198,6 +198,18 @@ class CreditJob:
         (4)."""
         parent = 48 + (4 if self.kind == "depressions" else 0) + 16 * len(self.layers)
         return parent, 3 * value_bytes + 17
+
+
+def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int) -> Regions:
+    """The regions of ``dem`` as given; a DEM on disk gets them block by block,
+    its labels in a grid on disk beside it (the same regions, bit for bit)."""
+    if not dem.on_disk:
+        return regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
+                       mask=dem.nodata)
+    from ..engine.blocked_regions import blocked_regions
+
+    return blocked_regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
+                           out=dem.new_grid("regions", dem.shape, np.int32))
 
 
 def realisation_threshold(job: CreditJob, kernel: Kernel, seed: int, i: int) -> float:
@@ -409,6 +421,32 @@ def credit_layers(log: dict, n: int, job: CreditJob, nc: int,
     return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
 
 
+class CreditLayers:
+    """A peaks or depressions run's layers, computed window by window when read
+    (out-of-core runs): ``read(r0, r1, c0, c1)`` gives every layer's (mean,
+    standard error) on a window, as :meth:`CreditAccumulator.window_layers`;
+    ``layers[name]`` the whole grid of one (small grids, tests)."""
+
+    def __init__(self, acc: CreditAccumulator, shape: tuple[int, int]):
+        self.acc, self.shape = acc, shape
+        self.names = tuple(s.name for s in layers_of(acc.job.kind))
+
+    def read(self, r0: int, r1: int, c0: int, c1: int) -> dict:
+        return self.acc.window_layers(self.shape, (r0, r1, c0, c1))
+
+    def __iter__(self):
+        return iter(self.names)
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    def keys(self):
+        return self.names
+
+    def __getitem__(self, name: str):
+        return self.read(0, self.shape[0], 0, self.shape[1])[name]
+
+
 class CreditAccumulator:
     """What a peaks or depressions run keeps while realisations come in.
 
@@ -425,15 +463,23 @@ class CreditAccumulator:
 
     _ARRAYS = ("fsum", "fsq", "fcount")
 
-    def __init__(self, n_cells: int, job: CreditJob):
+    def __init__(self, n_cells: int, job: CreditJob, ponding=None):
         self.job = job
         self.n = 0
         self.n_cells = n_cells
         k = len(job.regions) + 1 if job.regions is not None else 1
         self.fsum, self.fsq = np.zeros(k), np.zeros(k)
         self.fcount = np.zeros(k, np.int64)
-        self.ponding = np.zeros(n_cells, np.int32) if job.kind == "depressions" else None
+        self.ponding = None
+        if job.kind == "depressions":
+            self.ponding = np.zeros(n_cells, np.int32) if ponding is None else ponding
         self.logs: list[dict] = []
+
+    @property
+    def on_disk(self) -> bool:
+        """True when the ponding counts live on disk (a :class:`~terrain.io.CountStore`,
+        added to block by block as realisations are computed)."""
+        return self.ponding is not None and not isinstance(self.ponding, np.ndarray)
 
     def add(self, log: dict, counts: dict, n: int) -> None:
         _, reg, fig, _ = region_figures(log)
@@ -452,13 +498,27 @@ class CreditAccumulator:
             self.logs = [concat_logs(self.logs, fields)]
         return self.logs[0]
 
-    def layers(self, shape) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-        """Each layer's mean and standard error on the whole grid."""
-        out = credit_layers(self.log(), self.n, self.job, shape[1], (0, shape[0], 0, shape[1]))
+    def layers(self, shape, *, windows: bool = False):
+        """Each layer's mean and standard error on the whole grid, or (``windows``,
+        or when the counts are on disk) a :class:`CreditLayers` computing them
+        window by window when read."""
+        if windows or self.on_disk:
+            if self.on_disk:
+                self.ponding.check(self.n, exact=True)
+            return CreditLayers(self, tuple(shape))
+        return self.window_layers(tuple(shape), (0, shape[0], 0, shape[1]))
+
+    def window_layers(self, shape, window) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Each layer's mean and standard error on ``window`` (r0, r1, c0, c1)."""
+        r0, r1, c0, c1 = window
+        out = credit_layers(self.log(), self.n, self.job, shape[1], window)
         if self.ponding is not None:
-            m, e = proportion(self.ponding, self.n)
-            out[layer_name(self.job.kind, "ponding_probability")] = (m.reshape(shape),
-                                                                      e.reshape(shape))
+            if self.on_disk:
+                cnt = self.ponding[r0:r1, c0:c1]
+            else:
+                cnt = self.ponding.reshape(shape)[r0:r1, c0:c1]
+            m, e = proportion(cnt, self.n)
+            out[layer_name(self.job.kind, "ponding_probability")] = (m, e)
         return out
 
     def stop_statistic(self) -> float:
@@ -476,13 +536,16 @@ class CreditAccumulator:
     # -- checkpoint state ------------------------------------------------------
     def state(self) -> dict:
         st = {"n": np.array(self.n), **{k: getattr(self, k) for k in self._ARRAYS}}
-        if self.ponding is not None:
+        if self.ponding is not None and not self.on_disk:  # on disk: the store is the state
             st["ponding"] = self.ponding
         st.update({f"log_{k}": v for k, v in self.log().items()})
         return st
 
     def restore(self, st: dict) -> None:
-        for k in self._ARRAYS + (("ponding",) if self.ponding is not None else ()):
+        if self.on_disk:
+            self.ponding.check(int(st["n"]))
+        for k in self._ARRAYS + (("ponding",) if self.ponding is not None and not self.on_disk
+                                 else ()):
             if k not in st or st[k].shape != getattr(self, k).shape:
                 raise CheckpointError("checkpoint arrays do not match the DEM's size or regions")
             getattr(self, k)[:] = st[k]

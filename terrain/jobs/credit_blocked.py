@@ -159,7 +159,8 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
         The unperturbed DEM's region labels (``job.regions.labels``).
     ponding : (rows, cols) int32 array, optional
         For depressions, incremented in place, block by block, where the
-        cell is ponded (any array taking slice assignment: a memmap too).
+        cell is ponded (any array taking slice assignment: a memmap too; or
+        a :class:`~terrain.io.CountStore`, whose ``add`` is told ``i``).
     map : callable
         ``map(fn, windows)`` returning results in order (a pool's or a Dask
         client's); the default runs the blocks here, one after another.
@@ -216,7 +217,10 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
             area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
             task = functools.partial(_pond_task, src, regions, job.area_row, thr, res)
             for w, (cnt, wet, a, v) in zip(wins, map(task, wins)):
-                ponding[w.r0:w.r1, w.c0:w.c1] += cnt
+                if hasattr(ponding, "add"):  # counts on disk, stamped per block
+                    ponding.add(w, i, cnt)
+                else:
+                    ponding[w.r0:w.r1, w.c0:w.c1] += cnt
                 area[wet] += a
                 vol[wet] += v
             ponds = pond_log(i, area, vol)

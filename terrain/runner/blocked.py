@@ -19,8 +19,12 @@ hundred bytes; on a Dask cluster whose workers run
 on other machines that folder must be on a file system they share
 (``scratch``). The folder is removed when the run ends.
 
-This process still holds what the default mode holds for the run as a
-whole (the DEM, the region labels, the ponding counts and the log).
+With a DEM kept on disk (:class:`~terrain.dem.DiskDem`) the run is out of
+core: the DEM and region labels are read from their files, and the
+ponding counts of depressions live in a :class:`~terrain.io.CountStore`
+that each realisation adds to block by block, so this process holds the
+log and one block at a time. With a DEM in memory it holds what the
+default mode holds (the DEM, the region labels and the ponding counts).
 """
 
 from __future__ import annotations
@@ -60,7 +64,9 @@ def check_block(block: int | None, job=None) -> None:
 class BlockedContext:
     """What the blocked runner needs: the DEM and region labels (arrays, or
     ``.npy`` paths for tasks in other processes), the sampler, the resolved
-    job, the seed and the block side."""
+    job, the seed, the block side, the file each realisation is drawn into
+    and (out-of-core depressions) the on-disk ponding counts each
+    realisation adds to directly."""
 
     dem: Any
     regions: Any
@@ -69,6 +75,7 @@ class BlockedContext:
     seed: int
     block: int
     realisation: str | None = None
+    ponding: Any = None
 
 
 @contextlib.contextmanager
@@ -77,11 +84,16 @@ def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
     """Yield ``(dem, regions, realisation)``: the arrays themselves and None, or
     (``to_files``) paths of ``.npy`` copies in a new scratch folder under
     ``scratch`` (default: the system's temporary folder) and the path each
-    realisation is drawn into; the folder is removed on exit."""
-    if not to_files:
+    realisation is drawn into; the folder is removed on exit. Arrays already
+    on disk (:class:`~terrain.io.NpyWindows`) are passed by path, not copied."""
+    on_disk = not isinstance(z, np.ndarray)  # already files (a DEM kept on disk)
+    if not to_files and not on_disk:
         yield z, labels, None
         return
     with scratch_folder(scratch) as folder:
+        if on_disk:
+            yield z.path, labels.path, os.path.join(folder, "realisation.npy")
+            return
         yield (save_npy(os.path.join(folder, "dem.npy"), z),
                save_npy(os.path.join(folder, "regions.npy"), labels),
                os.path.join(folder, "realisation.npy"))
@@ -151,9 +163,12 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
         for a, b in plan:
             if stop():
                 return
-            counts = job.new_counts(shape[0] * shape[1])
-            ponding = counts.get("ponding")
-            grid = ponding.reshape(shape) if ponding is not None else None
+            if ctx.ponding is not None:  # counts on disk: added there, block by block
+                counts, grid = {}, ctx.ponding
+            else:
+                counts = job.new_counts(shape[0] * shape[1])
+                ponding = counts.get("ponding")
+                grid = ponding.reshape(shape) if ponding is not None else None
             logs = [realise_blocked(ctx.dem, ctx.sampler, job, ctx.seed, i, block=ctx.block,
                                     regions=ctx.regions, ponding=grid, map=bmap,
                                     scratch=ctx.realisation)

@@ -28,7 +28,7 @@ import numpy as np
 
 from ..dem import Dem
 from ..errors import MemoryGuardError, OptionError
-from ..io import available_memory, remove_orphan_scratch
+from ..io import CountStore, available_memory, remove_orphan_scratch
 from ..noise import ErrorModel, ErrorSampler
 from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
 from .blocked import BlockedContext, blocked_runner, check_block, scratch_arrays
@@ -282,6 +282,9 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
                    checkpoint_every, resume, target_se, check_every, min_realisations,
                    memory_check, block)
     check_block(block, job)
+    if dem.on_disk and block is None:
+        raise OptionError(f"{dem.source}: a DEM kept on disk is run block by block; give "
+                          "{block}", "block")
     remove_orphan_scratch()  # what a killed blocked run left in the temporary folder
     t0 = time.perf_counter()
     st = _start(dem, job, model, ex)
@@ -315,7 +318,8 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
             dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
                 st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
             runner = blocked_runner(
-                BlockedContext(dem_src, reg_src, st.sampler, st.job, int(seed), int(block), drawn),
+                BlockedContext(dem_src, reg_src, st.sampler, st.job, int(seed), int(block), drawn,
+                               acc.ponding if getattr(acc, "on_disk", False) else None),
                 chunks(start, realisations, size), ex.resolved_backend, ex.n_workers, scheduler,
                 halt)
         stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
@@ -350,12 +354,27 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     job = job.resolved(dem, model)
     w_m, h_m = dem.cell_metres()
     sampler = ErrorSampler(model, dem.shape, (float(np.mean(h_m)), float(np.mean(w_m))))
-    z = np.where(dem.nodata, np.nan, dem.z).astype(np.float32)
     params = run_params(dem, job, model, ex.seed)
-    acc = job.accumulator(z.size)
+    if dem.on_disk:  # out of core: the DEM's file is read by window; counts go to disk
+        z = dem.z
+        acc = job.accumulator(dem.shape[0] * dem.shape[1], **_count_store(dem, job, ex))
+    else:
+        z = np.where(dem.nodata, np.nan, dem.z).astype(np.float32)
+        acc = job.accumulator(z.size)
     if ex.resume:
         load_checkpoint(ex.checkpoint, acc, params)
     return _Start(job, used, sampler, z, params, acc)
+
+
+def _count_store(dem: Dem, job, ex: Execution) -> dict:
+    """The on-disk ponding counts of an out-of-core depressions run: beside the
+    checkpoint (``<checkpoint>.counts``, kept for a resume) or in the DEM's
+    scratch folder."""
+    if getattr(job, "kind", None) != "depressions":
+        return {}
+    path = (f"{ex.checkpoint}.counts" if ex.checkpoint is not None
+            else os.path.join(dem.scratch, "counts.zarr"))
+    return {"ponding": CountStore(path, dem.shape, int(ex.block), resume=ex.resume)}
 
 
 LOG_CHECK_BYTES = 64 * 2**20  # the log watch looks at the memory after each 64 MiB of log

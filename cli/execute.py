@@ -12,7 +12,16 @@ from pathlib import Path
 import click
 
 from terrain.errors import OutputError
-from terrain.io import claim_outdir, dem_warnings, file_exists, read_dem, read_header, remove_file, same_file
+from terrain.io import (
+    claim_outdir,
+    dem_warnings,
+    file_exists,
+    read_dem,
+    read_header,
+    remove_file,
+    same_file,
+    scratch_folder,
+)
 from terrain.noise import ErrorModel, rmse_from
 from terrain.resources import check_memory, choose_block
 from terrain.runner import Execution, RunInterrupted, run_ensemble
@@ -40,9 +49,15 @@ def header(path, opts: dict):
     return read_header(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"))
 
 
-def read(path, opts: dict):
-    """Read the DEM and say once what a user should know about it."""
-    dem = read_dem(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"))
+def read(path, opts: dict, *, on_disk: bool = False):
+    """Read the DEM and say once what a user should know about it; ``on_disk``
+    keeps it in a scratch folder (removed when the command ends) for an
+    out-of-core run."""
+    scratch = None
+    if on_disk:
+        scratch = click.get_current_context().with_resource(scratch_folder())
+    dem = read_dem(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"),
+                   scratch=scratch)
     for line in dem_warnings(dem):
         warn(line)
     return dem

@@ -31,8 +31,8 @@ from .errors import (
     CheckpointError,
     CorruptRasterError,
     DemNotFoundError,
-    NoValidCellsError,
     NotARasterError,
+    NoValidCellsError,
     OptionError,
     OutletError,
     OutputError,
@@ -47,7 +47,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
            "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
            "NpyWindows", "create_npy", "write_npy_window", "save_npy", "scratch_folder",
-           "remove_orphan_scratch", "CountStore", "remove_store",
+           "remove_orphan_scratch", "CountStore", "remove_store", "write_layers_by_window",
            "SCRATCH_PREFIX"]
 
 
@@ -991,18 +991,82 @@ def write_layer(dest: str | os.PathLike, dem: Dem, estimate: np.ndarray, se: np.
     """
     e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
     s = np.where(dem.nodata, np.nan, se).astype(np.float32)
-    suffix = f"; {note}" if note else ""
     with atomic_path(dest, bands=2) as tmp, _cog_staging(tmp):
         with _open_cog(tmp, dem) as ds:
             ds.write(e, 1)
             ds.write(s, 2)
-            ds.set_band_description(1, f"{name} ({units}){suffix}")
-            ds.set_band_description(2, f"{name} standard error ({units}){suffix}")
-            ds.units = (units, units)
-            ds.update_tags(**{k: _tag(v) for k, v in tags.items()},
-                           LAYER=name, DESCRIPTION=description)
-            for band, role in ((1, "estimate"), (2, "standard_error")):
-                ds.update_tags(band, ROLE=role, **({"NOTE": note} if note else {}))
+            _describe(ds, name=name, units=units, description=description, tags=tags, note=note)
+
+
+def _describe(ds, *, name: str, units: str, description: str, tags: dict, note: str) -> None:
+    """A layer's band descriptions, units, tags and note (see :func:`write_layer`)."""
+    suffix = f"; {note}" if note else ""
+    ds.set_band_description(1, f"{name} ({units}){suffix}")
+    ds.set_band_description(2, f"{name} standard error ({units}){suffix}")
+    ds.units = (units, units)
+    ds.update_tags(**{k: _tag(v) for k, v in tags.items()}, LAYER=name, DESCRIPTION=description)
+    for band, role in ((1, "estimate"), (2, "standard_error")):
+        ds.update_tags(band, ROLE=role, **({"NOTE": note} if note else {}))
+
+
+#: GDAL's block cache while layers are written window by window (bytes): the
+#: default (5% of the machine's memory) would dwarf an out-of-core run's own
+WINDOW_WRITE_CACHE = 256 * 2**20
+
+
+def write_layers_by_window(dests: dict, dem: Dem, read, windows, describe: dict) -> None:
+    """Write several layers as :func:`write_layer` does, window by window (out of core).
+
+    ``dests`` maps layer name to path; ``read(r0, r1, c0, c1)`` returns every
+    layer's (estimate, standard error) on a window; ``windows`` cover the
+    grid; ``describe[name]`` holds :func:`write_layer`'s ``units``,
+    ``description``, ``tags`` and ``note``. Each layer is first written by
+    window into a tiled staging GeoTIFF beside its destination (DEFLATE,
+    removed when done), then copied by GDAL's COG driver with
+    :data:`COG_OPTIONS`, which reads it back tile by tile, so the file is
+    laid out exactly as :func:`write_layer` lays it out. Memory: the layers
+    of one window (8 bytes per window cell per layer) and GDAL's block
+    cache, held to :data:`WINDOW_WRITE_CACHE`.
+    """
+    import rasterio
+    import rasterio.shutil
+
+    stages = {n: Path(d).parent / f".{Path(d).name}.tiles.tif" for n, d in dests.items()}
+    try:
+        with rasterio.Env(GDAL_CACHEMAX=WINDOW_WRITE_CACHE), contextlib.ExitStack() as open_:
+            out = {n: open_.enter_context(_open_tiles(p, dem)) for n, p in stages.items()}
+            for r0, r1, c0, c1 in windows:
+                nd = np.isnan(dem.window(r0, r1, c0, c1))
+                win = rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0)
+                for n, (est, se) in read(r0, r1, c0, c1).items():
+                    if n in out:
+                        for band, v in ((1, est), (2, se)):
+                            out[n].write(np.where(nd, np.nan, v).astype(np.float32), band,
+                                         window=win)
+            for n, ds in out.items():
+                _describe(ds, name=n, **describe[n])
+        for n, dest in dests.items():
+            with rasterio.Env(GDAL_CACHEMAX=WINDOW_WRITE_CACHE), \
+                    atomic_path(dest, bands=2) as tmp, _cog_staging(tmp):
+                rasterio.shutil.copy(stages[n], tmp, **COG_OPTIONS)
+    finally:
+        for p in stages.values():
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(p)
+
+
+def _open_tiles(path: Path, dem: Dem):
+    """A two-band float32 tiled GeoTIFF on ``dem``'s grid, written by window."""
+    import rasterio
+    from rasterio.transform import Affine
+
+    rows, cols = dem.shape
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return rasterio.open(path, "w", driver="GTiff", height=rows, width=cols, count=2,
+                             dtype="float32", crs=dem.crs, transform=Affine(*dem.transform),
+                             nodata=np.nan, tiled=True, blockxsize=256, blockysize=256,
+                             compress="deflate", zlevel=1, predictor=3, bigtiff="IF_SAFER")
 
 
 def _open_cog(tmp: Path, dem: Dem):

@@ -48,7 +48,7 @@ from ..io import NpyWindows, create_npy, scratch_folder, write_npy_window
 from ..noise import ErrorSampler
 from .credit import CreditJob, pair_log, pond_log, realisation_threshold
 
-__all__ = ["PerturbedSource", "materialise", "realise_blocked"]
+__all__ = ["PerturbedSource", "materialise", "realise_blocked", "ponding_totals", "grid_values_at"]
 
 
 @dataclass(frozen=True)
@@ -225,11 +225,41 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
                 vol[wet] += v
             ponds = pond_log(i, area, vol)
     return {**pair_log(p, death_value, thr, i, math.prod(shape),
-                       lambda b: _region_at(regions, b, shape[1])), **ponds}
+                       lambda b: grid_values_at(regions, b, shape[1])), **ponds}
 
 
-def _region_at(regions: Any, cells: np.ndarray, nc: int) -> np.ndarray:
-    """Region labels at flat ``cells`` (int32), read 256 rows at a time."""
+def ponding_totals(source: Any, regions: Any, area_row: np.ndarray, threshold: float, *,
+                   connectivity: int, k: int, block: int = 1024,
+                   map: Callable[..., Iterable] = builtins.map) -> tuple[np.ndarray, np.ndarray]:
+    """Ponded area and volume per region of the surface ``source`` (read by
+    window, NaN on nodata), block by block, in the fixed point of
+    :func:`~terrain.engine.persistence.count_ponding` (``k`` regions + 1):
+    the very sums it makes on the whole grid.
+
+    References
+    ----------
+    .. [1] Barnes, R. (2016). Parallel Priority-Flood depression filling for
+       trillion cell digital elevation models on desktops or clusters.
+       Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
+    """
+    wins = windows(tuple(source.shape), block)
+    out = list(map(functools.partial(_local_task, source, "depressions", connectivity,
+                                     threshold, True), wins))
+    res = glue([s for s, _ in out])
+    del out
+    area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
+    task = functools.partial(_pond_task, source, regions, area_row, threshold, res)
+    for _, wet, a, v in map(task, wins):
+        area[wet] += a
+        vol[wet] += v
+    return area, vol
+
+
+def grid_values_at(regions: Any, cells: np.ndarray, nc: int) -> np.ndarray:
+    """Values (int32: region labels) of a grid at flat ``cells``, read 256 rows
+    at a time (an array, or anything read by window)."""
+    if isinstance(regions, np.ndarray):
+        return regions.reshape(-1)[cells].astype(np.int32)
     out = np.empty(cells.size, np.int32)
     rows = cells // nc
     order = np.argsort(rows, kind="stable")

@@ -127,6 +127,32 @@ def _pool(a: np.ndarray, k: int, how) -> np.ndarray:
         return how(blocks, axis=(1, 3))
 
 
+def pool_bands(read, shape: tuple[int, int], k: int, how) -> np.ndarray:
+    """A raster too large to hold, pooled in ``k`` x ``k`` blocks as :class:`MapFrame`
+    pools: ``read(r0, r1)`` returns rows ``r0:r1`` (float64, NaN for nodata),
+    read in bands of whole blocks, so only one band is held at a time."""
+    rows, _ = shape
+    step = k * max(1, 256 // k)
+    return np.concatenate([_pool(np.asarray(read(r0, min(r0 + step, rows)), np.float64), k, how)
+                           for r0 in range(0, rows, step)])
+
+
+def pooled_dem(dem: Dem, k: int) -> Dem:
+    """``dem`` pooled in ``k`` x ``k`` blocks (mean of the valid cells; nodata where a
+    block has none) on a grid ``k`` times coarser, read band by band: the base
+    of a quick-look of a DEM kept on disk."""
+    a, b, c, d, e, f = dem.transform
+    z = pool_bands(lambda r0, r1: dem.window(r0, r1, 0, dem.shape[1]), dem.shape, k, np.nanmean)
+    return Dem(z=z, nodata=np.isnan(z), transform=(a * k, b * k, c, d * k, e * k, f), crs=dem.crs,
+               geographic=dem.geographic, linear_unit_m=dem.linear_unit_m,
+               vertical_units=dem.vertical_units, source=dem.source)
+
+
+def pooling(shape: tuple[int, int]) -> int:
+    """The block side a map pools a raster of ``shape`` by."""
+    return max(1, math.ceil(max(shape) / MAX_PIXELS))
+
+
 def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
               k: int = 1) -> np.ndarray:
     """Hillshade in [0, 1] (matplotlib's LightSource, cell sizes in metres).
@@ -182,7 +208,7 @@ class MapFrame:
         from matplotlib.figure import Figure
 
         self.dem = dem
-        self.k = max(1, math.ceil(max(dem.shape) / MAX_PIXELS))
+        self.k = pooling(dem.shape)
         rows, cols = dem.shape
         a, _, c, _, e, f = dem.transform
         self.extent = (c, c + a * cols, f + e * rows, f)

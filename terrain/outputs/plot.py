@@ -16,11 +16,23 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ..dem import Dem
-from ..layers import LAYERS, layer_name, spec, units
+from ..layers import LAYERS, layer_name, read_window, spec, units
 from ..outlets import short
 from ..summary.features import LAYER_NAMES
 from .caution import CAUTION
-from .mapframe import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, MapFrame, hillshade, palette, short_unit
+from .mapframe import (
+    FONT_PT,
+    INK,
+    OUTLINE_COLOURS,
+    PALETTES,
+    MapFrame,
+    hillshade,
+    palette,
+    pool_bands,
+    pooled_dem,
+    pooling,
+    short_unit,
+)
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -182,12 +194,16 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     sub = (f"labels: #id, expected {kind['figure']}, P(ranks first) - the {LABELLED} largest "
            f"features counted in at least {LABEL_PRESENCE:.0%} of realisations")
     main = layer_name(job.kind, kind["main"])
+    if dem.on_disk:  # out of core: draw from rasters pooled band by band
+        dem, values, inside, tops = _pooled_view(result, features, main)
+    else:
+        values = result.layers[main][0]
+        inside = np.isin(features.regions.labels, table["feature_id"].to_numpy())
+        tops = features.top[0:dem.shape[0], 0:dem.shape[1]] > 0 if job.kind == "peaks" else None
     frame = MapFrame(dem, title=kind["title"], subtitle=sub, footer=run_footer(result, main),
                      caution=CAUTION)
-    values = result.layers[main][0]
-    inside = np.isin(features.regions.labels, table["feature_id"].to_numpy())
     if job.kind == "peaks":  # elsewhere, single noise summits would speckle the whole map
-        values = np.where(features.top > 0, values, 0.0)
+        values = np.where(tops, values, 0.0)
         vmax, note = _round_up(float(np.nanmax(values, initial=0.0))), ", where the tops are"
     else:
         vmax, note = 1.0, f"; clear under {PONDING_FLOOR:.0%}"
@@ -215,6 +231,29 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
         frame.label(row.x, row.y, f"#{row.feature_id} {figure_text(row.expected)} {unit} · "
                                   f"first {share_text(row.p_first)}", name=f"#{row.feature_id}")
     return frame.figure()
+
+
+def _pooled_view(result: RunResult, features: FeatureSummary, main: str):
+    """The DEM and the map's rasters pooled as a map pools them, read band by
+    band from a run kept on disk: (pooled DEM, layer (max), inside a feature
+    (any cell), on a top (any cell))."""
+    dem = result.dem
+    k, cols = pooling(dem.shape), dem.shape[1]
+    ids = features.table["feature_id"].to_numpy()
+
+    def layer(r0, r1):
+        return np.where(np.isnan(dem.window(r0, r1, 0, cols)), np.nan,
+                        read_window(result.layers, r0, r1, 0, cols)[main][0])
+
+    def inside(r0, r1):
+        return np.isin(np.asarray(features.regions.labels[r0:r1, 0:cols]), ids).astype(float)
+
+    def tops(r0, r1):
+        return (features.top[r0:r1, 0:cols] > 0).astype(float)
+
+    return (pooled_dem(dem, k), pool_bands(layer, dem.shape, k, np.nanmax),
+            pool_bands(inside, dem.shape, k, np.nanmax) > 0,
+            pool_bands(tops, dem.shape, k, np.nanmax) > 0 if result.job.kind == "peaks" else None)
 
 
 def _round_up(x: float) -> float:

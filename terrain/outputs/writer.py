@@ -35,9 +35,10 @@ from ..io import (
     write_frames,
     write_json,
     write_layer,
+    write_layers_by_window,
 )
 from ..jobs.credit import LOG_FIELDS
-from ..layers import DRAINAGE_NOTE, spec, units
+from ..layers import DRAINAGE_NOTE, layer_windows, read_window, spec, units
 from ..summary.catchments import FRAME_COLUMN_KINDS
 from ..summary.features import COLUMN_KINDS
 from ..sweep import SENSITIVITY_COLUMN_KINDS, SWEEP_COLUMN_KINDS
@@ -146,13 +147,21 @@ def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
     tags = _tags(result, command_line)
     weight = getattr(result.job, "weight", "persistence")
     full = dict(zip(getattr(result.job, "layer_ids", ()), getattr(result.job, "ids", ())))
-    for name, (est, se) in result.layers.items():
+    describe = {}
+    for name in result.layers.keys():
         s = spec(name)
         oid = name[len(s.name.split("{id}")[0]):] if "{id}" in s.name else None
         desc = s.description.replace("{id}", full.get(oid, oid)) if oid else s.description
-        write_layer(outdir / f"{name}.tif", result.dem, est, se, name=name,
-                    units=units(name, result.dem.vertical_units, weight), description=desc,
-                    tags={**tags, **({"note": s.note} if s.note else {})}, note=s.note)
+        describe[name] = dict(units=units(name, result.dem.vertical_units, weight),
+                              description=desc, note=s.note,
+                              tags={**tags, **({"note": s.note} if s.note else {})})
+    if result.dem.on_disk:  # out of core: every layer written window by window
+        write_layers_by_window({n: outdir / f"{n}.tif" for n in describe}, result.dem,
+                               functools.partial(read_window, result.layers),
+                               layer_windows(result.dem.shape), describe)
+        return
+    for name, (est, se) in result.layers.items():
+        write_layer(outdir / f"{name}.tif", result.dem, est, se, name=name, **describe[name])
 
 
 def vector_descriptions(result, names, *, note: str = "") -> dict:

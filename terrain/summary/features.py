@@ -26,7 +26,8 @@ from scipy import ndimage
 from ..dem import Dem
 from ..engine.persistence import AREA_QUANTUM, VOLUME_QUANTUM, count_ponding, pits_and_levels
 from ..jobs.credit import log_weights, region_figures
-from ..layers import layer_name
+from ..jobs.credit_blocked import grid_values_at, ponding_totals
+from ..layers import layer_name, layer_windows, read_window
 
 __all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE", "RANKS",
            "FeatureSummary", "FigureMatrix", "figure_matrix", "rank_shares", "summarise_features",
@@ -125,9 +126,10 @@ class FeatureSummary:
         One row per feature, by rank (columns :data:`COLUMNS` of the kind).
     frames : dict
         GeoDataFrames by layer name (:data:`LAYER_NAMES`).
-    top : (rows, cols) int32 array
-        Per cell, the feature whose top (peaks: where the top is, 90%) or
-        ponded extent (depressions) it belongs to; 0 elsewhere.
+    top : SparseTop or PondedTop
+        Read by window (``top[r0:r1, c0:c1]``): per cell, the feature whose
+        top (peaks: where the top is, 90%) or ponded extent (depressions) it
+        belongs to; 0 elsewhere.
     settings : dict
         The rules that made the rows (recorded in run.json).
     rank_share : pandas.DataFrame, optional
@@ -138,7 +140,7 @@ class FeatureSummary:
     regions: object
     table: pd.DataFrame
     frames: dict
-    top: np.ndarray
+    top: object
     settings: dict
     rank_share: pd.DataFrame | None = None
 
@@ -197,31 +199,95 @@ def _xy(dem: Dem, cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.where(cells >= 0, x, np.nan), np.where(cells >= 0, y, np.nan)
 
 
-def _areas(dem: Dem, labels: np.ndarray, ids: np.ndarray) -> np.ndarray:
+def _windows(shape) -> list:
+    return layer_windows(shape)
+
+
+def _areas(dem: Dem, labels, ids: np.ndarray) -> np.ndarray:
+    """Area (m^2) of the cells labelled with each of ``ids``, summed window by window."""
+    out = np.zeros(ids.size)
     if ids.size == 0:
-        return np.zeros(0)
-    weights = np.broadcast_to(dem.cell_area_m2()[:, None], labels.shape)
-    return ndimage.sum_labels(weights, labels, index=ids)
+        return out
+    area = dem.cell_area_m2()
+    for r0, r1, c0, c1 in _windows(dem.shape):
+        lab = np.asarray(labels[r0:r1, c0:c1])
+        out += ndimage.sum_labels(np.broadcast_to(area[r0:r1, None], lab.shape), lab, index=ids)
+    return out
 
 
-def _top_cells(log: dict, labels: np.ndarray, ids: np.ndarray) -> np.ndarray:
+def _best_cells(result, labels, ids: np.ndarray) -> np.ndarray:
+    """Per region in ``ids``: the cell of its largest birth credit (ties: the
+    first in row-major order), found window by window."""
+    name = layer_name(result.job.kind, "birth_credit")
+    best_v, best = np.full(ids.size, -np.inf), np.full(ids.size, -1, np.int64)
+    nc = result.dem.shape[1]
+    for r0, r1, c0, c1 in _windows(result.dem.shape):
+        lab = np.asarray(labels[r0:r1, c0:c1]).reshape(-1)
+        sel = np.flatnonzero(np.isin(lab, ids))
+        if not sel.size:
+            continue
+        v = np.nan_to_num(read_window(result.layers, r0, r1, c0, c1)[name][0]).reshape(-1)[sel]
+        rr, cc = np.divmod(sel, c1 - c0)
+        flat = (rr + r0) * nc + cc + c0
+        order = np.lexsort((flat, -v, lab[sel]))
+        g = lab[sel][order]
+        first = order[np.r_[True, g[1:] != g[:-1]]]
+        k = np.searchsorted(ids, lab[sel][first])
+        better = (v[first] > best_v[k]) | ((v[first] == best_v[k]) & (flat[first] < best[k]))
+        best_v[k[better]], best[k[better]] = v[first][better], flat[first][better]
+    return best
+
+
+class SparseTop:
+    """Where each summit's top is: a few cells per feature, read by window
+    (``top[r0:r1, c0:c1]``: the feature id per cell, 0 elsewhere)."""
+
+    def __init__(self, shape, cells: np.ndarray, ids: np.ndarray):
+        self.shape, self.cells, self.ids = tuple(shape), cells, ids
+
+    def __getitem__(self, key) -> np.ndarray:
+        (r0, r1, _), (c0, c1, _) = (k.indices(n) for k, n in zip(key, self.shape))
+        out = np.zeros((r1 - r0, c1 - c0), np.int32)
+        r, c = np.divmod(self.cells, self.shape[1])
+        inside = (r >= r0) & (r < r1) & (c >= c0) & (c < c1)
+        out[r[inside] - r0, c[inside] - c0] = self.ids[inside]
+        return out
+
+
+class PondedTop:
+    """Each depression's ponded extent (cells ponded in at least
+    :data:`PONDED_SHARE` of realisations, inside the feature's region), read
+    by window from the ponding probability layer and the region labels."""
+
+    def __init__(self, result, labels, ids: np.ndarray):
+        self.result, self.labels, self.ids = result, labels, ids
+        self.shape = tuple(result.dem.shape)
+
+    def __getitem__(self, key) -> np.ndarray:
+        (r0, r1, _), (c0, c1, _) = (k.indices(n) for k, n in zip(key, self.shape))
+        p = read_window(self.result.layers, r0, r1, c0, c1)[
+            layer_name("depressions", "ponding_probability")][0]
+        lab = np.asarray(self.labels[r0:r1, c0:c1])
+        return np.where((p >= PONDED_SHARE) & np.isin(lab, self.ids), lab, 0).astype(np.int32)
+
+
+def _top_cells(log: dict, labels, ids: np.ndarray, shape) -> SparseTop:
     """Per region in ``ids``: the fewest cells holding TOP_SHARE of the births
     of its figure's pair (the feature's summit in each realisation), most
-    frequent first; returns a label raster (0 elsewhere)."""
+    frequent first."""
     *_, birth = region_figures(log, with_birth=True)
-    lab = labels.reshape(-1)
-    flat = np.bincount(birth, minlength=lab.size).astype(np.float64)
-    cand = np.flatnonzero((flat > 0) & np.isin(lab, ids))
-    order = cand[np.lexsort((cand, -flat[cand], lab[cand]))]
-    g, c = lab[order], flat[order].astype(np.float64)
+    cells, counts = np.unique(birth, return_counts=True)
+    lab = grid_values_at(labels, cells, shape[1])
+    keep_ = np.isin(lab, ids)
+    cand, flat, lab = cells[keep_], counts[keep_].astype(np.float64), lab[keep_]
+    order = np.lexsort((cand, -flat, lab))
+    g, c = lab[order], flat[order]
     start = np.r_[0, np.flatnonzero(g[1:] != g[:-1]) + 1]
     total = np.add.reduceat(c, start) if c.size else c
     group = np.repeat(np.arange(start.size), np.diff(np.r_[start, c.size]))
     before = np.cumsum(c) - c - np.r_[0, np.cumsum(c)][start][group] if c.size else c
     keep = order[before < TOP_SHARE * total[group]] if c.size else order
-    out = np.zeros(flat.size, np.int32)
-    out[keep] = lab[keep]
-    return out.reshape(labels.shape)
+    return SparseTop(shape, cand[keep], lab[keep].astype(np.int32))
 
 
 def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
@@ -229,8 +295,7 @@ def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
     k = ids - 1
     base = job.base if job.base is not None else 0.0
     death = reg.death[k]
-    fig = np.where(death < 0, reg.birth_value[k] - min(base, float(np.nanmin(
-        np.where(dem.nodata, np.nan, dem.z)))), reg.persistence[k])
+    fig = np.where(death < 0, reg.birth_value[k] - min(base, dem.lowest()), reg.persistence[k])
     bx, by = _xy(dem, reg.birth[k])
     dx, dy = _xy(dem, death)
     d = _DEATH[job.kind]
@@ -249,8 +314,12 @@ def unperturbed_ponding(dem: Dem, job) -> tuple[np.ndarray, np.ndarray]:
     to the filled level times the cell's area. On a DEM a water surface is
     the floor, so this is storage above the surface the DEM captured.
     """
-    _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
     k = len(job.regions) + 1
+    if dem.on_disk:
+        area, volume = ponding_totals(dem.z, job.regions.labels, job.area_row, job.threshold,
+                                      connectivity=job.connectivity, k=k)
+        return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
+    _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
     area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)
     count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
                   np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
@@ -282,15 +351,13 @@ def _table(result, fm: FigureMatrix, rows: np.ndarray) -> pd.DataFrame:
     ids = fm.ids[rows]
     cols = _figure_columns(fm, rows, n)
     labels = job.regions.labels
-    credit = np.nan_to_num(result.layers[layer_name(job.kind, "birth_credit")][0])
-    best = np.asarray(ndimage.maximum_position(credit, labels, index=ids), np.int64).reshape(-1, 2)
-    best = best[:, 0] * dem.shape[1] + best[:, 1] if ids.size else np.zeros(0, np.int64)
+    best = _best_cells(result, labels, ids)
     bx, by = _xy(dem, best)
-    dcell, delev, dshare = _most_credited_deaths(result.log, ids, dem.z.size)
+    dcell, delev, dshare = _most_credited_deaths(result.log, ids, dem.shape[0] * dem.shape[1])
     dx, dy = _xy(dem, dcell)
     d = _DEATH[job.kind]
     data = {"feature_id": ids, **cols, "x": bx, "y": by,
-            "elevation": dem.z.reshape(-1)[best].astype(np.float64),
+            "elevation": dem.values_at(best),
             f"{d}_x": dx, f"{d}_y": dy, f"{d}_elevation": delev, f"{d}_share": dshare,
             **_unperturbed(dem, job, ids), "region_area_m2": _areas(dem, labels, ids)}
     if job.kind == "depressions":
@@ -311,11 +378,10 @@ def summarise_features(result) -> FeatureSummary:
     ids = data["feature_id"]
     share = dict(zip(ids.tolist(), data.pop(f"{_DEATH[job.kind]}_share")))
     if job.kind == "peaks":
-        top = _top_cells(result.log, job.regions.labels, ids)
+        top = _top_cells(result.log, job.regions.labels, ids, dem.shape)
         data["top_area_m2"] = _areas(dem, top, ids)
     else:
-        wet = result.layers[layer_name("depressions", "ponding_probability")][0] >= PONDED_SHARE
-        top = np.where(wet & np.isin(job.regions.labels, ids), job.regions.labels, 0)
+        top = PondedTop(result, job.regions.labels, ids)
     table = pd.DataFrame(data, columns=list(COLUMNS[job.kind])).sort_values(
         "rank", kind="stable").reset_index(drop=True)
     settings = {"merge_level": job.merge_level, "min_presence": job.min_presence,
@@ -347,8 +413,10 @@ def rank_shares(fm: FigureMatrix, ids: np.ndarray, kmax: int = RANKS) -> pd.Data
     return pd.DataFrame(out, index=pd.Index(ids, name="feature_id"), columns=range(1, kmax + 1))
 
 
-def region_polygons(dem: Dem, labels: np.ndarray, ids, *, connectivity: int = 8) -> list:
-    """Shapely (multi)polygons of the cells labelled with each of ``ids``, in CRS coordinates."""
+def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
+    """Shapely (multi)polygons of the cells labelled with each of ``ids``, in CRS
+    coordinates; ``labels`` is an array or anything read by window
+    (``labels[r0:r1, c0:c1]``), traced window by window and joined."""
     from rasterio.features import shapes
     from rasterio.transform import Affine
     from shapely.geometry import shape
@@ -357,10 +425,14 @@ def region_polygons(dem: Dem, labels: np.ndarray, ids, *, connectivity: int = 8)
     ids = list(ids)
     where = {int(i): k for k, i in enumerate(ids)}
     parts: list[list] = [[] for _ in ids]
-    mask = np.isin(labels, ids) & (labels > 0)
-    if mask.any():
-        for geom, value in shapes(labels.astype(np.int32), mask=mask, connectivity=connectivity,
-                                  transform=Affine(*dem.transform)):
+    t = Affine(*dem.transform)
+    for r0, r1, c0, c1 in _windows(dem.shape):
+        lab = np.asarray(labels[r0:r1, c0:c1]).astype(np.int32)
+        mask = np.isin(lab, ids) & (lab > 0)
+        if not mask.any():
+            continue
+        for geom, value in shapes(lab, mask=mask, connectivity=connectivity,
+                                  transform=t * Affine.translation(c0, r0)):
             parts[where[int(value)]].append(shape(geom))
     return [unary_union(p) if p else None for p in parts]
 

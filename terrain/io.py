@@ -1366,7 +1366,6 @@ class CountStore:
         import zarr
 
         self.path, self.shape, self.block = str(path), tuple(int(x) for x in shape), int(block)
-        nb = tuple(-(-s // self.block) for s in self.shape)
         if resume:
             try:
                 self.group = zarr.open_group(self.path, mode="r+")
@@ -1375,19 +1374,47 @@ class CountStore:
                 raise CheckpointError(f"{self.path}: the run's per-cell counts are missing or "
                                       f"damaged ({_short(exc)}); start afresh without "
                                       "{resume}", "resume") from None
-            if arrays[0].shape != self.shape or arrays[0].chunks != (self.block,) * 2:
-                raise CheckpointError(f"{self.path}: the per-cell counts were made with another "
-                                      "grid or {block}; resume with the same {block}", "block")
+            if arrays[0].shape != self.shape:
+                raise CheckpointError(f"{self.path}: the per-cell counts were made on another "
+                                      "grid; start afresh without {resume}", "resume")
+            self.rechunk = arrays[0].chunks[0] != self.block  # done by check()
         else:
-            shutil.rmtree(self.path, ignore_errors=True)
-            self.group = zarr.open_group(self.path, mode="w")
-            for k in ("counts_0", "counts_1"):
-                self.group.create_array(k, shape=self.shape, chunks=(self.block,) * 2,
-                                        dtype="int32", fill_value=0)
-            self.group.create_array("applied", shape=nb, chunks=(1, 1), dtype="int64",
-                                    fill_value=0)
+            self.group, self.rechunk = self._create(self.path), False
+        self._arrays()
+
+    def _create(self, path: str):
+        import zarr
+
+        shutil.rmtree(path, ignore_errors=True)
+        group = zarr.open_group(path, mode="w")
+        for k in ("counts_0", "counts_1"):
+            group.create_array(k, shape=self.shape, chunks=(self.block,) * 2, dtype="int32",
+                               fill_value=0)
+        nb = tuple(-(-s // self.block) for s in self.shape)
+        group.create_array("applied", shape=nb, chunks=(1, 1), dtype="int64", fill_value=0)
+        return group
+
+    def _arrays(self) -> None:
         self.counts = (self.group["counts_0"], self.group["counts_1"])
         self.applied = self.group["applied"]
+
+    def _rechunk(self, n: int) -> None:
+        """Copy counts of exactly ``n`` realisations into chunks of this run's block."""
+        new = self.path + ".rechunk"
+        group, b = self._create(new), self.block
+        for r0 in range(0, self.shape[0], b):
+            for c0 in range(0, self.shape[1], b):
+                r1, c1 = min(r0 + b, self.shape[0]), min(c0 + b, self.shape[1])
+                group[f"counts_{n % 2}"][r0:r1, c0:c1] = self[r0:r1, c0:c1]
+        group["applied"][:, :] = n
+        old = self.path + ".old"
+        os.replace(self.path, old)
+        os.replace(new, self.path)
+        shutil.rmtree(old, ignore_errors=True)
+        import zarr
+
+        self.group, self.rechunk = zarr.open_group(self.path, mode="r+"), False
+        self._arrays()
 
     def __getstate__(self):
         raise TypeError("a CountStore stays in the process that opened it")
@@ -1408,8 +1435,18 @@ class CountStore:
         self.applied[bi, bj] = done + 1
 
     def check(self, n: int, *, exact: bool = False) -> None:
-        """Every chunk holds at least (``exact``: exactly) ``n`` realisations."""
+        """Every chunk holds at least (``exact``: exactly) ``n`` realisations.
+
+        A store made with another block size is copied into chunks of this
+        one first, which needs exactly ``n`` in every chunk."""
         a = np.asarray(self.applied[:, :])
+        if self.rechunk and a.size and a.min() == a.max() == n:
+            self._rechunk(n)
+            return
+        if self.rechunk:
+            raise CheckpointError(f"{self.path}: the per-cell counts were made with {{block}} "
+                                  f"{self.counts[0].chunks[0]} and a realisation was under way; "
+                                  "resume with that {block}", "block")
         if a.min() < n or (exact and a.max() != n):
             raise CheckpointError(f"{self.path}: the per-cell counts hold {a.min()} to {a.max()} "
                                   f"realisations, not the checkpoint's {n}; start afresh without "
@@ -1420,7 +1457,7 @@ class CountStore:
         r0, r1, _ = rs.indices(self.shape[0])
         c0, c1, _ = cs.indices(self.shape[1])
         out = np.empty((r1 - r0, c1 - c0), np.int32)
-        b = self.block
+        b = self.counts[0].chunks[0]  # the store's own blocks (another run's, until copied)
         a = np.asarray(self.applied[r0 // b:-(-r1 // b), c0 // b:-(-c1 // b)])
         for bi in range(r0 // b, -(-r1 // b)):
             for bj in range(c0 // b, -(-c1 // b)):

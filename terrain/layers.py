@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 __all__ = ["LayerSpec", "LAYERS", "spec", "layer_name", "layers_of", "units", "read_window",
-           "layer_windows"]
+           "layer_windows", "WINDOW_CELLS"]
 
 DRAINAGE_NOTE = ("describes the DEM's drainage under its stated error, not flood behaviour or "
                  "where water runs in a storm")
@@ -130,7 +130,11 @@ def read_window(layers, r0: int, r1: int, c0: int, c1: int) -> dict:
     return {k: (m[r0:r1, c0:c1], e[r0:r1, c0:c1]) for k, (m, e) in layers.items()}
 
 
-def layer_windows(shape: tuple[int, int], cells: int = 1 << 22) -> list[tuple[int, int, int, int]]:
+#: cells per window when layers are read, summarised and written window by window
+WINDOW_CELLS = 1 << 20
+
+
+def layer_windows(shape: tuple[int, int], cells: int = WINDOW_CELLS) -> list[tuple[int, int, int, int]]:
     """Windows ``(r0, r1, c0, c1)`` covering a grid, row-major, about ``cells``
     cells each (squares of whole 256-cell tiles, or full rows when the grid is
     narrow), for reading and writing layers window by window."""

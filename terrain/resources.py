@@ -30,9 +30,10 @@ import dataclasses
 import math
 from dataclasses import dataclass
 
-from .dem import Dem, RasterHeader
+from .dem import BAND_ROWS, Dem, RasterHeader
 from .errors import MemoryGuardError
-from .io import available_memory
+from .io import WINDOW_WRITE_CACHE, available_memory
+from .layers import WINDOW_CELLS
 from .noise import ErrorModel
 from .outputs.mapframe import QUICKLOOK_CELLS
 from .runner import Execution
@@ -73,6 +74,11 @@ BLOCK_TASK = 80
 # measured in bench/bench_blocked.py), and the summaries it reads (40).
 GLUE_PER_BOUNDARY_CELL = 185
 DEFAULT_BLOCK = 1024  # blocked mode's block side when the guard chooses it
+REGION_BLOCK = 1024  # block side of the region labels of a DEM kept on disk (blocked_regions)
+# Out of core, per cell of a window of layers while summarising and writing: the
+# log summed on the window (52), the layers (4 x 16), float32 copies (8), the DEM
+# window and mask (9), labels (4) and the features' temporaries (20) (counted).
+WINDOW_BYTES = 160
 PAIRS_PER_REALISATION = 2000  # assumed; the run re-checks its log as it grows
 
 
@@ -115,6 +121,9 @@ class MemoryEstimate:
         if self.workers:
             text += f" = {_gib(self.parent)} + {self.workers} workers x {_gib(self.worker)}"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
+        if self.block and "regions" in self.per_cell:
+            return text + (f" (out of core: the DEM, region labels and counts stay on disk; "
+                           f"a worker holds one block of {self.block} x {self.block})")
         if self.block:
             return text + (f" ({peak:,} bytes per cell at the peak in the accumulating process; "
                            f"a worker holds one block of {self.block} x {self.block})")
@@ -178,20 +187,21 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
     dem = value + 1
     block = getattr(ex, "block", None)
+    if block and runs == 1:  # a single blocked run keeps its grids on disk
+        return _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook)
     labels = 4 if block else 0  # blocked: the region labels, read at birth cells
     held = dem + CONTEXT + kept + labels + parent_job + SWEEP_KEPT * (runs - 1)
     here = 0  # bytes of this process that do not scale with the grid's cells
-    if block:  # a worker holds one block task; this process the glue (and the task if serial)
+    if block:  # a sweep's blocked runs: a worker holds one block task; this process the glue
         task, glue = _block_bytes(grid, cells, int(block), draw)
         running = held + max(CHECKSUM_SCRATCH, counts)
         worker_cell, worker_bytes = math.ceil(task / max(cells, 1)), task
         here = glue + (0 if local else task)
-    else:
-        if backend == "serial":
-            running = held + max(CHECKSUM_SCRATCH, worker_job + draw)
-        else:  # results in flight, one more being unpickled, the DEM pickled for a worker
-            running = held + max(CHECKSUM_SCRATCH,
-                                 (2 * ex.n_workers + 1) * counts + CONTEXT + kept)
+    elif backend == "serial":
+        running = held + max(CHECKSUM_SCRATCH, worker_job + draw)
+    else:  # results in flight, one more being unpickled, the DEM pickled for a worker
+        running = held + max(CHECKSUM_SCRATCH, (2 * ex.n_workers + 1) * counts + CONTEXT + kept)
+    if not block:
         worker_cell = CONTEXT + kept + worker_job + draw + 2 * counts if local else 0
         worker_bytes = worker_cell * cells
     drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)  # a big grid is drawn in blocks
@@ -205,6 +215,33 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells, per_cell={**phases, "worker": worker_cell},
                           block=int(block) if block else None)
+
+
+def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook):
+    """Blocked mode keeps the DEM, region labels and counts on disk: this
+    process holds one band of the DEM while reading it, the glue of the block
+    boundaries with one region task (region labels are made here) or, when
+    serial, one block task, one window of layers while summarising and
+    writing (and GDAL's block cache), the quick-look's pooled rasters, and
+    the log; a worker holds one block task."""
+    rows, cols = grid.shape if hasattr(grid, "shape") else (cells, 1)
+    task, glue = _block_bytes(grid, cells, int(ex.block), draw)
+    region_task, _ = _block_bytes(grid, cells, REGION_BLOCK, 0)
+    band = min(rows, BAND_ROWS * max(1, min(16, (64 * MiB) // max(cols * 8 * BAND_ROWS, 1))))
+    window = min(cells, WINDOW_CELLS)
+    phases = {"read": band * cols * (2 * stored + value + READ_SCRATCH),
+              "regions": glue + region_task,
+              "running": glue + (0 if local else task),
+              "writing": window * WINDOW_BYTES + WINDOW_WRITE_CACHE
+              + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH}
+    log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
+    parent = PROCESS_BYTES + max(phases.values()) + log
+    worker = WORKER_PROCESS_BYTES + task if local else 0
+    per = {k: math.ceil(v / max(cells, 1)) for k, v in phases.items()}
+    return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
+                          workers=local, cells=cells,
+                          per_cell={**per, "worker": math.ceil(task / max(cells, 1))},
+                          block=int(ex.block))
 
 
 def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:

@@ -131,8 +131,8 @@ def pool_bands(read, shape: tuple[int, int], k: int, how) -> np.ndarray:
     """A raster too large to hold, pooled in ``k`` x ``k`` blocks as :class:`MapFrame`
     pools: ``read(r0, r1)`` returns rows ``r0:r1`` (float64, NaN for nodata),
     read in bands of whole blocks, so only one band is held at a time."""
-    rows, _ = shape
-    step = k * max(1, 256 // k)
+    rows, cols = shape
+    step = k * max(1, (1 << 20) // max(k * cols, 1))  # bands of about a million cells
     return np.concatenate([_pool(np.asarray(read(r0, min(r0 + step, rows)), np.float64), k, how)
                            for r0 in range(0, rows, step)])
 

@@ -310,18 +310,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
     on_fold()
     halt = lambda: flag["stop"] or flag["interrupted"]  # noqa: E731
     with contextlib.ExitStack() as scope:
-        if block is None:
-            runner = BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(seed)),
-                                                   chunks(start, realisations, size), ex.n_workers,
-                                                   scheduler, halt)
-        else:
-            dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
-                st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
-            runner = blocked_runner(
-                BlockedContext(dem_src, reg_src, st.sampler, st.job, int(seed), int(block), drawn,
-                               acc.ponding if getattr(acc, "on_disk", False) else None),
-                chunks(start, realisations, size), ex.resolved_backend, ex.n_workers, scheduler,
-                halt)
+        runner = _runner(st, ex, chunks(start, realisations, size), halt, scope)
         stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
                                       on_fold=on_fold, saver=saver)
     wall = time.perf_counter() - t0
@@ -334,6 +323,19 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
             "defaults": st.used,
             "field_kernel_radius_cells": list(st.sampler.field.radius) if st.sampler.field else None}
     return RunResult(dem, st.job, model, acc.layers(dem.shape), acc.log(), acc.n, st.params, info)
+
+
+def _runner(st, ex: Execution, plan, halt, scope: contextlib.ExitStack):
+    """The backend generator of the run: whole realisations, or blocks of each."""
+    if ex.block is None:
+        return BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(ex.seed)),
+                                             plan, ex.n_workers, ex.scheduler, halt)
+    dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
+        st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
+    ponding = st.acc.ponding if getattr(st.acc, "on_disk", False) else None
+    return blocked_runner(BlockedContext(dem_src, reg_src, st.sampler, st.job, int(ex.seed),
+                                         int(ex.block), drawn, ponding),
+                          plan, ex.resolved_backend, ex.n_workers, ex.scheduler, halt)
 
 
 @dataclass

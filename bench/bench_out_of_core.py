@@ -1,0 +1,242 @@
+"""Benchmark: out-of-core runs of rasters larger than a whole-grid run can hold.
+
+Each raster is generated here window by window (never whole in memory) and
+written as a tiled float32 GeoTIFF under ``--tmp``: smooth terrain from three
+octaves of bilinearly interpolated random grids (1024, 128 and 32 cells
+apart), rounded to 0.1 m (ties and plateaus), with a round nodata hole;
+10 m cells. Nothing is committed.
+
+1. ``cairn depressions big.tif -n 20 --block 2048`` on a 16384^2 raster (2.7e8
+   cells) with 2 worker processes: wall time and the peak resident memory of
+   all its processes together (the sum of the process tree's RSS, sampled
+   every 0.1 s), against the 3 GB bound.
+2. The same command with ``--scheduler`` on a Dask LocalCluster of 2 workers
+   limited to 1.5 GB each (one thread each): whether any worker was
+   restarted (its process id changed) and the peak memory of the command
+   plus the cluster's workers; the layers must equal those of run 1.
+3. ``cairn depressions`` with ``-n 1 --block 2048`` on a 32768^2 raster
+   (1.07e9 cells): the peak memory, and the time of its one realisation
+   (``run.json``: ``realisations_s``) per 10^8 cells next to one whole-grid
+   pits realisation (:func:`terrain.jobs.credit.realise`, with ponding
+   counts) of a 4096^2 raster measured in this process.
+
+Run:  python bench/bench_out_of_core.py [--tmp /var/tmp] [--skip-32k] [--skip-dask]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+
+import numpy as np
+import psutil
+from common import median_time
+
+OCTAVES = ((1024, 300.0), (128, 40.0), (32, 6.0))  # (spacing in cells, amplitude in m)
+CELL = 10.0
+GB = 1e9
+
+
+def _weights(n0: int, n1: int, spacing: int) -> tuple[np.ndarray, int]:
+    """Bilinear weights of cells n0..n1 on grid nodes ``spacing`` cells apart:
+    a (n1 - n0, k) matrix and the first node's index."""
+    y = (np.arange(n0, n1) + 0.5) / spacing
+    i0 = np.floor(y).astype(np.int64)
+    t = y - i0
+    first = int(i0[0])
+    w = np.zeros((n1 - n0, int(i0[-1]) - first + 2))
+    w[np.arange(n1 - n0), i0 - first] = 1 - t
+    w[np.arange(n1 - n0), i0 - first + 1] = t
+    return w, first
+
+
+def write_terrain(path: str, side: int, seed: int = 7, tile: int = 2048) -> None:
+    """The benchmark raster, generated and written window by window."""
+    import rasterio
+    from rasterio.transform import from_origin
+    from rasterio.windows import Window
+
+    rng = np.random.default_rng(seed)
+    grids = [(s, a, rng.standard_normal((side // s + 2, side // s + 2))) for s, a in OCTAVES]
+    profile = dict(driver="GTiff", width=side, height=side, count=1, dtype="float32",
+                   crs="EPSG:32633", transform=from_origin(500000, 7000000, CELL, CELL),
+                   nodata=-9999.0, tiled=True, blockxsize=512, blockysize=512,
+                   compress="deflate", predictor=3, bigtiff="YES")
+    hole = (0.7 * side, 0.3 * side, 0.04 * side)
+    with rasterio.open(path, "w", **profile) as ds:
+        for r0 in range(0, side, tile):
+            wr, fr = zip(*(_weights(r0, min(r0 + tile, side), s) for s, _, _ in grids))
+            for c0 in range(0, side, tile):
+                r1, c1 = min(r0 + tile, side), min(c0 + tile, side)
+                z = np.zeros((r1 - r0, c1 - c0))
+                for (s, a, g), w_r, f_r in zip(grids, wr, fr):
+                    w_c, f_c = _weights(c0, c1, s)
+                    z += a * (w_r @ g[f_r:f_r + w_r.shape[1], f_c:f_c + w_c.shape[1]] @ w_c.T)
+                z = np.round(z + 1000.0, 1)
+                rr, cc = np.mgrid[r0:r1, c0:c1]
+                z[(rr - hole[0]) ** 2 + (cc - hole[1]) ** 2 < hole[2] ** 2] = -9999.0
+                ds.write(z.astype(np.float32), 1, window=Window(c0, r0, c1 - c0, r1 - r0))
+
+
+class PeakMemory:
+    """Samples the summed RSS of process trees every ``every`` seconds; ``peak`` in bytes."""
+
+    def __init__(self, roots, every: float = 0.1):
+        self.roots, self.every, self.peak = list(roots), every, 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self):
+        while not self._stop.is_set():
+            total, seen = 0, set()
+            for root in self.roots:
+                try:
+                    procs = [root] + root.children(recursive=True)
+                except psutil.Error:
+                    continue
+                for p in procs:
+                    if p.pid in seen:
+                        continue
+                    seen.add(p.pid)
+                    try:
+                        total += p.memory_info().rss
+                    except psutil.Error:
+                        pass
+            self.peak = max(self.peak, total)
+            self._stop.wait(self.every)
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._thread.join()
+
+
+def cairn(args: list[str], extra_roots=()) -> tuple[float, int, str]:
+    """Run the cairn command; (wall seconds, peak bytes of its tree + ``extra_roots``, stderr)."""
+    exe = shutil.which("cairn") or sys.exit("the cairn command is not installed")
+    t0 = time.perf_counter()
+    proc = psutil.Popen([exe, *args, "-q"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                        text=True)
+    with PeakMemory([proc, *extra_roots]) as mem:
+        _, err = proc.communicate()
+    wall = time.perf_counter() - t0
+    if proc.returncode:
+        sys.exit(f"cairn {' '.join(args)} failed ({proc.returncode}):\n{err}")
+    return wall, mem.peak, err
+
+
+def layers_equal(a: str, b: str) -> bool:
+    import rasterio
+
+    for name in sorted(os.listdir(a)):
+        if name.endswith(".tif"):
+            with rasterio.open(os.path.join(a, name)) as x, rasterio.open(os.path.join(b, name)) as y:
+                for band in (1, 2):
+                    for _, w in x.block_windows(band):
+                        if not np.array_equal(x.read(band, window=w), y.read(band, window=w),
+                                              equal_nan=True):
+                            return False
+    return True
+
+
+def whole_pits_seconds(side: int = 4096) -> float:
+    """One whole-grid pits realisation (with ponding counts) of a ``side``^2 raster."""
+    import rasterio
+
+    from terrain import CreditJob, Dem, ErrorModel
+    from terrain.jobs.credit import realise
+    from terrain.noise import ErrorSampler
+
+    with tempfile.TemporaryDirectory() as tmp:
+        path = os.path.join(tmp, "small.tif")
+        write_terrain(path, side)
+        with rasterio.open(path) as ds:
+            z = ds.read(1, masked=True).filled(np.nan)
+    dem = Dem.from_array(z, cellsize=CELL)
+    model = ErrorModel(rmse=1.0)
+    job = CreditJob("depressions").resolved(dem, model)
+    sampler = ErrorSampler(model, z.shape, (CELL, CELL))
+    return median_time(lambda: realise(z, sampler, job, 1, 0, np.zeros(z.size, np.int32)),
+                       repeat=2)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--tmp", default=tempfile.gettempdir())
+    ap.add_argument("--side", type=int, default=16384)
+    ap.add_argument("--big", type=int, default=32768)
+    ap.add_argument("--skip-dask", action="store_true")
+    ap.add_argument("--skip-32k", action="store_true")
+    a = ap.parse_args()
+    work = tempfile.mkdtemp(prefix="cairn-bench-ooc-", dir=a.tmp)
+    env_tmp = {"TMPDIR": work}
+    os.environ.update(env_tmp)
+    try:
+        dem = os.path.join(work, "big.tif")
+        t0 = time.perf_counter()
+        write_terrain(dem, a.side)
+        print(f"generated {a.side}^2 raster in {time.perf_counter() - t0:.0f} s")
+        run = ["depressions", dem, "--rmse", "1", "-n", "20", "--block", "2048", "--seed", "1"]
+        wall, peak, _ = cairn([*run, "-o", os.path.join(work, "out"), "--workers", "2"])
+        rs = json.load(open(os.path.join(work, "out", "run.json")))["timings"]
+        print("\n| run | cells | wall s | realisations s | peak RSS, all processes | bound |")
+        print("|---|---|---|---|---|---|")
+        print(f"| depressions -n 20 --block 2048, 2 processes | {a.side}^2 | {wall:.0f} | "
+              f"{rs['realisations_s']:.0f} | {peak / GB:.2f} GB | < 3 GB: "
+              f"{'yes' if peak < 3 * GB else 'NO'} |")
+        if not a.skip_dask:
+            dask_run(a, work, run, dem)
+        if not a.skip_32k:
+            big_run(a, work)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def dask_run(a, work: str, run: list[str], dem: str) -> None:
+    from dask.distributed import Client, LocalCluster
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, memory_limit="1.5GB",
+                      processes=True, dashboard_address=None) as cluster, Client(cluster) as client:
+        before = client.run(os.getpid)
+        roots = [psutil.Process(p) for p in before.values()]
+        wall, peak, _ = cairn([*run, "-o", os.path.join(work, "out-dask"), "--scheduler",
+                               cluster.scheduler_address], extra_roots=roots)
+        after = client.run(os.getpid)
+        restarted = sorted(set(before.values()) ^ set(after.values()))
+        same = layers_equal(os.path.join(work, "out"), os.path.join(work, "out-dask"))
+    print(f"| the same on a Dask LocalCluster, 2 workers x 1.5 GB | {a.side}^2 | {wall:.0f} | - | "
+          f"{peak / GB:.2f} GB (command + workers) | workers restarted: "
+          f"{len(restarted) // 2}; layers equal to run 1: {same} |")
+
+
+def big_run(a, work: str) -> None:
+    dem = os.path.join(work, "huge.tif")
+    t0 = time.perf_counter()
+    write_terrain(dem, a.big)
+    gen = time.perf_counter() - t0
+    wall, peak, _ = cairn(["depressions", dem, "--rmse", "1", "-n", "1", "--block", "2048",
+                           "-o", os.path.join(work, "out-huge"), "--workers", "2"])
+    rs = json.load(open(os.path.join(work, "out-huge", "run.json")))["timings"]
+    os.unlink(dem)
+    per = rs["realisations_s"] / (a.big ** 2 / 1e8)
+    whole = whole_pits_seconds(4096)
+    print(f"| depressions -n 1 --block 2048, 2 processes | {a.big}^2 | {wall:.0f} | "
+          f"{rs['realisations_s']:.0f} | {peak / GB:.2f} GB | < 3 GB: "
+          f"{'yes' if peak < 3 * GB else 'NO'} |")
+    print(f"\nraster generated in {gen:.0f} s. One pits realisation per 10^8 cells: blocked "
+          f"{a.big}^2 (2 processes) {per:.1f} s; whole grid 4096^2 (one core) "
+          f"{whole / (4096 ** 2 / 1e8):.1f} s")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,173 @@
+"""Out-of-core runs: a DEM kept on disk gives the very DEM, regions, logs,
+layers, tables and maps of one read into memory, and the per-cell counts on
+disk survive a kill.
+
+The reference is cairn's own in-memory path (itself checked against gudhi,
+scikit-image and the other outside sources named in the other test files).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import rasterio
+
+from terrain import CreditJob, ErrorModel, run_ensemble
+from terrain.errors import CheckpointError, OptionError
+from terrain.io import CountStore, read_dem, scratch_folder
+from terrain.layers import layer_windows
+from terrain.resources import estimate_run
+from terrain.runner import Execution
+
+from .conftest import smooth_terrain, write_tif
+
+MODEL = ErrorModel(rmse=1.0, range_m=80.0, nugget=0.2)
+
+
+def _raster(tmp_path, *, dtype="float32", nodata=-9999.0, shape=(70, 83), seed=4):
+    z = smooth_terrain(shape, seed=seed) + 200.0
+    z[20:27, 30:41] = nodata  # a nodata hole across block lines
+    z[50:58, :] = np.round(z[50:58, :] / 20) * 20  # plateaus across block lines
+    return write_tif(tmp_path / "dem.tif", z, nodata=nodata, dtype=dtype)
+
+
+@pytest.mark.parametrize("dtype", ["float32", "float64", "int16"])
+def test_dem_on_disk_is_the_dem_read(tmp_path, dtype):
+    p = _raster(tmp_path, dtype=dtype)
+    want = read_dem(p, bbox=(500100.0, 6799400.0, 500700.0, 6799950.0))
+    with scratch_folder(tmp_path) as f:
+        got = read_dem(p, bbox=(500100.0, 6799400.0, 500700.0, 6799950.0), scratch=f)
+        assert got.on_disk and got.shape == want.shape
+        assert np.array_equal(got.z[:, :], want.z, equal_nan=True)
+        assert got.z[:, :].dtype == want.z.dtype
+        assert np.array_equal(got.nodata[:, :], want.nodata)
+        assert got.checksum() == want.checksum() and got.meta == want.meta
+        assert got.lowest() == want.lowest()
+        cells = np.array([0, 17, got.shape[0] * got.shape[1] - 1])
+        assert np.array_equal(got.values_at(cells), want.values_at(cells), equal_nan=True)
+
+
+def test_dem_on_disk_with_no_valid_cell_is_refused(tmp_path):
+    from terrain.errors import NoValidCellsError
+
+    p = write_tif(tmp_path / "dem.tif", np.full((20, 20), -9999.0), nodata=-9999.0)
+    with scratch_folder(tmp_path) as f, pytest.raises(NoValidCellsError, match="dem.tif"):
+        read_dem(p, scratch=f)
+
+
+@pytest.mark.parametrize("kind", ["peaks", "depressions"])
+@pytest.mark.parametrize("backend", ["serial", "processes"])
+def test_run_on_disk_equals_run_in_memory(tmp_path, kind, backend):
+    p = _raster(tmp_path)
+    want = run_ensemble(read_dem(p), CreditJob(kind), MODEL, realisations=3, seed=5,
+                        backend="serial")
+    with scratch_folder(tmp_path) as f:
+        dem = read_dem(p, scratch=f)
+        got = run_ensemble(dem, CreditJob(kind), MODEL, realisations=3, seed=5, backend=backend,
+                           workers=2, block=32)
+        assert np.array_equal(got.job.regions.labels[:, :], want.job.regions.labels)
+        for k in want.log:
+            assert want.log[k].tobytes() == got.log[k].tobytes(), k
+        for name, (m, e) in want.layers.items():
+            gm, ge = got.layers[name]
+            assert m.tobytes() == gm.tobytes() and e.tobytes() == ge.tobytes(), name
+
+
+def test_dem_on_disk_needs_blocks(tmp_path):
+    with scratch_folder(tmp_path) as f:
+        dem = read_dem(_raster(tmp_path), scratch=f)
+        with pytest.raises(OptionError, match="block"):
+            run_ensemble(dem, CreditJob("peaks"), MODEL, realisations=1, backend="serial")
+
+
+def test_count_store_survives_a_kill_between_its_writes(tmp_path):
+    from terrain.engine.blocked import windows
+
+    shape, rng = (40, 50), np.random.default_rng(0)
+    store = CountStore(tmp_path / "c", shape, 16)
+    total = np.zeros(shape, np.int32)
+    wins = windows(shape, 16)
+    for i in range(2):
+        for w in wins:
+            c = rng.integers(0, 2, (w.r1 - w.r0, w.c1 - w.c0)).astype(np.int32)
+            if i == 1 and w is wins[3]:  # killed after writing the sum, before the stamp
+                store.counts[0][w.r0:w.r1, w.c0:w.c1] = store[w.r0:w.r1, w.c0:w.c1] + c
+                break
+            store.add(w, i, c)
+            total[w.r0:w.r1, w.c0:w.c1] += c
+    again = CountStore(tmp_path / "c", shape, 16, resume=True)
+    again.check(1)
+    rng = np.random.default_rng(0)
+    total[:] = 0
+    for i in range(2):  # the resumed run computes realisation 1 again: the same counts
+        for w in wins:
+            c = rng.integers(0, 2, (w.r1 - w.r0, w.c1 - w.c0)).astype(np.int32)
+            again.add(w, i, c)
+            total[w.r0:w.r1, w.c0:w.c1] += c
+    again.check(2, exact=True)
+    assert np.array_equal(again[:, :], total)
+    moved = CountStore(tmp_path / "c", shape, 8, resume=True)  # another block: copied
+    moved.check(2)
+    assert np.array_equal(moved[:, :], total) and moved.counts[0].chunks == (8, 8)
+    with pytest.raises(CheckpointError, match="3"):
+        moved.check(3)
+
+
+@pytest.mark.parametrize("kind", ["peaks", "depressions"])
+def test_cli_on_disk_gives_the_same_files(cairn, tmp_path, kind, monkeypatch):
+    import terrain.outputs.mapframe as mapframe
+
+    monkeypatch.setattr(mapframe, "MAX_PIXELS", 30)  # the maps pool this small raster
+    p = _raster(tmp_path, shape=(90, 75))
+    run = (kind, p, "--rmse", "1", "--range", "60", "-n", "3", "--workers", "1", "-q")
+    assert cairn(*run, "-o", tmp_path / "whole")[0] == 0
+    code, _, err = cairn(*run, "-o", tmp_path / "disk", "--block", "32")
+    assert code == 0, err
+    for name in sorted(x.name for x in (tmp_path / "whole").iterdir()):
+        a, b = tmp_path / "whole" / name, tmp_path / "disk" / name
+        if name.endswith(".tif"):
+            with rasterio.open(a) as x, rasterio.open(b) as y:
+                assert x.read().tobytes() == y.read().tobytes(), name
+                assert x.descriptions == y.descriptions and x.overviews(1) == y.overviews(1)
+                assert x.tags(1)["ROLE"] == y.tags(1)["ROLE"]
+        elif name.endswith(".csv"):
+            assert a.read_text() == b.read_text(), name
+    from matplotlib.image import imread
+
+    png = imread(tmp_path / "disk" / "quicklook.png")
+    assert png.ndim == 3 and png.std() > 0
+
+
+def test_pooling_by_bands_is_pooling_the_whole():
+    from terrain.outputs.mapframe import _pool, pool_bands
+
+    rng = np.random.default_rng(1)
+    a = rng.standard_normal((1031, 517))
+    a[rng.random(a.shape) < 0.1] = np.nan
+    for k in (1, 3, 7):
+        got = pool_bands(lambda r0, r1: a[r0:r1], a.shape, k, np.nanmax)
+        assert np.array_equal(got, _pool(a, k, np.nanmax), equal_nan=True)
+
+
+def test_layer_windows_cover_the_grid_once():
+    for shape in ((1, 1), (5000, 300), (3000, 4100), (1, 9000)):
+        seen = np.zeros(shape, np.int32)
+        for r0, r1, c0, c1 in layer_windows(shape, cells=1 << 20):
+            seen[r0:r1, c0:c1] += 1
+        assert (seen == 1).all()
+
+
+def test_memory_of_a_blocked_run_does_not_grow_with_the_grid():
+    from types import SimpleNamespace
+
+    job, ex = CreditJob("depressions"), Execution(workers=2, block=2048, realisations=20)
+    est = {}
+    for side in (16384, 32768, 65536):
+        head = SimpleNamespace(shape=(side, side), cells=side * side, value_bytes=4,
+                               stored_bytes=4, source="big.tif")
+        est[side] = estimate_run(head, job, ex)
+    # a worker holds one block whatever the grid; this process grows with the length
+    # of block boundaries (the glue), 4x from 16384^2 to 65536^2, not with the cells (16x)
+    assert est[32768].worker == est[16384].worker == est[65536].worker
+    assert est[65536].parent < 2 * est[16384].parent
+    assert est[16384].total < 3e9

@@ -30,7 +30,9 @@ default mode holds (the DEM, the region labels and the ponding counts).
 from __future__ import annotations
 
 import builtins
+import collections
 import contextlib
+import itertools
 import os
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -99,9 +101,26 @@ def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
                os.path.join(folder, "realisation.npy"))
 
 
+def _ahead(submit, fn, items, ahead: int):
+    """``fn`` over ``items`` through ``submit(fn, item) -> future``, results in
+    order, at most ``ahead`` tasks submitted and not yet taken: results are
+    held only until the caller takes them (a block's counts are 4 bytes per
+    block cell)."""
+    pending: collections.deque = collections.deque()
+    it = iter(items)
+    for item in itertools.islice(it, ahead):
+        pending.append(submit(fn, item))
+    while pending:
+        result = pending.popleft().result()
+        for item in itertools.islice(it, 1):
+            pending.append(submit(fn, item))
+        yield result
+
+
 @contextlib.contextmanager
 def _block_map(backend: str, workers: int, scheduler: str | None):
-    """``map(fn, windows)`` running the block tasks on ``backend``, in order."""
+    """``map(fn, windows)`` running the block tasks on ``backend``: an iterator
+    of the results in order, a few tasks ahead of the caller."""
     if backend == "serial":
         yield builtins.map
         return
@@ -118,11 +137,10 @@ def _block_map(backend: str, workers: int, scheduler: str | None):
         def pmap(fn, items):
             try:
                 with spawning():
-                    out = list(pool.map(fn, items))
+                    yield from _ahead(pool.submit, fn, items, 2 * workers)
             except BrokenProcessPool:
                 raise broken_pool(state["started"]) from None
             state["started"] = True
-            return out
 
         try:
             yield pmap
@@ -136,9 +154,9 @@ def _block_map(backend: str, workers: int, scheduler: str | None):
     try:
         with client:
             def dmap(fn, items):
-                futures = client.map(fn, list(items), pure=False, retries=3)
                 try:
-                    return client.gather(futures)
+                    yield from _ahead(lambda f, x: client.submit(f, x, pure=False, retries=3),
+                                      fn, items, 2 * workers)
                 except Exception as exc:
                     if isinstance(exc, (KeyboardInterrupt, OptionError)):
                         raise

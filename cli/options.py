@@ -203,8 +203,10 @@ block = click.option(
     help="Compute each realisation block by block, in blocks of CELLS x CELLS cells (at least "
          "16; 1024 or more, a multiple of 256, is fastest: small blocks cost many times a "
          "whole-grid run): a worker then holds one block, not the whole grid, and the layers "
-         "are the same bit for bit. Chosen (1024) when a whole-grid run would not fit in "
-         "memory and blocks would. Scratch files go under TMPDIR.")
+         "are the same bit for bit; peaks and depressions then keep the DEM, region labels and "
+         "counts on disk and write window by window (out of core). Chosen (1024) when a "
+         "whole-grid run would not fit in memory and blocks would. Scratch files (about 12-16 "
+         "bytes per cell) go under TMPDIR.")
 
 
 outdir = click.option("-o", "--outdir", required=True, type=click.Path(file_okay=True),

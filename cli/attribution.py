@@ -30,7 +30,7 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
     ex = guard_memory(head, job, ex, opts, model=model)
     dem = read(dem_path, opts, on_disk=ex.block is not None)  # blocked: out of core
-    job = job.resolved(dem, model)
+    job = job.resolved(dem, model, **({"block": ex.block} if dem.on_disk else {}))
     figure = "prominence" if kind == "peaks" else "depth"
     res = run_job(dem, job, model, ex, opts, label=label or kind,
                   headline=f"minimum {figure} " + (f"{threshold:g}" if threshold is not None

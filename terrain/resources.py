@@ -74,7 +74,6 @@ BLOCK_TASK = 80
 # measured in bench/bench_blocked.py), and the summaries it reads (40).
 GLUE_PER_BOUNDARY_CELL = 185
 DEFAULT_BLOCK = 1024  # blocked mode's block side when the guard chooses it
-REGION_BLOCK = 1024  # block side of the region labels of a DEM kept on disk (blocked_regions)
 # Out of core, per cell of a window of layers while summarising and writing: the
 # log summed on the window (52), the layers (4 x 16), float32 copies (8), the DEM
 # window and mask (9), labels (4) and the features' temporaries (20) (counted).
@@ -220,17 +219,16 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
 def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook):
     """Blocked mode keeps the DEM, region labels and counts on disk: this
     process holds one band of the DEM while reading it, the glue of the block
-    boundaries with one region task (region labels are made here) or, when
-    serial, one block task, one window of layers while summarising and
-    writing (and GDAL's block cache), the quick-look's pooled rasters, and
+    boundaries with one block task (region labels and the DEM's own ponding
+    are made here, in the run's blocks), one window of layers while
+    summarising and writing (and GDAL's block cache), the quick-look's pooled rasters, and
     the log; a worker holds one block task."""
     rows, cols = grid.shape if hasattr(grid, "shape") else (cells, 1)
     task, glue = _block_bytes(grid, cells, int(ex.block), draw)
-    region_task, _ = _block_bytes(grid, cells, REGION_BLOCK, 0)
     band = min(rows, BAND_ROWS * max(1, min(16, (64 * MiB) // max(cols * 8 * BAND_ROWS, 1))))
     window = min(cells, WINDOW_CELLS)
     phases = {"read": band * cols * (2 * stored + value + READ_SCRATCH),
-              "regions": glue + region_task,
+              "regions": glue + task,  # the same blocks (terrain.jobs.credit.dem_regions)
               "running": glue + (0 if local else task),
               "writing": window * WINDOW_BYTES + WINDOW_WRITE_CACHE
               + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH}

@@ -154,16 +154,17 @@ class CreditJob:
         names = ("threshold", "merge_level") + (("base",) if self.kind == "peaks" else ())
         return tuple(n for n in names if getattr(self, n) is None or n in self.from_defaults)
 
-    def resolved(self, dem: Dem, model: ErrorModel) -> CreditJob:
+    def resolved(self, dem: Dem, model: ErrorModel, *, block: int | None = None) -> CreditJob:
         """This job with every ``None`` setting replaced by its library default
         and the unperturbed DEM's regions computed (resolving twice changes
-        nothing)."""
+        nothing); a DEM on disk gets them in blocks of ``block`` cells (the
+        run's, so the glue holds no more boundary than the run's own)."""
         thr = defaults.cutoff(self.threshold, model.rmse)
         merge = defaults.merge_level(self.merge_level, model.rmse, thr)
         reg = self.regions
         if reg is None or reg.merge_level != merge or tuple(reg.labels.shape) != dem.shape:
             reg = dem_regions(dem, kind=self.filtration, merge_level=merge,
-                              connectivity=self.connectivity)
+                              connectivity=self.connectivity, block=block)
         return dataclasses.replace(
             self, threshold=thr, merge_level=merge, regions=reg, area_row=dem.cell_area_m2(),
             base=defaults.base_level(self.base, dem) if self.kind == "peaks" else None,
@@ -200,7 +201,8 @@ class CreditJob:
         return parent, 3 * value_bytes + 17
 
 
-def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int) -> Regions:
+def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int,
+                block: int | None = None) -> Regions:
     """The regions of ``dem`` as given; a DEM on disk gets them block by block,
     its labels in a grid on disk beside it (the same regions, bit for bit)."""
     if not dem.on_disk:
@@ -209,6 +211,7 @@ def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int) -
     from ..engine.blocked_regions import blocked_regions
 
     return blocked_regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
+                           block=block or defaults.DISK_BLOCK,
                            out=dem.new_grid("regions", dem.shape, np.int32))
 
 

@@ -353,7 +353,7 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     if ex.checkpoint is not None:
         prepare_checkpoint(ex.checkpoint, resume=ex.resume)
     used = job.defaults_used()
-    job = job.resolved(dem, model)
+    job = job.resolved(dem, model, **({"block": ex.block} if dem.on_disk else {}))
     w_m, h_m = dem.cell_metres()
     sampler = ErrorSampler(model, dem.shape, (float(np.mean(h_m)), float(np.mean(w_m))))
     params = run_params(dem, job, model, ex.seed)

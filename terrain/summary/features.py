@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
+from .. import defaults
 from ..dem import Dem
 from ..engine.persistence import AREA_QUANTUM, VOLUME_QUANTUM, count_ponding, pits_and_levels
 from ..jobs.credit import log_weights, region_figures
@@ -305,7 +306,7 @@ def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
             "unperturbed_edge_limited": reg.edge_limited[k]}
 
 
-def unperturbed_ponding(dem: Dem, job) -> tuple[np.ndarray, np.ndarray]:
+def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Ponded area (m^2) and storage volume (vertical unit x m^2) of every region
     on the DEM as given, indexed by region id (index 0: cells in no region).
 
@@ -317,7 +318,8 @@ def unperturbed_ponding(dem: Dem, job) -> tuple[np.ndarray, np.ndarray]:
     k = len(job.regions) + 1
     if dem.on_disk:
         area, volume = ponding_totals(dem.z, job.regions.labels, job.area_row, job.threshold,
-                                      connectivity=job.connectivity, k=k)
+                                      connectivity=job.connectivity, k=k,
+                                      block=block or defaults.DISK_BLOCK)
         return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
     _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
     area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)
@@ -331,7 +333,7 @@ def _pond_columns(result, ids: np.ndarray) -> dict:
     """Ponded area and volume per region: unperturbed, and mean / 5% / 95%
     over realisations (0 when a region holds no water)."""
     log, n = result.log, result.n
-    area0, vol0 = unperturbed_ponding(result.dem, result.job)
+    area0, vol0 = unperturbed_ponding(result.dem, result.job, result.info.get("block"))
     col = np.searchsorted(ids, log["pond_region"]) if ids.size else log["pond_region"]
     hit = (col < ids.size) & (ids[np.minimum(col, max(ids.size - 1, 0))] == log["pond_region"]) \
         if ids.size else np.zeros(0, bool)

@@ -47,7 +47,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
            "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
            "NpyWindows", "create_npy", "write_npy_window", "save_npy", "scratch_folder",
-           "remove_orphan_scratch", "CountStore", "remove_store", "write_layers_by_window",
+           "remove_orphan_scratch", "CountStore", "write_layers_by_window",
            "SCRATCH_PREFIX"]
 
 
@@ -171,9 +171,9 @@ def _read_to_disk(p: Path, ds, h: RasterHeader, nodata, bbox, folder: Path) -> D
 
 
 def _new_grid(folder: Path, name: str, shape, dtype) -> NpyWindows:
-    """A grid-sized ``.npy`` array ``name`` in ``folder``, zeroed, read and written by window."""
+    """A grid-sized ``.npy`` array ``name`` in ``folder``, read and written by window."""
     path = str(folder / f"{name}.npy")
-    np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=tuple(shape)).flush()
+    create_npy(path, shape, dtype)
     return NpyWindows(path)
 
 
@@ -1467,7 +1467,3 @@ class CountStore:
                 out[y0 - r0:y1 - r0, x0 - c0:x1 - c0] = buf[y0:y1, x0:x1]
         return out
 
-
-def remove_store(path: str | os.PathLike) -> None:
-    """Remove a run's on-disk counts (a folder), if any."""
-    shutil.rmtree(path, ignore_errors=True)

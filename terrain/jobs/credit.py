@@ -501,13 +501,11 @@ class CreditAccumulator:
             self.logs = [concat_logs(self.logs, fields)]
         return self.logs[0]
 
-    def layers(self, shape, *, windows: bool = False):
-        """Each layer's mean and standard error on the whole grid, or (``windows``,
-        or when the counts are on disk) a :class:`CreditLayers` computing them
-        window by window when read."""
-        if windows or self.on_disk:
-            if self.on_disk:
-                self.ponding.check(self.n, exact=True)
+    def layers(self, shape):
+        """Each layer's mean and standard error on the whole grid, or (counts on
+        disk) a :class:`CreditLayers` computing them window by window when read."""
+        if self.on_disk:
+            self.ponding.check(self.n, exact=True)
             return CreditLayers(self, tuple(shape))
         return self.window_layers(tuple(shape), (0, shape[0], 0, shape[1]))
 

@@ -213,17 +213,14 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
     else:
         death_value = p.death_value
         if ponding is not None:
-            k = len(job.regions) + 1
-            area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
-            task = functools.partial(_pond_task, src, regions, job.area_row, thr, res)
-            for w, (cnt, wet, a, v) in zip(wins, map(task, wins)):
+            def add(w, cnt):
                 if hasattr(ponding, "add"):  # counts on disk, stamped per block
                     ponding.add(w, i, cnt)
                 else:
                     ponding[w.r0:w.r1, w.c0:w.c1] += cnt
-                area[wet] += a
-                vol[wet] += v
-            ponds = pond_log(i, area, vol)
+
+            ponds = pond_log(i, *_pond_sums(src, regions, job.area_row, thr, res, wins,
+                                            len(job.regions) + 1, map, add))
     return {**pair_log(p, death_value, thr, i, math.prod(shape),
                        lambda b: grid_values_at(regions, b, shape[1])), **ponds}
 
@@ -247,9 +244,18 @@ def ponding_totals(source: Any, regions: Any, area_row: np.ndarray, threshold: f
                                      threshold, True), wins))
     res = glue([s for s, _ in out])
     del out
+    return _pond_sums(source, regions, area_row, threshold, res, wins, k, map)
+
+
+def _pond_sums(src, regions, area_row, thr, res, wins, k, map, add=None):
+    """The second pass of depressions over ``wins``: ponded area and volume per
+    region (fixed point, ``k`` entries), each block's counts handed to
+    ``add(window, counts)``."""
     area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
-    task = functools.partial(_pond_task, source, regions, area_row, threshold, res)
-    for _, wet, a, v in map(task, wins):
+    task = functools.partial(_pond_task, src, regions, area_row, thr, res)
+    for w, (cnt, wet, a, v) in zip(wins, map(task, wins)):
+        if add is not None:
+            add(w, cnt)
         area[wet] += a
         vol[wet] += v
     return area, vol

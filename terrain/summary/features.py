@@ -200,17 +200,13 @@ def _xy(dem: Dem, cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.where(cells >= 0, x, np.nan), np.where(cells >= 0, y, np.nan)
 
 
-def _windows(shape) -> list:
-    return layer_windows(shape)
-
-
 def _areas(dem: Dem, labels, ids: np.ndarray) -> np.ndarray:
     """Area (m^2) of the cells labelled with each of ``ids``, summed window by window."""
     out = np.zeros(ids.size)
     if ids.size == 0:
         return out
     area = dem.cell_area_m2()
-    for r0, r1, c0, c1 in _windows(dem.shape):
+    for r0, r1, c0, c1 in layer_windows(dem.shape):
         lab = np.asarray(labels[r0:r1, c0:c1])
         out += ndimage.sum_labels(np.broadcast_to(area[r0:r1, None], lab.shape), lab, index=ids)
     return out
@@ -222,7 +218,7 @@ def _best_cells(result, labels, ids: np.ndarray) -> np.ndarray:
     name = layer_name(result.job.kind, "birth_credit")
     best_v, best = np.full(ids.size, -np.inf), np.full(ids.size, -1, np.int64)
     nc = result.dem.shape[1]
-    for r0, r1, c0, c1 in _windows(result.dem.shape):
+    for r0, r1, c0, c1 in layer_windows(result.dem.shape):
         lab = np.asarray(labels[r0:r1, c0:c1]).reshape(-1)
         sel = np.flatnonzero(np.isin(lab, ids))
         if not sel.size:
@@ -428,7 +424,7 @@ def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
     where = {int(i): k for k, i in enumerate(ids)}
     parts: list[list] = [[] for _ in ids]
     t = Affine(*dem.transform)
-    for r0, r1, c0, c1 in _windows(dem.shape):
+    for r0, r1, c0, c1 in layer_windows(dem.shape):
         lab = np.asarray(labels[r0:r1, c0:c1]).astype(np.int32)
         mask = np.isin(lab, ids) & (lab > 0)
         if not mask.any():

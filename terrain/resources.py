@@ -66,9 +66,10 @@ FIELD_DRAW = 24  # correlated error: a draw's float64 field and noise tiles, flo
 LOG_BYTES_PER_PAIR = 21  # one logged pair on grids below 2**31 cells (counted)
 # Blocked mode (terrain.runner.blocked), per cell of a block task: block plus halo
 # (4), its error and the noise tiles it is drawn from (4 + 8), the local step on
-# white noise, the worst case (44), or the second pass of depressions (30) with
-# the block's counts and region labels (4 + 8), the summary handed up (8): counted
-# from the stated figures of terrain.engine.blocked, rounded up.
+# white noise, the worst case (44) plus the level inputs kept for the second
+# pass of depressions (4 + up to 32 / 9 per raster minimum), or that pass (25),
+# the summary handed up (8): counted from the stated figures of
+# terrain.engine.blocked, rounded up.
 BLOCK_TASK = 80
 # The glue, per boundary cell (cells facing another block), white noise (145,
 # measured in bench/bench_blocked.py), and the summaries it reads (40).

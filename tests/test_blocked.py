@@ -21,6 +21,7 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
 from terrain.engine.blocked import (
+    LevelInputs,
     blocked_fill,
     blocked_levels,
     blocked_pairs,
@@ -28,7 +29,9 @@ from terrain.engine.blocked import (
     finish,
     finish_levels,
     glue,
+    levels_from,
     local,
+    local_and_levels,
     read_block,
     windows,
 )
@@ -391,6 +394,25 @@ def test_levels_and_depths_equal_whole(case, conn):
         p, lv, dp = blocked_levels(z, connectivity=conn, block=block)
         assert_identical(p, pairs(z, kind="pits", connectivity=conn))
         assert lv.tobytes() == lv_ref.tobytes() and dp.tobytes() == dp_ref.tobytes()
+
+
+@pytest.mark.parametrize("case", ["integer-ties", "holes", "white-noise"])
+def test_levels_kept_from_the_local_step(case, tmp_path):
+    # the second pass of depressions reads what the first pass kept (saved and
+    # loaded as a file between them): per cell its row, per row a level and a depth
+    z = CASES[case]()
+    lv_ref, dp_ref = _levels(z, 8)
+    wins = windows(z.shape, (6, 7))
+    out = [local_and_levels(read_block(z, w, z.shape), w, z.shape) for w in wins]
+    res = glue([s for s, _ in out])
+    for w, (_, kept) in zip(wins, out):
+        kept = LevelInputs.load(kept.save(str(tmp_path / "levels.npz")))
+        lv, dp = levels_from(kept, w, res)
+        rows = kept.dest.reshape(w.r1 - w.r0, w.c1 - w.c0)
+        ok = rows >= 0
+        assert np.array_equal(ok, np.isfinite(z[w.r0:w.r1, w.c0:w.c1]))
+        assert lv[rows[ok]].tobytes() == lv_ref[w.r0:w.r1, w.c0:w.c1][ok].tobytes()
+        assert dp[rows[ok]].tobytes() == dp_ref[w.r0:w.r1, w.c0:w.c1][ok].tobytes()
 
 
 def test_ponding_counted_per_block_equals_whole(usgs_dem):

@@ -53,12 +53,16 @@ of the raster or the neighbouring cell it leaves for; :func:`glue` follows
 those chains from strip to strip to a minimum, and keeps the *merge
 forest* of the reduced graph (each vertex below the root it died into, at
 that cell), from which the second passes read any component's identity and
-age just before any cell (:class:`Forest`). :func:`finish_levels` gives
+age just before any cell (:class:`Forest`). :func:`levels_from` gives
 each minimum its fill level (the later of its component's first boundary
 time and that vertex's join with the outlet) and its depression depth
 (level minus the deepest cell of its component below the level: the
 block's own merge log while the component is closed, the merge forest
-after).
+after). It reads only what the first pass kept of the block
+(:func:`local_and_levels`, :class:`LevelInputs`: per cell the row of the
+minimum or exit its descent reaches, per minimum four numbers), so the
+second pass of depressions does not redo the local step;
+:func:`finish_levels` is both passes on one block.
 
 Ties use the global flat index throughout (inside a block the local
 row-major order equals the global one). Whether a cell is on the raster
@@ -106,8 +110,12 @@ on white noise. The glue keeps 24 more bytes per reduced-graph vertex
 (merge forest) and 8 per boundary cell (its global vertex and its row of
 :class:`Minima`, int32 each), plus 8-24 per minimum; its measured peak
 is 44 bytes per boundary cell on terrain plus noise (1024**2 blocks; 22-27
-without termini) and unchanged at 145 on white noise. :func:`finish_levels`
-uses 30 bytes per block cell, 16 of them its two float64 outputs.
+without termini) and unchanged at 145 on white noise. The level inputs
+kept between the passes take 4 bytes per block cell (the descent codes,
+renumbered in place) plus 32 per raster minimum of the block and 8 per
+exit; the second pass of depressions holds those, the block's values and
+its counts (4 each), region labels (8) and a label view (4): about 25
+bytes per block cell.
 
 References
 ----------
@@ -149,8 +157,9 @@ from .grid import forward_offsets, offsets
 from .persistence import KINDS, Pairs
 
 __all__ = ["Window", "Strip", "Roots", "BlockSummary", "Forest", "Boundary", "Minima", "Resolution",
-           "windows",
-           "halo", "read_block", "local", "glue", "collect", "finish", "finish_levels",
+           "LevelInputs", "windows",
+           "halo", "read_block", "local", "local_and_levels", "glue", "collect", "finish",
+           "finish_levels", "level_inputs", "levels_from",
            "blocked_pairs", "blocked_fill", "blocked_levels", "local_summaries"]
 
 TOP, BOTTOM, LEFT, RIGHT = range(4)
@@ -186,7 +195,7 @@ def halo(window: Window, shape: tuple[int, int]) -> Window:
     return Window(max(r0 - 1, 0), min(r1 + 1, shape[0]), max(c0 - 1, 0), min(c1 + 1, shape[1]))
 
 
-def _as_float(a: np.ndarray) -> np.ndarray:
+def as_float(a: np.ndarray) -> np.ndarray:
     """The conversion of ``pairs()``: integers of up to 16 bits to float32,
     wider ones to float64 (elementwise, so a block converts like the whole)."""
     if a.dtype != np.float32 and a.dtype != np.float64:
@@ -202,7 +211,7 @@ def read_block(source: Any, window: Window, shape: tuple[int, int], mask: Any = 
     marks nodata).
     """
     h = halo(window, shape)
-    vals = _as_float(np.asarray(source[h.r0:h.r1, h.c0:h.c1]))
+    vals = as_float(np.asarray(source[h.r0:h.r1, h.c0:h.c1]))
     if mask is not None:
         m = np.asarray(mask[h.r0:h.r1, h.c0:h.c1], dtype=bool)
         if m.any():
@@ -445,7 +454,7 @@ def prepare_block(block_values, window, shape, kind, connectivity) -> Block:
     window = Window(*(int(x) for x in window))
     shape = (int(shape[0]), int(shape[1]))
     h = halo(window, shape)
-    vals = _as_float(np.asarray(block_values))
+    vals = as_float(np.asarray(block_values))
     if vals.shape != (h.r1 - h.r0, h.c1 - h.c0):
         raise OptionError(f"block values of shape {vals.shape} do not cover {h} (window plus halo)")
     vh = np.isfinite(vals)
@@ -468,8 +477,13 @@ def prepare_block(block_values, window, shape, kind, connectivity) -> Block:
     return Block(window, shape, nr, nc, z, zk, valid, flags, vals, hr, hc, h)
 
 
-def local_engine(blk: Block, connectivity: int, outlet: bool):
-    """Basins, their lowest passes and the boundary-aware merge of one block."""
+def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = False):
+    """Basins, their lowest passes and the boundary-aware merge of one block.
+
+    With ``pointers`` also returns a copy of each cell's steepest-descent
+    pointer inside the block (what :func:`descend_block` starts from; 4
+    bytes per cell), else None.
+    """
     nr, nc = blk.nr, blk.nc
     n = nr * nc
     dr, dc = offsets(connectivity)
@@ -477,6 +491,7 @@ def local_engine(blk: Block, connectivity: int, outlet: bool):
     has_nodata = not blk.valid.all()
     lab = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
     descend(blk.zk, blk.valid, has_nodata, nr, nc, dr, dc, lab)
+    pointer = lab.astype(_code_dtype(n)) if pointers else None
     minc = resolve(blk.valid, lab)
     nb = minc.size
     cap = 1024
@@ -496,6 +511,8 @@ def local_engine(blk: Block, connectivity: int, outlet: bool):
         ew = np.concatenate([ew, emin[has]])
     order = np.lexsort((ew, blk.zk[ew]))
     merged = _k.local_merge(blk.zk, blk.flags, minc, emin, term, ea[order], eb[order], ew[order])
+    if pointers:
+        return lab, minc, Merged(*merged), pointer
     return lab, minc, Merged(*merged)
 
 
@@ -549,19 +566,27 @@ def _strips(blk: Block, lab: np.ndarray, vertex_of_basin: np.ndarray) -> tuple[S
     return tuple(out)
 
 
-def descend_block(blk: Block, kind: str, connectivity: int) -> tuple[np.ndarray, np.ndarray]:
+def _code_dtype(n: int):
+    """Integer type of :func:`descend_block`'s codes for a block of ``n`` cells."""
+    return np.int32 if 2 * n + 2 < 2**31 else np.int64
+
+
+def descend_block(blk: Block, kind: str, connectivity: int,
+                  pointer: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Steepest descent of a block's cells on the whole raster (neighbours
     read from the halo), resolved inside the block: per cell the code of
     where its chain ends and per exit its halo ring position (see
     :func:`~terrain.engine.blocked_kernels.global_descend`). 4 bytes per
-    cell."""
+    cell. ``pointer``, optional: the in-block pointers of
+    :func:`local_engine` (``pointers=True``), taken over as the codes
+    instead of descending again."""
     n = blk.nr * blk.nc
-    code = np.empty(n, np.int32 if 2 * n + 2 < 2**31 else np.int64)
+    code = np.empty(n, _code_dtype(n)) if pointer is None else pointer
     ex_ring = np.empty(2 * (blk.nr + blk.nc) + 4, np.int64)
     dr, dc = offsets(connectivity)
     ne = _k.global_descend(blk.zk, blk.valid, not blk.valid.all(), blk.vals, kind == "peaks", blk.hr,
                            blk.hc, blk.nr, blk.nc, blk.hwin.r0, blk.hwin.c0, blk.shape[1], dr, dc,
-                           code, ex_ring)
+                           code, ex_ring, pointer is not None)
     return code, ex_ring[:ne]
 
 
@@ -581,12 +606,13 @@ def _with_termini(blk: Block, strips, code, ex_ring) -> tuple[Strip, ...]:
     return tuple(out)
 
 
-def _roots(blk: Block, lab, minc, m: Merged, strips) -> Roots:
-    """Fill-level and depth data of the minima the strips descend to."""
+def _roots(blk: Block, lab, minc, m: Merged, strips, links) -> Roots:
+    """Fill-level and depth data of the minima the strips descend to
+    (``links``: ``basin_links`` of the block)."""
     cells = np.unique(np.concatenate([s.term[s.term >= 0] for s in strips]))
     local_cells = to_local(cells, blk.window, blk.shape)
     basins = -lab[local_cells].astype(np.int64) - 1
-    T, X = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
+    T, X = links
     dk = _k.depression_roots(blk.zk, minc, m.ly, m.lo, m.lw, T, basins)
     t = T[basins]
     tk = np.full(t.size, -np.inf)
@@ -648,10 +674,36 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
     .. [1] Morozov, D., Weber, G. H. (2013). Distributed merge trees.
        PPoPP '13, 93-102. doi:10.1145/2442516.2442526
     """
+    return _local(block_values, window, shape, kind, connectivity, edge_outlet, min_persistence,
+                  termini, merge_level, False)[0]
+
+
+def local_and_levels(block_values: np.ndarray, window: Window | Sequence[int],
+                     shape: tuple[int, int], *, connectivity: int = 8,
+                     min_persistence: float = 0.0) -> tuple[BlockSummary, LevelInputs]:
+    """:func:`local` of pits with the edge as outlet and termini, plus the
+    block's :class:`LevelInputs`: what :func:`levels_from` needs, once the
+    summaries are glued, to give every cell its fill level and depression
+    depth without redoing the local step (the second pass of depressions).
+
+    References
+    ----------
+    .. [1] Barnes, R. (2016). Parallel Priority-Flood depression filling
+       for trillion cell digital elevation models on desktops or clusters.
+       Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
+    """
+    return _local(block_values, window, shape, "pits", connectivity, True, min_persistence, True,
+                  None, True)
+
+
+def _local(block_values, window, shape, kind, connectivity, edge_outlet, min_persistence, termini,
+           merge_level, levels):
+    """:func:`local`; with ``levels`` (pits, edge outlet, termini) also the
+    block's :class:`LevelInputs` (else None)."""
     _check(kind, connectivity)
     outlet = bool(kind == "pits" if edge_outlet is None else edge_outlet)
     blk = prepare_block(block_values, window, shape, kind, connectivity)
-    lab, minc, m = local_engine(blk, connectivity, outlet)
+    lab, minc, m, *pointer = local_engine(blk, connectivity, outlet, pointers=termini)
     pb, pd, pe, esb, ese, hvb, hve = m.pb, m.pd, m.pe, m.esb, m.ese, m.hvb, m.hve
     zk = blk.zk
     f32 = blk.z.dtype == np.float32
@@ -667,12 +719,16 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
     vb = minc[hvb]
     effk = np.full(hve.size, np.nan)
     effk[hve >= 0] = zk[hve[hve >= 0]]
-    strips, roots = _strips(blk, lab, vertex_of_basin), None
+    strips, roots, inputs = _strips(blk, lab, vertex_of_basin), None, None
     if termini:
-        strips = _with_termini(blk, strips, *descend_block(blk, kind, connectivity))
+        code, ex_ring = descend_block(blk, kind, connectivity, pointer.pop())
+        strips = _with_termini(blk, strips, code, ex_ring)
         if kind == "pits" and outlet:
-            roots = _roots(blk, lab, minc, m, strips)
-    return BlockSummary(
+            links = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
+            roots = _roots(blk, lab, minc, m, strips, links)
+            if levels:
+                inputs = level_inputs(blk, lab, minc, m, code, ex_ring, links)
+    summary = BlockSummary(
         blk.window, blk.shape, kind, connectivity, outlet,
         to_global(pb, blk), to_global(pd, blk), bk, dk, pe,
         to_global(esb, blk), zk[esb].astype(np.float64), ese,
@@ -680,6 +736,7 @@ def local(block_values: np.ndarray, window: Window | Sequence[int], shape: tuple
         m.hu.astype(np.int32), m.hv.astype(np.int32), to_global(m.hw, blk),
         zk[m.hw].astype(np.float64), (blk.flags[m.hw] & _k.EDGE) != 0,
         strips, bool(f32), roots)
+    return summary, inputs
 
 
 # ----------------------------------------------------------------------------
@@ -989,19 +1046,83 @@ def need_termini(resolution: Resolution, fill: bool = False) -> None:
         raise OptionError("fill levels need kind='pits' with the edge as outlet")
 
 
-def _basin_levels(blk: Block, minc, m: Merged, resolution: Resolution):
-    """Fill level and depression depth of every basin of a block whose
-    minimum is a raster minimum (other basins get values never read)."""
-    T, X = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
-    dk = _k.depression_roots(blk.zk, minc, m.ly, m.lo, m.lw, T, np.arange(minc.size))
-    tk = np.full(T.size, -np.inf)
-    tk[T >= 0] = blk.zk[T[T >= 0]]
-    off = resolution.boundary[blk.window].offset
+@dataclass(frozen=True)
+class LevelInputs:
+    """What one block's local step leaves for the second pass of
+    depressions (:func:`levels_from`).
+
+    ``dest`` (per cell, int32 or int64 as the block's labels): the row of
+    where the cell's steepest descent on the whole raster ends -- row ``q``
+    below ``tk.size`` for the ``q``-th raster minimum of the block (cell
+    order), row ``tk.size + e`` when it leaves the block at exit ``e``
+    (halo ring position ``ex_ring[e]``, see
+    :func:`~terrain.engine.blocked_kernels.ring_index`); -1 on nodata. Per
+    raster minimum, as :func:`~terrain.engine.blocked_kernels.levels_and_depths`
+    reads them: ``tk``/``tc`` (key and global cell of the time its component
+    first reached the block boundary; -1 from birth, -2 never), ``x``
+    (block-local reduced-graph vertex then joined; -1 the outlet, -2 none)
+    and ``dk`` (deepest key below ``tk``). 4 bytes per cell, 32 per raster
+    minimum and 8 per exit; :meth:`save` and :meth:`load` keep them in an
+    uncompressed ``.npz`` between the passes.
+    """
+
+    dest: np.ndarray
+    tk: np.ndarray
+    tc: np.ndarray
+    x: np.ndarray
+    dk: np.ndarray
+    ex_ring: np.ndarray
+
+    def save(self, path: str) -> str:
+        """Write to ``path`` (an ``.npz``); returns ``path``."""
+        with open(path, "wb") as f:
+            np.savez(f, **{k: getattr(self, k) for k in self.__dataclass_fields__})
+        return path
+
+    @classmethod
+    def load(cls, path: str) -> LevelInputs:
+        """Read what :meth:`save` wrote."""
+        with np.load(path) as f:
+            return cls(**{k: f[k] for k in cls.__dataclass_fields__})
+
+
+def level_inputs(blk: Block, lab, minc, m: Merged, code, ex_ring, links) -> LevelInputs:
+    """The :class:`LevelInputs` of a block from its local engine, its
+    descent codes (``code`` of :func:`descend_block`, turned into ``dest``
+    in place) and its ``basin_links``."""
+    minima = _k.descent_rows(code, blk.nr * blk.nc)
+    basins = -lab[minima].astype(np.int64) - 1
+    T, X = links
+    dk = _k.depression_roots(blk.zk, minc, m.ly, m.lo, m.lw, T, basins)
+    t = T[basins]
+    tk = np.full(t.size, -np.inf)
+    tk[t >= 0] = blk.zk[t[t >= 0]]
+    return LevelInputs(code, tk, np.where(t >= 0, to_global(t, blk), t), X[basins], dk, ex_ring)
+
+
+def levels_from(inputs: LevelInputs, window: Window | Sequence[int],
+                resolution: Resolution) -> tuple[np.ndarray, np.ndarray]:
+    """Fill level and depression depth per row of ``inputs.dest``: the
+    raster minima of the block, then its exits (read from the neighbours'
+    strips). A cell's values are those of its row (``dest``); as
+    :func:`~terrain.engine.persistence.count_ponding` reads them with
+    ``lab = -(dest + 1)``. See :func:`finish_levels`.
+
+    References
+    ----------
+    .. [1] Barnes, R. (2016). Parallel Priority-Flood depression filling
+       for trillion cell digital elevation models on desktops or clusters.
+       Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
+    """
+    need_termini(resolution, fill=True)
+    window = Window(*(int(x) for x in window))
+    off = resolution.boundary[window].offset
     f = resolution.forest
-    lv, dp = np.empty(T.size), np.empty(T.size)
-    _k.levels_and_depths(tk, np.where(T >= 0, to_global(T, blk), T), np.where(X >= 0, X + off, X),
-                         dk, f.jcell, f.jkey, f.up, f.mkey, f.vkey, lv, dp)
-    return lv, dp
+    lv, dp = np.empty(inputs.tk.size), np.empty(inputs.tk.size)
+    _k.levels_and_depths(inputs.tk, inputs.tc, np.where(inputs.x >= 0, inputs.x + off, inputs.x),
+                         inputs.dk, f.jcell, f.jkey, f.up, f.mkey, f.vkey, lv, dp)
+    return tuple(np.concatenate([v, ring_values(resolution, window, field)[inputs.ex_ring]])
+                 for v, field in ((lv, "level"), (dp, "depth")))
 
 
 def finish_levels(block_values: np.ndarray, window: Window | Sequence[int],
@@ -1035,17 +1156,13 @@ def finish_levels(block_values: np.ndarray, window: Window | Sequence[int],
     """
     need_termini(resolution, fill=True)
     window = Window(*(int(x) for x in window))
-    blk = prepare_block(block_values, window, resolution.shape, "pits", resolution.connectivity)
-    lab, minc, m = local_engine(blk, resolution.connectivity, True)
-    code, ex_ring = descend_block(blk, "pits", resolution.connectivity)
-    lv, dp = _basin_levels(blk, minc, m, resolution)
-    del m
-    n = blk.nr * blk.nc
+    _, inputs = local_and_levels(block_values, window, resolution.shape,
+                                 connectivity=resolution.connectivity)
+    nr, nc = window.r1 - window.r0, window.c1 - window.c0
     out = []
-    for bval, field in ((lv, "level"), (dp, "depth")):
-        cell = np.empty(n, np.float64)
-        _k.per_cell(code, lab, n, bval, ring_values(resolution, window, field)[ex_ring], np.nan, cell)
-        out.append(cell.reshape(blk.nr, blk.nc))
+    for v in levels_from(inputs, window, resolution):
+        out.append(np.where(inputs.dest >= 0, v[np.maximum(inputs.dest, 0)] if v.size else np.nan,
+                            np.nan).reshape(nr, nc))
     return out[0], out[1]
 
 

@@ -4,7 +4,8 @@ Local step (one block, flat row-major *local* indices; inside one block the
 local order of cells equals their global order, so ties break the same way):
 :func:`cell_flags`, :func:`block_boundaries`, :func:`local_merge`,
 :func:`basin_links`, :func:`global_descend` (steepest descent over the whole
-raster's neighbourhood, read from the halo), :func:`depression_roots`.
+raster's neighbourhood, read from the halo), :func:`depression_roots`,
+:func:`descent_rows`.
 Global step (flat *global* indices): :func:`cross_edges`, :func:`glue_merge`,
 :func:`follow_exits`, :func:`levels_and_depths`, :func:`forest_root`.
 
@@ -615,7 +616,7 @@ def _ring_pointer(vals, sgn, R, C, hr0, hc0, ncols, dr, dc):
 
 @njit(cache=True)
 def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, ncols, dr, dc,
-                   code, ex_ring):
+                   code, ex_ring, pointed=False):
     """Steepest descent of a block's cells on the whole raster, resolved to
     where each chain ends inside the block.
 
@@ -632,11 +633,13 @@ def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, n
     neighbour (a minimum of the raster), ``-(n + 1 + e)`` when it leaves
     the block at exit ``e`` (a block cell whose lowest neighbour is the
     halo cell at ring position ``ex_ring[e]``, see :func:`ring_index`),
-    ``-(2 n + 1)`` on nodata. Returns the number of exits.
+    ``-(2 n + 1)`` on nodata. Returns the number of exits. With ``pointed``,
+    ``code`` already holds the pointers of ``basins.descend`` on the block.
     """
     n = nr * nc
     sgn = -1.0 if neg else 1.0
-    descend(zk, valid, has_nodata, nr, nc, dr, dc, code)
+    if not pointed:
+        descend(zk, valid, has_nodata, nr, nc, dr, dc, code)
     for i in range(n):
         if not valid[i]:
             code[i] = -(2 * n + 1)
@@ -662,6 +665,40 @@ def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, n
                 code[k] = end
                 k = nxt
     return ne
+
+
+@njit(cache=True)
+def descent_rows(code, n):
+    """Turn the codes of :func:`global_descend` into rows of a table, in place.
+
+    The raster minima of the block (cells whose chain ends at themselves)
+    get rows ``0..m-1`` in cell order, the exits rows ``m + e``; each cell
+    gets the row of where its chain ends, -1 on nodata. Returns the minima
+    (local cells, the table's first ``m`` rows). No temporary per cell.
+    """
+    m = 0
+    for i in range(n):
+        if code[i] == -(i + 1):
+            m += 1
+    minima = np.empty(m, np.int64)
+    k = 0
+    for i in range(n):
+        if code[i] == -(i + 1):
+            code[i] = k
+            minima[k] = i
+            k += 1
+    for i in range(n):
+        v = code[i]
+        if v >= 0:
+            continue  # a minimum, numbered above
+        c = -v - 1
+        if c < n:
+            code[i] = code[c]
+        elif c < 2 * n:
+            code[i] = m + c - n
+        else:
+            code[i] = -1
+    return minima
 
 
 @njit(cache=True)

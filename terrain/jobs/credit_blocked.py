@@ -8,16 +8,20 @@ window plus the error of :meth:`~terrain.noise.ErrorSampler.draw_window`,
 which gives every cell the same error whatever window it is drawn in), the
 pairs come from the blocked engine (:mod:`terrain.engine.blocked`: local
 steps, glue, collect), and for depressions a second pass gives each cell
-its fill level and depression depth (:func:`~terrain.engine.blocked.finish_levels`)
-from which the ponding counts and the ponded area and volume per region are
-counted block by block (fixed-point sums, exact in any order).
+its fill level and depression depth (:func:`~terrain.engine.blocked.levels_from`,
+reading the :class:`~terrain.engine.blocked.LevelInputs` each block's local
+step kept) from which the ponding counts and the ponded area and volume per
+region are counted block by block (fixed-point sums, exact in any order).
 
 The local and second-pass steps are tasks run through ``map`` (a process
 pool's or a Dask client's), each reading its own window from paths, so a
-task pickles a few hundred bytes. Memory per task: the block plus halo
-(4 bytes per cell), its error (4, and the correlated field's tiles), the
-local step's 12-15 bytes per cell (40-44 on white noise) or the second
-pass's 30; the glue's is stated per boundary cell in
+task pickles a few hundred bytes; the level inputs go from the first pass
+to the second as one ``.npz`` per block in the scratch folder beside the
+drawn realisation (4 bytes per cell on disk), or in memory when the tasks
+run here on arrays. Memory per task: the block plus halo (4 bytes per
+cell), its error (4, and the correlated field's tiles), the local step's
+12-15 bytes per cell (40-44 on white noise) plus the level inputs, or the
+second pass's 25; the glue's is stated per boundary cell in
 :mod:`terrain.engine.blocked`.
 
 References
@@ -42,7 +46,18 @@ from typing import Any
 
 import numpy as np
 
-from ..engine.blocked import Window, collect, finish_levels, glue, local, read_block, windows
+from ..engine.blocked import (
+    LevelInputs,
+    Window,
+    as_float,
+    collect,
+    glue,
+    levels_from,
+    local,
+    local_and_levels,
+    read_block,
+    windows,
+)
 from ..engine.persistence import count_ponding
 from ..io import NpyWindows, create_npy, scratch_folder, write_npy_window
 from ..noise import ErrorSampler
@@ -114,31 +129,44 @@ def _interior(vals: np.ndarray, window: Window) -> np.ndarray:
     return vals[r:r + window.r1 - window.r0, c:c + window.c1 - window.c0]
 
 
-def _local_task(src: Any, kind: str, connectivity: int, thr: float, termini: bool,
+def _local_task(src: Any, kind: str, connectivity: int, thr: float, levels: bool, keep: Any,
                 window: Window):
-    """The local step of one block and the block's lowest value (for the base)."""
+    """The local step of one block (``kind`` "peaks" or "pits"), the block's
+    lowest value (for the base) and, with ``levels``, its
+    :class:`~terrain.engine.blocked.LevelInputs` for the second pass of
+    depressions: returned, or (``keep`` a folder) saved there and their path
+    returned."""
     vals = read_block(src, window, src.shape)
-    s = local(vals, window, src.shape, kind="peaks" if kind == "peaks" else "pits",
-              connectivity=connectivity, min_persistence=thr, termini=termini)
+    inputs = None
+    if not levels:
+        s = local(vals, window, src.shape, kind=kind, connectivity=connectivity,
+                  min_persistence=thr)
+    else:
+        s, inputs = local_and_levels(vals, window, src.shape, connectivity=connectivity,
+                                     min_persistence=thr)
+        if keep is not None:
+            inputs = inputs.save(os.path.join(keep, f"levels-{window.r0}-{window.c0}.npz"))
     inner = _interior(vals, window)
     valid = inner[np.isfinite(inner)]
-    return s, (float(valid.min()) if valid.size else math.inf)
+    return s, (float(valid.min()) if valid.size else math.inf), inputs
 
 
-def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolution,
-               window: Window):
-    """Ponding of one block: its counts, and the ponded area and volume per
-    region in fixed point, as (regions, area, volume) of the wet regions."""
-    vals = read_block(src, window, src.shape)
-    lv, dp = finish_levels(vals, window, resolution)
+def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolution, item):
+    """Ponding of one block (``item``: its window and level inputs, or their
+    path): its counts, and the ponded area and volume per region in fixed
+    point, as (regions, area, volume) of the wet regions."""
+    window, inputs = item
+    if isinstance(inputs, str):
+        inputs = LevelInputs.load(inputs)
+    lv, dp = levels_from(inputs, window, resolution)
     r0, r1, c0, c1 = window
-    zb = np.ascontiguousarray(_interior(vals, window)).reshape(-1)
+    zb = np.ascontiguousarray(as_float(np.asarray(src[r0:r1, c0:c1]))).reshape(-1)
     reg = np.ascontiguousarray(_array(regions)[r0:r1, c0:c1]).reshape(-1).astype(np.int64)
     cnt = np.zeros(zb.size, np.int32)
     k = int(reg.max()) + 1 if reg.size else 1
     area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
-    count_ponding(zb, np.isfinite(zb), -(np.arange(zb.size) + 1), lv.reshape(-1), dp.reshape(-1),
-                  thr, cnt, reg, np.ascontiguousarray(area_row[r0:r1]), c1 - c0, area, vol)
+    count_ponding(zb, inputs.dest >= 0, -(inputs.dest + 1), lv, dp, thr, cnt, reg,
+                  np.ascontiguousarray(area_row[r0:r1]), c1 - c0, area, vol)
     wet = np.flatnonzero(area > 0)
     return cnt.reshape(r1 - r0, c1 - c0), wet, area[wet], vol[wet]
 
@@ -189,18 +217,21 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
             scratch = os.path.join(folder, "realisation.npy")
         src = materialise(src, wins, np.empty(shape, np.float32) if scratch is None else scratch,
                           map)
-        return _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map)
+        keep = os.path.dirname(os.path.abspath(scratch)) if isinstance(scratch, str) else None
+        return _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep)
 
 
-def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict:
-    """:func:`realise_blocked` on the drawn realisation ``src``."""
+def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -> dict:
+    """:func:`realise_blocked` on the drawn realisation ``src``; the level
+    inputs of depressions kept in the folder ``keep`` (None: in memory)."""
     shape = tuple(int(x) for x in src.shape)
     thr = realisation_threshold(job, sampler.kernel, seed, i)
-    depressions = job.kind == "depressions"
-    out = list(map(functools.partial(_local_task, src, job.kind, job.connectivity, thr,
-                                     depressions), wins))
-    summaries = [s for s, _ in out]
-    lowest = min((v for _, v in out), default=math.inf)
+    levels = job.kind == "depressions" and ponding is not None
+    out = list(map(functools.partial(_local_task, src, "peaks" if job.kind == "peaks" else "pits",
+                                     job.connectivity, thr, levels, keep), wins))
+    summaries = [s for s, _, _ in out]
+    lowest = min((v for _, v, _ in out), default=math.inf)
+    kept = [x for _, _, x in out]
     del out
     res = glue(summaries)
     p = collect(summaries, res, min_persistence=thr)
@@ -219,7 +250,7 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
                 else:
                     ponding[w.r0:w.r1, w.c0:w.c1] += cnt
 
-            ponds = pond_log(i, *_pond_sums(src, regions, job.area_row, thr, res, wins,
+            ponds = pond_log(i, *_pond_sums(src, regions, job.area_row, thr, res, wins, kept,
                                             len(job.regions) + 1, map, add))
     return {**pair_log(p, death_value, thr, i, math.prod(shape),
                        lambda b: grid_values_at(regions, b, shape[1])), **ponds}
@@ -227,11 +258,14 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map) -> dict
 
 def ponding_totals(source: Any, regions: Any, area_row: np.ndarray, threshold: float, *,
                    connectivity: int, k: int, block: int = 1024,
-                   map: Callable[..., Iterable] = builtins.map) -> tuple[np.ndarray, np.ndarray]:
+                   map: Callable[..., Iterable] = builtins.map,
+                   keep: str | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Ponded area and volume per region of the surface ``source`` (read by
     window, NaN on nodata), block by block, in the fixed point of
     :func:`~terrain.engine.persistence.count_ponding` (``k`` regions + 1):
-    the very sums it makes on the whole grid.
+    the very sums it makes on the whole grid. Between the passes each
+    block's level inputs (4 bytes per cell) are kept in memory, or in a
+    scratch folder made under ``keep`` and removed at the end.
 
     References
     ----------
@@ -240,20 +274,23 @@ def ponding_totals(source: Any, regions: Any, area_row: np.ndarray, threshold: f
        Computers & Geosciences. doi:10.1016/j.cageo.2016.07.001
     """
     wins = windows(tuple(source.shape), block)
-    out = list(map(functools.partial(_local_task, source, "depressions", connectivity,
-                                     threshold, True), wins))
-    res = glue([s for s, _ in out])
-    del out
-    return _pond_sums(source, regions, area_row, threshold, res, wins, k, map)
+    with contextlib.ExitStack() as scope:
+        folder = None if keep is None else scope.enter_context(scratch_folder(keep))
+        out = list(map(functools.partial(_local_task, source, "pits", connectivity, threshold,
+                                         True, folder), wins))
+        res = glue([s for s, _, _ in out])
+        kept = [x for _, _, x in out]
+        del out
+        return _pond_sums(source, regions, area_row, threshold, res, wins, kept, k, map)
 
 
-def _pond_sums(src, regions, area_row, thr, res, wins, k, map, add=None):
-    """The second pass of depressions over ``wins``: ponded area and volume per
-    region (fixed point, ``k`` entries), each block's counts handed to
-    ``add(window, counts)``."""
+def _pond_sums(src, regions, area_row, thr, res, wins, kept, k, map, add=None):
+    """The second pass of depressions over ``wins`` (``kept``: each block's
+    level inputs or their path): ponded area and volume per region (fixed
+    point, ``k`` entries), each block's counts handed to ``add(window, counts)``."""
     area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
     task = functools.partial(_pond_task, src, regions, area_row, thr, res)
-    for w, (cnt, wet, a, v) in zip(wins, map(task, wins)):
+    for w, (cnt, wet, a, v) in zip(wins, map(task, zip(wins, kept))):
         if add is not None:
             add(w, cnt)
         area[wet] += a

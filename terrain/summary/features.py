@@ -315,7 +315,7 @@ def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.nda
     if dem.on_disk:
         area, volume = ponding_totals(dem.z, job.regions.labels, job.area_row, job.threshold,
                                       connectivity=job.connectivity, k=k,
-                                      block=block or defaults.DISK_BLOCK)
+                                      block=block or defaults.DISK_BLOCK, keep=dem.scratch)
         return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
     _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
     area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)

@@ -46,7 +46,8 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
            "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
-           "NpyWindows", "create_npy", "write_npy_window", "save_npy", "scratch_folder",
+           "NpyWindows", "create_npy", "write_npy_window", "save_npy", "save_scratch",
+           "load_scratch", "scratch_folder",
            "remove_orphan_scratch", "CountStore", "write_layers_by_window",
            "SCRATCH_PREFIX"]
 
@@ -1307,6 +1308,21 @@ def save_npy(path: str, a: np.ndarray) -> str:
     """Save ``a`` as ``.npy`` at ``path``; return the path."""
     np.save(path, a)
     return path
+
+
+def save_scratch(path: str, arrays: dict) -> str:
+    """Save ``arrays`` (name: array) as an uncompressed ``.npz`` scratch file at
+    ``path``, read back within the run by :func:`load_scratch` (not flushed to
+    disk, not checked); return the path."""
+    with open(path, "wb") as fh:
+        np.savez(fh, **arrays)
+    return path
+
+
+def load_scratch(path: str) -> dict:
+    """The arrays :func:`save_scratch` wrote (no pickled objects)."""
+    with np.load(path, allow_pickle=False) as f:
+        return {k: f[k] for k in f.files}
 
 
 @contextlib.contextmanager

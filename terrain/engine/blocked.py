@@ -1062,8 +1062,7 @@ class LevelInputs:
     first reached the block boundary; -1 from birth, -2 never), ``x``
     (block-local reduced-graph vertex then joined; -1 the outlet, -2 none)
     and ``dk`` (deepest key below ``tk``). 4 bytes per cell, 32 per raster
-    minimum and 8 per exit; :meth:`save` and :meth:`load` keep them in an
-    uncompressed ``.npz`` between the passes.
+    minimum and 8 per exit.
     """
 
     dest: np.ndarray
@@ -1073,17 +1072,9 @@ class LevelInputs:
     dk: np.ndarray
     ex_ring: np.ndarray
 
-    def save(self, path: str) -> str:
-        """Write to ``path`` (an ``.npz``); returns ``path``."""
-        with open(path, "wb") as f:
-            np.savez(f, **{k: getattr(self, k) for k in self.__dataclass_fields__})
-        return path
-
-    @classmethod
-    def load(cls, path: str) -> LevelInputs:
-        """Read what :meth:`save` wrote."""
-        with np.load(path) as f:
-            return cls(**{k: f[k] for k in cls.__dataclass_fields__})
+    def arrays(self) -> dict:
+        """The fields by name (``LevelInputs(**inputs.arrays())`` rebuilds it)."""
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
 
 
 def level_inputs(blk: Block, lab, minc, m: Merged, code, ex_ring, links) -> LevelInputs:

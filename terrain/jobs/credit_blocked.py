@@ -59,7 +59,7 @@ from ..engine.blocked import (
     windows,
 )
 from ..engine.persistence import count_ponding
-from ..io import NpyWindows, create_npy, scratch_folder, write_npy_window
+from ..io import NpyWindows, create_npy, load_scratch, save_scratch, scratch_folder, write_npy_window
 from ..noise import ErrorSampler
 from .credit import CreditJob, pair_log, pond_log, realisation_threshold
 
@@ -145,7 +145,8 @@ def _local_task(src: Any, kind: str, connectivity: int, thr: float, levels: bool
         s, inputs = local_and_levels(vals, window, src.shape, connectivity=connectivity,
                                      min_persistence=thr)
         if keep is not None:
-            inputs = inputs.save(os.path.join(keep, f"levels-{window.r0}-{window.c0}.npz"))
+            inputs = save_scratch(os.path.join(keep, f"levels-{window.r0}-{window.c0}.npz"),
+                                  inputs.arrays())
     inner = _interior(vals, window)
     valid = inner[np.isfinite(inner)]
     return s, (float(valid.min()) if valid.size else math.inf), inputs
@@ -157,7 +158,7 @@ def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolut
     point, as (regions, area, volume) of the wet regions."""
     window, inputs = item
     if isinstance(inputs, str):
-        inputs = LevelInputs.load(inputs)
+        inputs = LevelInputs(**load_scratch(inputs))
     lv, dp = levels_from(inputs, window, resolution)
     r0, r1, c0, c1 = window
     zb = np.ascontiguousarray(as_float(np.asarray(src[r0:r1, c0:c1]))).reshape(-1)

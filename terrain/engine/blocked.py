@@ -480,9 +480,9 @@ def prepare_block(block_values, window, shape, kind, connectivity) -> Block:
 def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = False):
     """Basins, their lowest passes and the boundary-aware merge of one block.
 
-    With ``pointers`` also returns a copy of each cell's steepest-descent
-    pointer inside the block (what :func:`descend_block` starts from; 4
-    bytes per cell), else None.
+    Returns ``(lab, minc, merged, pointer)``: with ``pointers``, ``pointer``
+    is a copy of each cell's steepest-descent pointer inside the block (what
+    :func:`descend_block` starts from; 4 bytes per cell), else None.
     """
     nr, nc = blk.nr, blk.nc
     n = nr * nc
@@ -511,9 +511,7 @@ def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = F
         ew = np.concatenate([ew, emin[has]])
     order = np.lexsort((ew, blk.zk[ew]))
     merged = _k.local_merge(blk.zk, blk.flags, minc, emin, term, ea[order], eb[order], ew[order])
-    if pointers:
-        return lab, minc, Merged(*merged), pointer
-    return lab, minc, Merged(*merged)
+    return lab, minc, Merged(*merged), pointer
 
 
 def to_local(cells: np.ndarray, window: Window, shape: tuple[int, int]) -> np.ndarray:
@@ -610,14 +608,23 @@ def _roots(blk: Block, lab, minc, m: Merged, strips, links) -> Roots:
     """Fill-level and depth data of the minima the strips descend to
     (``links``: ``basin_links`` of the block)."""
     cells = np.unique(np.concatenate([s.term[s.term >= 0] for s in strips]))
-    local_cells = to_local(cells, blk.window, blk.shape)
-    basins = -lab[local_cells].astype(np.int64) - 1
+    tc, tk, x, dk = _minima_links(blk, lab, minc, m, links,
+                                  to_local(cells, blk.window, blk.shape))
+    return Roots(cells, tc, tk, x, dk)
+
+
+def _minima_links(blk: Block, lab, minc, m: Merged, links, minima):
+    """Per raster minimum (local cells ``minima``): the global cell and key
+    of the time its component first reached the block boundary, the
+    reduced-graph vertex it then joined and the deepest key below that time
+    (``links``: ``basin_links`` of the block)."""
+    basins = -lab[minima].astype(np.int64) - 1
     T, X = links
     dk = _k.depression_roots(blk.zk, minc, m.ly, m.lo, m.lw, T, basins)
     t = T[basins]
     tk = np.full(t.size, -np.inf)
     tk[t >= 0] = blk.zk[t[t >= 0]]
-    return Roots(cells, np.where(t >= 0, to_global(t, blk), t), tk, X[basins], dk)
+    return np.where(t >= 0, to_global(t, blk), t), tk, X[basins], dk
 
 
 def _maybe_regions(bk, dk, merge_level: float, float32: bool) -> np.ndarray:
@@ -703,7 +710,7 @@ def _local(block_values, window, shape, kind, connectivity, edge_outlet, min_per
     _check(kind, connectivity)
     outlet = bool(kind == "pits" if edge_outlet is None else edge_outlet)
     blk = prepare_block(block_values, window, shape, kind, connectivity)
-    lab, minc, m, *pointer = local_engine(blk, connectivity, outlet, pointers=termini)
+    lab, minc, m, pointer = local_engine(blk, connectivity, outlet, pointers=termini)
     pb, pd, pe, esb, ese, hvb, hve = m.pb, m.pd, m.pe, m.esb, m.ese, m.hvb, m.hve
     zk = blk.zk
     f32 = blk.z.dtype == np.float32
@@ -721,7 +728,7 @@ def _local(block_values, window, shape, kind, connectivity, edge_outlet, min_per
     effk[hve >= 0] = zk[hve[hve >= 0]]
     strips, roots, inputs = _strips(blk, lab, vertex_of_basin), None, None
     if termini:
-        code, ex_ring = descend_block(blk, kind, connectivity, pointer.pop())
+        code, ex_ring = descend_block(blk, kind, connectivity, pointer)
         strips = _with_termini(blk, strips, code, ex_ring)
         if kind == "pits" and outlet:
             links = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
@@ -992,7 +999,7 @@ def finish(block_values: np.ndarray, window: Window | Sequence[int], resolution:
         raise OptionError("the filled surface needs kind='pits' with the edge as outlet")
     window = Window(*(int(x) for x in window))
     blk = prepare_block(block_values, window, resolution.shape, "pits", resolution.connectivity)
-    lab, minc, m = local_engine(blk, resolution.connectivity, True)
+    lab, minc, m, _ = local_engine(blk, resolution.connectivity, True)
     T, X = _k.basin_links(blk.zk, m.tt, m.node, m.ly, m.lo, m.lw, minc.size)
     level = _k.fill_levels(blk.zk, T, X, resolution.join_cell[window], resolution.join_key[window],
                            window.r0, window.c0, blk.nc, resolution.shape[1])
@@ -1082,13 +1089,8 @@ def level_inputs(blk: Block, lab, minc, m: Merged, code, ex_ring, links) -> Leve
     descent codes (``code`` of :func:`descend_block`, turned into ``dest``
     in place) and its ``basin_links``."""
     minima = _k.descent_rows(code, blk.nr * blk.nc)
-    basins = -lab[minima].astype(np.int64) - 1
-    T, X = links
-    dk = _k.depression_roots(blk.zk, minc, m.ly, m.lo, m.lw, T, basins)
-    t = T[basins]
-    tk = np.full(t.size, -np.inf)
-    tk[t >= 0] = blk.zk[t[t >= 0]]
-    return LevelInputs(code, tk, np.where(t >= 0, to_global(t, blk), t), X[basins], dk, ex_ring)
+    tc, tk, x, dk = _minima_links(blk, lab, minc, m, links, minima)
+    return LevelInputs(code, tk, tc, x, dk, ex_ring)
 
 
 def levels_from(inputs: LevelInputs, window: Window | Sequence[int],

@@ -203,8 +203,8 @@ def _block_links(block_values, window, resolution: Resolution, merge_level: floa
     window = Window(*(int(x) for x in window))
     kind, conn, shape = resolution.kind, resolution.connectivity, resolution.shape
     blk = prepare_block(block_values, window, shape, kind, conn)
-    lab, minc, m = local_engine(blk, conn, resolution.edge_outlet)
-    code, ex_ring = descend_block(blk, kind, conn)
+    lab, minc, m, pointer = local_engine(blk, conn, resolution.edge_outlet, pointers=True)
+    code, ex_ring = descend_block(blk, kind, conn, pointer)
     ring_term = ring_values(resolution, window, "term")
     term_cells = np.flatnonzero(blk.flags & _k.TERM)
     term_cells = term_cells[np.lexsort((term_cells, blk.zk[term_cells]))]

@@ -132,7 +132,7 @@ def _interior(vals: np.ndarray, window: Window) -> np.ndarray:
 def _local_task(src: Any, kind: str, connectivity: int, thr: float, levels: bool, keep: Any,
                 window: Window):
     """The local step of one block (``kind`` "peaks" or "pits"), the block's
-    lowest value (for the base) and, with ``levels``, its
+    lowest value (peaks: for the base; else inf) and, with ``levels``, its
     :class:`~terrain.engine.blocked.LevelInputs` for the second pass of
     depressions: returned, or (``keep`` a folder) saved there and their path
     returned."""
@@ -147,9 +147,12 @@ def _local_task(src: Any, kind: str, connectivity: int, thr: float, levels: bool
         if keep is not None:
             inputs = save_scratch(os.path.join(keep, f"levels-{window.r0}-{window.c0}.npz"),
                                   inputs.arrays())
-    inner = _interior(vals, window)
-    valid = inner[np.isfinite(inner)]
-    return s, (float(valid.min()) if valid.size else math.inf), inputs
+    lowest = math.inf
+    if kind == "peaks":  # the base of the highest summit
+        inner = _interior(vals, window)
+        valid = inner[np.isfinite(inner)]
+        lowest = float(valid.min()) if valid.size else math.inf
+    return s, lowest, inputs
 
 
 def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolution, item):

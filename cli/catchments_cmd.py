@@ -32,7 +32,7 @@ channel layer is computed.
 \b
 Each realisation removes depressions (breaching cuts a least-cost channel
 from a pit through the lowest-cost barrier, e.g. a road embankment without
-a culvert; depressions deeper than --max-breach-depth are filled), routes
+a culvert; depressions deeper than --breach-cap are filled), routes
 D8 flow (D4 with --connectivity 4; the same neighbourhood is used for
 depressions, flats and divides), and counts: channel cells (drainage area
 >= --channel-area), each cell's sub-catchment (the first chosen outlet
@@ -65,7 +65,7 @@ stated error, not flood behaviour or where water runs in a storm.
 @options.dem_input
 @options.run()
 @guarded
-def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, max_breach_depth,
+def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, breach_cap,
                    connectivity, **opts):
     """Channels, outlet catchments, sub-catchments and divides, as probabilities
     under DEM error.
@@ -82,7 +82,7 @@ def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, max_b
              f"(rows {rows})")
     job = CatchmentJob(pts.ids if pts else (), pts.xy if pts else None, snap_m=snap,
                        channel_area=channel_area, conditioning=conditioning,
-                       max_breach_depth=max_breach_depth, connectivity=connectivity,
+                       breach_cap=breach_cap, connectivity=connectivity,
                        source=str(outlets))
     out = outputs(outdir, file_names("catchments", job.layer_ids), opts,
                   inputs=[dem] + ([outlets] if outlets else []))

@@ -37,7 +37,7 @@ FLAGS = {
     "snap_m": "--snap", "outlets": "--outlets", "kind": "--kind", "backend": "--workers",
     "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
     "channel_area": "--channel-area", "conditioning": "--conditioning",
-    "max_breach_depth": "--max-breach-depth", "nodata": "--nodata", "memory_check": "--force",
+    "breach_cap": "--breach-cap", "nodata": "--nodata", "memory_check": "--force",
     "block": "--block",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}

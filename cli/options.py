@@ -131,7 +131,7 @@ attribution = compose(
 
 
 def drainage():
-    """--channel-area, --conditioning, --max-breach-depth (defaults stated from the library)."""
+    """--channel-area, --conditioning, --breach-cap (defaults stated from the library)."""
     return compose(
         click.option("--channel-area", type=float, default=None, metavar="M2",
                      help="Drainage area, in square metres, at which a cell counts as channel "
@@ -141,10 +141,10 @@ def drainage():
                      help="Remove depressions by least-cost breaching (cut a channel from the "
                           "pit to lower ground) or by filling to the spill level "
                           f"[default: {defaults.CONDITIONING}]."),
-        click.option("--max-breach-depth", type=float, default=None, metavar="DEPTH",
+        click.option("--breach-cap", type=float, default=None, metavar="DEPTH",
                      help="Breach depressions at most this deep and fill deeper ones, in the "
                           "DEM's vertical units (metres for most DEMs); no cell is cut deeper "
-                          f"[default: {defaults.MAX_BREACH_DEPTH:g}]."),
+                          f"[default: {defaults.BREACH_CAP:g}]."),
     )
 
 

@@ -12,8 +12,8 @@ import numpy as np
 from .dem import Dem
 
 __all__ = ["CUTOFF_PER_RMSE", "MERGE_PER_RMSE", "MIN_PRESENCE", "SNAP_CELLS", "CHANNEL_AREA_M2",
-           "CONDITIONING", "MAX_BREACH_DEPTH", "cutoff", "merge_level", "base_level",
-           "snap_radius", "channel_area", "conditioning", "max_breach_depth", "RULES"]
+           "CONDITIONING", "BREACH_CAP", "cutoff", "merge_level", "base_level",
+           "snap_radius", "channel_area", "conditioning", "breach_cap", "RULES"]
 
 DISK_BLOCK = 1024  # block side for the regions of a DEM kept on disk when no run names one
 CUTOFF_PER_RMSE = 3.0  # a counted pair is at least 3 x RMSE (clearly above the noise)
@@ -32,7 +32,7 @@ CONDITIONING = "breach"
 # Depressions deeper than this (vertical units) are filled, not cut: above the
 # height of most road embankments and field dams on lidar DEMs, below most real
 # closed basins worth keeping (common practice, no source).
-MAX_BREACH_DEPTH = 3.0
+BREACH_CAP = 3.0
 
 RULES = {
     "threshold": f"{CUTOFF_PER_RMSE:g} x RMSE (the largest RMSE in a sweep)",
@@ -43,7 +43,7 @@ RULES = {
                     "on DEMs, no single source)",
     "conditioning": f"{CONDITIONING} (breaching alters a DEM less than filling; Lindsay & Creed "
                     "2005, Hydrological Processes 19(16), cited from memory)",
-    "max_breach_depth": f"{MAX_BREACH_DEPTH:g} vertical units (deeper depressions are filled; "
+    "breach_cap": f"{BREACH_CAP:g} vertical units (deeper depressions are filled; "
                         "common practice, no source)",
 }
 
@@ -86,8 +86,8 @@ def conditioning(method: str | None) -> str:
     return CONDITIONING if method is None else method
 
 
-def max_breach_depth(depth: float | None, method: str) -> float | None:
+def breach_cap(depth: float | None, method: str) -> float | None:
     """The deepest depression breached (vertical units): ``depth`` or 3; None when filling."""
     if method != "breach":
         return None
-    return MAX_BREACH_DEPTH if depth is None else float(depth)
+    return BREACH_CAP if depth is None else float(depth)

@@ -192,7 +192,7 @@ def test_cli_catchments_end_to_end(tmp_path, cairn):
     assert np.allclose(outs[["snapped_x", "snapped_y"]].to_numpy(), [[x, y], [x2, y2]])
     run = json.loads((tmp_path / "out" / "run.json").read_text())
     assert run["parameters"]["snap_m"] == 0.0 and run["parameters"]["conditioning"] == "breach"
-    assert set(run["defaults"]) == {"channel_area", "conditioning", "max_breach_depth"}
+    assert set(run["defaults"]) == {"channel_area", "conditioning", "breach_cap"}
     code, _, err = cairn("catchments", dem, "--help")
     assert code == 0
 
@@ -212,7 +212,7 @@ def test_cli_channels_without_outlets(tmp_path, cairn):
     # floor cell r holds (r + 1) x 21 cells of 100 m^2, >= 5000 m^2 from row 2 on
     assert p[:2, 10].max() == 0 and p[2:, 10].min() == 1
     run = json.loads((tmp_path / "out" / "run.json").read_text())
-    assert run["parameters"]["connectivity"] == 4 and run["parameters"]["max_breach_depth"] is None
+    assert run["parameters"]["connectivity"] == 4 and run["parameters"]["breach_cap"] is None
     assert run["parameters"]["channel_area"] == 5000
 
 
@@ -245,7 +245,7 @@ def _hilly_job():
     dem = Dem.from_array(z, cellsize=10.0)
     x, y = dem.xy(np.array([25 * 60 + 30, 10 * 60 + 12, 40 * 60 + 50]))
     job = CatchmentJob(["a", "b", "c"], np.column_stack([x, y]), snap_m=20.0, channel_area=2e4,
-                       max_breach_depth=30.0)
+                       breach_cap=30.0)
     return dem, job, ErrorModel(rmse=0.5, range_m=100.0)
 
 
@@ -392,7 +392,7 @@ def test_cli_long_and_clashing_ids_get_short_unique_file_names(tmp_path, cairn):
 @pytest.mark.parametrize("args,needle", [
     (("--conditioning", "carve"), "--conditioning"),
     (("--channel-area", "-5"), "--channel-area"),
-    (("--max-breach-depth", "-1"), "--max-breach-depth"),
+    (("--breach-cap", "-1"), "--breach-cap"),
     (("--connectivity", "6"), "--connectivity"),
 ])
 def test_cli_bad_drainage_options(tmp_path, cairn, args, needle):

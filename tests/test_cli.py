@@ -209,7 +209,7 @@ ATTRIBUTION = {"--threshold-jitter", "--weight", "--connectivity"}
                                         ("depressions", ATTRIBUTION | {"--min-depth"}),
                                         ("catchments", {"--snap", "--outlets", "--connectivity",
                                                         "--channel-area", "--conditioning",
-                                                        "--max-breach-depth"}),
+                                                        "--breach-cap"}),
                                         ("sweep", ATTRIBUTION | {"--min-prominence", "--min-depth",
                                                                  "--base", "--kind"})])
 def test_commands_share_one_option_set(name, extra):

@@ -76,7 +76,7 @@ def test_breach_cuts_the_embankment_and_fill_ponds_behind_it():
     np.testing.assert_array_equal(fill_depressions(breached), breached)  # no depression left
     # the upstream valley reaches the downstream gauge only when breached
     up = (slice(0, 30), slice(17, 24))
-    b = _run(z, [(50, 20)], conditioning="breach", max_breach_depth=3.0)
+    b = _run(z, [(50, 20)], conditioning="breach", breach_cap=3.0)
     f = _run(z, [(50, 20)], conditioning="fill")
     assert b.layers["catchment_probability_o0"][0][up].min() == 1.0
     assert f.layers["catchment_probability_o0"][0][up].max() == 0.0

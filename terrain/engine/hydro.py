@@ -417,7 +417,7 @@ def route(z: np.ndarray, *, cell_w, cell_h, cell_area, connectivity: int = 8) ->
 
 
 def flow(z: np.ndarray, *, cell_w, cell_h, cell_area=None, connectivity: int = 8,
-         conditioning: str = "fill", max_breach_depth: float = math.inf,
+         conditioning: str = "fill", breach_cap: float = math.inf,
          mask: np.ndarray | None = None) -> Flow:
     """Condition a copy of ``z`` (fill or breach), then route D8/D4 flow on it.
 
@@ -434,7 +434,7 @@ def flow(z: np.ndarray, *, cell_w, cell_h, cell_area=None, connectivity: int = 8
     zc = np.array(z, dtype=np.float32 if np.asarray(z).dtype == np.float32 else np.float64)
     if mask is not None:
         zc[np.asarray(mask, bool)] = np.nan
-    condition(zc, connectivity=connectivity, method=conditioning, max_depth=max_breach_depth)
+    condition(zc, connectivity=connectivity, method=conditioning, max_depth=breach_cap)
     if cell_area is None:
         cell_area = np.asarray(cell_w, np.float64) * np.asarray(cell_h, np.float64)
     return route(zc, cell_w=cell_w, cell_h=cell_h, cell_area=cell_area, connectivity=connectivity)

@@ -128,7 +128,7 @@ class CatchmentJob:
         Drainage area (m^2) at which a cell counts as channel. Default 0.1 km^2.
     conditioning : {"breach", "fill"}, optional
         How depressions are removed. Default: breach.
-    max_breach_depth : float, optional
+    breach_cap : float, optional
         Depressions deeper than this (vertical units) are filled, not
         breached; no cell is lowered by more. Default 3; ``inf`` breaches
         every depression.
@@ -148,7 +148,7 @@ class CatchmentJob:
     snap_m: float | None = None
     channel_area: float | None = None
     conditioning: str | None = None
-    max_breach_depth: float | None = None
+    breach_cap: float | None = None
     connectivity: int = 8
     source: str = "outlets"
     cand: np.ndarray | None = None
@@ -194,7 +194,7 @@ class CatchmentJob:
         return dataclasses.replace(
             self, snap_m=snap, cand=cand, cand_ptr=ptr, cell_w=w, cell_h=h,
             area_row=dem.cell_area_m2(), channel_area=defaults.channel_area(self.channel_area),
-            conditioning=method, max_breach_depth=defaults.max_breach_depth(self.max_breach_depth,
+            conditioning=method, breach_cap=defaults.breach_cap(self.breach_cap,
                                                                             method),
             from_defaults=tuple(self.defaults_used()))
 
@@ -202,14 +202,14 @@ class CatchmentJob:
         """The settings left to library defaults, with the rule each follows."""
         names = (["snap_m"] if self.ids else []) + ["channel_area", "conditioning"]
         if defaults.conditioning(self.conditioning) == "breach":
-            names.append("max_breach_depth")
+            names.append("breach_cap")
         return {n: defaults.RULES[n] for n in names
                 if getattr(self, n) is None or n in self.from_defaults}
 
     def describe(self) -> dict:
         return {"job": "catchments", "outlets": dict(zip(self.ids, self.xy.tolist())),
                 "snap_m": self.snap_m, "channel_area": self.channel_area,
-                "conditioning": self.conditioning, "max_breach_depth": self.max_breach_depth,
+                "conditioning": self.conditioning, "breach_cap": self.breach_cap,
                 "connectivity": self.connectivity}
 
     def new_counts(self, n_cells: int) -> dict:
@@ -226,7 +226,7 @@ class CatchmentJob:
         zi = sampler.draw(seed, i)
         zi += z
         condition(zi, connectivity=self.connectivity, method=self.conditioning,
-                  max_depth=math.inf if self.max_breach_depth is None else self.max_breach_depth)
+                  max_depth=math.inf if self.breach_cap is None else self.breach_cap)
         fl = route(zi, cell_w=self.cell_w, cell_h=self.cell_h, cell_area=self.area_row,
                    connectivity=self.connectivity)
         del zi
@@ -280,9 +280,9 @@ def _check(job: CatchmentJob) -> None:
     if job.conditioning is not None and job.conditioning not in CONDITIONING:
         raise OptionError(f"{{conditioning}} must be one of {', '.join(CONDITIONING)}, got "
                           f"{job.conditioning!r}", "conditioning")
-    if job.max_breach_depth is not None and not job.max_breach_depth >= 0:
-        raise OptionError(f"{{max_breach_depth}} must be >= 0 (vertical units), got "
-                          f"{job.max_breach_depth}", "max_breach_depth")
+    if job.breach_cap is not None and not job.breach_cap >= 0:
+        raise OptionError(f"{{breach_cap}} must be >= 0 (vertical units), got "
+                          f"{job.breach_cap}", "breach_cap")
     if job.connectivity not in (4, 8):
         raise OptionError(f"{{connectivity}} must be 4 or 8, got {job.connectivity!r}",
                           "connectivity")

@@ -50,6 +50,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "load_scratch", "scratch_folder",
            "remove_orphan_scratch", "CountStore", "write_layers_by_window",
            "SCRATCH_PREFIX"]
+__all__ += ["kernel_cache_folder"]
 
 
 # Common nodata values of DEM products and GIS packages that files often hold
@@ -344,6 +345,44 @@ def available_memory() -> int:
     except OSError:
         pass
     return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_AVPHYS_PAGES")
+
+
+def kernel_cache_folder(version: str) -> str | None:
+    """Point numba's on-disk cache of compiled kernels at a per-user folder.
+
+    Numba's ``cache=True`` writes next to the source by default, which for an
+    installed package is ``site-packages``: files that ``pip uninstall`` does
+    not know and that leave an empty ``terrain`` folder behind (found as a
+    namespace package ahead of a later editable install). cairn's kernels go to
+    the platform's user cache folder instead, ``<cache>/cairn/numba/<version>``
+    (``platformdirs``), or, when that cannot be written, to
+    ``<tmp>/cairn-numba-<uid>/<version>``. Numba keys each entry by the source
+    file's path and a hash of its contents, so versions, checkouts and several
+    processes can share the folder. A cache folder the user chose
+    (``NUMBA_CACHE_DIR``, or ``numba.config.CACHE_DIR`` set before importing
+    cairn) is left alone.
+
+    Returns the folder in use, or None when no folder could be written (numba
+    then compiles without keeping the result where it cannot write).
+    """
+    from numba.core import config
+
+    if config.CACHE_DIR:
+        return config.CACHE_DIR
+    import platformdirs
+
+    uid = os.getuid() if hasattr(os, "getuid") else "user"
+    for base in (Path(platformdirs.user_cache_dir("cairn", appauthor=False)) / "numba",
+                 Path(tempfile.gettempdir()) / f"cairn-numba-{uid}"):
+        folder = base / version
+        try:
+            os.makedirs(folder, exist_ok=True)
+            tempfile.TemporaryFile(dir=folder).close()
+        except OSError:
+            continue
+        config.CACHE_DIR = str(folder)
+        return config.CACHE_DIR
+    return None
 
 
 def read_outlets(path: str | os.PathLike, dem: Dem) -> Outlets:

@@ -44,6 +44,7 @@ def p_higher_first(res, high):
     return np.mean(log["birth"][ess] == high)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kernel", ["gaussian", "triangular", "epanechnikov"])
 def test_two_summits_converge_to_exact_probability(kernel):
     sigma, delta, n = 1.0, 0.6, 1500
@@ -58,6 +59,7 @@ def test_two_summits_converge_to_exact_probability(kernel):
     assert sp[high] == 1.0 and sp[low] == 1.0
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kernel", ["gaussian", "uniform"])
 def test_stability_bound_while_argmax_flips(kernel):
     sigma, n, delta, k = 1.0, 1200, 0.3, 1
@@ -98,12 +100,14 @@ def _same(r1, r2):
         assert np.array_equal(r1.log[f], r2.log[f], equal_nan=r1.log[f].dtype.kind == "f"), f
 
 
+@pytest.mark.slow
 def test_bit_identical_across_backends():
     ref = _run("serial", chunk=5)
     _same(ref, _run("processes", chunk=3))
     _same(ref, _run("dask", chunk=7))
 
 
+@pytest.mark.slow
 def test_dask_worker_killed_mid_run_gives_identical_layers():
     import logging
 

@@ -99,6 +99,7 @@ def test_bbox_reads_a_window(cairn, dem, tmp_path):
     assert code == 0 and "30 rows x 20 columns" in out
 
 
+@pytest.mark.slow
 def test_multiband_without_band(cairn, tmp_path):
     z = np.stack([smooth_terrain((20, 20), seed=s) for s in (1, 2, 3)])
     p = write_tif(tmp_path / "three.tif", z)
@@ -121,6 +122,7 @@ def test_output_is_a_file_or_unwritable(cairn, dem, tmp_path):
     one_line_error(code, err, "/proc/cairn-out")
 
 
+@pytest.mark.slow
 def test_checkpoint_from_another_run(cairn, dem, tmp_path):
     ck = tmp_path / "ck.npz"
     assert cairn("peaks", dem, "-o", tmp_path / "a", *RUN, "--checkpoint", ck)[0] == 0
@@ -162,6 +164,7 @@ def test_memory_guard(cairn, dem, tmp_path, monkeypatch):
 
 
 # -- edge cases with a defined answer ------------------------------------------------
+@pytest.mark.slow
 @pytest.mark.parametrize("shape", [(1, 1), (1, 9), (9, 1), (6, 7)])
 @pytest.mark.parametrize("cmd", ["peaks", "depressions"])
 def test_tiny_and_constant_rasters(cairn, tmp_path, shape, cmd):
@@ -211,6 +214,7 @@ def test_no_crs_warns_and_still_writes(cairn, tmp_path):
     assert "cell units" in json.loads((tmp_path / "o" / "run.json").read_text())["note"]
 
 
+@pytest.mark.slow
 def test_geographic_crs_metres_by_latitude(cairn, tmp_path):
     from rasterio.transform import from_origin
 
@@ -237,6 +241,7 @@ def test_geographic_cell_area_matches_pyproj():
         assert d.cell_area_m2()[r] == pytest.approx(ref, rel=1e-4)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("dtype", ["int16", "int32", "float64", "uint16"])
 def test_integer_and_float64_dems(cairn, tmp_path, dtype):
     z = smooth_terrain((30, 30), seed=7)
@@ -246,6 +251,7 @@ def test_integer_and_float64_dems(cairn, tmp_path, dtype):
     assert code == 0, err
 
 
+@pytest.mark.slow
 def test_negative_elevations_bathymetry(cairn, tmp_path):
     p = write_tif(tmp_path / "sea.tif", smooth_terrain((30, 30), seed=8) - 5000)
     code, _, err = cairn("peaks", p, "-o", tmp_path / "o", *RUN, "--base", "-6000")
@@ -253,6 +259,7 @@ def test_negative_elevations_bathymetry(cairn, tmp_path):
 
 
 # -- nothing lost ------------------------------------------------------------------
+@pytest.mark.slow
 def test_sigkill_during_writing_never_leaves_partial_outputs(tmp_path):
     z = smooth_terrain((500, 500), seed=9)
     dem = write_tif(tmp_path / "d.tif", z)
@@ -260,10 +267,15 @@ def test_sigkill_during_writing_never_leaves_partial_outputs(tmp_path):
     args = [sys.executable, "-c", "from cairn_cli.main import run; run()", "depressions", str(dem),
             "--rmse", "2", "-n", "3", "--workers", "1", "-q"]
     subprocess.run(args + ["-o", str(ref)], check=True, timeout=300)
-    for k, delay in enumerate((0.0, 1.4, 2.8)):
+    for k, delay in enumerate((0.0, 0.3, 0.9)):
         out = tmp_path / f"k{k}"
         p = subprocess.Popen(args + ["-o", str(out)])
-        time.sleep(delay + 3.0)
+        # kill while writing: once the staging folder exists, then a little later each time
+        # (no fixed sleeps: the kill lands in the write phase on a slow or a fast machine)
+        while p.poll() is None and not (out.exists() and any(
+                n.startswith(".cairn-staging") for n in os.listdir(out))):
+            time.sleep(0.02)
+        time.sleep(delay)
         p.send_signal(signal.SIGKILL)
         p.wait()
         for name in os.listdir(out) if out.exists() else []:
@@ -327,6 +339,7 @@ def _can_mount_tmpfs(tmp_path) -> bool:
     return r.returncode == 0
 
 
+@pytest.mark.slow
 def test_disk_full_on_a_small_filesystem(tmp_path):
     # a real size-limited file system: a 64 kB tmpfs in a private mount namespace
     if not _can_mount_tmpfs(tmp_path):
@@ -346,6 +359,7 @@ def test_disk_full_on_a_small_filesystem(tmp_path):
     assert r.stdout.split("rc=2", 1)[1].split() == []  # nothing left: not even the folder
 
 
+@pytest.mark.slow
 def test_write_failure_keeps_the_previous_set(cairn, dem, done, monkeypatch):
     # a disk filling up while the quick-look is saved, injected (os error ENOSPC)
     import errno
@@ -386,6 +400,7 @@ def test_gdal_write_error_is_raised_not_renamed(cairn, dem, tmp_path, monkeypatc
     assert not (tmp_path / "g").exists()
 
 
+@pytest.mark.slow
 def test_harmless_gdal_error_does_not_fail_a_write(cairn, dem, tmp_path, monkeypatch):
     # GDAL also logs failures that leave the file whole (the COG driver on an all-nodata
     # band: no statistics); those are not write errors
@@ -407,6 +422,7 @@ def test_harmless_gdal_error_does_not_fail_a_write(cairn, dem, tmp_path, monkeyp
     assert code == 0, err
 
 
+@pytest.mark.slow
 def test_interrupt_while_writing_keeps_the_previous_set(cairn, dem, done, monkeypatch):
     import terrain.outputs.plot as plot
 
@@ -422,6 +438,7 @@ def test_interrupt_while_writing_keeps_the_previous_set(cairn, dem, done, monkey
     assert snapshot(done) == before
 
 
+@pytest.mark.slow
 def test_a_second_run_into_a_folder_in_use_is_refused(cairn, dem, done):
     before = snapshot(done)
     holder = subprocess.Popen(  # another process holding the folder's lock, as a running cairn does
@@ -443,6 +460,7 @@ def test_a_second_run_into_a_folder_in_use_is_refused(cairn, dem, done):
     assert not (done / ".cairn.lock").exists()
 
 
+@pytest.mark.slow
 def test_leftovers_of_a_killed_run_are_cleaned_by_the_next(cairn, dem, tmp_path):
     out = tmp_path / "o"
     (out / ".cairn-staging-k1ll3d0").mkdir(parents=True)
@@ -497,6 +515,7 @@ def _damage(good, bad, kind):
         os.replace(str(bad) + ".npz", bad) if not bad.exists() else None
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind", ["truncated", "bit-flipped", "npy", "empty", "text", "pickled"])
 def test_damaged_checkpoints(cairn, dem, tmp_path, checkpoint, kind):
     bad = tmp_path / "bad.npz"
@@ -773,6 +792,14 @@ def big_dem(tmp_path):
     return write_tif(tmp_path / "big.tif", smooth_terrain((200, 200), seed=4))
 
 
+def _all_gone(pids, within: float = 10.0) -> bool:
+    """True once none of ``pids`` is alive (polled; no fixed sleep)."""
+    deadline = time.time() + within
+    while [k for k in pids if _alive(k)] and time.time() < deadline:
+        time.sleep(0.05)
+    return not [k for k in pids if _alive(k)]
+
+
 def _start_two_workers(dem, out, *extra):
     p = subprocess.Popen(CLI + ["peaks", str(dem), "-o", str(out), "--rmse", "1", "-n", "400",
                                 "--workers", "2", "-q", *map(str, extra)],
@@ -783,6 +810,7 @@ def _start_two_workers(dem, out, *extra):
     return p, _children(p.pid)
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
 def test_ctrl_c_while_workers_spawn(big_dem, tmp_path):
     p, kids = _start_two_workers(big_dem, tmp_path / "o")
@@ -791,11 +819,11 @@ def test_ctrl_c_while_workers_spawn(big_dem, tmp_path):
     assert p.returncode == 130, err
     no_traceback(err)
     assert err.strip().startswith("cairn: interrupted") and len(err.strip().splitlines()) == 1
-    time.sleep(1)
-    assert not [k for k in kids if _alive(k)]
+    assert _all_gone(kids)
     nothing_written(tmp_path / "o")
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
 def test_sigterm_saves_and_exits_143_and_a_killed_parent_takes_its_workers(big_dem, tmp_path):
     ck = tmp_path / "ck.npz"
@@ -807,16 +835,11 @@ def test_sigterm_saves_and_exits_143_and_a_killed_parent_takes_its_workers(big_d
     _, err = p.communicate(timeout=60)
     assert p.returncode == 143 and "terminated after" in err and "--resume" in err, err
     no_traceback(err)
-    time.sleep(1)
-    assert not [k for k in kids if _alive(k)]
+    assert _all_gone(kids)
     p, kids = _start_two_workers(big_dem, tmp_path / "o2")
-    time.sleep(2)
     p.kill()
     p.wait()
-    deadline = time.time() + 10
-    while [k for k in kids if _alive(k)] and time.time() < deadline:
-        time.sleep(0.1)
-    assert not [k for k in kids if _alive(k)]  # they die with their parent
+    assert _all_gone(kids)  # they die with their parent
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
@@ -840,6 +863,7 @@ def test_negative_seed(cairn, dem, tmp_path):
     nothing_written(tmp_path / "o")
 
 
+@pytest.mark.slow
 def test_sweep_on_a_plane_without_features(cairn, tmp_path):
     plane = write_tif(tmp_path / "plane.tif", np.add.outer(np.arange(30.0), np.arange(30.0)))
     code, _, err = cairn("sweep", plane, "-o", tmp_path / "o", "--kind", "depressions",
@@ -849,6 +873,7 @@ def test_sweep_on_a_plane_without_features(cairn, tmp_path):
         "sweep.csv", "kernel_sensitivity.csv", "sweep.png", "run.json"}
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("shape", [(100, 1), (1000, 1), (1, 1000)])
 def test_quicklook_of_a_strip_stays_small(cairn, tmp_path, shape):
     from PIL import Image
@@ -866,6 +891,7 @@ def test_nugget_without_range_refused(cairn, dem, tmp_path):
     nothing_written(tmp_path / "o")
 
 
+@pytest.mark.slow
 def test_quicklook_of_a_big_grid_is_drawn_in_blocks(cairn, dem, tmp_path, monkeypatch):
     # reference: scikit-image's block_reduce (a general-purpose library) for the blocks
     from PIL import Image

@@ -91,6 +91,7 @@ CASES = {
 BLOCKS = [(1, 1000), (1000, 1), (2, 3), (5, 4), (7, 7), (16, 9), (1000, 1000)]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("case", sorted(CASES))
 @pytest.mark.parametrize("kind", ["peaks", "pits"])
 @pytest.mark.parametrize("conn", [8, 4])
@@ -154,6 +155,7 @@ def test_properties_blocked_equals_whole(a, br, bc, kind, conn, outlet):
     assert_identical(got, ref)
 
 
+@pytest.mark.slow
 @settings(max_examples=100, deadline=None)
 @given(a=arrays(np.int16, st.tuples(st.integers(1, 14), st.integers(1, 14)),
                 elements=st.integers(0, 3)),
@@ -322,6 +324,7 @@ LEVELS = {"smooth": (0.0, 3.0, 40.0), "integer-ties": (0.0, 1.0, 3.0),
 REGION_BLOCKS = [(1, 1000), (7, 6), (1000, 1), (13, 8), (1000, 1000)]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("case", sorted(LEVELS))
 @pytest.mark.parametrize("kind", ["peaks", "pits"])
 def test_blocked_regions_equal_whole_raster(case, kind):
@@ -341,6 +344,7 @@ def test_blocked_regions_equal_whole_raster(case, kind):
                 assert_same_regions(got, ref)
 
 
+@pytest.mark.slow
 @settings(max_examples=150, deadline=None)
 @given(a=arrays(np.float32, st.tuples(st.integers(1, 12), st.integers(1, 12)), elements=elements),
        br=st.integers(1, 13), bc=st.integers(1, 13), kind=st.sampled_from(["peaks", "pits"]),
@@ -363,6 +367,7 @@ def test_blocked_regions_equal_the_cell_by_cell_definition():
         assert same_partition(got.labels, regions_by_cells(z, kind, level, conn, None))
 
 
+@pytest.mark.slow
 def test_float64_raster_compares_in_float64():
     # one value that is not a float32 makes the whole raster work in float64:
     # blocks that are all float32 must not decide the merge level in float32

@@ -38,6 +38,7 @@ def _same(a: dict, b: dict) -> None:
         assert a[k].dtype == b[k].dtype and a[k].tobytes() == b[k].tobytes(), k
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("model", MODELS)
 @pytest.mark.parametrize("kind", ["peaks", "depressions"])
 @pytest.mark.parametrize("connectivity", [8, 4])
@@ -73,6 +74,7 @@ def test_perturbed_source_is_the_whole_draw_by_window(tmp_path):
         assert src[sl].tobytes() == whole[sl].tobytes()
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind", ["peaks", "depressions"])
 def test_run_layers_identical_with_blocks_on_every_backend(kind):
     dem = _dem((70, 64))
@@ -88,6 +90,7 @@ def test_run_layers_identical_with_blocks_on_every_backend(kind):
         _same(want.log, got.log)
 
 
+@pytest.mark.slow
 def test_blocked_run_on_dask_is_identical():
     pytest.importorskip("distributed")
     dem = _dem((48, 40))
@@ -118,6 +121,7 @@ def _layers(folder):
     return out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind", ["peaks", "depressions"])
 def test_cli_layers_identical_with_block(cairn, tmp_path, kind):
     p = write_tif(tmp_path / "dem.tif", smooth_terrain((64, 72), seed=8))

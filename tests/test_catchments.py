@@ -249,6 +249,7 @@ def _hilly_job():
     return dem, job, ErrorModel(rmse=0.5, range_m=100.0)
 
 
+@pytest.mark.slow
 def test_catchments_identical_across_backends():
     # every layer (channel, divides, catchments, sub-catchments) and the log, bit for bit
     dem, job, m = _hilly_job()

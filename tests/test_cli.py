@@ -131,15 +131,16 @@ def _cairn_proc(*args, **kw):
                             text=True, **kw)
 
 
+@pytest.mark.slow
 def test_ctrl_c_saves_checkpoint_and_resume_is_identical(tmp_path):
     z = smooth_terrain((150, 150), seed=2)
     dem = write_tif(tmp_path / "d.tif", z)
     ck = tmp_path / "ck.npz"
-    args = ("peaks", dem, "--rmse", "1", "-n", "400", "--seed", "9", "--workers", "1")
+    args = ("peaks", dem, "--rmse", "1", "-n", "200", "--seed", "9", "--workers", "1")
     p = _cairn_proc(*args, "-o", tmp_path / "a", "--checkpoint", ck)
     deadline = time.time() + 120
     while not ck.exists() and time.time() < deadline:  # first checkpoint after 50 realisations
-        time.sleep(0.2)
+        time.sleep(0.02)
     p.send_signal(signal.SIGINT)
     _, err = p.communicate(timeout=120)
     assert p.returncode == 130 and "--resume" in err
@@ -163,6 +164,7 @@ def demo_out(tmp_path_factory):
     return out
 
 
+@pytest.mark.slow
 def test_demo_twin_summit_splits_and_knolls_spread(demo_out):
     summits = pd.read_csv(demo_out / "peaks" / "summits.csv").sort_values("rank")
     # the two flat tops of Twin Crag share p_first roughly evenly (binomial, 300 realisations)

@@ -71,6 +71,7 @@ def test_region_ids_do_not_depend_on_the_merge_level():
 
 
 # -- the invented upland: lake, flat-topped hill, dome with knobs, hollow ---------------
+@pytest.mark.slow
 @pytest.mark.parametrize("rmse,range_m", [(0.15, 0.0), (0.25, 0.0), (0.15, 12.0)])
 def test_lake_hill_dome_hollow_are_one_row_each(rmse, range_m):
     z, feet = upland()
@@ -98,6 +99,7 @@ def _plain(rows, cols=61):
     return z
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("rows", [3, 41])
 def test_p_first_is_the_probability_of_being_highest(rows):
     # base = the lowest cell (default): realised cols may fall below it, yet the
@@ -114,6 +116,7 @@ def test_p_first_is_the_probability_of_being_highest(rows):
     assert row.p_first == pytest.approx(np.mean(res.log["region"][ess] == high))
 
 
+@pytest.mark.slow
 def test_standard_errors_match_the_spread_over_seeds():
     # near-equal summits (p_first away from 0 and 1) and a knoll whose prominence
     # sits at the cut-off (p_above away from 0 and 1); 80 independent seeds

@@ -27,6 +27,7 @@ from terrain.summary.features import summarise_features
 cells = st.one_of(st.floats(-50, 50, width=32), st.sampled_from([0.0, 3.0, np.nan, np.inf, -np.inf]))
 
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(z=arrays(np.float32, st.tuples(st.integers(1, 8), st.integers(1, 8)), elements=cells),
        kind=st.sampled_from(["peaks", "depressions"]), weight=st.sampled_from(["persistence", "count"]),

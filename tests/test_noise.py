@@ -93,6 +93,7 @@ def test_same_stream_for_same_seed_and_index():
     assert not np.array_equal(a, realisation_rng(5, 18).standard_normal(4))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("model", ["exponential", "spherical", "gaussian"])
 def test_semivariogram_matches_model(model):
     # Holmes et al. (2000) check simulated error fields by their semivariogram.

@@ -113,6 +113,7 @@ def test_count_store_survives_a_kill_between_its_writes(tmp_path):
         moved.check(3)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind", ["peaks", "depressions"])
 def test_cli_on_disk_gives_the_same_files(cairn, tmp_path, kind, monkeypatch):
     import terrain.outputs.mapframe as mapframe

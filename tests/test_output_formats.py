@@ -114,6 +114,7 @@ def runs(tmp_path_factory):
     return dem, out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("cmd", ["peaks", "depressions"])
 def test_every_layer_is_a_valid_cog_with_statistics(runs, cmd):
     _, out = runs

@@ -172,6 +172,7 @@ def upland():
     return z, hole
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("geographic", [False, True])
 @pytest.mark.parametrize("kind", ["peaks", "depressions"])
 def test_feature_maps_read_back(upland, kind, geographic):

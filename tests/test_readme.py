@@ -6,7 +6,10 @@ The blocks are run as scripts in a folder holding a small generated
 
 from __future__ import annotations
 
+import contextlib
+import os
 import re
+import signal
 import subprocess
 import sys
 import textwrap
@@ -49,17 +52,63 @@ def test_readme_block_runs_as_written(workdir, k):
     assert p.returncode == 0, p.stderr[-2000:]
 
 
-def test_missing_main_guard_fails_fast_with_the_cure(workdir):
-    # the README's example with its main guard removed: worker processes re-import
-    # the script; the run must end within seconds and say what to add
+def _unguarded(workers: int = 2) -> str:
+    """The README's example with its main guard removed."""
     code = next(b for b in _blocks() if '__name__ == "__main__"' in b)
     head, body = re.split(r'if __name__ == "__main__":.*\n', code, maxsplit=1)
-    code = head + textwrap.dedent(body).replace("workers=1", "workers=2")
+    code = head + textwrap.dedent(body).replace("workers=1", f"workers={workers}")
     if "workers=" not in code:
-        code = code.replace("seed=1", "seed=1, workers=2")
-    t = time.time()
-    p = _run(code, workdir, timeout=120)
+        code = code.replace("seed=1", f"seed=1, workers={workers}")
+    return code
+
+
+def _group_gone(pgid: int, within: float = 5.0) -> bool:
+    """True once no process of the process group ``pgid`` is left."""
+    end = time.monotonic() + within
+    while time.monotonic() < end:
+        try:
+            os.killpg(pgid, 0)
+        except ProcessLookupError:
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def _start(code: str, cwd: Path) -> subprocess.Popen:
+    (cwd / "example.py").write_text(code)
+    return subprocess.Popen([sys.executable, "example.py"], cwd=cwd, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+
+
+def test_missing_main_guard_fails_fast_with_the_cure(workdir):
+    # worker processes re-import the script; the run must end within 10 s, say what to
+    # add, and leave no process behind
+    t = time.monotonic()
+    p = _start(_unguarded(), workdir)
+    try:
+        _, err = p.communicate(timeout=10)
+    finally:
+        with contextlib.suppress(ProcessLookupError):
+            os.killpg(p.pid, signal.SIGKILL)
     assert p.returncode != 0
-    assert time.time() - t < 60
-    last = p.stderr.strip().splitlines()[-1]
-    assert "WorkerError" in last and '__name__ == "__main__"' in last, p.stderr[-2000:]
+    assert time.monotonic() - t < 10
+    last = err.strip().splitlines()[-1]
+    assert "WorkerError" in last and '__name__ == "__main__"' in last, err[-2000:]
+    assert _group_gone(p.pid), "a worker process outlived the script"
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("guarded", [True, False])
+@pytest.mark.parametrize("after", [0.3, 1.5, 3.0])
+def test_sigterm_ends_a_script_at_any_moment(workdir, guarded, after):
+    code = _blocks()[0] if guarded else _unguarded()
+    p = _start(code, workdir)
+    time.sleep(after)
+    with contextlib.suppress(ProcessLookupError):
+        os.killpg(p.pid, signal.SIGTERM) if p.poll() is None else None
+    try:
+        p.communicate(timeout=10)
+    except subprocess.TimeoutExpired:
+        os.killpg(p.pid, signal.SIGKILL)
+        pytest.fail(f"SIGTERM after {after} s did not end the script within 10 s")
+    assert _group_gone(p.pid), "a worker process outlived the script"

@@ -45,6 +45,7 @@ def ridge_sweep():
     return res, df, fid_high, fid_low
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kernel", ["gaussian", "triangular", "epanechnikov"])
 def test_p_first_follows_exact_probability_at_every_level(ridge_sweep, kernel):
     # the two summits compete alone while the ridge (2 m below them) lies at least
@@ -75,6 +76,7 @@ def test_credit_share_moves_monotonically_to_even_split(ridge_sweep):
                                atol=0.01)
 
 
+@pytest.mark.slow
 def test_kernel_difference_matches_exact_difference(ridge_sweep):
     res, _, high, _ = ridge_sweep
     sens = pd.DataFrame(res.sensitivity)

@@ -154,7 +154,7 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
     import os
     from concurrent.futures.process import BrokenProcessPool
 
-    started = False
+    started = broken = False
     pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
                                   initializer=init_worker, initargs=(ctx, os.getpid()))
     window = _Window(2 * workers)
@@ -177,9 +177,10 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
                 window.yielded(res[0])
                 yield res
     except BrokenProcessPool:
+        broken = True
         raise broken_pool(started) from None
     finally:
-        _stop_pool(pool, pending)
+        _stop_pool(pool, pending, broken)
 
 
 class _Window:
@@ -200,17 +201,23 @@ class _Window:
         return len(pending) + len(self.out) < self.size
 
 
-def _stop_pool(pool, pending) -> None:
+def _stop_pool(pool, pending, broken: bool = False) -> None:
     """Shut the pool down without waiting for chunks nobody will fold: when
-    the run ends early (interrupt, error) the workers are killed."""
-    early = any(not f.done() for f in pending)
+    the run ends early (interrupt, error, a broken pool) the workers are
+    killed and reaped, so no process outlives the run and nothing waits on
+    a worker that will never answer."""
+    early = broken or any(not f.done() for f in pending)
     for f in pending:
         f.cancel()
+    procs = list((getattr(pool, "_processes", None) or {}).values())
     if early:
-        for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        for proc in procs:
             with contextlib.suppress(Exception):
                 proc.kill()
-    pool.shutdown(wait=True, cancel_futures=True)
+    pool.shutdown(wait=not early, cancel_futures=True)
+    for proc in procs if early else ():
+        with contextlib.suppress(Exception):
+            proc.join(5)
 
 
 def check_scheduler_address(address: str) -> str:

@@ -15,6 +15,8 @@ import sys
 import textwrap
 from pathlib import Path
 
+import pytest
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -76,6 +78,7 @@ def test_a_cache_folder_chosen_by_the_user_is_kept(tmp_path):
     assert p.stdout.strip() == str(tmp_path / "mine")
 
 
+@pytest.mark.slow
 def test_an_unwritable_user_cache_falls_back_to_the_temporary_folder(tmp_path):
     # a cache home that is a file cannot hold folders (a read-only home behaves alike;
     # chmod does not stop root, so the test does not rely on it)
@@ -94,6 +97,7 @@ def test_an_unwritable_user_cache_falls_back_to_the_temporary_folder(tmp_path):
     assert _kernel_files(used)
 
 
+@pytest.mark.slow
 def test_a_changed_source_never_loads_the_old_kernels(tmp_path):
     # Two versions share a cache folder (or one version is replaced in place): numba keys
     # each entry by the source file's path and a hash of its contents (numba 0.60+ caching

@@ -142,7 +142,7 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
                  force=opts["force"])
     if runs == 1:  # a single blocked run keeps its grids on disk: they must fit there
         check_disk(head, job, chosen)
-    if chosen is not ex:
+    if ex.block is None and chosen.block is not None:
         warn(f"a whole-grid run would not fit in memory; computing each realisation in blocks "
              f"of {chosen.block} x {chosen.block} cells (--block; the layers are the same)")
     return chosen

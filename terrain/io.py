@@ -409,24 +409,38 @@ def read_outlets(path: str | os.PathLike, dem: Dem) -> Outlets:
         raise OutletError(f"{p}: no outlet points in the file")
     if not np.isfinite(xy).all():
         raise OutletError(f"{p}: outlet coordinates must be finite numbers")
-    cols = {str(c).lower().strip(): c for c in table.columns}
-    values = table[cols["id"]].tolist() if "id" in cols else None
+    id_col = _column(p, table.columns, "id")
+    values = table[id_col].tolist() if id_col is not None else None
     ids, numbered = outlet_ids(values, xy.shape[0], str(p))
-    attributes = table.drop(columns=[cols["id"]]) if "id" in cols else table
+    attributes = table.drop(columns=[id_col]) if id_col is not None else table
     return Outlets(ids, xy, attributes.reset_index(drop=True), str(p), numbered)
+
+
+def _column(p: Path, columns, name: str):
+    """The column called ``name``: spelt exactly so, else the one column equal to
+    it without case and blanks (None when there is none); several such
+    columns and none exact is ambiguous, and refused."""
+    exact = [c for c in columns if str(c) == name]
+    if exact:
+        return exact[0]
+    loose = [c for c in columns if str(c).lower().strip() == name]
+    if len(loose) > 1:
+        raise OutletError(f"{p}: columns {', '.join(map(repr, loose))} could each be the outlets' "
+                          f"{name}; name one of them {name!r}")
+    return loose[0] if loose else None
 
 
 def _outlet_csv(p: Path):
     import pandas as pd
 
     head = pd.read_csv(p, nrows=0).columns
-    ids = [c for c in head if str(c).lower().strip() == "id"]
-    df = pd.read_csv(p, dtype={c: str for c in ids})  # ids stay text ("007")
-    cols = {str(c).lower().strip(): c for c in df.columns}
-    if "x" not in cols or "y" not in cols:
+    id_col = _column(p, head, "id")
+    df = pd.read_csv(p, dtype={id_col: str} if id_col is not None else None)  # ids stay text
+    x, y = _column(p, df.columns, "x"), _column(p, df.columns, "y")
+    if x is None or y is None:
         raise OutletError(f"{p}: a CSV of outlets needs columns x and y (and optionally id)")
-    xy = df[[cols["x"], cols["y"]]].to_numpy(dtype=np.float64)
-    return df.drop(columns=[cols["x"], cols["y"]]), xy
+    xy = df[[x, y]].to_numpy(dtype=np.float64)
+    return df.drop(columns=[x, y]), xy
 
 
 def _outlet_vector(p: Path, dem: Dem):
@@ -558,7 +572,7 @@ PUBLISHING = ".publishing.json"  # inside a staging folder: its files are being 
 _PART = re.compile(r"^\..+\.[a-z0-9_]{8}\.part(\.\w+)?$")  # atomic_path's temporary names
 #: what a file cairn publishes may be called: a plain name (no folder, no leading dot) with
 #: one of the extensions cairn writes; a publication marker naming anything else is not cairn's
-OUTPUT_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,200}\.(?:tif|gpkg|csv|png|json)$")
+OUTPUT_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,200}\.(?:tif|gpkg|csv|png|json)\Z")
 _HELD: dict[str, list] = {}  # lock file (real path) -> [lock fd, depth] held by this process
 _NOFOLLOW = getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_CLOEXEC", 0)
 
@@ -1393,7 +1407,9 @@ FORMULA_START = ("=", "+", "-", "@", "\t", "\r", "\uff1d", "\uff0b", "\uff0d", "
 def csv_cell(value):
     """``value`` as a CSV cell a spreadsheet shows as text: text starting (after
     any blanks) with a formula character (:data:`FORMULA_START`) gets a leading
-    ``'``, the OWASP recommendation; anything else is returned as it is.
+    ``'``, the OWASP recommendation, and a carriage return inside text becomes
+    a line feed (so the cell is quoted whole, never split into a row of its
+    own); anything else is returned as it is.
 
     Examples
     --------
@@ -1404,10 +1420,13 @@ def csv_cell(value):
     ----------
     .. [1] OWASP Foundation, "CSV Injection", owasp.org/www-community/attacks/CSV_Injection.
     """
-    if isinstance(value, str) and (value.startswith(FORMULA_START)
-                                   or value.lstrip().startswith(FORMULA_START)):
-        return "'" + value
-    return value
+    if not isinstance(value, str):
+        return value
+    if value.startswith(FORMULA_START) or value.lstrip().startswith(FORMULA_START):
+        value = "'" + value
+    # a bare carriage return is written unquoted and read as a new row, whose first cell
+    # would start a formula: line breaks inside text are written as line feeds (quoted)
+    return value.replace("\r\n", "\n").replace("\r", "\n") if "\r" in value else value
 
 
 def csv_safe(frame):
@@ -1767,7 +1786,7 @@ def scratch_folder(parent: str | os.PathLike | None = None, *, need: int = 0,
 
 
 SCRATCH_MARGIN = 0.1  # free space kept beyond a scratch estimate: 10% ...
-SCRATCH_MARGIN_BYTES = 256 * 2**20  # ... plus 256 MiB
+SCRATCH_MARGIN_BYTES = 64 * 2**20  # ... plus 64 MiB
 
 
 def check_scratch_space(folder: str | os.PathLike, need: int, what: str = "scratch files", *,

@@ -325,12 +325,17 @@ def dask_client(scheduler: str | None, workers: int):
 
 
 def close_dask(client, cluster) -> None:
-    """Close a client and its local cluster without waiting on a peer that is gone."""
-    with quiet_dask(), contextlib.suppress(Exception):
-        client.close(timeout=HANDSHAKE_SECONDS)
-    if cluster is not None:
-        with quiet_dask(), contextlib.suppress(Exception):
-            cluster.close(timeout=HANDSHAKE_SECONDS)
+    """Close a client and its local cluster without waiting on a peer that is gone
+    (what Dask has to say about the waits it abandoned is collected here, quietly)."""
+    import gc
+
+    with quiet_dask():
+        with contextlib.suppress(Exception):
+            client.close(timeout=HANDSHAKE_SECONDS)
+        if cluster is not None:
+            with contextlib.suppress(Exception):
+                cluster.close(timeout=HANDSHAKE_SECONDS)
+        gc.collect()
 
 
 def _where(scheduler: str | None) -> str:
@@ -343,8 +348,10 @@ def quiet_dask():
     happened in one line, so its loggers are silenced for the block."""
     import logging
 
-    names = ["distributed"] + [n for n in logging.root.manager.loggerDict
-                               if n.startswith("distributed.")]
+    import distributed  # noqa: F401  (its loggers exist, with the levels its config gives them)
+
+    names = ["distributed", "asyncio"] + [n for n in logging.root.manager.loggerDict
+                                          if n.startswith("distributed.")]
     loggers = [logging.getLogger(n) for n in names]
     levels = [lg.level for lg in loggers]
     for lg in loggers:
@@ -374,7 +381,9 @@ class DaskWatch:
 
     def result(self, fut, *, on_stop: Callable[[], None] | None = None):
         """``fut``'s result; ``on_stop()`` is called (it should raise) when ``stop()``
-        becomes true during the wait (default: raise KeyboardInterrupt)."""
+        becomes true during the wait (default: raise KeyboardInterrupt). A result
+        that is done still has to be fetched from a worker, which may be gone:
+        the wait is the same."""
         while True:
             try:
                 return fut.result(timeout=POLL_SECONDS)
@@ -439,13 +448,15 @@ class DaskWatch:
             return exc
         name = type(exc).__name__
         text = str(exc).strip().splitlines()[0][:160] if str(exc).strip() else name
-        if name in ("FutureCancelledError", "CancelledError"):
-            if "scheduler-connection-lost" in text or getattr(self.client, "status",
-                                                              "running") != "running":
+        if name in ("FutureCancelledError", "FuturesCancelledError", "CancelledError"):
+            if "scheduler-connection-lost" in str(exc) or getattr(self.client, "status",
+                                                                  "running") != "running":
                 return self._lost("the connection closed")
+            why = re.search(r"for reason: ([^.\n]+)", str(exc))
             return WorkerError(f"{_where(self.scheduler)}: a Dask worker was lost with data the "
-                               f"run needed ({text}); what was done is in the checkpoint -- rerun "
-                               "with {resume}", "resume")
+                               "run needed (its tasks were cancelled"
+                               f"{': ' + why.group(1).strip() if why else ''}); what was done is "
+                               "in the checkpoint -- rerun with {resume}", "resume")
         if name == "KilledWorker":
             return WorkerError(f"{_where(self.scheduler)}: a task kept ending its Dask workers "
                                "(killed, or out of memory); give the workers more memory, use a "

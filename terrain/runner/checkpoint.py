@@ -24,7 +24,7 @@ from ..version import __version__
 __all__ = ["run_params", "save_checkpoint", "load_checkpoint", "is_checkpoint",
            "prepare_checkpoint", "check_resume", "run_identity", "counts_path"]
 
-_IDENTITY = ("seed", "settings", "model")
+_IDENTITY = ("seed", "model", "settings")
 
 
 def run_params(dem: Dem, job, model: ErrorModel, seed: int) -> dict:

@@ -90,9 +90,9 @@ def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None
     ctx = click.get_current_context()
     out = ctx.with_resource(claim_outdir(outdir, names,
                                          overwrite=opts["overwrite"] or opts["resume"]))
-    for c in cks:  # the folder is writable; a file there is a cairn checkpoint
-        ctx.with_resource(hold_checkpoint(c))
+    for c in cks:  # the folder is writable; a file there is a cairn checkpoint; no run uses it
         prepare_checkpoint(c, resume=opts["resume"])
+        ctx.with_resource(hold_checkpoint(c))
     if opts["resume"]:
         return out
     existing = [c for c in cks if file_exists(c)]

@@ -751,8 +751,8 @@ def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
     staging folder and the files it publishes must be real folders and
     regular files of this user, and a publication marker may only name
     plain file names of the kinds cairn writes (:data:`OUTPUT_NAME`) --
-    anything else found there is left alone. Returns the names removed or
-    completed.
+    (a staged file must have no other name) -- anything else found there is
+    left alone. Returns the names removed or completed.
     """
     out = Path(outdir)
     done = []
@@ -787,7 +787,7 @@ def _complete_publication(stage: Path, out: Path) -> list[str]:
             continue  # not a name cairn publishes: never followed
         with contextlib.suppress(OSError):
             st = os.lstat(stage / name)
-            if stat.S_ISREG(st.st_mode) and _own(st):
+            if stat.S_ISREG(st.st_mode) and st.st_nlink == 1 and _own(st):
                 _replace_into(stage / name, out / name)
                 done.append(name)
     return done

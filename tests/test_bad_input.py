@@ -1009,6 +1009,27 @@ def test_links_in_a_staging_folder_are_never_followed(cairn, dem, tmp_path, outs
         assert fh.readline().startswith("feature_id")  # cairn's own table, not the user's
 
 
+@pytest.mark.parametrize("name", ["run.json", "summits.csv", "peaks.gpkg", "peaks.gpkg-wal",
+                                  "peaks.gpkg-shm", "summit_credit.tif"])
+def test_links_planted_at_output_names_are_replaced_not_followed(cairn, dem, tmp_path, outside,
+                                                                name):
+    import sqlite3
+
+    out = tmp_path / "o"
+    out.mkdir()
+    con = sqlite3.connect(outside / "their.sqlite")  # a database of the user's, elsewhere
+    con.execute("CREATE TABLE t (a)")
+    con.commit()
+    con.close()
+    target = outside / ("their.sqlite" if name.startswith("peaks.gpkg") else "victim.txt")
+    (out / name).symlink_to(target)
+    before = tree(outside)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN, "--overwrite")
+    assert code == 0, err
+    assert tree(outside) == before
+    assert not (out / name).is_symlink()
+
+
 def test_publication_markers_name_only_what_cairn_writes():
     # every file any command publishes passes the marker's name check; nothing with a folder does
     from terrain.io import OUTPUT_NAME
@@ -1324,8 +1345,15 @@ def test_a_count_store_of_another_run_is_refused(cairn, tmp_path, blocked_ck):
     ck2 = tmp_path / "ck2.npz"
     assert cairn("depressions", other, "-o", tmp_path / "second", *BLOCKED, "-n", "4",
                  "--checkpoint", ck2)[0] == 0
-    shutil.rmtree(tmp_path / "ck.npz.counts")
-    shutil.copytree(tmp_path / "ck2.npz.counts", tmp_path / "ck.npz.counts")  # swapped stores
+    mine, theirs = tmp_path / "ck.npz.counts", tmp_path / "ck2.npz.counts"
+    for array in ("counts_0", "digest_0"):  # one block, with its digest, from the other run
+        chunk = _chunk_files(theirs, array)[0].relative_to(theirs)
+        shutil.copy(theirs / chunk, mine / chunk)
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "r", *BLOCKED, "-n", "6",
+                         "--checkpoint", ck, "--resume")
+    one_line_error(code, err, "damaged checkpoint", "does not match its digest")
+    shutil.rmtree(mine)
+    shutil.copytree(theirs, mine)  # the whole store swapped
     code, _, err = cairn("depressions", dem, "-o", tmp_path / "r", *BLOCKED, "-n", "6",
                          "--checkpoint", ck, "--resume")
     one_line_error(code, err, "damaged checkpoint", "another run")
@@ -1611,7 +1639,8 @@ class _Cluster:
         while True:
             try:
                 with Client(self.address, timeout="5s") as c:
-                    c.wait_for_workers(workers, timeout=30)
+                    if workers:
+                        c.wait_for_workers(workers, timeout=30)
                 break
             except Exception:
                 if time.time() > deadline:
@@ -1648,7 +1677,8 @@ def test_a_scheduler_without_workers_is_one_line(tmp_path, cluster, block):
 
 
 def _start_dask_run(tmp_path, cluster, *extra):
-    dem = write_tif(tmp_path / "d.tif", smooth_terrain((200, 200), seed=4))
+    side = 96 if "--block" in extra else 200  # the first checkpoint (50 realisations) comes soon
+    dem = write_tif(tmp_path / "d.tif", smooth_terrain((side, side), seed=4))
     ck = tmp_path / "ck.npz"
     p = subprocess.Popen(_DASK_CLI + [*extra, str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
                                       "-q", "--scheduler", cluster.address, "--checkpoint",
@@ -1661,7 +1691,7 @@ def _start_dask_run(tmp_path, cluster, *extra):
 
 
 RUNS = {"whole": ("peaks", "-n", "5000"),
-        "blocked": ("depressions", "-n", "5000", "--block", "64")}
+        "blocked": ("depressions", "-n", "5000", "--block", "48")}
 
 
 @pytest.mark.slow

@@ -397,21 +397,18 @@ class DaskWatch:
 
     def first_done(self, futs) -> list | None:
         """The futures of ``futs`` that are done, once at least one is; None when
-        ``stop()`` became true first."""
-        from distributed import wait
-
+        ``stop()`` became true first. (Polled: ``distributed.wait`` would use the
+        process's default client, which need not be the one these belong to.)"""
         while True:
-            done = [f for f in futs if f.done()]
-            if done:
-                return done
-            if self.stop():
-                return None
-            try:
-                wait(futs, timeout=POLL_SECONDS, return_when="FIRST_COMPLETED")
-            except (TimeoutError, asyncio.TimeoutError):
-                self.check()
-            except Exception as exc:
-                raise self.error(exc) from None
+            t0 = time.monotonic()
+            while time.monotonic() - t0 < POLL_SECONDS:
+                done = [f for f in futs if f.done()]
+                if done:
+                    return done
+                if self.stop():
+                    return None
+                time.sleep(0.02)
+            self.check()
 
     def check(self) -> None:
         """Raise once the cluster has had no worker, or no scheduler connection,

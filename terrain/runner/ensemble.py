@@ -296,6 +296,8 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
         raise OptionError(f"{dem.source}: a DEM kept on disk is run block by block; give "
                           "{block}", "block")
     remove_orphan_scratch()  # what a killed blocked run left in the temporary folder
+    if checkpoint is not None:  # its folder can be written, before its lock is made there
+        prepare_checkpoint(checkpoint, resume=resume)
     with hold_checkpoint(checkpoint) if checkpoint is not None else contextlib.nullcontext():
         return _run(dem, job, model, ex, progress)
 

@@ -6,7 +6,7 @@ import click
 
 from terrain.io import read_outlets
 from terrain.jobs import CatchmentJob
-from terrain.outputs.manifest import file_names, help_text
+from terrain.outputs.manifest import file_names, help_text, replace_patterns
 from terrain.outputs.writer import write_catchment_run
 from terrain.summary.catchments import summarise_catchments
 
@@ -85,7 +85,8 @@ def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, breac
                        breach_cap=breach_cap, connectivity=connectivity,
                        source=str(outlets))
     out = outputs(outdir, file_names("catchments", job.layer_ids), opts,
-                  inputs=[dem] + ([outlets] if outlets else []))
+                  inputs=[dem] + ([outlets] if outlets else []),
+                  patterns=replace_patterns("catchments"))
     guard_memory(head, job, ex, opts, model=model)
     d = read(dem, opts)
     job = job.resolved(d, model)

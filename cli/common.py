@@ -38,7 +38,7 @@ FLAGS = {
     "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
     "channel_area": "--channel-area", "conditioning": "--conditioning",
     "breach_cap": "--breach-cap", "nodata": "--nodata", "memory_check": "--force",
-    "block": "--block",
+    "block": "--block", "outdir": "-o/--outdir",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 
@@ -66,7 +66,7 @@ def _terminate(signum, frame):
 
 
 def guarded(fn):
-    """Turn cairn's own errors and running out of memory into one line + exit 2,
+    """Turn cairn's own errors, a full disk and running out of memory into one line + exit 2,
     Ctrl-C into exit 130 and SIGTERM into exit 143 (outputs in progress are
     dropped whole: see terrain.io.staged_outputs)."""
 
@@ -78,6 +78,13 @@ def guarded(fn):
         except CairnError as exc:
             kind = _kind()
             click.echo(f"cairn: error: {exc.render(lambda p: flag(p, kind))}", err=True)
+            sys.exit(2)
+        except OSError as exc:
+            if not _disk_full(exc):
+                raise
+            where = f" writing {exc.filename}" if exc.filename else ""
+            click.echo(f"cairn: error: disk full{where} ({exc.strerror or exc}); free some space "
+                       "or choose other folders (TMPDIR for scratch files)", err=True)
             sys.exit(2)
         except MemoryError:
             click.echo("cairn: error: out of memory (the machine could not provide what the run "
@@ -92,6 +99,17 @@ def guarded(fn):
             _on_sigterm(previous)
 
     return wrapper
+
+
+def _disk_full(exc: BaseException) -> bool:
+    """True for an OSError (or one it came from) saying a disk or quota is full."""
+    import errno
+
+    while exc is not None:
+        if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+            return True
+        exc = exc.__cause__ or exc.__context__
+    return False
 
 
 def _on_sigterm(handler):

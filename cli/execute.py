@@ -6,6 +6,7 @@ only wires the options through and prints.
 
 from __future__ import annotations
 
+import dataclasses
 import sys
 from pathlib import Path
 
@@ -16,15 +17,19 @@ from terrain.io import (
     claim_outdir,
     dem_warnings,
     file_exists,
+    hold_checkpoint,
     read_dem,
     read_header,
     remove_file,
+    replaced_by,
+    resolves_into,
     same_file,
     scratch_folder,
 )
 from terrain.noise import ErrorModel, rmse_from
-from terrain.resources import check_memory, choose_block
+from terrain.resources import check_disk, check_memory, choose_block
 from terrain.runner import Execution, RunInterrupted, run_ensemble
+from terrain.runner.blocked import effective_block
 from terrain.runner.checkpoint import prepare_checkpoint
 
 from .common import warn
@@ -69,20 +74,25 @@ def execution(opts: dict) -> Execution:
                      block=opts.get("block"))
 
 
-def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None) -> Path:
-    """Claim the output folder for this command (locked until it ends) and check
-    the checkpoint files against the inputs and outputs, before the run starts.
+def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None,
+            patterns=()) -> Path:
+    """Claim the output folder for this command (locked until it ends), lock the
+    checkpoint files and check them and the inputs against what the run
+    writes, before the run starts.
 
-    ``checkpoints`` are the files the run will save (default: ``--checkpoint``).
+    ``checkpoints`` are the files the run will save (default: ``--checkpoint``);
+    ``patterns`` the glob patterns of earlier outputs the publication removes.
     """
     ck = opts["checkpoint"]
     cks = [Path(c) for c in (checkpoints if checkpoints is not None else [ck] if ck else [])]
+    _inputs_kept(inputs, outdir, names, patterns, cks)
     _distinct(cks, inputs, [Path(outdir) / n for n in names])
     ctx = click.get_current_context()
     out = ctx.with_resource(claim_outdir(outdir, names,
                                          overwrite=opts["overwrite"] or opts["resume"]))
-    for c in cks:  # the folder is writable; a file there is a cairn checkpoint
+    for c in cks:  # the folder is writable; a file there is a cairn checkpoint; no run uses it
         prepare_checkpoint(c, resume=opts["resume"])
+        ctx.with_resource(hold_checkpoint(c))
     if opts["resume"]:
         return out
     existing = [c for c in cks if file_exists(c)]
@@ -92,6 +102,23 @@ def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None
     for c in existing:
         remove_file(c)
     return out
+
+
+def _inputs_kept(inputs, outdir, names, patterns, checkpoints) -> None:
+    """An input file (DEM, outlets) may never be one the run writes, replaces or removes."""
+    for p in inputs:
+        if p is None:
+            continue
+        hit = replaced_by(p, outdir, names, patterns)
+        if hit is not None:
+            raise OutputError(f"{p}: is an input of this run, and the run would replace it "
+                              f"({hit} in the output folder {outdir}); choose another {{outdir}}",
+                              "outdir")
+        for c in checkpoints:
+            if resolves_into(p, f"{c}.counts"):
+                raise OutputError(f"{p}: is an input of this run and lies in {c}.counts, which "
+                                  "the run replaces; choose another {checkpoint} file",
+                                  "checkpoint")
 
 
 def _distinct(checkpoints, inputs, outputs) -> None:
@@ -109,9 +136,13 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
     """Refuse a run that would not fit in memory, from the DEM's header alone;
     return the execution to use (blocked mode when only that fits, said once)."""
     chosen = choose_block(head, job, ex, model=model, runs=runs, quicklook=quicklook)
+    if chosen.block is not None:  # a block larger than the grid is the grid
+        chosen = dataclasses.replace(chosen, block=effective_block(chosen.block, head.shape))
     check_memory(head, job, chosen, model=model, runs=runs, quicklook=quicklook,
                  force=opts["force"])
-    if chosen is not ex:
+    if runs == 1:  # a single blocked run keeps its grids on disk: they must fit there
+        check_disk(head, job, chosen)
+    if ex.block is None and chosen.block is not None:
         warn(f"a whole-grid run would not fit in memory; computing each realisation in blocks "
              f"of {chosen.block} x {chosen.block} cells (--block; the layers are the same)")
     return chosen

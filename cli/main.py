@@ -7,17 +7,41 @@ modules do not import this one (no import circle): it collects them.
 
 from __future__ import annotations
 
+import os
+import signal
 import sys
 
-import click
 
-from terrain import __version__
+def _quit_while_loading(signum, frame):  # pragma: no cover - timing dependent
+    """Ctrl-C or SIGTERM while the libraries load: nothing is started yet, so
+    say so in one line and leave (no traceback from half-imported modules)."""
+    os.write(2, b"cairn: interrupted\n" if signum == signal.SIGINT else b"cairn: terminated\n")
+    os._exit(130 if signum == signal.SIGINT else 143)
 
-from .attribution import demo_cmd, depressions_cmd, peaks_cmd
-from .catchments_cmd import catchments_cmd
-from .common import CAUTION
-from .inspect_cmd import inspect_cmd
-from .sweep_cmd import sweep_cmd
+
+def _while_loading():
+    """Install :func:`_quit_while_loading` (main thread only); returns the handlers to restore."""
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return {}
+    return {s: signal.signal(s, _quit_while_loading) for s in (signal.SIGINT, signal.SIGTERM)}
+
+
+_LOADING = _while_loading()
+
+import click  # noqa: E402
+
+from terrain import __version__  # noqa: E402
+
+from .attribution import demo_cmd, depressions_cmd, peaks_cmd  # noqa: E402
+from .catchments_cmd import catchments_cmd  # noqa: E402
+from .common import CAUTION  # noqa: E402
+from .inspect_cmd import inspect_cmd  # noqa: E402
+from .sweep_cmd import sweep_cmd  # noqa: E402
+
+for _signum, _handler in _LOADING.items():  # loaded: the commands handle signals from here
+    signal.signal(_signum, _handler)
 
 __all__ = ["cli", "run"]
 

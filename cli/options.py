@@ -206,7 +206,7 @@ block = click.option(
          "are the same bit for bit; peaks and depressions then keep the DEM, region labels and "
          "counts on disk and write window by window (out of core). Chosen (1024) when a "
          "whole-grid run would not fit in memory and blocks would. Scratch files (about 12-16 "
-         "bytes per cell) go under TMPDIR.")
+         "bytes per cell) go under TMPDIR; their space is checked before the run starts.")
 
 
 outdir = click.option("-o", "--outdir", required=True, type=click.Path(file_okay=True),

@@ -20,7 +20,7 @@ __all__ = [
     "CairnError", "DemError", "DemNotFoundError", "NotARasterError", "CorruptRasterError",
     "NoValidCellsError", "BandError", "WindowError", "OptionError",
     "OutputError", "CheckpointError", "MemoryGuardError", "SchedulerError", "WorkerError",
-    "OutletError", "RasterTypeError", "CairnWarning",
+    "OutletError", "RasterTypeError", "GeoreferenceError", "CairnWarning",
 ]
 
 
@@ -89,6 +89,11 @@ class WindowError(DemError, ValueError):
 
 class RasterTypeError(DemError, TypeError):
     """The band holds values that are not real numbers (complex)."""
+
+
+class GeoreferenceError(DemError, ValueError):
+    """The raster's georeferencing cannot be right (a geographic grid whose rows
+    lie beyond a pole)."""
 
 
 # --- options and models --------------------------------------------------------

@@ -17,6 +17,7 @@ import math
 import os
 import re
 import shutil
+import stat
 import tempfile
 import warnings
 from dataclasses import dataclass
@@ -31,6 +32,7 @@ from .errors import (
     CheckpointError,
     CorruptRasterError,
     DemNotFoundError,
+    GeoreferenceError,
     NotARasterError,
     NoValidCellsError,
     OptionError,
@@ -49,8 +51,10 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "NpyWindows", "create_npy", "write_npy_window", "save_npy", "save_scratch",
            "load_scratch", "scratch_folder",
            "remove_orphan_scratch", "CountStore", "write_layers_by_window",
-           "SCRATCH_PREFIX"]
-__all__ += ["kernel_cache_folder"]
+           "SCRATCH_PREFIX", "hold_checkpoint", "OUTPUT_NAME", "csv_cell", "csv_safe",
+           "FORMULA_START", "scratch_parent", "free_bytes", "check_scratch_space",
+           "is_count_store", "check_count_store_path", "COUNTS_TAG", "SCRATCH_LOCK",
+           "resolves_into", "replaced_by", "kernel_cache_folder"]
 
 
 # Common nodata values of DEM products and GIS packages that files often hold
@@ -114,9 +118,9 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
         arr = _read_band(p, ds, h.band, h.window)
     data = np.asarray(arr.data)
     mask = np.ma.getmaskarray(arr)
-    z, mask = _elevations(data, mask, h, nodata)
+    z, mask, huge = _elevations(data, mask, h, nodata)
     stats = _BandStats()
-    stats.add(data, mask)
+    stats.add(data, mask, huge)
     meta = stats.meta(h, nodata)
     del data, arr
     return Dem(z=z, nodata=mask, **_grid(h, p, meta, bbox))
@@ -129,8 +133,14 @@ def _grid(h: RasterHeader, p: Path, meta: dict, bbox) -> dict:
                 meta={**meta, "bbox": list(bbox) if bbox is not None else None})
 
 
+#: Elevations must fit the float32 realisations are computed in: a finite value
+#: beyond this (e.g. 1e300 in a float64 file) is no elevation, and is read as nodata
+ELEVATION_LIMIT = float(np.finfo(np.float32).max)
+
+
 def _elevations(data: np.ndarray, mask: np.ndarray, h: RasterHeader, nodata):
-    """Stored values to elevations (scale, offset; NaN on nodata) and the full mask."""
+    """Stored values to elevations (scale, offset; NaN on nodata), the full mask,
+    and the count of finite values too large to be elevations (masked too)."""
     if nodata is not None and _fits(nodata, data.dtype):
         mask = mask | (data == data.dtype.type(nodata))
     z = data.astype(np.float32 if h.value_bytes == 4 else np.float64)
@@ -138,7 +148,13 @@ def _elevations(data: np.ndarray, mask: np.ndarray, h: RasterHeader, nodata):
         z *= z.dtype.type(h.scale)
     if h.offset != 0.0:
         z += z.dtype.type(h.offset)
-    return z, mask
+    huge = 0
+    if z.dtype == np.float64:
+        big = np.isfinite(z) & (np.abs(z) > ELEVATION_LIMIT) & ~mask
+        huge = int(big.sum())
+        if huge:
+            mask = mask | big
+    return z, mask, huge
 
 
 def _read_to_disk(p: Path, ds, h: RasterHeader, nodata, bbox, folder: Path) -> DiskDem:
@@ -156,8 +172,8 @@ def _read_to_disk(p: Path, ds, h: RasterHeader, nodata, bbox, folder: Path) -> D
         n = min(step, rows - r0)
         arr = _read_band(p, ds, h.band, (col_off, row_off + r0, cols, n))
         data = np.asarray(arr.data)
-        z, mask = _elevations(data, np.ma.getmaskarray(arr), h, nodata)
-        stats.add(data, mask)
+        z, mask, huge = _elevations(data, np.ma.getmaskarray(arr), h, nodata)
+        stats.add(data, mask, huge)
         mask |= ~np.isfinite(z)
         z[mask] = np.nan
         for s in range(0, n, BAND_ROWS):
@@ -184,11 +200,12 @@ class _BandStats:
     cells, the valid range, counts of common nodata sentinels."""
 
     def __init__(self):
-        self.nonfinite = self.valid = 0
+        self.nonfinite = self.valid = self.huge = 0
         self.lo, self.hi = math.inf, -math.inf
         self.sentinels = dict.fromkeys(SENTINELS, 0)
 
-    def add(self, data: np.ndarray, mask: np.ndarray) -> None:
+    def add(self, data: np.ndarray, mask: np.ndarray, huge: int = 0) -> None:
+        self.huge += huge
         if data.dtype.kind == "f":
             self.nonfinite += int((~np.isfinite(data) & ~mask).sum())
         vals = data[~mask & np.isfinite(data)] if data.size else data
@@ -204,6 +221,8 @@ class _BandStats:
                 "nonfinite_cells": self.nonfinite, "band": h.band, "nodata": nodata,
                 "scale": h.scale, "offset": h.offset,
                 "window": list(h.window) if h.window is not None else None}
+        if self.huge:
+            meta["oversized_cells"] = self.huge
         if h.nodata_value is not None and np.isfinite(h.nodata_value) and self.valid:
             meta["nodata_in_range"] = bool(self.lo <= h.nodata_value <= self.hi)
         if h.nodata_value is None and nodata is None and self.valid:
@@ -237,6 +256,9 @@ def _header(p: Path, ds, band: int | None, bbox, nodata) -> RasterHeader:
     transform = ds.window_transform(window) if window is not None else ds.transform
     crs = ds.crs
     geographic = bool(crs is not None and crs.is_geographic)
+    if geographic:
+        _check_latitudes(p, tuple(transform)[:6], window.height if window is not None
+                         else ds.height, window.width if window is not None else ds.width)
     unit_m = 1.0
     if crs is not None and not geographic:
         with contextlib.suppress(Exception):
@@ -252,6 +274,18 @@ def _header(p: Path, ds, band: int | None, bbox, nodata) -> RasterHeader:
         band=band, scale=scale, offset=offset, nodata_value=ds.nodatavals[band - 1],
         window=None if window is None else (int(window.col_off), int(window.row_off),
                                             int(window.width), int(window.height)))
+
+
+def _check_latitudes(p: Path, transform, rows: int, cols: int) -> None:
+    """Refuse a geographic grid whose cell centres lie beyond a pole."""
+    a, b, c, d, e, f = transform
+    lats = [d * (j + 0.5) + e * (i + 0.5) + f for i in (0, rows - 1) for j in (0, cols - 1)]
+    worst = max(lats, key=abs)
+    if abs(worst) > 90 + 1e-9:
+        raise GeoreferenceError(f"{p}: the CRS is geographic but the grid's cells reach latitude "
+                                f"{abs(worst):.6g}°{'N' if worst > 0 else 'S'}, beyond the pole; "
+                                "check the file's CRS and transform (a projected grid labelled "
+                                "as degrees?)")
 
 
 def _open_raster(p: Path):
@@ -413,24 +447,38 @@ def read_outlets(path: str | os.PathLike, dem: Dem) -> Outlets:
         raise OutletError(f"{p}: no outlet points in the file")
     if not np.isfinite(xy).all():
         raise OutletError(f"{p}: outlet coordinates must be finite numbers")
-    cols = {str(c).lower().strip(): c for c in table.columns}
-    values = table[cols["id"]].tolist() if "id" in cols else None
+    id_col = _column(p, table.columns, "id")
+    values = table[id_col].tolist() if id_col is not None else None
     ids, numbered = outlet_ids(values, xy.shape[0], str(p))
-    attributes = table.drop(columns=[cols["id"]]) if "id" in cols else table
+    attributes = table.drop(columns=[id_col]) if id_col is not None else table
     return Outlets(ids, xy, attributes.reset_index(drop=True), str(p), numbered)
+
+
+def _column(p: Path, columns, name: str):
+    """The column called ``name``: spelt exactly so, else the one column equal to
+    it without case and blanks (None when there is none); several such
+    columns and none exact is ambiguous, and refused."""
+    exact = [c for c in columns if str(c) == name]
+    if exact:
+        return exact[0]
+    loose = [c for c in columns if str(c).lower().strip() == name]
+    if len(loose) > 1:
+        raise OutletError(f"{p}: columns {', '.join(map(repr, loose))} could each be the outlets' "
+                          f"{name}; name one of them {name!r}")
+    return loose[0] if loose else None
 
 
 def _outlet_csv(p: Path):
     import pandas as pd
 
     head = pd.read_csv(p, nrows=0).columns
-    ids = [c for c in head if str(c).lower().strip() == "id"]
-    df = pd.read_csv(p, dtype={c: str for c in ids})  # ids stay text ("007")
-    cols = {str(c).lower().strip(): c for c in df.columns}
-    if "x" not in cols or "y" not in cols:
+    id_col = _column(p, head, "id")
+    df = pd.read_csv(p, dtype={id_col: str} if id_col is not None else None)  # ids stay text
+    x, y = _column(p, df.columns, "x"), _column(p, df.columns, "y")
+    if x is None or y is None:
         raise OutletError(f"{p}: a CSV of outlets needs columns x and y (and optionally id)")
-    xy = df[[cols["x"], cols["y"]]].to_numpy(dtype=np.float64)
-    return df.drop(columns=[cols["x"], cols["y"]]), xy
+    xy = df[[x, y]].to_numpy(dtype=np.float64)
+    return df.drop(columns=[x, y]), xy
 
 
 def _outlet_vector(p: Path, dem: Dem):
@@ -440,15 +488,43 @@ def _outlet_vector(p: Path, dem: Dem):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         gdf = pyogrio.read_dataframe(p)
+    if len(gdf) and gdf.crs is not None:
+        _check_lonlat(p, gdf)
     if len(gdf) and dem.crs is not None and gdf.crs is not None and \
             not CRS.from_user_input(gdf.crs).equals(CRS.from_user_input(dem.crs)):
-        gdf = gdf.to_crs(dem.crs)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            gdf = gdf.to_crs(dem.crs)
     geom = gdf.geometry
     if len(gdf) and (geom.isna().any() or not all(t == "Point" for t in geom.geom_type)):
         kinds = sorted({str(t) for t in geom.geom_type})
         raise OutletError(f"{p}: outlets must be points, found {kinds}")
     xy = np.column_stack([geom.x, geom.y]) if len(gdf) else np.empty((0, 2))
     return gdf.drop(columns=gdf.geometry.name), xy
+
+
+def _check_lonlat(p: Path, gdf) -> None:
+    """Refuse points whose numbers cannot be in the file's geographic CRS (a
+    GeoJSON without a ``crs`` member is WGS84 longitude/latitude, RFC 7946,
+    whatever numbers it holds)."""
+    from pyproj import CRS
+
+    crs = CRS.from_user_input(gdf.crs)
+    if not crs.is_geographic:
+        return
+    geom = gdf.geometry
+    pts = geom[geom.notna() & (geom.geom_type == "Point")]
+    if not len(pts):
+        return
+    x, y = pts.x.to_numpy(), pts.y.to_numpy()
+    bad = np.flatnonzero(~((np.abs(y) <= 90) & (np.abs(x) <= 360)))
+    if bad.size:
+        i = int(bad[0])
+        geojson = (" (a GeoJSON without a \"crs\" member is WGS84 longitude/latitude, RFC 7946)"
+                   if p.suffix.lower() in (".geojson", ".json") else "")
+        raise OutletError(f"{p}: point {i + 1} is ({x[i]:.10g}, {y[i]:.10g}), which is not a "
+                          f"longitude/latitude, yet the file's CRS is {crs.name}{geojson}; give "
+                          "the file the CRS its coordinates are in")
 
 
 def dem_warnings(dem: Dem) -> list[CairnWarning]:
@@ -465,6 +541,11 @@ def dem_warnings(dem: Dem) -> list[CairnWarning]:
             f"declare them with {{nodata}} {v:g}", "nodata"))
     if m.get("nonfinite_cells"):
         out.append(f"{dem.source}: {m['nonfinite_cells']} NaN or infinite cells treated as nodata")
+    if m.get("oversized_cells"):
+        out.append(CairnWarning(
+            f"{dem.source}: {m['oversized_cells']} cells hold finite values beyond "
+            f"±{ELEVATION_LIMIT:.3g}, too large for an elevation; they are treated as nodata -- "
+            "if they mark voids, declare their value with {nodata}", "nodata"))
     if m.get("nodata_in_range"):
         out.append(f"{dem.source}: the nodata value {m['nodata_value']:g} lies inside the "
                    "elevation range; cells equal to it are treated as nodata -- check the file's "
@@ -527,7 +608,11 @@ LOCK_NAME = ".cairn.lock"
 STAGING_PREFIX = ".cairn-staging-"
 PUBLISHING = ".publishing.json"  # inside a staging folder: its files are being moved into place
 _PART = re.compile(r"^\..+\.[a-z0-9_]{8}\.part(\.\w+)?$")  # atomic_path's temporary names
-_HELD: dict[str, list] = {}  # output folder (real path) -> [lock fd, depth] held by this process
+#: what a file cairn publishes may be called: a plain name (no folder, no leading dot) with
+#: one of the extensions cairn writes; a publication marker naming anything else is not cairn's
+OUTPUT_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,200}\.(?:tif|gpkg|csv|png|json)\Z")
+_HELD: dict[str, list] = {}  # lock file (real path) -> [lock fd, depth] held by this process
+_NOFOLLOW = getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_CLOEXEC", 0)
 
 
 @contextlib.contextmanager
@@ -544,8 +629,9 @@ def claim_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bool
     Raises
     ------
     OutputError
-        The folder cannot be used, is held by another run, or would be
-        overwritten without ``overwrite``.
+        The folder cannot be used, is held by another run, holds a lock
+        entry that is not cairn's (a link, a folder, a file with other
+        names), or would be overwritten without ``overwrite``.
     """
     out = Path(outdir)
     created = _make_outdir(out)
@@ -560,61 +646,123 @@ def claim_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bool
                 out.rmdir()  # only when empty
 
 
-@contextlib.contextmanager
 def hold_outdir(outdir: str | os.PathLike):
     """Lock ``outdir`` for this process (re-entrant); another process holding
     it makes this raise :class:`OutputError` at once."""
     out = Path(outdir)
-    key = os.path.realpath(out)
+    return _hold(out / LOCK_NAME, f"{out}: another cairn run is writing to this folder{{who}}; "
+                                  "wait for it to finish or choose another output folder")
+
+
+def hold_checkpoint(checkpoint: str | os.PathLike):
+    """Lock a checkpoint for this process (re-entrant) with a lock file beside it
+    (``.<name>.lock``); another run using it makes this raise at once.
+
+    Raises
+    ------
+    CheckpointError
+        Another cairn run (in any process) holds the checkpoint.
+    OutputError
+        The lock file cannot be made, or its name holds something that is
+        not cairn's lock file.
+    """
+    p = Path(checkpoint)
+    return _hold(p.parent / f".{p.name}.lock",
+                 f"{p}: another cairn run is using this checkpoint{{who}}; wait for it to finish "
+                 "or choose another {checkpoint} file", busy_error=CheckpointError,
+                 params=("checkpoint",))
+
+
+@contextlib.contextmanager
+def _hold(path: Path, busy: str, *, busy_error=OutputError, params=()):
+    """An exclusive lock on the lock file ``path`` for this process, re-entrant;
+    ``busy`` (``{who}`` is filled with the holder's process number) is the
+    error when another process holds it."""
+    key = os.path.join(os.path.realpath(path.parent), path.name)
     held = _HELD.get(key)
     if held is not None:
         held[1] += 1
         try:
-            yield out
+            yield path.parent
         finally:
             held[1] -= 1
         return
-    fd = _lock(out)
+    fd = _lock(path, busy, busy_error, params)
     _HELD[key] = [fd, 1]
     try:
-        yield out
+        yield path.parent
     finally:
         del _HELD[key]
         if fd is not None:
-            with contextlib.suppress(OSError):
-                os.unlink(out / LOCK_NAME)  # while still holding it
-            os.close(fd)
+            _unlock(path, fd)
 
 
-def _lock(out: Path) -> int | None:
-    """An exclusive ``flock`` on ``out/.cairn.lock`` (None where flock is missing
+def _unlock(path: Path, fd: int) -> None:
+    """Remove the lock file (while still holding it), only if the name is still ours."""
+    with contextlib.suppress(OSError):
+        st, mine = os.lstat(path), os.fstat(fd)
+        if (st.st_ino, st.st_dev) == (mine.st_ino, mine.st_dev):
+            os.unlink(path)
+    os.close(fd)
+
+
+def _open_lock(path: Path) -> tuple[int, bool]:
+    """Open (or create) the lock file ``path`` without following a link; refuse
+    anything but a regular file of this user with no other name. Returns the
+    descriptor and whether this call created the file."""
+    flags = os.O_RDWR | getattr(os, "O_NONBLOCK", 0) | _NOFOLLOW
+    created = True
+    try:
+        try:
+            fd = os.open(path, flags | os.O_CREAT | os.O_EXCL, 0o644)
+        except FileExistsError:
+            created = False
+            fd = os.open(path, flags)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP or path.is_symlink():
+            raise OutputError(f"{path}: is a symbolic link, not a cairn lock file; cairn never "
+                              "follows links it finds -- remove the link") from None
+        if path.is_dir():
+            raise OutputError(f"{path}: is a folder, not a cairn lock file; remove it") from None
+        raise OutputError(f"{path}: cannot create the lock file ({exc.strerror}); choose "
+                          "another folder") from None
+    st = os.fstat(fd)
+    why = ("it is not a regular file" if not stat.S_ISREG(st.st_mode) else
+           "it has other names (hard links)" if st.st_nlink != 1 else
+           "it belongs to another user" if hasattr(os, "geteuid") and st.st_uid != os.geteuid()
+           else None)
+    if why:
+        os.close(fd)
+        raise OutputError(f"{path}: is not a cairn lock file ({why}); cairn never writes "
+                          "through it -- remove it")
+    return fd, created
+
+
+def _lock(path: Path, busy: str, busy_error=OutputError, params=()) -> int | None:
+    """An exclusive ``flock`` on the lock file ``path`` (None where flock is missing
     or the file system does not support it)."""
     try:
         import fcntl
     except ImportError:  # pragma: no cover - not POSIX
         return None
-    path = out / LOCK_NAME
     for _ in range(10):
-        try:
-            fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
-        except OSError as exc:
-            raise OutputError(f"{out}: cannot create its lock file ({exc.strerror}); choose "
-                              "another output folder") from None
+        fd, created = _open_lock(path)
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
             pid = os.read(fd, 32).decode(errors="replace").strip()
             os.close(fd)
             who = f" (process {pid})" if pid.isdigit() else ""
-            raise OutputError(f"{out}: another cairn run is writing to this folder{who}; wait "
-                              "for it to finish or choose another output folder") from None
+            raise busy_error(busy.replace("{who}", who), *params) from None
         except OSError:  # a file system without locks (some network mounts): go on unlocked
             os.close(fd)
-            with contextlib.suppress(OSError):
-                os.unlink(path)
+            if created:
+                with contextlib.suppress(OSError):
+                    os.unlink(path)
             return None
         try:
-            same = os.fstat(fd).st_ino == os.stat(path).st_ino
+            st, mine = os.lstat(path), os.fstat(fd)
+            same = (st.st_ino, st.st_dev) == (mine.st_ino, mine.st_dev)
         except FileNotFoundError:
             same = False  # the previous holder removed it after we opened it
         if same:
@@ -623,7 +771,12 @@ def _lock(out: Path) -> int | None:
                 os.write(fd, f"{os.getpid()}\n".encode())
             return fd
         os.close(fd)
-    raise OutputError(f"{out}: cannot lock the output folder; choose another output folder")
+    raise OutputError(f"{path}: cannot take the lock; choose another folder")
+
+
+def _own(st: os.stat_result) -> bool:
+    """True when an entry (from ``lstat``) belongs to this user."""
+    return not hasattr(os, "geteuid") or st.st_uid == os.geteuid()
 
 
 def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
@@ -632,25 +785,49 @@ def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
     Temporary files of :func:`atomic_path` are removed; a staging folder is
     removed, after moving its files into place when its publication had
     begun (so the folder ends with the complete new set, never a mix).
-    Returns the names removed or completed.
+    Only entries cairn makes are touched, and never through a link: a
+    staging folder and the files it publishes must be real folders and
+    regular files of this user, and a publication marker may only name
+    plain file names of the kinds cairn writes (:data:`OUTPUT_NAME`) --
+    (a staged file must have no other name) -- anything else found there is
+    left alone. Returns the names removed or completed.
     """
     out = Path(outdir)
     done = []
     for p in sorted(out.iterdir()):
-        if p.is_dir() and p.name.startswith(STAGING_PREFIX):
-            marker = p / PUBLISHING
-            if marker.is_file():
-                with contextlib.suppress(OSError, ValueError):
-                    for name in json.loads(marker.read_text()):
-                        if (p / name).is_file():
-                            os.replace(p / name, out / name)
-                            done.append(name)
+        try:
+            st = os.lstat(p)
+        except OSError:
+            continue
+        if p.name.startswith(STAGING_PREFIX) and stat.S_ISDIR(st.st_mode) and _own(st):
+            done += _complete_publication(p, out)
             shutil.rmtree(p, ignore_errors=True)
             done.append(p.name)
-        elif p.is_file() and _PART.match(p.name):
+        elif _PART.match(p.name) and stat.S_ISREG(st.st_mode) and _own(st):
             with contextlib.suppress(OSError):
                 p.unlink()
                 done.append(p.name)
+    return done
+
+
+def _complete_publication(stage: Path, out: Path) -> list[str]:
+    """Move the files a cut-short publication listed from ``stage`` into ``out``."""
+    marker = stage / PUBLISHING
+    try:
+        if not stat.S_ISREG(os.lstat(marker).st_mode):
+            return []
+        names = json.loads(marker.read_text())
+    except (OSError, ValueError):
+        return []
+    done = []
+    for name in names if isinstance(names, list) else ():
+        if not isinstance(name, str) or not OUTPUT_NAME.match(name):
+            continue  # not a name cairn publishes: never followed
+        with contextlib.suppress(OSError):
+            st = os.lstat(stage / name)
+            if stat.S_ISREG(st.st_mode) and st.st_nlink == 1 and _own(st):
+                _replace_into(stage / name, out / name)
+                done.append(name)
     return done
 
 
@@ -685,6 +862,9 @@ def _publish(stage: Path, out: Path, replaces) -> None:
     try:
         _sync_dir(stage)
         with _signals_held():
+            for name in names:  # before anything moves: a GeoPackage open elsewhere stops it
+                if name.lower().endswith(".gpkg"):
+                    _release_sqlite(out / name)
             marker = stage / PUBLISHING
             with open(marker, "w") as fh:
                 fh.write(json.dumps(names))
@@ -692,13 +872,78 @@ def _publish(stage: Path, out: Path, replaces) -> None:
                 os.fsync(fh.fileno())
             for pattern in replaces:
                 for old in out.glob(pattern):
-                    if old.name not in names and old.is_file():
+                    st = os.lstat(old)
+                    if old.name not in names and stat.S_ISREG(st.st_mode) and _own(st):
                         old.unlink()
             for name in names:
-                os.replace(stage / name, out / name)
+                _replace_into(stage / name, out / name)
             _sync_dir(out)
     except OSError as exc:
         raise _write_error(out, exc) from None
+
+
+def _replace_into(src: Path, dest: Path) -> None:
+    """Rename ``src`` onto ``dest``; a GeoPackage is replaced whole, without the
+    write-ahead log or journal the file it replaces left beside it."""
+    if dest.suffix.lower() == ".gpkg":
+        _release_sqlite(dest)
+    os.replace(src, dest)
+
+
+# SQLite's files beside a database, and the bytes its connections lock (os_unix.c: the
+# -shm "dead man switch" byte every connection of a WAL database holds a shared lock on,
+# and the main file's pending/shared range a rollback-journal writer holds)
+_SQLITE_SIDECARS = ("-wal", "-shm", "-journal")
+_SHM_DMS_BYTE = 128
+_PENDING_BYTE, _LOCK_SPAN = 0x40000000, 512
+
+
+def _release_sqlite(db: Path) -> None:
+    """Remove the stale ``-wal``, ``-shm`` and ``-journal`` files of the SQLite
+    database (GeoPackage) ``db`` before it is replaced; refuse while another
+    process has the database open (SQLite would write its log into the new file).
+
+    Raises
+    ------
+    OutputError
+        Another program holds the database.
+    """
+    sidecars = [Path(f"{db}{s}") for s in _SQLITE_SIDECARS if os.path.lexists(f"{db}{s}")]
+    if not sidecars:
+        return
+    if _sqlite_held(db):
+        raise OutputError(f"{db}: is open in another program (its SQLite log "
+                          f"{Path(str(sidecars[0])).name} is in use); close it there and run "
+                          "again, or choose another output folder")
+    for p in sidecars:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(p)
+
+
+def _sqlite_held(db: Path) -> bool:
+    """True when another process holds a lock SQLite takes on ``db``: the shared
+    lock of an open WAL connection on its ``-shm`` file, or a writer's lock on
+    the main file (POSIX advisory locks, as SQLite's unix VFS takes them)."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        return False
+    for path, start, span in ((Path(f"{db}-shm"), _SHM_DMS_BYTE, 1), (db, _PENDING_BYTE, _LOCK_SPAN)):
+        try:
+            if not stat.S_ISREG(os.lstat(path).st_mode):
+                continue
+            fd = os.open(path, os.O_RDWR | _NOFOLLOW)
+        except OSError:
+            continue
+        try:
+            fcntl.lockf(fd, fcntl.LOCK_EX | fcntl.LOCK_NB, span, start)
+        except (BlockingIOError, PermissionError):
+            return True
+        except OSError:  # a file system without locks: nothing to learn here
+            continue
+        finally:
+            os.close(fd)  # closing drops the probe's lock
+    return False
 
 
 @contextlib.contextmanager
@@ -780,7 +1025,7 @@ def atomic_path(dest: str | os.PathLike, *, bands: int | None = None):
             raise _write_error(dest, problem, seen.text())
         seen.replay()
         _fsync_file(tmp)
-        os.replace(tmp, dest)
+        _replace_into(tmp, dest)
         _sync_dir(dest.parent)
     except OSError as exc:
         if isinstance(exc, OutputError):
@@ -938,12 +1183,23 @@ def _check_raster(tmp: Path, bands: int | None) -> str | None:
 
 
 def _check_gpkg(tmp: Path, bands) -> str | None:
+    """Every layer reads back, and SQLite finds the database whole
+    (``PRAGMA integrity_check``, SQLite's own check of every page and index)."""
+    import sqlite3
+
     import pyogrio
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         for layer, _ in pyogrio.list_layers(tmp):
             pyogrio.read_info(tmp, layer=layer)
+    con = sqlite3.connect(tmp)
+    try:
+        rows = con.execute("PRAGMA integrity_check").fetchall()
+    finally:
+        con.close()
+    if rows != [("ok",)]:
+        return "SQLite's integrity check fails: " + "; ".join(str(r[0]) for r in rows[:3])
     return None
 
 
@@ -1167,11 +1423,59 @@ def write_frames(dest: str | os.PathLike, frames: dict, descriptions: dict | Non
 
 
 def write_csv(dest: str | os.PathLike, frame) -> None:
-    """Write a data frame (without any geometry column) as CSV, atomically."""
+    """Write a data frame (without any geometry column) as CSV, atomically.
+
+    Text a spreadsheet program would run as a formula is neutralised
+    (:func:`csv_safe`): the file is meant to be opened, and outlet ids and
+    attributes come from users' files.
+    """
     if "geometry" in getattr(frame, "columns", ()):
         frame = frame.drop(columns="geometry")
+    frame = csv_safe(frame)
     with atomic_path(dest) as tmp:
         frame.to_csv(tmp, index=False)
+
+
+#: Leading characters that make a spreadsheet treat a cell as a formula (OWASP, "CSV
+#: Injection": =, +, -, @, tab, carriage return), and their full-width forms, which
+#: some spreadsheet programs read the same way
+FORMULA_START = ("=", "+", "-", "@", "\t", "\r", "\uff1d", "\uff0b", "\uff0d", "\uff20")
+
+
+def csv_cell(value):
+    """``value`` as a CSV cell a spreadsheet shows as text: text starting (after
+    any blanks) with a formula character (:data:`FORMULA_START`) gets a leading
+    ``'``, the OWASP recommendation, and a carriage return inside text becomes
+    a line feed (so the cell is quoted whole, never split into a row of its
+    own); anything else is returned as it is.
+
+    Examples
+    --------
+    >>> csv_cell("=1+2"), csv_cell("@x"), csv_cell(" -cmd"), csv_cell("gauge 7"), csv_cell(-3.5)
+    ("'=1+2", "'@x", "' -cmd", 'gauge 7', -3.5)
+
+    References
+    ----------
+    .. [1] OWASP Foundation, "CSV Injection", owasp.org/www-community/attacks/CSV_Injection.
+    """
+    if not isinstance(value, str):
+        return value
+    if value.startswith(FORMULA_START) or value.lstrip().startswith(FORMULA_START):
+        value = "'" + value
+    # a bare carriage return is written unquoted and read as a new row, whose first cell
+    # would start a formula: line breaks inside text are written as line feeds (quoted)
+    return value.replace("\r\n", "\n").replace("\r", "\n") if "\r" in value else value
+
+
+def csv_safe(frame):
+    """A copy of ``frame`` whose text cells and column names are :func:`csv_cell`'d
+    (numbers, negative ones included, are left as numbers)."""
+    out = frame.copy()
+    for col in out.columns:
+        if out[col].dtype == object or str(out[col].dtype) in ("string", "str"):
+            out[col] = out[col].map(csv_cell)
+    out.columns = [csv_cell(str(c)) if isinstance(c, str) else c for c in out.columns]
+    return out
 
 
 def write_figure(dest: str | os.PathLike, figure) -> None:
@@ -1249,6 +1553,36 @@ def same_file(a: str | os.PathLike, b: str | os.PathLike) -> bool:
         return False
 
 
+def resolves_into(path: str | os.PathLike, folder: str | os.PathLike) -> bool:
+    """True when ``path``, links resolved, is ``folder`` or lies inside it."""
+    real, top = os.path.realpath(path), os.path.realpath(folder)
+    return real == top or real.startswith(top.rstrip(os.sep) + os.sep)
+
+
+def replaced_by(path: str | os.PathLike, outdir: str | os.PathLike, names, patterns=()) -> str | None:
+    """What a run writing ``names`` into ``outdir`` would do to ``path`` (links
+    resolved): the output name that replaces it, the pattern of earlier
+    outputs the publication removes, or the leftover the tidy-up removes
+    (a staging folder, a temporary file, the lock) -- None when it stays."""
+    import fnmatch
+
+    real, top = Path(os.path.realpath(path)), Path(os.path.realpath(outdir))
+    if real.parent == top:
+        name = real.name
+        if name in names:
+            return name
+        for pattern in patterns:
+            if fnmatch.fnmatchcase(name, pattern):
+                return pattern
+        if _PART.match(name) or name == LOCK_NAME:
+            return name
+    if resolves_into(real, top) and real != top:
+        first = real.relative_to(top).parts[0]
+        if first.startswith(STAGING_PREFIX):
+            return first
+    return None
+
+
 def file_exists(path: str | os.PathLike) -> bool:
     """True when ``path`` is an existing file."""
     return Path(path).is_file()
@@ -1321,9 +1655,46 @@ class NpyWindows:
         del mm
 
 
+def _scratch_full(path, exc: OSError) -> OutputError:
+    """The one-line error for scratch space running out while writing ``path``."""
+    folder = Path(path).parent
+    while folder.name and not folder.name.startswith(SCRATCH_PREFIX) and folder.parent != folder:
+        folder = folder.parent
+    where = folder.parent if folder.name.startswith(SCRATCH_PREFIX) else Path(path).parent
+    return OutputError(f"{where}: disk full while writing scratch files ({exc.strerror or exc}); "
+                       "free some space there or point TMPDIR at a folder with more")
+
+
+def _disk_full(exc: BaseException) -> bool:
+    """True for an OSError (or one it was raised from) saying the disk or quota is full."""
+    while exc is not None:
+        if isinstance(exc, OSError) and exc.errno in _DISK_FULL_ERRNO:
+            return True
+        exc = exc.__cause__ or exc.__context__
+    return False
+
+
+def _scratch_writes(fn):
+    """Turn a full disk while ``fn(path, ...)`` writes scratch into one :class:`OutputError`."""
+    @functools.wraps(fn)
+    def wrapper(path, *args, **kwargs):
+        try:
+            return fn(path, *args, **kwargs)
+        except OSError as exc:
+            if _disk_full(exc) and not isinstance(exc, OutputError):
+                raise _scratch_full(path, exc) from None
+            raise
+    return wrapper
+
+
+@_scratch_writes
 def create_npy(path: str, shape, dtype) -> None:
     """A ``.npy`` file of ``shape`` and ``dtype`` (contents undefined until written),
-    unless ``path`` already holds one (reused: every cell is written again)."""
+    unless ``path`` already holds one (reused: every cell is written again).
+
+    The file's blocks are allocated at once (``posix_fallocate``), so a disk
+    without the room fails here, in one :class:`OutputError`, rather than
+    with a bus error when a memory-mapped write finds no block to fill."""
     try:
         a = np.load(path, mmap_mode="r")
         if a.shape == tuple(shape) and a.dtype == np.dtype(dtype):
@@ -1331,8 +1702,23 @@ def create_npy(path: str, shape, dtype) -> None:
     except (OSError, ValueError, EOFError):
         pass
     np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=tuple(shape)).flush()
+    if hasattr(os, "posix_fallocate"):
+        fd = os.open(path, os.O_RDWR | _NOFOLLOW)
+        try:
+            os.posix_fallocate(fd, 0, os.fstat(fd).st_size)
+        except OSError as exc:
+            if _disk_full(exc):
+                os.close(fd)
+                fd = None
+                with contextlib.suppress(OSError):
+                    os.unlink(path)
+                raise
+        finally:
+            if fd is not None:
+                os.close(fd)
 
 
+@_scratch_writes
 def write_npy_window(path: str, r0: int, c0: int, values: np.ndarray) -> None:
     """Write ``values`` into the ``.npy`` at ``path`` from row ``r0``, column ``c0``.
 
@@ -1343,12 +1729,14 @@ def write_npy_window(path: str, r0: int, c0: int, values: np.ndarray) -> None:
     del mm
 
 
+@_scratch_writes
 def save_npy(path: str, a: np.ndarray) -> str:
     """Save ``a`` as ``.npy`` at ``path``; return the path."""
     np.save(path, a)
     return path
 
 
+@_scratch_writes
 def save_scratch(path: str, arrays: dict) -> str:
     """Save ``arrays`` (name: array) as an uncompressed ``.npz`` scratch file at
     ``path``, read back within the run by :func:`load_scratch` (not flushed to
@@ -1364,105 +1752,345 @@ def load_scratch(path: str) -> dict:
         return {k: f[k] for k in f.files}
 
 
+def scratch_parent(parent: str | os.PathLike | None = None) -> str:
+    """Where scratch folders go: ``parent``, else ``TMPDIR`` when set, else the
+    system's temporary folder. A ``TMPDIR`` that is not a writable folder is
+    refused rather than silently replaced by another folder (a full one
+    stays the folder; the space check says it is full).
+
+    Raises
+    ------
+    OutputError
+        ``TMPDIR`` names no writable folder.
+    """
+    if parent is not None:
+        return str(parent)
+    env = os.environ.get("TMPDIR")
+    if env:
+        if not os.path.isdir(env) or not os.access(env, os.W_OK | os.X_OK):
+            raise OutputError(f"TMPDIR={env}: not a writable folder; cairn keeps a blocked "
+                              "run's scratch files there -- point TMPDIR at one")
+        return env
+    return tempfile.gettempdir()
+
+
+def free_bytes(folder: str | os.PathLike) -> int | None:
+    """Bytes free for this user in the file system holding ``folder`` (None if unknown)."""
+    return _free_bytes(Path(folder))
+
+
+SCRATCH_LOCK = "lock"  # inside a scratch folder: held by the run using it
+
+
 @contextlib.contextmanager
-def scratch_folder(parent: str | os.PathLike | None = None):
-    """A new folder for a run's scratch files under ``parent`` (default: the
-    system's temporary folder), removed on exit; folders left by runs whose
-    process is gone (killed) are removed first."""
-    parent = str(parent) if parent is not None else tempfile.gettempdir()
+def scratch_folder(parent: str | os.PathLike | None = None, *, need: int = 0,
+                   what: str = "scratch files"):
+    """A new folder for a run's scratch files under ``parent`` (default:
+    :func:`scratch_parent`), removed on exit; folders of runs that are gone
+    (killed) are removed first.
+
+    The folder is owned by a lock, not a process number: the run holds an
+    exclusive ``flock`` on ``lock`` inside it from before the folder takes
+    its name until it is removed, and the sweep (:func:`remove_orphan_scratch`)
+    removes only folders whose lock it can take -- so a live run is safe from
+    any other run, on this machine or another sharing the folder, whatever
+    process numbers each can see. ``need`` bytes (plus a margin) must be
+    free under ``parent``.
+
+    Raises
+    ------
+    OutputError
+        Too little free space (saying how much is needed, for ``what``, and
+        where), or the folder cannot be made.
+    """
+    parent = scratch_parent(parent)
     remove_orphan_scratch(parent)
-    folder = tempfile.mkdtemp(prefix=f"{SCRATCH_PREFIX}{os.getpid()}-", dir=parent)
+    check_scratch_space(parent, need, what)
+    try:
+        staging = tempfile.mkdtemp(prefix="." + SCRATCH_PREFIX, dir=parent)
+        fd = _take_scratch_lock(os.path.join(staging, SCRATCH_LOCK))
+        folder = _rename_fresh(staging, os.path.join(parent, f"{SCRATCH_PREFIX}{os.getpid()}-"))
+    except OSError as exc:
+        if _disk_full(exc):
+            raise _scratch_full(os.path.join(parent, SCRATCH_PREFIX), exc) from None
+        raise OutputError(f"{parent}: cannot make a scratch folder ({exc.strerror}); point "
+                          "TMPDIR at a writable folder") from None
     try:
         yield folder
     finally:
         shutil.rmtree(folder, ignore_errors=True)
+        if fd is not None:
+            os.close(fd)
 
 
-def remove_orphan_scratch(parent: str | os.PathLike | None = None) -> None:
-    """Remove the scratch folders of blocked runs whose process is gone (killed)
-    under ``parent`` (default: the system's temporary folder). A folder whose
-    process number was reused by a live process stays until that one ends."""
-    parent = str(parent) if parent is not None else tempfile.gettempdir()
-    for folder in glob.glob(os.path.join(glob.escape(parent), SCRATCH_PREFIX + "*-*")):
-        pid = os.path.basename(folder)[len(SCRATCH_PREFIX):].split("-")[0]
-        if pid.isdigit() and int(pid) != os.getpid() and not _alive(int(pid)):
-            shutil.rmtree(folder, ignore_errors=True)
+SCRATCH_MARGIN = 0.1  # free space kept beyond a scratch estimate: 10% ...
+SCRATCH_MARGIN_BYTES = 64 * 2**20  # ... plus 64 MiB
 
 
-def _alive(pid: int) -> bool:
+def check_scratch_space(folder: str | os.PathLike, need: int, what: str = "scratch files", *,
+                        hint: str | None = None, params: tuple = ("bbox",)) -> None:
+    """Refuse, in one line, when ``folder`` has less free space than ``need`` bytes
+    plus the margin (:data:`SCRATCH_MARGIN`, :data:`SCRATCH_MARGIN_BYTES`); the
+    message says how much is needed there, for ``what``, and ``hint`` (default:
+    free space, TMPDIR, or a smaller window). Nothing is checked for ``need`` 0."""
+    if not need:
+        return
+    free = free_bytes(folder)
+    want = int(need * (1 + SCRATCH_MARGIN)) + SCRATCH_MARGIN_BYTES
+    if free is not None and free < want:
+        hint = hint or ("free some space, point TMPDIR at a folder with more, or use {bbox} for "
+                        "a smaller window")
+        raise OutputError(f"{folder}: a blocked run needs about {_size(want)} of free space here "
+                          f"for {what}, but {_size(free)} is free; {hint}", *params)
+
+
+def _size(n: int) -> str:
+    return f"{n / 2**30:.1f} GiB" if n >= 2**30 else f"{max(n, 0) / 2**20:.0f} MiB"
+
+
+def _rename_fresh(src: str, prefix: str) -> str:
+    """Rename the folder ``src`` to ``prefix`` + a random suffix no entry has yet."""
+    import secrets
+
+    while True:
+        dest = prefix + secrets.token_hex(4)
+        if not os.path.lexists(dest):
+            os.rename(src, dest)  # the name appears with its lock already held
+            return dest
+
+
+def _take_scratch_lock(path: str) -> int | None:
+    """Create and lock a scratch folder's lock file (None where flock is missing)."""
     try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        return None
+    fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_EXCL | _NOFOLLOW, 0o600)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:  # no locks on this file system: no sweep can take it either
+        pass
+    return fd
+
+
+def remove_orphan_scratch(parent: str | os.PathLike | None = None) -> list[str]:
+    """Remove the scratch folders of blocked runs that are gone (killed) under
+    ``parent`` (default: :func:`scratch_parent`): only real folders of this
+    user whose lock this call can take. A live run holds its folder's lock
+    (in any process namespace or on any machine sharing the folder, as far
+    as the file system carries ``flock``); a folder whose lock cannot be
+    taken or tried (no lock file, a link, a file system without locks) is
+    left alone. Returns the folders removed."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        return []
+    parent = scratch_parent(parent)
+    removed = []
+    for folder in [f for prefix in (SCRATCH_PREFIX, "." + SCRATCH_PREFIX)
+                   for f in glob.glob(os.path.join(glob.escape(parent), prefix + "*"))]:
+        try:
+            st = os.lstat(folder)
+            if not stat.S_ISDIR(st.st_mode) or not _own(st):
+                continue
+            fd = os.open(os.path.join(folder, SCRATCH_LOCK), os.O_RDWR | _NOFOLLOW)
+        except OSError:
+            continue
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:  # held by a live run, or not lockable here
+            os.close(fd)
+            continue
+        try:
+            shutil.rmtree(folder, ignore_errors=True)
+            removed.append(folder)
+        finally:
+            os.close(fd)
+    return removed
+
+
+_STORE_ARRAYS = ("counts_0", "counts_1", "applied", "digest_0", "digest_1")
+_STORE_FILE = re.compile(r"^(?:zarr\.json|(?:counts_[01]|applied|digest_[01])/(?:zarr\.json|c(?:/\d+)+))$")
+COUNTS_TAG = "cairn per-cell counts"  # the store's own attribute: it is cairn's
+
+
+def is_count_store(path: str | os.PathLike) -> bool:
+    """True when ``path`` is a real folder (not a link) holding nothing but a
+    Zarr store laid out as a :class:`CountStore` (no file of anyone else's)."""
+    p = str(path)
+    try:
+        if not stat.S_ISDIR(os.lstat(p).st_mode):
+            return False
+        with open(os.path.join(p, "zarr.json")) as fh:
+            if json.load(fh).get("node_type") != "group":
+                return False
+    except (OSError, ValueError, AttributeError):
         return False
-    except OSError:  # another user's live process
-        return True
+    for root, dirs, files in os.walk(p):
+        rel = os.path.relpath(root, p)
+        for name in files + [d for d in dirs if os.path.islink(os.path.join(root, d))]:
+            path_rel = name if rel == "." else f"{rel}/{name}".replace(os.sep, "/")
+            if not _STORE_FILE.match(path_rel) or os.path.islink(os.path.join(root, name)):
+                return False
     return True
+
+
+def check_count_store_path(path: str | os.PathLike, what: str = "") -> None:
+    """Refuse a ``path`` where :class:`CountStore` would make its store when
+    something that is not a cairn count store is there (cairn removes only
+    its own).
+
+    Raises
+    ------
+    CheckpointError
+        Naming the path and the ``checkpoint`` parameter.
+    """
+    if os.path.lexists(path) and not is_count_store(path):
+        kind = ("a link" if os.path.islink(path) else "a file" if not os.path.isdir(path)
+                else "a folder holding other files")
+        raise CheckpointError(f"{path}: exists and is not cairn's per-cell counts ({kind}); cairn "
+                              "only replaces its own -- move it or choose another {checkpoint} file",
+                              "checkpoint")
+
+
+def _remove_store(path: str) -> None:
+    check_count_store_path(path)
+    shutil.rmtree(path, ignore_errors=True)
 
 
 class CountStore:
     """Per-cell int32 counts of a run kept on disk (out-of-core runs): a Zarr
-    group chunked by block, each chunk stamped with the realisations it holds.
+    group chunked by block, each chunk stamped with the realisations it holds
+    and sealed by a digest.
 
     ``add(window, i, counts)`` adds realisation ``i``'s counts of one block
     (windows aligned to the block grid): it reads the chunk's buffer holding
-    the realisations so far, writes the sum into the chunk's *other* buffer
-    and only then stamps the chunk, so a process killed between the writes
-    leaves the old buffer and stamp intact; a resumed run adds realisation
-    ``i`` again only where the stamp says it is missing. ``store[r0:r1,
-    c0:c1]`` reads counts by window. Memory: one chunk at a time; disk: 8
-    bytes per cell (two int32 buffers, compressed).
+    the realisations so far (checking its digest), writes the sum into the
+    chunk's *other* buffer and that buffer's digest, and only then stamps
+    the chunk, so a process killed between the writes leaves the old buffer,
+    digest and stamp intact; a resumed run adds realisation ``i`` again only
+    where the stamp says it is missing. ``store[r0:r1, c0:c1]`` reads counts
+    by window. Memory: one chunk at a time; disk: 8 bytes per cell (two
+    int32 buffers, compressed).
+
+    The store is one unit with its checkpoint: its attributes carry the
+    run's identity (``run``: a digest of the DEM and every parameter that
+    defines the realisations) and each chunk's digest covers the identity,
+    the chunk's place, its realisation count and its values. A resume
+    (``resume=True``) refuses a store of another run and verifies every
+    chunk: a missing, damaged or foreign chunk is a
+    :class:`~terrain.errors.CheckpointError` saying "damaged checkpoint".
+    ``checkpoint`` names the checkpoint file in messages.
 
     References
     ----------
     .. [1] Zarr storage specification, version 3 (2023), zarr-specs.readthedocs.io.
+    .. [2] Aumasson, J.-P. et al. (2013). BLAKE2: simpler, smaller, fast as MD5
+       (RFC 7693): the chunk digests.
     """
 
-    def __init__(self, path: str | os.PathLike, shape, block: int, *, resume: bool = False):
-        import zarr
-
+    def __init__(self, path: str | os.PathLike, shape, block: int, *, resume: bool = False,
+                 run: str = "", checkpoint: str | os.PathLike | None = None):
         self.path, self.shape, self.block = str(path), tuple(int(x) for x in shape), int(block)
+        self.run = str(run)
+        self.checkpoint = str(checkpoint) if checkpoint is not None else self.path
         if resume:
-            try:
-                self.group = zarr.open_group(self.path, mode="r+")
-                arrays = [self.group[k] for k in ("counts_0", "counts_1", "applied")]
-            except Exception as exc:  # zarr raises several classes for a missing or bad store
-                raise CheckpointError(f"{self.path}: the run's per-cell counts are missing or "
-                                      f"damaged ({_short(exc)}); start afresh without "
-                                      "{resume}", "resume") from None
-            if arrays[0].shape != self.shape:
-                raise CheckpointError(f"{self.path}: the per-cell counts were made on another "
-                                      "grid; start afresh without {resume}", "resume")
-            self.rechunk = arrays[0].chunks[0] != self.block  # done by check()
+            self.group, self.rechunk = self._open(), False
+            self.rechunk = self.counts[0].chunks[0] != self.block  # done by check()
         else:
             self.group, self.rechunk = self._create(self.path), False
-        self._arrays()
+            self._arrays()
+
+    def _damaged(self, why: str) -> CheckpointError:
+        return CheckpointError(f"{self.checkpoint}: damaged checkpoint (its per-cell counts "
+                               f"{self.path}: {why}); start afresh without {{resume}} or choose "
+                               "another {checkpoint} file", "resume", "checkpoint")
+
+    def _open(self):
+        import zarr
+
+        if os.path.islink(self.path) or (os.path.lexists(self.path)
+                                         and not is_count_store(self.path)):
+            check_count_store_path(self.path)
+        try:
+            group = zarr.open_group(self.path, mode="r+")
+            self.group = group
+            self._arrays()
+            tag = dict(group.attrs).get("cairn") or {}
+        except Exception as exc:  # zarr raises several classes for a missing or bad store
+            raise self._damaged(f"missing or unreadable: {_short(exc)}") from None
+        if tag.get("kind") != COUNTS_TAG:
+            raise self._damaged("no run identity; made by an earlier cairn")
+        if tag.get("run") != self.run:
+            raise self._damaged("made by another run (another DEM or other parameters)")
+        if self.counts[0].shape != self.shape:
+            raise self._damaged("made on another grid")
+        return group
 
     def _create(self, path: str):
         import zarr
 
-        shutil.rmtree(path, ignore_errors=True)
-        group = zarr.open_group(path, mode="w")
-        for k in ("counts_0", "counts_1"):
-            group.create_array(k, shape=self.shape, chunks=(self.block,) * 2, dtype="int32",
-                               fill_value=0)
-        nb = tuple(-(-s // self.block) for s in self.shape)
-        group.create_array("applied", shape=nb, chunks=(1, 1), dtype="int64", fill_value=0)
+        _remove_store(path)
+        try:
+            group = zarr.open_group(path, mode="w")
+            for k in ("counts_0", "counts_1"):
+                group.create_array(k, shape=self.shape, chunks=(self.block,) * 2, dtype="int32",
+                                   fill_value=0)
+            nb = tuple(-(-s // self.block) for s in self.shape)
+            group.create_array("applied", shape=nb, chunks=(1, 1), dtype="int64", fill_value=0)
+            for k in ("digest_0", "digest_1"):
+                group.create_array(k, shape=nb, chunks=(1, 1), dtype="int64", fill_value=0)
+            group.attrs["cairn"] = {"kind": COUNTS_TAG, "run": self.run}
+        except OSError as exc:
+            if _disk_full(exc):
+                raise _scratch_full(path, exc) from None
+            raise
         return group
 
     def _arrays(self) -> None:
         self.counts = (self.group["counts_0"], self.group["counts_1"])
         self.applied = self.group["applied"]
+        self.digests = (self.group["digest_0"], self.group["digest_1"])
+
+    def _digest(self, bi: int, bj: int, n: int, values: np.ndarray) -> int:
+        """The seal of chunk (``bi``, ``bj``) holding ``n`` realisations (BLAKE2b, 63 bits)."""
+        import hashlib
+
+        h = hashlib.blake2b(digest_size=8, person=b"cairn-counts")
+        h.update(self.run.encode())
+        h.update(np.array([bi, bj, n], "<i8").tobytes())
+        h.update(np.ascontiguousarray(values, "<i4").tobytes())
+        return int.from_bytes(h.digest(), "little") >> 1
+
+    def _chunk(self, bi: int, bj: int, n: int, b: int | None = None) -> np.ndarray:
+        """Chunk (``bi``, ``bj``) of the buffer holding ``n`` realisations, its digest checked."""
+        b = b or self.counts[0].chunks[0]
+        r0, c0 = bi * b, bj * b
+        r1, c1 = min(r0 + b, self.shape[0]), min(c0 + b, self.shape[1])
+        try:
+            values = np.asarray(self.counts[n % 2][r0:r1, c0:c1])
+            sealed = int(self.digests[n % 2][bi, bj])
+        except Exception as exc:  # zarr and its codecs raise many classes for a damaged chunk
+            raise self._damaged(f"block {bi},{bj} cannot be read: {_short(exc)}") from None
+        if (sealed != self._digest(bi, bj, n, values)) if n else values.any():
+            raise self._damaged(f"block {bi},{bj} does not match its digest")
+        return values
 
     def _rechunk(self, n: int) -> None:
-        """Copy counts of exactly ``n`` realisations into chunks of this run's block."""
+        """Copy counts of exactly ``n`` realisations into chunks of this run's block
+        (every chunk was verified by :meth:`check` first)."""
         new = self.path + ".rechunk"
         group, b = self._create(new), self.block
         for r0 in range(0, self.shape[0], b):
             for c0 in range(0, self.shape[1], b):
                 r1, c1 = min(r0 + b, self.shape[0]), min(c0 + b, self.shape[1])
-                group[f"counts_{n % 2}"][r0:r1, c0:c1] = self[r0:r1, c0:c1]
+                values = self[r0:r1, c0:c1]
+                group[f"counts_{n % 2}"][r0:r1, c0:c1] = values
+                group[f"digest_{n % 2}"][r0 // b, c0 // b] = self._digest(r0 // b, c0 // b, n,
+                                                                          values)
         group["applied"][:, :] = n
         old = self.path + ".old"
+        _remove_store(old)
         os.replace(self.path, old)
         os.replace(new, self.path)
         shutil.rmtree(old, ignore_errors=True)
@@ -1482,30 +2110,44 @@ class CountStore:
         if done > i:
             return
         if done < i:
-            raise CheckpointError(f"{self.path}: block {bi},{bj} holds {done} realisations, "
-                                  f"not the {i} before this one; start afresh without {{resume}}",
-                                  "resume")
-        total = self.counts[done % 2][r0:r1, c0:c1] + np.asarray(counts, np.int32)
-        self.counts[(done + 1) % 2][r0:r1, c0:c1] = total
-        self.applied[bi, bj] = done + 1
+            raise self._damaged(f"block {bi},{bj} holds {done} realisations, not the {i} "
+                                "before this one")
+        total = self._chunk(bi, bj, done) + np.asarray(counts, np.int32)
+        try:
+            self.counts[(done + 1) % 2][r0:r1, c0:c1] = total
+            self.digests[(done + 1) % 2][bi, bj] = self._digest(bi, bj, done + 1, total)
+            self.applied[bi, bj] = done + 1
+        except OSError as exc:
+            if _disk_full(exc):
+                raise _scratch_full(self.path, exc) from None
+            raise
 
-    def check(self, n: int, *, exact: bool = False) -> None:
-        """Every chunk holds at least (``exact``: exactly) ``n`` realisations.
+    def check(self, n: int, *, exact: bool = False, verify: bool = False) -> None:
+        """Every chunk holds at least (``exact``: exactly) ``n`` realisations
+        (``verify``: and matches its digest -- a resume checks every chunk).
 
         A store made with another block size is copied into chunks of this
         one first, which needs exactly ``n`` in every chunk."""
-        a = np.asarray(self.applied[:, :])
+        try:
+            a = np.asarray(self.applied[:, :])
+        except Exception as exc:  # a damaged stamp array
+            raise self._damaged(f"its stamps cannot be read: {_short(exc)}") from None
+        if a.size and a.min() < n:
+            raise self._damaged(f"some blocks hold {a.min()} realisations, fewer than the "
+                                f"checkpoint's {n}")
+        if verify:
+            for (bi, bj), k in np.ndenumerate(a):
+                self._chunk(bi, bj, int(k))
         if self.rechunk and a.size and a.min() == a.max() == n:
             self._rechunk(n)
             return
         if self.rechunk:
-            raise CheckpointError(f"{self.path}: the per-cell counts were made with {{block}} "
+            raise CheckpointError(f"{self.checkpoint}: the per-cell counts were made with {{block}} "
                                   f"{self.counts[0].chunks[0]} and a realisation was under way; "
                                   "resume with that {block}", "block")
-        if a.min() < n or (exact and a.max() != n):
-            raise CheckpointError(f"{self.path}: the per-cell counts hold {a.min()} to {a.max()} "
-                                  f"realisations, not the checkpoint's {n}; start afresh without "
-                                  "{resume}", "resume")
+        if exact and a.max() != n:
+            raise self._damaged(f"blocks hold {a.min()} to {a.max()} realisations, not exactly "
+                                f"{n}")
 
     def __getitem__(self, key) -> np.ndarray:
         rs, cs = key
@@ -1521,4 +2163,3 @@ class CountStore:
                 buf = self.counts[int(a[bi - r0 // b, bj - c0 // b]) % 2]
                 out[y0 - r0:y1 - r0, x0 - c0:x1 - c0] = buf[y0:y1, x0:x1]
         return out
-

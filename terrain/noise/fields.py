@@ -38,7 +38,8 @@ import numpy as np
 
 from ..errors import OptionError
 
-__all__ = ["COVARIANCES", "covariance", "ConvolutionKernel"]
+__all__ = ["COVARIANCES", "covariance", "ConvolutionKernel", "periodic_shape", "field_tile",
+           "kernel_memory", "check_range", "KERNEL_BUILD_BYTES", "FIELD_TILE_BYTES"]
 
 
 def _exponential(r):
@@ -114,10 +115,7 @@ class ConvolutionKernel:
         if not practical_range > 0:
             raise OptionError("the correlation {range_m} must be positive", "range_m")
         dy, dx = (float(v) for v in spacing)
-        # a periodic grid wide enough that the covariance has died out across it
-        span = 8.0 * practical_range
-        my = _good_size(max(64, 2 * math.ceil(span / dy)))
-        mx = _good_size(max(64, 2 * math.ceil(span / dx)))
+        my, mx = periodic_shape(spacing, practical_range)
         iy = np.minimum(np.arange(my), my - np.arange(my)) * dy
         ix = np.minimum(np.arange(mx), mx - np.arange(mx)) * dx
         c = covariance(model, np.hypot(iy[:, None], ix[None, :]), practical_range)
@@ -138,12 +136,7 @@ class ConvolutionKernel:
     def tile_size(self, shape: tuple[int, int]) -> int:
         """Output tile side: a power of two >= 256 and about twice the radius
         (capped at the raster's size), fixed for a raster and model."""
-        want = max(2 * max(self.radius), 1)
-        cap = max(shape)
-        side = 256
-        while side < want and side < cap:
-            side *= 2
-        return side
+        return field_tile(self.radius, shape)
 
     def convolve(self, noise: np.ndarray) -> np.ndarray:
         """The field on the cells whose kernel window lies inside ``noise``
@@ -151,3 +144,78 @@ class ConvolutionKernel:
         from scipy.signal import fftconvolve
 
         return fftconvolve(noise, self.k, mode="valid")
+
+
+def periodic_shape(spacing, practical_range: float) -> tuple[int, int]:
+    """The periodic grid a :class:`ConvolutionKernel` is computed on: wide enough
+    that the covariance has died out across it (8 ranges each way)."""
+    dy, dx = (float(v) for v in spacing)
+    span = 8.0 * practical_range
+    return (_good_size(max(64, 2 * math.ceil(span / dy))),
+            _good_size(max(64, 2 * math.ceil(span / dx))))
+
+
+def field_tile(radius, shape) -> int:
+    """Output tile side of a field (see :meth:`ConvolutionKernel.tile_size`)."""
+    want = max(2 * max(radius), 1)
+    cap = max(shape)
+    side = 256
+    while side < want and side < cap:
+        side *= 2
+    return side
+
+
+# Bytes per cell of the periodic grid while a kernel is computed (the covariance, its
+# real FFT, the eigenvalues' root, the kernel and the sort of its mass by reach: 52
+# measured with tracemalloc for all three models, rounded up), and per cell of the
+# noise a field tile is convolved from, (tile + 4 radius)^2 (the noise with its halo
+# and scipy's FFT work arrays: 42-48 measured, rounded up).
+KERNEL_BUILD_BYTES = 56
+FIELD_TILE_BYTES = 64
+# The kernel's radius, as a share of the practical range, is at most about 1 for the
+# three models (truncated at 99.95% of its squared mass: exponential 1.01, spherical
+# 0.97-1.0, gaussian 0.67-0.75, measured at 10 m cells): bounded here by 1.05 range + 1 cell.
+_RADIUS_PER_RANGE = 1.05
+
+
+def kernel_memory(spacing, practical_range: float, shape) -> tuple[int, int, int]:
+    """Bytes a correlated field of ``practical_range`` metres on a grid of
+    ``shape`` cells ``spacing`` = (dy, dx) metres apart needs, without computing
+    it: (computing the kernel, once per process that builds it; the kernel
+    itself, kept by every process that draws; drawing one field tile)."""
+    my, mx = periodic_shape(spacing, practical_range)
+    dy, dx = (float(v) for v in spacing)
+    ry = min(my // 2, int(_RADIUS_PER_RANGE * practical_range / dy) + 1)
+    rx = min(mx // 2, int(_RADIUS_PER_RANGE * practical_range / dx) + 1)
+    f = field_tile((ry, rx), shape)
+    return (KERNEL_BUILD_BYTES * my * mx, 8 * (2 * ry + 1) * (2 * rx + 1),
+            FIELD_TILE_BYTES * (f + 4 * ry) * (f + 4 * rx))
+
+
+def check_range(practical_range: float, spacing, shape, source: str = "the DEM") -> None:
+    """Refuse a correlation range longer than the grid itself.
+
+    Error correlated over more than the whole grid is nearly one offset for
+    all of it, which moves no prominence, depth or flow path, while its
+    kernel is computed on a grid 16 ranges wide (memory growing with the
+    square of the range): such a range is refused, saying the longest that
+    is accepted, the grid's larger side in metres.
+
+    Raises
+    ------
+    OptionError
+        Naming ``range_m``, the grid's extent and what the kernel would need.
+    """
+    if not practical_range > 0:
+        return
+    dy, dx = (float(v) for v in spacing)
+    extent = max(shape[0] * dy, shape[1] * dx)
+    if practical_range > extent:
+        my, mx = periodic_shape(spacing, practical_range)
+        need = KERNEL_BUILD_BYTES * my * mx
+        raise OptionError(f"{source}: {{range_m}} {practical_range:g} m is longer than the grid's "
+                          f"extent ({extent:,.0f} m); error correlated over more than the whole "
+                          "grid is nearly one offset for all of it, and an offset moves no "
+                          "prominence, depth or flow path, while its kernel would need "
+                          f"{need / 2**30:,.1f} GiB to compute -- give a range of at most "
+                          f"{extent:,.0f} m", "range_m")

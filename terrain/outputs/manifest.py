@@ -11,7 +11,8 @@ from dataclasses import dataclass
 
 from ..layers import layers_of
 
-__all__ = ["OutputFile", "MANIFEST", "VECTOR_LAYERS", "file_names", "help_text"]
+__all__ = ["OutputFile", "MANIFEST", "VECTOR_LAYERS", "file_names", "help_text",
+           "replace_patterns"]
 
 
 @dataclass(frozen=True)
@@ -123,6 +124,12 @@ def file_names(command: str, ids=()) -> list[str]:
         elif ids or not f.needs_outlets:
             out.append(f.name)
     return out
+
+
+def replace_patterns(command: str) -> tuple[str, ...]:
+    """Glob patterns of ``command``'s per-outlet files (``{id}`` as ``*``): earlier
+    files matching them that a new set lacks are removed when it is published."""
+    return tuple(f.name.replace("{id}", "*") for f in MANIFEST[command] if "{id}" in f.name)
 
 
 def help_text(command: str) -> str:

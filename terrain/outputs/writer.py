@@ -45,11 +45,11 @@ from ..sweep import SENSITIVITY_COLUMN_KINDS, SWEEP_COLUMN_KINDS
 from ..version import __version__
 from . import plot
 from .caution import CAUTION
-from .manifest import MANIFEST, VECTOR_LAYERS
+from .manifest import MANIFEST, VECTOR_LAYERS, replace_patterns
 from .tables import rounded
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
-           "vector_descriptions", "published", "READ_SETTINGS"]
+           "vector_descriptions", "published", "READ_SETTINGS", "plain_text"]
 
 # how the DEM was read, as recorded in run.json: band, box, declared nodata,
 # the window of the file read, scale and offset applied, the file's own nodata
@@ -66,13 +66,26 @@ def published(command: Callable[[object], str]) -> Callable:
     def decorate(fn):
         @functools.wraps(fn)
         def wrapper(outdir, result, *args, **kwargs):
-            patterns = tuple(f.name.replace("{id}", "*") for f in MANIFEST[command(result)]
-                             if "{id}" in f.name)
-            with staged_outputs(outdir, replaces=patterns) as stage:
+            with staged_outputs(outdir, replaces=replace_patterns(command(result))) as stage:
                 return fn(stage, result, *args, **kwargs)
         return wrapper
 
     return decorate
+
+
+@contextlib.contextmanager
+def plain_text():
+    """Figures made and saved in this block show text as given: a ``$`` in an
+    outlet id or attribute is not matplotlib's math markup (an unbalanced one
+    would fail the figure), and a character the font lacks is drawn as a
+    box, not announced as a warning."""
+    import warnings
+
+    import matplotlib
+
+    with matplotlib.rc_context({"text.parse_math": False}), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", r"Glyph \d+ .*missing from", UserWarning)
+        yield
 
 
 def _now():
@@ -195,7 +208,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     with clock("tables"):
         write_frames(out / gpkg, features.frames, vector_descriptions(result, features.frames))
         write_csv(out / csv, rounded(features.table, COLUMN_KINDS, geographic=result.dem.geographic))
-    with clock("figures"):
+    with clock("figures"), plain_text():
         write_figure(out / "quicklook.png", plot.feature_map(result, features))
         write_figure(out / "ranking.png", plot.ranking_chart(result, features))
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
@@ -229,7 +242,7 @@ def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str 
             for name, frame in summary.frames.items():
                 write_csv(out / f"{name}.csv",
                           rounded(frame, FRAME_COLUMN_KINDS[name], geographic=result.dem.geographic))
-    with clock("figures"):
+    with clock("figures"), plain_text():
         write_figure(out / "quicklook.png", plot.catchment_map(result))
     job = result.job
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
@@ -258,7 +271,7 @@ def write_sweep(outdir: str | Path, result, *, input_path: str | None,
         write_csv(out / "sweep.csv", rounded(result.rows, SWEEP_COLUMN_KINDS, geographic=geographic))
         write_csv(out / "kernel_sensitivity.csv",
                   rounded(result.sensitivity, SENSITIVITY_COLUMN_KINDS, geographic=geographic))
-    with clock("figures"):
+    with clock("figures"), plain_text():
         write_figure(out / "sweep.png",
                      plot.sweep_figure(result, units=any_run.dem.vertical_units or "DEM units"))
     run = provenance(any_run, input_path=input_path, command_line=command_line, created=created,

@@ -11,11 +11,16 @@ DEM and error model reach each worker once, through the pool initialiser).
 (``scheduler="tcp://host:port"``) or to a ``LocalCluster`` started here; the
 context is scattered once and Dask reschedules the tasks of a worker that
 dies. A worker pool that cannot start or breaks ends the run with a
-:class:`~terrain.errors.WorkerError` at once; nothing waits forever.
+:class:`~terrain.errors.WorkerError` at once; nothing waits forever: on Dask
+(:class:`DaskWatch`) a cluster without workers for
+:data:`WORKER_WAIT_SECONDS` (none joined, or all left), a lost scheduler and
+a lost worker holding data the run needs are each one error, and Ctrl-C or
+SIGTERM ends the wait within :data:`POLL_SECONDS`.
 """
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import hashlib
 import re
@@ -28,14 +33,17 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import SchedulerError, WorkerError
+from ..errors import CairnError, SchedulerError, WorkerError
 from ..noise import ErrorSampler
 
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
-           "init_worker", "spawning"]
+           "init_worker", "spawning", "DaskWatch", "WORKER_WAIT_SECONDS", "POLL_SECONDS",
+           "close_dask", "quiet_dask"]
 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
+WORKER_WAIT_SECONDS = 60.0  # a Dask cluster without any worker (none joined, all left), at most
+POLL_SECONDS = 0.5  # waits on Dask look at signals, workers and the scheduler this often
 _ADDRESS = re.compile(r"^(?:(?P<scheme>[a-z]+)://)?(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)"
                       r":(?P<port>\d{1,5})/?$")
 _SCHEMES = ("tcp", "tls", "ws", "wss", "ucx")
@@ -286,6 +294,14 @@ def _recv(sock, n: int, deadline: float) -> bytes:
 
 
 def dask_client(scheduler: str | None, workers: int):
+    """A Dask client (and the LocalCluster started for it, or None) with at least
+    one worker, waited for at most :data:`WORKER_WAIT_SECONDS`.
+
+    Raises
+    ------
+    SchedulerError
+        The scheduler cannot be reached, or has no worker within the wait.
+    """
     import logging
 
     from distributed import Client, LocalCluster
@@ -294,48 +310,212 @@ def dask_client(scheduler: str | None, workers: int):
         check_scheduler_address(scheduler)
         _probe(scheduler)
         try:
-            return Client(scheduler, timeout=f"{HANDSHAKE_SECONDS:g}s"), None
+            client, cluster = Client(scheduler, timeout=f"{HANDSHAKE_SECONDS:g}s"), None
         except Exception as exc:  # distributed raises many classes for a bad peer
             raise _unreachable(scheduler, type(exc).__name__) from None
-    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                           dashboard_address=None, silence_logs=logging.ERROR)
-    return Client(cluster), cluster
+    else:
+        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                               dashboard_address=None, silence_logs=logging.ERROR)
+        client = Client(cluster)
+    try:
+        client.wait_for_workers(1, timeout=WORKER_WAIT_SECONDS)
+    except BaseException as exc:
+        close_dask(client, cluster)
+        if isinstance(exc, (TimeoutError, asyncio.TimeoutError)):
+            raise SchedulerError(f"{_where(scheduler)}: the Dask scheduler has no workers (none "
+                                 f"joined within {WORKER_WAIT_SECONDS:g} s); start workers for it "
+                                 "or drop {scheduler}", "scheduler") from None
+        if isinstance(exc, Exception):
+            raise DaskWatch(client, scheduler, lambda: False).error(exc) from None
+        raise
+    return client, cluster
+
+
+def close_dask(client, cluster) -> None:
+    """Close a client and its local cluster without waiting on a peer that is gone
+    (what Dask has to say about the waits it abandoned is collected here, quietly)."""
+    import gc
+
+    with quiet_dask():
+        with contextlib.suppress(Exception):
+            client.close(timeout=HANDSHAKE_SECONDS)
+        if cluster is not None:
+            with contextlib.suppress(Exception):
+                cluster.close(timeout=HANDSHAKE_SECONDS)
+        gc.collect()
+
+
+def _where(scheduler: str | None) -> str:
+    return scheduler or "the local Dask cluster"
+
+
+@contextlib.contextmanager
+def quiet_dask():
+    """distributed logs the tracebacks of a lost peer itself; cairn says what
+    happened in one line, so its loggers are silenced for the block."""
+    import logging
+
+    import distributed  # noqa: F401  (its loggers exist, with the levels its config gives them)
+
+    names = ["distributed", "asyncio"] + [n for n in logging.root.manager.loggerDict
+                                          if n.startswith("distributed.")]
+    loggers = [logging.getLogger(n) for n in names]
+    levels = [lg.level for lg in loggers]
+    for lg in loggers:
+        lg.setLevel(logging.CRITICAL + 1)
+    try:
+        yield
+    finally:
+        for lg, level in zip(loggers, levels):
+            lg.setLevel(level)
+
+
+class DaskWatch:
+    """Waits on Dask futures without ever hanging.
+
+    Every :data:`POLL_SECONDS` a wait looks at ``stop()`` (Ctrl-C, SIGTERM),
+    the scheduler's connection and the workers: a cluster without workers
+    for :data:`WORKER_WAIT_SECONDS`, or a scheduler that stays lost, ends the
+    wait with one :class:`~terrain.errors.WorkerError` or
+    :class:`~terrain.errors.SchedulerError`; so do the errors Dask raises for
+    a lost scheduler, a lost worker's data or a task that kept killing its
+    workers (:meth:`error`). The caller's checkpoint holds what was done.
+    """
+
+    def __init__(self, client, scheduler: str | None, stop: Callable[[], bool]):
+        self.client, self.scheduler, self.stop = client, scheduler, stop
+        self.since: float | None = None  # when the cluster was first seen without workers
+
+    def result(self, fut, *, on_stop: Callable[[], None] | None = None):
+        """``fut``'s result; ``on_stop()`` is called (it should raise) when ``stop()``
+        becomes true during the wait (default: raise KeyboardInterrupt). A result
+        that is done still has to be fetched from a worker, which may be gone:
+        the wait is the same."""
+        while True:
+            try:
+                return fut.result(timeout=POLL_SECONDS)
+            except (TimeoutError, asyncio.TimeoutError):
+                pass
+            except Exception as exc:
+                raise self.error(exc) from None
+            if self.stop():
+                (on_stop or _interrupt)()
+            self.check()
+
+    def first_done(self, futs) -> list | None:
+        """The futures of ``futs`` that are done, once at least one is; None when
+        ``stop()`` became true first. (Polled: ``distributed.wait`` would use the
+        process's default client, which need not be the one these belong to.)"""
+        while True:
+            t0 = time.monotonic()
+            while time.monotonic() - t0 < POLL_SECONDS:
+                done = [f for f in futs if f.done()]
+                if done:
+                    return done
+                if self.stop():
+                    return None
+                time.sleep(0.02)
+            self.check()
+
+    def check(self) -> None:
+        """Raise once the cluster has had no worker, or no scheduler connection,
+        for :data:`WORKER_WAIT_SECONDS`."""
+        connected = getattr(self.client, "status", "running") == "running"
+        workers = 0
+        if connected:
+            try:
+                workers = len(self.client.nthreads())
+            except Exception:
+                connected = False
+        now = time.monotonic()
+        if connected and workers:
+            self.since = None
+            return
+        self.since = self.since if self.since is not None else now
+        if now - self.since < WORKER_WAIT_SECONDS:
+            return
+        if not connected:
+            raise self._lost("no connection")
+        raise WorkerError(f"{_where(self.scheduler)}: all Dask workers left the cluster (none for "
+                          f"{WORKER_WAIT_SECONDS:g} s); what was done is in the checkpoint -- "
+                          "start workers and rerun with {resume}", "resume")
+
+    def _lost(self, why: str) -> SchedulerError:
+        return SchedulerError(f"{_where(self.scheduler)}: lost the Dask scheduler ({why}); what "
+                              "was done is in the checkpoint -- rerun with {resume} when the "
+                              "scheduler is back", "resume")
+
+    def error(self, exc: BaseException) -> BaseException:
+        """The one-line error for what Dask raised while waiting (cairn's own
+        errors raised in a task, and bugs, come back unchanged)."""
+        if isinstance(exc, CairnError):
+            return exc
+        name = type(exc).__name__
+        text = str(exc).strip().splitlines()[0][:160] if str(exc).strip() else name
+        if name in ("FutureCancelledError", "FuturesCancelledError", "CancelledError"):
+            if "scheduler-connection-lost" in str(exc) or getattr(self.client, "status",
+                                                                  "running") != "running":
+                return self._lost("the connection closed")
+            why = re.search(r"for reason: ([^.\n]+)", str(exc))
+            return WorkerError(f"{_where(self.scheduler)}: a Dask worker was lost with data the "
+                               "run needed (its tasks were cancelled"
+                               f"{': ' + why.group(1).strip() if why else ''}); what was done is "
+                               "in the checkpoint -- rerun with {resume}", "resume")
+        if name == "KilledWorker":
+            return WorkerError(f"{_where(self.scheduler)}: a task kept ending its Dask workers "
+                               "(killed, or out of memory); give the workers more memory, use a "
+                               "smaller {block}, and rerun with {resume}", "block", "resume")
+        if name == "CommClosedError" or (isinstance(exc, OSError)
+                                         and type(exc).__module__.startswith("distributed")):
+            return self._lost(text)
+        return exc
+
+
+def _interrupt() -> None:
+    raise KeyboardInterrupt
 
 
 def _dask(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
-    from distributed import as_completed
+    with quiet_dask():
+        client, cluster = dask_client(scheduler, workers)
+        try:
+            yield from _dask_chunks(client, DaskWatch(client, scheduler, stop), ctx, plan,
+                                    workers, stop)
+        finally:
+            close_dask(client, cluster)
 
-    client, cluster = dask_client(scheduler, workers)
+
+def _dask_chunks(client, watch: DaskWatch, ctx, plan, workers, stop) -> Iterator[tuple]:
+    """The whole-grid Dask backend's chunks, in completion order (see :func:`_dask`)."""
     try:
-        with client:
-            nworkers = max(1, len(client.scheduler_info().get("workers", {})) or workers)
-            ctx_f = client.scatter(ctx, broadcast=True)
-            token = hashlib.sha1(f"{id(ctx)}-{time.time_ns()}".encode()).hexdigest()[:10]
-            ac = as_completed()
-            window = _Window(2 * nworkers)
-            pending: dict = {}
+        nworkers = max(1, len(client.scheduler_info().get("workers", {})) or workers)
+        ctx_f = client.scatter(ctx, broadcast=True)
+    except Exception as exc:
+        raise watch.error(exc) from None
+    token = hashlib.sha1(f"{id(ctx)}-{time.time_ns()}".encode()).hexdigest()[:10]
+    window = _Window(2 * nworkers)
+    pending: dict = {}  # future -> start
 
-            def top_up():
-                while window.room(pending) and not stop():
-                    nxt = next(plan, None)
-                    if nxt is None:
-                        return
-                    fut = client.submit(run_chunk, ctx_f, *nxt, key=f"cairn-{token}-{nxt[0]}",
-                                        retries=3, pure=False)
-                    pending[fut.key] = nxt[0]
-                    ac.add(fut)
+    def top_up():
+        while window.room(pending) and not stop():
+            nxt = next(plan, None)
+            if nxt is None:
+                return
+            pending[client.submit(run_chunk, ctx_f, *nxt, key=f"cairn-{token}-{nxt[0]}",
+                                  retries=3, pure=False)] = nxt[0]
 
-            top_up()
-            for fut in ac:
-                res = fut.result()
-                del pending[fut.key]
-                fut.release()
-                window.yielded(res[0])
-                yield res
-                top_up()
-    finally:
-        if cluster is not None:
-            cluster.close()
+    top_up()
+    while pending:
+        done = watch.first_done(list(pending))
+        if done is None:  # Ctrl-C or SIGTERM: the run saves what it folded
+            return
+        for fut in sorted(done, key=pending.get):
+            res = watch.result(fut)
+            del pending[fut]
+            fut.release()
+            window.yielded(res[0])
+            yield res
+        top_up()
 
 
 BACKENDS: dict[str, Callable[..., Iterator[tuple]]] = {

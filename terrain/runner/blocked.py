@@ -40,12 +40,21 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import OptionError, WorkerError
+from ..errors import CairnError, OptionError, WorkerError
 from ..io import save_npy, scratch_folder
 from ..noise import ErrorSampler
-from .backends import broken_pool, dask_client, init_worker, spawning
+from .backends import (
+    DaskWatch,
+    broken_pool,
+    close_dask,
+    dask_client,
+    init_worker,
+    quiet_dask,
+    spawning,
+)
 
-__all__ = ["BlockedContext", "blocked_runner", "check_block", "MIN_BLOCK", "scratch_arrays"]
+__all__ = ["BlockedContext", "blocked_runner", "check_block", "MIN_BLOCK", "scratch_arrays",
+           "effective_block"]
 
 MIN_BLOCK = 16  # cells a side, at least
 
@@ -60,6 +69,19 @@ def check_block(block: int | None, job=None) -> None:
     if job is not None and getattr(job, "kind", None) not in ("peaks", "depressions"):
         raise OptionError("{block} is for peaks and depressions runs (catchments need the "
                           "whole grid's flow directions)", "block")
+
+
+def effective_block(block: int | None, shape) -> int | None:
+    """The block side a run uses: ``block``, but no larger than the grid's longer
+    side (a block larger than the grid is one block, whatever number was
+    given; the layers do not depend on it) and never below :data:`MIN_BLOCK`.
+    Values that are not a whole number are returned for :func:`check_block`
+    to refuse."""
+    if block is None or isinstance(block, bool) or not isinstance(block, (int, np.integer)):
+        return block
+    if block < MIN_BLOCK:
+        return block
+    return int(max(MIN_BLOCK, min(int(block), max(int(v) for v in shape))))
 
 
 @dataclass
@@ -92,7 +114,10 @@ def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
     if not to_files and not on_disk:
         yield z, labels, None
         return
-    with scratch_folder(scratch) as folder:
+    cells = int(np.prod(z.shape))
+    need = 4 * cells if on_disk else int(z.nbytes) + int(np.asarray(labels).nbytes) + 4 * cells
+    with scratch_folder(scratch, need=need, what=f"{cells:,} cells of scratch files (the DEM, "
+                        "region labels and a realisation)") as folder:
         if on_disk:
             yield z.path, labels.path, os.path.join(folder, "realisation.npy")
             return
@@ -101,26 +126,29 @@ def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
                os.path.join(folder, "realisation.npy"))
 
 
-def _ahead(submit, fn, items, ahead: int):
+def _ahead(submit, fn, items, ahead: int, result=None):
     """``fn`` over ``items`` through ``submit(fn, item) -> future``, results in
     order, at most ``ahead`` tasks submitted and not yet taken: results are
     held only until the caller takes them (a block's counts are 4 bytes per
-    block cell)."""
+    block cell). ``result(future)`` waits for one (default: ``future.result()``)."""
     pending: collections.deque = collections.deque()
     it = iter(items)
     for item in itertools.islice(it, ahead):
         pending.append(submit(fn, item))
     while pending:
-        result = pending.popleft().result()
+        fut = pending.popleft()
+        result_ = fut.result() if result is None else result(fut)
         for item in itertools.islice(it, 1):
             pending.append(submit(fn, item))
-        yield result
+        yield result_
 
 
 @contextlib.contextmanager
-def _block_map(backend: str, workers: int, scheduler: str | None):
+def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: False):
     """``map(fn, windows)`` running the block tasks on ``backend``: an iterator
-    of the results in order, a few tasks ahead of the caller."""
+    of the results in order, a few tasks ahead of the caller. On Dask a wait
+    never hangs (:class:`~terrain.runner.backends.DaskWatch`): ``stop()``
+    turning true (Ctrl-C, SIGTERM) interrupts it at once."""
     if backend == "serial":
         yield builtins.map
         return
@@ -150,22 +178,22 @@ def _block_map(backend: str, workers: int, scheduler: str | None):
                     proc.kill()
             pool.shutdown(wait=True, cancel_futures=True)
         return
-    client, cluster = dask_client(scheduler, workers)
-    try:
-        with client:
+    with quiet_dask():
+        client, cluster = dask_client(scheduler, workers)
+        watch = DaskWatch(client, scheduler, stop)
+        try:
             def dmap(fn, items):
+                submit = lambda f, x: client.submit(f, x, pure=False, retries=3)  # noqa: E731
                 try:
-                    yield from _ahead(lambda f, x: client.submit(f, x, pure=False, retries=3),
-                                      fn, items, 2 * workers)
+                    yield from _ahead(submit, fn, items, 2 * workers, watch.result)
                 except Exception as exc:
-                    if isinstance(exc, (KeyboardInterrupt, OptionError)):
+                    if isinstance(exc, (KeyboardInterrupt, CairnError)):
                         raise
                     raise WorkerError(f"a block task failed on the Dask cluster "
                                       f"({type(exc).__name__}: {exc})") from None
             yield dmap
-    finally:
-        if cluster is not None:
-            cluster.close()
+        finally:
+            close_dask(client, cluster)
 
 
 def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
@@ -177,7 +205,7 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
 
     job = ctx.job
     shape = tuple(ctx.sampler.shape)
-    with _block_map(backend, workers, scheduler) as bmap:
+    with _block_map(backend, workers, scheduler, stop) as bmap:
         for a, b in plan:
             if stop():
                 return

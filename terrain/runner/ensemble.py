@@ -28,11 +28,20 @@ import numpy as np
 
 from ..dem import Dem
 from ..errors import MemoryGuardError, OptionError
-from ..io import CountStore, available_memory, remove_orphan_scratch
+from ..io import CountStore, available_memory, hold_checkpoint, remove_orphan_scratch
 from ..noise import ErrorModel, ErrorSampler
+from ..noise.fields import check_range
 from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
-from .blocked import BlockedContext, blocked_runner, check_block, scratch_arrays
-from .checkpoint import load_checkpoint, prepare_checkpoint, run_params, save_checkpoint
+from .blocked import BlockedContext, blocked_runner, check_block, effective_block, scratch_arrays
+from .checkpoint import (
+    check_resume,
+    counts_path,
+    load_checkpoint,
+    prepare_checkpoint,
+    run_identity,
+    run_params,
+    save_checkpoint,
+)
 from .plan import InOrder, StopRule, chunk_size, chunks
 
 __all__ = ["run_ensemble", "RunResult", "RunInterrupted", "Execution"]
@@ -278,6 +287,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
        Analysis. Chapman & Hall (kernel smoothing by convolution).
     """
     refuse_in_bootstrapping_child()
+    block = effective_block(block, dem.shape)
     ex = Execution(realisations, seed, backend, workers, scheduler, chunk, checkpoint,
                    checkpoint_every, resume, target_se, check_every, min_realisations,
                    memory_check, block)
@@ -286,19 +296,30 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
         raise OptionError(f"{dem.source}: a DEM kept on disk is run block by block; give "
                           "{block}", "block")
     remove_orphan_scratch()  # what a killed blocked run left in the temporary folder
+    if checkpoint is not None:  # its folder can be written, before its lock is made there
+        prepare_checkpoint(checkpoint, resume=resume)
+    with hold_checkpoint(checkpoint) if checkpoint is not None else contextlib.nullcontext():
+        return _run(dem, job, model, ex, progress)
+
+
+def _run(dem: Dem, job, model: ErrorModel, ex: Execution, progress) -> RunResult:
+    """:func:`run_ensemble` once the execution is validated and the checkpoint held."""
+    realisations, block, checkpoint = ex.realisations, ex.block, ex.checkpoint
+    stop = StopRule(ex.target_se, ex.check_every, ex.min_realisations)
     t0 = time.perf_counter()
     st = _start(dem, job, model, ex)
     acc, start = st.acc, st.acc.n
-    stop = StopRule(target_se, check_every, min_realisations)
     # blocked mode takes realisations one at a time (its tasks are the blocks), so
     # Ctrl-C stops after the realisation under way
-    size = chunk or (1 if block is not None else chunk_size(
-        start, realisations, workers=ex.n_workers, checkpoint_every=checkpoint_every,
-        check_every=check_every if stop.active else None))
+    size = ex.chunk or (1 if block is not None else chunk_size(
+        start, realisations, workers=ex.n_workers, checkpoint_every=ex.checkpoint_every,
+        check_every=ex.check_every if stop.active else None))
     flag = {"stop": False, "interrupted": False}
-    saver = _Saver(checkpoint, checkpoint_every, acc, st.params, resumed=resume)
-    watch = LogWatch(dem.source, realisations, stop if stop.active else None) if memory_check \
-        else None
+    layout = {"counts_on_disk": bool(getattr(acc, "on_disk", False)), "block": block}
+    saver = _Saver(checkpoint, ex.checkpoint_every, acc, st.params, resumed=ex.resume,
+                   layout=layout)
+    watch = LogWatch(dem.source, realisations, stop if stop.active else None) \
+        if ex.memory_check else None
 
     def on_fold(log=None):
         if progress:
@@ -316,7 +337,7 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
     wall = time.perf_counter() - t0
     info = {"backend": ex.resolved_backend, "block": block,
             "workers": ex.n_workers if ex.resolved_backend != "serial" else 1,
-            "scheduler": scheduler, "wall_seconds": round(wall, 3),
+            "scheduler": ex.scheduler, "wall_seconds": round(wall, 3),
             "realisations_per_second": round((acc.n - start) / wall, 3) if wall > 0 else None,
             "resumed_from": start, "stopped_early": stopped_early,
             "stop_statistic": acc.stop_statistic() if stop.active else None,
@@ -353,13 +374,20 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     if ex.checkpoint is not None:
         prepare_checkpoint(ex.checkpoint, resume=ex.resume)
     used = job.defaults_used()
-    job = job.resolved(dem, model, **({"block": ex.block} if dem.on_disk else {}))
     w_m, h_m = dem.cell_metres()
-    sampler = ErrorSampler(model, dem.shape, (float(np.mean(h_m)), float(np.mean(w_m))))
+    spacing = (float(np.mean(h_m)), float(np.mean(w_m)))
+    if model.correlated:
+        check_range(model.range_m, spacing, dem.shape, dem.source or "the DEM")
+    job = job.resolved(dem, model, **({"block": ex.block} if dem.on_disk else {}))
     params = run_params(dem, job, model, ex.seed)
+    on_disk = dem.on_disk and getattr(job, "kind", None) == "depressions"
+    if ex.resume:  # before anything is opened: the checkpoint is this run's, in this layout
+        check_resume(ex.checkpoint, params, realisations=ex.realisations,
+                     counts_on_disk=on_disk, block=ex.block)
+    sampler = ErrorSampler(model, dem.shape, spacing)
     if dem.on_disk:  # out of core: the DEM's file is read by window; counts go to disk
         z = dem.z
-        acc = job.accumulator(dem.shape[0] * dem.shape[1], **_count_store(dem, job, ex))
+        acc = job.accumulator(dem.shape[0] * dem.shape[1], **_count_store(dem, job, ex, params))
     else:
         z = np.where(dem.nodata, np.nan, dem.z).astype(np.float32)
         acc = job.accumulator(z.size)
@@ -368,15 +396,16 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     return _Start(job, used, sampler, z, params, acc)
 
 
-def _count_store(dem: Dem, job, ex: Execution) -> dict:
+def _count_store(dem: Dem, job, ex: Execution, params: dict) -> dict:
     """The on-disk ponding counts of an out-of-core depressions run: beside the
     checkpoint (``<checkpoint>.counts``, kept for a resume) or in the DEM's
-    scratch folder."""
+    scratch folder; the store carries the run's identity."""
     if getattr(job, "kind", None) != "depressions":
         return {}
-    path = (f"{ex.checkpoint}.counts" if ex.checkpoint is not None
+    path = (counts_path(ex.checkpoint) if ex.checkpoint is not None
             else os.path.join(dem.scratch, "counts.zarr"))
-    return {"ponding": CountStore(path, dem.shape, int(ex.block), resume=ex.resume)}
+    return {"ponding": CountStore(path, dem.shape, int(ex.block), resume=ex.resume,
+                                  run=run_identity(params), checkpoint=ex.checkpoint)}
 
 
 LOG_CHECK_BYTES = 64 * 2**20  # the log watch looks at the memory after each 64 MiB of log
@@ -421,8 +450,10 @@ class LogWatch:
 class _Saver:
     """Saves the checkpoint every ``every`` realisations, on interrupt and at the end."""
 
-    def __init__(self, path, every: int, acc, params: dict, *, resumed: bool = False):
+    def __init__(self, path, every: int, acc, params: dict, *, resumed: bool = False,
+                 layout: dict | None = None):
         self.path, self.every, self.acc, self.params = path, every, acc, params
+        self.layout = layout
         self.last = acc.n
         self.has_file = resumed  # a checkpoint of this run exists at ``path``
 
@@ -433,6 +464,6 @@ class _Saver:
     def save(self, only_if_new: bool = False) -> None:
         if self.path is None or (only_if_new and self.acc.n == self.last):
             return
-        save_checkpoint(self.path, self.acc, self.params)
+        save_checkpoint(self.path, self.acc, self.params, self.layout)
         self.last = self.acc.n
         self.has_file = True

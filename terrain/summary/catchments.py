@@ -70,9 +70,40 @@ def _attach(frame: pd.DataFrame, outlet_index, attributes) -> pd.DataFrame:
     if attributes is None or len(attributes.columns) == 0:
         return frame
     attrs = attributes.reset_index(drop=True).iloc[list(outlet_index)].reset_index(drop=True)
-    taken = set(frame.columns) | {"geometry"}
-    attrs.columns = [f"input_{c}" if str(c) in taken else str(c) for c in attrs.columns]
+    attrs.columns = attribute_names(frame.columns, attributes.columns)
     return pd.concat([frame.reset_index(drop=True), attrs], axis=1)
+
+
+# names a GeoPackage layer reserves (its feature id and geometry columns)
+_RESERVED = ("geometry", "geom", "fid")
+
+
+def attribute_names(ours, theirs) -> list[str]:
+    """Names for the outlets file's columns ``theirs`` beside a table's columns
+    ``ours``: each keeps its name unless that is taken -- by one of ours, a
+    name a GeoPackage reserves, or an earlier attribute, compared without
+    case as SQLite does -- and then becomes ``input_<name>``, or
+    ``input_<name>_2``, ``_3``, ... until it is free (a file holding both
+    ``x`` and ``input_x``, e.g. cairn's own ``outlets.csv`` fed back, keeps both).
+
+    Examples
+    --------
+    >>> attribute_names(["outlet_id", "x"], ["X", "input_x", "name", "Name"])
+    ['input_X_2', 'input_x', 'name', 'input_Name']
+    """
+    taken = {str(c).lower() for c in ours} | set(_RESERVED)
+    wanted = [str(c) for c in theirs]
+    out = []
+    for i, name in enumerate(wanted):
+        # a name that is free stays; later attributes' own names are kept free for them
+        later = {w.lower() for w in wanted[i + 1:]}
+        new, k = name, 1
+        while new.lower() in taken or (new != name and new.lower() in later):
+            new = f"input_{name}" if k == 1 else f"input_{name}_{k}"
+            k += 1
+        taken.add(new.lower())
+        out.append(new)
+    return out
 
 
 def catchment_table(result, attributes=None, *, role: str = "membership"):

@@ -50,12 +50,15 @@ def _percent(p: float) -> str:
 
 def _spread(r, clusters) -> str:
     """5-95% over realisations; for a bimodal figure each cluster's 5-95%."""
+    from terrain.outputs.plot import figure_text
+
     if not r["bimodal"] or clusters is None or r["feature_id"] not in clusters.index:
         return f"{r['p05']:.1f}-{r['p95']:.1f}"
     c = clusters.loc[r["feature_id"]]
 
-    def one(lo, hi):
-        return f"{lo:.1f}" if round(lo, 1) == round(hi, 1) else f"{lo:.1f}-{hi:.1f}"
+    def one(lo, hi):  # three significant digits: two clusters are far apart
+        a, b = figure_text(lo), figure_text(hi)
+        return a if a == b else f"{a}-{b}"
 
     return f"{one(c['low_p05'], c['low_p95'])} | {one(c['high_p05'], c['high_p95'])}"
 
@@ -76,11 +79,12 @@ def print_summary(table, *, kind: str, units: str, n: int, outdir, caution: str,
     rows, left = ranked_rows(table, share, top)
     t = Table(title=f"{what.capitalize()} ranking 1st-10th in at least {RANK_MASS:.0%} of "
                     f"realisations, by median rank; {figure} in {units} ({n} realisations)",
-              title_justify="left")
+              title_justify="left", show_edge=False)
     for col in ("", "id", "on DEM", "median\nrank", "ranks held", "P(top 3)", "expected",
                 "5-95%", "P(counted)", "edge-\nlimited", "MC\ns.e."):
         t.add_column(col, justify="left" if col in ("", "ranks held") else "right",
-                     style="dim" if col == "MC\ns.e." else None, no_wrap=col == "5-95%")
+                     style="dim" if col == "MC\ns.e." else None,
+                     no_wrap=col in ("5-95%", "ranks held"))
     for _, g in rows.groupby("group", sort=False):
         for i, (_, r) in enumerate(g.iterrows()):
             edge, med = r["edge_limited_share"], r["median_rank"]

@@ -221,12 +221,13 @@ def test_rank_chart_shows_both_crowns_in_one_band(crowns):
     ticks = [t.get_text() for t in left.get_yticklabels()]
     ia, ib = ticks.index(f"#{a}"), ticks.index(f"#{b}")
     assert ia == ib + 1
-    # a shaded band spans exactly their two rows, on both panels
+    # a shaded band spans their two rows and no other, on both panels
     r = fig.canvas.get_renderer()
     for ax in (left, right):
-        y0, y1 = sorted(ax.transData.transform([(0, ib - 0.5), (0, ia + 0.5)])[:, 1])
+        rows = ax.transData.transform([(0, y) for y in np.arange(len(ticks))])[:, 1]
         spans = [p.get_window_extent(r) for p in ax.patches if p.get_facecolor()[3] > 0]
-        assert any(abs(e.y0 - y0) < 1 and abs(e.y1 - y1) < 1 for e in spans)
+        covered = [{i for i, y in enumerate(rows) if e.y0 < y < e.y1} for e in spans]
+        assert {ia, ib} in covered
     group = [t.get_text() for t in right.texts if t.get_gid() == "group_label"]
     pb = feat.rank_share.loc[b, 2]
     assert group == [f"2nd: {plot.share_text(pb)[:-1]} | {plot.share_text(1 - pb)}"]
@@ -275,8 +276,8 @@ def usgs_runs(tmp_path_factory, usgs_dem):
     dem = write_tif(tmp / "usgs.tif", usgs_dem.astype(np.int16), units="metre",
                     transform=from_origin(700000.0, 4030000.0, 90.0, 90.0))
     out = {}
-    for cmd, args in (("peaks", ("--min-prominence", "30", "-n", "60")),
-                      ("depressions", ("--range", "500", "-n", "30"))):
+    for cmd, args in (("peaks", ("--min-prominence", "30", "-n", "40")),
+                      ("depressions", ("--range", "500", "-n", "20"))):
         res = CliRunner().invoke(cli, [cmd, str(dem), "-o", str(tmp / cmd), "--rmse", "2.5",
                                        "--workers", "2", "--seed", "0", *args],
                                  catch_exceptions=False)
@@ -331,8 +332,9 @@ def test_real_dem_polygon_layers_have_no_null_geometry(usgs_runs, cmd):
         assert frame.geometry.is_valid.all() and (frame.geometry.area > 0).all()
     if cmd == "depressions":  # where the ponded extent is empty: the most credited pit cell
         pits = pyogrio.read_dataframe(gpkg, layer="pits")
-        fallback = pits[pits.extent_is_pit_cell.astype(bool)]
+        fallback = pits[pits.extent_is_pit_cell.astype(bool)].reset_index(drop=True)
         assert len(fallback) and np.allclose(fallback.geometry.area, 90.0 * 90.0)
-        assert fallback.geometry.contains(
-            pyogrio.read_dataframe(gpkg, layer="pit_points").set_index("feature_id")
-            .geometry.loc[fallback.feature_id].reset_index(drop=True)).all()
+        points = pyogrio.read_dataframe(gpkg, layer="pit_points").set_index("feature_id")
+        inside = fallback.geometry.contains(
+            points.geometry.loc[fallback.feature_id].reset_index(drop=True), align=False)
+        assert inside.all()

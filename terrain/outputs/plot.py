@@ -193,7 +193,7 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     then expected figure): each names its features with their figure on the
     DEM as given (``*``: bimodal) and P(ranks first), and for a group the
     place its members trade and each one's share; members of a group are
-    tied by a dashed line. Never a mean: a bimodal mean is no outcome.
+    tied by a dotted line. Never a mean: a bimodal mean is no outcome.
     """
     dem, job, table = result.dem, result.job, features.table
     kind = _KIND[job.kind]
@@ -252,14 +252,14 @@ def _map_subtitle(kind: dict, table, drawn) -> str:
             f"realisations" + (f" or labelled ({more} more in the table)" if more else "")
             + f". Labels, one per group, in table order: #id, {kind['figure']} on the DEM as "
             f"given (* bimodal: two clusters of outcomes, so no mean is shown), P(ranks first); "
-            f"a group (dashed line: features that trade a place or share {place}) gives the "
+            f"a group (dotted line: features that trade a place or share {place}) gives the "
             "place its members trade and each one's share.")
 
 
 def _draw_features(frame: MapFrame, features: FeatureSummary, drawn, kind: dict, dem) -> None:
     """Polygons, summit / pit and key col / spill markers of the ``drawn`` rows, each
     key col or spill point tied to its feature by a thin line, a group's members
-    by a dashed one."""
+    by a dotted one."""
     job_kind = "peaks" if kind["feature"] == "summit" else "depressions"
     geoms = features.frames[LAYER_NAMES[job_kind][0]].set_index("feature_id").geometry
     geoms = [geoms.get(i) for i in drawn["feature_id"]]
@@ -279,7 +279,7 @@ def _draw_features(frame: MapFrame, features: FeatureSummary, drawn, kind: dict,
         x0, y0 = members["x"].iloc[0], members["y"].iloc[0]
         ties += [((x0, y0), (x, y)) for x, y in zip(members["x"].iloc[1:], members["y"].iloc[1:])]
     place = "a top" if job_kind == "peaks" else "a floor"
-    frame.lines(ties, colour=INK, lw=1.0, ls="dashed",
+    frame.lines(ties, colour=INK, lw=1.3, ls="dotted",
                 label=f"one group: features that trade a place or share {place}")
     frame.points(drawn["x"], drawn["y"], marker=kind["birth"][0], face="white",
                  label=kind["birth"][1], size=size)
@@ -498,7 +498,8 @@ def _ranges(ax, rows, kind, unit, clusters) -> None:
             values += [c[f"{side}_p05"].to_numpy(float), c[f"{side}_p95"].to_numpy(float)]
         handles.append(ax.hlines([], [], [], color=colour, lw=8,
                                  label="bimodal: each cluster's 5-95%, its share"))
-    log = _x_scale(ax, np.concatenate(values))
+    values = np.concatenate(values)
+    log = _x_scale(ax, values, room=3.0 if split.any() else 1.6, zero=bool((values <= 0).any()))
     if split.any():
         _cluster_shares(ax, y[split], c, log, colour)
     mean, = ax.plot(rows["expected"][whole], y[whole], ls="none", marker="o", ms=7, mfc=INK,
@@ -511,8 +512,9 @@ def _ranges(ax, rows, kind, unit, clusters) -> None:
     given, = ax.plot(rows["unperturbed"], y, ls="none", marker="D", ms=7, mfc="none",
                      mec=kind["accent"], mew=1.8, label="on the DEM as given")
     handles.append(given)
-    ax.set_xlabel(f"{kind['figure']} ({unit}{', log scale' if log else ''}; 0 where not "
-                  "counted)", fontsize=FONT_PT + 1)
+    ax.set_xlabel(f"{kind['figure']} ({unit}{', log scale' if log else ''}"
+                  f"{'; 0 where not counted' if (values <= 0).any() else ''})",
+                  fontsize=FONT_PT + 1)
     ax.set_yticks(y, [f"#{i}" for i in rows["feature_id"]])
     ax.tick_params(labelsize=FONT_PT)
     ax.tick_params(which="minor", axis="y", length=0)
@@ -522,24 +524,29 @@ def _ranges(ax, rows, kind, unit, clusters) -> None:
               columnspacing=1.0)
 
 
-def _x_scale(ax, values: np.ndarray) -> bool:
+def _x_scale(ax, values: np.ndarray, room: float = 1.6, zero: bool = False) -> bool:
     """A log x axis when the positive values span more than 20 times; returns
-    whether. A log axis keeps a strip at its left for the figure 0 (not
-    counted), marked off by a dotted line and ticked "0"."""
+    whether. With ``zero`` a log axis keeps a strip at its left for the figure
+    0 (not counted), marked off by a dotted line and ticked "0"; ``room`` times
+    the largest value is left on its right (for the clusters' shares)."""
     positive = values[np.isfinite(values) & (values > 0)]
     log = bool(positive.size) and positive.max() / positive.min() > 20
+    if not log and positive.size and room > 1.6:
+        ax.set_xlim(right=positive.max() * (1 + 0.12 * room))
     if log:
         from matplotlib.ticker import FixedLocator, FuncFormatter, LogLocator, NullLocator
 
-        lo, hi = positive.min() / 1.6, positive.max() * 1.6
-        zero = lo / ZERO_STRIP
+        lo, hi = positive.min() / 1.6, positive.max() * room
+        left = lo / ZERO_STRIP if zero else lo
         ax.set_xscale("log")
-        ax.set_xlim(zero, hi)
+        ax.set_xlim(left, hi)
         ticks = [t for t in LogLocator(subs=(1.0, 2.0, 5.0)).tick_values(lo, hi) if lo <= t <= hi]
-        ax.xaxis.set_major_locator(FixedLocator([math.sqrt(zero * lo)] + ticks))
-        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, i: "0" if i == 0 else f"{v:g}"))
+        ax.xaxis.set_major_locator(FixedLocator([math.sqrt(left * lo)] * zero + ticks))
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, i: "0" if zero and i == 0
+                                                   else f"{v:g}"))
         ax.xaxis.set_minor_locator(NullLocator())
-        ax.axvline(lo, color="0.5", lw=0.8, ls="dotted", zorder=1)
+        if zero:
+            ax.axvline(lo, color="0.5", lw=0.8, ls="dotted", zorder=1)
     return log
 
 
@@ -573,7 +580,7 @@ def _group_bands(axes, rows, share, place: str) -> None:
         end = start + len(members) - 1
         if end > start:
             for ax in axes:
-                ax.axhspan(start - 0.5, end + 0.5, color=GROUP_BAND, zorder=0.1, lw=0)
+                ax.axhspan(start - 0.46, end + 0.46, color=GROUP_BAND, zorder=0.1, lw=0)
             traded = traded_place(members, share)
             text = f"{ordinal(traded[0])}: {_shares(traded[1])}" if traded else place
             right.annotate("", xy=(1.02, start - 0.3), xytext=(1.02, end + 0.3),

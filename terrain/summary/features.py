@@ -506,7 +506,8 @@ def rank_shares(fm: FigureMatrix, ids: np.ndarray, kmax: int = RANKS) -> pd.Data
 def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
     """Shapely (multi)polygons of the cells labelled with each of ``ids``, in CRS
     coordinates; ``labels`` is an array or anything read by window
-    (``labels[r0:r1, c0:c1]``), traced window by window and joined."""
+    (``labels[r0:r1, c0:c1]``), traced window by window, joined and made valid
+    (None for an id without cells)."""
     from rasterio.features import shapes
     from rasterio.transform import Affine
     from shapely.geometry import shape
@@ -524,7 +525,24 @@ def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
         for geom, value in shapes(lab, mask=mask, connectivity=connectivity,
                                   transform=t * Affine.translation(c0, r0)):
             parts[where[int(value)]].append(shape(geom))
-    return [unary_union(p) if p else None for p in parts]
+    return [_valid(unary_union(p)) if p else None for p in parts]
+
+
+def _valid(geom):
+    """``geom`` made valid (OGC simple features): cells of an 8-connected region that
+    touch only at a corner trace a ring that touches itself, which GEOS calls a
+    self-intersection; such a ring is split at the corner into polygons that touch
+    there. Only polygonal parts are kept."""
+    import shapely
+    from shapely.geometry import MultiPolygon
+
+    if geom.is_valid:
+        return geom
+    fixed = shapely.make_valid(geom)
+    parts = [g for g in getattr(fixed, "geoms", [fixed]) if g.geom_type in ("Polygon",
+                                                                          "MultiPolygon")]
+    flat = [q for g in parts for q in getattr(g, "geoms", [g])]
+    return flat[0] if len(flat) == 1 else MultiPolygon(flat)
 
 
 def _top_polygons(dem: Dem, job, table: pd.DataFrame, top) -> tuple[list, np.ndarray]:

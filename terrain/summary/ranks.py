@@ -362,5 +362,6 @@ def traded_place(rows: pd.DataFrame, share: pd.DataFrame | None) -> tuple[int, l
                                                      >= TRADE_JOINT)
     if not trade.any():
         return None
-    k = int(np.argmax(np.where(trade, m.sum(axis=0), -1.0)))
+    total = np.where(trade, m.sum(axis=0), -1.0)
+    k = int(np.flatnonzero(total >= total.max() - 0.005)[0])  # near-ties: the better place
     return int(share.columns[k]), m[:, k].tolist()

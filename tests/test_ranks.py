@@ -229,8 +229,8 @@ def test_rank_chart_shows_both_crowns_in_one_band(crowns):
         covered = [{i for i, y in enumerate(rows) if e.y0 < y < e.y1} for e in spans]
         assert {ia, ib} in covered
     group = [t.get_text() for t in right.texts if t.get_gid() == "group_label"]
-    pb = feat.rank_share.loc[b, 2]
-    assert group == [f"2nd: {plot.share_text(pb)[:-1]} | {plot.share_text(1 - pb)}"]
+    pb, pa = feat.rank_share.loc[b, 2], feat.rank_share.loc[a, 2]
+    assert group == [f"2nd: {plot.share_text(pb)[:-1]} | {plot.share_text(pa)}"]
     # the cells of the rank matrix carry the same shares
     cells = {t.get_gid(): t.get_text() for t in right.texts if t.get_gid()}
     assert cells[f"p_rank_{b}_2"] == f"{pb:.2f}"

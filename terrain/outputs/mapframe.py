@@ -86,6 +86,12 @@ LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center
 ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
 LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
 ADJUST_STARTS = 4  # adjustText placements before the search for a free spot
+#: where the scale bar and the north arrow may go, in order of preference: corners, then
+#: the middles of the edges (matplotlib's legend location codes for the bar)
+PLACES = ("lower left", "lower right", "upper left", "upper right", "lower center",
+          "upper center", "center left", "center right")
+BAR_CODES = {"upper right": 1, "upper left": 2, "lower left": 3, "lower right": 4,
+             "center left": 6, "center right": 7, "lower center": 8, "upper center": 9}
 
 
 def palette(name: str) -> Colormap:
@@ -372,6 +378,13 @@ class MapFrame:
         self.handles.append(_line_key(colour, label, lw=widths[0], ls=styles[0]))
         return True
 
+    def symbol(self, glyph: str, label: str) -> None:
+        """A legend entry for a sign used in the labels (e.g. ``*``), drawn as the sign."""
+        from matplotlib.lines import Line2D
+
+        self.handles.append(Line2D([], [], ls="none", marker=f"${glyph}$", ms=9, color=INK,
+                                   label=label))
+
     def key(self, label: str, *, colour: str = "0.35", ls: str = "solid", lw: float = 1.4) -> None:
         """A legend entry for a line style used by several artists (e.g. 90% dashed)."""
         self.handles.append(_line_key(colour, label, lw=lw, ls=ls))
@@ -388,9 +401,9 @@ class MapFrame:
     def figure(self) -> Figure:
         """Lay the map out, place the labels and return the Figure.
 
-        The scale bar and the north arrow go to the corners of the map that hold
-        the fewest markers and labelled points (:meth:`_corners`), so they cover
-        as little of the map's content as the map allows."""
+        The scale bar and the north arrow go where the map holds the fewest
+        markers and labelled points (:meth:`_corners`: a corner, or the middle
+        of an edge), so they cover as little of the map's content as it allows."""
         self._scale_bar()
         if self._north_up():
             self._north_arrow("upper right")
@@ -416,13 +429,15 @@ class MapFrame:
             _lay_out(self)
         return self.fig
 
-    def _north_arrow(self, corner: str) -> None:
-        """The north arrow ("N" over an arrow pointing up) in ``corner`` of the map."""
+    def _north_arrow(self, place: str) -> None:
+        """The north arrow ("N" under an arrow pointing up) at ``place`` of the map
+        (one of :data:`PLACES`)."""
         for t in [t for t in self.ax.texts if t.get_gid() == "north_arrow"]:
             t.remove()
-        right, top = corner.endswith("right"), corner.startswith("upper")
-        x = 0.955 if right else 0.045
-        tip, text = (0.965, 0.875) if top else (0.155, 0.065)
+        vertical, _, horizontal = place.partition(" ")
+        x = {"left": 0.045, "center": 0.5, "right": 0.955}[horizontal]
+        tip, text = {"upper": (0.965, 0.875), "center": (0.545, 0.455),
+                     "lower": (0.155, 0.065)}[vertical]
         self.ax.annotate("N", xy=(x, tip), xytext=(x, text), xycoords="axes fraction",
                          ha="center", va="center", fontsize=FONT_PT + 2, weight="bold",
                          gid="north_arrow", zorder=8,
@@ -431,33 +446,32 @@ class MapFrame:
                                          lw=0.6))
 
     def _corners(self) -> None:
-        """Put the scale bar, then the north arrow, in the corner of the laid-out map
-        whose box covers the fewest markers and labelled points (ties: lower left
-        for the bar, upper right for the arrow); each keeps a corner of its own."""
+        """Put the scale bar, then the north arrow, where the laid-out map is
+        emptiest: of :data:`PLACES` (the corners first, then the middles of the
+        edges), the first whose box covers the fewest markers and labelled points;
+        the arrow never covers the bar."""
         r = self.fig.canvas.get_renderer()
         points = _marker_boxes(self.ax, self.avoid + [(x, y, 0.0) for x, y, _ in self.texts])
         bar = next(a for a in self.ax.artists if a.get_gid() == "scale_bar")
-        codes = {"upper right": 1, "upper left": 2, "lower left": 3, "lower right": 4}
 
         def covered(boxes):
             return sum(boxes_overlap(b, p, tol=0.0) for b in boxes for p in points)
 
         counts = {}
-        for name in ("lower left", "lower right", "upper left", "upper right"):
-            bar.loc = codes[name]
+        for name in PLACES:
+            bar.loc = BAR_CODES[name]
             counts[name] = covered([bar.get_window_extent(r)])
         best = min(counts, key=counts.get)
-        bar.loc = codes[best]
+        bar.loc = BAR_CODES[best]
         if not self._north_up():
             return
-        counts = {}
-        for name in ("upper right", "upper left", "lower right", "lower left"):
-            if name == best:
-                continue
+        taken, counts = bar.get_window_extent(r), {}
+        for name in ("upper right",) + tuple(p for p in PLACES if p != "upper right"):
             self._north_arrow(name)
             arrow = next(t for t in self.ax.texts if t.get_gid() == "north_arrow")
-            counts[name] = covered([arrow.get_window_extent(r),
-                                    arrow.arrow_patch.get_window_extent(r)])
+            boxes = [arrow.get_window_extent(r), arrow.arrow_patch.get_window_extent(r)]
+            if not any(boxes_overlap(b, taken, tol=0.0) for b in boxes):
+                counts[name] = covered(boxes)
         self._north_arrow(min(counts, key=counts.get))
 
     def _shown_ratio(self) -> float | None:

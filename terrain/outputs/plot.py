@@ -229,6 +229,8 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
         first = members.iloc[0]
         frame.label(first["x"], first["y"], _group_label(members, share, unit),
                     name="/".join(f"#{i}" for i in members["feature_id"]))
+    if any(members["bimodal"].any() for _, members in groups):
+        frame.symbol("*", f"bimodal {kind['figure']}: two clusters, no mean shown")
     return frame.figure()
 
 

@@ -41,7 +41,8 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     write_credit_run(out, res, features, input_path=str(dem_path), command_line=command_line())
     if not opts["quiet"]:
         print_summary(features.table, kind=kind, units=dem.vertical_units or "DEM units", n=res.n,
-                      outdir=out, caution=CAUTION)
+                      outdir=out, caution=CAUTION, share=features.rank_share,
+                      clusters=features.clusters)
     return res, features
 
 

@@ -10,7 +10,13 @@ __all__ = ["print_summary", "print_catchments", "print_sensitivity", "READING"]
 
 READING = ("'on DEM' is the figure on the DEM as given; 'expected' and '5-95%' are the mean and "
            "spread over realisations (the uncertainty the DEM error causes); 'MC s.e.' is the "
-           "Monte Carlo standard error of 'expected' (how precisely this run estimated it).")
+           "Monte Carlo standard error of 'expected' (how precisely this run estimated it). "
+           "'median rank' is a rank realisations produced ('-': counted in fewer than half); "
+           "'ranks held' gives the likeliest places 1-10 and how often each is held. A bracket "
+           "joins a group: features that trade a rank or share a top or floor within the error. "
+           "* bimodal: the figure falls into two clusters of outcomes (5-95% shows each), so its "
+           "mean lies between them and no realisation produced it.")
+ROWS = 20  # rows of the console table, at most (whole groups)
 
 
 def _console():
@@ -19,30 +25,83 @@ def _console():
     return Console(file=sys.stdout, width=120)
 
 
+def _bracket(position: int, size: int) -> str:
+    if size == 1:
+        return ""
+    return "┌" if position == 0 else "└" if position == size - 1 else "│"
+
+
+def _held(share_row) -> str:
+    """The likeliest ranks 1-10 a feature holds, at most two, as '2nd 80%'."""
+    from terrain.summary.ranks import RANK_MASS, ordinal
+
+    if share_row is None:
+        return ""
+    best = share_row[share_row >= RANK_MASS].sort_values(ascending=False, kind="stable").head(2)
+    return ", ".join(f"{ordinal(int(k))} {_percent(p)}" for k, p in best.items())
+
+
+def _percent(p: float) -> str:
+    """A share as a percentage, as the figures write it (``share_text``)."""
+    from terrain.outputs.plot import share_text
+
+    return share_text(p)
+
+
+def _spread(r, clusters) -> str:
+    """5-95% over realisations; for a bimodal figure each cluster's 5-95%."""
+    from terrain.outputs.plot import figure_text
+
+    if not r["bimodal"] or clusters is None or r["feature_id"] not in clusters.index:
+        return f"{r['p05']:.1f}-{r['p95']:.1f}"
+    c = clusters.loc[r["feature_id"]]
+
+    def one(lo, hi):  # three significant digits: two clusters are far apart
+        a, b = figure_text(lo), figure_text(hi)
+        return a if a == b else f"{a}-{b}"
+
+    return f"{one(c['low_p05'], c['low_p95'])} | {one(c['high_p05'], c['high_p95'])}"
+
+
 def print_summary(table, *, kind: str, units: str, n: int, outdir, caution: str,
-                  top: int = 10) -> None:
-    """The top features: DEM figure, expected figure with its 5-95% range,
-    P(counted), P(first), edge-limited share and the Monte Carlo s.e. apart."""
+                  share=None, clusters=None, top: int = ROWS) -> None:
+    """The features that rank 1st-10th in at least 1% of realisations, by median
+    rank then expected figure, a group's members together under one bracket:
+    DEM figure, median rank, likeliest ranks held, P(rank <= 3), expected figure
+    (* bimodal) with its 5-95% range (per cluster where bimodal), P(counted),
+    edge-limited share and the Monte Carlo s.e. apart."""
     from rich.table import Table
+
+    from terrain.summary.ranks import RANK_MASS, ranked_rows
 
     figure = "prominence" if kind == "peaks" else "depth"
     what = "summits" if kind == "peaks" else "depressions"
-    t = Table(title=f"Top {what} by expected {figure}, {units} ({n} realisations)",
-              title_justify="left")
-    for col in ("rank", "id", "on DEM", "expected", "5-95%", "P(counted)", "P(first)",
-                "edge-limited", "MC s.e."):
-        t.add_column(col, justify="right", style="dim" if col == "MC s.e." else None)
-    for _, r in table.head(top).iterrows():
-        edge = r["edge_limited_share"]
-        t.add_row(str(r["rank"]), str(r["feature_id"]), f"{r['unperturbed']:.2f}",
-                  f"{r['expected']:.2f}", f"{r['p05']:.1f}-{r['p95']:.1f}",
-                  f"{r['p_above']:.2f}", f"{r['p_first']:.2f}",
-                  "-" if np.isnan(edge) else f"{edge:.0%}", f"{r['se']:.2f}")
+    rows, left = ranked_rows(table, share, top)
+    t = Table(title=f"{what.capitalize()} ranking 1st-10th in at least {RANK_MASS:.0%} of "
+                    f"realisations, by median rank; {figure} in {units} ({n} realisations)",
+              title_justify="left", show_edge=False)
+    for col in ("", "id", "on DEM", "median\nrank", "ranks held", "P(top 3)", "expected",
+                "5-95%", "P(counted)", "edge-\nlimited", "MC\ns.e."):
+        t.add_column(col, justify="left" if col in ("", "ranks held") else "right",
+                     style="dim" if col == "MC\ns.e." else None,
+                     no_wrap=col in ("5-95%", "ranks held"))
+    for _, g in rows.groupby("group", sort=False):
+        for i, (_, r) in enumerate(g.iterrows()):
+            edge, med = r["edge_limited_share"], r["median_rank"]
+            t.add_row(_bracket(i, len(g)), f"#{r['feature_id']}", f"{r['unperturbed']:.2f}",
+                      "-" if med is None or med is np.nan or str(med) == "<NA>" else str(med),
+                      _held(share.loc[r["feature_id"]] if share is not None else None),
+                      f"{r['p_top3']:.2f}", f"{r['expected']:.2f}" + ("*" if r["bimodal"] else ""),
+                      _spread(r, clusters), f"{r['p_above']:.2f}",
+                      "-" if np.isnan(edge) else f"{edge:.0%}", f"{r['se']:.2f}")
     console = _console()
     if len(table) == 0:
         console.print(f"No {what} counted in enough realisations to be a feature.")
     else:
         console.print(t)
+        if left:
+            console.print(f"{left} more features rank 1st-10th in at least {RANK_MASS:.0%} of "
+                          "realisations; see ranks.csv.")
         console.print(READING, style="italic")
     console.print(f"{len(table)} features; outputs in {outdir}")
     console.print(caution, style="italic")

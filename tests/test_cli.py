@@ -21,6 +21,7 @@ import rasterio
 
 from terrain.outputs.tables import rounded
 from terrain.summary.features import COLUMN_KINDS, COLUMNS
+from terrain.summary.ranks import RANK_COLUMN_KINDS
 
 from .conftest import smooth_terrain, write_tif
 
@@ -35,9 +36,9 @@ def dem_tif(tmp_path):
 
 @pytest.mark.parametrize("cmd,layers,gpkg,csv,lyr", [
     ("peaks", ["summit_credit", "col_credit", "summit_probability"], "peaks.gpkg", "summits.csv",
-     ["summits", "summit_points", "summit_regions", "cols"]),
+     ["summits", "summit_points", "summit_regions", "cols", "ranks"]),
     ("depressions", ["pit_credit", "spill_credit", "pit_probability", "ponding_probability"],
-     "depressions.gpkg", "pits.csv", ["pits", "pit_points", "pit_regions", "spill_points"]),
+     "depressions.gpkg", "pits.csv", ["pits", "pit_points", "pit_regions", "spill_points", "ranks"]),
 ])
 def test_outputs_read_back(cairn, dem_tif, tmp_path, cmd, layers, gpkg, csv, lyr):
     out = tmp_path / "out"
@@ -71,6 +72,10 @@ def test_outputs_read_back(cairn, dem_tif, tmp_path, cmd, layers, gpkg, csv, lyr
     assert run["parameters"]["seed"] == 3
     for png in ("quicklook.png", "ranking.png"):
         assert (out / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    # ranks.csv is the GeoPackage's ranks table, rounded
+    ranks = pyogrio.read_dataframe(out / gpkg, layer="ranks")
+    pd.testing.assert_frame_equal(pd.read_csv(out / "ranks.csv"),
+                                  rounded(pd.DataFrame(ranks), RANK_COLUMN_KINDS), check_dtype=False)
     assert not [p for p in os.listdir(out) if ".part" in p]
 
 

@@ -189,12 +189,14 @@ def test_geopackage_layers_are_described(runs):
     # OGC GeoPackage Encoding Standard 1.3: gpkg_contents.description, read with sqlite3
     _, out = runs
     from terrain.outputs.manifest import VECTOR_LAYERS
-    from terrain.summary.features import LAYER_NAMES
+    from terrain.summary.features import LAYER_NAMES, RANK_LAYER
 
     for cmd, gpkg in (("peaks", "peaks.gpkg"), ("depressions", "depressions.gpkg")):
         with sqlite3.connect(out[cmd] / gpkg) as con:
             rows = dict(con.execute("SELECT table_name, description FROM gpkg_contents"))
-        assert set(rows) == set(LAYER_NAMES[cmd])
+            kinds = dict(con.execute("SELECT table_name, data_type FROM gpkg_contents"))
+        assert set(rows) == set(LAYER_NAMES[cmd]) | {RANK_LAYER}
+        assert kinds[RANK_LAYER] == "attributes"  # a table without geometry
         for name, text in rows.items():
             assert text.startswith(VECTOR_LAYERS[name])  # what the layer is
             assert "RMSE 1.5 (gaussian)" in text and "4 realisations, seed 2" in text
@@ -231,9 +233,12 @@ def test_csv_is_rounded_by_column_kind(runs):
 
 def test_every_table_column_has_a_known_kind():
     features = {c for cols in COLUMNS.values() for c in cols}
+    from terrain.summary.ranks import RANK_COLUMN_KINDS, RANK_COLUMNS
+
     for columns, kinds in ((features, COLUMN_KINDS), (CATCHMENT_COLUMNS, CATCHMENT_COLUMN_KINDS),
                            (SWEEP_COLUMNS, SWEEP_COLUMN_KINDS),
-                           (SENSITIVITY_COLUMNS, SENSITIVITY_COLUMN_KINDS)):
+                           (SENSITIVITY_COLUMNS, SENSITIVITY_COLUMN_KINDS),
+                           (RANK_COLUMNS, RANK_COLUMN_KINDS)):
         assert set(kinds) == set(columns)
         assert set(kinds.values()) <= set(DECIMALS) | AS_IS
 

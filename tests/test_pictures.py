@@ -7,8 +7,9 @@ Outside references used here:
 - The length of a degree of longitude is cos(latitude) times that of a degree
   of latitude on a sphere (common practice for a map's aspect, no source), so
   a geographic map's data aspect must be 1 / cos(latitude of its centre).
-- Ranks: pandas' ``rank(method="min", ascending=False)`` per realisation,
-  an independent implementation of "1 + the number of larger figures".
+- Ranks: pandas' ``rank(method="first", ascending=False)`` per realisation
+  (rows in id order), an independent implementation of "1 + the number of
+  larger figures, ties by id".
 - The most credited key col / spill point and its share: pandas ``groupby``
   over the raw pair log, crediting each pair |birth value - death value|
   (the persistence of a finite pair, Edelsbrunner, Letscher & Zomorodian,
@@ -182,6 +183,8 @@ def test_feature_maps_read_back(upland, kind, geographic):
     fig = plot.feature_map(res, feat)
     ax, labels, names = check_map(fig, dem)
     table = feat.table
+    birth = "most credited summit cell" if kind == "peaks" else "most credited pit cell"
+    assert birth in names
     if geographic:  # aspect 1 / cos(latitude of the centre): 60.05 - 32 rows of 1/1200 degree
         lat = 60.05 - dem.shape[0] / 2 / 1200
         assert ax.get_aspect() == pytest.approx(1 / math.cos(math.radians(lat)), rel=1e-9)
@@ -189,15 +192,37 @@ def test_feature_maps_read_back(upland, kind, geographic):
         assert ax.get_aspect() == 1.0
     # north-up grid in a known CRS: the north arrow is drawn
     assert [t for t in ax.texts if t.get_gid() == "north_arrow"]
-    # labels: the largest features counted in at least half the realisations, at most 12
-    want = table[table.p_above >= plot.LABEL_PRESENCE].sort_values("rank").head(plot.LABELLED)
-    assert 1 <= len(labels) <= min(len(want), plot.LABELLED)
+    # labels: one per group, in table order (median rank, then expected figure), the first
+    # 12 groups with a member counted in at least half the realisations
+    groups = [m for _, m in table.sort_values("rank").groupby("group", sort=False)
+              if (m.p_above >= plot.LABEL_PRESENCE).any()][:plot.LABELLED]
+    assert 1 <= len(labels) <= len(groups)
     shown = {int(t.get_text().split()[0][1:]) for t in labels}
-    assert shown <= set(want.feature_id)
-    assert int(want.feature_id.iloc[0]) in shown  # the first is always labelled
-    # every symbol explained
-    birth = "most credited summit cell" if kind == "peaks" else "most credited pit cell"
-    assert birth in names and any(n.startswith(("where the top is", "ponded extent")) for n in names)
+    assert shown <= {int(m.feature_id.iloc[0]) for m in groups}
+    assert int(groups[0].feature_id.iloc[0]) in shown  # the first is always labelled
+    # a label gives each feature's figure on the DEM as given, never its mean
+    rows = table.set_index("feature_id")
+    for t in labels:
+        for part in re.findall(r"#(\d+) (\S+) m", t.get_text()):
+            assert part[1].rstrip("*") == plot.figure_text(rows.loc[int(part[0]), "unperturbed"])
+    # drawn: every feature counted in at least half the realisations, markers never clipped
+    drawn = table[table.p_above >= plot.LABEL_PRESENCE]
+    marker = [ln for ln in ax.lines if ln.get_label() == birth]
+    assert len(marker) == 1 and len(marker[0].get_xdata()) >= len(drawn)
+    assert not marker[0].get_clip_on()
+    # every key col / spill point tied to its feature by a thin line
+    ties = [c for c in ax.collections if "tied to its" in str(c.get_label())]
+    d = "col" if kind == "peaks" else "spill"
+    assert len(ties) == 1 and len(ties[0].get_segments()) == np.isfinite(
+        table.loc[table.feature_id.isin(marker_ids(marker[0], table)), f"{d}_x"]).sum()
+    assert any(n.startswith(("where the top is", "ponded extent")) for n in names)
+
+
+def marker_ids(line, table):
+    """The feature ids whose most credited summit / pit cell a marker line draws."""
+    at = set(zip(np.round(line.get_xdata(), 6), np.round(line.get_ydata(), 6)))
+    return [i for i, x, y in zip(table.feature_id, table.x, table.y)
+            if (round(x, 6), round(y, 6)) in at]
 
 
 def test_map_without_crs_has_no_north_arrow_and_names_cell_units():
@@ -275,8 +300,9 @@ def test_rank_shares_against_pandas_ranks():
     long = pd.DataFrame({"real": np.repeat(np.arange(res.n), fm.ids.size),
                          "feature_id": np.tile(fm.ids, res.n), "figure": fm.figure.ravel(),
                          "present": fm.present.ravel()})
-    long = long[long.present]
-    long["rank"] = long.groupby("real")["figure"].rank(method="min", ascending=False)
+    long = long[long.present].sort_values(["real", "feature_id"])
+    # ties (none expected with continuous error) rank by id, as p_first breaks them
+    long["rank"] = long.groupby("real")["figure"].rank(method="first", ascending=False)
     for fid, row in feat.rank_share.iterrows():
         ranks = long.loc[long.feature_id == fid, "rank"]
         for k in row.index:
@@ -299,7 +325,17 @@ def test_catchment_map_read_back():
     ax, labels, names = check_map(fig, dem)
     assert {"sub-catchment of outlet lower ford", "sub-catchment of outlet upper ford"} <= names
     assert {"outlet, as given"} <= names
-    assert {t.get_text() for t in labels} == {"lower ford", "upper ford"}
+    # where the run measured: each outlet's most frequent snapped cell, its share beside it
+    from terrain.summary.catchments import outlet_table
+
+    outlets = outlet_table(res)
+    snapped = [ln for ln in ax.lines if ln.get_label().startswith("most frequent snapped cell")]
+    assert len(snapped) == 1
+    np.testing.assert_allclose(sorted(snapped[0].get_xdata()), sorted(outlets.snapped_x))
+    np.testing.assert_allclose(sorted(snapped[0].get_ydata()), sorted(outlets.snapped_y))
+    texts = sorted(t.get_text() for t in labels)
+    assert texts == sorted(["lower ford", "upper ford"] + [f"snapped {plot.share_text(p)}"
+                                                         for p in outlets.snapped_share])
     bar = [a for a in fig.axes if getattr(a, "_colorbar", None) is not None][0]
     assert "divide probability" in bar.get_ylabel()
 

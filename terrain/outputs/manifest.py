@@ -37,20 +37,26 @@ _COMMON = [OutputFile("quicklook.png", "quick-look map: the main layer over a hi
            OutputFile("run.json", "provenance: input checksum, command line, every parameter "
                                   "and default, timings")]
 
-_RANKING = OutputFile("ranking.png", "ranking chart: each top feature's 5-95% range and "
+_RANKING = OutputFile("ranking.png", "ranking chart: the features that rank 1st-10th in at "
+                                     "least 1% of realisations, by median rank, groups together: "
+                                     "each one's 5-95% range (per cluster where bimodal) and "
                                      "P(rank = k) for k = 1..10")
+_RANKS = OutputFile("ranks.csv", "the rank distribution in long form: feature, rank k = 1..10, "
+                                 "P(rank = k) and its Monte Carlo standard error")
 
 MANIFEST: dict[str, list[OutputFile]] = {
     "peaks": _rasters("peaks") + [
         OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics, "
-                                 "and each feature's most credited key col",
-                   ("summits", "summit_points", "summit_regions", "cols")),
-        OutputFile("summits.csv", "the summit feature table"), _RANKING] + _COMMON,
+                                 "each feature's most credited key col, and the rank "
+                                 "distribution", ("summits", "summit_points", "summit_regions",
+                                                  "cols", "ranks")),
+        OutputFile("summits.csv", "the summit feature table"), _RANKS, _RANKING] + _COMMON,
     "depressions": _rasters("depressions") + [
         OutputFile("depressions.gpkg", "depression features: polygons and points with their "
-                                       "statistics, and each feature's most credited spill point",
-                   ("pits", "pit_points", "pit_regions", "spill_points")),
-        OutputFile("pits.csv", "the depression feature table"), _RANKING] + _COMMON,
+                                       "statistics, each feature's most credited spill point, "
+                                       "and the rank distribution",
+                   ("pits", "pit_points", "pit_regions", "spill_points", "ranks")),
+        OutputFile("pits.csv", "the depression feature table"), _RANKS, _RANKING] + _COMMON,
     "catchments": _rasters("catchments") + [
         OutputFile("catchments.gpkg", "per outlet: 50% and 90% catchment and sub-catchment "
                                       "polygons with areas, and the outlet as given and snapped, "
@@ -81,7 +87,8 @@ VECTOR_LAYERS: dict[str, str] = {
                       "as given (the cells that climb to its summit), by rank, with the same "
                       "statistics as the summits layer",
     "pits": "Depression features of a depressions run: each feature's ponded extent (cells of "
-            "its region that hold water in at least half the realisations), one polygon per "
+            "its region that hold water in at least half the realisations; where none does, "
+            "its most credited pit cell, flagged extent_is_pit_cell), one polygon per "
             "feature, by rank, with its depth on the DEM as given, expected depth and its "
             "spread, ponded area and volume, and the probabilities of being counted and of "
             "ranking first",
@@ -99,6 +106,12 @@ VECTOR_LAYERS: dict[str, str] = {
                     "layer, spill_share (its share of the feature's spill credit) and "
                     "spill_elevation (mean over the realisations in which it was the spill "
                     "point)",
+    "ranks": "The rank distribution of a run's features (a table without geometry): one row "
+             "per rank k = 1..10 (fewer when fewer features were counted) and feature that held "
+             "it in some realisation, with p_rank = P(rank = k) and its Monte Carlo standard "
+             "error p_rank_se; for every k the rows carry the whole probability, feature_id 0 "
+             "holding the share of realisations in which fewer than k features were counted. "
+             "Join feature_id to the other layers",
     "catchments": "Cells draining to each outlet in at least 50% and at least 90% of "
                   "realisations, one polygon per outlet and level, with its area and the mean "
                   "and 5-95% range of the catchment area over realisations (nested outlets "

@@ -76,7 +76,8 @@ OUTLINE_COLOURS = ("#1f5fa8", "#d1600a", "#6a3d9a", "#127a5c", "#b0124a", "#7a5c
 #: where a label starts in each placement (pixels right and up of its point, alignment) and
 #: where adjustText may move it: right of it, anywhere; labels that still overlap start left
 #: of it, above it moving only up, below it moving only down, then at the four diagonals,
-#: then further out
+#: then further out; :func:`place_labels` tries the first ADJUST_STARTS of them with adjustText
+#: and then looks for the nearest free spot (cheaper than more adjustText passes)
 LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center", "xy"),
                 (0.0, 9.0, "center", "bottom", "y+"), (0.0, -9.0, "center", "top", "y-"),
                 (8.0, -8.0, "left", "top", "xy"), (-8.0, -8.0, "right", "top", "xy"),
@@ -84,6 +85,13 @@ LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center
                 (0.0, -40.0, "center", "top", "y-"), (0.0, 40.0, "center", "bottom", "y+"))
 ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
 LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
+ADJUST_STARTS = 4  # adjustText placements before the search for a free spot
+#: where the scale bar and the north arrow may go, in order of preference: corners, then
+#: the middles of the edges (matplotlib's legend location codes for the bar)
+PLACES = ("lower left", "lower right", "upper left", "upper right", "lower center",
+          "upper center", "center left", "center right")
+BAR_CODES = {"upper right": 1, "upper left": 2, "lower left": 3, "lower right": 4,
+             "center left": 6, "center right": 7, "lower center": 8, "upper center": 9}
 
 
 def palette(name: str) -> Colormap:
@@ -321,15 +329,30 @@ class MapFrame:
 
     def points(self, x: np.ndarray, y: np.ndarray, *, marker: str, face: str, label: str,
                size: float = 8.0) -> None:
-        """Markers at CRS coordinates (NaN skipped), as one legend entry."""
+        """Markers at CRS coordinates (NaN skipped), as one legend entry. Markers
+        are never clipped: one at the raster's edge is drawn whole, over the frame."""
         x, y = np.asarray(x, float), np.asarray(y, float)
         ok = np.isfinite(x) & np.isfinite(y)
         if not ok.any():
             return
         line, = self.ax.plot(x[ok], y[ok], ls="none", marker=marker, ms=size, mfc=face, mec=INK,
-                             mew=1.0, label=label, zorder=5)
+                             mew=1.0, label=label, zorder=5, clip_on=False)
         self.handles.append(line)
         self.avoid += [(a, b, size) for a, b in zip(x[ok], y[ok])]
+
+    def lines(self, segments, *, colour: str, label: str, lw: float = 0.8,
+              ls: str = "solid") -> None:
+        """Straight lines between pairs of CRS points (``((x0, y0), (x1, y1))``, NaN
+        skipped), e.g. tying a key col to its summit, as one legend entry."""
+        from matplotlib.collections import LineCollection
+
+        segs = [s for s in (np.asarray(s, float) for s in segments) if np.isfinite(s).all()]
+        if not segs:
+            return
+        coll = LineCollection(segs, colors=colour, linewidths=lw, linestyles=ls, label=label,
+                              zorder=4, path_effects=_halo(lw + 1.4))
+        self.ax.add_collection(coll)
+        self.handles.append(_line_key(colour, label, lw=lw, ls=ls))
 
     def contours(self, values: np.ndarray, levels, *, colour: str, label: str,
                  styles=("solid",), widths=(1.4,)) -> bool:
@@ -355,6 +378,13 @@ class MapFrame:
         self.handles.append(_line_key(colour, label, lw=widths[0], ls=styles[0]))
         return True
 
+    def symbol(self, glyph: str, label: str) -> None:
+        """A legend entry for a sign used in the labels (e.g. ``*``), drawn as the sign."""
+        from matplotlib.lines import Line2D
+
+        self.handles.append(Line2D([], [], ls="none", marker=f"${glyph}$", ms=9, color=INK,
+                                   label=label))
+
     def key(self, label: str, *, colour: str = "0.35", ls: str = "solid", lw: float = 1.4) -> None:
         """A legend entry for a line style used by several artists (e.g. 90% dashed)."""
         self.handles.append(_line_key(colour, label, lw=lw, ls=ls))
@@ -369,16 +399,14 @@ class MapFrame:
 
     # -- finishing -------------------------------------------------------------------------
     def figure(self) -> Figure:
-        """Lay the map out, place the labels and return the Figure."""
+        """Lay the map out, place the labels and return the Figure.
+
+        The scale bar and the north arrow go where the map holds the fewest
+        markers and labelled points (:meth:`_corners`: a corner, or the middle
+        of an edge), so they cover as little of the map's content as it allows."""
         self._scale_bar()
         if self._north_up():
-            self.ax.annotate("N", xy=(0.955, 0.965), xytext=(0.955, 0.875),
-                             xycoords="axes fraction", ha="center", va="center",
-                             fontsize=FONT_PT + 2, weight="bold", gid="north_arrow", zorder=8,
-                             bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none",
-                                       alpha=0.8),
-                             arrowprops=dict(facecolor=INK, edgecolor="white", width=3,
-                                             headwidth=10, lw=0.6))
+            self._north_arrow("upper right")
         self._legend_and_text()
         self.ax.set_aspect(self.aspect())  # imshow resets it
         self.shown = self._shown_ratio()
@@ -387,6 +415,7 @@ class MapFrame:
             self.subtitle_text.set_text(self.subtitle_text.get_text() + "\nDrawn stretched: the "
                                         "raster is a thin strip.")
         _lay_out(self)
+        self._corners()
         r = self.fig.canvas.get_renderer()
         fixed = [a.get_window_extent(r) for a in self.ax.artists + self.ax.texts
                  if a.get_gid() in ("scale_bar", "north_arrow")]
@@ -399,6 +428,51 @@ class MapFrame:
             self.footer_text.set_text(self._footer())
             _lay_out(self)
         return self.fig
+
+    def _north_arrow(self, place: str) -> None:
+        """The north arrow ("N" under an arrow pointing up) at ``place`` of the map
+        (one of :data:`PLACES`)."""
+        for t in [t for t in self.ax.texts if t.get_gid() == "north_arrow"]:
+            t.remove()
+        vertical, _, horizontal = place.partition(" ")
+        x = {"left": 0.045, "center": 0.5, "right": 0.955}[horizontal]
+        tip, text = {"upper": (0.965, 0.875), "center": (0.545, 0.455),
+                     "lower": (0.155, 0.065)}[vertical]
+        self.ax.annotate("N", xy=(x, tip), xytext=(x, text), xycoords="axes fraction",
+                         ha="center", va="center", fontsize=FONT_PT + 2, weight="bold",
+                         gid="north_arrow", zorder=8,
+                         bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8),
+                         arrowprops=dict(facecolor=INK, edgecolor="white", width=3, headwidth=10,
+                                         lw=0.6))
+
+    def _corners(self) -> None:
+        """Put the scale bar, then the north arrow, where the laid-out map is
+        emptiest: of :data:`PLACES` (the corners first, then the middles of the
+        edges), the first whose box covers the fewest markers and labelled points;
+        the arrow never covers the bar."""
+        r = self.fig.canvas.get_renderer()
+        points = _marker_boxes(self.ax, self.avoid + [(x, y, 0.0) for x, y, _ in self.texts])
+        bar = next(a for a in self.ax.artists if a.get_gid() == "scale_bar")
+
+        def covered(boxes):
+            return sum(boxes_overlap(b, p, tol=0.0) for b in boxes for p in points)
+
+        counts = {}
+        for name in PLACES:
+            bar.loc = BAR_CODES[name]
+            counts[name] = covered([bar.get_window_extent(r)])
+        best = min(counts, key=counts.get)
+        bar.loc = BAR_CODES[best]
+        if not self._north_up():
+            return
+        taken, counts = bar.get_window_extent(r), {}
+        for name in ("upper right",) + tuple(p for p in PLACES if p != "upper right"):
+            self._north_arrow(name)
+            arrow = next(t for t in self.ax.texts if t.get_gid() == "north_arrow")
+            boxes = [arrow.get_window_extent(r), arrow.arrow_patch.get_window_extent(r)]
+            if not any(boxes_overlap(b, taken, tol=0.0) for b in boxes):
+                counts[name] = covered(boxes)
+        self._north_arrow(min(counts, key=counts.get))
 
     def _shown_ratio(self) -> float | None:
         """The height/width ratio to draw a thin strip at (None: true to scale)."""
@@ -536,10 +610,13 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
     Each label starts beside its point and is pushed off every marker and
     every other label. Labels come in order of importance. After the
     placement, a label that still overlaps a more important label, a marker
-    or a ``fixed`` box is placed again from another start (every label kept
-    so far an obstacle), through :data:`LABEL_STARTS`; one that still
-    overlaps is left out (its marker stays), so what is drawn never
-    overlaps. A label that ends up away from its point gets a leader line.
+    or a ``fixed`` box is placed again from another start, through
+    :data:`LABEL_STARTS` (the first :data:`ADJUST_STARTS`); a less important
+    label in the way gives way (it is placed again in the next round), so
+    importance decides who keeps a place. One that still overlaps after the
+    last start goes to the nearest free spot within :data:`SEARCH_PX` pixels,
+    or is left out (its marker stays), so what is drawn never overlaps. A label that ends up
+    away from its point gets a leader line.
 
     Parameters
     ----------
@@ -569,23 +646,55 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
     kept: dict[int, object] = {}
     todo = list(range(len(items)))
     with _only_labels(ax):  # adjustText draws the figure; nothing else moves the labels
-        for start in LABEL_STARTS:
+        for start in LABEL_STARTS[:ADJUST_STARTS]:
             if not todo:
                 break
-            obstacles = boxes + [t.get_window_extent(r) for t in kept.values()]
-            near = _near(ax, [items[i] for i in todo], obstacles)
+            # labels kept so far that are more important than every label to place are
+            # fixed; a less important one gives way if a more important label needs its room
+            fixed_kept = [kept[i].get_window_extent(r) for i in kept if i < todo[0]]
+            near = _near(ax, [items[i] for i in todo], boxes + fixed_kept)
             texts = _adjust(ax, [items[i] for i in todo], near, fontsize, start)
-            placed = _clear(ax, texts, obstacles, [kept[i] for i in sorted(kept)])
+            evicted = _clear(ax, dict(zip(todo, texts)), boxes, kept)
             for i, t in zip(todo, texts):
-                if placed.get(id(t)):
-                    kept[i] = t
-                else:
+                if kept.get(i) is not t:
                     t.remove()
-            todo = [i for i in todo if i not in kept]
+            todo = sorted(set(i for i in todo if i not in kept) | set(evicted))
+        for i in todo:  # the last resort: the nearest free spot within SEARCH_PX
+            text = _free_spot(ax, items[i], boxes + [t.get_window_extent(r) for t in kept.values()],
+                              fontsize)
+            if text is not None:
+                kept[i] = text
     size = {(x, y): s for x, y, s in avoid}
     for i, t in kept.items():
         _leader(ax, t, items[i][:2], size.get(items[i][:2], 0.0))
     return [kept[i] for i in sorted(kept)]
+
+
+SEARCH_PX = 260.0  # the last resort looks for a free spot this far from a label's point
+
+
+def _free_spot(ax, item, obstacles, fontsize: float):
+    """A label for ``item`` at the free spot nearest its point (in rings of 12
+    pixels out to :data:`SEARCH_PX`, 24 directions each) where it lies inside
+    the axes and overlaps no obstacle; None when there is none."""
+    r = ax.figure.canvas.get_renderer()
+    x, y, label = item
+    t = ax.text(x, y, label, fontsize=fontsize, color=INK, zorder=7, ha="center", va="center",
+                gid="label", path_effects=_halo(HALO_PT))
+    t.set_in_layout(False)
+    box, frame = t.get_window_extent(r), ax.get_window_extent(r)
+    px, py = ax.transData.transform((x, y))
+    w, h = box.width / 2, box.height / 2
+    for radius in np.arange(12.0, SEARCH_PX + 1, 12.0):
+        for a in np.linspace(0, 2 * np.pi, 24, endpoint=False):
+            cx, cy = px + radius * np.cos(a), py + radius * np.sin(a)
+            b = box.translated(cx - (box.x0 + w), cy - (box.y0 + h))
+            if (frame.x0 <= b.x0 and b.x1 <= frame.x1 and frame.y0 <= b.y0 and b.y1 <= frame.y1
+                    and not any(boxes_overlap(b, o) for o in obstacles)):
+                t.set_position(ax.transData.inverted().transform((cx, cy)))
+                return t
+    t.remove()
+    return None
 
 
 def _fits(ax: Axes, r, text: str, fontsize: float) -> bool:
@@ -694,20 +803,26 @@ def boxes_overlap(a, b, tol: float = 0.5) -> bool:
     return (min(a.x1, b.x1) - max(a.x0, b.x0) > tol) and (min(a.y1, b.y1) - max(a.y0, b.y0) > tol)
 
 
-def _clear(ax, texts, obstacles, earlier) -> dict:
-    """Which of ``texts`` (in order of importance) overlap nothing: no obstacle,
-    no label kept earlier, no more important text of this pass, and lie inside
-    the axes. Returns {id(text): bool}."""
+def _clear(ax, texts: dict, obstacles, kept: dict) -> list:
+    """Keep those of ``texts`` (index of importance -> text, 0 the most important)
+    that lie inside the axes and overlap no obstacle, no more important label
+    kept, and no more important text of this pass; a less important label kept
+    earlier that a new one overlaps is taken out (removed from the axes and
+    from ``kept``) to be placed again. Updates ``kept``; returns the indices
+    taken out."""
     r = ax.figure.canvas.get_renderer()
     frame = ax.get_window_extent(r)
-    taken = [t.get_window_extent(r) for t in earlier]
-    out = {}
-    for t in texts:
-        e = t.get_window_extent(r)
+    evicted = []
+    for i in sorted(texts):
+        e = texts[i].get_window_extent(r)
         inside = (frame.x0 - 1 <= e.x0 and e.x1 <= frame.x1 + 1 and frame.y0 - 1 <= e.y0
                   and e.y1 <= frame.y1 + 1)
-        ok = inside and not any(boxes_overlap(e, b) for b in obstacles + taken)
-        out[id(t)] = ok
-        if ok:
-            taken.append(e)
-    return out
+        if not inside or any(boxes_overlap(e, b) for b in obstacles):
+            continue
+        if any(boxes_overlap(e, kept[j].get_window_extent(r)) for j in kept if j < i):
+            continue
+        for j in [j for j in kept if j > i and boxes_overlap(e, kept[j].get_window_extent(r))]:
+            kept.pop(j).remove()
+            evicted.append(j)
+        kept[i] = texts[i]
+    return [j for j in evicted if j not in kept]

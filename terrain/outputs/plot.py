@@ -10,6 +10,7 @@ shows is decided here, by layer role (:mod:`terrain.layers`).
 
 from __future__ import annotations
 
+import math
 import textwrap
 from typing import TYPE_CHECKING
 
@@ -45,7 +46,7 @@ __all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_
 
 LABELLED = 12  # features labelled on a map, at most
 LABEL_PRESENCE = 0.5  # ... among those counted in at least this share of realisations
-RANKED = 15  # features on the ranking chart, at most
+RANKED = 20  # features on the ranking chart, at most
 ENVELOPE_CELLS = 1.5  # the peaks map outlines a top's cells this many cells out
 PONDING_FLOOR = 0.05  # ponding probability below this is left clear on the depressions map
 DIVIDE_FLOOR = 0.05  # and divide probability on the catchments map
@@ -97,14 +98,16 @@ def figure_text(v: float) -> str:
 
 
 def share_text(p: float) -> str:
-    """A probability as a percentage, with <1% and >99% kept apart from 0 and 1."""
+    """A probability as a percentage, with <1% and >99% kept apart from 0 and 1,
+    rounded as its two-decimal form is (0.765 -> 0.77 -> 77%), so a share and
+    the same probability written in a cell of the rank matrix agree."""
     if p <= 0:
         return "0%"
     if p >= 1:
         return "100%"
     if p < 0.01:
         return "<1%"
-    return ">99%" if p > 0.99 else f"{p:.0%}"
+    return ">99%" if p > 0.99 else f"{float(f'{p:.2f}'):.0%}"
 
 
 def quicklook(dem: Dem, layer: np.ndarray, *, title: str, units: str, frac: float = 0.01,
@@ -181,18 +184,23 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     """The quick-look of a peaks or depressions run.
 
     Peaks: summit probability; depressions: ponding probability with its 50%
-    contour outside the features. Over it, each feature's polygon (where the
-    top is / the ponded extent), a marker at its most credited summit or pit
-    cell and another at its most credited key col or spill point; labels
-    (#id, expected figure, P(ranks first)) on at most :data:`LABELLED`
-    features, the largest by expected figure among those counted in at least
-    :data:`LABEL_PRESENCE` of realisations.
+    contour outside the features. Over it, the features counted in at least
+    :data:`LABEL_PRESENCE` of realisations (and the members of each labelled
+    group): each one's polygon (where the top is / the ponded extent), a
+    marker at its most credited summit or pit cell and another at its most
+    credited key col or spill point, tied to it by a thin line. At most
+    :data:`LABELLED` labels, one per group, in table order (median rank,
+    then expected figure): each names its features with their figure on the
+    DEM as given (``*``: bimodal) and P(ranks first), and for a group the
+    place its members trade and each one's share; members of a group are
+    tied by a dotted line. Never a mean: a bimodal mean is no outcome.
     """
     dem, job, table = result.dem, result.job, features.table
     kind = _KIND[job.kind]
     unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.vertical_units, job.weight))
-    sub = (f"labels: #id, expected {kind['figure']}, P(ranks first) - the {LABELLED} largest "
-           f"features counted in at least {LABEL_PRESENCE:.0%} of realisations")
+    groups = _label_groups(table)
+    drawn = table[(table["p_above"] >= LABEL_PRESENCE)
+                  | table["group"].isin([g for g, _ in groups])]
     main = layer_name(job.kind, kind["main"])
     if dem.on_disk:  # out of core: draw from rasters pooled band by band
         dem, values, inside, tops = _pooled_view(result, features, main)
@@ -200,8 +208,8 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
         values = result.layers[main][0]
         inside = np.isin(features.regions.labels, table["feature_id"].to_numpy())
         tops = features.top[0:dem.shape[0], 0:dem.shape[1]] > 0 if job.kind == "peaks" else None
-    frame = MapFrame(dem, title=kind["title"], subtitle=sub, footer=run_footer(result, main),
-                     caution=CAUTION)
+    frame = MapFrame(dem, title=kind["title"], subtitle=_map_subtitle(kind, table, drawn),
+                     footer=run_footer(result, main), caution=CAUTION)
     if job.kind == "peaks":  # elsewhere, single noise summits would speckle the whole map
         values = np.where(tops, values, 0.0)
         vmax, note = _round_up(float(np.nanmax(values, initial=0.0))), ", where the tops are"
@@ -214,23 +222,98 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
         frame.contours(np.where(inside, np.nan, values), [0.5], colour=INK,
                        label="ponded in 50% of realisations, outside the features",
                        styles=("dashed",), widths=(1.0,))
-    geoms = features.frames[LAYER_NAMES[job.kind][0]].geometry
-    if job.kind == "peaks":  # a top's cells are scattered: outline them together
+    _draw_features(frame, features, drawn, kind, dem)
+    frame.unplaced = "No room on the map to label {names}: see ranking.png and the table."
+    share = features.rank_share
+    for _, members in groups:
+        first = members.iloc[0]
+        frame.label(first["x"], first["y"], _group_label(members, share, unit),
+                    name="/".join(f"#{i}" for i in members["feature_id"]))
+    if any(members["bimodal"].any() for _, members in groups):
+        frame.symbol("*", f"bimodal {kind['figure']}: two clusters, no mean shown")
+    return frame.figure()
+
+
+def _label_groups(table) -> list:
+    """The groups a map labels, in table order: (group id, its rows), the first
+    :data:`LABELLED` groups with a member counted in at least
+    :data:`LABEL_PRESENCE` of realisations."""
+    out = []
+    for g, members in table.sort_values("rank", kind="stable").groupby("group", sort=False):
+        if (members["p_above"] >= LABEL_PRESENCE).any():
+            out.append((g, members))
+        if len(out) == LABELLED:
+            break
+    return out
+
+
+def _map_subtitle(kind: dict, table, drawn) -> str:
+    more = len(table) - len(drawn)
+    place = "a top" if kind["feature"] == "summit" else "a floor"
+    return (f"Drawn: the {len(drawn)} features counted in at least {LABEL_PRESENCE:.0%} of "
+            f"realisations" + (f" or labelled ({more} more in the table)" if more else "")
+            + f". Labels, one per group, in table order: #id, {kind['figure']} on the DEM as "
+            f"given (* bimodal: two clusters of outcomes, so no mean is shown), P(ranks first); "
+            f"a group (dotted line: features that trade a place or share {place}) gives the "
+            "place its members trade and each one's share.")
+
+
+def _draw_features(frame: MapFrame, features: FeatureSummary, drawn, kind: dict, dem) -> None:
+    """Polygons, summit / pit and key col / spill markers of the ``drawn`` rows, each
+    key col or spill point tied to its feature by a thin line, a group's members
+    by a dotted one."""
+    job_kind = "peaks" if kind["feature"] == "summit" else "depressions"
+    geoms = features.frames[LAYER_NAMES[job_kind][0]].set_index("feature_id").geometry
+    geoms = [geoms.get(i) for i in drawn["feature_id"]]
+    if job_kind == "peaks":  # a top's cells are scattered: outline them together
         geoms = [g.buffer(ENVELOPE_CELLS * max(dem.cellsize)) if g is not None else None
                  for g in geoms]
     frame.polygons(geoms, colour=kind["accent"], label=kind["polygons"])
-    d = "col" if job.kind == "peaks" else "spill"
-    size = 8.0 if len(table) <= 40 else 6.0 if len(table) <= 150 else 4.5  # crowded: smaller
-    frame.points(table["x"], table["y"], marker=kind["birth"][0], face="white",
+    d = "col" if job_kind == "peaks" else "spill"
+    n = len(drawn)
+    size = 8.0 if n <= 40 else 6.0 if n <= 150 else 4.5  # crowded: smaller
+    frame.lines([((a, b), (c, e)) for a, b, c, e in zip(drawn["x"], drawn["y"], drawn[f"{d}_x"],
+                                                        drawn[f"{d}_y"])],
+                colour=kind["accent"], lw=0.7,
+                label=f"{kind['death'][1]}: tied to its {kind['feature']} by a thin line")
+    ties = []
+    for _, members in drawn.groupby("group", sort=False):
+        x0, y0 = members["x"].iloc[0], members["y"].iloc[0]
+        ties += [((x0, y0), (x, y)) for x, y in zip(members["x"].iloc[1:], members["y"].iloc[1:])]
+    place = "a top" if job_kind == "peaks" else "a floor"
+    frame.lines(ties, colour=INK, lw=1.3, ls="dotted",
+                label=f"one group: features that trade a place or share {place}")
+    frame.points(drawn["x"], drawn["y"], marker=kind["birth"][0], face="white",
                  label=kind["birth"][1], size=size)
-    frame.points(table[f"{d}_x"], table[f"{d}_y"], marker=kind["death"][0], face=kind["accent"],
+    frame.points(drawn[f"{d}_x"], drawn[f"{d}_y"], marker=kind["death"][0], face=kind["accent"],
                  label=kind["death"][1], size=size * 0.75)
-    shown = table[table["p_above"] >= LABEL_PRESENCE].sort_values("rank", kind="stable")
-    frame.unplaced = "No room on the map to label {names}: see ranking.png and the table."
-    for row in shown.head(LABELLED).itertuples():
-        frame.label(row.x, row.y, f"#{row.feature_id} {figure_text(row.expected)} {unit} · "
-                                  f"first {share_text(row.p_first)}", name=f"#{row.feature_id}")
-    return frame.figure()
+
+
+def _group_label(members, share, unit: str) -> str:
+    """A map label for a group (one row: a feature alone): each member's id and
+    figure on the DEM as given (``*``: bimodal), then (on a second line for a
+    group) the place they trade and each one's share, or P(ranks first); never
+    a mean."""
+    from ..summary.ranks import ordinal, traded_place
+
+    names = " | ".join(f"#{r.feature_id} {figure_text(r.unperturbed)} {unit}"
+                       + ("*" if r.bimodal else "") for r in members.itertuples())
+    traded = traded_place(members, share)
+    firsts = members["p_first"].to_numpy(float)
+    if traded is not None:
+        k, shares = traded
+        text = f"{names}\n{ordinal(k) if k > 1 else 'first'} " + _shares(shares)
+        if k > 1 and firsts.max() >= 0.005:
+            text += " · first " + _shares(firsts)
+        return text
+    return f"{names}{chr(10) if len(members) > 1 else ' · '}first " + _shares(firsts)
+
+
+def _shares(values) -> str:
+    """Shares as percentages joined by ' | ', the sign once: '80 | 20%'."""
+    texts = [share_text(v) for v in values]
+    return " | ".join(t[:-1] if t.endswith("%") else t for t in texts[:-1]) + (
+        " | " if len(texts) > 1 else "") + texts[-1]
 
 
 def _pooled_view(result: RunResult, features: FeatureSummary, main: str):
@@ -264,14 +347,18 @@ def _round_up(x: float) -> float:
     return 1.0
 
 
-def catchment_map(result: RunResult) -> Figure:
+def catchment_map(result: RunResult, summary=None) -> Figure:
     """The quick-look of a catchment run.
 
     With outlets: the divide layer in colour, each outlet's sub-catchment
-    outlined where it holds in at least 50% (solid) and 90% (dashed) of
-    realisations, one colour per outlet, outlets marked as given and
-    labelled. Without outlets: channel probability. Layers are found by their
-    role in :mod:`terrain.layers`.
+    (the cells whose first chosen outlet downstream it is; nested outlets
+    split their parent) outlined where it holds in at least 50% (solid) and
+    90% (dashed) of realisations, one colour per outlet; each outlet as given
+    (labelled with its id) and its most frequent snapped cell, where the run
+    measured, with the share of realisations that snapped there, tied by a
+    thin line. Without outlets: channel probability. Layers are found by
+    their role in :mod:`terrain.layers`; ``summary`` is the run's
+    :class:`terrain.summary.catchments.CatchmentSummary` (made here if not given).
     """
     job, dem = result.job, result.dem
     how = f"{job.conditioning}, D{job.connectivity}"
@@ -304,31 +391,66 @@ def catchment_map(result: RunResult) -> Figure:
         frame.key("in at least 50% of realisations", ls="solid")
         frame.key("in at least 90% of realisations", ls="dashed")
     _outlets(frame, [(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)])
+    _snapped(frame, _outlet_rows(result, summary))
     return frame.figure()
+
+
+def _outlet_rows(result: RunResult, summary):
+    """The outlets table of a run (as given, most frequent snapped cell, share)."""
+    if summary is not None and "outlets" in summary.frames:
+        return summary.frames["outlets"]
+    from ..summary.catchments import outlet_table
+
+    return outlet_table(result)
+
+
+def _snapped(frame: MapFrame, outlets) -> None:
+    """Each outlet's most frequent snapped cell, tied to the point as given by a
+    thin line and labelled with the share of realisations that snapped there."""
+    ok = np.isfinite(outlets["snapped_x"].to_numpy(float))
+    rows = outlets[ok]
+    if rows.empty:
+        return
+    frame.lines([((a, b), (c, d)) for a, b, c, d in zip(rows["x"], rows["y"], rows["snapped_x"],
+                                                        rows["snapped_y"])],
+                colour=INK, lw=0.8, label="outlet as given to its snapped cell")
+    frame.points(rows["snapped_x"], rows["snapped_y"], marker="o", face="#f2c14e",
+                 label="most frequent snapped cell (share of realisations beside it)", size=7.0)
+    for row in rows.itertuples():
+        frame.label(row.snapped_x, row.snapped_y, f"snapped {share_text(row.snapped_share)}",
+                    name=f"{short(str(row.outlet_id), 24)} snapped")
 
 
 def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
     """Which feature is first, and how sure: the ranking chart of a peaks or
     depressions run.
 
-    For the top :data:`RANKED` features by expected figure: on the left each
-    feature's 5-95% range over realisations as a bar, its expected value and
-    its value on the DEM as given; on the right P(rank = k) for k = 1..10
-    (``features.rank_share``), the probabilities written in the cells (blank
-    where the feature never ranked k-th).
+    The rows are every feature holding some rank k <= 10 in at least 1% of
+    realisations (with the rest of its group), at most :data:`RANKED`, in
+    table order (median rank, then expected figure, a group's members
+    together on a shaded band, bracketed on the right with the place they
+    trade and each one's share): selected by rank probability, never by a
+    mean. On the left each feature's 5-95% range over realisations as a bar,
+    its expected value and its value on the DEM as given; a bimodal figure
+    gets one bar per cluster of outcomes, with its share, and its mean is
+    drawn hollow (no realisation lies near it). On the right P(rank = k) for
+    k = 1..10 (``features.rank_share``), written in the cells (blank where
+    the feature never ranked k-th).
     """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
+
+    from ..summary.ranks import RANK_MASS, ordinal, ranked_rows
 
     job, table = result.job, features.table
     kind = _KIND[job.kind]
     unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.vertical_units,
                             job.weight))
-    rows = table.sort_values("rank", kind="stable").head(RANKED)
-    n = max(len(rows), 1)
     share = features.rank_share
+    rows, left_out = ranked_rows(table, share, RANKED)
+    n = max(len(rows), 1)
     kmax = share.shape[1] if share is not None and share.shape[1] else 1
-    fig = Figure(figsize=(11.0, max(4.4, 2.6 + 0.4 * n)), dpi=CHART_DPI, layout="constrained")
+    fig = Figure(figsize=(12.0, max(4.6, 2.8 + 0.4 * n)), dpi=CHART_DPI, layout="constrained")
     FigureCanvasAgg(fig)
     if rows.empty:
         ax = fig.subplots()
@@ -339,11 +461,15 @@ def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
     else:
         left, right = fig.subplots(1, 2, sharey=True,
                                    gridspec_kw=dict(width_ratios=[1.0, max(0.4, 0.08 * kmax)]))
-        _ranges(left, rows, kind, unit)
+        _ranges(left, rows, kind, unit, features.clusters)
         _rank_matrix(right, rows, share, kmax, kind)
+        _group_bands((left, right), rows, share,
+                     "share a top" if job.kind == "peaks" else "share a floor")
         left.set_ylim(n - 0.5, -0.5)
-    fig.suptitle(f"Which {kind['feature']} ranks first, and how sure? The {len(rows)} largest of "
-                 f"{len(table)} features by expected {kind['figure']}",
+    more = (f"; {left_out} more in ranks.csv" if left_out else "")
+    fig.suptitle(f"Which {kind['feature']} ranks first, and how sure?\nThe {len(rows)} of "
+                 f"{len(table)} features that rank 1st-{ordinal(kmax)} in at least "
+                 f"{RANK_MASS:.0%} of realisations, by median rank{more}",
                  fontsize=FONT_PT + 3, weight="bold")
     fig.supxlabel("\n".join(textwrap.wrap(run_footer(result), 150) + textwrap.wrap(CAUTION, 150)),
                   fontsize=FONT_PT, color="0.25")
@@ -351,36 +477,120 @@ def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
 
 
 CHART_DPI = 110
+GROUP_BAND = "#e9e4f2"  # the shaded band behind a group's rows
 
 
-def _ranges(ax, rows, kind, unit) -> None:
-    """The left panel: 5-95% bars, expected and unperturbed markers, and their legend."""
+def _ranges(ax, rows, kind, unit, clusters) -> None:
+    """The left panel: 5-95% bars (one per cluster where bimodal, with its share),
+    expected and unperturbed markers, and their legend."""
     y = np.arange(len(rows))
     colour = palette(kind["palette"])(0.45)
     p05, p95 = rows["p05"].to_numpy(float), rows["p95"].to_numpy(float)
-    bars = ax.hlines(y, p05, p95, color=colour, lw=8, label="5-95% of realisations")
-    mean, = ax.plot(rows["expected"], y, ls="none", marker="o", ms=7, mfc=INK, mec="white",
-                    label="expected (mean)")
+    split = rows["bimodal"].to_numpy(bool) & (rows["feature_id"].isin(clusters.index).to_numpy()
+                                              if clusters is not None else False)
+    whole = ~split
+    bars = ax.hlines(y[whole], p05[whole], p95[whole], color=colour, lw=8,
+                     label="5-95% of realisations")
+    handles = [bars]
+    values = [p05, p95, rows["unperturbed"].to_numpy(float)]
+    if split.any():
+        c = clusters.loc[rows["feature_id"][split]]
+        for side in ("low", "high"):
+            ax.hlines(y[split], c[f"{side}_p05"], c[f"{side}_p95"], color=colour, lw=8)
+            values += [c[f"{side}_p05"].to_numpy(float), c[f"{side}_p95"].to_numpy(float)]
+        handles.append(ax.hlines([], [], [], color=colour, lw=8,
+                                 label="bimodal: each cluster's 5-95%, its share"))
+    values = np.concatenate(values)
+    log = _x_scale(ax, values, room=3.0 if split.any() else 1.6, zero=bool((values <= 0).any()))
+    if split.any():
+        _cluster_shares(ax, y[split], c, log, colour)
+    mean, = ax.plot(rows["expected"][whole], y[whole], ls="none", marker="o", ms=7, mfc=INK,
+                    mec="white", label="expected (mean)")
+    handles.append(mean)
+    if split.any():
+        handles.append(ax.plot(rows["expected"][split], y[split], ls="none", marker="o", ms=7,
+                               mfc="none", mec="0.45", mew=1.2,
+                               label="mean of a bimodal figure (no outcome)")[0])
     given, = ax.plot(rows["unperturbed"], y, ls="none", marker="D", ms=7, mfc="none",
                      mec=kind["accent"], mew=1.8, label="on the DEM as given")
-    values = np.r_[p05, p95, rows["unperturbed"].to_numpy(float)]
-    positive = values[values > 0]
-    log = bool(positive.size) and positive.max() / positive.min() > 20
-    if log:
-        from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
-
-        ax.set_xscale("log")
-        ax.set_xlim(positive.min() / 1.4, positive.max() * 1.4)
-        ax.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
-        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-        ax.xaxis.set_minor_locator(NullLocator())
-    ax.set_xlabel(f"{kind['figure']} ({unit}{', log scale' if log else ''})", fontsize=FONT_PT + 1)
+    handles.append(given)
+    ax.set_xlabel(f"{kind['figure']} ({unit}{', log scale' if log else ''}"
+                  f"{'; 0 where not counted' if (values <= 0).any() else ''})",
+                  fontsize=FONT_PT + 1)
     ax.set_yticks(y, [f"#{i}" for i in rows["feature_id"]])
     ax.tick_params(labelsize=FONT_PT)
     ax.tick_params(which="minor", axis="y", length=0)
     ax.grid(axis="x", alpha=0.3)
-    ax.legend(handles=[bars, mean, given], loc="lower left", bbox_to_anchor=(0.0, 1.01), ncols=3,
-              fontsize=FONT_PT, frameon=False, borderaxespad=0.0)
+    ax.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.01), ncols=2,
+              fontsize=FONT_PT, frameon=False, borderaxespad=0.0, handlelength=1.6,
+              columnspacing=1.0)
+
+
+def _x_scale(ax, values: np.ndarray, room: float = 1.6, zero: bool = False) -> bool:
+    """A log x axis when the positive values span more than 20 times; returns
+    whether. With ``zero`` a log axis keeps a strip at its left for the figure
+    0 (not counted), marked off by a dotted line and ticked "0"; ``room`` times
+    the largest value is left on its right (for the clusters' shares)."""
+    positive = values[np.isfinite(values) & (values > 0)]
+    log = bool(positive.size) and positive.max() / positive.min() > 20
+    if not log and positive.size and room > 1.6:
+        ax.set_xlim(right=positive.max() * (1 + 0.12 * room))
+    if log:
+        from matplotlib.ticker import FixedLocator, FuncFormatter, LogLocator, NullLocator
+
+        lo, hi = positive.min() / 1.6, positive.max() * room
+        left = lo / ZERO_STRIP if zero else lo
+        ax.set_xscale("log")
+        ax.set_xlim(left, hi)
+        ticks = [t for t in LogLocator(subs=(1.0, 2.0, 5.0)).tick_values(lo, hi) if lo <= t <= hi]
+        ax.xaxis.set_major_locator(FixedLocator([math.sqrt(left * lo)] * zero + ticks))
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, i: "0" if zero and i == 0
+                                                   else f"{v:g}"))
+        ax.xaxis.set_minor_locator(NullLocator())
+        if zero:
+            ax.axvline(lo, color="0.5", lw=0.8, ls="dotted", zorder=1)
+    return log
+
+
+ZERO_STRIP = 6.0  # on a log axis, the strip for 0 spans this factor left of the smallest value
+
+
+def _cluster_shares(ax, y, c, log: bool, colour) -> None:
+    """Each cluster's share of realisations beside its bar; a cluster at 0 (not
+    counted) in the strip for 0 on a log axis."""
+    zero = math.sqrt(ax.get_xlim()[0] * ax.get_xlim()[0] * ZERO_STRIP) if log else 0.0
+    for yy, row in zip(y, c.itertuples()):
+        for side in ("low", "high"):
+            p95 = getattr(row, f"{side}_p95")
+            text = share_text(getattr(row, f"{side}_share"))
+            at = zero if (log and p95 <= 0) else p95
+            if log and p95 <= 0:
+                ax.plot([zero], [yy], ls="none", marker="|", ms=14, mew=8,
+                        color=colour, zorder=2)
+            ax.annotate(text, (at, yy), xytext=(10, 0), textcoords="offset points", ha="left",
+                        va="center", fontsize=FONT_PT, color=INK, gid="cluster_share")
+
+
+def _group_bands(axes, rows, share, place: str) -> None:
+    """A shaded band behind each group's rows on both panels, and on the right of
+    the rank matrix a bracket with the place its members trade and their shares."""
+    from ..summary.ranks import ordinal, traded_place
+
+    right = axes[-1]
+    start = 0
+    for _, members in rows.groupby("group", sort=False):
+        end = start + len(members) - 1
+        if end > start:
+            for ax in axes:
+                ax.axhspan(start - 0.46, end + 0.46, color=GROUP_BAND, zorder=0.1, lw=0)
+            traded = traded_place(members, share)
+            text = f"{ordinal(traded[0])}: {_shares(traded[1])}" if traded else place
+            right.annotate("", xy=(1.02, start - 0.3), xytext=(1.02, end + 0.3),
+                           xycoords=("axes fraction", "data"),
+                           arrowprops=dict(arrowstyle="-[", lw=1.0, color=INK))
+            right.text(1.045, (start + end) / 2, text, transform=right.get_yaxis_transform(),
+                       ha="left", va="center", fontsize=FONT_PT, color=INK, gid="group_label")
+        start = end + 1
 
 
 def _rank_matrix(ax, rows, share, kmax, kind) -> None:
@@ -391,7 +601,7 @@ def _rank_matrix(ax, rows, share, kmax, kind) -> None:
     m = share.reindex(ids).to_numpy(float) if share is not None else np.zeros((len(ids), kmax))
     cmap, norm = palette(kind["palette"]), Normalize(0.0, 1.0)
     ax.imshow(np.ma.masked_where(m <= 0, m), cmap=cmap, norm=norm, aspect="auto",
-              interpolation="nearest", extent=(0.5, kmax + 0.5, len(ids) - 0.5, -0.5))
+              interpolation="nearest", extent=(0.5, kmax + 0.5, len(ids) - 0.5, -0.5), zorder=0.5)
     for i, row in enumerate(m):
         for k, p in enumerate(row):
             if p > 0:

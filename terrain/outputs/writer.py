@@ -41,6 +41,7 @@ from ..jobs.credit import LOG_FIELDS
 from ..layers import DRAINAGE_NOTE, layer_windows, read_window, spec, units
 from ..summary.catchments import FRAME_COLUMN_KINDS
 from ..summary.features import COLUMN_KINDS
+from ..summary.ranks import RANK_COLUMN_KINDS
 from ..sweep import SENSITIVITY_COLUMN_KINDS, SWEEP_COLUMN_KINDS
 from ..version import __version__
 from . import plot
@@ -204,10 +205,11 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     clock = _Clock()
     with clock("layers"):
         write_layers(out, result, command_line=command_line)
-    gpkg, csv = (f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv")))
+    gpkg, csv, ranks = (f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv")))
     with clock("tables"):
         write_frames(out / gpkg, features.frames, vector_descriptions(result, features.frames))
         write_csv(out / csv, rounded(features.table, COLUMN_KINDS, geographic=result.dem.geographic))
+        write_csv(out / ranks, rounded(features.ranks, RANK_COLUMN_KINDS))
     with clock("figures"), plain_text():
         write_figure(out / "quicklook.png", plot.feature_map(result, features))
         write_figure(out / "ranking.png", plot.ranking_chart(result, features))
@@ -243,7 +245,7 @@ def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str 
                 write_csv(out / f"{name}.csv",
                           rounded(frame, FRAME_COLUMN_KINDS[name], geographic=result.dem.geographic))
     with clock("figures"), plain_text():
-        write_figure(out / "quicklook.png", plot.catchment_map(result))
+        write_figure(out / "quicklook.png", plot.catchment_map(result, summary))
     job = result.job
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**job.describe(), "outlets_file": outlets_path})

@@ -10,6 +10,15 @@ Monte Carlo mean over realisations, with a valid standard error. A region
 is a row of the tables when it is counted in at least the job's
 ``min_presence`` share of realisations.
 
+A region is also a row when it holds one of the first :data:`RANKS` ranks
+in some realisation, so the rank distribution (``ranks.csv``,
+:mod:`terrain.summary.ranks`) names only rows. Ranks are described whole
+(``median_rank``, ``p_top3``, ``p_top10``; ``expected_rank`` is a mean), a
+figure that splits into two clusters of outcomes is flagged (``bimodal``),
+and features that trade a rank or share a top or floor within the error
+carry one ``group`` id. Rows are ordered by median rank, then expected
+figure, a group's members together (``rank`` is the place in that order).
+
 Two kinds of uncertainty are kept apart: ``p05``/``p95`` (and the other
 5-95% columns) are the spread the DEM error causes; ``se`` and the ``*_se``
 columns are how precisely the Monte Carlo run estimated a mean.
@@ -17,6 +26,7 @@ columns are how precisely the Monte Carlo run estimated a mean.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -29,17 +39,31 @@ from ..engine.persistence import AREA_QUANTUM, VOLUME_QUANTUM, count_ponding, pi
 from ..jobs.credit import log_weights, region_figures
 from ..jobs.credit_blocked import grid_values_at, ponding_totals
 from ..layers import layer_name, layer_windows, read_window
+from .ranks import (
+    RANKS,
+    display_order,
+    expected_ranks,
+    group_ids,
+    median_ranks,
+    ordinal_ranks,
+    rank_distribution,
+    rank_table,
+    shared_tops,
+    top_shares,
+    two_clusters,
+)
 
-__all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "TOP_SHARE", "PONDED_SHARE", "RANKS",
-           "FeatureSummary", "FigureMatrix", "figure_matrix", "rank_shares", "summarise_features",
-           "region_polygons", "unperturbed_ponding"]
+__all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "RANK_LAYER", "TOP_SHARE", "PONDED_SHARE",
+           "RANKS", "FeatureSummary", "FigureMatrix", "figure_matrix", "rank_shares",
+           "summarise_features", "region_polygons", "unperturbed_ponding"]
 
 TOP_SHARE = 0.9  # "where the top is": the fewest cells holding 90% of a summit's births
 PONDED_SHARE = 0.5  # the ponded extent: cells ponded in at least half the realisations
-RANKS = 10  # rank_shares: P(rank = k) for k = 1..RANKS
+RANK_LAYER = "ranks"  # the GeoPackage table (no geometry) of the rank distribution
 
-_COMMON = ("feature_id", "rank", "unperturbed", "expected", "p05", "p50", "p95", "se",
-           "p_above", "p_above_se", "p_first", "p_first_se", "expected_rank", "x", "y", "elevation")
+_COMMON = ("feature_id", "rank", "group", "unperturbed", "expected", "p05", "p50", "p95", "se",
+           "bimodal", "p_above", "p_above_se", "p_first", "p_first_se", "median_rank", "p_top3",
+           "p_top3_se", "p_top10", "p_top10_se", "expected_rank", "x", "y", "elevation")
 COLUMNS = {
     "peaks": _COMMON + ("col_x", "col_y", "col_elevation", "unperturbed_x", "unperturbed_y",
                         "unperturbed_col_x", "unperturbed_col_y", "unperturbed_col_elevation",
@@ -50,7 +74,8 @@ COLUMNS = {
                               "unperturbed_spill_elevation", "ponded_area_m2",
                               "ponded_area_mean_m2", "ponded_area_p05_m2", "ponded_area_p95_m2",
                               "volume_m3", "volume_mean_m3", "volume_p05_m3", "volume_p95_m3",
-                              "region_area_m2", "edge_limited_share", "unperturbed_edge_limited"),
+                              "region_area_m2", "edge_limited_share", "unperturbed_edge_limited",
+                              "extent_is_pit_cell"),
 }
 #: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`).
 COLUMN_KINDS = {
@@ -58,6 +83,9 @@ COLUMN_KINDS = {
     "p05": "vertical", "p50": "vertical", "p95": "vertical", "se": "vertical",
     "p_above": "probability", "p_above_se": "probability", "p_first": "probability",
     "p_first_se": "probability", "expected_rank": "mean_rank", "x": "coordinate",
+    "group": "id", "bimodal": "flag", "median_rank": "integer", "p_top3": "probability",
+    "p_top3_se": "probability", "p_top10": "probability", "p_top10_se": "probability",
+    "extent_is_pit_cell": "flag",
     "y": "coordinate", "elevation": "vertical", "unperturbed_x": "coordinate",
     "unperturbed_y": "coordinate", "region_area_m2": "area", "edge_limited_share": "probability",
     "unperturbed_edge_limited": "flag",
@@ -97,11 +125,10 @@ class FigureMatrix:
         return first
 
     def ranks(self) -> np.ndarray:
-        """(n_real, k): 1 + the number of regions with a larger figure."""
-        srt = np.sort(self.figure, axis=1)
-        k = self.ids.size
-        return np.stack([k + 1 - np.searchsorted(s, f, side="right") for s, f in
-                         zip(srt, self.figure)]) if self.figure.size else self.figure.astype(int)
+        """(n_real, k) int32: the region's place among the regions counted in the
+        realisation (1 = the largest figure; ties: lowest id, as :meth:`first`),
+        0 where it is not counted (:func:`terrain.summary.ranks.ordinal_ranks`)."""
+        return ordinal_ranks(self.figure, self.present)
 
 
 def figure_matrix(log: dict, n_real: int) -> FigureMatrix:
@@ -136,6 +163,13 @@ class FeatureSummary:
     rank_share : pandas.DataFrame, optional
         P(rank = k) per feature (rows by ``feature_id``, in table order) and
         rank k = 1.. (columns), from :func:`rank_shares`.
+    ranks : pandas.DataFrame, optional
+        The same in long form (``ranks.csv``): columns
+        :data:`terrain.summary.ranks.RANK_COLUMNS`; for every rank k the listed
+        features carry its whole probability (feature 0: fewer than k counted).
+    clusters : pandas.DataFrame, optional
+        Per bimodal feature (index ``feature_id``): the share of realisations
+        and the 5-95% range of its lower and upper cluster of outcomes.
     """
 
     regions: object
@@ -144,13 +178,15 @@ class FeatureSummary:
     top: object
     settings: dict
     rank_share: pd.DataFrame | None = None
+    ranks: pd.DataFrame | None = None
+    clusters: pd.DataFrame | None = None
 
 
 def _mc(share: np.ndarray, n: int) -> np.ndarray:
     return np.sqrt(share * (1 - share) / max(n, 1))
 
 
-def _figure_columns(fm: FigureMatrix, cols: np.ndarray, n: int) -> dict:
+def _figure_columns(fm: FigureMatrix, cols: np.ndarray, n: int, ranks: np.ndarray) -> dict:
     f = fm.figure[:, cols]
     empty = n == 0
     p_above = fm.present[:, cols].mean(axis=0) if not empty else np.zeros(cols.size)
@@ -158,12 +194,16 @@ def _figure_columns(fm: FigureMatrix, cols: np.ndarray, n: int) -> dict:
     pct = np.percentile(f, [5, 50, 95], axis=0) if not empty else np.zeros((3, cols.size))
     with np.errstate(invalid="ignore", divide="ignore"):
         edge = fm.edge[:, cols].sum(0) / fm.present[:, cols].sum(0)
+    r = ranks[:, cols]
+    top3, top10 = top_shares(r, 3), top_shares(r, 10)
     return {"expected": f.mean(axis=0) if not empty else np.zeros(cols.size),
             "p05": pct[0], "p50": pct[1], "p95": pct[2],
             "se": f.std(axis=0) / np.sqrt(max(n, 1)),
             "p_above": p_above, "p_above_se": _mc(p_above, n),
             "p_first": p_first, "p_first_se": _mc(p_first, n),
-            "expected_rank": fm.ranks()[:, cols].mean(axis=0) if not empty else np.zeros(cols.size),
+            "median_rank": pd.array(median_ranks(r), dtype="Int64"),
+            "p_top3": top3, "p_top3_se": _mc(top3, n), "p_top10": top10,
+            "p_top10_se": _mc(top10, n), "expected_rank": expected_ranks(r),
             "edge_limited_share": edge}
 
 
@@ -344,10 +384,10 @@ def _pond_columns(result, ids: np.ndarray) -> dict:
     return out
 
 
-def _table(result, fm: FigureMatrix, rows: np.ndarray) -> pd.DataFrame:
+def _table(result, fm: FigureMatrix, rows: np.ndarray, ranks: np.ndarray) -> dict:
     dem, job, n = result.dem, result.job, result.n
     ids = fm.ids[rows]
-    cols = _figure_columns(fm, rows, n)
+    cols = _figure_columns(fm, rows, n, ranks)
     labels = job.regions.labels
     best = _best_cells(result, labels, ids)
     bx, by = _xy(dem, best)
@@ -360,41 +400,95 @@ def _table(result, fm: FigureMatrix, rows: np.ndarray) -> pd.DataFrame:
             **_unperturbed(dem, job, ids), "region_area_m2": _areas(dem, labels, ids)}
     if job.kind == "depressions":
         data.update(_pond_columns(result, ids))
-    rank = np.empty(ids.size, np.int64)
-    rank[np.lexsort((ids, -data["expected"]))] = np.arange(1, ids.size + 1)
-    data["rank"] = rank
     return data
+
+
+def _groups(result, ids: np.ndarray, given: np.ndarray, split: np.ndarray,
+            p: np.ndarray) -> np.ndarray:
+    """Each row's group (:func:`terrain.summary.ranks.group_ids`): rows that trade a
+    rank, or share a top or floor within the error (one's key col or spill
+    point on the DEM as given touches the other's region, and each takes the
+    other's role in some realisations: :func:`terrain.summary.ranks.shared_tops`)."""
+    dem, reg = result.dem, result.job.regions
+    pairs = shared_tops(reg.labels, reg.death[ids - 1], dem.shape, ids, given, split,
+                        grid_values_at)
+    return group_ids(ids, p, pairs)
+
+
+def _clusters(fm: FigureMatrix, rows: np.ndarray, bimodal: np.ndarray,
+              split: np.ndarray) -> pd.DataFrame:
+    """For each row whose figure is bimodal: the share of realisations in its
+    lower and upper cluster and each cluster's 5-95% range (index ``feature_id``)."""
+    f = fm.figure[:, rows]
+    out = {c: [] for c in ("split", "low_share", "low_p05", "low_p95", "high_share",
+                           "high_p05", "high_p95")}
+    for j in np.flatnonzero(bimodal):
+        out["split"].append(split[j])
+        for side, values in (("low", f[f[:, j] < split[j], j]), ("high", f[f[:, j] > split[j], j])):
+            out[f"{side}_share"].append(values.size / f.shape[0])
+            lo, hi = np.percentile(values, [5, 95])
+            out[f"{side}_p05"].append(lo)
+            out[f"{side}_p95"].append(hi)
+    return pd.DataFrame(out, index=pd.Index(fm.ids[rows][bimodal], name="feature_id"))
 
 
 def summarise_features(result) -> FeatureSummary:
     """The features of a peaks or depressions run (see the module docstring)."""
     dem, job = result.dem, result.job
     fm = figure_matrix(result.log, result.n)
+    ranks = fm.ranks()
+    p, none = rank_distribution(ranks, min(RANKS, fm.ids.size))
     p_above = fm.present.mean(axis=0) if result.n else np.zeros(fm.ids.size)
-    rows = np.flatnonzero(p_above >= job.min_presence)
-    data = _table(result, fm, rows)
+    rows = np.flatnonzero((p_above >= job.min_presence) | (p.sum(axis=1) > 0))
+    data = _table(result, fm, rows, ranks)
     ids = data["feature_id"]
+    bimodal, split = two_clusters(fm.figure[:, rows])
+    data["bimodal"] = bimodal
+    data["group"] = _groups(result, ids, data["unperturbed"], split, p[rows])
+    order = display_order(data["median_rank"].to_numpy(np.float64, na_value=np.nan),
+                          data["expected"], ids, data["group"])
+    data["rank"] = np.empty(ids.size, np.int64)
+    data["rank"][order] = np.arange(1, ids.size + 1)
     share = dict(zip(ids.tolist(), data.pop(f"{_DEATH[job.kind]}_share")))
     if job.kind == "peaks":
         top = _top_cells(result.log, job.regions.labels, ids, dem.shape)
         data["top_area_m2"] = _areas(dem, top, ids)
     else:
         top = PondedTop(result, job.regions.labels, ids)
-    table = pd.DataFrame(data, columns=list(COLUMNS[job.kind])).sort_values(
+    table = pd.DataFrame(data, columns=[c for c in COLUMNS[job.kind] if c in data]).sort_values(
         "rank", kind="stable").reset_index(drop=True)
     settings = {"merge_level": job.merge_level, "min_presence": job.min_presence,
                 "top_share": TOP_SHARE if job.kind == "peaks" else None,
                 "ponded_share": PONDED_SHARE if job.kind == "depressions" else None,
                 "regions": len(job.regions), "features": len(table)}
-    frames = _frames(dem, job, table, top, table["feature_id"].map(share).to_numpy(float))
-    ranked = rank_shares(fm, table["feature_id"].to_numpy(), min(RANKS, max(fm.ids.size, 1)))
-    return FeatureSummary(job.regions, table, frames, top, settings, ranked)
+    tops, fallback = _top_polygons(dem, job, table, top)
+    if job.kind == "depressions":
+        table["extent_is_pit_cell"] = fallback
+    frames = _frames(dem, job, table, tops, table["feature_id"].map(share).to_numpy(float))
+    long = rank_table(fm.ids, p, none, result.n)
+    frames[RANK_LAYER] = _attribute_table(long)
+    kmax = max(p.shape[1], 1)
+    ranked = pd.DataFrame(np.pad(p, ((0, 0), (0, kmax - p.shape[1])))[
+        np.searchsorted(fm.ids, table["feature_id"].to_numpy())] if fm.ids.size else
+        np.zeros((len(table), kmax)), index=pd.Index(table["feature_id"].to_numpy(),
+                                                     name="feature_id"),
+        columns=range(1, kmax + 1))
+    return FeatureSummary(job.regions, table, frames, top, settings, ranked, long,
+                          _clusters(fm, rows, bimodal, split))
+
+
+def _attribute_table(frame: pd.DataFrame):
+    """A GeoPackage table without geometry (``gpkg_contents.data_type`` attributes)."""
+    import geopandas as gpd
+
+    return gpd.GeoDataFrame(frame)
 
 
 def rank_shares(fm: FigureMatrix, ids: np.ndarray, kmax: int = RANKS) -> pd.DataFrame:
     """P(rank = k) of each region in ``ids`` for k = 1..``kmax``: the share of
-    realisations in which the region is counted and exactly k - 1 regions have
-    a larger figure (regions tied at the top all rank first).
+    realisations in which the region is counted and exactly k - 1 counted
+    regions have a larger figure or an equal one and a smaller id
+    (:meth:`FigureMatrix.ranks`).
 
     Returns
     -------
@@ -405,16 +499,15 @@ def rank_shares(fm: FigureMatrix, ids: np.ndarray, kmax: int = RANKS) -> pd.Data
     out = np.zeros((ids.size, kmax))
     if ids.size and fm.figure.shape[0]:
         cols = np.searchsorted(fm.ids, ids)
-        ranks = np.where(fm.present[:, cols], fm.ranks()[:, cols], 0)
-        for k in range(1, kmax + 1):
-            out[:, k - 1] = (ranks == k).mean(axis=0)
+        out = rank_distribution(fm.ranks()[:, cols], kmax)[0]
     return pd.DataFrame(out, index=pd.Index(ids, name="feature_id"), columns=range(1, kmax + 1))
 
 
 def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
     """Shapely (multi)polygons of the cells labelled with each of ``ids``, in CRS
     coordinates; ``labels`` is an array or anything read by window
-    (``labels[r0:r1, c0:c1]``), traced window by window and joined."""
+    (``labels[r0:r1, c0:c1]``), traced window by window, joined and made valid
+    (None for an id without cells)."""
     from rasterio.features import shapes
     from rasterio.transform import Affine
     from shapely.geometry import shape
@@ -432,18 +525,55 @@ def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
         for geom, value in shapes(lab, mask=mask, connectivity=connectivity,
                                   transform=t * Affine.translation(c0, r0)):
             parts[where[int(value)]].append(shape(geom))
-    return [unary_union(p) if p else None for p in parts]
+    return [_valid(unary_union(p)) if p else None for p in parts]
 
 
-def _frames(dem: Dem, job, table: pd.DataFrame, top: np.ndarray, share: np.ndarray) -> dict:
-    """The GeoPackage layers (:data:`LAYER_NAMES`): the polygons and the points of
-    the table's rows, and a point layer of each feature's most credited key col /
-    spill point (``share``: its share of the feature's col / spill credit)."""
+def _valid(geom):
+    """``geom`` made valid (OGC simple features): cells of an 8-connected region that
+    touch only at a corner trace a ring that touches itself, which GEOS calls a
+    self-intersection; such a ring is split at the corner into polygons that touch
+    there. Only polygonal parts are kept."""
+    import shapely
+    from shapely.geometry import MultiPolygon
+
+    if geom.is_valid:
+        return geom
+    fixed = shapely.make_valid(geom)
+    parts = [g for g in getattr(fixed, "geoms", [fixed]) if g.geom_type in ("Polygon",
+                                                                          "MultiPolygon")]
+    flat = [q for g in parts for q in getattr(g, "geoms", [g])]
+    return flat[0] if len(flat) == 1 else MultiPolygon(flat)
+
+
+def _top_polygons(dem: Dem, job, table: pd.DataFrame, top) -> tuple[list, np.ndarray]:
+    """The ``summits`` / ``pits`` polygons of the table's rows, and where each one
+    fell back to its most credited summit or pit cell (a one-cell square)
+    because the top or ponded extent is empty: a depression that holds water
+    at least the cut-off deep in fewer than half the realisations. (A summit's
+    top is never empty: every row was counted, so its summit was somewhere.)"""
+    from rasterio.transform import Affine
+    from shapely.geometry import Polygon
+
+    polys = region_polygons(dem, top, table["feature_id"].to_numpy(),
+                            connectivity=job.connectivity)
+    fallback = np.array([g is None or g.is_empty for g in polys], bool)
+    t = Affine(*dem.transform)
+    for i in np.flatnonzero(fallback):
+        col, row = (math.floor(v) for v in ~t * (table["x"].iat[i], table["y"].iat[i]))
+        polys[i] = Polygon([t * (col, row), t * (col + 1, row), t * (col + 1, row + 1),
+                            t * (col, row + 1)])
+    return polys, fallback
+
+
+def _frames(dem: Dem, job, table: pd.DataFrame, tops: list, share: np.ndarray) -> dict:
+    """The GeoPackage layers (:data:`LAYER_NAMES`): the polygons (``tops``, from
+    :func:`_top_polygons`) and the points of the table's rows, and a point
+    layer of each feature's most credited key col / spill point (``share``: its
+    share of the feature's col / spill credit)."""
     import geopandas as gpd
     from shapely.geometry import Point
 
     ids = table["feature_id"].to_numpy()
-    tops = region_polygons(dem, top, ids, connectivity=job.connectivity)
     whole = region_polygons(dem, job.regions.labels, ids, connectivity=job.connectivity)
     points = [Point(x, y) for x, y in zip(table["x"], table["y"])]
     top_name, point_name, region_name, death_name = LAYER_NAMES[job.kind]

@@ -205,7 +205,7 @@ def test_cli_channels_without_outlets(tmp_path, cairn):
                          "--conditioning", "fill")
     assert code == 0, err
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [
-        "channel_probability.tif", "quicklook.png", "run.json"]
+        "channel_probability.tif", "drainage_area.tif", "quicklook.png", "run.json"]
     with rasterio.open(tmp_path / "out" / "channel_probability.tif") as ds:
         p = ds.read(1)
     # worked example: each row's sides drain straight to the valley floor (column 10), so
@@ -235,7 +235,7 @@ def _same_layers(a, b):
     assert list(a.layers) == list(b.layers) and a.n == b.n
     for name in a.layers:
         for u, v in zip(a.layers[name], b.layers[name]):
-            assert np.array_equal(u, v), name
+            assert np.array_equal(u, v, equal_nan=True), name
     for k in a.log:
         assert np.array_equal(a.log[k], b.log[k]), k
 
@@ -257,7 +257,7 @@ def test_catchments_identical_across_backends():
                                  workers=2, chunk=5))
     _same_layers(a, run_ensemble(dem, job, m, realisations=12, seed=4, backend="dask", workers=2,
                                  chunk=7))
-    assert len(a.layers) == 2 + 2 * 3 and a.log["subarea"].shape == (36,)
+    assert len(a.layers) == 3 + 2 * 3 and a.log["subarea"].shape == (36,)
 
 
 def test_catchments_checkpoint_resume_and_adaptive_stopping(tmp_path):
@@ -281,7 +281,8 @@ def test_catchments_checkpoint_resume_and_adaptive_stopping(tmp_path):
                        check_every=10, min_realisations=10)
     assert res.info["stopped_early"] and res.n % 10 == 0 and res.n < 400
     assert res.info["stop_statistic"] < 0.15
-    worst = max(float(se.max()) for _, se in res.layers.values())
+    worst = max(float(res.layers[name][1].max()) for name in res.layers
+                if name != "drainage_area")  # probabilities: their standard errors
     assert worst == pytest.approx(res.info["stop_statistic"])
 
 
@@ -405,8 +406,13 @@ def test_cli_bad_drainage_options(tmp_path, cairn, args, needle):
 
 def test_catchment_memory_is_stated_and_small(cairn, tmp_path):
     dem, _ = _two_gauges(tmp_path)
-    parent, worker = CatchmentJob(["a", "b", "c"], np.zeros((3, 2))).memory_per_cell(4)
-    assert parent < 60 and worker < 60  # the budget for 3 outlets
+    job = CatchmentJob(["a", "b", "c"], np.zeros((3, 2)))
+    parent, worker = job.memory_per_cell(4, cells=10**6)
+    # as itemised in terrain/jobs/catchments.py: 49 + 8k + 2K in the accumulating process
+    # (K = 145 drainage-area codes for a million cells) and 135 + 6k per worker
+    assert parent == 49 + 8 * 3 + 2 * 145 == 363 and worker == 135 + 6 * 3 == 153
+    # the drainage-area histogram grows by 16 bytes per cell per doubling of the grid
+    assert job.memory_per_cell(4, cells=2 * 10**6)[0] == parent + 16
     code, out, _ = cairn("inspect", dem)
     assert code == 0 and f"~{worker} bytes per cell per worker" in out
     assert "memory (catchments, 3 outlets)" in out

@@ -41,7 +41,7 @@ if TYPE_CHECKING:
     from ..summary.features import FeatureSummary
 
 __all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_map",
-           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED"]
+           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED", "area_text", "figure_text"]
 
 LABELLED = 12  # features labelled on a map, at most
 LABEL_PRESENCE = 0.5  # ... among those counted in at least this share of realisations
@@ -70,13 +70,27 @@ _KIND = {
 def run_footer(result: RunResult, layer: str | None = None) -> str:
     """The footer line of a run's figures: error model, vertical units, realisations,
     seed, and the note that travels with ``layer`` (:mod:`terrain.layers`), if any."""
-    text = (f"Error model: {result.model.describe()}, vertical units "
-            f"{short_unit(result.dem.vertical_units)}; {result.n} realisations, seed "
-            f"{result.params.get('seed')}.")
+    u = result.dem.unit_label
+    text = (f"Error model: {result.model.describe(u)}{_settings(result)}; elevations in {u}; "
+            f"{result.n} realisations, seed {result.params.get('seed')}.")
     note = spec(layer).note if layer else ""
     if note:
         text += f" The {' '.join(spec(layer).name.split('_{id}')[0].split('_'))} layer {note}."
     return text
+
+
+def _settings(result) -> str:
+    """The resolved cut-off of a peaks or depressions run, as the footer echoes it
+    (``, minimum depth 7.5 m (3 x RMSE)``); empty for other runs."""
+    job = result.job
+    if getattr(job, "kind", None) not in ("peaks", "depressions") or job.threshold is None:
+        return ""
+    from .. import defaults
+
+    what = "prominence" if job.kind == "peaks" else "depth"
+    rule = (f" ({defaults.CUTOFF_PER_RMSE:g} × RMSE)" if "threshold" in job.from_defaults
+            else "")
+    return f", minimum {what} {figure_text(job.threshold)} {result.dem.unit_label}{rule}"
 
 
 def bar_label(name: str, vertical_units: str | None, weight: str = "persistence") -> str:
@@ -94,6 +108,13 @@ def figure_text(v: float) -> str:
     if not np.isfinite(v):
         return "-"
     return f"{v:.0f}" if abs(v) >= 100 else f"{v:.3g}"
+
+
+def area_text(a: float) -> str:
+    """An area as a reader writes it: ``30 km²`` from 1 km² up, else ``20,000 m²``."""
+    if not np.isfinite(a):
+        return "-"
+    return f"{a / 1e6:.4g} km²" if a >= 1e6 else f"{a:,.4g} m²" if a < 1000 else f"{a:,.0f} m²"
 
 
 def share_text(p: float) -> str:
@@ -190,7 +211,7 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     """
     dem, job, table = result.dem, result.job, features.table
     kind = _KIND[job.kind]
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.vertical_units, job.weight))
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.unit_label, job.weight))
     sub = (f"labels: #id, expected {kind['figure']}, P(ranks first) - the {LABELLED} largest "
            f"features counted in at least {LABEL_PRESENCE:.0%} of realisations")
     main = layer_name(job.kind, kind["main"])
@@ -208,7 +229,7 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     else:
         vmax, note = 1.0, f"; clear under {PONDING_FLOOR:.0%}"
     frame.layer(values, cmap=palette(kind["palette"]), vmax=vmax, sqrt=kind["sqrt"],
-                label=bar_label(main, dem.vertical_units) + note,
+                label=bar_label(main, dem.unit_label) + note,
                 floor=0.0 if job.kind == "peaks" else PONDING_FLOOR)
     if job.kind == "depressions":
         frame.contours(np.where(inside, np.nan, values), [0.5], colour=INK,
@@ -276,13 +297,7 @@ def catchment_map(result: RunResult) -> Figure:
     job, dem = result.job, result.dem
     how = f"{job.conditioning}, D{job.connectivity}"
     if not job.ids:
-        main = layer_name("catchments", "channel")
-        frame = MapFrame(dem, title="Channels: where the drainage area reaches the channel area",
-                         subtitle=f"drainage area >= {job.channel_area:g} m²; {how}",
-                         footer=run_footer(result, main), caution=CAUTION)
-        frame.layer(result.layers[main][0], cmap=palette("water"), vmax=1.0, floor=DIVIDE_FLOOR,
-                    label=bar_label(main, dem.vertical_units) + f"; clear under {DIVIDE_FLOOR:.0%}")
-        return frame.figure()
+        return _drainage_map(result, how)
     main = layer_name("catchments", "divide")
     sub = LAYERS[layer_name("catchments", "subcatchment")]
     frame = MapFrame(dem, title="Sub-catchments: where each outlet's share holds, and where the "
@@ -291,7 +306,7 @@ def catchment_map(result: RunResult) -> Figure:
                               f"at least 50% (solid) and 90% (dashed) of realisations; {how}",
                      footer=run_footer(result, main), caution=CAUTION)
     frame.layer(result.layers[main][0], cmap=palette("divides"), vmax=1.0, floor=DIVIDE_FLOOR,
-                label=bar_label(main, dem.vertical_units) + f"; clear under {DIVIDE_FLOOR:.0%}")
+                label=bar_label(main, dem.unit_label) + f"; clear under {DIVIDE_FLOOR:.0%}")
     drawn = False
     for n, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
         name = sub.concrete(lid)
@@ -304,6 +319,27 @@ def catchment_map(result: RunResult) -> Figure:
         frame.key("in at least 50% of realisations", ls="solid")
         frame.key("in at least 90% of realisations", ls="dashed")
     _outlets(frame, [(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)])
+    return frame.figure()
+
+
+def _drainage_map(result: RunResult, how: str) -> Figure:
+    """The quick-look of a catchment run without outlets, for placing gauges: the
+    median drainage area on a log scale (from one cell's area up), with the
+    line where the channel probability reaches 50%."""
+    job, dem = result.job, result.dem
+    area = layer_name("catchments", "drainage_area")
+    channel = layer_name("catchments", "channel")
+    median = result.layers[area][0]
+    cell = float(np.min(dem.cell_area_m2()))
+    frame = MapFrame(dem, title="Drainage area: where the main stems run, for placing gauges",
+                     subtitle=f"median over realisations; line: channel (drainage area >= "
+                              f"{area_text(job.channel_area)}) in at least 50% of realisations; "
+                              f"{how}",
+                     footer=run_footer(result, area), caution=CAUTION)
+    frame.layer(median, cmap=palette("water"), log=True, floor=cell,
+                label="median drainage area over realisations (m²)")
+    frame.contours(result.layers[channel][0], [0.5], colour=INK,
+                   label="channel in 50% of realisations", styles=("solid",), widths=(0.8,))
     return frame.figure()
 
 
@@ -322,7 +358,7 @@ def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
 
     job, table = result.job, features.table
     kind = _KIND[job.kind]
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.vertical_units,
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.unit_label,
                             job.weight))
     rows = table.sort_values("rank", kind="stable").head(RANKED)
     n = max(len(rows), 1)

@@ -111,40 +111,60 @@ def vertical_unit(declared: str | None, given: str | None = None, *,
                       f"({', '.join(VERTICAL_UNITS)})", "vertical_unit")
 
 
-def float32_reference(z_min: float, z_max: float, value_bytes: int, rmse: float, *,
+def float32_reference(bands, lowest: float, value_bytes: int, rmse: float, *,
                       source: str = "the DEM") -> float:
     """The elevation realisations are computed relative to (their float32 frame).
 
     Realisations are float32. A DEM read as float32 (float32 or up to 16-bit
     integer bands) is exact there, so it is used as it is (reference 0). A
-    DEM read as float64 is taken relative to its lowest valid cell, so the
-    float32 values keep the input's resolution however large its elevations
-    (a DEM around 1e10 has a float32 step of 1024 at its values, but not
-    relative to its minimum).
+    DEM read as float64 is taken relative to its lowest valid cell
+    (``lowest``), so its float32 values keep the input's resolution however
+    large its elevations (around 1e10 float32 steps by 1024, but not
+    relative to the minimum).
+
+    Parameters
+    ----------
+    bands : iterable of arrays
+        The elevations (NaN on nodata), band by band (checked for float64 DEMs).
+    lowest : float
+        The lowest valid elevation.
+    value_bytes : int
+        4 (read as float32) or 8 (float64).
+    rmse : float
+        The error model's RMSE.
 
     Raises
     ------
     OptionError
-        When even relative to the reference the float32 step across the
-        DEM's range exceeds a tenth of the RMSE (the error would be drawn
-        coarser than it is stated; usually an undeclared nodata value).
+        When even relative to the reference, float32 would move some
+        elevation by more than a tenth of the RMSE (the input's resolution
+        at the scale of the error is lost: usually an undeclared nodata value
+        far from the terrain, or a very small stated error).
 
     Examples
     --------
-    >>> float32_reference(1e10, 1e10 + 100, 8, 0.5)
-    10000000000.0
-    >>> float32_reference(177.0, 532.0, 4, 0.5)
+    >>> z = np.array([1e10 + 0.25, 1e10 + 102.5])
+    >>> float32_reference([z], float(z.min()), 8, 0.5)
+    10000000000.25
+    >>> float32_reference([np.array([177.0, 532.0])], 177.0, 4, 0.5)
     0.0
     """
-    ref = float(z_min) if value_bytes > 4 else 0.0
-    span = max(abs(float(z_max) - ref), abs(float(z_min) - ref))
-    step = float(np.spacing(np.float32(span)))
-    if step > rmse / 10:
+    if value_bytes <= 4:
+        return 0.0
+    ref, worst, where = float(lowest), 0.0, 0.0
+    for z in bands:
+        rel = np.asarray(z, np.float64) - ref
+        moved = np.abs(rel.astype(np.float32).astype(np.float64) - rel)
+        if np.isfinite(moved).any():
+            k = int(np.nanargmax(moved))
+            if moved.flat[k] > worst:
+                worst, where = float(moved.flat[k]), float(rel.flat[k])
+    if worst > rmse / 10:
         raise OptionError(
-            f"{source}: the elevations span {span:.6g} from {ref:.6g}; realisations are computed "
-            f"in float32, whose step there ({step:.3g}) exceeds a tenth of the {{rmse}} "
-            f"({rmse:.3g}) -- check for an undeclared nodata value ({{nodata}}) or a wrong scale",
-            "rmse", "nodata")
+            f"{source}: realisations are computed in float32, relative to the lowest cell "
+            f"({ref:.6g}); there an elevation {where:.6g} above it moves by {worst:.3g}, more "
+            f"than a tenth of the {{rmse}} ({rmse:.3g}) -- check for an undeclared nodata value "
+            "({nodata}), a wrong scale or a too small {rmse}", "rmse", "nodata")
     return ref
 
 
@@ -374,9 +394,11 @@ class Dem:
 
     def reference(self, rmse: float) -> float:
         """The elevation realisations are computed relative to (see
-        :func:`float32_reference`; refuses a range float32 cannot hold)."""
-        return float32_reference(self.lowest(), self.highest(), np.dtype(self.z.dtype).itemsize,
-                                 rmse, source=self.source)
+        :func:`float32_reference`; refuses elevations float32 cannot hold to a
+        tenth of the RMSE)."""
+        size = np.dtype(self.z.dtype).itemsize
+        bands = (np.where(nd, np.nan, z) for _, z, nd in self.bands()) if size > 4 else ()
+        return float32_reference(bands, self.lowest(), size, rmse, source=self.source)
 
     def checksum(self) -> str:
         """SHA-256 of the elevations and mask (identifies the DEM in checkpoints),

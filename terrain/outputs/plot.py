@@ -322,24 +322,25 @@ def catchment_map(result: RunResult) -> Figure:
     return frame.figure()
 
 
+DRAINAGE_FLOOR = 1.0  # the drainage map leaves clear cells draining under this share of
+#                        the channel area (hillslopes), so the network and its main stems show
+
+
 def _drainage_map(result: RunResult, how: str) -> Figure:
     """The quick-look of a catchment run without outlets, for placing gauges: the
-    median drainage area on a log scale (from one cell's area up), with the
-    line where the channel probability reaches 50%."""
+    median drainage area on a log scale, cells draining less than the channel area
+    left clear, so the network shows and its main stems stand out."""
     job, dem = result.job, result.dem
     area = layer_name("catchments", "drainage_area")
-    channel = layer_name("catchments", "channel")
     median = result.layers[area][0]
     cell = float(np.min(dem.cell_area_m2()))
+    floor = max(DRAINAGE_FLOOR * float(job.channel_area), 2 * cell)
     frame = MapFrame(dem, title="Drainage area: where the main stems run, for placing gauges",
-                     subtitle=f"median over realisations; line: channel (drainage area >= "
-                              f"{area_text(job.channel_area)}) in at least 50% of realisations; "
-                              f"{how}",
+                     subtitle=f"median over realisations, log scale; cells draining less than "
+                              f"{area_text(floor)} (the channel area) left clear; {how}",
                      footer=run_footer(result, area), caution=CAUTION)
-    frame.layer(median, cmap=palette("water"), log=True, floor=cell,
+    frame.layer(median, cmap=palette("water"), log=True, floor=floor,
                 label="median drainage area over realisations (m²)")
-    frame.contours(result.layers[channel][0], [0.5], colour=INK,
-                   label="channel in 50% of realisations", styles=("solid",), widths=(0.8,))
     return frame.figure()
 
 

@@ -159,7 +159,7 @@ def test_float64_dem_far_from_zero_keeps_its_resolution():
         res = run_ensemble(dem, CreditJob("depressions"), ErrorModel(rmse=0.5), realisations=6,
                            seed=1, backend="serial")
         runs[offset] = (res, summarise_features(res).table)
-    (r0, t0), (r1, t1) = runs[0.0], runs[1e10]
+    (_, t0), (r1, t1) = runs[0.0], runs[1e10]
     assert r1.job.reference == pytest.approx(1e10 + float(np.min(z)), abs=1e-3)
     assert float(np.spacing(np.float32(1e10))) == 1024.0
     np.testing.assert_allclose(t1["unperturbed"], t0["unperturbed"], atol=1e-5)

@@ -141,6 +141,37 @@ def test_quantiles_are_the_sample_quantiles_within_half_a_step():
     assert between > 50
 
 
+def test_quantiles_on_the_usgs_dem(usgs_dem):
+    # real terrain (matplotlib's USGS 3 arc-second DEM: integer metres, flats, geographic
+    # cells of latitude-dependent area): the bands are numpy's inverted-CDF quantiles of
+    # the realisations' own accumulations to within half a step, ordered p05 <= median <=
+    # p95, and where every realisation agrees they are exact
+    z = usgs_dem[:90, :110].astype(np.float32)
+    d = 0.00083333
+    dem = Dem.from_array(z, transform=(d, 0, -84.41375, 0, -d, 36.73291667), crs="EPSG:4326",
+                         geographic=True)
+    model = ErrorModel(rmse=2.0, range_m=500.0)
+    n, seed = 25, 7
+    res = run_ensemble(dem, CatchmentJob(), model, realisations=n, seed=seed, backend="serial")
+    w, h = dem.cell_metres()
+    sampler = ErrorSampler(model, dem.shape, (float(np.mean(h)), float(np.mean(w))))
+    accs = []
+    for i in range(n):
+        zi = sampler.draw(seed, i)
+        zi += z
+        condition(zi, method="breach", max_depth=3.0)
+        accs.append(route(zi, cell_w=w, cell_h=h, cell_area=dem.cell_area_m2()).acc)
+    a = np.array(accs).reshape(n, *z.shape)
+    exact = np.quantile(a, [0.5, 0.05, 0.95], axis=0, method="inverted_cdf")
+    median, p05, p95 = res.layers["drainage_area"]
+    assert np.all(p05 <= median) and np.all(median <= p95)
+    agree = a.min(axis=0) == a.max(axis=0)
+    for got, want in zip((median, p05, p95), exact):
+        assert np.all(np.abs(got / want - 1) <= STEP + 1e-6)
+        np.testing.assert_array_equal(got[agree].astype(np.float32), want[agree].astype(np.float32))
+    assert agree.any() and (~agree).mean() > 0.5
+
+
 def test_codes_cover_the_grid():
     # 16 exact codes, then 8 per octave up to the grid's whole area
     assert AreaCodes.codes_for(16).size == 17

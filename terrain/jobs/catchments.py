@@ -247,7 +247,7 @@ class CatchmentJob:
         return {"job": "catchments", "outlets": dict(zip(self.ids, self.xy.tolist())),
                 "snap_m": self.snap_m, "channel_area": self.channel_area,
                 "conditioning": self.conditioning, "breach_cap": self.breach_cap,
-                "connectivity": self.connectivity}
+                "connectivity": self.connectivity, "reference": self.reference}
 
     def new_counts(self, n_cells: int) -> dict:
         """uint8 counts for one chunk (widened to uint16, then uint32, should a chunk

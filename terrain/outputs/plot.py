@@ -80,9 +80,14 @@ def run_footer(result: RunResult, layer: str | None = None) -> str:
 
 
 def _settings(result) -> str:
-    """The resolved cut-off of a peaks or depressions run, as the footer echoes it
-    (``, minimum depth 7.5 m (3 x RMSE)``); empty for other runs."""
+    """The resolved settings a figure's footer echoes: a peaks or depressions run's
+    cut-off (``, minimum depth 7.5 m (3 × RMSE)``), a catchment run's channel area
+    and conditioning (``, channels from 0.1 km², breach up to 3 m``)."""
     job = result.job
+    if getattr(job, "name", None) == "catchments" and job.channel_area is not None:
+        how = (f"breach up to {job.breach_cap:g} {result.dem.unit_label}"
+               if job.conditioning == "breach" else "fill")
+        return f", channels from {area_text(job.channel_area)}, {how}"
     if getattr(job, "kind", None) not in ("peaks", "depressions") or job.threshold is None:
         return ""
     from .. import defaults

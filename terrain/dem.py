@@ -24,15 +24,23 @@ BAND_ROWS = 256  # rows per band when a DEM is read, hashed or reduced band by b
 VERTICAL_UNITS = {"m": 1.0, "ft": 0.3048, "us-ft": 1200 / 3937}
 #: How each vertical unit is written in labels, tables and messages.
 UNIT_LABELS = {"m": "m", "ft": "ft", "us-ft": "US survey ft"}
-# Spellings of a band's unit type (GDAL) taken to mean each unit (lower case).
+# Spellings of a band's unit type (GDAL, EPSG and UCUM names) taken to mean each unit,
+# compared in lower case with "_", "-", "(", ")" and "." read as spaces.
 _SPELLINGS = {
-    "m": ("m", "metre", "meter", "metres", "meters", "metre(s)", "meter(s)", "m (metre)"),
+    "m": ("m", "metre", "meter", "metres", "meters", "metre s", "meter s", "m metre"),
     "ft": ("ft", "foot", "feet", "international foot", "international feet", "intl ft",
-           "ft (international)", "foot (international)"),
-    "us-ft": ("us-ft", "us_ft", "ftus", "ft_us", "us ft", "foot_us", "us survey foot",
-              "us survey feet", "survey foot", "survey feet", "foot (us survey)", "ft (us survey)",
-              "us survey ft", "usft"),
+           "ft international", "foot international", "ft i", "[ft i]"),
+    "us-ft": ("us ft", "ftus", "ft us", "foot us", "us foot", "us feet", "us survey foot",
+              "us survey feet", "survey foot", "survey feet", "foot us survey", "ft us survey",
+              "us survey ft", "usft", "ft us", "[ft us]", "foot survey us"),
 }
+
+
+def _spelling(text: str) -> str:
+    """A unit's name as :data:`_SPELLINGS` lists it: lower case, punctuation as spaces."""
+    for ch in "_-().":
+        text = text.replace(ch, " ")
+    return " ".join(text.lower().split())
 
 # WGS84 ellipsoid (NIMA TR8350.2, 2000)
 _A = 6378137.0
@@ -102,9 +110,9 @@ def vertical_unit(declared: str | None, given: str | None = None, *,
         return given, "given"
     if declared is None or not str(declared).strip():
         return "m", "assumed"
-    text = " ".join(str(declared).strip().lower().split())
+    text = _spelling(str(declared))
     for unit, names in _SPELLINGS.items():
-        if text in names:
+        if text in {_spelling(n) for n in names}:
             return unit, "declared"
     raise OptionError(f"{source}: the file declares the vertical unit {declared!r}, which cairn "
                       "does not convert; state the unit of the values with {vertical_unit} "

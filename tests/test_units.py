@@ -38,7 +38,9 @@ def test_exact_factors():
 
 @pytest.mark.parametrize("declared,unit", [("metre", "m"), ("m", "m"), ("Meters", "m"),
                                            ("ft", "ft"), ("foot", "ft"), ("feet", "ft"),
-                                           ("US survey foot", "us-ft"), ("ftUS", "us-ft")])
+                                           ("US survey foot", "us-ft"), ("ftUS", "us-ft"),
+                                           ("us-ft", "us-ft"), ("US_survey_foot", "us-ft"),
+                                           ("ft (US survey)", "us-ft")])
 def test_declared_units_are_read(declared, unit):
     assert vertical_unit(declared) == (unit, "declared")
     assert vertical_unit(declared, "m") == ("m", "given")  # given wins

@@ -321,7 +321,14 @@ class ErrorSampler:
         np.clip(u, 2.0 ** -60, 1 - 2.0 ** -53, out=u)  # the quantile is finite on (0, 1)
         e = self.kernel.quantile(u)
         e *= m.rmse / math.sqrt(self.kernel.unit_variance)
-        return e.astype(np.float32)
+        e32 = e.astype(np.float32)
+        if self.kernel.compact:  # float32 rounding never takes an error past the half-width
+            h = self.kernel.halfwidth(m.rmse)
+            top = np.float32(h)
+            if float(top) > h:
+                top = np.nextafter(top, np.float32(0))
+            np.clip(e32, -top, top, out=e32)
+        return e32
 
     def draw(self, seed: int, i: int) -> np.ndarray:
         """The error of realisation ``i`` on the whole grid."""

@@ -47,12 +47,13 @@ def settings_line(job: CreditJob, unit: str) -> str:
     """The resolved cut-off, merge level and base as the header and the table echo
     them, e.g. ``minimum depth 7.5 m (3 × RMSE), merge level 5 m (2 × RMSE)``."""
     from terrain import defaults
+    from terrain.outputs.plot import figure_text
 
     figure = "prominence" if job.kind == "peaks" else "depth"
-    text = f"minimum {figure} {job.threshold:.4g} {unit}"
+    text = f"minimum {figure} {figure_text(job.threshold)} {unit}"
     if "threshold" in job.from_defaults:
         text += f" ({defaults.CUTOFF_PER_RMSE:g} × RMSE)"
-    text += f", merge level {job.merge_level:.4g} {unit}"
+    text += f", merge level {figure_text(job.merge_level)} {unit}"
     if "merge_level" in job.from_defaults:
         text += (" (the cut-off: no more than 2 × RMSE)" if job.merge_level == job.threshold
                  else f" ({defaults.MERGE_PER_RMSE:g} × RMSE)")

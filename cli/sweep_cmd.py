@@ -57,11 +57,12 @@ def _stated(opts, levels, unit: str) -> str:
 def _cut(job: CreditJob, levels, unit: str) -> str:
     """The sweep's cut-off as resolved, e.g. ``minimum depth 12 m (3 × the largest RMSE)``."""
     from terrain import defaults
+    from terrain.outputs.plot import figure_text
 
     figure = "prominence" if job.kind == "peaks" else "depth"
     thr = defaults.cutoff(job.threshold, max(levels))
     rule = f" ({defaults.CUTOFF_PER_RMSE:g} × the largest RMSE)" if job.threshold is None else ""
-    return f"minimum {figure} {thr:.4g} {unit}{rule}"
+    return f"minimum {figure} {figure_text(thr)} {unit}{rule}"
 
 
 def _cutoff(kind, min_prominence, min_depth):

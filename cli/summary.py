@@ -124,7 +124,7 @@ def print_sensitivity(result, *, outdir, caution: str, note: str | None = None,
         j = g["p_first_diff"].abs().idxmax()
         i0 = g.index[0]
         floor = sens["layer_noise_floor"][i0]
-        t.add_row(f"{rmse:g} {unit}".strip(), f"{ka}–{kb}",
+        t.add_row(f"{rmse:.3g} {unit}".strip(), f"{ka}–{kb}",
                   plus_minus(sens["layer_max_abs_diff"][i0], sens["layer_max_abs_diff_se"][i0]),
                   f"{sens['layer_mean_abs_diff'][i0]:.2g}", f"{floor:.2g}",
                   f"{plus_minus(abs(sens['p_first_diff'][j]), sens['p_first_diff_se'][j])} "

@@ -36,7 +36,8 @@ def _setup(z: np.ndarray, conditioning: str):
     cells = np.array([n // 4 * n + n // 4, n // 2 * n + n // 2, 3 * n // 4 * n + n // 3])
     x, y = dem.xy(cells)
     job = CatchmentJob(["a", "b", "c"], np.column_stack([x, y]), snap_m=30.0,
-                       conditioning=conditioning, breach_cap=3.0).resolved(dem, model)
+                       conditioning=conditioning,
+                       breach_cap=3.0 if conditioning == "breach" else None).resolved(dem, model)
     return z, sampler, job
 
 

@@ -31,19 +31,37 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     ex = guard_memory(head, job, ex, opts, model=model)
     dem = read(dem_path, opts, on_disk=ex.block is not None)  # blocked: out of core
     job = job.resolved(dem, model, **({"block": ex.block} if dem.on_disk else {}))
-    figure = "prominence" if kind == "peaks" else "depth"
     res = run_job(dem, job, model, ex, opts, label=label or kind,
-                  headline=f"minimum {figure} " + (f"{threshold:g}" if threshold is not None
-                                                   else "3 x RMSE"))
+                  headline=settings_line(job, dem.unit_label))
     if model.range_m == 0:
         warn(INDEPENDENT_ERROR)
     features = summarise_features(res)
     write_credit_run(out, res, features, input_path=str(dem_path), command_line=command_line())
     if not opts["quiet"]:
-        print_summary(features.table, kind=kind, units=dem.vertical_units or "DEM units", n=res.n,
+        print_summary(features.table, kind=kind, units=dem.unit_label, n=res.n,
                       outdir=out, caution=CAUTION, share=features.rank_share,
-                      clusters=features.clusters)
+                      clusters=features.clusters, settings=settings_line(job, dem.unit_label))
     return res, features
+
+
+def settings_line(job: CreditJob, unit: str) -> str:
+    """The resolved cut-off, merge level and base as the header and the table echo
+    them, e.g. ``minimum depth 7.5 m (3 × RMSE), merge level 5 m (2 × RMSE)``."""
+    from terrain import defaults
+    from terrain.outputs.plot import figure_text
+
+    figure = "prominence" if job.kind == "peaks" else "depth"
+    text = f"minimum {figure} {figure_text(job.threshold)} {unit}"
+    if "threshold" in job.from_defaults:
+        text += f" ({defaults.CUTOFF_PER_RMSE:g} × RMSE)"
+    text += f", merge level {figure_text(job.merge_level)} {unit}"
+    if "merge_level" in job.from_defaults:
+        text += (" (the cut-off: no more than 2 × RMSE)" if job.merge_level == job.threshold
+                 else f" ({defaults.MERGE_PER_RMSE:g} × RMSE)")
+    if job.kind == "peaks" and job.base is not None:
+        text += f", base {job.base:.6g} {unit}" + (" (lowest cell)" if "base" in job.from_defaults
+                                                   else "")
+    return text
 
 
 def _epilog(example: str, command: str) -> str:

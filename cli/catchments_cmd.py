@@ -2,16 +2,20 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import click
 
+from terrain.errors import OptionError
 from terrain.io import read_outlets
 from terrain.jobs import CatchmentJob
 from terrain.outputs.manifest import file_names, help_text, replace_patterns
+from terrain.outputs.plot import area_text
 from terrain.outputs.writer import write_catchment_run
 from terrain.summary.catchments import summarise_catchments
 
 from . import options
-from .common import CAUTION, command_line, guarded, warn
+from .common import CAUTION, command_line, guarded, warn_later
 from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
 from .summary import print_catchments
 
@@ -23,11 +27,16 @@ Examples:
   cairn catchments dem.tif --outlets gauges.gpkg -o out --rmse 0.5 --snap 60
   cairn catchments lidar.tif -o channels --rmse 0.15 --channel-area 20000
 \b
-Outlets: points in a GeoPackage, GeoJSON or Shapefile (reprojected to the
-DEM's CRS), or a CSV with columns x,y (DEM's CRS) and optional id; an outlet
-without an id takes its row number. Every other column travels with the
-outlet into catchments.gpkg and the CSV tables. Without --outlets only the
-channel layer is computed.
+Outlets: points in a GeoPackage, GeoJSON or Shapefile (in the CRS the file
+declares, reprojected to the DEM's), or a CSV with columns x,y and optional
+id, in the CRS given by --outlets-crs or a sidecar file (gauges.csv.crs,
+gauges.crs or gauges.prj), else taken to be the DEM's CRS (said in a
+warning); an outlet without an id takes its row number. The outlets table
+keeps the coordinates as given and their CRS beside the point and the
+snapped cell in the DEM's CRS. Two outlets that snap to one cell on the DEM
+as given are refused. Every other column travels with the outlet into
+catchments.gpkg and the CSV tables. Without --outlets only the channel and
+drainage-area layers are computed.
 
 \b
 Each realisation removes depressions (breaching cuts a least-cost channel
@@ -49,11 +58,31 @@ stated error, not flood behaviour or where water runs in a storm.
 """
 
 
+def catchment_settings(job: CatchmentJob, unit: str) -> str:
+    """The resolved settings as the header echoes them, e.g. ``3 outlet(s), snap 20 m
+    (2 cells), breach up to 3 m deep (default), D8, channels from 0.1 km² (default)``."""
+    used = set(job.from_defaults)
+
+    def note(name, rule=" (default)"):
+        return rule if name in used else ""
+
+    what = (f"{len(job.ids)} outlet(s), snap {job.snap_m:.4g} m{note('snap_m', ' (2 cells)')}"
+            if job.ids else "no outlets")
+    how = (f"breach up to {job.breach_cap:g} {unit} deep{note('breach_cap')}, fill deeper"
+           if job.conditioning == "breach" else "fill")
+    return (f"{what}, {how}, D{job.connectivity}, channels from "
+            f"{area_text(job.channel_area)}{note('channel_area')}")
+
+
 @click.command("catchments", epilog=_EPILOG)
 @click.argument("dem", type=click.Path(dir_okay=False))
 @click.option("--outlets", type=click.Path(dir_okay=False), default=None,
               help="Outlet points (GeoPackage, GeoJSON, Shapefile, or CSV with x,y[,id]); "
                    "without it only channel probability is computed.")
+@click.option("--outlets-crs", default=None, metavar="CRS",
+              help="CRS of a CSV of outlets (e.g. EPSG:4326), or of a vector file that "
+                   "declares none [default: a sidecar gauges.csv.crs, gauges.crs or gauges.prj, "
+                   "else the DEM's CRS, said in a warning].")
 @options.outdir
 @click.option("--snap", type=float, default=None,
               help="Snap each outlet, per realisation, to the cell of highest flow "
@@ -65,8 +94,8 @@ stated error, not flood behaviour or where water runs in a storm.
 @options.dem_input
 @options.run()
 @guarded
-def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, breach_cap,
-                   connectivity, **opts):
+def catchments_cmd(dem, outlets, outlets_crs, outdir, snap, channel_area, conditioning,
+                   breach_cap, connectivity, **opts):
     """Channels, outlet catchments, sub-catchments and divides, as probabilities
     under DEM error.
 
@@ -75,10 +104,17 @@ def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, breac
     model = error_model(opts)
     ex = execution(opts)
     head = header(dem, opts)
-    pts = read_outlets(outlets, head) if outlets is not None else None  # DEM's CRS, from its header
+    if outlets is None and outlets_crs is not None:
+        raise OptionError("{outlets_crs} gives the CRS of the outlets, and there are none; drop "
+                          "it or give {outlets}", "outlets_crs", "outlets")
+    pts = read_outlets(outlets, head, crs=outlets_crs) if outlets is not None else None
+    if pts is not None and pts.crs_source == "assumed" and head.crs is not None:
+        warn_later(f"{outlets}: no CRS given for the outlets (no --outlets-crs, no sidecar "
+             f"{Path(outlets).name}.crs); their coordinates are taken to be in the DEM's CRS "
+             f"({pts.given_crs})")
     if pts is not None and pts.numbered:
         rows = ", ".join(map(str, pts.numbered[:5])) + (" ..." if len(pts.numbered) > 5 else "")
-        warn(f"{outlets}: {len(pts.numbered)} outlet(s) without an id take their row number "
+        warn_later(f"{outlets}: {len(pts.numbered)} outlet(s) without an id take their row number "
              f"(rows {rows})")
     job = CatchmentJob(pts.ids if pts else (), pts.xy if pts else None, snap_m=snap,
                        channel_area=channel_area, conditioning=conditioning,
@@ -90,11 +126,9 @@ def catchments_cmd(dem, outlets, outdir, snap, channel_area, conditioning, breac
     guard_memory(head, job, ex, opts, model=model)
     d = read(dem, opts)
     job = job.resolved(d, model)
-    what = f"{len(job.ids)} outlet(s), snap {job.snap_m:g} m" if job.ids else "no outlets"
     res = run_job(d, job, model, ex, opts, label="catchments",
-                  headline=f"{what}, {job.conditioning}, D{job.connectivity}, channels from "
-                           f"{job.channel_area:g} m²")
-    summary = summarise_catchments(res, pts.attributes if pts else None)
+                  headline=catchment_settings(job, d.unit_label))
+    summary = summarise_catchments(res, pts.attributes if pts else None, outlets=pts)
     write_catchment_run(out, res, summary, input_path=str(dem),
                         outlets_path=str(outlets) if outlets else None, command_line=command_line())
     if not opts["quiet"]:

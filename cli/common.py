@@ -17,7 +17,7 @@ from terrain.errors import CairnError, CairnWarning
 from terrain.outputs.writer import CAUTION
 
 __all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn",
-           "Terminated"]
+           "warn_later", "flush_warnings", "Terminated"]
 
 INDEPENDENT_ERROR = (
     "independent per-cell error deepens flat floors and raises flat tops (the lowest of n noisy "
@@ -38,7 +38,8 @@ FLAGS = {
     "draw": "--kernel", "merge_level": "--merge-level", "min_presence": "--min-presence",
     "channel_area": "--channel-area", "conditioning": "--conditioning",
     "breach_cap": "--breach-cap", "nodata": "--nodata", "memory_check": "--force",
-    "block": "--block", "outdir": "-o/--outdir",
+    "block": "--block", "vertical_unit": "--vertical-unit", "accuracy": "--le90/--a95",
+    "outlets_crs": "--outlets-crs", "outdir": "-o/--outdir",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 
@@ -133,3 +134,20 @@ def warn(line) -> None:
     """Print a warning once; a :class:`terrain.errors.CairnWarning` names flags."""
     text = line.render(flag) if isinstance(line, CairnWarning) else str(line)
     click.echo(f"cairn: warning: {text}", err=True)
+
+
+def warn_later(line) -> None:
+    """Hold a warning until the run starts (:func:`flush_warnings`), so that input
+    refused while the run is set up ends with its one error line alone."""
+    ctx = click.get_current_context(silent=True)
+    if ctx is None:
+        warn(line)
+        return
+    ctx.meta.setdefault("cairn_warnings", []).append(line)
+
+
+def flush_warnings() -> None:
+    """Print the warnings held by :func:`warn_later`, once."""
+    ctx = click.get_current_context(silent=True)
+    for line in ctx.meta.pop("cairn_warnings", []) if ctx is not None else []:
+        warn(line)

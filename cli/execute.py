@@ -32,7 +32,7 @@ from terrain.runner import Execution, RunInterrupted, run_ensemble
 from terrain.runner.blocked import effective_block
 from terrain.runner.checkpoint import prepare_checkpoint
 
-from .common import warn
+from .common import flush_warnings, warn, warn_later
 from .progress import progress_bar
 
 __all__ = ["EXEC_KEYS", "error_model", "read", "header", "execution", "outputs", "guard_memory", "run_job"]
@@ -42,16 +42,20 @@ EXEC_KEYS = RUN_KEYS + ("memory_check", "block")  # what run_ensemble takes from
 
 
 def error_model(opts: dict, rmse: float | None = None) -> ErrorModel:
-    """The error model the options describe (``rmse`` overrides the accuracy options)."""
+    """The error model the options describe (``rmse`` overrides the accuracy options);
+    an accuracy stated as LE90 or at 95% is kept to be echoed beside the RMSE."""
+    accuracy: tuple = ()
     if rmse is None:
         rmse = rmse_from(rmse=opts["rmse"], le90=opts["le90"], a95=opts["a95"])
+        accuracy = next(((k, opts[k]) for k in ("le90", "a95") if opts.get(k) is not None), ())
     return ErrorModel(rmse=rmse, kernel=opts["kernel"], range_m=opts["range_m"],
-                      covariance=opts["covariance"], nugget=opts["nugget"])
+                      covariance=opts["covariance"], nugget=opts["nugget"], accuracy=accuracy)
 
 
 def header(path, opts: dict):
     """What the DEM's header says (grid, band, type) without reading its pixels."""
-    return read_header(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"))
+    return read_header(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"),
+                       vertical_unit=opts.get("vertical_unit"))
 
 
 def read(path, opts: dict, *, on_disk: bool = False):
@@ -62,9 +66,9 @@ def read(path, opts: dict, *, on_disk: bool = False):
     if on_disk:
         scratch = click.get_current_context().with_resource(scratch_folder())
     dem = read_dem(path, band=opts.get("band"), bbox=opts.get("bbox"), nodata=opts.get("nodata"),
-                   scratch=scratch)
+                   scratch=scratch, vertical_unit=opts.get("vertical_unit"))
     for line in dem_warnings(dem):
-        warn(line)
+        warn_later(line)
     return dem
 
 
@@ -150,9 +154,11 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
 
 def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str):
     """Run the ensemble with a progress bar; Ctrl-C exits 130, SIGTERM 143."""
+    flush_warnings()
     if not opts["quiet"]:
-        click.echo(f"cairn {label}: {dem.shape[0]}x{dem.shape[1]} cells, error "
-                   f"{model.describe()}, {headline}, {ex.realisations} realisations"
+        click.echo(f"cairn {label}: {dem.shape[0]}x{dem.shape[1]} cells, elevations in "
+                   f"{dem.unit_label}, error {model.describe(dem.unit_label)}, {headline}, "
+                   f"{ex.realisations} realisations"
                    f"{' at most' if ex.target_se is not None else ''}, seed {ex.seed}", err=True)
     try:
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label=label) as bar:

@@ -12,7 +12,7 @@ from terrain.resources import DEFAULT_BLOCK, available_bytes, describe_memory, r
 from terrain.runner import Execution
 
 from . import options
-from .common import guarded
+from .common import flush_warnings, guarded
 from .execute import header, read
 
 __all__ = ["inspect_cmd"]
@@ -22,7 +22,7 @@ __all__ = ["inspect_cmd"]
 @click.argument("dem", type=click.Path(dir_okay=False, path_type=str))
 @options.dem_input
 @guarded
-def inspect_cmd(dem, band, bbox, nodata):
+def inspect_cmd(dem, band, bbox, nodata, vertical_unit):
     """Describe DEM: grid, CRS, cell size, units, nodata and the memory a run needs.
 
     The header is read first; the pixels (for the elevation range and nodata
@@ -35,7 +35,7 @@ def inspect_cmd(dem, band, bbox, nodata):
     Example:
       cairn inspect dem.tif --bbox 512000,6800000,514000,6802000
     """
-    opts = {"band": band, "bbox": bbox, "nodata": nodata}
+    opts = {"band": band, "bbox": bbox, "nodata": nodata, "vertical_unit": vertical_unit}
     head = header(dem, opts)
     rows, cols = head.shape
     a, b, _, d, e, _ = head.transform
@@ -70,10 +70,11 @@ def _pixels(path, opts, head, dx, dy) -> list[tuple[str, str]]:
     """Lines that need the pixels: read them only when that fits in memory."""
     need = read_bytes(head)
     if need > available_bytes():
-        return [("vertical units", head.vertical_units or "unknown (not declared in the file)"),
+        return [("vertical unit", _unit(head)),
                 ("elevation", f"not read (reading needs {need / 2**30:.1f} GiB; more than is "
                               "available)")]
     d = read(path, opts)
+    flush_warnings()
     valid = ~d.nodata
     zv = d.z[valid]
     lines = []
@@ -84,10 +85,22 @@ def _pixels(path, opts, head, dx, dy) -> list[tuple[str, str]]:
     elif d.crs is not None:
         lines.append(("cell size (m)", f"{dx * d.linear_unit_m:g} x {dy * d.linear_unit_m:g} m"))
     return lines + [
-        ("vertical units", d.vertical_units or "unknown (not declared in the file)"),
+        ("vertical unit", _unit(d)),
         ("nodata", f"{(~valid).mean():.2%} of cells"),
-        ("elevation", f"{zv.min():g} to {zv.max():g} (mean {zv.mean():.2f})"),
+        ("elevation", f"{zv.min():g} to {zv.max():g} {d.unit_label} (mean {zv.mean():.2f})"),
     ]
+
+
+def _unit(grid) -> str:
+    """The vertical unit and where it came from (a header or a DEM)."""
+    from terrain.dem import UNIT_LABELS, VERTICAL_UNITS
+
+    label = UNIT_LABELS[grid.vertical_unit]
+    how = {"given": "as given by --vertical-unit",
+           "declared": f"declared by the file as {grid.vertical_units!r}",
+           "assumed": "assumed: the file declares none (give --vertical-unit ft or us-ft if the "
+                      "values are feet)"}[grid.vertical_unit_source]
+    return f"{label} ({how}; {VERTICAL_UNITS[grid.vertical_unit]:.10g} m per unit)"
 
 
 def _crs_name(wkt: str | None) -> str:

@@ -153,12 +153,19 @@ BBOX_HELP = ("Read only the cells whose area meets this box, in the DEM's CRS un
 NODATA_HELP = ("Treat cells holding this value as nodata (in the file's stored units, before its "
                "scale and offset), e.g. -9999 when the file does not declare it.")
 
+VERTICAL_UNIT_HELP = ("Unit of the elevations: m, ft (international foot, 0.3048 m) or us-ft "
+                      "(US survey foot, 1200/3937 m) [default: the unit the file declares, else "
+                      "metres, said in a warning]. Prominences, depths, elevations and the "
+                      "accuracy stay in this unit; areas are m², volumes m³.")
+
 dem_input = compose(
     click.option("--band", type=int, default=None,
                  help="Band to read (1-based); required for multi-band files."),
     click.option("--bbox", callback=_bbox, default=None, metavar="XMIN,YMIN,XMAX,YMAX",
                  help=BBOX_HELP),
     click.option("--nodata", type=float, default=None, metavar="VALUE", help=NODATA_HELP),
+    click.option("--vertical-unit", type=click.Choice(["m", "ft", "us-ft"]), default=None,
+                 help=VERTICAL_UNIT_HELP),
 )
 
 RESUME_HELP = ("Continue the run saved in --checkpoint (same DEM, seed and options), or extend "

@@ -6,7 +6,8 @@ import sys
 
 import numpy as np
 
-__all__ = ["print_summary", "print_catchments", "print_sensitivity", "READING"]
+__all__ = ["print_summary", "print_catchments", "print_sensitivity", "READING", "plus_minus",
+           "SENSITIVITY_READING"]
 
 READING = ("'on DEM' is the figure on the DEM as given; 'expected' and '5-95%' are the mean and "
            "spread over realisations (the uncertainty the DEM error causes); 'MC s.e.' is the "
@@ -64,7 +65,7 @@ def _spread(r, clusters) -> str:
 
 
 def print_summary(table, *, kind: str, units: str, n: int, outdir, caution: str,
-                  share=None, clusters=None, top: int = ROWS) -> None:
+                  share=None, clusters=None, top: int = ROWS, settings: str = "") -> None:
     """The features that rank 1st-10th in at least 1% of realisations, by median
     rank then expected figure, a group's members together under one bracket:
     DEM figure, median rank, likeliest ranks held, P(rank <= 3), expected figure
@@ -103,7 +104,8 @@ def print_summary(table, *, kind: str, units: str, n: int, outdir, caution: str,
             console.print(f"{left} more features rank 1st-10th in at least {RANK_MASS:.0%} of "
                           "realisations; see ranks.csv.")
         console.print(READING, style="italic")
-    console.print(f"{len(table)} features; outputs in {outdir}")
+    console.print(f"{len(table)} features ({settings}); outputs in {outdir}" if settings
+                  else f"{len(table)} features; outputs in {outdir}")
     console.print(caution, style="italic")
 
 
@@ -112,6 +114,7 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
     from rich.table import Table
 
     from terrain.outlets import short
+    from terrain.outputs.plot import area_text
     from terrain.summary.catchments import LEVELS
 
     console = _console()
@@ -135,20 +138,41 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
     p = result.layers[name][0]
     share = float(np.nanmean(p[~result.dem.nodata] >= 0.5))
     console.print(f"channel in >= 50% of realisations: {share:.1%} of cells "
-                  f"(drainage area >= {result.job.channel_area:g} m², {result.job.conditioning}, "
+                  f"(drainage area >= {area_text(result.job.channel_area)}, {result.job.conditioning}, "
                   f"D{result.job.connectivity})")
     console.print(f"outputs in {outdir}")
     console.print(caution, style="italic")
 
 
-def print_sensitivity(result, *, outdir, caution: str) -> None:
-    """Per level and kernel pair: layer differences and the largest p_first difference."""
+SENSITIVITY_READING = (
+    "Differences are paired by realisation (common random numbers), so '± se' is the Monte "
+    "Carlo standard error of the difference itself. 'layer max |Δ|': the largest difference of "
+    "the two expected {credit} layers over cells ({unit} per cell); 'layer mean |Δ|': its mean "
+    "over cells; 'noise floor': the mean |Δ| Monte Carlo noise alone would give -- a mean near "
+    "it means the kernels cannot be told apart with this many realisations.")
+
+
+def plus_minus(value: float, se: float) -> str:
+    """``value ± se`` with the standard error to two significant digits and the value
+    to the same decimal place (honest precision: ``0.017 ± 0.0031`` -> ``0.0174 ± 0.0031``)."""
+    if not (np.isfinite(value) and np.isfinite(se)):
+        return f"{value:.3g} ± {se:.2g}"
+    if se <= 0:
+        return f"{value:.3g} ± 0"
+    places = max(0, 1 - int(np.floor(np.log10(se))))
+    return f"{value:.{places}f} ± {se:.{places}f}"
+
+
+def print_sensitivity(result, *, outdir, caution: str, note: str | None = None,
+                      unit: str = "") -> None:
+    """Per level and kernel pair: layer differences and the largest p_first difference;
+    ``note`` says why the table is empty when it is."""
     from rich.table import Table
 
     sens = result.sensitivity
     console = _console()
     if sens.empty:
-        console.print(f"one kernel: no kernel sensitivity to report; outputs in {outdir}")
+        console.print(f"{note or 'no kernel sensitivity to report'}; outputs in {outdir}")
         console.print(caution, style="italic")
         return
     t = Table(title="Kernel sensitivity (equal RMSE)", title_justify="left")
@@ -158,11 +182,15 @@ def print_sensitivity(result, *, outdir, caution: str) -> None:
     for (rmse, ka, kb), g in sens.groupby(["rmse", "kernel_a", "kernel_b"], sort=False):
         j = g["p_first_diff"].abs().idxmax()
         i0 = g.index[0]
-        t.add_row(f"{rmse:g}", f"{ka}–{kb}",
-                  f"{sens['layer_max_abs_diff'][i0]:.3g} ± {sens['layer_max_abs_diff_se'][i0]:.2g}",
-                  f"{sens['layer_mean_abs_diff'][i0]:.3g}", f"{sens['layer_noise_floor'][i0]:.2g}",
-                  f"{abs(sens['p_first_diff'][j]):.3f} ± {sens['p_first_diff_se'][j]:.3f} "
+        floor = sens["layer_noise_floor"][i0]
+        t.add_row(f"{rmse:.3g} {unit}".strip(), f"{ka}–{kb}",
+                  plus_minus(sens["layer_max_abs_diff"][i0], sens["layer_max_abs_diff_se"][i0]),
+                  f"{sens['layer_mean_abs_diff'][i0]:.2g}", f"{floor:.2g}",
+                  f"{plus_minus(abs(sens['p_first_diff'][j]), sens['p_first_diff_se'][j])} "
                   f"(#{sens['feature_id'][j]})")
     console.print(t)
+    credit = "summit" if result.job.kind == "peaks" else "pit"
+    console.print(SENSITIVITY_READING.format(credit=f"{credit} credit", unit=unit or "DEM units"),
+                  style="italic")
     console.print(f"outputs in {outdir}")
     console.print(caution, style="italic")

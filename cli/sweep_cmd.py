@@ -15,7 +15,7 @@ from terrain.runner import RunInterrupted
 from terrain.sweep import run_checkpoint, sweep, sweep_models
 
 from . import options
-from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
+from .common import CAUTION, INDEPENDENT_ERROR, command_line, flag, flush_warnings, guarded, warn
 from .execute import EXEC_KEYS, error_model, execution, guard_memory, header, interrupted, outputs, read
 from .progress import progress_bar
 from .summary import print_sensitivity
@@ -42,6 +42,27 @@ def _levels(opts) -> list[float]:
     if not values:
         raise OptionError(f"{{{name}}} needs at least one level", name)
     return [rmse_from(**{name: v}) for v in values]
+
+
+def _stated(opts, levels, unit: str) -> str:
+    """The error levels as given and as RMSE, e.g. ``LE90 4, 8 m = RMSE 2.43, 4.86 m``."""
+    rmse = ", ".join(f"{v:.3g}" for v in levels)
+    for name, label in (("le90", "LE90"), ("a95", "accuracy at 95%")):
+        if opts.get(name):
+            given = ", ".join(f"{v:g}" for v in opts[name])
+            return f"{label} {given} {unit} = RMSE {rmse} {unit}"
+    return f"RMSE {rmse} {unit}"
+
+
+def _cut(job: CreditJob, levels, unit: str) -> str:
+    """The sweep's cut-off as resolved, e.g. ``minimum depth 12 m (3 × the largest RMSE)``."""
+    from terrain import defaults
+    from terrain.outputs.plot import figure_text
+
+    figure = "prominence" if job.kind == "peaks" else "depth"
+    thr = defaults.cutoff(job.threshold, max(levels))
+    rule = f" ({defaults.CUTOFF_PER_RMSE:g} × the largest RMSE)" if job.threshold is None else ""
+    return f"minimum {figure} {figure_text(thr)} {unit}{rule}"
 
 
 def _cutoff(kind, min_prominence, min_depth):
@@ -88,8 +109,10 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     d = read(dem, opts)
     if not opts["quiet"]:
         click.echo(f"cairn sweep: {len(models)} error model(s) x {ex.realisations} "
-                   f"realisations, seed {ex.seed}", err=True)
+                   f"realisations, seed {ex.seed}; {_stated(opts, levels, d.unit_label)}; "
+                   f"{_cut(job, levels, d.unit_label)}", err=True)
     run_kw = {k: getattr(ex, k) for k in EXEC_KEYS}
+    flush_warnings()
     try:
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label="sweep") as bar:
             result = sweep(d, job, models, progress=bar, **run_kw)
@@ -99,4 +122,5 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
         warn(INDEPENDENT_ERROR)
     write_sweep(out, result, input_path=str(dem), command_line=command_line())
     if not opts["quiet"]:
-        print_sensitivity(result, outdir=out, caution=CAUTION)
+        note = result.note.render(flag) if result.note is not None else None
+        print_sensitivity(result, outdir=out, caution=CAUTION, note=note, unit=d.unit_label)

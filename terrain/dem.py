@@ -12,9 +12,35 @@ import numpy as np
 
 from .errors import NoValidCellsError, OptionError
 
-__all__ = ["Dem", "DiskDem", "RasterHeader", "metres_per_degree", "BAND_ROWS", "DemChecksum"]
+__all__ = ["Dem", "DiskDem", "RasterHeader", "metres_per_degree", "BAND_ROWS", "DemChecksum",
+           "VERTICAL_UNITS", "UNIT_LABELS", "vertical_unit", "float32_reference"]
 
 BAND_ROWS = 256  # rows per band when a DEM is read, hashed or reduced band by band
+
+#: Metres per vertical unit, exact by definition: the international foot is 0.3048 m
+#: and the US survey foot 1200/3937 m (NIST SP 811, 2008, appendix B.6; the US survey
+#: foot was retired for new work at the end of 2022, Federal Register 85 FR 62698,
+#: 2020, but older lidar collections of US states and counties use it).
+VERTICAL_UNITS = {"m": 1.0, "ft": 0.3048, "us-ft": 1200 / 3937}
+#: How each vertical unit is written in labels, tables and messages.
+UNIT_LABELS = {"m": "m", "ft": "ft", "us-ft": "US survey ft"}
+# Spellings of a band's unit type (GDAL, EPSG and UCUM names) taken to mean each unit,
+# compared in lower case with "_", "-", "(", ")" and "." read as spaces.
+_SPELLINGS = {
+    "m": ("m", "metre", "meter", "metres", "meters", "metre s", "meter s", "m metre"),
+    "ft": ("ft", "foot", "feet", "international foot", "international feet", "intl ft",
+           "ft international", "foot international", "ft i", "[ft i]"),
+    "us-ft": ("us ft", "ftus", "ft us", "foot us", "us foot", "us feet", "us survey foot",
+              "us survey feet", "survey foot", "survey feet", "foot us survey", "ft us survey",
+              "us survey ft", "usft", "ft us", "[ft us]", "foot survey us"),
+}
+
+
+def _spelling(text: str) -> str:
+    """A unit's name as :data:`_SPELLINGS` lists it: lower case, punctuation as spaces."""
+    for ch in "_-().":
+        text = text.replace(ch, " ")
+    return " ".join(text.lower().split())
 
 # WGS84 ellipsoid (NIMA TR8350.2, 2000)
 _A = 6378137.0
@@ -46,6 +72,110 @@ def metres_per_degree(lat_deg: np.ndarray | float) -> tuple[np.ndarray, np.ndarr
     return np.pi / 180 * n * np.cos(phi), np.pi / 180 * m
 
 
+def vertical_unit(declared: str | None, given: str | None = None, *,
+                  source: str = "the DEM") -> tuple[str, str]:
+    """The DEM's vertical unit and where it came from.
+
+    Parameters
+    ----------
+    declared : str or None
+        The band's unit type as the file declares it (GDAL), if any.
+    given : {"m", "ft", "us-ft"}, optional
+        The unit a user states; it wins over the file's.
+    source : str
+        The file, for messages.
+
+    Returns
+    -------
+    (unit, how) : a key of :data:`VERTICAL_UNITS`, and ``"given"``,
+    ``"declared"`` or ``"assumed"`` (metres: the file declares none).
+
+    Raises
+    ------
+    OptionError
+        An unknown ``given`` unit, or a declared unit cairn cannot read
+        (naming it) when none is given.
+
+    Examples
+    --------
+    >>> vertical_unit("US survey foot")
+    ('us-ft', 'declared')
+    >>> vertical_unit(None)
+    ('m', 'assumed')
+    """
+    if given is not None:
+        if given not in VERTICAL_UNITS:
+            raise OptionError(f"{{vertical_unit}} must be one of {', '.join(VERTICAL_UNITS)}, "
+                              f"got {given!r}", "vertical_unit")
+        return given, "given"
+    if declared is None or not str(declared).strip():
+        return "m", "assumed"
+    text = _spelling(str(declared))
+    for unit, names in _SPELLINGS.items():
+        if text in {_spelling(n) for n in names}:
+            return unit, "declared"
+    raise OptionError(f"{source}: the file declares the vertical unit {declared!r}, which cairn "
+                      "does not convert; state the unit of the values with {vertical_unit} "
+                      f"({', '.join(VERTICAL_UNITS)})", "vertical_unit")
+
+
+def float32_reference(bands, lowest: float, value_bytes: int, rmse: float, *,
+                      source: str = "the DEM") -> float:
+    """The elevation realisations are computed relative to (their float32 frame).
+
+    Realisations are float32. A DEM read as float32 (float32 or up to 16-bit
+    integer bands) is exact there, so it is used as it is (reference 0). A
+    DEM read as float64 is taken relative to its lowest valid cell
+    (``lowest``), so its float32 values keep the input's resolution however
+    large its elevations (around 1e10 float32 steps by 1024, but not
+    relative to the minimum).
+
+    Parameters
+    ----------
+    bands : iterable of arrays
+        The elevations (NaN on nodata), band by band (checked for float64 DEMs).
+    lowest : float
+        The lowest valid elevation.
+    value_bytes : int
+        4 (read as float32) or 8 (float64).
+    rmse : float
+        The error model's RMSE.
+
+    Raises
+    ------
+    OptionError
+        When even relative to the reference, float32 would move some
+        elevation by more than a tenth of the RMSE (the input's resolution
+        at the scale of the error is lost: usually an undeclared nodata value
+        far from the terrain, or a very small stated error).
+
+    Examples
+    --------
+    >>> z = np.array([1e10 + 0.25, 1e10 + 102.5])
+    >>> float32_reference([z], float(z.min()), 8, 0.5)
+    10000000000.25
+    >>> float32_reference([np.array([177.0, 532.0])], 177.0, 4, 0.5)
+    0.0
+    """
+    if value_bytes <= 4:
+        return 0.0
+    ref, worst, where = float(lowest), 0.0, 0.0
+    for z in bands:
+        rel = np.asarray(z, np.float64) - ref
+        moved = np.abs(rel.astype(np.float32).astype(np.float64) - rel)
+        if np.isfinite(moved).any():
+            k = int(np.nanargmax(moved))
+            if moved.flat[k] > worst:
+                worst, where = float(moved.flat[k]), float(rel.flat[k])
+    if worst > rmse / 10:
+        raise OptionError(
+            f"{source}: realisations are computed in float32, relative to the lowest cell "
+            f"({ref:.6g}); there an elevation {where:.6g} above it moves by {worst:.3g}, more "
+            f"than a tenth of the {{rmse}} ({rmse:.3g}) -- check for an undeclared nodata value "
+            "({nodata}), a wrong scale or a too small {rmse}", "rmse", "nodata")
+    return ref
+
+
 @dataclass(frozen=True)
 class RasterHeader:
     """What a raster's header says about the grid a read would return.
@@ -64,7 +194,8 @@ class RasterHeader:
     value_bytes : int
         Bytes per elevation once read: 4 (float32) for bands of at most 16-bit
         integers or float32, else 8 (float64).
-    transform, crs, geographic, linear_unit_m, vertical_units
+    transform, crs, geographic, linear_unit_m, vertical_units, vertical_unit,
+    vertical_unit_source
         As for :class:`Dem`, of the window.
     band : int
         1-based band number.
@@ -90,6 +221,8 @@ class RasterHeader:
     scale: float = 1.0
     offset: float = 0.0
     nodata_value: float | None = None
+    vertical_unit: str = "m"
+    vertical_unit_source: str = "assumed"
 
     @property
     def cells(self) -> int:
@@ -120,7 +253,12 @@ class Dem:
     linear_unit_m : float
         Metres per CRS unit for projected CRSs (1.0 when unknown).
     vertical_units : str or None
-        As declared by the file; None when not declared (never guessed).
+        As declared by the file; None when not declared.
+    vertical_unit : {"m", "ft", "us-ft"}
+        The unit of the elevations (see :func:`vertical_unit`): prominences,
+        depths and elevations are in it; areas are m^2 and volumes m^3.
+    vertical_unit_source : {"given", "declared", "assumed"}
+        Where the unit came from (assumed: metres, the file declared none).
     source : str
         File the DEM came from (for messages), or "<array>".
     """
@@ -134,8 +272,11 @@ class Dem:
     vertical_units: str | None = None
     source: str = "<array>"
     meta: dict = field(default_factory=dict)
+    vertical_unit: str = "m"
+    vertical_unit_source: str = "assumed"
 
     def __post_init__(self):
+        self._check_unit()
         if self.z.ndim != 2:
             raise OptionError(f"{self.source}: expected a 2-D raster, got shape {self.z.shape}")
         self.nodata = np.asarray(self.nodata, bool) | ~np.isfinite(self.z)
@@ -152,6 +293,21 @@ class Dem:
             z = z.astype(np.float32 if z.dtype.itemsize <= 2 else np.float64)
         kw.setdefault("transform", (cellsize, 0.0, 0.0, 0.0, -cellsize, z.shape[0] * cellsize))
         return cls(z=z, nodata=kw.pop("nodata", ~np.isfinite(z)), **kw)
+
+    def _check_unit(self) -> None:
+        if self.vertical_unit not in VERTICAL_UNITS:
+            raise OptionError(f"{{vertical_unit}} must be one of {', '.join(VERTICAL_UNITS)}, "
+                              f"got {self.vertical_unit!r}", "vertical_unit")
+
+    @property
+    def metres_per_unit(self) -> float:
+        """Metres per vertical unit (exact: 1, 0.3048 or 1200/3937)."""
+        return VERTICAL_UNITS[self.vertical_unit]
+
+    @property
+    def unit_label(self) -> str:
+        """The vertical unit as labels write it: ``m``, ``ft`` or ``US survey ft``."""
+        return UNIT_LABELS[self.vertical_unit]
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -239,6 +395,19 @@ class Dem:
         return min(float(np.nanmin(np.where(nd, np.nan, z), initial=np.inf))
                    for _, z, nd in self.bands())
 
+    def highest(self) -> float:
+        """The highest valid elevation."""
+        return max(float(np.nanmax(np.where(nd, np.nan, z), initial=-np.inf))
+                   for _, z, nd in self.bands())
+
+    def reference(self, rmse: float) -> float:
+        """The elevation realisations are computed relative to (see
+        :func:`float32_reference`; refuses elevations float32 cannot hold to a
+        tenth of the RMSE)."""
+        size = np.dtype(self.z.dtype).itemsize
+        bands = (np.where(nd, np.nan, z) for _, z, nd in self.bands()) if size > 4 else ()
+        return float32_reference(bands, self.lowest(), size, rmse, source=self.source)
+
     def checksum(self) -> str:
         """SHA-256 of the elevations and mask (identifies the DEM in checkpoints),
         hashed band by band, so a DEM on disk gets it while it is read."""
@@ -296,10 +465,12 @@ class DiskDem(Dem):
     scratch: str = ""
     new_grid: object = None
     lowest_value: float = float("nan")
+    highest_value: float = float("nan")
 
     on_disk = True
 
     def __post_init__(self):
+        self._check_unit()
         self.nodata = _NanMask(self.z)
 
     @property
@@ -321,6 +492,9 @@ class DiskDem(Dem):
 
     def lowest(self) -> float:
         return float(self.lowest_value)
+
+    def highest(self) -> float:
+        return float(self.highest_value)
 
     def checksum(self) -> str:
         return self.digest

@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .dem import Dem, DiskDem, RasterHeader
+from .dem import Dem, DiskDem, RasterHeader, vertical_unit
 from .errors import (
     BandError,
     CairnWarning,
@@ -65,7 +65,7 @@ SENTINELS = (-9999.0, -99999.0, -32768.0, -32767.0, float(np.finfo(np.float32).m
 
 def read_header(path: str | os.PathLike, *, band: int | None = None,
                 bbox: tuple[float, float, float, float] | None = None,
-                nodata: float | None = None) -> RasterHeader:
+                nodata: float | None = None, vertical_unit: str | None = None) -> RasterHeader:
     """What :func:`read_dem` would read, from the header alone (no pixels).
 
     Same parameters and errors as :func:`read_dem`; used to judge the memory
@@ -73,12 +73,13 @@ def read_header(path: str | os.PathLike, *, band: int | None = None,
     """
     p = Path(path)
     with _open_raster(p) as ds:
-        return _header(p, ds, band, bbox, nodata)
+        return _header(p, ds, band, bbox, nodata, vertical_unit)
 
 
 def read_dem(path: str | os.PathLike, *, band: int | None = None,
              bbox: tuple[float, float, float, float] | None = None,
-             nodata: float | None = None, scratch: str | os.PathLike | None = None) -> Dem:
+             nodata: float | None = None, scratch: str | os.PathLike | None = None,
+             vertical_unit: str | None = None) -> Dem:
     """Read one band of any raster GDAL can open into a :class:`~terrain.dem.Dem`.
 
     Parameters
@@ -99,6 +100,10 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
         into a ``.npy`` file there and stays on disk -- a
         :class:`~terrain.dem.DiskDem`, for out-of-core runs. Memory: one band
         of :data:`~terrain.dem.BAND_ROWS` x 16 rows at a time.
+    vertical_unit : {"m", "ft", "us-ft"}, optional
+        The unit of the elevations. Default: the band's declared unit type
+        (GDAL), or metres when the file declares none (``Dem.vertical_unit_source``
+        says which; :func:`dem_warnings` warns about an assumed unit).
 
     The band's scale and offset (GDAL metadata) are applied: elevation =
     stored value x scale + offset. ``Dem.meta`` records the band, box,
@@ -112,7 +117,7 @@ def read_dem(path: str | os.PathLike, *, band: int | None = None,
     """
     p = Path(path)
     with _open_raster(p) as ds:
-        h = _header(p, ds, band, bbox, nodata)
+        h = _header(p, ds, band, bbox, nodata, vertical_unit)
         if scratch is not None:
             return _read_to_disk(p, ds, h, nodata, bbox, Path(scratch))
         arr = _read_band(p, ds, h.band, h.window)
@@ -130,6 +135,7 @@ def _grid(h: RasterHeader, p: Path, meta: dict, bbox) -> dict:
     """The georeferencing and metadata fields of a Dem read from ``p``."""
     return dict(transform=h.transform, crs=h.crs, geographic=h.geographic,
                 linear_unit_m=h.linear_unit_m, vertical_units=h.vertical_units, source=str(p),
+                vertical_unit=h.vertical_unit, vertical_unit_source=h.vertical_unit_source,
                 meta={**meta, "bbox": list(bbox) if bbox is not None else None})
 
 
@@ -166,6 +172,7 @@ def _read_to_disk(p: Path, ds, h: RasterHeader, nodata, bbox, folder: Path) -> D
     store = folder / "dem.npy"
     create_npy(str(store), (rows, cols), dtype)
     check, stats = DemChecksum(h.shape), _BandStats()
+    lo, hi = math.inf, -math.inf  # the elevations' range (scale and offset applied)
     col_off, row_off = (h.window[0], h.window[1]) if h.window is not None else (0, 0)
     step = BAND_ROWS * max(1, min(16, (64 << 20) // max(cols * 8 * BAND_ROWS, 1)))
     for r0 in range(0, rows, step):
@@ -176,14 +183,16 @@ def _read_to_disk(p: Path, ds, h: RasterHeader, nodata, bbox, folder: Path) -> D
         stats.add(data, mask, huge)
         mask |= ~np.isfinite(z)
         z[mask] = np.nan
+        if not mask.all():
+            lo, hi = min(lo, float(np.nanmin(z))), max(hi, float(np.nanmax(z)))
         for s in range(0, n, BAND_ROWS):
             check.update(z[s:s + BAND_ROWS], mask[s:s + BAND_ROWS])
         write_npy_window(str(store), r0, 0, z)
     if stats.valid == 0:
         raise NoValidCellsError(f"{p}: no valid cells (all nodata or non-finite)")
     z = NpyWindows(str(store))
-    return DiskDem(z=z, nodata=None, digest=check.hexdigest(), lowest_value=stats.lo,
-                   scratch=str(folder),
+    return DiskDem(z=z, nodata=None, digest=check.hexdigest(), lowest_value=lo,
+                   highest_value=hi, scratch=str(folder),
                    new_grid=functools.partial(_new_grid, folder), **_grid(h, p, stats.meta(h, nodata),
                                                                             bbox))
 
@@ -243,7 +252,7 @@ def _fits(value: float, dtype: np.dtype) -> bool:
     return float(value).is_integer() and info.min <= value <= info.max
 
 
-def _header(p: Path, ds, band: int | None, bbox, nodata) -> RasterHeader:
+def _header(p: Path, ds, band: int | None, bbox, nodata, given_unit=None) -> RasterHeader:
     band = _band(p, ds, band)
     dtype = np.dtype(ds.dtypes[band - 1])
     if dtype.kind == "c":
@@ -266,11 +275,13 @@ def _header(p: Path, ds, band: int | None, bbox, nodata) -> RasterHeader:
     small = dtype.kind == "f" and dtype.itemsize == 4 or dtype.kind in "iub" and dtype.itemsize <= 2
     scale, offset = (float(v) for v in (ds.scales[band - 1], ds.offsets[band - 1]))
     shape = (int(window.height), int(window.width)) if window is not None else (ds.height, ds.width)
+    declared = ds.units[band - 1] if ds.units and ds.units[band - 1] else None
+    unit, how = vertical_unit(declared, given_unit, source=str(p))
     return RasterHeader(
         source=str(p), shape=shape, dtype=str(dtype), value_bytes=4 if small else 8,
         transform=tuple(transform)[:6], crs=crs.to_wkt() if crs is not None else None,
         geographic=geographic, linear_unit_m=unit_m,
-        vertical_units=ds.units[band - 1] if ds.units and ds.units[band - 1] else None,
+        vertical_units=declared, vertical_unit=unit, vertical_unit_source=how,
         band=band, scale=scale, offset=offset, nodata_value=ds.nodatavals[band - 1],
         window=None if window is None else (int(window.col_off), int(window.row_off),
                                             int(window.width), int(window.height)))
@@ -419,26 +430,42 @@ def kernel_cache_folder(version: str) -> str | None:
     return None
 
 
-def read_outlets(path: str | os.PathLike, dem: Dem) -> Outlets:
-    """Outlet points from a GeoPackage, GeoJSON, Shapefile or CSV, in the DEM's CRS.
+#: Sidecar files that may give a CSV of outlets its CRS, beside it (first found wins):
+#: ``gauges.csv.crs``, ``gauges.crs`` (any text pyproj reads: ``EPSG:4326``, WKT, PROJ)
+#: and ``gauges.prj`` (WKT, as beside a shapefile).
+CRS_SIDECARS = ("{name}.crs", "{stem}.crs", "{stem}.prj")
 
-    A CSV needs columns ``x`` and ``y`` (the DEM's CRS) and may have ``id``.
-    Vector files are reprojected to the DEM's CRS when both declare one.
-    Ids follow :mod:`terrain.outlets` (an outlet without one takes its row
-    number); every column other than the geometry (a CSV's x and y) is
-    kept as the outlets' attributes.
+
+def read_outlets(path: str | os.PathLike, dem: Dem, *, crs: str | None = None) -> Outlets:
+    """Outlet points from a GeoPackage, GeoJSON, Shapefile or CSV, reprojected to
+    the DEM's CRS, their coordinates as given kept beside.
+
+    A CSV needs columns ``x`` and ``y`` and may have ``id``; its CRS is
+    ``crs`` or, without it, a sidecar file (:data:`CRS_SIDECARS`); with
+    neither it is taken to be the DEM's (``Outlets.crs_source`` is then
+    ``"assumed"``). A vector file's points are in the CRS it declares
+    (``crs`` may give one to a file that declares none, and must agree with
+    one it declares). Points are reprojected to the DEM's CRS when both are
+    known. Ids follow :mod:`terrain.outlets` (an outlet without one takes
+    its row number); every column other than the geometry (a CSV's x and y)
+    is kept as the outlets' attributes.
 
     Raises
     ------
     OutletError
         Missing or unreadable file, no points, non-point geometries, missing
-        x/y columns, non-finite coordinates, repeated ids.
+        x/y columns, non-finite coordinates, repeated ids, an unreadable CRS
+        (option or sidecar), a ``crs`` contradicting the file's own.
     """
     p = Path(path)
     if not p.exists():
         raise OutletError(f"{p}: no such outlets file")
+    given = _outlet_crs_option(crs)
     try:
-        table, xy = _outlet_csv(p) if p.suffix.lower() == ".csv" else _outlet_vector(p, dem)
+        if p.suffix.lower() == ".csv":
+            (table, xy), (own, how) = _outlet_csv(p), _csv_crs(p, given)
+        else:
+            table, xy, own, how = _outlet_vector(p, given)
     except OutletError:
         raise
     except Exception as exc:  # pyogrio / pandas raise many classes for bad files
@@ -451,7 +478,67 @@ def read_outlets(path: str | os.PathLike, dem: Dem) -> Outlets:
     values = table[id_col].tolist() if id_col is not None else None
     ids, numbered = outlet_ids(values, xy.shape[0], str(p))
     attributes = table.drop(columns=[id_col]) if id_col is not None else table
-    return Outlets(ids, xy, attributes.reset_index(drop=True), str(p), numbered)
+    return Outlets(ids, _to_dem_crs(p, xy, own, dem), attributes.reset_index(drop=True), str(p),
+                   numbered, given_xy=xy, given_crs=_crs_text(own if own is not None else dem.crs),
+                   crs_source=how)
+
+
+def _outlet_crs_option(crs):
+    """The ``crs`` option as a pyproj CRS (None when not given)."""
+    if crs is None:
+        return None
+    from pyproj import CRS
+
+    try:
+        return CRS.from_user_input(crs)
+    except Exception as exc:
+        raise OutletError(f"{{outlets_crs}} {crs!r} is not a CRS pyproj can read "
+                          f"({_short(exc)}); e.g. EPSG:4326", "outlets_crs") from None
+
+
+def _csv_crs(p: Path, given):
+    """A CSV's CRS and where it came from: the option, a sidecar, or none (assumed)."""
+    if given is not None:
+        return given, "option"
+    from pyproj import CRS
+
+    for pattern in CRS_SIDECARS:
+        side = p.with_name(pattern.format(name=p.name, stem=p.stem))
+        if side.is_file():
+            try:
+                return CRS.from_user_input(side.read_text().strip()), f"sidecar {side.name}"
+            except Exception as exc:
+                raise OutletError(f"{side}: not a CRS pyproj can read ({_short(exc)})") from None
+    return None, "assumed"
+
+
+def _to_dem_crs(p: Path, xy: np.ndarray, own, dem: Dem) -> np.ndarray:
+    """Points from their CRS ``own`` to the DEM's (as they are when either is unknown)."""
+    if own is None or dem.crs is None or not xy.size:
+        return xy
+    from pyproj import CRS, Transformer
+
+    target = CRS.from_user_input(dem.crs)
+    if own.equals(target):
+        return xy
+    t = Transformer.from_crs(own, target, always_xy=True)
+    x, y = t.transform(xy[:, 0], xy[:, 1])
+    out = np.column_stack([x, y])
+    if not np.isfinite(out).all():
+        raise OutletError(f"{p}: outlet points cannot be reprojected from {_crs_text(own)} to "
+                          "the DEM's CRS (check the coordinates and their CRS)")
+    return out
+
+
+def _crs_text(crs) -> str | None:
+    """A CRS as a short text: ``EPSG:4326`` where it has a code, else its name."""
+    if crs is None:
+        return None
+    from pyproj import CRS
+
+    c = CRS.from_user_input(crs)
+    code = c.to_epsg()
+    return f"EPSG:{code}" if code else c.name
 
 
 def _column(p: Path, columns, name: str):
@@ -481,7 +568,8 @@ def _outlet_csv(p: Path):
     return df.drop(columns=[x, y]), xy
 
 
-def _outlet_vector(p: Path, dem: Dem):
+def _outlet_vector(p: Path, given):
+    """A vector file's table, points as given, their CRS and where it came from."""
     import pyogrio
     from pyproj import CRS
 
@@ -490,17 +578,19 @@ def _outlet_vector(p: Path, dem: Dem):
         gdf = pyogrio.read_dataframe(p)
     if len(gdf) and gdf.crs is not None:
         _check_lonlat(p, gdf)
-    if len(gdf) and dem.crs is not None and gdf.crs is not None and \
-            not CRS.from_user_input(gdf.crs).equals(CRS.from_user_input(dem.crs)):
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            gdf = gdf.to_crs(dem.crs)
+    own, how = (CRS.from_user_input(gdf.crs), "file") if gdf.crs is not None else (given, "option")
+    if own is None:
+        how = "assumed"
+    elif given is not None and not own.equals(given):
+        raise OutletError(f"{p}: the file declares its CRS as {_crs_text(own)}, but "
+                          f"{{outlets_crs}} says {_crs_text(given)}; drop the option or fix the "
+                          "file", "outlets_crs")
     geom = gdf.geometry
     if len(gdf) and (geom.isna().any() or not all(t == "Point" for t in geom.geom_type)):
         kinds = sorted({str(t) for t in geom.geom_type})
         raise OutletError(f"{p}: outlets must be points, found {kinds}")
     xy = np.column_stack([geom.x, geom.y]) if len(gdf) else np.empty((0, 2))
-    return gdf.drop(columns=gdf.geometry.name), xy
+    return gdf.drop(columns=gdf.geometry.name), xy, own, how
 
 
 def _check_lonlat(p: Path, gdf) -> None:
@@ -556,7 +646,26 @@ def dem_warnings(dem: Dem) -> list[CairnWarning]:
     if dem.geographic:
         out.append(f"{dem.source}: geographic CRS; cell sizes in metres follow the latitude "
                    "of each row (WGS84)")
+    out += _unit_warnings(dem)
     return [w if isinstance(w, CairnWarning) else CairnWarning(w) for w in out]
+
+
+def _unit_warnings(dem: Dem) -> list:
+    """An assumed vertical unit, or a given one the file contradicts (one line each)."""
+    if dem.vertical_unit_source == "assumed":
+        return [CairnWarning(f"{dem.source}: the file declares no vertical unit; elevations are "
+                             "taken to be metres (give {vertical_unit} ft or us-ft if they are "
+                             "feet)", "vertical_unit")]
+    if dem.vertical_unit_source == "given" and dem.vertical_units:
+        try:
+            declared, _ = vertical_unit(dem.vertical_units)
+        except OptionError:
+            declared = None
+        if declared != dem.vertical_unit:
+            return [CairnWarning(f"{dem.source}: the file declares the vertical unit "
+                                 f"{dem.vertical_units!r}; the elevations are taken in "
+                                 f"{dem.unit_label} as given by {{vertical_unit}}", "vertical_unit")]
+    return []
 
 
 def _short(exc: BaseException) -> str:
@@ -1260,21 +1369,25 @@ COG_OPTIONS = dict(driver="COG", compress="deflate", predictor=3, blocksize=256,
                    overview_resampling="average", statistics="YES", bigtiff="IF_SAFER")
 
 
-def write_layer(dest: str | os.PathLike, dem: Dem, estimate: np.ndarray, se: np.ndarray, *,
-                name: str, units: str, description: str, tags: dict, note: str = "") -> None:
-    """Write one layer as a two-band float32 Cloud Optimized GeoTIFF, atomically.
+def write_layer(dest: str | os.PathLike, dem: Dem, *bands: np.ndarray, name: str, units: str,
+                description: str, tags: dict, note: str = "",
+                roles: tuple = ("estimate", "standard_error")) -> None:
+    """Write one layer as a float32 Cloud Optimized GeoTIFF, atomically.
 
-    Band 1 is the estimate, band 2 its standard error, both on the DEM's
-    grid, CRS and transform, nodata = NaN where the DEM has none. The file is
+    ``bands`` are the layer's bands in order, ``roles`` what each holds
+    (:data:`terrain.layers.BAND_TEXT`): by default band 1 the estimate and
+    band 2 its standard error; the drainage area's median, 5% and 95%. All
+    on the DEM's grid, CRS and transform, nodata = NaN where the DEM has
+    none. The file is
     laid out by GDAL's COG driver (:data:`COG_OPTIONS`): tiled, with internal
     overviews, DEFLATE with the floating-point predictor, and each band's
     minimum, maximum, mean, standard deviation and valid percentage stored
     as ``STATISTICS_*`` band metadata so a GIS can stretch without scanning.
     ``tags`` (the run's parameters) are dataset metadata; ``note`` (a caution
     that travels with the layer) is appended to both band descriptions and
-    stored as each band's ``NOTE`` item.
+    stored as each band's ``NOTE`` item; each band's ``ROLE`` item is its role.
 
-    Memory: 16 bytes per cell while writing (the two float32 bands, and
+    Memory: 8 bytes per cell per band while writing (the float32 bands, and
     rasterio's in-memory copy of them that the COG driver reads); the
     overviews are staged in a temporary file beside ``dest``, removed when
     done. A blocked (out-of-core) writer gets the same layout by copying a
@@ -1285,23 +1398,27 @@ def write_layer(dest: str | os.PathLike, dem: Dem, estimate: np.ndarray, se: np.
     .. [1] Open Geospatial Consortium (2023). OGC Cloud Optimized GeoTIFF
        Standard, OGC 21-026.
     """
-    e = np.where(dem.nodata, np.nan, estimate).astype(np.float32)
-    s = np.where(dem.nodata, np.nan, se).astype(np.float32)
-    with atomic_path(dest, bands=2) as tmp, _cog_staging(tmp):
-        with _open_cog(tmp, dem) as ds:
-            ds.write(e, 1)
-            ds.write(s, 2)
-            _describe(ds, name=name, units=units, description=description, tags=tags, note=note)
+    if len(bands) != len(roles):
+        raise ValueError(f"{name}: {len(bands)} bands for {len(roles)} roles")
+    with atomic_path(dest, bands=len(bands)) as tmp, _cog_staging(tmp):
+        with _open_cog(tmp, dem, len(bands)) as ds:
+            for b, values in enumerate(bands, start=1):
+                ds.write(np.where(dem.nodata, np.nan, values).astype(np.float32), b)
+            _describe(ds, name=name, units=units, description=description, tags=tags, note=note,
+                      roles=roles)
 
 
-def _describe(ds, *, name: str, units: str, description: str, tags: dict, note: str) -> None:
+def _describe(ds, *, name: str, units: str, description: str, tags: dict, note: str,
+              roles: tuple = ("estimate", "standard_error")) -> None:
     """A layer's band descriptions, units, tags and note (see :func:`write_layer`)."""
+    from .layers import BAND_TEXT
+
     suffix = f"; {note}" if note else ""
-    ds.set_band_description(1, f"{name} ({units}){suffix}")
-    ds.set_band_description(2, f"{name} standard error ({units}){suffix}")
-    ds.units = (units, units)
+    for band, role in enumerate(roles, start=1):
+        ds.set_band_description(band, BAND_TEXT[role].format(name=name, units=units) + suffix)
+    ds.units = (units,) * len(roles)
     ds.update_tags(**{k: _tag(v) for k, v in tags.items()}, LAYER=name, DESCRIPTION=description)
-    for band, role in ((1, "estimate"), (2, "standard_error")):
+    for band, role in enumerate(roles, start=1):
         ds.update_tags(band, ROLE=role, **({"NOTE": note} if note else {}))
 
 
@@ -1314,9 +1431,9 @@ def write_layers_by_window(dests: dict, dem: Dem, read, windows, describe: dict)
     """Write several layers as :func:`write_layer` does, window by window (out of core).
 
     ``dests`` maps layer name to path; ``read(r0, r1, c0, c1)`` returns every
-    layer's (estimate, standard error) on a window; ``windows`` cover the
-    grid; ``describe[name]`` holds :func:`write_layer`'s ``units``,
-    ``description``, ``tags`` and ``note``. Each layer is first written by
+    layer's bands (estimate and standard error) on a window; ``windows`` cover
+    the grid; ``describe[name]`` holds :func:`write_layer`'s ``units``,
+    ``description``, ``tags``, ``note`` and, optionally, ``roles``. Each layer is first written by
     window into a tiled staging GeoTIFF beside its destination (DEFLATE,
     removed when done), then copied by GDAL's COG driver with
     :data:`COG_OPTIONS`, which reads it back tile by tile, so the file is
@@ -1330,20 +1447,22 @@ def write_layers_by_window(dests: dict, dem: Dem, read, windows, describe: dict)
     stages = {n: Path(d).parent / f".{Path(d).name}.tiles.tif" for n, d in dests.items()}
     try:
         with rasterio.Env(GDAL_CACHEMAX=WINDOW_WRITE_CACHE), contextlib.ExitStack() as open_:
-            out = {n: open_.enter_context(_open_tiles(p, dem)) for n, p in stages.items()}
+            count = {n: len(describe[n].get("roles", (0, 0))) for n in stages}
+            out = {n: open_.enter_context(_open_tiles(p, dem, count[n]))
+                   for n, p in stages.items()}
             for r0, r1, c0, c1 in windows:
                 nd = np.isnan(dem.window(r0, r1, c0, c1))
                 win = rasterio.windows.Window(c0, r0, c1 - c0, r1 - r0)
-                for n, (est, se) in read(r0, r1, c0, c1).items():
+                for n, bands in read(r0, r1, c0, c1).items():
                     if n in out:
-                        for band, v in ((1, est), (2, se)):
+                        for band, v in enumerate(bands, start=1):
                             out[n].write(np.where(nd, np.nan, v).astype(np.float32), band,
                                          window=win)
             for n, ds in out.items():
                 _describe(ds, name=n, **describe[n])
         for n, dest in dests.items():
             with rasterio.Env(GDAL_CACHEMAX=WINDOW_WRITE_CACHE), \
-                    atomic_path(dest, bands=2) as tmp, _cog_staging(tmp):
+                    atomic_path(dest, bands=count[n]) as tmp, _cog_staging(tmp):
                 rasterio.shutil.copy(stages[n], tmp, **COG_OPTIONS)
     finally:
         for p in stages.values():
@@ -1351,22 +1470,23 @@ def write_layers_by_window(dests: dict, dem: Dem, read, windows, describe: dict)
                 os.unlink(p)
 
 
-def _open_tiles(path: Path, dem: Dem):
-    """A two-band float32 tiled GeoTIFF on ``dem``'s grid, written by window."""
+def _open_tiles(path: Path, dem: Dem, count: int = 2):
+    """A float32 tiled GeoTIFF of ``count`` bands on ``dem``'s grid, written by window."""
     import rasterio
     from rasterio.transform import Affine
 
     rows, cols = dem.shape
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return rasterio.open(path, "w", driver="GTiff", height=rows, width=cols, count=2,
+        return rasterio.open(path, "w", driver="GTiff", height=rows, width=cols, count=count,
                              dtype="float32", crs=dem.crs, transform=Affine(*dem.transform),
                              nodata=np.nan, tiled=True, blockxsize=256, blockysize=256,
                              compress="deflate", zlevel=1, predictor=3, bigtiff="IF_SAFER")
 
 
-def _open_cog(tmp: Path, dem: Dem):
-    """A two-band float32 writer on ``dem``'s grid that GDAL's COG driver lays out on close.
+def _open_cog(tmp: Path, dem: Dem, count: int = 2):
+    """A float32 writer of ``count`` bands on ``dem``'s grid that GDAL's COG driver lays
+    out on close.
 
     rasterio buffers the bands in memory and hands them to the COG driver's
     copy when the dataset closes (the driver only creates by copying).
@@ -1375,7 +1495,7 @@ def _open_cog(tmp: Path, dem: Dem):
     from rasterio.transform import Affine
 
     rows, cols = dem.shape
-    return rasterio.open(tmp, "w", height=rows, width=cols, count=2, dtype="float32",
+    return rasterio.open(tmp, "w", height=rows, width=cols, count=count, dtype="float32",
                          crs=dem.crs, transform=Affine(*dem.transform), nodata=np.nan,
                          **COG_OPTIONS)
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 __all__ = ["LayerSpec", "LAYERS", "spec", "layer_name", "layers_of", "units", "read_window",
-           "layer_windows", "WINDOW_CELLS"]
+           "layer_windows", "WINDOW_CELLS", "BAND_TEXT"]
 
 DRAINAGE_NOTE = ("describes the DEM's drainage under its stated error, not flood behaviour or "
                  "where water runs in a storm")
@@ -30,15 +30,22 @@ class LayerSpec:
         What the layer is to the code that reads it: ``birth_credit``,
         ``death_credit``, ``birth_probability``, ``ponding_probability``,
         ``membership``, ``divide``.
-    unit : {"figure", "probability"}
-        ``figure`` layers are in the DEM's vertical units (or counts when
-        pairs are weighted 1); probabilities are shares of realisations.
+    unit : {"figure", "probability", "area"}
+        ``figure`` layers are in the DEM's vertical unit (or counts when
+        pairs are weighted 1); probabilities are shares of realisations;
+        ``area`` layers are square metres.
     description : str
         One sentence a user reads (band description, help text).
     note : str
         A caution that travels with the layer (empty when none).
     needs_outlets : bool
         Written only by a catchment run with outlets.
+    bands : tuple of str
+        What each band of the file holds, in order: ``estimate`` and
+        ``standard_error`` (the mean over realisations and its Monte Carlo
+        standard error), or ``median``, ``p05`` and ``p95`` (quantiles over
+        realisations: the spread the DEM error causes). :data:`BAND_TEXT`
+        words each for band descriptions.
     """
 
     name: str
@@ -48,6 +55,7 @@ class LayerSpec:
     description: str
     note: str = ""
     needs_outlets: bool = False
+    bands: tuple = ("estimate", "standard_error")
 
     def file_name(self, oid: str | None = None) -> str:
         return self.concrete(oid) + ".tif"
@@ -55,6 +63,13 @@ class LayerSpec:
     def concrete(self, oid: str | None = None) -> str:
         return self.name.replace("{id}", str(oid)) if "{id}" in self.name else self.name
 
+
+#: How a band description words each band role (``{name}`` and ``{units}`` filled in).
+BAND_TEXT = {"estimate": "{name} ({units})",
+             "standard_error": "{name} standard error ({units})",
+             "median": "{name}: median over realisations ({units})",
+             "p05": "{name}: 5% of realisations at or below ({units})",
+             "p95": "{name}: 95% of realisations at or below ({units})"}
 
 LAYERS: dict[str, LayerSpec] = {s.name: s for s in (
     LayerSpec("summit_credit", "peaks", "birth_credit", "figure",
@@ -84,6 +99,9 @@ LAYERS: dict[str, LayerSpec] = {s.name: s for s in (
     LayerSpec("channel_probability", "catchments", "channel", "probability",
               "share of realisations in which the area draining through the cell reaches the "
               "channel area", DRAINAGE_NOTE),
+    LayerSpec("drainage_area", "catchments", "drainage_area", "area",
+              "area draining through the cell (its own included) over realisations: median, "
+              "5% and 95%", DRAINAGE_NOTE, bands=("median", "p05", "p95")),
 )}
 
 
@@ -111,9 +129,12 @@ def layer_name(job: str, role: str) -> str:
 
 
 def units(name: str, vertical_units: str | None, weight: str = "persistence") -> str:
-    """Units of a layer: probabilities are shares; figures are in DEM units or counts."""
+    """Units of a layer: probabilities are shares; areas m²; figures are in the DEM's
+    vertical unit (``vertical_units``, its label) or counts."""
     if spec(name).unit == "probability":
         return "probability"
+    if spec(name).unit == "area":
+        return "m²"
     if weight == "count":
         return "count"
     return vertical_units or "DEM units"
@@ -127,7 +148,7 @@ def read_window(layers, r0: int, r1: int, c0: int, c1: int) -> dict:
     """
     if hasattr(layers, "read"):
         return layers.read(r0, r1, c0, c1)
-    return {k: (m[r0:r1, c0:c1], e[r0:r1, c0:c1]) for k, (m, e) in layers.items()}
+    return {k: tuple(a[r0:r1, c0:c1] for a in bands) for k, bands in layers.items()}
 
 
 #: cells per window when layers are read, summarised and written window by window

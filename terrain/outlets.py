@@ -49,6 +49,13 @@ class Outlets:
         The file (for messages).
     numbered : tuple of int
         1-based rows whose id was missing and became the row number.
+    given_xy : (k, 2) float64 array, optional
+        The coordinates as the file gives them, in ``given_crs``.
+    given_crs : str, optional
+        The file's CRS (``EPSG:4326``, or its name), or the DEM's when assumed.
+    crs_source : str
+        Where the points' CRS came from: ``file``, ``option``, ``sidecar
+        <name>``, or ``assumed`` (a CSV with neither: the DEM's CRS).
     """
 
     ids: tuple
@@ -56,6 +63,9 @@ class Outlets:
     attributes: object = None
     source: str = "outlets"
     numbered: tuple = field(default=())
+    given_xy: np.ndarray | None = None
+    given_crs: str | None = None
+    crs_source: str = "file"
 
 
 def _text(v) -> str | None:

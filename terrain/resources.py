@@ -67,6 +67,7 @@ BLOCKS_SCRATCH = 32  # the quick-look's float64 copy of a layer and its padded c
 QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, rendering (measured)
 SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run
 FIELD_DRAW = 24  # correlated error: a draw's float64 field and noise tiles, float32 copy (counted)
+COPULA_DRAW = 16  # ... and a non-Gaussian kernel's copula: quantiles and their temporaries (counted)
 LOG_BYTES_PER_PAIR = 21  # one logged pair on grids below 2**31 cells (counted)
 # Blocked mode (terrain.runner.blocked), per cell of a block task: block plus halo
 # (4), its error and the noise tiles it is drawn from (4 + 8), the local step on
@@ -188,9 +189,9 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     ex = ex if ex is not None else Execution()
     cells, value, stored = _grid(grid)
     field = field_bytes(grid, model)
-    parent_job, worker_job = job.memory_per_cell(value)
+    parent_job, worker_job = job.memory_per_cell(value, cells=cells)
     counts = sum(a.nbytes for a in job.new_counts(1).values())  # one chunk result per cell
-    kept, draw = 0, FIELD_DRAW if model is not None and model.correlated else 0
+    kept, draw = 0, _draw_bytes(model)
     backend = ex.resolved_backend
     local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
     dem = value + 1
@@ -226,6 +227,13 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells, per_cell={**phases, "worker": worker_cell},
                           block=int(block) if block else None, kernel=build)
+
+
+def _draw_bytes(model: ErrorModel | None) -> int:
+    """Bytes per cell of one correlated draw's work arrays (0 for independent error)."""
+    if model is None or not model.correlated:
+        return 0
+    return FIELD_DRAW + (COPULA_DRAW if model.kernel != "gaussian" else 0)
 
 
 def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook, field):
@@ -307,7 +315,8 @@ def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = N
     """One line on the memory a run of ``job`` needs: the guard's own figure."""
     ex = ex if ex is not None else Execution()
     est = estimate_run(grid, job, ex, model=model)
-    parent, worker = job.memory_per_cell(_grid(grid)[1])
+    cells, value, _ = _grid(grid)
+    parent, worker = job.memory_per_cell(value, cells=cells)
     if getattr(ex, "block", None):
         text = (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
                 f"{_gib(available_bytes())} available); ~{BLOCK_TASK} bytes per block cell "

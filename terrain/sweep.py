@@ -12,7 +12,25 @@ are not artefacts of splitting.
 
 Kernel sensitivity is reported as measured differences (a bound of the form
 ||f||_inf ||K1 - K2||_1 holds for the joint kernel over all cells, whose L1
-distance grows with the number of cells, so it says little here).
+distance grows with the number of cells, so it says little here). Under
+spatially correlated error every kernel reshapes the same Gaussian field
+(:mod:`terrain.noise.model`: a Gaussian copula), so kernels differ there
+too, and their runs are paired as closely as under independent error.
+
+Every difference between two runs is paired by realisation: realisation
+``i`` of one kernel and realisation ``i`` of the other come from the same
+random numbers, so the standard error of a difference is that of the
+per-realisation differences (:func:`terrain.jobs.credit.paired_difference`),
+much smaller than the two runs' own standard errors combined. The
+``layer_*`` columns describe the birth credit layer (summit or pit credit,
+in the DEM's vertical unit per cell): ``layer_max_abs_diff`` is the largest
+absolute difference of the two expected layers over cells, with the paired
+standard error at that cell; ``layer_mean_abs_diff`` the mean absolute
+difference over valid cells; ``layer_noise_floor`` the mean absolute
+difference Monte Carlo noise alone would give (the mean over cells of the
+paired standard error times sqrt(2/pi), the mean of |N(0, se)|), so a mean
+difference near the floor says the kernels cannot be told apart with this
+many realisations.
 """
 
 from __future__ import annotations
@@ -28,12 +46,12 @@ import pandas as pd
 
 from . import defaults
 from .dem import Dem
-from .errors import OptionError
-from .jobs.credit import CreditJob, log_weights
+from .errors import CairnWarning, OptionError
+from .jobs.credit import CreditJob, log_weights, paired_difference
 from .layers import layer_name
 from .noise import ErrorModel
 from .runner import RunResult, run_ensemble
-from .summary.features import FigureMatrix, figure_matrix
+from .summary.features import FigureMatrix, figure_matrix, unperturbed_figures
 
 __all__ = ["SWEEP_COLUMNS", "SENSITIVITY_COLUMNS", "SWEEP_COLUMN_KINDS", "SENSITIVITY_COLUMN_KINDS",
            "SweepResult", "sweep", "sweep_models", "run_checkpoint"]
@@ -71,6 +89,7 @@ class SweepResult:
     sensitivity: pd.DataFrame  # SENSITIVITY_COLUMNS
     top: list  # feature ids, largest expected figure first
     defaults: dict
+    note: CairnWarning | None = None  # why the kernel-sensitivity table is empty, if it is
 
 
 def sweep_models(template: ErrorModel, rmses, kernels) -> list[ErrorModel]:
@@ -140,7 +159,21 @@ def sweep(dem: Dem, job: CreditJob, models, *, realisations: int = 200, seed: in
     kernels = list(dict.fromkeys(m.kernel for m in models))
     levels = sorted({m.rmse for m in models})
     sens = _kernel_sensitivity(runs, fms, kernels, levels, top_ids, main)
-    return SweepResult(runs, job, ids, rows, sens, top_ids, job.defaults_used())
+    return SweepResult(runs, job, ids, rows, sens, top_ids, job.defaults_used(),
+                       _empty_note(kernels, top_ids, job))
+
+
+def _empty_note(kernels, top_ids, job) -> CairnWarning | None:
+    """Why the kernel-sensitivity table has no rows (None when it has some)."""
+    if len(kernels) < 2:
+        return CairnWarning(f"kernel sensitivity is empty: one kernel ({kernels[0]}) was run, so "
+                            "there is nothing to compare; give two or more {kernel} names to "
+                            "compare kernels at equal RMSE", "kernel")
+    if not top_ids:
+        return CairnWarning(f"kernel sensitivity is empty: no feature was counted in at least "
+                            f"{job.min_presence:.0%} of realisations of any run (lower the "
+                            "{threshold} or {min_presence})", "threshold", "min_presence")
+    return None
 
 
 def _shared_job(dem: Dem, job: CreditJob, models) -> CreditJob:
@@ -183,7 +216,7 @@ def _sweep_rows(runs, fms, job, ids):
     reg = job.regions
     dem = next(iter(runs.values())).dem
     ux, uy = dem.xy(reg.birth[ids - 1])
-    unperturbed = np.where(np.isinf(reg.persistence[ids - 1]), np.nan, reg.persistence[ids - 1])
+    unperturbed = unperturbed_figures(dem, job, ids)  # as summits.csv / pits.csv give it
     rows = {c: [] for c in SWEEP_COLUMNS}
     expected_max = np.zeros(ids.size)
     for (kernel, level), res in runs.items():
@@ -232,20 +265,22 @@ def _credit_shares(res: RunResult, ids: np.ndarray, job) -> tuple[np.ndarray, np
 
 
 def _pair_rows(level, ka, kb, ra, rb, fms, top_ids, main):
-    (ea, sa), (eb, sb) = ra.layers[main], rb.layers[main]
-    d = np.abs(ea - eb)
+    n = max(min(ra.n, rb.n), 1)
+    shape = ra.dem.shape
+    diff, se_pair = paired_difference(ra.log, rb.log, n, ra.job, shape[1],
+                                      (0, shape[0], 0, shape[1]))
+    d = np.abs(diff)
     valid = ~ra.dem.nodata
     i = int(np.argmax(np.where(valid, d, -1)))
-    se_pair = np.sqrt(sa ** 2 + sb ** 2)  # conservative: ignores the CRN correlation
+    floor = se_pair * np.sqrt(2 / np.pi)  # the mean |difference| of noise alone, per cell
     ids = np.asarray(top_ids, np.int64)
     fa, fb = _columns_of(fms[(ka, level)], ids), _columns_of(fms[(kb, level)], ids)
     first_a, first_b = _firsts(fms[(ka, level)], ids), _firsts(fms[(kb, level)], ids)
-    n = max(min(ra.n, rb.n), 1)
     for j, f in enumerate(top_ids):
         dfig = fa.figure[:n, j] - fb.figure[:n, j]  # paired by realisation (common random numbers)
         dfirst = first_a[:n, j].astype(float) - first_b[:n, j]
         yield (level, ka, kb, float(d.reshape(-1)[i]), float(se_pair.reshape(-1)[i]),
-               float(d[valid].mean()), float(se_pair[valid].mean()), f, float(dfig.mean()),
+               float(d[valid].mean()), float(floor[valid].mean()), f, float(dfig.mean()),
                float(dfig.std() / np.sqrt(n)), float(dfirst.mean()),
                float(dfirst.std() / np.sqrt(n)))
 

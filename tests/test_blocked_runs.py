@@ -22,7 +22,9 @@ from terrain.noise import ErrorSampler
 from .conftest import smooth_terrain, write_tif
 
 MODELS = {"independent": ErrorModel(rmse=1.0),
-          "correlated": ErrorModel(rmse=1.0, range_m=150.0, nugget=0.2)}
+          "correlated": ErrorModel(rmse=1.0, range_m=150.0, nugget=0.2),
+          # a non-Gaussian kernel under correlation: the copula, window by window
+          "correlated_uniform": ErrorModel(rmse=1.0, range_m=150.0, nugget=0.2, kernel="uniform")}
 
 
 def _dem(shape=(90, 77), seed=3):
@@ -126,7 +128,7 @@ def _layers(folder):
 def test_cli_layers_identical_with_block(cairn, tmp_path, kind):
     p = write_tif(tmp_path / "dem.tif", smooth_terrain((64, 72), seed=8))
     run = (kind, p, "--rmse", "1", "--range", "60", "-n", "4", "--workers", "1", "-q",
-           "--seed", "9")
+           "--seed", "9", "--kernel", "gaussian" if kind == "peaks" else "uniform")
     assert cairn(*run, "-o", tmp_path / "whole")[0] == 0
     code, _, err = cairn(*run, "-o", tmp_path / "blocks", "--block", "16")
     assert code == 0, err

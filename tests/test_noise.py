@@ -123,6 +123,7 @@ def test_nugget_and_sill():
 @pytest.mark.parametrize("model", [ErrorModel(rmse=1.5), ErrorModel(rmse=1.5, kernel="triangular",
                                                                     draw="quantile"),
                                    ErrorModel(rmse=1.5, range_m=400, nugget=0.3),
+                                   ErrorModel(rmse=1.5, range_m=400, nugget=0.3, kernel="uniform"),
                                    ErrorModel(rmse=1.5, range_m=3000, covariance="gaussian")])
 def test_any_window_draws_the_same_error(model):
     # counter-based tiles: the error at a cell does not depend on the window asked for
@@ -144,3 +145,97 @@ def test_quantile_inverts_the_cdf(kernel):
     # the same uniforms give every kernel: common random numbers, same standard deviation
     e = ErrorSampler(ErrorModel(rmse=2.0, kernel=kernel, draw="quantile"), (300, 300), (1, 1))
     assert e.draw(3, 0).std() == pytest.approx(2.0, rel=0.01)
+
+
+# -- the kernel sets the marginal of correlated error (Gaussian copula) -------------------
+def _excess_kurtosis(kernel: str) -> float:
+    """Excess kurtosis of a kernel's density, integrated by scipy (m4 / m2^2 - 3)."""
+    k = KERNELS[kernel]
+    lim = 12.0 if kernel == "gaussian" else 1.0
+    m2 = integrate.quad(lambda x: x ** 2 * k.pdf(x, 1.0), -lim, lim, points=[0])[0]
+    m4 = integrate.quad(lambda x: x ** 4 * k.pdf(x, 1.0), -lim, lim, points=[0])[0]
+    return m4 / m2 ** 2 - 3
+
+
+@pytest.mark.parametrize("kernel", ["uniform", "triangular", "epanechnikov"])
+def test_correlated_error_has_the_kernels_marginal(kernel):
+    # the copula's marginal is the kernel's: the sample's excess kurtosis matches the
+    # density's (scipy.integrate; uniform -6/5 = -1.2), its standard deviation is the RMSE,
+    # and a compact kernel bounds the error by its half-width (uniform: sqrt(3) RMSE)
+    rmse = 2.0
+    s = ErrorSampler(ErrorModel(rmse=rmse, kernel=kernel, range_m=60.0, nugget=0.2),
+                     (400, 400), (10.0, 10.0))
+    e = np.concatenate([s.draw(11, i).ravel() for i in range(3)]).astype(np.float64)
+    half = KERNELS[kernel].halfwidth(rmse)
+    assert np.abs(e).max() <= half * (1 + 1e-6)
+    assert np.abs(e).max() > 0.98 * half
+    assert e.std() == pytest.approx(rmse, rel=0.03)
+    assert stats.kurtosis(e) == pytest.approx(_excess_kurtosis(kernel), abs=0.08)
+    if kernel == "uniform":
+        assert _excess_kurtosis("uniform") == pytest.approx(-1.2, abs=1e-9)
+
+
+def test_kernels_share_one_gaussian_field():
+    # common random numbers across kernels under correlated error: every kernel's error
+    # is a monotone function of the same unit Gaussian field, so the orders agree
+    base = dict(rmse=1.0, range_m=300.0, nugget=0.3, draw="quantile")
+    g = ErrorSampler(ErrorModel(kernel="gaussian", **base), (200, 150), (10.0, 10.0)).draw(5, 2)
+    u = ErrorSampler(ErrorModel(kernel="uniform", **base), (200, 150), (10.0, 10.0)).draw(5, 2)
+    order = np.argsort(g, axis=None, kind="stable")
+    assert np.all(np.diff(u.reshape(-1)[order].astype(np.float64)) >= 0)
+    assert not np.array_equal(g, u)
+
+
+def _copula_correlation(kernel: str, rho: float) -> float:
+    """corr(F^-1(Phi(X)), F^-1(Phi(Y))) for a standard bivariate normal of correlation
+    rho, by Gauss-Hermite quadrature (numpy's hermegauss)."""
+    from scipy.special import ndtr
+
+    x, w = np.polynomial.hermite_e.hermegauss(120)
+    w = w / w.sum()
+    k = KERNELS[kernel]
+    y = rho * x[:, None] + math.sqrt(1 - rho * rho) * x[None, :]
+    clip = lambda u: np.clip(u, 1e-300, 1 - 1e-16)  # noqa: E731
+    q1, q2 = k.quantile(clip(ndtr(x[:, None]))), k.quantile(clip(ndtr(y)))
+    return float((w[:, None] * w[None, :] * q1 * q2).sum() / k.unit_variance)
+
+
+@pytest.mark.parametrize("kernel", list(KERNELS))
+def test_copula_keeps_the_practical_range(kernel):
+    # the copula's correlation is a monotone function of the Gaussian one: for the uniform
+    # margin (6/pi) arcsin(rho/2) (Kruskal 1958, JASA 53); the practical range (where the
+    # correlation falls to 0.05) moves by under 2% for every covariance model, well within
+    # 10% (the figures quoted in terrain/noise/model.py)
+    from scipy.optimize import brentq
+
+    if kernel == "uniform":
+        for rho in (0.05, 0.3, 0.5, 0.9):
+            assert _copula_correlation("uniform", rho) == pytest.approx(
+                6 / math.pi * math.asin(rho / 2), abs=1e-6)
+    quoted = {"uniform": 0.0478, "epanechnikov": 0.0492, "triangular": 0.0497, "gaussian": 0.05}
+    assert _copula_correlation(kernel, 0.05) == pytest.approx(quoted[kernel], abs=5e-5)
+    for model in ("exponential", "gaussian", "spherical"):
+        stated = brentq(lambda h, m=model: covariance(m, h, 1.0) - 0.05, 0.3, 1.5)
+        actual = brentq(lambda h, m=model: _copula_correlation(kernel, float(covariance(m, h, 1.0)))
+                        - 0.05, 0.3, 1.5)
+        assert actual == pytest.approx(stated, rel=0.02)
+
+
+def test_uniform_correlated_draws_keep_the_practical_range():
+    # empirical: the correlogram of uniform-margin fields crosses 0.05 within 10% of the
+    # stated practical range (exponential model, Holmes et al. 2000's check by variogram)
+    spacing, rng_m = 10.0, 100.0
+    s = ErrorSampler(ErrorModel(rmse=1.0, kernel="uniform", range_m=rng_m), (512, 512),
+                     (spacing, spacing))
+    f = np.stack([s.draw(3, i) for i in range(6)]).astype(np.float64)
+    f -= f.mean()
+    lags = np.arange(1, 16)
+    corr = np.array([0.5 * (np.mean(f[:, :, k:] * f[:, :, :-k]) + np.mean(f[:, k:] * f[:, :-k]))
+                     for k in lags]) / f.var()
+    for k, c in zip(lags, corr):
+        expect = _copula_correlation("uniform", float(covariance("exponential", k * spacing,
+                                                                  rng_m)))
+        assert c == pytest.approx(expect, abs=0.03)
+    j = int(np.argmax(corr < 0.05))
+    crossing = spacing * (lags[j - 1] + (corr[j - 1] - 0.05) / (corr[j - 1] - corr[j]))
+    assert crossing == pytest.approx(rng_m, rel=0.10)

@@ -109,3 +109,68 @@ def test_cli_sweep_writes_tables_and_plot(tmp_path, cairn):
     assert "Kernel sensitivity" in out
     code, _, err = cairn("sweep", dem, "-o", tmp_path / "x", "--kind", "peaks", "--rmse", "1,-2")
     assert code == 2 and "--rmse" in err
+
+
+def test_every_row_carries_unperturbed(ridge_sweep):
+    # the highest summit too: its figure on the DEM as given is its height above the
+    # base, as summits.csv gives it (50.25 m above the base 0)
+    res, df, high, low = ridge_sweep
+    assert df["unperturbed"].notna().all()
+    assert (df[df.feature_id == high]["unperturbed"] == 50.0 + DELTA).all()
+    assert (df[df.feature_id == low]["unperturbed"] == 2.0).all()  # 50 over the 48 m ridge
+    from terrain.summary.features import summarise_features
+
+    run = res.runs[("gaussian", max(LEVELS))]  # both summits are rows here
+    table = summarise_features(run).table.set_index("feature_id")["unperturbed"]
+    assert {high, low} <= set(table.index)
+    for fid in (high, low):
+        np.testing.assert_allclose(df[df.feature_id == fid]["unperturbed"], table[fid])
+
+
+def test_layer_differences_are_paired_by_realisation(ridge_sweep):
+    # the paired standard error of a layer difference, against plain numpy: per
+    # realisation, each cell's credit in one run minus in the other, then mean and s.e.
+    from terrain.jobs.credit import log_weights, paired_difference
+
+    res, *_ = ridge_sweep
+    ra, rb = res.runs[("gaussian", 0.5)], res.runs[("triangular", 0.5)]
+    n, shape = ra.n, ra.dem.shape
+    per = np.zeros((n, shape[0] * shape[1]))
+    for log, sign in ((ra.log, 1.0), (rb.log, -1.0)):
+        np.add.at(per, (log["real"].astype(int), log["birth"].astype(int)),
+                  sign * log_weights(log, ra.job.weight))
+    mean, se = paired_difference(ra.log, rb.log, n, ra.job, shape[1], (0, shape[0], 0, shape[1]))
+    np.testing.assert_allclose(mean.reshape(-1), per.mean(axis=0), atol=1e-12)
+    np.testing.assert_allclose(se.reshape(-1), per.std(axis=0) / np.sqrt(n), atol=1e-12)
+    row = pd.DataFrame(res.sensitivity)
+    row = row[(row.rmse == 0.5) & (row.kernel_a == "gaussian") & (row.kernel_b == "triangular")]
+    i = int(np.argmax(np.abs(per.mean(axis=0))))
+    assert row.layer_max_abs_diff.iloc[0] == pytest.approx(abs(per.mean(axis=0)[i]))
+    assert row.layer_max_abs_diff_se.iloc[0] == pytest.approx(per.std(axis=0)[i] / np.sqrt(n))
+    # the noise floor: the mean |N(0, se)| = se sqrt(2/pi), averaged over cells
+    floor = (per.std(axis=0) / np.sqrt(n)).mean() * np.sqrt(2 / np.pi)
+    assert row.layer_noise_floor.iloc[0] == pytest.approx(floor)
+
+
+def test_kernels_differ_under_correlated_error_and_an_empty_table_says_why(cairn, tmp_path):
+    # the kernel sets the marginal of correlated error too (Gaussian copula), so two kernels
+    # at equal RMSE no longer give identical runs; one kernel: the table is empty and the
+    # console says why
+    z = np.zeros((15, 31), np.float32)
+    z[7, 7:24] = 48.0
+    z[7, 7], z[7, 23] = 50.0, 50.0 + DELTA
+    dem = Dem.from_array(z, cellsize=10.0)
+    s = CreditJob("peaks", threshold=5.0, weight="count", base=0.0)
+    models = sweep_models(ErrorModel(rmse=1.0, range_m=30.0, nugget=0.5), (0.5,),
+                          ("gaussian", "uniform"))
+    res = sweep(dem, s, models, realisations=60, seed=5, backend="serial")
+    a, b = res.runs[("gaussian", 0.5)], res.runs[("uniform", 0.5)]
+    assert not np.array_equal(a.log["birth_value"], b.log["birth_value"])
+    assert len(res.sensitivity) and res.note is None
+    path = write_tif(tmp_path / "two.tif", z, units="metre")
+    code, out, err = cairn("sweep", path, "-o", tmp_path / "sw", "--kind", "peaks", "--rmse",
+                           "0.5", "-n", "5", "--min-prominence", "5", "--workers", "1",
+                           "--range", "30")
+    assert code == 0, err
+    assert "kernel sensitivity is empty: one kernel (gaussian)" in out and "--kernel" in out
+    assert "kernel_sensitivity_note" in (tmp_path / "sw" / "run.json").read_text()

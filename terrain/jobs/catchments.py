@@ -3,8 +3,10 @@
 A :class:`CatchmentJob` is run by :func:`terrain.runner.run_ensemble` like
 the peak and depression attribution. Realisation ``i`` perturbs the DEM,
 removes its depressions (least-cost breaching with a depth limit, or
-filling), routes D8 or D4 flow, accumulates drainage area in m^2 and adds
-1 to:
+filling), routes D8 or D4 flow, accumulates drainage area in m^2, keeps
+each cell's drainage area as a one-byte code for the drainage-area layer
+(median, 5% and 95% over realisations; :mod:`terrain.jobs.drainage_area`)
+and adds 1 to:
 
 - ``channel`` where the area draining through the cell reaches the channel
   area;
@@ -24,15 +26,19 @@ snapped cell, catchment and sub-catchment area per outlet.
 
 Memory per cell (stated by :meth:`CatchmentJob.memory_per_cell`), for k
 outlets: per worker, the run's float32 DEM (4 bytes), one realisation's
-drainage (26, see :mod:`terrain.engine.hydro`) and uint8 counts for its
-chunk (2k + 2; widened should a chunk exceed 255 realisations, which the
-default chunks of at most 25 never do), counted three times: the worker's
-own and up to two finished chunks awaiting their turn in the accumulating
-process: 36 + 6k bytes, 54 for 3 outlets. The accumulating process holds
-the DEM (its value bytes + 1 for the mask) and the float32 run copy (4),
-int32 counts (4 x (2k + 2); at most 2**31 - 1 realisations) and, while the
-outputs are written, one layer's estimate and standard error (16): for a
-float32 DEM 33 + 8k bytes, 57 for 3 outlets.
+drainage (26, see :mod:`terrain.engine.hydro`) and its chunk's results:
+uint8 counts (2k + 2; widened should a chunk exceed 255 realisations, which
+the default chunks of at most 25 never do), the area codes (25, one byte per
+realisation of a chunk of up to 25) and the chunk's smallest and largest
+areas (8), counted three times: the worker's own and up to two finished
+chunks awaiting their turn in the accumulating process: 135 + 6k bytes, 153
+for 3 outlets. The accumulating process holds the DEM (its value bytes + 1
+for the mask) and the float32 run copy (4), int32 counts (4 x (2k + 2); at
+most 2**31 - 1 realisations), the drainage-area histogram (2 bytes per code,
+K codes: 145 for a million cells, 8 more per doubling of the cells) and its
+extremes (8), and, while the outputs are written, one layer's bands (24, the
+drainage area's three): for a float32 DEM 49 + 8k + 2K bytes, 363 for 3
+outlets on a million cells.
 """
 
 from __future__ import annotations
@@ -47,12 +53,29 @@ import numpy as np
 from .. import defaults
 from ..dem import Dem
 from ..engine.grid import offsets
-from ..engine.hydro import CONDITIONING, condition, count_drainage, route, snap_to_max, subcatchment_labels
+from ..engine.hydro import (
+    CONDITIONING,
+    condition,
+    count_drainage,
+    flow,
+    route,
+    snap_to_max,
+    subcatchment_labels,
+)
 from ..errors import CheckpointError, OptionError, OutletError
 from ..layers import LAYERS, layer_name
 from ..noise import ErrorModel
 from ..outlets import layer_ids, short
 from .credit import concat_logs
+from .drainage_area import (
+    CHUNK_ROWS,
+    NO_CODE,
+    QUANTILES,
+    AreaCodes,
+    area_quantiles,
+    encode_areas,
+    fold_codes,
+)
 
 __all__ = ["CatchmentJob", "CatchmentAccumulator", "ProbabilityLayers", "snap_candidates",
            "LOG_FIELDS", "COUNTS", "RUN_LIMIT"]
@@ -138,6 +161,9 @@ class CatchmentJob:
         neighbourhood.
     source : str
         Where the outlets came from (for messages).
+    reference : float, optional
+        The elevation the float32 realisations are relative to (filled in by
+        :meth:`resolved`; see :meth:`terrain.dem.Dem.reference`).
 
     The grid-dependent arrays (snap candidates, cell sizes and areas) are
     filled in by :meth:`resolved`.
@@ -157,6 +183,8 @@ class CatchmentJob:
     cell_h: np.ndarray | None = None
     area_row: np.ndarray | None = None
     from_defaults: tuple = ()
+    reference: float | None = None
+    area_codes: AreaCodes | None = None
     layer_ids: tuple = field(init=False, default=())
 
     def __post_init__(self):
@@ -177,8 +205,9 @@ class CatchmentJob:
 
     @property
     def layers(self) -> tuple[str, ...]:
-        """Channel; with outlets also divides, then membership and sub-catchment per outlet."""
-        names = [layer_name("catchments", "channel")]
+        """Channel and drainage area; with outlets also divides, then membership and
+        sub-catchment per outlet."""
+        names = [layer_name("catchments", "channel"), layer_name("catchments", "drainage_area")]
         if self.ids:
             names.append(layer_name("catchments", "divide"))
             for role in ("membership", "subcatchment"):
@@ -186,17 +215,25 @@ class CatchmentJob:
         return tuple(names)
 
     def resolved(self, dem: Dem, model: ErrorModel) -> CatchmentJob:
-        """This job with its defaults resolved and the grid's arrays prepared."""
+        """This job with its defaults resolved and the grid's arrays prepared.
+
+        The first time (no snap candidates yet), outlets that snap to one cell on
+        the DEM as given are refused (:func:`refuse_shared_cells`)."""
         method = defaults.conditioning(self.conditioning)
         snap = defaults.snap_radius(self.snap_m, dem) if self.ids else self.snap_m
         cand, ptr = snap_candidates(dem, self.ids, self.xy, snap or 0.0, source=self.source)
         w, h = dem.cell_metres()
+        cap = defaults.breach_cap(self.breach_cap, method)
+        if self.cand is None and len(self.ids) > 1:
+            refuse_shared_cells(dem, self, cand, ptr, method=method, cap=cap)
+        area_row = dem.cell_area_m2()
+        valid = sum(int((~nd).sum()) for _, _, nd in dem.bands())
         return dataclasses.replace(
             self, snap_m=snap, cand=cand, cand_ptr=ptr, cell_w=w, cell_h=h,
-            area_row=dem.cell_area_m2(), channel_area=defaults.channel_area(self.channel_area),
-            conditioning=method, breach_cap=defaults.breach_cap(self.breach_cap,
-                                                                            method),
-            from_defaults=tuple(self.defaults_used()))
+            area_row=area_row, area_codes=AreaCodes.for_grid(area_row, valid),
+            channel_area=defaults.channel_area(self.channel_area),
+            conditioning=method, breach_cap=cap,
+            from_defaults=tuple(self.defaults_used()), reference=dem.reference(model.rmse))
 
     def defaults_used(self) -> dict:
         """The settings left to library defaults, with the rule each follows."""
@@ -210,15 +247,20 @@ class CatchmentJob:
         return {"job": "catchments", "outlets": dict(zip(self.ids, self.xy.tolist())),
                 "snap_m": self.snap_m, "channel_area": self.channel_area,
                 "conditioning": self.conditioning, "breach_cap": self.breach_cap,
-                "connectivity": self.connectivity}
+                "connectivity": self.connectivity, "reference": self.reference}
 
     def new_counts(self, n_cells: int) -> dict:
         """uint8 counts for one chunk (widened to uint16, then uint32, should a chunk
-        hold more than 255, then 65535 realisations)."""
+        hold more than 255, then 65535 realisations); the area codes of each of its
+        realisations (room for :data:`~terrain.jobs.drainage_area.CHUNK_ROWS`, grown
+        if need be) and their smallest and largest areas."""
         k = len(self.ids) if self.ids else 0
         m = n_cells if k else 0
         return {"channel": np.zeros(n_cells, np.uint8), "divide": np.zeros(m, np.uint8),
                 "member": np.zeros((k, m), np.uint8), "sub": np.zeros((k, m), np.uint8),
+                "area_codes": np.full((CHUNK_ROWS, n_cells), NO_CODE, np.uint8),
+                "area_lo": np.full(n_cells, np.inf, np.float32),
+                "area_hi": np.full(n_cells, -np.inf, np.float32),
                 "realised": np.zeros(1, np.int64)}
 
     def realise(self, z, sampler, seed, i, counts) -> dict:
@@ -236,6 +278,9 @@ class CatchmentJob:
             lab, _, parent, alias = subcatchment_labels(fl, snapped)
         else:
             lab, parent, alias = np.empty(0, np.int32), np.empty(0, np.int64), np.empty(0, np.int64)
+        row = int(counts["realised"][0]) - 1
+        encode_areas(fl.acc, fl.valid, self.area_row, z.shape[1], self.area_codes.size,
+                     counts["area_codes"][row], counts["area_lo"], counts["area_hi"])
         area, subarea = np.zeros(k), np.zeros(k)
         dr, dc = offsets(self.connectivity)
         count_drainage(lab, fl.valid, fl.acc, *z.shape, dr, dc, parent, alias, self.area_row,
@@ -247,25 +292,61 @@ class CatchmentJob:
     def accumulator(self, n_cells: int) -> CatchmentAccumulator:
         return CatchmentAccumulator(n_cells, self)
 
-    def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
+    def memory_per_cell(self, value_bytes: int, cells: int | None = None) -> tuple[int, int]:
         """Bytes per cell (accumulating process, each worker), as itemised in the
         module docstring: the process holds the DEM, its float32 copy, int32
-        counts and one layer being written; per worker, the float32 DEM, one
-        realisation's drainage and three sets of uint8 chunk counts (the
-        worker's, and up to two finished chunks awaiting their turn to be
-        folded in). Not counted: an error field's FFT work arrays
-        (correlated error) and a figure's rendering."""
+        counts, the drainage-area histogram of a grid of ``cells`` cells (its
+        codes, or a grid of 2**24 cells when not given) and one layer being
+        written; per worker, the float32 DEM, one realisation's drainage and
+        three chunk results (the worker's, and up to two finished chunks
+        awaiting their turn to be folded in). Not counted: an error field's FFT
+        work arrays (correlated error) and a figure's rendering."""
         counters = 2 * len(self.ids) + (2 if self.ids else 1)
-        return value_bytes + 1 + 4 + 4 * counters + 16, 4 + _ROUTING_BYTES + 3 * counters
+        codes = self.area_codes or AreaCodes.codes_for(cells if cells else 2 ** 24)
+        chunk = counters + CHUNK_ROWS + 8
+        return (value_bytes + 1 + 4 + 4 * counters + 2 * codes.size + 8 + 24,
+                4 + _ROUTING_BYTES + 3 * chunk)
+
+
+def refuse_shared_cells(dem: Dem, job: CatchmentJob, cand: np.ndarray, ptr: np.ndarray, *,
+                        method: str, cap: float | None) -> None:
+    """Refuse outlets that snap to one cell on the DEM as given (conditioned and
+    routed as a realisation is, without error): two gauges on one cell would
+    share one catchment, so one of them is misplaced or the snap radius too
+    large.
+
+    Raises
+    ------
+    OutletError
+        Naming both outlets and the cell.
+    """
+    w, h = dem.cell_metres()
+    fl = flow(dem.z, cell_w=w, cell_h=h, cell_area=dem.cell_area_m2(),
+              connectivity=job.connectivity, conditioning=method,
+              breach_cap=math.inf if cap is None else cap, mask=dem.nodata)
+    snapped = snap_to_max(fl.acc, cand, ptr)
+    seen: dict[int, int] = {}
+    for k, cell in enumerate(snapped.tolist()):
+        if cell in seen:
+            a, b = job.ids[seen[cell]], job.ids[k]
+            x, y = (float(v[0]) for v in dem.xy(np.array([cell])))
+            raise OutletError(f"{job.source}: outlets {short(a)} and {short(b)} snap to the same "
+                              f"cell ({x:.6g}, {y:.6g}) on the DEM as given; move one of them or "
+                              "give a smaller {snap_m}", "snap_m")
+        seen[cell] = k
 
 
 def _make_room(counts: dict) -> None:
-    """Count one more realisation in ``counts``: widen its arrays when full."""
+    """Count one more realisation in ``counts``: widen its arrays when full, and
+    give the area codes another row."""
     full = np.iinfo(counts["channel"].dtype).max
     if counts["realised"][0] >= full:
         wider = np.uint16 if full < 2**16 - 1 else np.uint32
         for name in COUNTS:
             counts[name] = counts[name].astype(wider)
+    codes = counts["area_codes"]
+    if counts["realised"][0] >= codes.shape[0]:
+        counts["area_codes"] = np.concatenate([codes, np.full_like(codes, NO_CODE)])
     counts["realised"][0] += 1
 
 
@@ -283,6 +364,12 @@ def _check(job: CatchmentJob) -> None:
     if job.breach_cap is not None and not job.breach_cap >= 0:
         raise OptionError(f"{{breach_cap}} must be >= 0 (vertical units), got "
                           f"{job.breach_cap}", "breach_cap")
+    if job.breach_cap is not None and job.conditioning == "fill":
+        raise OptionError("{breach_cap} limits breaching, which {conditioning} fill does not do; "
+                          "drop it, or choose {conditioning} breach", "breach_cap", "conditioning")
+    if job.snap_m is not None and not job.ids:
+        raise OptionError("{snap_m} snaps outlets, and there are none; drop it or give "
+                          "{outlets}", "snap_m", "outlets")
     if job.connectivity not in (4, 8):
         raise OptionError(f"{{connectivity}} must be 4 or 8, got {job.connectivity!r}",
                           "connectivity")
@@ -294,12 +381,19 @@ class ProbabilityLayers(Mapping):
     Nothing is held but the counts, so a run with many outlets never has all
     its float layers in memory at once; each access returns new float64
     arrays on the grid (the Monte Carlo standard error is sqrt(p(1-p)/N)).
+    ``computed`` adds layers made by a function when read (the drainage area:
+    its median, 5% and 95% bands); ``order`` is the order of the names.
     """
 
-    def __init__(self, counts: dict, n: int, shape):
+    def __init__(self, counts: dict, n: int, shape, computed: dict | None = None,
+                 order: tuple = ()):
         self._counts, self._n, self._shape = counts, n, tuple(shape)
+        self._computed = computed or {}
+        self._order = tuple(order) or tuple(counts) + tuple(self._computed)
 
     def __getitem__(self, name):
+        if name in self._computed:
+            return self._computed[name]()
         c = self._counts[name]
         n = max(self._n, 1)
         p = np.divide(c, n, dtype=np.float64).reshape(self._shape)
@@ -310,14 +404,18 @@ class ProbabilityLayers(Mapping):
         return p, se
 
     def __iter__(self):
-        return iter(self._counts)
+        return iter(self._order)
 
     def __len__(self):
-        return len(self._counts)
+        return len(self._order)
+
+
+_AREA_STATE = ("area_hist", "area_lo", "area_hi")
 
 
 class CatchmentAccumulator:
-    """int32 channel, divide, membership and sub-catchment counts plus the log."""
+    """int32 channel, divide, membership and sub-catchment counts, the drainage-area
+    histogram and extremes (:mod:`terrain.jobs.drainage_area`), plus the log."""
 
     def __init__(self, n_cells: int, job: CatchmentJob):
         self.job = job
@@ -328,6 +426,10 @@ class CatchmentAccumulator:
         self.divide = np.zeros(m, np.int32)
         self.member = np.zeros((k, m), np.int32)
         self.sub = np.zeros((k, m), np.int32)
+        size = job.area_codes.size if job.area_codes is not None else 1
+        self.area_hist = np.zeros((n_cells, size), np.uint16)
+        self.area_lo = np.full(n_cells, np.inf, np.float32)
+        self.area_hi = np.full(n_cells, -np.inf, np.float32)
         self.logs: list[dict] = []
 
     def add(self, log: dict, counts: dict, n: int) -> None:
@@ -336,20 +438,41 @@ class CatchmentAccumulator:
                               "realisations")
         for name in COUNTS:
             getattr(self, name).__iadd__(counts[name])
+        if self.n + n > np.iinfo(self.area_hist.dtype).max:
+            self.area_hist = self.area_hist.astype(np.uint32)
+        fold_codes(counts["area_codes"], n, self.area_hist)
+        np.minimum(self.area_lo, counts["area_lo"], out=self.area_lo)
+        np.maximum(self.area_hi, counts["area_hi"], out=self.area_hi)
         self.logs.append(log)
         self.n += n
+
+    def drainage_area(self, shape) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The drainage-area layer's bands on the grid: median, 5% and 95% of the
+        realisations' upslope areas (m^2, float64; NaN on nodata), at the exact
+        ranks ``ceil(p N)`` (see :mod:`terrain.jobs.drainage_area`)."""
+        n = max(self.n, 1)
+        ranks = np.array(sorted({max(math.ceil(p * n - 1e-9), 1) for p in QUANTILES}), np.int64)
+        out = np.empty((ranks.size, self.area_hist.shape[0]))
+        area_quantiles(self.area_hist, self.area_lo, self.area_hi, self.job.area_row, shape[1],
+                       ranks, out)
+        pick = {r: out[j].reshape(shape) for j, r in enumerate(ranks.tolist())}
+        return tuple(pick[max(math.ceil(p * n - 1e-9), 1)] for p in QUANTILES)
 
     def log(self) -> dict:
         return concat_logs(self.logs, LOG_FIELDS)
 
     def _named(self) -> dict:
-        names = self.job.layers
+        """The count layers by name (every layer but the drainage area)."""
+        area = layer_name("catchments", "drainage_area")
+        names = [n for n in self.job.layers if n != area]
         k = len(self.job.ids)
         arrays = [self.channel] + ([self.divide] + list(self.member) + list(self.sub) if k else [])
         return dict(zip(names, arrays))
 
     def layers(self, shape) -> Mapping:
-        return ProbabilityLayers(self._named(), self.n, shape)
+        area = layer_name("catchments", "drainage_area")
+        return ProbabilityLayers(self._named(), self.n, shape,
+                                 {area: lambda: self.drainage_area(shape)}, self.job.layers)
 
     def stop_statistic(self) -> float:
         """Largest standard error of any channel, divide, membership or sub-catchment
@@ -364,15 +487,19 @@ class CatchmentAccumulator:
 
     def state(self) -> dict:
         st = {"n": np.array(self.n), "channel": self.channel, "divide": self.divide,
-              "member": self.member, "sub": self.sub}
+              "member": self.member, "sub": self.sub,
+              **{name: getattr(self, name) for name in _AREA_STATE}}
         st.update({f"log_{k}": v for k, v in self.log().items()})
         return st
 
     def restore(self, st: dict) -> None:
-        for name in COUNTS:
+        for name in COUNTS + _AREA_STATE:
             have = getattr(self, name)
             if st.get(name) is None or st[name].shape != have.shape:
                 raise CheckpointError("checkpoint arrays do not match this DEM and these outlets")
-            have[:] = st[name]
+            if name == "area_hist":  # kept uint32 once past 65535 realisations
+                self.area_hist = np.array(st[name], dtype=st[name].dtype)
+            else:
+                have[:] = st[name]
         self.n = int(st["n"])
         self.logs = [{k: st[f"log_{k}"] for k in LOG_FIELDS}]

@@ -62,7 +62,7 @@ from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
            "realise", "pair_log", "pond_log", "log_weights", "concat_logs", "proportion", "region_figures",
-           "credit_layers", "CreditLayers", "dem_regions"]
+           "credit_layers", "CreditLayers", "dem_regions", "paired_difference"]
 
 KINDS = ("peaks", "depressions")
 FILTRATION = {"peaks": "peaks", "depressions": "pits"}  # the engine's name for each kind
@@ -102,6 +102,11 @@ class CreditJob:
     regions : Regions, optional
         The unperturbed DEM's regions at ``merge_level`` (filled in by
         :meth:`resolved`, or given to share them between runs).
+    reference : float, optional
+        The elevation the run's float32 realisations are relative to
+        (:meth:`terrain.dem.Dem.reference`: 0, or a float64 DEM's lowest
+        cell); filled in by :meth:`resolved`. Logged birth and death values
+        are relative to it.
     """
 
     kind: str
@@ -115,6 +120,7 @@ class CreditJob:
     regions: Regions | None = None
     area_row: np.ndarray | None = None
     from_defaults: tuple = ()
+    reference: float | None = None
 
     def __post_init__(self):
         if self.kind not in KINDS:
@@ -168,7 +174,7 @@ class CreditJob:
         return dataclasses.replace(
             self, threshold=thr, merge_level=merge, regions=reg, area_row=dem.cell_area_m2(),
             base=defaults.base_level(self.base, dem) if self.kind == "peaks" else None,
-            from_defaults=self._defaulted())
+            from_defaults=self._defaulted(), reference=dem.reference(model.rmse))
 
     def defaults_used(self) -> dict:
         """The settings left to library defaults, with the rule each follows."""
@@ -189,7 +195,7 @@ class CreditJob:
     def accumulator(self, n_cells: int, ponding=None) -> CreditAccumulator:
         return CreditAccumulator(n_cells, self, ponding)
 
-    def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
+    def memory_per_cell(self, value_bytes: int, cells: int | None = None) -> tuple[int, int]:
         """Accumulating process: the layers summed from the log at the end (4
         float64 moments, 1 int32 count, scratch float64 + int32), the int32
         ponding count of depressions, and the finished layers (a float64
@@ -230,7 +236,7 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
 
     Parameters
     ----------
-    z : (rows, cols) float32 array with NaN on nodata
+    z : (rows, cols) float32 array with NaN on nodata, relative to ``job.reference``
     sampler : ErrorSampler
     job : CreditJob (resolved)
     seed, i : the run's seed and the realisation index
@@ -251,7 +257,8 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
     if job.kind == "peaks":
         p = pairs(zi, kind="peaks", connectivity=job.connectivity)
         # the highest summit is measured to the base, or lower if the realisation is
-        floor = min(job.base, float(np.nanmin(zi))) if p.essential.any() else 0.0
+        floor = min(job.base - (job.reference or 0.0), float(np.nanmin(zi))) \
+            if p.essential.any() else 0.0
         death_value = np.where(p.essential, floor, p.death_value)
     else:
         p, fill = pits_and_levels(zi, connectivity=job.connectivity)
@@ -422,6 +429,38 @@ def credit_layers(log: dict, n: int, job: CreditJob, nc: int,
            layer_name(job.kind, "death_credit"): _moments(dsum, dsq, n),
            layer_name(job.kind, "birth_probability"): proportion(bcount, n)}
     return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
+
+
+def paired_difference(log_a: dict, log_b: dict, n: int, job: CreditJob, nc: int,
+                      window: tuple[int, int, int, int]) -> tuple[np.ndarray, np.ndarray]:
+    """The per-cell difference of two runs' birth credit layers, with its paired
+    Monte Carlo standard error.
+
+    Realisation ``i`` of one run is paired with realisation ``i`` of the other
+    (runs with common random numbers, e.g. two kernels of a sweep): per cell
+    ``D_i`` = the credit born there in run a minus in run b, so the standard
+    error ``sqrt((mean(D^2) - mean(D)^2) / n)`` keeps the strong correlation
+    between the runs instead of adding their variances. The first ``n``
+    realisations of each log are used. Returns float64 arrays of the
+    window's shape (mean difference, its standard error).
+    """
+    logs = [(g, sign) for g, sign in ((log_a, 1.0), (log_b, -1.0))]
+    real = np.concatenate([g["real"][g["real"] < n] for g, _ in logs]).astype(np.int64)
+    cells = np.concatenate([g["birth"][g["real"] < n] for g, _ in logs]).astype(np.int64)
+    w = np.concatenate([sign * log_weights(g, job.weight)[g["real"] < n] for g, sign in logs])
+    order = np.argsort(real, kind="stable")
+    r0, r1, c0, c1 = window
+    size = (r1 - r0) * (c1 - c0)
+    dsum, dsq, scratch = np.zeros(size), np.zeros(size), np.zeros(size)
+    none = np.full(real.size, -1, np.int64)  # no birth falls in the window
+    # births of both runs as "deaths": a cell may repeat within a realisation, and the
+    # kernel sums its weights per realisation before squaring
+    _accumulate(real[order], none, cells[order], w[order], nc, r0, r1, c0, c1,
+                np.zeros(0), np.zeros(0), dsum, dsq, np.zeros(0, np.int32), scratch,
+                np.zeros(size, np.int32))
+    m, e = _moments(dsum, dsq, n)
+    shape = (r1 - r0, c1 - c0)
+    return m.reshape(shape), e.reshape(shape)
 
 
 class CreditLayers:

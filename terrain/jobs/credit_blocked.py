@@ -74,13 +74,16 @@ class PerturbedSource:
     makes on the whole grid.
 
     ``dem`` is an array or a path to a ``.npy`` file (opened memory-mapped
-    per read, so the source pickles as a path).
+    per read, so the source pickles as a path); ``reference`` is subtracted
+    from its values before they become float32 (a DEM on disk holds the
+    elevations as read; see :meth:`terrain.dem.Dem.reference`).
     """
 
     dem: Any
     sampler: ErrorSampler
     seed: int
     i: int
+    reference: float = 0.0
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -91,7 +94,8 @@ class PerturbedSource:
         r0, r1, _ = rs.indices(self.shape[0])
         c0, c1, _ = cs.indices(self.shape[1])
         e = self.sampler.draw_window(self.seed, self.i, r0, r1, c0, c1)
-        e += np.asarray(_array(self.dem)[r0:r1, c0:c1], np.float32)
+        z = np.asarray(_array(self.dem)[r0:r1, c0:c1])
+        e += (z - self.reference if self.reference else z).astype(np.float32)
         return e
 
 
@@ -177,7 +181,8 @@ def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolut
 
 def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, i: int, *,
                     block: int, regions: Any, ponding: np.ndarray | None = None,
-                    map: Callable[..., Iterable] = builtins.map, scratch: Any = None) -> dict:
+                    map: Callable[..., Iterable] = builtins.map, scratch: Any = None,
+                    reference: float = 0.0) -> dict:
     """Realisation ``i`` block by block: the log of :func:`~terrain.jobs.credit.realise`.
 
     Parameters
@@ -201,6 +206,9 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
         :func:`materialise`). Default: a float32 array in this process when
         ``dem`` is an array, a temporary file beside ``dem`` when it is a path
         (the tasks may then run in other processes).
+    reference : float
+        Subtracted from ``dem``'s values (a DEM on disk, as read) to give the
+        float32 frame of ``job.reference``; 0 when ``dem`` is already in it.
 
     Returns
     -------
@@ -212,7 +220,7 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     .. [1] Morozov, D., Weber, G. H. (2013). Distributed merge trees.
        PPoPP '13, 93-102. doi:10.1145/2442516.2442526
     """
-    src = PerturbedSource(dem, sampler, int(seed), int(i))
+    src = PerturbedSource(dem, sampler, int(seed), int(i), float(reference))
     shape = src.shape
     wins = windows(shape, block)
     with contextlib.ExitStack() as scope:
@@ -243,7 +251,7 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -
     ponds = {}
     if job.kind == "peaks":
         # the highest summit is measured to the base, or lower if the realisation is
-        floor = min(job.base, lowest) if p.essential.any() else 0.0
+        floor = min(job.base - (job.reference or 0.0), lowest) if p.essential.any() else 0.0
         death_value = np.where(p.essential, floor, p.death_value)
     else:
         death_value = p.death_value

@@ -3,8 +3,20 @@
 A realisation of the DEM is ``z + e`` where ``e`` is drawn from an
 :class:`ErrorModel`: independent per-cell error from a kernel
 (:mod:`terrain.noise.kernels`) scaled to the stated RMSE, or a stationary
-Gaussian random field (:mod:`terrain.noise.fields`) with an optional
-independent nugget.
+random field (:mod:`terrain.noise.fields`) with an optional independent
+nugget. The kernel sets the marginal distribution of every model: a
+correlated field is drawn as a unit Gaussian field ``G`` (correlated part
+plus Gaussian nugget) and passed through a Gaussian copula,
+``e = RMSE * F^-1(Phi(G)) / sd(F)`` with ``F`` the kernel's distribution, so
+``--kernel uniform --range 500`` has a uniform marginal (``|e| <= sqrt(3) RMSE``)
+and very nearly the stated covariance. The copula changes the correlation
+``rho`` of ``G`` into a monotone function of it, equal to it for the Gaussian
+kernel and within 1.4% of it for the others (uniform:
+``(6/pi) arcsin(rho/2)``, Kruskal 1958): at ``rho = 0.05``, where the practical
+range is read, uniform 0.0478, Epanechnikov 0.0492, triangular 0.0497, so the
+practical range of an exponential model shrinks by 1.5%, 0.5% and 0.2%
+(gaussian model 0.8%, 0.3%, 0.1%; spherical 0.6%, 0.2%, 0.1%; computed by
+Gauss-Hermite quadrature, see ``tests/test_noise.py``).
 
 Counter-based streams: the random numbers of realisation ``i`` are drawn
 tile by tile, each fixed 256 x 256 noise tile from its own stream keyed by
@@ -20,6 +32,12 @@ References
 .. [2] O'Neill, M. E. (2014). PCG: A family of simple fast space-efficient
    statistically good algorithms for random number generation.
    HMC-CS-2014-0905 (numpy's PCG64; SeedSequence spawning).
+.. [3] Nelsen, R. B. (2006). An Introduction to Copulas, 2nd ed. Springer
+   (the Gaussian copula: a Gaussian field mapped through Phi and a quantile
+   function keeps its rank correlation and takes any marginal).
+.. [4] Kruskal, W. H. (1958). Ordinal measures of association. JASA 53,
+   814-861 (Pearson correlation of uniform margins of a bivariate normal,
+   (6/pi) arcsin(rho/2)).
 """
 
 from __future__ import annotations
@@ -31,7 +49,7 @@ import numpy as np
 
 from ..errors import OptionError
 from .fields import COVARIANCES, ConvolutionKernel
-from .kernels import kernel
+from .kernels import Kernel, kernel
 
 __all__ = ["ErrorModel", "ErrorSampler", "rmse_from", "realisation_rng", "tile_rng", "NOISE_TILE",
            "LE90_FACTOR", "A95_FACTOR", "DRAWS", "ACCURACY_HINT"]
@@ -106,25 +124,32 @@ class ErrorModel:
     rmse : float
         Total vertical RMSE (DEM units).
     kernel : str
-        Kernel of the independent part (a name in
-        :data:`terrain.noise.kernels.KERNELS`); it also draws a jittered
-        threshold.
+        The error's marginal distribution (a name in
+        :data:`terrain.noise.kernels.KERNELS`), independent or correlated
+        (a correlated field takes it through a Gaussian copula); it also
+        draws a jittered threshold.
     range_m : float
         Practical range of the correlated part in metres; 0 = independent.
     covariance : str
         Covariance model of the correlated part.
     nugget : float
-        Share of the variance drawn independently (from ``kernel``) when
-        ``range_m > 0``; the correlated sill is ``(1 - nugget) rmse^2``.
+        Share of the variance drawn independently when ``range_m > 0``; the
+        correlated sill is ``(1 - nugget) rmse^2`` (both parts Gaussian
+        before the copula, so the sum keeps the kernel's marginal).
     draw : {"direct", "quantile"}
         How kernel errors are drawn: each kernel's own fast sampler, or one
         uniform per cell through the kernel's quantile function (the same
         uniforms for every kernel: common random numbers across kernels).
+    accuracy : tuple
+        How the accuracy was stated, when not as an RMSE: ``("le90", 4.0)``
+        or ``("a95", 2.0)`` (echoed by :meth:`describe`); empty otherwise.
 
     Examples
     --------
     >>> ErrorModel(rmse=1.5, range_m=50).describe()
     'RMSE 1.5 (gaussian, exponential range 50 m)'
+    >>> ErrorModel(rmse=rmse_from(le90=4.0), accuracy=("le90", 4.0)).describe("m")
+    'LE90 4 m = RMSE 2.43 m (gaussian)'
     """
 
     rmse: float
@@ -133,6 +158,7 @@ class ErrorModel:
     covariance: str = "exponential"
     nugget: float = 0.0
     draw: str = "direct"
+    accuracy: tuple = ()
 
     def __post_init__(self):
         for name in ("rmse", "range_m", "nugget"):
@@ -158,6 +184,11 @@ class ErrorModel:
         if self.draw not in DRAWS:
             raise OptionError(f"{{draw}} must be one of {', '.join(DRAWS)}, got {self.draw!r}",
                               "draw")
+        acc = tuple(self.accuracy or ())
+        if acc and (len(acc) != 2 or acc[0] not in ("le90", "a95")):
+            raise OptionError(f"{{accuracy}} is (\"le90\" or \"a95\", value), got {acc!r}",
+                              "accuracy")
+        object.__setattr__(self, "accuracy", (acc[0], float(acc[1])) if acc else ())
 
     @property
     def correlated(self) -> bool:
@@ -167,14 +198,26 @@ class ErrorModel:
     def as_dict(self) -> dict:
         return asdict(self)
 
-    def describe(self) -> str:
-        """Short text, e.g. ``RMSE 1 (gaussian, exponential range 50 m, nugget 0.2)``."""
+    def describe(self, unit: str | None = None) -> str:
+        """Short text, e.g. ``RMSE 1 m (gaussian, exponential range 50 m, nugget 0.2)``;
+        an accuracy stated as LE90 or at 95% is echoed beside the RMSE it gives
+        (``LE90 4 m = RMSE 2.43 m``). ``unit``: the vertical unit's label."""
         extra = ""
         if self.range_m > 0:
             extra = f", {self.covariance} range {self.range_m:g} m"
             if self.nugget:
                 extra += f", nugget {self.nugget:g}"
-        return f"RMSE {self.rmse:g} ({self.kernel}{extra})"
+        u = f" {unit}" if unit else ""
+        stated = ""
+        if self.accuracy:
+            name, value = self.accuracy
+            stated = f"{'LE90' if name == 'le90' else 'accuracy at 95%'} {value:g}{u} = "
+        return f"{stated}RMSE {_sig(self.rmse)}{u} ({self.kernel}{extra})"
+
+
+def _sig(v: float) -> str:
+    """A figure to three significant digits, without an exponent below 1e6."""
+    return f"{v:.0f}" if 100 <= abs(v) < 1e6 else f"{v:.3g}"
 
 
 class ErrorSampler:
@@ -183,21 +226,29 @@ class ErrorSampler:
     ``draw(seed, i)`` returns the error of realisation ``i`` in DEM units
     (float32, the grid's shape); ``draw_window(seed, i, r0, r1, c0, c1)`` the
     same values on a window. A unit-scale draw is multiplied by the model's
-    RMSE, so models that differ only in RMSE use common random numbers.
+    RMSE, so models that differ only in RMSE use common random numbers; a
+    correlated field is the same unit Gaussian field for every kernel (its
+    Gaussian copula, see the module docstring), so models that differ only in
+    kernel do too. Memory per window cell of a correlated draw: the float64
+    field and its noise tiles, and for a non-Gaussian kernel the float64
+    copula values (8 more).
     """
 
     def __init__(self, model: ErrorModel, shape, spacing_m):
         self.model = model
         self.shape = tuple(shape)
         self.kernel = kernel(model.kernel)
+        self.gaussian = kernel("gaussian")  # the nugget's draws under a copula
         self.field = None
         if model.correlated:
             self.field = ConvolutionKernel(spacing_m, model.covariance, model.range_m)
             self.field_tile = self.field.tile_size(self.shape)
 
-    def _tiles(self, seed, i, stream, r0, r1, c0, c1, normal: bool, cache=None) -> np.ndarray:
+    def _tiles(self, seed, i, stream, r0, r1, c0, c1, normal: bool, cache=None, *,
+               kernel: Kernel | None = None) -> np.ndarray:
         """Unit draws on a window, assembled from the fixed noise tiles (``cache``
-        keeps tiles already drawn for this window's neighbours)."""
+        keeps tiles already drawn for this window's neighbours): float64 standard
+        normals (``normal``) or draws of ``kernel`` (default: the model's)."""
         t = NOISE_TILE
         out = np.empty((r1 - r0, c1 - c0), np.float64 if normal else np.float32)
         for tr in range(r0 // t, (r1 - 1) // t + 1):
@@ -205,7 +256,8 @@ class ErrorSampler:
                 tile = None if cache is None else cache.get((tr, tc))
                 if tile is None:
                     rng = tile_rng(seed, i, stream, tr, tc)
-                    tile = rng.standard_normal((t, t)) if normal else self._kernel_draw(rng, (t, t))
+                    tile = rng.standard_normal((t, t)) if normal else \
+                        self._kernel_draw(rng, (t, t), kernel or self.kernel)
                     if cache is not None:
                         cache[(tr, tc)] = tile
                 a, b = max(r0, tr * t), min(r1, (tr + 1) * t)
@@ -213,12 +265,12 @@ class ErrorSampler:
                 out[a - r0:b - r0, c - c0:d - c0] = tile[a - tr * t:b - tr * t, c - tc * t:d - tc * t]
         return out
 
-    def _kernel_draw(self, rng: np.random.Generator, shape) -> np.ndarray:
+    def _kernel_draw(self, rng: np.random.Generator, shape, k: Kernel) -> np.ndarray:
         if self.model.draw == "quantile":
             u = rng.random(shape)
             np.maximum(u, 2.0 ** -60, out=u)  # the quantile is finite on (0, 1)
-            return self.kernel.quantile(u).astype(np.float32)
-        return self.kernel.sample(rng, shape)
+            return k.quantile(u).astype(np.float32)
+        return k.sample(rng, shape)
 
     def _field(self, seed, i, r0, r1, c0, c1) -> np.ndarray:
         """Unit-variance correlated field on a window, from fixed field tiles."""
@@ -243,6 +295,8 @@ class ErrorSampler:
             e = self._tiles(seed, i, 0, r0, r1, c0, c1, False)
             e *= np.float32(m.rmse / unit_sd)
             return e
+        if self.kernel.name != "gaussian":
+            return self._copula(seed, i, r0, r1, c0, c1)
         corr = self._field(seed, i, r0, r1, c0, c1).astype(np.float32)
         corr *= np.float32(m.rmse * math.sqrt(1 - m.nugget))
         if m.nugget > 0:
@@ -250,6 +304,31 @@ class ErrorSampler:
             e *= np.float32(m.rmse * math.sqrt(m.nugget) / unit_sd)
             corr += e
         return corr
+
+    def _copula(self, seed: int, i: int, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+        """A correlated error with the kernel's marginal: the unit Gaussian field
+        (correlated part and Gaussian nugget, the very numbers the Gaussian kernel
+        uses) through Phi and the kernel's quantile function, scaled to the RMSE."""
+        from scipy.special import ndtr
+
+        m = self.model
+        g = self._field(seed, i, r0, r1, c0, c1)
+        g *= math.sqrt(1 - m.nugget)
+        if m.nugget > 0:
+            g += math.sqrt(m.nugget) * self._tiles(seed, i, 1, r0, r1, c0, c1, False,
+                                                   kernel=self.gaussian)
+        u = ndtr(g, out=g)
+        np.clip(u, 2.0 ** -60, 1 - 2.0 ** -53, out=u)  # the quantile is finite on (0, 1)
+        e = self.kernel.quantile(u)
+        e *= m.rmse / math.sqrt(self.kernel.unit_variance)
+        e32 = e.astype(np.float32)
+        if self.kernel.compact:  # float32 rounding never takes an error past the half-width
+            h = self.kernel.halfwidth(m.rmse)
+            top = np.float32(h)
+            if float(top) > h:
+                top = np.nextafter(top, np.float32(0))
+            np.clip(e32, -top, top, out=e32)
+        return e32
 
     def draw(self, seed: int, i: int) -> np.ndarray:
         """The error of realisation ``i`` on the whole grid."""

@@ -26,8 +26,12 @@ class OutputFile:
     needs_outlets: bool = False
 
 
+_BANDS = {("estimate", "standard_error"): " (band 1), its standard error (band 2)",
+          ("median", "p05", "p95"): ", in m²: median (band 1), 5% (band 2) and 95% (band 3)"}
+
+
 def _rasters(job: str) -> list[OutputFile]:
-    return [OutputFile(s.name + ".tif", s.description + " (band 1), its standard error (band 2)",
+    return [OutputFile(s.name + ".tif", s.description + _BANDS[s.bands],
                        needs_outlets=s.needs_outlets)
             for s in layers_of(job)]
 

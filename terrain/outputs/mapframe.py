@@ -119,8 +119,8 @@ def short_unit(unit: str | None) -> str:
     """A vertical unit as a reader writes it (``metre`` -> ``m``)."""
     u = (unit or "").strip().lower()
     return {"metre": "m", "meter": "m", "metres": "m", "meters": "m", "m": "m",
-            "foot": "ft", "feet": "ft", "ft": "ft", "us survey foot": "ft (US survey)"}.get(
-        u, unit or "DEM units")
+            "foot": "ft", "feet": "ft", "ft": "ft", "us survey foot": "US survey ft",
+            "us-ft": "US survey ft"}.get(u, unit or "DEM units")
 
 
 def _pool(a: np.ndarray, k: int, how) -> np.ndarray:
@@ -153,7 +153,8 @@ def pooled_dem(dem: Dem, k: int) -> Dem:
     z = pool_bands(lambda r0, r1: dem.window(r0, r1, 0, dem.shape[1]), dem.shape, k, np.nanmean)
     return Dem(z=z, nodata=np.isnan(z), transform=(a * k, b * k, c, d * k, e * k, f), crs=dem.crs,
                geographic=dem.geographic, linear_unit_m=dem.linear_unit_m,
-               vertical_units=dem.vertical_units, source=dem.source)
+               vertical_units=dem.vertical_units, vertical_unit=dem.vertical_unit,
+               vertical_unit_source=dem.vertical_unit_source, source=dem.source)
 
 
 def pooling(shape: tuple[int, int]) -> int:
@@ -163,7 +164,8 @@ def pooling(shape: tuple[int, int]) -> int:
 
 def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
               k: int = 1) -> np.ndarray:
-    """Hillshade in [0, 1] (matplotlib's LightSource, cell sizes in metres).
+    """Hillshade in [0, 1] (matplotlib's LightSource, cell sizes and elevations in
+    metres: a DEM in feet is not exaggerated 3.28 times).
 
     Nodata cells take the elevation of the nearest valid cell before shading,
     so the edges of nodata areas make no false cliffs; mask them when drawing.
@@ -188,7 +190,8 @@ def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
         return np.full(z.shape, 0.5)
     w, h = dem.cell_metres()
     ls = LightSource(azdeg=azimuth, altdeg=altitude)
-    return ls.hillshade(z, vert_exag=1.0, dx=float(np.mean(w)) * k, dy=float(np.mean(h)) * k)
+    return ls.hillshade(z, vert_exag=dem.metres_per_unit, dx=float(np.mean(w)) * k,
+                        dy=float(np.mean(h)) * k)
 
 
 class MapFrame:
@@ -283,14 +286,15 @@ class MapFrame:
         ax.tick_params(labelsize=FONT_PT)
 
     def layer(self, values: np.ndarray, *, cmap, label: str, vmax: float | None = None,
-              sqrt: bool = False, hide: np.ndarray | None = None, floor: float = 0.0):
+              sqrt: bool = False, hide: np.ndarray | None = None, floor: float = 0.0,
+              log: bool = False):
         """The main layer over the hillshade with its colour bar.
 
         Cells at 0 or below ``floor``, nodata and cells where ``hide`` is True
-        are left transparent. ``sqrt`` draws a square-root colour scale
-        (said in the colour bar's label).
+        are left transparent. ``sqrt`` draws a square-root colour scale,
+        ``log`` a logarithmic one from ``floor`` (said in the colour bar's label).
         """
-        from matplotlib.colors import Normalize, PowerNorm
+        from matplotlib.colors import LogNorm, Normalize, PowerNorm
 
         v = self.view(values)
         mask = ~(v > 0) | (v < floor) | np.isnan(v)
@@ -299,13 +303,16 @@ class MapFrame:
         top = vmax if vmax is not None else (float(np.nanmax(v)) if np.isfinite(v).any() else 1.0)
         top = top if top > 0 else 1.0
         norm = PowerNorm(0.5, vmin=0.0, vmax=top) if sqrt else Normalize(0.0, top)
+        if log:
+            low = floor if floor > 0 else float(np.nanmin(np.where(v > 0, v, np.nan)))
+            norm = LogNorm(vmin=low, vmax=max(top, low * 10))
         # low values more transparent: the hillshade shows through where little is going on
         alpha = np.clip(0.45 + 0.5 * np.nan_to_num(norm(v).filled(0.0)), 0.0, 0.95)
         im = self.ax.imshow(np.ma.masked_where(mask, v), cmap=cmap, norm=norm, alpha=alpha,
                             extent=self.view_extent, interpolation="nearest", gid="layer")
         self.cax = self.fig.add_axes((0.85, 0.1, 0.03, 0.7))
         bar = self.fig.colorbar(im, cax=self.cax)
-        text = label + (" (square-root scale)" if sqrt else "")
+        text = label + (" (square-root scale)" if sqrt else " (log scale)" if log else "")
         bar.set_label("\n".join(textwrap.wrap(text, 44)), fontsize=FONT_PT + 1)
         bar.ax.tick_params(labelsize=FONT_PT)
         return im

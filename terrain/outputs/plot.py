@@ -42,7 +42,7 @@ if TYPE_CHECKING:
     from ..summary.features import FeatureSummary
 
 __all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_map",
-           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED"]
+           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED", "area_text", "figure_text"]
 
 LABELLED = 12  # features labelled on a map, at most
 LABEL_PRESENCE = 0.5  # ... among those counted in at least this share of realisations
@@ -71,13 +71,32 @@ _KIND = {
 def run_footer(result: RunResult, layer: str | None = None) -> str:
     """The footer line of a run's figures: error model, vertical units, realisations,
     seed, and the note that travels with ``layer`` (:mod:`terrain.layers`), if any."""
-    text = (f"Error model: {result.model.describe()}, vertical units "
-            f"{short_unit(result.dem.vertical_units)}; {result.n} realisations, seed "
-            f"{result.params.get('seed')}.")
+    u = result.dem.unit_label
+    text = (f"Error model: {result.model.describe(u)}{_settings(result)}; elevations in {u}; "
+            f"{result.n} realisations, seed {result.params.get('seed')}.")
     note = spec(layer).note if layer else ""
     if note:
         text += f" The {' '.join(spec(layer).name.split('_{id}')[0].split('_'))} layer {note}."
     return text
+
+
+def _settings(result) -> str:
+    """The resolved settings a figure's footer echoes: a peaks or depressions run's
+    cut-off (``, minimum depth 7.5 m (3 × RMSE)``), a catchment run's channel area
+    and conditioning (``, channels from 0.1 km², breach up to 3 m``)."""
+    job = result.job
+    if getattr(job, "name", None) == "catchments" and job.channel_area is not None:
+        how = (f"breach up to {job.breach_cap:g} {result.dem.unit_label}"
+               if job.conditioning == "breach" else "fill")
+        return f", channels from {area_text(job.channel_area)}, {how}"
+    if getattr(job, "kind", None) not in ("peaks", "depressions") or job.threshold is None:
+        return ""
+    from .. import defaults
+
+    what = "prominence" if job.kind == "peaks" else "depth"
+    rule = (f" ({defaults.CUTOFF_PER_RMSE:g} × RMSE)" if "threshold" in job.from_defaults
+            else "")
+    return f", minimum {what} {figure_text(job.threshold)} {result.dem.unit_label}{rule}"
 
 
 def bar_label(name: str, vertical_units: str | None, weight: str = "persistence") -> str:
@@ -95,6 +114,13 @@ def figure_text(v: float) -> str:
     if not np.isfinite(v):
         return "-"
     return f"{v:.0f}" if abs(v) >= 100 else f"{v:.3g}"
+
+
+def area_text(a: float) -> str:
+    """An area as a reader writes it: ``30 km²`` from 1 km² up, else ``20,000 m²``."""
+    if not np.isfinite(a):
+        return "-"
+    return f"{a / 1e6:.4g} km²" if a >= 1e6 else f"{a:,.4g} m²" if a < 1000 else f"{a:,.0f} m²"
 
 
 def share_text(p: float) -> str:
@@ -197,7 +223,7 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     """
     dem, job, table = result.dem, result.job, features.table
     kind = _KIND[job.kind]
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.vertical_units, job.weight))
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.unit_label, job.weight))
     groups = _label_groups(table)
     drawn = table[(table["p_above"] >= LABEL_PRESENCE)
                   | table["group"].isin([g for g, _ in groups])]
@@ -216,7 +242,7 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     else:
         vmax, note = 1.0, f"; clear under {PONDING_FLOOR:.0%}"
     frame.layer(values, cmap=palette(kind["palette"]), vmax=vmax, sqrt=kind["sqrt"],
-                label=bar_label(main, dem.vertical_units) + note,
+                label=bar_label(main, dem.unit_label) + note,
                 floor=0.0 if job.kind == "peaks" else PONDING_FLOOR)
     if job.kind == "depressions":
         frame.contours(np.where(inside, np.nan, values), [0.5], colour=INK,
@@ -363,13 +389,7 @@ def catchment_map(result: RunResult, summary=None) -> Figure:
     job, dem = result.job, result.dem
     how = f"{job.conditioning}, D{job.connectivity}"
     if not job.ids:
-        main = layer_name("catchments", "channel")
-        frame = MapFrame(dem, title="Channels: where the drainage area reaches the channel area",
-                         subtitle=f"drainage area >= {job.channel_area:g} m²; {how}",
-                         footer=run_footer(result, main), caution=CAUTION)
-        frame.layer(result.layers[main][0], cmap=palette("water"), vmax=1.0, floor=DIVIDE_FLOOR,
-                    label=bar_label(main, dem.vertical_units) + f"; clear under {DIVIDE_FLOOR:.0%}")
-        return frame.figure()
+        return _drainage_map(result, how)
     main = layer_name("catchments", "divide")
     sub = LAYERS[layer_name("catchments", "subcatchment")]
     frame = MapFrame(dem, title="Sub-catchments: where each outlet's share holds, and where the "
@@ -378,7 +398,7 @@ def catchment_map(result: RunResult, summary=None) -> Figure:
                               f"at least 50% (solid) and 90% (dashed) of realisations; {how}",
                      footer=run_footer(result, main), caution=CAUTION)
     frame.layer(result.layers[main][0], cmap=palette("divides"), vmax=1.0, floor=DIVIDE_FLOOR,
-                label=bar_label(main, dem.vertical_units) + f"; clear under {DIVIDE_FLOOR:.0%}")
+                label=bar_label(main, dem.unit_label) + f"; clear under {DIVIDE_FLOOR:.0%}")
     drawn = False
     for n, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
         name = sub.concrete(lid)
@@ -421,6 +441,28 @@ def _snapped(frame: MapFrame, outlets) -> None:
                     name=f"{short(str(row.outlet_id), 24)} snapped")
 
 
+DRAINAGE_FLOOR = 1.0  # the drainage map leaves clear cells draining under this share of
+#                        the channel area (hillslopes), so the network and its main stems show
+
+
+def _drainage_map(result: RunResult, how: str) -> Figure:
+    """The quick-look of a catchment run without outlets, for placing gauges: the
+    median drainage area on a log scale, cells draining less than the channel area
+    left clear, so the network shows and its main stems stand out."""
+    job, dem = result.job, result.dem
+    area = layer_name("catchments", "drainage_area")
+    median = result.layers[area][0]
+    cell = float(np.min(dem.cell_area_m2()))
+    floor = max(DRAINAGE_FLOOR * float(job.channel_area), 2 * cell)
+    frame = MapFrame(dem, title="Drainage area: where the main stems run, for placing gauges",
+                     subtitle=f"median over realisations, log scale; cells draining less than "
+                              f"{area_text(floor)} (the channel area) left clear; {how}",
+                     footer=run_footer(result, area), caution=CAUTION)
+    frame.layer(median, cmap=palette("water"), log=True, floor=floor,
+                label="median drainage area over realisations (m²)")
+    return frame.figure()
+
+
 def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
     """Which feature is first, and how sure: the ranking chart of a peaks or
     depressions run.
@@ -444,7 +486,7 @@ def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
 
     job, table = result.job, features.table
     kind = _KIND[job.kind]
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.vertical_units,
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.unit_label,
                             job.weight))
     share = features.rank_share
     rows, left_out = ranked_rows(table, share, RANKED)

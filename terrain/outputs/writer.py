@@ -50,7 +50,8 @@ from .manifest import MANIFEST, VECTOR_LAYERS, replace_patterns
 from .tables import rounded
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
-           "vector_descriptions", "published", "READ_SETTINGS", "plain_text"]
+           "vector_descriptions", "published", "READ_SETTINGS", "plain_text",
+           "vertical_unit_record"]
 
 # how the DEM was read, as recorded in run.json: band, box, declared nodata,
 # the window of the file read, scale and offset applied, the file's own nodata
@@ -103,7 +104,7 @@ def provenance(result, *, input_path: str | None, command_line: str | None, crea
         "input": {"path": input_path, "sha256": file_sha256(input_path) if input_path else None,
                   "dem_checksum": result.params["dem_checksum"], "shape": list(dem.shape),
                   "crs": dem.crs, "transform": list(dem.transform),
-                  "vertical_units": dem.vertical_units or "DEM units",
+                  **vertical_unit_record(dem),
                   **{k: dem.meta.get(k) for k in READ_SETTINGS}},
         "parameters": {**parameters, "error_model": result.model.as_dict(),
                        "seed": result.params["seed"]},
@@ -116,8 +117,17 @@ def provenance(result, *, input_path: str | None, command_line: str | None, crea
     return run
 
 
+def vertical_unit_record(dem) -> dict:
+    """What ``run.json`` says of the vertical unit: the unit, where it came from,
+    metres per unit (exact), and what the file declared."""
+    return {"vertical_unit": dem.vertical_unit, "vertical_unit_source": dem.vertical_unit_source,
+            "metres_per_vertical_unit": dem.metres_per_unit,
+            "vertical_unit_declared": dem.vertical_units}
+
+
 def _tags(result, command_line: str | None) -> dict:
     return {"cairn_version": __version__, "command_line": command_line or "",
+            "vertical_unit": result.dem.unit_label,
             "realisations": result.n, "seed": result.params["seed"],
             "error_model": result.model.as_dict(), "settings": result.job.describe(),
             "caution": CAUTION}
@@ -157,7 +167,9 @@ class _Clock:
 
 
 def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
-    """Every layer of ``result`` as a two-band Cloud Optimized GeoTIFF named after it."""
+    """Every layer of ``result`` as a Cloud Optimized GeoTIFF named after it (its bands
+    as its spec in :mod:`terrain.layers` says: estimate and standard error, or the
+    drainage area's median, 5% and 95%)."""
     tags = _tags(result, command_line)
     weight = getattr(result.job, "weight", "persistence")
     full = dict(zip(getattr(result.job, "layer_ids", ()), getattr(result.job, "ids", ())))
@@ -166,16 +178,16 @@ def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
         s = spec(name)
         oid = name[len(s.name.split("{id}")[0]):] if "{id}" in s.name else None
         desc = s.description.replace("{id}", full.get(oid, oid)) if oid else s.description
-        describe[name] = dict(units=units(name, result.dem.vertical_units, weight),
-                              description=desc, note=s.note,
+        describe[name] = dict(units=units(name, result.dem.unit_label, weight),
+                              description=desc, note=s.note, roles=s.bands,
                               tags={**tags, **({"note": s.note} if s.note else {})})
     if result.dem.on_disk:  # out of core: every layer written window by window
         write_layers_by_window({n: outdir / f"{n}.tif" for n in describe}, result.dem,
                                functools.partial(read_window, result.layers),
                                layer_windows(result.dem.shape), describe)
         return
-    for name, (est, se) in result.layers.items():
-        write_layer(outdir / f"{name}.tif", result.dem, est, se, name=name, **describe[name])
+    for name, bands in result.layers.items():
+        write_layer(outdir / f"{name}.tif", result.dem, *bands, name=name, **describe[name])
 
 
 def vector_descriptions(result, names, *, note: str = "") -> dict:
@@ -184,9 +196,9 @@ def vector_descriptions(result, names, *, note: str = "") -> dict:
     What the layer is (:data:`~terrain.outputs.manifest.VECTOR_LAYERS`), the
     error model and realisations, the layer's note (if any) and the caution.
     """
-    model = (f"Error model: {result.model.describe()}, vertical units: "
-             f"{result.dem.vertical_units or 'DEM units'}; {result.n} realisations, seed "
-             f"{result.params['seed']}.")
+    model = (f"Error model: {result.model.describe(result.dem.unit_label)}; prominences, depths "
+             f"and elevations in {result.dem.unit_label}, areas in m², volumes in m³; "
+             f"{result.n} realisations, seed {result.params['seed']}.")
     extra = f" It {note}." if note else ""
     return {n: f"{VECTOR_LAYERS.get(n, n)}. {model}{extra} {CAUTION}" for n in names}
 
@@ -275,12 +287,14 @@ def write_sweep(outdir: str | Path, result, *, input_path: str | None,
                   rounded(result.sensitivity, SENSITIVITY_COLUMN_KINDS, geographic=geographic))
     with clock("figures"), plain_text():
         write_figure(out / "sweep.png",
-                     plot.sweep_figure(result, units=any_run.dem.vertical_units or "DEM units"))
+                     plot.sweep_figure(result, units=any_run.dem.unit_label))
     run = provenance(any_run, input_path=input_path, command_line=command_line, created=created,
                      parameters={**result.job.describe(), "features": int(result.ids.size),
                                  "top_features": result.top})
     run["parameters"].pop("error_model")
     run["defaults"] = result.defaults
+    if result.note is not None:
+        run["kernel_sensitivity_note"] = str(result.note)
     run["runs"] = [{"error_model": r.model.as_dict(), "realisations_done": r.n,
                     "execution": r.info} for r in result.runs.values()]
     run.pop("execution")

@@ -100,6 +100,7 @@ class BlockedContext:
     block: int
     realisation: str | None = None
     ponding: Any = None
+    reference: float = 0.0  # subtracted from ``dem`` (a DEM on disk, as read)
 
 
 @contextlib.contextmanager
@@ -217,6 +218,6 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
                 grid = ponding.reshape(shape) if ponding is not None else None
             logs = [realise_blocked(ctx.dem, ctx.sampler, job, ctx.seed, i, block=ctx.block,
                                     regions=ctx.regions, ponding=grid, map=bmap,
-                                    scratch=ctx.realisation)
+                                    scratch=ctx.realisation, reference=ctx.reference)
                     for i in range(a, b)]
             yield a, b, {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}, counts

@@ -354,8 +354,10 @@ def _runner(st, ex: Execution, plan, halt, scope: contextlib.ExitStack):
     dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
         st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
     ponding = st.acc.ponding if getattr(st.acc, "on_disk", False) else None
+    on_disk = not isinstance(st.z, np.ndarray)  # the DEM as read: its values still to shift
     return blocked_runner(BlockedContext(dem_src, reg_src, st.sampler, st.job, int(ex.seed),
-                                         int(ex.block), drawn, ponding),
+                                         int(ex.block), drawn, ponding,
+                                         _reference(st.job) if on_disk else 0.0),
                           plan, ex.resolved_backend, ex.n_workers, ex.scheduler, halt)
 
 
@@ -388,12 +390,18 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     if dem.on_disk:  # out of core: the DEM's file is read by window; counts go to disk
         z = dem.z
         acc = job.accumulator(dem.shape[0] * dem.shape[1], **_count_store(dem, job, ex, params))
-    else:
-        z = np.where(dem.nodata, np.nan, dem.z).astype(np.float32)
+    else:  # float32, relative to the job's reference elevation (terrain.dem.Dem.reference)
+        ref = _reference(job)
+        z = np.where(dem.nodata, np.nan, dem.z - ref if ref else dem.z).astype(np.float32)
         acc = job.accumulator(z.size)
     if ex.resume:
         load_checkpoint(ex.checkpoint, acc, params)
     return _Start(job, used, sampler, z, params, acc)
+
+
+def _reference(job) -> float:
+    """The elevation a resolved job's float32 realisations are relative to (0 if none)."""
+    return float(getattr(job, "reference", None) or 0.0)
 
 
 def _count_store(dem: Dem, job, ex: Execution, params: dict) -> dict:

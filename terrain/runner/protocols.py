@@ -53,7 +53,10 @@ class Job(Protocol):
 
     A job's ``None`` settings are library defaults, filled in by
     :meth:`resolved` against the DEM and error model before the run starts;
-    realisations only ever see resolved jobs.
+    realisations only ever see resolved jobs. A resolved job may carry
+    ``reference``: the elevation the runner subtracts from the DEM before it
+    becomes the float32 values realisations read
+    (:meth:`terrain.dem.Dem.reference`; 0 when absent).
     """
 
     name: str
@@ -80,9 +83,11 @@ class Job(Protocol):
     def accumulator(self, n_cells: int) -> Accumulator:
         """A fresh accumulator for this job."""
 
-    def memory_per_cell(self, value_bytes: int) -> tuple[int, int]:
+    def memory_per_cell(self, value_bytes: int, cells: int | None = None) -> tuple[int, int]:
         """Bytes per cell (accumulating process, each worker while realising) for
-        a DEM whose values take ``value_bytes`` (4 or 8); the memory guard's input.
+        a DEM whose values take ``value_bytes`` (4 or 8) and has ``cells`` cells
+        (a figure may grow with the grid, e.g. the drainage-area histogram's
+        codes); the memory guard's input.
 
         The accumulating process's figure covers what the job holds there at
         once: its accumulators and the finished layers of the result (all of

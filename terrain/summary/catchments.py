@@ -8,8 +8,9 @@ column of the outlets file (a column whose name is one of ours is renamed
   at least 50% / 90% of realisations;
 - ``subcatchments``: cells whose first chosen outlet downstream is this one
   in at least 50% / 90% of realisations;
-- ``outlets``: the point as given, its most frequent snapped cell with the
-  share of realisations that chose it, and the mean snap distance.
+- ``outlets``: the point as given (in the outlets file's own CRS, named in
+  ``crs``) and in the DEM's CRS, its most frequent snapped cell (DEM's CRS)
+  with the share of realisations that chose it, and the mean snap distance.
 """
 
 from __future__ import annotations
@@ -29,15 +30,16 @@ __all__ = ["CATCHMENT_COLUMNS", "OUTLET_COLUMNS", "CATCHMENT_COLUMN_KINDS", "OUT
 
 CATCHMENT_COLUMNS = ("outlet_id", "layer_id", "level", "area_m2", "area_mean_m2", "area_p05_m2",
                      "area_p95_m2")
-OUTLET_COLUMNS = ("outlet_id", "layer_id", "x", "y", "snapped_x", "snapped_y", "snapped_share",
-                  "snap_distance_mean_m")
+OUTLET_COLUMNS = ("outlet_id", "layer_id", "x", "y", "crs", "x_dem", "y_dem", "snapped_x",
+                  "snapped_y", "snapped_share", "snap_distance_mean_m")
 #: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`);
 #: attribute columns from the outlets file are written as they came.
 CATCHMENT_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "level": "probability",
                           "area_m2": "area", "area_mean_m2": "area", "area_p05_m2": "area",
                           "area_p95_m2": "area"}
-OUTLET_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "x": "coordinate",
-                       "y": "coordinate", "snapped_x": "coordinate", "snapped_y": "coordinate",
+OUTLET_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "x": "parameter",
+                       "y": "parameter", "crs": "text", "x_dem": "coordinate",
+                       "y_dem": "coordinate", "snapped_x": "coordinate", "snapped_y": "coordinate",
                        "snapped_share": "probability", "snap_distance_mean_m": "area"}
 FRAME_COLUMN_KINDS = {"catchments": CATCHMENT_COLUMN_KINDS, "subcatchments": CATCHMENT_COLUMN_KINDS,
                       "outlets": OUTLET_COLUMN_KINDS}
@@ -155,12 +157,16 @@ def snap_distances(dem: Dem, x0: float, y0: float, cells: np.ndarray) -> np.ndar
     return np.hypot(x - x0, y - y0) * dem.linear_unit_m
 
 
-def outlet_table(result, attributes=None):
-    """One row per outlet: the point as given (geometry, ``x``, ``y``), its most
-    frequent snapped cell (``snapped_x``, ``snapped_y``; lowest cell index on
-    ties) with the share of realisations that chose it, and the mean
+def outlet_table(result, attributes=None, *, outlets=None):
+    """One row per outlet: the point as given (``x``, ``y`` in the outlets file's
+    own CRS, named in ``crs``; written as given), the same point in the DEM's
+    CRS (``x_dem``, ``y_dem``, and the geometry), its most frequent snapped
+    cell's centre in the DEM's CRS (``snapped_x``, ``snapped_y``; lowest cell
+    index on ties) with the share of realisations that chose it, and the mean
     distance (m) from the point to the snapped cell's centre over
-    realisations; then the outlet's attributes.
+    realisations; then the outlet's attributes. ``outlets`` (a
+    :class:`terrain.outlets.Outlets`) gives the coordinates as given; without
+    it they are the job's, in the DEM's CRS.
 
     Returns
     -------
@@ -172,6 +178,9 @@ def outlet_table(result, attributes=None):
 
     dem, job, log = result.dem, result.job, result.log
     rows = {c: [] for c in OUTLET_COLUMNS}
+    given = getattr(outlets, "given_xy", None)
+    given = job.xy if given is None else np.asarray(given, np.float64)
+    crs = getattr(outlets, "given_crs", None) or _crs_name(dem.crs)
     for k, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
         x0, y0 = (float(v) for v in job.xy[k])
         cells = np.asarray(log["cell"])[np.asarray(log["outlet"]) == k]
@@ -183,18 +192,31 @@ def outlet_table(result, attributes=None):
                                                                                  cells).mean())
         else:
             sx = sy = share = dist = np.nan
-        for col, v in zip(OUTLET_COLUMNS, (oid, lid, x0, y0, sx, sy, share, dist)):
+        gx, gy = (float(v) for v in given[k])
+        for col, v in zip(OUTLET_COLUMNS, (oid, lid, gx, gy, crs, x0, y0, sx, sy, share, dist)):
             rows[col].append(v)
     frame = _attach(pd.DataFrame(rows), range(len(job.ids)), attributes)
     return gpd.GeoDataFrame(frame, geometry=[Point(x, y) for x, y in job.xy], crs=dem.crs)
 
 
-def summarise_catchments(result, attributes=None) -> CatchmentSummary:
+def _crs_name(crs) -> str:
+    """The DEM's CRS as a short text (``EPSG:32633``, its name, or ``none``)."""
+    if crs is None:
+        return "none"
+    from pyproj import CRS
+
+    c = CRS.from_user_input(crs)
+    code = c.to_epsg()
+    return f"EPSG:{code}" if code else c.name
+
+
+def summarise_catchments(result, attributes=None, *, outlets=None) -> CatchmentSummary:
     """The ``catchments``, ``subcatchments`` and ``outlets`` tables of a run
-    (no tables when the run had no outlets)."""
+    (no tables when the run had no outlets); ``outlets`` (the
+    :class:`terrain.outlets.Outlets` read) gives the coordinates as given."""
     if not result.job.ids:
         return CatchmentSummary({})
     return CatchmentSummary({
         "catchments": catchment_table(result, attributes, role="membership"),
         "subcatchments": catchment_table(result, attributes, role="subcatchment"),
-        "outlets": outlet_table(result, attributes)})
+        "outlets": outlet_table(result, attributes, outlets=outlets)})

@@ -55,7 +55,7 @@ from .ranks import (
 
 __all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "RANK_LAYER", "TOP_SHARE", "PONDED_SHARE",
            "RANKS", "FeatureSummary", "FigureMatrix", "figure_matrix", "rank_shares",
-           "summarise_features", "region_polygons", "unperturbed_ponding"]
+           "summarise_features", "region_polygons", "unperturbed_ponding", "unperturbed_figures"]
 
 TOP_SHARE = 0.9  # "where the top is": the fewest cells holding 90% of a summit's births
 PONDED_SHARE = 0.5  # the ponded extent: cells ponded in at least half the realisations
@@ -327,12 +327,22 @@ def _top_cells(log: dict, labels, ids: np.ndarray, shape) -> SparseTop:
     return SparseTop(shape, cand[keep], lab[keep].astype(np.int32))
 
 
+def unperturbed_figures(dem: Dem, job, ids: np.ndarray) -> np.ndarray:
+    """Each region's figure on the DEM as given: its own pair's persistence, and for
+    the highest summit (no key col) its height above the base, or above the DEM's
+    lowest cell when that is lower (as realisations measure it)."""
+    reg = job.regions
+    k = np.asarray(ids, np.int64) - 1
+    base = job.base if job.base is not None else 0.0
+    return np.where(reg.death[k] < 0, reg.birth_value[k] - min(base, dem.lowest()),
+                    reg.persistence[k])
+
+
 def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
     reg = job.regions
     k = ids - 1
-    base = job.base if job.base is not None else 0.0
     death = reg.death[k]
-    fig = np.where(death < 0, reg.birth_value[k] - min(base, dem.lowest()), reg.persistence[k])
+    fig = unperturbed_figures(dem, job, ids)
     bx, by = _xy(dem, reg.birth[k])
     dx, dy = _xy(dem, death)
     d = _DEATH[job.kind]
@@ -343,8 +353,9 @@ def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
 
 
 def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Ponded area (m^2) and storage volume (vertical unit x m^2) of every region
-    on the DEM as given, indexed by region id (index 0: cells in no region).
+    """Ponded area (m^2) and storage volume (the DEM's vertical unit x m^2; times
+    ``dem.metres_per_unit`` for m^3) of every region on the DEM as given,
+    indexed by region id (index 0: cells in no region).
 
     A cell is ponded when it lies below its depression's spill level and the
     depression is at least the job's cut-off deep; its volume is the depth
@@ -366,15 +377,19 @@ def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.nda
 
 
 def _pond_columns(result, ids: np.ndarray) -> dict:
-    """Ponded area and volume per region: unperturbed, and mean / 5% / 95%
-    over realisations (0 when a region holds no water)."""
+    """Ponded area (m^2) and volume (m^3) per region: unperturbed, and mean / 5% /
+    95% over realisations (0 when a region holds no water). Volumes are summed
+    in the DEM's vertical unit times m^2 and converted to m^3 with the unit's
+    exact factor (1, 0.3048 or 1200/3937 m per unit)."""
     log, n = result.log, result.n
     area0, vol0 = unperturbed_ponding(result.dem, result.job, result.info.get("block"))
+    to_m = result.dem.metres_per_unit
+    vol0 = vol0 * to_m
     col = np.searchsorted(ids, log["pond_region"]) if ids.size else log["pond_region"]
     hit = (col < ids.size) & (ids[np.minimum(col, max(ids.size - 1, 0))] == log["pond_region"]) \
         if ids.size else np.zeros(0, bool)
     out = {"ponded_area_m2": area0[ids], "volume_m3": vol0[ids]}
-    for name, values in (("ponded_area", log["pond_area"]), ("volume", log["pond_volume"])):
+    for name, values in (("ponded_area", log["pond_area"]), ("volume", log["pond_volume"] * to_m)):
         m = np.zeros((n, ids.size))
         m[log["pond_real"][hit].astype(np.int64), col[hit]] = values[hit]
         unit = "m2" if name == "ponded_area" else "m3"
@@ -396,7 +411,8 @@ def _table(result, fm: FigureMatrix, rows: np.ndarray, ranks: np.ndarray) -> dic
     d = _DEATH[job.kind]
     data = {"feature_id": ids, **cols, "x": bx, "y": by,
             "elevation": dem.values_at(best),
-            f"{d}_x": dx, f"{d}_y": dy, f"{d}_elevation": delev, f"{d}_share": dshare,
+            f"{d}_x": dx, f"{d}_y": dy, f"{d}_elevation": delev + (job.reference or 0.0),
+            f"{d}_share": dshare,
             **_unperturbed(dem, job, ids), "region_area_m2": _areas(dem, labels, ids)}
     if job.kind == "depressions":
         data.update(_pond_columns(result, ids))

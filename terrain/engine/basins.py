@@ -29,8 +29,8 @@ import numpy as np
 from numba import njit
 
 __all__ = ["before", "lower", "descend", "resolve", "hslot", "upsert", "find", "fill_cells",
-           "CODES8", "CODES4", "CANDIDATE", "MINIMUM", "sweep", "label_of", "resolve_all",
-           "NOLABEL", "earlier"]
+           "CODES8", "CODES4", "GROUPS8", "GROUPS4", "CANDIDATE", "MINIMUM", "sweep", "label_of",
+           "resolve_all", "NOLABEL", "earlier"]
 
 
 @njit(cache=True, inline="always")
@@ -235,14 +235,18 @@ _RING = ((-1, -1), (-1, 0), (-1, 1), (0, -1), (0, 1), (1, -1), (1, 0), (1, 1))
 NOLABEL = np.iinfo(np.int32).min
 
 
-def _cell_codes(conn: int) -> np.ndarray:
+def _groups(conn: int) -> tuple[np.ndarray, np.ndarray]:
     """Per 8-bit mask of the neighbours earlier than a cell (bit k: neighbour
-    k of :data:`_RING`): :data:`MINIMUM` when no filtration neighbour (all 8,
-    or the 4 edge neighbours) is earlier, :data:`CANDIDATE` when the earlier
-    filtration neighbours lie in two or more groups that the earlier cells
-    around the cell do not join (adjacency: 8-neighbours for 8, edge
-    neighbours for 4), else 0."""
-    out = np.zeros(256, np.uint8)
+    k of :data:`_RING`), how its earlier filtration neighbours (all 8, or
+    the 4 edge neighbours) fall into groups joined through earlier cells
+    around it (adjacency: 8-neighbours for 8, edge neighbours for 4).
+
+    Returns the code (:data:`MINIMUM` when there is no group,
+    :data:`CANDIDATE` for two or more, else 0) and one neighbour of each
+    group (ring positions, -1 padded, 4 columns).
+    """
+    codes = np.zeros(256, np.uint8)
+    reps = np.full((256, 4), -1, np.int8)
     for m in range(256):
         cells = [k for k in range(8) if m >> k & 1]
         parent = {k: k for k in cells}
@@ -259,16 +263,20 @@ def _cell_codes(conn: int) -> np.ndarray:
                 if (max(dr, dc) == 1) if conn == 8 else (dr + dc == 1):
                     parent[root(a)] = root(b)
         ends = cells if conn == 8 else [k for k in cells if k in (1, 3, 4, 6)]
-        groups = len({root(k) for k in ends})
-        out[m] = MINIMUM if groups == 0 else CANDIDATE if groups >= 2 else 0
-    return out
+        first = {}
+        for k in ends:
+            first.setdefault(root(k), k)
+        codes[m] = MINIMUM if not first else CANDIDATE if len(first) >= 2 else 0
+        reps[m, :len(first)] = sorted(first.values())
+    return codes, reps
 
 
 CANDIDATE = 1
 MINIMUM = 2
-#: :func:`_cell_codes` for 8- and 4-connectivity.
-CODES8 = _cell_codes(8)
-CODES4 = _cell_codes(4)
+#: :func:`_groups` for 8- and 4-connectivity: the code of each mask, and
+#: one earlier neighbour per group.
+CODES8, GROUPS8 = _groups(8)
+CODES4, GROUPS4 = _groups(4)
 
 
 @njit(cache=True, inline="always")
@@ -379,16 +387,18 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
     index) or, for a local minimum, ``-(basin + 1)`` with basins numbered
     in raster order; nodata cells get :data:`NOLABEL`. ``codes`` is
     :data:`CODES8` or :data:`CODES4`. Returns ``minc`` (the cell of each
-    basin's minimum), ``cand`` (the saddle candidates, raster order) and
-    ``edge`` (cells on the raster edge or next to nodata, raster order).
+    basin's minimum), ``cand`` (the saddle candidates, raster order), their
+    masks of earlier neighbours and ``edge`` (cells on the raster edge or
+    next to nodata, raster order).
     Rows whose 3 x 3 neighbourhoods are all valid go through
     :func:`_fast_row` (vectorised), then a scan of its masks; the rest
     through :func:`_slow_cell`. Memory: the labels (4 bytes per cell) and
-    8 bytes per minimum, candidate and edge cell.
+    8 bytes per minimum, candidate (9) and edge cell.
     """
     n = nr * nc
     minc = np.empty(max(64, n // 64), np.int64)
     cand = np.empty(max(64, n // 32), np.int64)
+    cmask = np.empty(cand.size, np.uint8)
     edge = np.empty(max(64, 2 * (nr + nc)), np.int64)
     mrow = np.zeros(nc, np.uint8)
     nmin = 0
@@ -403,6 +413,7 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
     for r in range(nr):
         minc = _grow(minc, nmin, nc)
         cand = _grow(cand, ncand, nc)
+        cmask = _grow(cmask, ncand, nc)
         edge = _grow(edge, nedge, nc)
         o = r * nc
         fast = 0 < r < nr - 1 and nc >= 3 and rowok[r - 1] and rowok[r] and rowok[r + 1]
@@ -411,7 +422,8 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
         for c in range(nc):
             i = o + c
             if fast and 0 < c < nc - 1:
-                code = codes[mrow[c]]
+                m = mrow[c]
+                code = codes[m]
             elif valid[i]:
                 m, best, is_edge = _slow_cell(z, s, valid, i, r, c, nr, nc, conn8)
                 lab[i] = best
@@ -429,13 +441,14 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
                 continue
             if code == CANDIDATE:
                 cand[ncand] = i
+                cmask[ncand] = m
                 ncand += 1
             # an earlier target already holds its label or a pointer to a later
             # cell: take it, so pointers left over point forward
             p = lab[i]
             q = lab[p]
             lab[i] = q if p < i else p
-    return minc[:nmin], cand[:ncand], edge[:nedge]
+    return minc[:nmin], cand[:ncand], cmask[:ncand], edge[:nedge]
 
 
 @njit(cache=True, inline="always")
@@ -463,8 +476,13 @@ def label_of(lab, x):
 
 @njit(cache=True)
 def resolve_all(lab):
-    """Every valid cell's label ``-(basin + 1)`` (after :func:`sweep`), in place."""
-    for i in range(lab.size):
+    """Every valid cell's label ``-(basin + 1)`` (after :func:`sweep`), in place.
+
+    Backwards through the raster: the sweep leaves most pointers pointing to
+    later cells, whose labels are then already final (one read each); the
+    others follow their chain (:func:`label_of`).
+    """
+    for i in range(lab.size - 1, -1, -1):
         x = lab[i]
         if x >= 0:
             y = lab[x]

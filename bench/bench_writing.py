@@ -1,16 +1,20 @@
-"""Benchmark: writing layers as Cloud Optimized GeoTIFFs, and its share of a run.
+"""Benchmark: writing's share of a run, and writing a layer as a COG vs a plain GeoTIFF.
 
-1. Runs ``cairn demo`` (in a temporary folder, as a user would) and prints,
-   from each part's ``run.json`` timings, the seconds spent writing the
-   GeoTIFF layers and all files, and their shares of the run's wall time
-   (realisations + writing; the target is layers <= 10%).
-2. Writes one two-band float32 layer of ``--side``² cells through
+1. Runs ``cairn peaks`` and ``cairn depressions`` (as a user would, in a
+   temporary folder, ``--workers 2``) on a ``--side``² smooth terrain GeoTIFF
+   (``common.terrain``, 30 m cells, RMSE 2 m) for each of ``--counts``
+   realisations, and prints from each run's ``run.json`` timings the seconds
+   spent on the realisations, the layers, the tables and the figures, the
+   writing's wall time (layers and tables are written while the figures are
+   drawn, so it is less than their sum) and its share of the run (target
+   <= 15% at 300 realisations, 1024²).
+2. Writes one two-band float32 layer of ``--layer-side``² cells through
    ``terrain.io.write_layer`` (GDAL's COG driver with statistics) and, as the
    reference measured in the same run, as a plain tiled DEFLATE GeoTIFF with
    overviews added afterwards (the layout before COG); medians of 3 after a
    warm-up.
 
-Run:  python bench/bench_writing.py [--side 2048] [--skip-demo]
+Run:  python bench/bench_writing.py [--side 1024] [--counts 100,300,1000] [--skip-runs]
 """
 
 from __future__ import annotations
@@ -26,14 +30,33 @@ import numpy as np
 from common import median_time, terrain
 
 
-def demo_shares(folder: Path) -> None:
-    subprocess.run([sys.executable, "-c", "from cairn_cli.main import run; run()", "demo",
-                    "-o", str(folder), "-q"], check=True)
-    print("cairn demo        realisations_s  layers_s  layers_share  writing_s  writing_share")
-    for part in ("peaks", "depressions"):
-        t = json.loads((folder / part / "run.json").read_text())["timings"]
-        print(f"  {part:<15} {t['realisations_s']:>14.2f} {t['layers_s']:>9.2f} "
-              f"{t['layers_share']:>13.1%} {t['writing_s']:>10.2f} {t['writing_share']:>14.1%}")
+def write_dem(path: Path, side: int) -> None:
+    import rasterio
+    from rasterio.transform import from_origin
+
+    z = terrain(side)
+    with rasterio.open(path, "w", driver="GTiff", height=side, width=side, count=1,
+                       dtype="float32", crs="EPSG:32633",
+                       transform=from_origin(500000, 6000000, 30, 30)) as ds:
+        ds.write(z, 1)
+
+
+def run_shares(folder: Path, side: int, counts) -> None:
+    dem = folder / "dem.tif"
+    write_dem(dem, side)
+    print(f"cairn peaks/depressions on a {side}² terrain, RMSE 2, --workers 2")
+    print(f"  {'kind':<12} {'n':>5} {'realis. s':>10} {'layers s':>9} {'tables s':>9} "
+          f"{'figures s':>10} {'writing s':>10} {'writing share':>14}")
+    for n in counts:
+        for kind in ("peaks", "depressions"):
+            out = folder / f"{kind}-{n}"
+            subprocess.run([sys.executable, "-c", "from cairn_cli.main import run; run()", kind,
+                            str(dem), "--rmse", "2", "-n", str(n), "--workers", "2", "-o",
+                            str(out), "-q"], check=True, stderr=subprocess.DEVNULL)
+            t = json.loads((out / "run.json").read_text())["timings"]
+            print(f"  {kind:<12} {n:>5} {t['realisations_s']:>10.2f} {t['layers_s']:>9.2f} "
+                  f"{t['tables_s']:>9.2f} {t['figures_s']:>10.2f} {t['writing_s']:>10.2f} "
+                  f"{t['writing_share']:>14.1%}", flush=True)
 
 
 def plain_geotiff(path: Path, dem, bands) -> None:
@@ -70,13 +93,15 @@ def write_ratio(side: int, folder: Path) -> None:
 
 def main():
     ap = argparse.ArgumentParser()
-    ap.add_argument("--side", type=int, default=2048)
-    ap.add_argument("--skip-demo", action="store_true")
+    ap.add_argument("--side", type=int, default=1024)
+    ap.add_argument("--counts", default="100,300,1000")
+    ap.add_argument("--layer-side", type=int, default=2048)
+    ap.add_argument("--skip-runs", action="store_true")
     a = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        if not a.skip_demo:
-            demo_shares(Path(tmp) / "demo")
-        write_ratio(a.side, Path(tmp))
+        if not a.skip_runs:
+            run_shares(Path(tmp), a.side, [int(x) for x in a.counts.split(",")])
+        write_ratio(a.layer_side, Path(tmp))
 
 
 if __name__ == "__main__":

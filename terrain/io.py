@@ -49,7 +49,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
            "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
            "NpyWindows", "create_npy", "write_npy_window", "save_npy", "save_scratch",
-           "load_scratch", "scratch_folder",
+           "load_scratch", "scratch_folder", "save_shared", "load_shared",
            "remove_orphan_scratch", "CountStore", "write_layers_by_window",
            "SCRATCH_PREFIX", "hold_checkpoint", "OUTPUT_NAME", "csv_cell", "csv_safe",
            "FORMULA_START", "scratch_parent", "free_bytes", "check_scratch_space",
@@ -1870,6 +1870,57 @@ def load_scratch(path: str) -> dict:
     """The arrays :func:`save_scratch` wrote (no pickled objects)."""
     with np.load(path, allow_pickle=False) as f:
         return {k: f[k] for k in f.files}
+
+
+_SHARED_MAGIC = b"CAIRNSH1"
+_SHARED_ALIGN = 64
+
+
+def save_shared(path: str, obj, *, min_bytes: int = 1 << 16) -> str:
+    """Pickle ``obj`` into the scratch file ``path`` for processes that map it:
+    protocol 5, each contiguous buffer of at least ``min_bytes`` (arrays) laid
+    out after the pickle, 64-byte aligned, so :func:`load_shared` maps them
+    instead of copying (worker processes share the pages). Returns ``path``.
+    """
+    import pickle
+
+    big: list = []
+
+    def out_of_band(buf):
+        if buf.raw().nbytes >= min_bytes:
+            big.append(buf)
+            return False
+        return True
+
+    data = pickle.dumps(obj, protocol=5, buffer_callback=out_of_band)
+    spans, at = [], 0
+    for b in big:
+        spans.append((at, b.raw().nbytes))
+        at += -(-b.raw().nbytes // _SHARED_ALIGN) * _SHARED_ALIGN
+    head = pickle.dumps((data, spans), protocol=5)
+    start = -(-(16 + len(head)) // _SHARED_ALIGN) * _SHARED_ALIGN
+    with open(path, "wb") as fh:
+        fh.write(_SHARED_MAGIC + len(head).to_bytes(8, "little") + head)
+        for (off, _n), b in zip(spans, big):
+            fh.seek(start + off)
+            fh.write(b.raw())
+    return path
+
+
+def load_shared(path: str):
+    """The object :func:`save_shared` wrote, its large arrays mapped from the
+    file copy-on-write (a write stays private to this process)."""
+    import pickle
+
+    with open(path, "rb") as fh:
+        if fh.read(8) != _SHARED_MAGIC:
+            raise OSError(f"{path}: not a cairn shared scratch file")
+        head = fh.read(int.from_bytes(fh.read(8), "little"))
+    data, spans = pickle.loads(head)
+    start = -(-(16 + len(head)) // _SHARED_ALIGN) * _SHARED_ALIGN
+    mapped = np.memmap(path, dtype=np.uint8, mode="c") if spans else None
+    bufs = [mapped[start + off:start + off + n] for off, n in spans]
+    return pickle.loads(data, buffers=bufs)
 
 
 def scratch_parent(parent: str | os.PathLike | None = None) -> str:

@@ -262,7 +262,10 @@ def test_run_json_records_writing_time(runs):
     t = json.loads((out["peaks"] / "run.json").read_text())["timings"]
     assert {"realisations_s", "layers_s", "tables_s", "figures_s", "writing_s", "run_s",
             "writing_share", "layers_share"} <= set(t)
-    assert t["writing_s"] == pytest.approx(t["layers_s"] + t["tables_s"] + t["figures_s"], abs=0.01)
+    # layers and tables are written while the figures are drawn: the writing's wall
+    # time is at least its longest step and at most their sum
+    steps = (t["layers_s"], t["tables_s"], t["figures_s"])
+    assert max(steps) - 0.01 <= t["writing_s"] <= sum(steps) + 0.01
     assert 0 < t["layers_share"] <= t["writing_share"] < 1
 
 

@@ -162,6 +162,11 @@ def pooling(shape: tuple[int, int]) -> int:
     return max(1, math.ceil(max(shape) / MAX_PIXELS))
 
 
+#: The last hillshade made and what it was made from: the maps of one run (and the
+#: peaks and depressions maps of one DEM) share it. 8 bytes per drawn cell.
+_LAST_SHADE: dict = {}
+
+
 def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
               k: int = 1) -> np.ndarray:
     """Hillshade in [0, 1] (matplotlib's LightSource, cell sizes and elevations in
@@ -169,7 +174,9 @@ def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
 
     Nodata cells take the elevation of the nearest valid cell before shading,
     so the edges of nodata areas make no false cliffs; mask them when drawing.
-    ``k`` pools the DEM in k x k blocks first (mean).
+    ``k`` pools the DEM in k x k blocks first (mean). The last hillshade is
+    kept (read-only) and given again for the same elevations, mask, grid and
+    light.
 
     References
     ----------
@@ -177,6 +184,22 @@ def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
        Proceedings of the IEEE 69(1) (the shading model; matplotlib's
        ``LightSource.hillshade`` implements a Lambertian variant).
     """
+    import hashlib
+
+    digest = hashlib.blake2b(np.ascontiguousarray(dem.z).view(np.uint8), digest_size=16)
+    digest.update(np.packbits(dem.nodata).tobytes())
+    key = (digest.hexdigest(), str(dem.z.dtype), dem.shape, tuple(dem.transform), dem.geographic,
+           dem.linear_unit_m, azimuth, altitude, k)
+    if _LAST_SHADE.get("key") == key:
+        return _LAST_SHADE["shade"]
+    shade = _shade(dem, azimuth, altitude, k)
+    shade.setflags(write=False)
+    _LAST_SHADE.clear()
+    _LAST_SHADE.update(key=key, shade=shade)
+    return shade
+
+
+def _shade(dem: Dem, azimuth: float, altitude: float, k: int) -> np.ndarray:
     from matplotlib.colors import LightSource
     from scipy import ndimage
 

@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import datetime as _dt
 import functools
+import math
 import platform
 import time
 from collections.abc import Callable
@@ -134,18 +135,26 @@ def _tags(result, command_line: str | None) -> dict:
 
 
 class _Clock:
-    """Wall time of each writing step, for ``run.json``'s ``timings``."""
+    """Wall time of each writing step, for ``run.json``'s ``timings``.
+
+    Steps may overlap (layers and tables are written in a second thread while
+    the figures are drawn), so the writing's own wall time is kept too.
+    """
 
     def __init__(self):
         self.seconds: dict[str, float] = {}
+        self.span = [math.inf, -math.inf]  # first start, last end of any step
 
     @contextlib.contextmanager
     def __call__(self, step: str):
         t0 = time.perf_counter()
+        self.span[0] = min(self.span[0], t0)
         try:
             yield
         finally:
-            self.seconds[step] = self.seconds.get(step, 0.0) + time.perf_counter() - t0
+            t1 = time.perf_counter()
+            self.seconds[step] = self.seconds.get(step, 0.0) + t1 - t0
+            self.span[1] = max(self.span[1], t1)
 
     def timings(self, realisations_s: float) -> dict:
         """Seconds per step and the shares of the run's wall time.
@@ -153,9 +162,10 @@ class _Clock:
         The run's wall time is the realisations' plus the writing's (reading
         the DEM and summarising are left out, so the shares are upper bounds);
         ``layers`` is the GeoTIFFs, ``tables`` the GeoPackage and CSV files,
-        ``figures`` drawing and saving the PNGs.
+        ``figures`` drawing and saving the PNGs; ``writing`` is the wall time
+        of all of it (less than their sum when they overlap).
         """
-        writing = sum(self.seconds.values())
+        writing = max(self.span[1] - self.span[0], 0.0) if self.seconds else 0.0
         run = realisations_s + writing
         out = {"realisations_s": round(realisations_s, 3)}
         out.update({f"{k}_s": round(v, 3) for k, v in self.seconds.items()})
@@ -164,6 +174,39 @@ class _Clock:
         if "layers" in self.seconds:
             out["layers_share"] = round(self.seconds["layers"] / run, 4) if run > 0 else None
         return out
+
+
+class _Beside:
+    """Run ``fn()`` in a second thread while the block runs; on leaving, wait for
+    it and raise what it raised. GDAL and the GeoPackage driver release the
+    interpreter while they compress and write, so layers and tables are
+    written while the figures' labels are placed; each file still goes
+    through :func:`terrain.io.atomic_path`, and the figures are saved only
+    after the thread is done (atomic_path watches the process's error
+    stream, one file at a time)."""
+
+    def __init__(self, fn: Callable[[], None]):
+        import threading
+
+        self.error: BaseException | None = None
+        self.thread = threading.Thread(target=self._run, args=(fn,), name="cairn-writer",
+                                       daemon=True)
+
+    def _run(self, fn) -> None:
+        try:
+            fn()
+        except BaseException as exc:  # handed to the caller's thread
+            self.error = exc
+
+    def __enter__(self):
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self.thread.join()
+        if self.error is not None and exc[0] is None:
+            raise self.error
+        return False
 
 
 def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
@@ -215,16 +258,23 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     kind = result.job.kind
     created = _now()
     clock = _Clock()
-    with clock("layers"):
-        write_layers(out, result, command_line=command_line)
     gpkg, csv, ranks = (f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv")))
-    with clock("tables"):
-        write_frames(out / gpkg, features.frames, vector_descriptions(result, features.frames))
-        write_csv(out / csv, rounded(features.table, COLUMN_KINDS, geographic=result.dem.geographic))
-        write_csv(out / ranks, rounded(features.ranks, RANK_COLUMN_KINDS))
+
+    def files():
+        with clock("layers"):
+            write_layers(out, result, command_line=command_line)
+        with clock("tables"):
+            write_frames(out / gpkg, features.frames, vector_descriptions(result, features.frames))
+            write_csv(out / csv, rounded(features.table, COLUMN_KINDS,
+                                         geographic=result.dem.geographic))
+            write_csv(out / ranks, rounded(features.ranks, RANK_COLUMN_KINDS))
+
+    with _Beside(files), clock("figures"), plain_text():  # files written while figures are drawn
+        figures = {"quicklook.png": plot.feature_map(result, features),
+                   "ranking.png": plot.ranking_chart(result, features)}
     with clock("figures"), plain_text():
-        write_figure(out / "quicklook.png", plot.feature_map(result, features))
-        write_figure(out / "ranking.png", plot.ranking_chart(result, features))
+        for name, fig in figures.items():
+            write_figure(out / name, fig)
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**result.job.describe(), "features": features.settings})
     run.update({"features": int(len(features.table)),

@@ -34,6 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import CairnError, SchedulerError, WorkerError
+from ..io import load_shared, save_shared, scratch_folder
 from ..noise import ErrorSampler
 
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child",
@@ -84,7 +85,9 @@ def refuse_in_bootstrapping_child() -> None:
 _CTX: Context | None = None
 
 
-def init_worker(ctx: Context, parent: int) -> None:
+def init_worker(ctx: Context | str | None, parent: int) -> None:
+    """Set up a pool worker: signals, death with the parent, and the run's
+    context (given, or the path of a :func:`~terrain.io.save_shared` file)."""
     import os
     import signal
 
@@ -95,7 +98,7 @@ def init_worker(ctx: Context, parent: int) -> None:
     _die_with_parent(parent)
     if os.getppid() != parent:  # the parent died before we were ready
         os._exit(1)
-    _CTX = ctx
+    _CTX = load_shared(ctx) if isinstance(ctx, str) else ctx
 
 
 def _die_with_parent(parent: int) -> None:
@@ -157,6 +160,17 @@ def broken_pool(started: bool) -> WorkerError:
 
 
 def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
+    import os
+
+    # the context goes to the workers as a scratch file they map (its arrays shared):
+    # pickled into each worker's start-up pipe, it held this process until that
+    # worker had imported everything, so workers started one after another
+    with scratch_folder() as folder:
+        yield from _pool(save_shared(os.path.join(folder, "context.pkl"), ctx), plan, workers,
+                         stop)
+
+
+def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
     import concurrent.futures as cf
     import multiprocessing as mp
     import os
@@ -164,7 +178,7 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
 
     started = broken = False
     pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                  initializer=init_worker, initargs=(ctx, os.getpid()))
+                                  initializer=init_worker, initargs=(shared, os.getpid()))
     window = _Window(2 * workers)
     pending: dict = {}
     try:

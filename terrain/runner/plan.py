@@ -30,10 +30,18 @@ def chunk_size(start: int, stop: int, *, workers: int, checkpoint_every: int,
     return size
 
 
-def chunks(start: int, stop: int, size: int) -> Iterator[tuple[int, int]]:
-    """The half-open ranges ``[a, b)`` covering ``[start, stop)``, made lazily."""
-    for a in range(start, stop, size):
-        yield a, min(a + size, stop)
+def chunks(start: int, stop: int, size: int, taper: int = 0) -> Iterator[tuple[int, int]]:
+    """The half-open ranges ``[a, b)`` covering ``[start, stop)``, made lazily.
+
+    With ``taper`` (the number of workers) chunks shrink towards the end, each
+    at most a ``2 * taper``-th of what is left, so the workers finish close
+    together instead of one waiting for another's last full chunk.
+    """
+    a = start
+    while a < stop:
+        n = size if not taper else max(1, min(size, -(-(stop - a) // (2 * taper))))
+        yield a, min(a + n, stop)
+        a += n
 
 
 class InOrder:

@@ -333,7 +333,7 @@ def _run(dem: Dem, job, model: ErrorModel, ex: Execution, progress) -> RunResult
     with contextlib.ExitStack() as scope:
         # chunks shrink towards the end, unless adaptive stopping needs whole check intervals
         taper = ex.n_workers if (ex.resolved_backend != "serial" and block is None
-                                 and chunk is None and not stop.active) else 0
+                                 and ex.chunk is None and not stop.active) else 0
         runner = _runner(st, ex, chunks(start, realisations, size, taper), halt, scope)
         stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
                                       on_fold=on_fold, saver=saver)

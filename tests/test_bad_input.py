@@ -499,9 +499,15 @@ def _damage(good, bad, kind):
     data = good.read_bytes()
     if kind == "truncated":
         bad.write_bytes(data[: len(data) // 2])
-    elif kind == "bit-flipped":
+    elif kind == "bit-flipped":  # one bit in the middle of the first array's data
+        import zipfile
+
+        with zipfile.ZipFile(good) as z:
+            first = z.infolist()[0]
+        at = first.header_offset + 30 + len(first.filename) + len(first.extra) + \
+            first.compress_size // 2  # 30: a zip local header's fixed part (APPNOTE 4.3.7)
         b = bytearray(data)
-        b[len(b) // 3] ^= 0x10
+        b[at] ^= 0x10
         bad.write_bytes(bytes(b))
     elif kind == "npy":
         np.save(bad.with_suffix(".npy"), np.arange(5))

@@ -8,10 +8,12 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -192,6 +194,66 @@ def test_demo_twin_summit_splits_and_knolls_spread(demo_out):
     np.testing.assert_array_equal(np.sort(pits["unperturbed"].round())[::-1][:3], [6, 4, 3])
     # no clutter: every summit row is counted in most realisations
     assert len(summits) <= 10 and (summits["p_above"] > 0.5).all()
+
+
+#: Each figure the README quotes about the demo's pictures: a pattern that finds it in the
+#: README (exactly once) and the names of the figures (cairn_demo_data.readme_figures) its
+#: numbers are, in order.
+README_FIGURES = [
+    (r"#1 (\d+) m, the highest summit; #3 (\d+) m, the lower twin",
+     ["twin_1_on_dem", "twin_3_on_dem"]),
+    (r'"first (\d+) \| (\d+)%"', ["twin_3_first", "twin_1_first"]),
+    (r"mean prominences \((\d+) m and (\d+) m\)", ["twin_3_mean", "twin_1_mean"]),
+    (r'bracketed "1st: (\d+) \| (\d+)%"', ["twin_3_first", "twin_1_first"]),
+    (r"about (\d+) m, the\s+lower twin's role, and about (\d+) m, the highest summit's",
+     ["twin_low_cluster", "twin_high_cluster"]),
+    (r"#5 and #6 swap places 5 and 6 (\d+) \| (\d+)%",
+     ["knolls_5_6_place_5", "knolls_6_5_place_5"]),
+    (r"#7 and #8 places 7 and 8\s+(\d+) \| (\d+)%",
+     ["knolls_7_8_place_7", "knolls_8_7_place_7"]),
+    (r"#1 to #3, are counted in (\d+)% of realisations", ["hollows_counted"]),
+    (r"ponds at its centre in (\d+)% of\s+realisations", ["shallow_hollow_ponds"]),
+    (r"deepest in nearly every\s+realisation \(([\d.]+)%\)", ["hollow_1_first"]),
+    (r"trade second place (\d+) \| (\d+)%", ["hollows_2_3_place_2", "hollows_3_2_place_2"]),
+    (r"expected prominence \((\d+) and (\d+) m\)", ["twin_1_mean", "twin_3_mean"]),
+    (r"the highest\s+summit's, about (\d+) m, and the lower twin's, about (\d+) m",
+     ["twin_high_cluster", "twin_low_cluster"]),
+    (r"kettle hollows of (\d+), (\d+) and (\d+) m come out about ([\d.]+),\s+([\d.]+) and "
+     r"([\d.]+) m deep", ["hollow_1_on_dem", "hollow_2_on_dem", "hollow_3_on_dem",
+                          "hollow_1_mean", "hollow_2_mean", "hollow_3_mean"]),
+]
+
+
+def quoted_figures(text: str) -> list[tuple[str, str]]:
+    """(figure name, the number as the README writes it) for every README_FIGURES entry."""
+    out = []
+    for pattern, names in README_FIGURES:
+        found = re.findall(pattern, text)
+        assert len(found) == 1, f"the README quotes {pattern!r} {len(found)} times, not once"
+        values = found[0] if isinstance(found[0], tuple) else (found[0],)
+        out += list(zip(names, values))
+    return out
+
+
+def test_readme_quotes_every_figure_it_checks():
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    assert len(quoted_figures(readme)) == 29
+
+
+@pytest.mark.slow
+def test_readme_figures_about_the_demo_agree_with_a_demo_run(demo_out):
+    # every number the README quotes about the demo's pictures lies within Monte Carlo
+    # error of the demo's outputs: three standard errors (sqrt(p (1 - p) / N) for a
+    # share, the 'se' column for a mean) plus half the last digit the README writes
+    from cairn_demo_data.readme_figures import readme_figures
+
+    measured = readme_figures(demo_out)
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    for name, text in quoted_figures(readme):
+        value, se = measured[name]
+        digits = len(text.split(".")[1]) if "." in text else 0
+        assert abs(float(text) - value) <= 3 * se + 0.5 * 10 ** -digits + 1e-9, (
+            f"README quotes {name} as {text}; the demo gives {value:.3f} ± {se:.3f}")
 
 
 def test_demo_layers_are_valid_cogs(demo_out):

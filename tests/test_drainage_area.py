@@ -193,3 +193,25 @@ def test_quicklook_without_outlets_shows_drainage_area_on_a_log_scale():
     assert "drainage area" in label and "log scale" in label and "m²" in label
     texts = " ".join(t.get_text() for t in fig.texts)
     assert "30 km²" in texts and "3e+07" not in texts  # the channel area in words
+
+
+def test_log_colour_bar_ticks_read_as_powers_of_ten_in_plain_text():
+    # figures are saved with mathtext off (terrain.outputs.writer): matplotlib's own log
+    # ticks ('$\mathdefault{10^{5}}$') were then printed as raw TeX on the colour bar
+    import matplotlib
+
+    from terrain.outputs.mapframe import power_of_ten
+
+    assert [power_of_ten(v) for v in (1e5, 1e8, 1.0, 10.0, 0.01, 3e5)] == [
+        "10⁵", "10⁸", "1", "10", "10⁻²", "300000"]
+    z = tributary_valley(40, 31)
+    dem = Dem.from_array(z, cellsize=CELL, crs="EPSG:32633")
+    res = run_ensemble(dem, CatchmentJob(channel_area=2e4), ErrorModel(rmse=0.01),
+                       realisations=2, backend="serial")
+    with matplotlib.rc_context({"text.parse_math": False}):
+        fig = catchment_map(res)
+        fig.canvas.draw()
+    bar = [a for a in fig.axes if getattr(a, "_colorbar", None) is not None][0]
+    ticks = [t.get_text() for t in bar.get_yticklabels() if t.get_text()]
+    assert ticks and all("$" not in t and "\\" not in t for t in ticks)
+    assert all(t.startswith("10") for t in ticks), ticks

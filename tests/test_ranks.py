@@ -338,3 +338,10 @@ def test_real_dem_polygon_layers_have_no_null_geometry(usgs_runs, cmd):
         inside = fallback.geometry.contains(
             points.geometry.loc[fallback.feature_id].reset_index(drop=True), align=False)
         assert inside.all()
+
+
+def test_rank_matrix_cells_never_round_a_share_to_certainty():
+    # the demo's deepest hollow is first in 299 of 300 realisations: its cell reads
+    # ">.99", as its map label reads ">99%", never "1.00"
+    assert [plot.cell_text(p) for p in (299 / 300, 1.0, 0.5, 0.004, 0.006, 0.994)] == [
+        ">.99", "1.00", "0.50", "<.01", "0.01", "0.99"]

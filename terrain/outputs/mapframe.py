@@ -53,7 +53,7 @@ if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
 __all__ = ["MapFrame", "PALETTES", "OUTLINE_COLOURS", "INK", "palette", "hillshade", "nice_length",
-           "short_unit", "boxes_overlap", "place_labels", "FONT_PT", "DPI"]
+           "short_unit", "boxes_overlap", "place_labels", "power_of_ten", "FONT_PT", "DPI"]
 
 FONT_PT = 9.0  # the smallest text on any figure, at the saved size
 DPI = 120
@@ -121,6 +121,21 @@ def short_unit(unit: str | None) -> str:
     return {"metre": "m", "meter": "m", "metres": "m", "meters": "m", "m": "m",
             "foot": "ft", "feet": "ft", "ft": "ft", "us survey foot": "US survey ft",
             "us-ft": "US survey ft"}.get(u, unit or "DEM units")
+
+
+
+_SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+def power_of_ten(v: float) -> str:
+    """A tick of a log scale as plain text: 1e5 -> '10⁵' (mathtext is off in figures,
+    so matplotlib's own '$10^{5}$' would be printed as it is); other values as numbers."""
+    if v <= 0 or not np.isfinite(v):
+        return ""
+    e = round(float(np.log10(v)))
+    if abs(v - 10.0 ** e) > 1e-9 * v:
+        return f"{v:g}"
+    return "1" if e == 0 else "10" if e == 1 else "10" + str(e).translate(_SUPERSCRIPT)
 
 
 def _pool(a: np.ndarray, k: int, how) -> np.ndarray:
@@ -338,6 +353,12 @@ class MapFrame:
         text = label + (" (square-root scale)" if sqrt else " (log scale)" if log else "")
         bar.set_label("\n".join(textwrap.wrap(text, 44)), fontsize=FONT_PT + 1)
         bar.ax.tick_params(labelsize=FONT_PT)
+        if log:  # plain-text powers of ten: figures are drawn with mathtext off
+            from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+            bar.ax.yaxis.set_major_locator(LogLocator(base=10.0))
+            bar.ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: power_of_ten(v)))
+            bar.ax.yaxis.set_minor_formatter(NullFormatter())
         return im
 
     def polygons(self, geoms, *, colour: str, label: str, lw: float = 1.5) -> None:

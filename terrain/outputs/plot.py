@@ -123,6 +123,14 @@ def area_text(a: float) -> str:
     return f"{a / 1e6:.4g} km²" if a >= 1e6 else f"{a:,.4g} m²" if a < 1000 else f"{a:,.0f} m²"
 
 
+def cell_text(p: float) -> str:
+    """A probability in a cell of the rank matrix: two decimals, with a share that
+    rounds to 0 or 1 but is neither written "<.01" or ">.99" (0.9967 is not certain)."""
+    if 0 < p < 0.005:
+        return "<.01"
+    return ">.99" if 0.995 <= p < 1 else f"{p:.2f}"
+
+
 def share_text(p: float) -> str:
     """A probability as a percentage, with <1% and >99% kept apart from 0 and 1,
     rounded as its two-decimal form is (0.765 -> 0.77 -> 77%), so a share and
@@ -649,7 +657,7 @@ def _rank_matrix(ax, rows, share, kmax, kind) -> None:
             if p > 0:
                 r_, g_, b_, _ = cmap(norm(p))
                 dark = 0.2126 * r_ + 0.7152 * g_ + 0.0722 * b_ < 0.5  # relative luminance
-                ax.text(k + 1, i, "<.01" if p < 0.005 else f"{p:.2f}", ha="center", va="center",
+                ax.text(k + 1, i, cell_text(p), ha="center", va="center",
                         fontsize=FONT_PT, color="white" if dark else INK,
                         gid=f"p_rank_{ids[i]}_{k + 1}")
     ax.set_xticks(np.arange(1, kmax + 1))

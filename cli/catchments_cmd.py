@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from terrain.errors import OptionError
+from terrain.errors import OptionError, OutletError
 from terrain.io import read_outlets
 from terrain.jobs import CatchmentJob
 from terrain.outputs.manifest import file_names, help_text, replace_patterns
@@ -125,7 +125,14 @@ def catchments_cmd(dem, outlets, outlets_crs, outdir, snap, channel_area, condit
                   patterns=replace_patterns("catchments"))
     guard_memory(head, job, ex, opts, model=model)
     d = read(dem, opts)
-    job = job.resolved(d, model)
+    try:
+        job = job.resolved(d, model)
+    except OutletError as e:  # the held warning would be lost: the error line says it
+        if pts is None or pts.crs_source != "assumed":
+            raise
+        hint = (" (no CRS was given for the outlets, so the DEM's was assumed: give "
+                "{outlets_crs} or a sidecar " + Path(outlets).name + ".crs)")
+        raise OutletError(e.template + hint, *e.params, "outlets_crs") from None
     res = run_job(d, job, model, ex, opts, label="catchments",
                   headline=catchment_settings(job, d.unit_label))
     summary = summarise_catchments(res, pts.attributes if pts else None, outlets=pts)

@@ -259,6 +259,8 @@ class Dem:
         depths and elevations are in it; areas are m^2 and volumes m^3.
     vertical_unit_source : {"given", "declared", "assumed"}
         Where the unit came from (assumed: metres, the file declared none).
+        Left "assumed" with ``vertical_units`` set, the unit is read from
+        ``vertical_units`` (source "declared"), as :func:`terrain.io.read_dem` does.
     source : str
         File the DEM came from (for messages), or "<array>".
     """
@@ -295,6 +297,11 @@ class Dem:
         return cls(z=z, nodata=kw.pop("nodata", ~np.isfinite(z)), **kw)
 
     def _check_unit(self) -> None:
+        if self.vertical_unit_source == "assumed" and self.vertical_units is not None:
+            # a declared unit is the unit unless one was given: Dem(vertical_units="ft")
+            # is in feet, as a file declaring it is (an unknown spelling is refused)
+            self.vertical_unit, self.vertical_unit_source = vertical_unit(
+                self.vertical_units, source=self.source)
         if self.vertical_unit not in VERTICAL_UNITS:
             raise OptionError(f"{{vertical_unit}} must be one of {', '.join(VERTICAL_UNITS)}, "
                               f"got {self.vertical_unit!r}", "vertical_unit")

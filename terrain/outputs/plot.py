@@ -439,7 +439,9 @@ def _snapped(frame: MapFrame, outlets) -> None:
     rows = outlets[ok]
     if rows.empty:
         return
-    frame.lines([((a, b), (c, d)) for a, b, c, d in zip(rows["x"], rows["y"], rows["snapped_x"],
+    # the point as given in the DEM's CRS (x, y are in the outlets file's own CRS)
+    gx, gy = ("x_dem", "y_dem") if "x_dem" in rows else ("x", "y")
+    frame.lines([((a, b), (c, d)) for a, b, c, d in zip(rows[gx], rows[gy], rows["snapped_x"],
                                                         rows["snapped_y"])],
                 colour=INK, lw=0.8, label="outlet as given to its snapped cell")
     frame.points(rows["snapped_x"], rows["snapped_y"], marker="o", face="#f2c14e",

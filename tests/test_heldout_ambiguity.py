@@ -144,3 +144,9 @@ def _console_chart_and_map_show_the_twins_together_in_feet(floors):
     assert len(text) == 1 and f"#{b} " in text[0] and f"#{a} 180 ft*" in text[0]
     t = feat.table.set_index("feature_id")
     assert plot.figure_text(t.loc[a, "expected"]) not in text[0]
+    # the legend draws the star as a star (a "$*$" mathtext marker printed as raw text
+    # when figures are saved with mathtext off)
+    legend = fig.legends[0] if fig.legends else fig.axes[0].get_legend()
+    star = [h for h, x in zip(legend.legend_handles, legend.get_texts())
+            if x.get_text().startswith("bimodal")]
+    assert len(star) == 1 and "$" not in str(star[0].get_marker())

@@ -432,9 +432,15 @@ class MapFrame:
     def symbol(self, glyph: str, label: str) -> None:
         """A legend entry for a sign used in the labels (e.g. ``*``), drawn as the sign."""
         from matplotlib.lines import Line2D
+        from matplotlib.path import Path
+        from matplotlib.textpath import TextPath
 
-        self.handles.append(Line2D([], [], ls="none", marker=f"${glyph}$", ms=9, color=INK,
-                                   label=label))
+        # the glyph's outline as a marker path, centred: a mathtext marker ("$*$") would be
+        # drawn as its raw text, since figures are saved with mathtext off
+        path = TextPath((0, 0), glyph, size=1)
+        verts = path.vertices - (path.vertices.min(axis=0) + path.vertices.max(axis=0)) / 2
+        self.handles.append(Line2D([], [], ls="none", marker=Path(verts, path.codes), ms=9,
+                                   color=INK, label=label, gid=f"glyph {glyph}"))
 
     def key(self, label: str, *, colour: str = "0.35", ls: str = "solid", lw: float = 1.4) -> None:
         """A legend entry for a line style used by several artists (e.g. 90% dashed)."""

@@ -214,7 +214,7 @@ def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int,
     if not dem.on_disk:
         return regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
                        mask=dem.nodata)
-    from ..engine.blocked_regions import blocked_regions
+    from ..engine.blocked import blocked_regions
 
     return blocked_regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
                            block=block or defaults.DISK_BLOCK,

@@ -11,13 +11,21 @@ The log is the same bit for bit, hence the layers: a run gives the same
 layers with or without ``--block``, with any block size, workers or
 backend.
 
-The tasks read the DEM and the unperturbed DEM's region labels from
-``.npy`` files written once into a scratch folder (memory-mapped per read),
-and each realisation is drawn once, block by block, into a third file there
-that the passes read (4 bytes per cell on disk), so a task pickles a few
-hundred bytes; on a Dask cluster whose workers run
-on other machines that folder must be on a file system they share
-(``scratch``). The folder is removed when the run ends.
+With local processes the tasks read the DEM and the unperturbed DEM's
+region labels from ``.npy`` files written once into a scratch folder
+(memory-mapped per read), and each realisation is drawn once, block by
+block, into a third file there that the passes read (4 bytes per cell on
+disk), so a task pickles a few hundred bytes. The folder is removed when
+the run ends.
+
+On Dask the tasks are pure (``realise_blocked(..., shipped=True)``): each
+is sent its window's values (the DEM with its halo; for the second pass of
+depressions the region labels too) with the task and returns its
+block's summary, or its counts and sums, through the scheduler; the error
+is drawn on the worker from the counter-based streams, and the second pass
+computes the block's local step again instead of reading what the first
+pass kept. Nothing goes through a folder, so workers need no file system
+shared with this process (no shared ``TMPDIR``).
 
 With a DEM kept on disk (:class:`~terrain.dem.DiskDem`) the run is out of
 core: the DEM and region labels are read from their files, and the
@@ -34,6 +42,7 @@ import collections
 import contextlib
 import itertools
 import os
+import warnings
 from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
@@ -183,8 +192,14 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
         client, cluster = dask_client(scheduler, workers)
         watch = DaskWatch(client, scheduler, stop)
         try:
+            def submit(fn, item):
+                # a pure task carries its window's values (a few MB for large blocks); not
+                # scattered first, since a scatter waits for workers where a submit does not
+                with warnings.catch_warnings():
+                    warnings.filterwarnings("ignore", message="Sending large graph")
+                    return client.submit(fn, item, pure=False, retries=3)
+
             def dmap(fn, items):
-                submit = lambda f, x: client.submit(f, x, pure=False, retries=3)  # noqa: E731
                 try:
                     yield from _ahead(submit, fn, items, 2 * workers, watch.result)
                 except Exception as exc:
@@ -218,6 +233,7 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
                 grid = ponding.reshape(shape) if ponding is not None else None
             logs = [realise_blocked(ctx.dem, ctx.sampler, job, ctx.seed, i, block=ctx.block,
                                     regions=ctx.regions, ponding=grid, map=bmap,
-                                    scratch=ctx.realisation, reference=ctx.reference)
+                                    scratch=ctx.realisation, reference=ctx.reference,
+                                    shipped=backend == "dask")
                     for i in range(a, b)]
             yield a, b, {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}, counts

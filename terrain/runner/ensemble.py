@@ -354,8 +354,9 @@ def _runner(st, ex: Execution, plan, halt, scope: contextlib.ExitStack):
     if ex.block is None:
         return BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(ex.seed)),
                                              plan, ex.n_workers, ex.scheduler, halt)
+    # local processes read files in a scratch folder; Dask tasks are sent their windows
     dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
-        st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
+        st.z, st.job.regions.labels, to_files=ex.resolved_backend == "processes"))
     ponding = st.acc.ponding if getattr(st.acc, "on_disk", False) else None
     on_disk = not isinstance(st.z, np.ndarray)  # the DEM as read: its values still to shift
     return blocked_runner(BlockedContext(dem_src, reg_src, st.sampler, st.job, int(ex.seed),

@@ -33,6 +33,7 @@ from .files import (
     same_file,
 )
 from .formats import (
+    CHECKPOINT_SUFFIX,
     FORMULA_START,
     WINDOW_WRITE_CACHE,
     csv_cell,
@@ -67,14 +68,17 @@ from .scratch import (
     NpyWindows,
     check_count_store_path,
     check_scratch_space,
+    count_store_file,
     create_npy,
     is_count_store,
+    levels_file,
     load_scratch,
     load_shared,
     remove_orphan_scratch,
     save_npy,
     save_scratch,
     save_shared,
+    scratch_file,
     scratch_folder,
     scratch_parent,
     write_npy_window,
@@ -91,4 +95,5 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "SCRATCH_PREFIX", "hold_checkpoint", "OUTPUT_NAME", "csv_cell", "csv_safe",
            "FORMULA_START", "scratch_parent", "free_bytes", "check_scratch_space",
            "is_count_store", "check_count_store_path", "COUNTS_TAG", "SCRATCH_LOCK",
-           "resolves_into", "replaced_by", "kernel_cache_folder", "WINDOW_WRITE_CACHE"]
+           "resolves_into", "replaced_by", "kernel_cache_folder", "WINDOW_WRITE_CACHE",
+           "scratch_file", "levels_file", "count_store_file", "CHECKPOINT_SUFFIX"]

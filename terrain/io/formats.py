@@ -277,6 +277,10 @@ def write_figure(dest: str | os.PathLike, figure) -> None:
         figure.savefig(tmp, format="png")
 
 
+#: the file type of checkpoints (``.npz`` without pickles)
+CHECKPOINT_SUFFIX = ".npz"
+
+
 def save_npz(dest: str | os.PathLike, **arrays) -> None:
     """Save arrays to an uncompressed ``.npz`` atomically (no pickled objects)."""
     with atomic_path(dest) as tmp:

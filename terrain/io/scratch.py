@@ -30,6 +30,22 @@ from ._base import NOFOLLOW, disk_full, free_bytes, owned, short
 SCRATCH_PREFIX = "cairn-blocks-"
 
 
+def scratch_file(folder: str | os.PathLike, name: str) -> str:
+    """The path of the scratch array ``name`` (a ``.npy`` file) in ``folder``."""
+    return os.path.join(folder, f"{name}.npy")
+
+
+def levels_file(folder: str | os.PathLike, r0: int, c0: int) -> str:
+    """The path of what the first pass of depressions keeps for the block at
+    (``r0``, ``c0``), an ``.npz`` in ``folder``."""
+    return os.path.join(folder, f"levels-{r0}-{c0}.npz")
+
+
+def count_store_file(folder: str | os.PathLike) -> str:
+    """The path of a run's on-disk counts (a Zarr store) in its scratch folder."""
+    return os.path.join(folder, "counts.zarr")
+
+
 @dataclass(frozen=True)
 class NpyWindows:
     """A ``.npy`` raster read window by window: ``source[r0:r1, c0:c1]`` maps the

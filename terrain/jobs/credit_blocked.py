@@ -46,6 +46,8 @@ from typing import Any
 
 import numpy as np
 
+from ..defaults import DISK_BLOCK
+from ..dem import Dem
 from ..engine.blocked import (
     LevelInputs,
     Window,
@@ -59,13 +61,23 @@ from ..engine.blocked import (
     read_block,
     windows,
 )
-from ..engine.persistence import count_ponding
-from ..io import NpyWindows, create_npy, load_scratch, save_scratch, scratch_folder, write_npy_window
+from ..engine.persistence import count_ponding, pits_and_levels
+from ..io import (
+    NpyWindows,
+    create_npy,
+    levels_file,
+    load_scratch,
+    save_scratch,
+    scratch_file,
+    scratch_folder,
+    write_npy_window,
+)
 from ..noise import ErrorSampler
-from .credit import CreditJob, pair_log, pond_log, realisation_threshold
+from ..pairlog import AREA_QUANTUM, VOLUME_QUANTUM, pair_log, pond_log
+from .thresholds import realisation_threshold
 
 __all__ = ["PerturbedSource", "materialise", "realise_blocked", "ponding_totals", "grid_values_at",
-           "WindowData", "Draw"]
+           "WindowData", "Draw", "unperturbed_ponding"]
 
 
 @dataclass(frozen=True)
@@ -151,7 +163,7 @@ def _local_task(src: Any, kind: str, connectivity: int, thr: float, levels: bool
         s, inputs = local_and_levels(vals, window, src.shape, connectivity=connectivity,
                                      min_persistence=thr)
         if keep is not None:
-            inputs = save_scratch(os.path.join(keep, f"levels-{window.r0}-{window.c0}.npz"),
+            inputs = save_scratch(levels_file(keep, window.r0, window.c0),
                                   inputs.arrays())
     lowest = math.inf
     if kind == "peaks":  # the base of the highest summit
@@ -254,7 +266,7 @@ def _shipped_specs(dem: Any, wins, shape, regions: Any = None):
             yield w, data, WindowData(labels, w.r0, w.c0)
 
 
-def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, i: int, *,
+def realise_blocked(dem: Any, sampler: ErrorSampler, job: Any, seed: int, i: int, *,
                     block: int, regions: Any, ponding: np.ndarray | None = None,
                     map: Callable[..., Iterable] = builtins.map, scratch: Any = None,
                     reference: float = 0.0, shipped: bool = False) -> dict:
@@ -264,7 +276,7 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     ----------
     dem : (rows, cols) float32 array with NaN on nodata, or a path to one saved as ``.npy``
     sampler, job, seed, i
-        As :func:`~terrain.jobs.credit.realise` (``job`` resolved).
+        As :func:`~terrain.jobs.credit.realise` (``job`` a resolved ``CreditJob``).
     block : int
         Block side in cells.
     regions : (rows, cols) int array or ``.npy`` path
@@ -311,7 +323,7 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     with contextlib.ExitStack() as scope:
         if scratch is None and isinstance(dem, str):  # tasks elsewhere: a scratch file
             folder = scope.enter_context(scratch_folder(os.path.dirname(os.path.abspath(dem))))
-            scratch = os.path.join(folder, "realisation.npy")
+            scratch = scratch_file(folder, "realisation")
         src = materialise(src, wins, np.empty(shape, np.float32) if scratch is None else scratch,
                           map)
         keep = os.path.dirname(os.path.abspath(scratch)) if isinstance(scratch, str) else None
@@ -450,3 +462,27 @@ def grid_values_at(regions: Any, cells: np.ndarray, nc: int) -> np.ndarray:
         out[sel] = np.asarray(src[r0:r0 + 256, :])[rows[sel] - r0, cells[sel] % nc]
         lo = hi
     return out
+
+
+def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Ponded area (m^2) and storage volume (the DEM's vertical unit x m^2; times
+    ``dem.metres_per_unit`` for m^3) of every region on the DEM as given,
+    indexed by region id (index 0: cells in no region).
+
+    A cell is ponded when it lies below its depression's spill level and the
+    depression is at least the job's cut-off deep; its volume is the depth
+    to the filled level times the cell's area. On a DEM a water surface is
+    the floor, so this is storage above the surface the DEM captured.
+    """
+    k = len(job.regions) + 1
+    if dem.on_disk:
+        area, volume = ponding_totals(dem.z, job.regions.labels, job.area_row, job.threshold,
+                                      connectivity=job.connectivity, k=k,
+                                      block=block or DISK_BLOCK, keep=dem.scratch)
+        return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
+    _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
+    area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)
+    count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
+                  np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
+                  job.area_row, dem.shape[1], area, volume)
+    return area * AREA_QUANTUM, volume * VOLUME_QUANTUM

@@ -5,7 +5,7 @@ holds the whole grid. In blocked mode (``run_ensemble(..., block=N)``,
 ``--block N``) the realisations are taken one after another and the
 *blocks* of each run as tasks on the chosen backend -- this process, local
 processes or a Dask cluster -- through
-:func:`terrain.jobs.credit_blocked.realise_blocked`, so a worker holds one
+the job's ``realise_blocked`` (:class:`~terrain.runner.protocols.BlockedJob`), so a worker holds one
 block (plus halo) at a time and the global step only the block boundaries.
 The log is the same bit for bit, hence the layers: a run gives the same
 layers with or without ``--block``, with any block size, workers or
@@ -50,7 +50,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import CairnError, OptionError, WorkerError
-from ..io import save_npy, scratch_folder
+from ..io import save_npy, scratch_file, scratch_folder
 from ..noise import ErrorSampler
 from .backends import (
     DaskWatch,
@@ -129,11 +129,11 @@ def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
     with scratch_folder(scratch, need=need, what=f"{cells:,} cells of scratch files (the DEM, "
                         "region labels and a realisation)") as folder:
         if on_disk:
-            yield z.path, labels.path, os.path.join(folder, "realisation.npy")
+            yield z.path, labels.path, scratch_file(folder, "realisation")
             return
-        yield (save_npy(os.path.join(folder, "dem.npy"), z),
-               save_npy(os.path.join(folder, "regions.npy"), labels),
-               os.path.join(folder, "realisation.npy"))
+        yield (save_npy(scratch_file(folder, "dem"), z),
+               save_npy(scratch_file(folder, "regions"), labels),
+               scratch_file(folder, "realisation"))
 
 
 def _ahead(submit, fn, items, ahead: int, result=None):
@@ -217,9 +217,7 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
     """The backend generator of blocked mode: yields ``(a, b, log, counts)``
     for chunks of realisations taken from ``plan`` while ``stop()`` is
     false, each realisation's blocks mapped over ``backend``."""
-    from ..jobs.credit_blocked import realise_blocked
-
-    job = ctx.job
+    job = ctx.job  # a BlockedJob (terrain.runner.protocols): it realises block by block
     shape = tuple(ctx.sampler.shape)
     with _block_map(backend, workers, scheduler, stop) as bmap:
         for a, b in plan:
@@ -231,9 +229,9 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
                 counts = job.new_counts(shape[0] * shape[1])
                 ponding = counts.get("ponding")
                 grid = ponding.reshape(shape) if ponding is not None else None
-            logs = [realise_blocked(ctx.dem, ctx.sampler, job, ctx.seed, i, block=ctx.block,
-                                    regions=ctx.regions, ponding=grid, map=bmap,
-                                    scratch=ctx.realisation, reference=ctx.reference,
-                                    shipped=backend == "dask")
+            logs = [job.realise_blocked(ctx.dem, ctx.sampler, ctx.seed, i, block=ctx.block,
+                                        regions=ctx.regions, ponding=grid, map=bmap,
+                                        scratch=ctx.realisation, reference=ctx.reference,
+                                        shipped=backend == "dask")
                     for i in range(a, b)]
             yield a, b, {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}, counts

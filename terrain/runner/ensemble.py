@@ -28,7 +28,7 @@ import numpy as np
 
 from ..dem import Dem
 from ..errors import MemoryGuardError, OptionError
-from ..io import CountStore, available_memory, hold_checkpoint, remove_orphan_scratch
+from ..io import CountStore, available_memory, count_store_file, hold_checkpoint, remove_orphan_scratch
 from ..noise import ErrorModel, ErrorSampler
 from ..noise.fields import check_range
 from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
@@ -415,7 +415,7 @@ def _count_store(dem: Dem, job, ex: Execution, params: dict) -> dict:
     if getattr(job, "kind", None) != "depressions":
         return {}
     path = (counts_path(ex.checkpoint) if ex.checkpoint is not None
-            else os.path.join(dem.scratch, "counts.zarr"))
+            else count_store_file(dem.scratch))
     return {"ponding": CountStore(path, dem.shape, int(ex.block), resume=ex.resume,
                                   run=run_identity(params), checkpoint=ex.checkpoint)}
 

@@ -15,7 +15,8 @@ __all__ = ["CUTOFF_PER_RMSE", "MERGE_PER_RMSE", "MIN_PRESENCE", "SNAP_CELLS", "C
            "CONDITIONING", "BREACH_CAP", "cutoff", "merge_level", "base_level",
            "snap_radius", "channel_area", "conditioning", "breach_cap", "RULES"]
 
-DISK_BLOCK = 1024  # block side for the regions of a DEM kept on disk when no run names one
+DISK_BLOCK = 1024  # the one default block side: blocked runs the memory guard chooses, and the
+#                   regions and ponding of a DEM kept on disk when no run names one
 CUTOFF_PER_RMSE = 3.0  # a counted pair is at least 3 x RMSE (clearly above the noise)
 MERGE_PER_RMSE = 2.0  # the smallest persistence the stated error can resolve
 MIN_PRESENCE = 0.1  # a feature is a row when counted in at least 10% of realisations

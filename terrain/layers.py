@@ -154,6 +154,11 @@ def read_window(layers, r0: int, r1: int, c0: int, c1: int) -> dict:
 #: cells per window when layers are read, summarised and written window by window
 WINDOW_CELLS = 1 << 20
 
+#: cells a side a map draws at most (larger rasters are pooled), and so the most
+#: cells a quick-look holds: figures the drawing code and the memory guard share
+MAX_PIXELS = 1600
+QUICKLOOK_CELLS = MAX_PIXELS ** 2
+
 
 def layer_windows(shape: tuple[int, int], cells: int = WINDOW_CELLS) -> list[tuple[int, int, int, int]]:
     """Windows ``(r0, r1, c0, c1)`` covering a grid, row-major, about ``cells``

@@ -17,7 +17,7 @@ execution:
   computed;
 - writing: the DEM, the job's figure, summaries, GeoTIFF encoding and the
   quick-look figure (measured per cell; a quick-look draws at most
-  :data:`~terrain.outputs.mapframe.QUICKLOOK_CELLS` pooled cells of a bigger grid).
+  :data:`~terrain.layers.QUICKLOOK_CELLS` pooled cells of a bigger grid).
 
 The peak is the largest of these phases, plus each worker process's own
 footprint and arrays. ``cairn inspect`` prints the same figure the guard
@@ -32,13 +32,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .defaults import DISK_BLOCK
 from .dem import BAND_ROWS, Dem, RasterHeader, metres_per_degree
 from .errors import MemoryGuardError
 from .io import WINDOW_WRITE_CACHE, available_memory, check_scratch_space, scratch_parent
-from .layers import WINDOW_CELLS
+from .layers import QUICKLOOK_CELLS, WINDOW_CELLS
 from .noise import ErrorModel
 from .noise.fields import check_range, kernel_memory
-from .outputs.mapframe import QUICKLOOK_CELLS
 from .runner import Execution
 from .runner.protocols import Job
 
@@ -79,7 +79,7 @@ BLOCK_TASK = 80
 # The glue, per boundary cell (cells facing another block), white noise (145,
 # measured in bench/bench_blocked.py), and the summaries it reads (40).
 GLUE_PER_BOUNDARY_CELL = 185
-DEFAULT_BLOCK = 1024  # blocked mode's block side when the guard chooses it
+DEFAULT_BLOCK = DISK_BLOCK  # blocked mode's block side when the guard chooses it (one default)
 # Out of core, per cell of a window of layers while summarising and writing: the
 # log summed on the window (52), the layers (4 x 16), float32 copies (8), the DEM
 # window and mask (9), labels (4) and the features' temporaries (20) (counted).

@@ -47,9 +47,11 @@ import pandas as pd
 from . import defaults
 from .dem import Dem
 from .errors import CairnWarning, OptionError
-from .jobs.credit import CreditJob, log_weights, paired_difference
+from .io import CHECKPOINT_SUFFIX
+from .jobs.credit import CreditJob, paired_difference
 from .layers import layer_name
 from .noise import ErrorModel
+from .pairlog import log_weights
 from .runner import RunResult, run_ensemble
 from .summary.features import FigureMatrix, figure_matrix, unperturbed_figures
 
@@ -91,6 +93,16 @@ class SweepResult:
     defaults: dict
     note: CairnWarning | None = None  # why the kernel-sensitivity table is empty, if it is
 
+    @property
+    def row_kinds(self) -> dict:
+        """The kind of each column of ``rows`` (CSV precision, terrain.outputs.tables)."""
+        return SWEEP_COLUMN_KINDS
+
+    @property
+    def sensitivity_kinds(self) -> dict:
+        """The kind of each column of ``sensitivity``."""
+        return SENSITIVITY_COLUMN_KINDS
+
 
 def sweep_models(template: ErrorModel, rmses, kernels) -> list[ErrorModel]:
     """One model per (kernel, RMSE), drawn by quantile (common random numbers)."""
@@ -107,7 +119,7 @@ def run_checkpoint(checkpoint: str | os.PathLike | None, model: ErrorModel) -> P
     if checkpoint is None:
         return None
     p = Path(checkpoint)
-    return p.with_name(f"{p.stem}.{model.kernel}-{model.rmse:g}{p.suffix or '.npz'}")
+    return p.with_name(f"{p.stem}.{model.kernel}-{model.rmse:g}{p.suffix or CHECKPOINT_SUFFIX}")
 
 
 def sweep(dem: Dem, job: CreditJob, models, *, realisations: int = 200, seed: int = 0,

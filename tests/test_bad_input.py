@@ -1293,7 +1293,7 @@ def test_stale_sqlite_files_beside_a_geopackage_are_removed(cairn, dem, done, le
 
 
 def test_a_geopackage_failing_sqlites_check_is_never_published(cairn, dem, done, monkeypatch):
-    import terrain.io as io
+    import terrain.io.checked as io
 
     before = snapshot(done)
     real = io._check_gpkg
@@ -1513,16 +1513,18 @@ def test_a_killed_blocked_runs_scratch_is_swept_by_the_next(tmp_path, monkeypatc
 
 # -- 9. scratch space is checked; a full disk is one line ---------------------------------------------
 def test_scratch_space_is_checked_before_a_blocked_run(cairn, tmp_path, monkeypatch):
-    import terrain.io as io
+    import terrain.io._base as io_base
+    import terrain.io.rasters as io_rasters
 
     monkeypatch.setenv("TMPDIR", str(tmp_path / "tmp"))
     (tmp_path / "tmp").mkdir()
     dem = write_tif(tmp_path / "d.tif", smooth_terrain((60, 60), seed=2))
     called = []
-    real_read = io._read_to_disk
-    monkeypatch.setattr(io, "_read_to_disk", lambda *a, **k: called.append(1) or real_read(*a, **k))
+    real_read = io_rasters._read_to_disk
+    monkeypatch.setattr(io_rasters, "_read_to_disk",
+                        lambda *a, **k: called.append(1) or real_read(*a, **k))
     free = {str(tmp_path / "tmp"): 10 * 2**20, str(tmp_path): 10 * 2**40}
-    monkeypatch.setattr(io, "_free_bytes", lambda folder: free.get(str(folder), 10 * 2**40))
+    monkeypatch.setattr(io_base, "_free_bytes", lambda folder: free.get(str(folder), 10 * 2**40))
     code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", "16")
     one_line_error(code, err, str(tmp_path / "tmp"), "TMPDIR", "MiB", "is free", "--bbox")
     assert not called and outputs_of(tmp_path / "o") == []
@@ -1562,7 +1564,7 @@ def test_a_tmpdir_that_is_not_a_folder_is_refused(cairn, dem, tmp_path, monkeypa
     nothing_written(tmp_path / "o")
 
 
-_SKIP_SPACE_CHECK = ("import terrain.io as io, terrain.resources as r, cairn_cli.execute as e; "
+_SKIP_SPACE_CHECK = ("import terrain.io.scratch as io, terrain.resources as r, cairn_cli.execute as e; "
                      "e.check_disk = lambda *a, **k: None; io.check_scratch_space = "
                      "lambda *a, **k: None; from cairn_cli.main import run; run()")
 

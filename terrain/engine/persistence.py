@@ -73,6 +73,7 @@ import numpy as np
 from numba import njit
 
 from ..errors import OptionError
+from ..pairlog import AREA_QUANTUM, VOLUME_QUANTUM  # the fixed point of ponded sums
 from .basins import CODES4, CODES8, GROUPS4, GROUPS8, earlier, fill_cells, find, label_of, resolve_all, sweep
 from .grid import is_edge, neighbour, offsets
 
@@ -500,13 +501,6 @@ def _fill_levels(zf, join, jroot, minc):
     return level, depth
 
 
-#: Ponded areas and volumes are summed in fixed point: each cell adds its area
-#: and volume rounded to these quanta (2**-16 m^2, 2**-12 m^3) as int64, so a
-#: region's sum is exact and the same in any order -- whole raster or block by
-#: block (float sums would differ in the last bits). Largest sums: 1.4e14 m^2
-#: and 2.2e15 m^3.
-AREA_QUANTUM = 2.0 ** -16
-VOLUME_QUANTUM = 2.0 ** -12
 
 
 @njit(cache=True)

@@ -48,8 +48,6 @@ from numba import njit
 from .. import defaults
 from ..dem import Dem
 from ..engine.persistence import (
-    AREA_QUANTUM,
-    VOLUME_QUANTUM,
     Regions,
     count_ponding,
     pairs,
@@ -58,7 +56,20 @@ from ..engine.persistence import (
 )
 from ..errors import CheckpointError, OptionError
 from ..layers import layer_name, layers_of
-from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
+from ..noise import ErrorModel, ErrorSampler
+from ..pairlog import (
+    LOG_FIELDS,
+    POND_FIELDS,
+    WEIGHTS,
+    concat_logs,
+    log_weights,
+    pair_log,
+    pond_log,
+    proportion,
+    region_figures,
+)
+from .credit_blocked import realise_blocked
+from .thresholds import realisation_threshold
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
            "realise", "pair_log", "pond_log", "log_weights", "concat_logs", "proportion", "region_figures",
@@ -66,9 +77,6 @@ __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "Credit
 
 KINDS = ("peaks", "depressions")
 FILTRATION = {"peaks": "peaks", "depressions": "pits"}  # the engine's name for each kind
-LOG_FIELDS = ("real", "birth", "death", "birth_value", "death_value", "edge_limited", "region")
-POND_FIELDS = ("pond_real", "pond_region", "pond_area", "pond_volume")
-WEIGHTS = ("persistence", "count")
 
 
 @dataclass(frozen=True, eq=False)
@@ -189,6 +197,12 @@ class CreditJob:
         """Integer per-cell counts a worker adds to (exact in any order)."""
         return {"ponding": np.zeros(n_cells, np.int32)} if self.kind == "depressions" else {}
 
+    def realise_blocked(self, dem, sampler, seed: int, i: int, **options) -> dict:
+        """Realisation ``i`` block by block, the very log of :meth:`realise`
+        (:func:`terrain.jobs.credit_blocked.realise_blocked`; ``options`` as
+        there). What makes this job a ``BlockedJob`` for the runner."""
+        return realise_blocked(dem, sampler, self, seed, i, **options)
+
     def realise(self, z, sampler, seed, i, counts) -> dict:
         return realise(z, sampler, self, seed, i, counts.get("ponding"))
 
@@ -214,20 +228,11 @@ def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int,
     if not dem.on_disk:
         return regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
                        mask=dem.nodata)
-    from ..engine.blocked_regions import blocked_regions
+    from ..engine.blocked import blocked_regions
 
     return blocked_regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
                            block=block or defaults.DISK_BLOCK,
                            out=dem.new_grid("regions", dem.shape, np.int32))
-
-
-def realisation_threshold(job: CreditJob, kernel: Kernel, seed: int, i: int) -> float:
-    """The threshold of realisation ``i`` (drawn from its own stream when jittered)."""
-    if job.threshold_jitter <= 0:
-        return job.threshold
-    u = float(kernel.sample(realisation_rng(seed, i, 2), 1, np.float64)[0])
-    # u has unit bandwidth; scale so the threshold's standard deviation is the jitter
-    return max(0.0, job.threshold + u * kernel.halfwidth(job.threshold_jitter))
 
 
 def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: int,
@@ -269,24 +274,6 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
             **ponds}
 
 
-def pair_log(p, death_value: np.ndarray, thr: float, i: int, n_cells: int, region) -> dict:
-    """The pair log (:data:`LOG_FIELDS`) of realisation ``i``: the pairs of ``p`` at
-    least ``thr`` persistent, with ``death_value`` for their death values and
-    ``region(birth cells)`` for the unperturbed DEM's region of each birth."""
-    keep = p.persistence >= thr
-    cell_t = np.int32 if n_cells < 2**31 - 1 else np.int64
-    birth = p.birth[keep]
-    return {
-        "real": np.full(int(keep.sum()), i, np.int32),
-        "birth": birth.astype(cell_t),
-        "death": p.death[keep].astype(cell_t),
-        "birth_value": p.birth_value[keep].astype(np.float32),
-        "death_value": death_value[keep].astype(np.float32),
-        "edge_limited": p.edge_limited[keep],
-        "region": region(birth),
-    }
-
-
 def _ponds(fill, thr, ponding, reg, job, i, nc) -> dict:
     """Count ponding and log each region's ponded area and volume."""
     k = len(job.regions) + 1
@@ -294,58 +281,6 @@ def _ponds(fill, thr, ponding, reg, job, i, nc) -> dict:
     count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, thr, ponding, reg,
                   job.area_row, nc, area, vol)
     return pond_log(i, area, vol)
-
-
-def pond_log(i: int, area: np.ndarray, vol: np.ndarray) -> dict:
-    """The pond log of realisation ``i`` from its per-region fixed-point sums
-    (:func:`~terrain.engine.persistence.count_ponding`): regions holding water."""
-    wet = np.flatnonzero(area > 0)
-    return {"pond_real": np.full(wet.size, i, np.int32), "pond_region": wet.astype(np.int32),
-            "pond_area": area[wet] * AREA_QUANTUM, "pond_volume": vol[wet] * VOLUME_QUANTUM}
-
-
-def concat_logs(logs: list[dict], fields) -> dict:
-    """Concatenate per-chunk logs field by field (empty arrays when none)."""
-    if not logs:
-        return {k: np.empty(0) for k in fields}
-    return {k: np.concatenate([g[k] for g in logs]) for k in fields}
-
-
-def proportion(count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Share and its Monte Carlo standard error sqrt(p(1-p)/N)."""
-    p = count / max(n, 1)
-    return p, np.sqrt(p * (1 - p) / max(n, 1))
-
-
-def log_weights(log: dict, weight: str = "persistence") -> np.ndarray:
-    """Weight of each logged pair: its figure (prominence or depth; for the
-    highest summit its height above the level logged as its death value) or 1."""
-    if weight == "count":
-        return np.ones(log["birth"].size)
-    return np.abs(log["birth_value"].astype(np.float64) - log["death_value"].astype(np.float64))
-
-
-def region_figures(log: dict, *, with_birth: bool = False) -> tuple:
-    """Per (realisation, region) with a counted pair: the largest figure born in it.
-
-    Returns ``(real, region, figure, edge_limited)`` sorted by realisation,
-    then region; ``edge_limited`` is the flag of the largest pair, and with
-    ``with_birth`` its birth cell comes fifth. Pairs born outside every
-    region are left out.
-    """
-    inside = log["region"] > 0
-    real = log["real"][inside].astype(np.int64)
-    reg = log["region"][inside].astype(np.int64)
-    fig = log_weights({k: log[k][inside] for k in ("birth", "birth_value", "death_value")})
-    edge = log["edge_limited"][inside]
-    order = np.lexsort((fig, reg, real))
-    real, reg, fig, edge = real[order], reg[order], fig[order], edge[order]
-    last = np.ones(order.size, bool)
-    last[:-1] = (real[1:] != real[:-1]) | (reg[1:] != reg[:-1])
-    out = real[last], reg[last], fig[last], edge[last]
-    if with_birth:
-        out += (log["birth"][inside][order][last].astype(np.int64),)
-    return out
 
 
 @njit(cache=True)

@@ -46,24 +46,38 @@ from typing import Any
 
 import numpy as np
 
+from ..defaults import DISK_BLOCK
+from ..dem import Dem
 from ..engine.blocked import (
     LevelInputs,
     Window,
     as_float,
     collect,
     glue,
+    halo,
     levels_from,
     local,
     local_and_levels,
     read_block,
     windows,
 )
-from ..engine.persistence import count_ponding
-from ..io import NpyWindows, create_npy, load_scratch, save_scratch, scratch_folder, write_npy_window
+from ..engine.persistence import count_ponding, pits_and_levels
+from ..io import (
+    NpyWindows,
+    create_npy,
+    levels_file,
+    load_scratch,
+    save_scratch,
+    scratch_file,
+    scratch_folder,
+    write_npy_window,
+)
 from ..noise import ErrorSampler
-from .credit import CreditJob, pair_log, pond_log, realisation_threshold
+from ..pairlog import AREA_QUANTUM, VOLUME_QUANTUM, pair_log, pond_log
+from .thresholds import realisation_threshold
 
-__all__ = ["PerturbedSource", "materialise", "realise_blocked", "ponding_totals", "grid_values_at"]
+__all__ = ["PerturbedSource", "materialise", "realise_blocked", "ponding_totals", "grid_values_at",
+           "WindowData", "Draw", "unperturbed_ponding"]
 
 
 @dataclass(frozen=True)
@@ -149,7 +163,7 @@ def _local_task(src: Any, kind: str, connectivity: int, thr: float, levels: bool
         s, inputs = local_and_levels(vals, window, src.shape, connectivity=connectivity,
                                      min_persistence=thr)
         if keep is not None:
-            inputs = save_scratch(os.path.join(keep, f"levels-{window.r0}-{window.c0}.npz"),
+            inputs = save_scratch(levels_file(keep, window.r0, window.c0),
                                   inputs.arrays())
     lowest = math.inf
     if kind == "peaks":  # the base of the highest summit
@@ -179,17 +193,90 @@ def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolut
     return cnt.reshape(r1 - r0, c1 - c0), wet, area[wet], vol[wet]
 
 
-def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, i: int, *,
+@dataclass(frozen=True)
+class WindowData:
+    """A grid's values on one window, indexed in the grid's own coordinates:
+    ``data[r0:r1, c0:c1]`` for any box inside the window whose top-left cell
+    is (``r0``, ``c0``). What a pure block task is sent instead of a path."""
+
+    values: np.ndarray
+    r0: int
+    c0: int
+
+    def __getitem__(self, key) -> np.ndarray:
+        rs, cs = key
+        return self.values[rs.start - self.r0:rs.stop - self.r0, cs.start - self.c0:cs.stop - self.c0]
+
+
+@dataclass(frozen=True)
+class Draw:
+    """What a pure block task needs to draw realisation ``i`` on its window:
+    the sampler (counter-based streams: the same error whatever window or
+    worker draws it), the seed, the realisation and the DEM's reference."""
+
+    sampler: ErrorSampler
+    seed: int
+    i: int
+    reference: float = 0.0
+
+    def source(self, dem: WindowData) -> PerturbedSource:
+        """Realisation ``i`` on the DEM window ``dem``."""
+        return PerturbedSource(dem, self.sampler, self.seed, self.i, self.reference)
+
+
+def _shipped_local(draw: Draw, kind: str, connectivity: int, thr: float, levels: bool, spec):
+    """The local step of one block as a pure task: ``spec`` is the window and
+    the DEM's values on it and its halo; the error is drawn here. Returns the
+    summary (with ``levels``, made for the second pass of depressions) and
+    the block's lowest value (see :func:`_local_task`); the level inputs are
+    not kept: the second pass makes them again."""
+    window, dem = spec
+    s, lowest, _ = _local_task(draw.source(dem), kind, connectivity, thr, levels, None, window)
+    return s, lowest
+
+
+def _shipped_pond(draw: Draw, connectivity: int, thr: float, area_row: np.ndarray, resolution,
+                  spec):
+    """The second pass of depressions on one block as a pure task: ``spec`` is
+    the window, the DEM's values on it and its halo and the region labels on
+    it. The block's local step is computed again from the drawn values (its
+    level inputs are never kept between the passes), so nothing travels but
+    the window's values in and the block's counts and sums out."""
+    window, dem, regions = spec
+    src = draw.source(dem)
+    vals = read_block(src, window, src.shape)
+    _, inputs = local_and_levels(vals, window, src.shape, connectivity=connectivity,
+                                 min_persistence=thr)
+    h = halo(window, src.shape)
+    return _pond_task(WindowData(vals, h.r0, h.c0), regions, area_row, thr, resolution,
+                      (window, inputs))
+
+
+def _shipped_specs(dem: Any, wins, shape, regions: Any = None):
+    """The specs of the pure tasks, one window at a time: the window and the
+    DEM's values on it and its halo (and the region labels on the window)."""
+    grid = _array(dem)
+    for w in wins:
+        h = halo(w, shape)
+        data = WindowData(np.asarray(grid[h.r0:h.r1, h.c0:h.c1]), h.r0, h.c0)
+        if regions is None:
+            yield w, data
+        else:
+            labels = np.asarray(_array(regions)[w.r0:w.r1, w.c0:w.c1])
+            yield w, data, WindowData(labels, w.r0, w.c0)
+
+
+def realise_blocked(dem: Any, sampler: ErrorSampler, job: Any, seed: int, i: int, *,
                     block: int, regions: Any, ponding: np.ndarray | None = None,
                     map: Callable[..., Iterable] = builtins.map, scratch: Any = None,
-                    reference: float = 0.0) -> dict:
+                    reference: float = 0.0, shipped: bool = False) -> dict:
     """Realisation ``i`` block by block: the log of :func:`~terrain.jobs.credit.realise`.
 
     Parameters
     ----------
     dem : (rows, cols) float32 array with NaN on nodata, or a path to one saved as ``.npy``
     sampler, job, seed, i
-        As :func:`~terrain.jobs.credit.realise` (``job`` resolved).
+        As :func:`~terrain.jobs.credit.realise` (``job`` a resolved ``CreditJob``).
     block : int
         Block side in cells.
     regions : (rows, cols) int array or ``.npy`` path
@@ -209,6 +296,13 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     reference : float
         Subtracted from ``dem``'s values (a DEM on disk, as read) to give the
         float32 frame of ``job.reference``; 0 when ``dem`` is already in it.
+    shipped : bool
+        Run the blocks as pure tasks (a Dask cluster): each task is sent its
+        window's values (:class:`WindowData`) and draws the error there; the
+        second pass of depressions computes the block's local step again;
+        nothing is written to or read from a folder (``scratch`` unused), so
+        the workers need no file system shared with this process. The
+        results are the same bit for bit.
 
     Returns
     -------
@@ -223,10 +317,13 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
     src = PerturbedSource(dem, sampler, int(seed), int(i), float(reference))
     shape = src.shape
     wins = windows(shape, block)
+    if shipped:
+        return _realise_shipped(dem, wins, Draw(sampler, int(seed), int(i), float(reference)),
+                                job, regions, ponding, map)
     with contextlib.ExitStack() as scope:
         if scratch is None and isinstance(dem, str):  # tasks elsewhere: a scratch file
             folder = scope.enter_context(scratch_folder(os.path.dirname(os.path.abspath(dem))))
-            scratch = os.path.join(folder, "realisation.npy")
+            scratch = scratch_file(folder, "realisation")
         src = materialise(src, wins, np.empty(shape, np.float32) if scratch is None else scratch,
                           map)
         keep = os.path.dirname(os.path.abspath(scratch)) if isinstance(scratch, str) else None
@@ -236,7 +333,6 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: CreditJob, seed: int, 
 def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -> dict:
     """:func:`realise_blocked` on the drawn realisation ``src``; the level
     inputs of depressions kept in the folder ``keep`` (None: in memory)."""
-    shape = tuple(int(x) for x in src.shape)
     thr = realisation_threshold(job, sampler.kernel, seed, i)
     levels = job.kind == "depressions" and ponding is not None
     out = list(map(functools.partial(_local_task, src, "peaks" if job.kind == "peaks" else "pits",
@@ -245,10 +341,42 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -
     lowest = min((v for _, v, _ in out), default=math.inf)
     kept = [x for _, _, x in out]
     del out
+
+    def ponds(res):
+        task = functools.partial(_pond_task, src, regions, job.area_row, thr, res)
+        return map(task, zip(wins, kept))
+
+    return _log_of(summaries, lowest, ponds, tuple(int(x) for x in src.shape), wins, job, thr, i,
+                   regions, ponding)
+
+
+def _realise_shipped(dem, wins, draw: Draw, job, regions, ponding, map) -> dict:
+    """:func:`realise_blocked` with pure tasks (``shipped``)."""
+    shape = tuple(int(x) for x in draw.sampler.shape)
+    thr = realisation_threshold(job, draw.sampler.kernel, draw.seed, draw.i)
+    kind = "peaks" if job.kind == "peaks" else "pits"
+    levels = job.kind == "depressions" and ponding is not None
+    out = list(map(functools.partial(_shipped_local, draw, kind, job.connectivity, thr, levels),
+                   _shipped_specs(dem, wins, shape)))
+    summaries = [s for s, _ in out]
+    lowest = min((v for _, v in out), default=math.inf)
+    del out
+
+    def ponds(res):
+        task = functools.partial(_shipped_pond, draw, job.connectivity, thr, job.area_row, res)
+        return map(task, _shipped_specs(dem, wins, shape, regions))
+
+    return _log_of(summaries, lowest, ponds, shape, wins, job, thr, draw.i, regions, ponding)
+
+
+def _log_of(summaries, lowest, ponds, shape, wins, job, thr, i, regions, ponding) -> dict:
+    """The realisation's log from its blocks' summaries: the glue, the pairs
+    and (depressions with ``ponding``) the second pass, ``ponds(resolution)``
+    giving each block's counts and sums in window order."""
     res = glue(summaries)
     p = collect(summaries, res, min_persistence=thr)
-    del summaries
-    ponds = {}
+    summaries.clear()  # the caller's list: nothing after the glue reads it
+    log = {}
     if job.kind == "peaks":
         # the highest summit is measured to the base, or lower if the realisation is
         floor = min(job.base - (job.reference or 0.0), lowest) if p.essential.any() else 0.0
@@ -262,10 +390,9 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -
                 else:
                     ponding[w.r0:w.r1, w.c0:w.c1] += cnt
 
-            ponds = pond_log(i, *_pond_sums(src, regions, job.area_row, thr, res, wins, kept,
-                                            len(job.regions) + 1, map, add))
+            log = pond_log(i, *_sum_ponds(ponds(res), wins, len(job.regions) + 1, add))
     return {**pair_log(p, death_value, thr, i, math.prod(shape),
-                       lambda b: grid_values_at(regions, b, shape[1])), **ponds}
+                       lambda b: grid_values_at(regions, b, shape[1])), **log}
 
 
 def ponding_totals(source: Any, regions: Any, area_row: np.ndarray, threshold: float, *,
@@ -300,9 +427,16 @@ def _pond_sums(src, regions, area_row, thr, res, wins, kept, k, map, add=None):
     """The second pass of depressions over ``wins`` (``kept``: each block's
     level inputs or their path): ponded area and volume per region (fixed
     point, ``k`` entries), each block's counts handed to ``add(window, counts)``."""
-    area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
     task = functools.partial(_pond_task, src, regions, area_row, thr, res)
-    for w, (cnt, wet, a, v) in zip(wins, map(task, zip(wins, kept))):
+    return _sum_ponds(map(task, zip(wins, kept)), wins, k, add)
+
+
+def _sum_ponds(results, wins, k, add=None):
+    """Ponded area and volume per region (fixed point, ``k`` entries) summed
+    over the blocks' ``results`` (in window order), each block's counts handed
+    to ``add(window, counts)``."""
+    area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)
+    for w, (cnt, wet, a, v) in zip(wins, results):
         if add is not None:
             add(w, cnt)
         area[wet] += a
@@ -328,3 +462,27 @@ def grid_values_at(regions: Any, cells: np.ndarray, nc: int) -> np.ndarray:
         out[sel] = np.asarray(src[r0:r0 + 256, :])[rows[sel] - r0, cells[sel] % nc]
         lo = hi
     return out
+
+
+def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Ponded area (m^2) and storage volume (the DEM's vertical unit x m^2; times
+    ``dem.metres_per_unit`` for m^3) of every region on the DEM as given,
+    indexed by region id (index 0: cells in no region).
+
+    A cell is ponded when it lies below its depression's spill level and the
+    depression is at least the job's cut-off deep; its volume is the depth
+    to the filled level times the cell's area. On a DEM a water surface is
+    the floor, so this is storage above the surface the DEM captured.
+    """
+    k = len(job.regions) + 1
+    if dem.on_disk:
+        area, volume = ponding_totals(dem.z, job.regions.labels, job.area_row, job.threshold,
+                                      connectivity=job.connectivity, k=k,
+                                      block=block or DISK_BLOCK, keep=dem.scratch)
+        return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
+    _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
+    area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)
+    count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
+                  np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
+                  job.area_row, dem.shape[1], area, volume)
+    return area * AREA_QUANTUM, volume * VOLUME_QUANTUM

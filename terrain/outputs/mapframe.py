@@ -46,6 +46,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ..dem import Dem, metres_per_degree
+from ..layers import MAX_PIXELS
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -57,8 +58,6 @@ __all__ = ["MapFrame", "PALETTES", "OUTLINE_COLOURS", "INK", "palette", "hillsha
 
 FONT_PT = 9.0  # the smallest text on any figure, at the saved size
 DPI = 120
-MAX_PIXELS = 1600  # cells a side drawn at most; larger rasters are pooled
-QUICKLOOK_CELLS = MAX_PIXELS ** 2  # so a map draws at most this many (pooled) cells
 INK = "#1a1a1a"
 NODATA = "#ece6da"
 HALO_PT = 2.6

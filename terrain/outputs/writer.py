@@ -38,12 +38,11 @@ from ..io import (
     write_layer,
     write_layers_by_window,
 )
-from ..jobs.credit import LOG_FIELDS
 from ..layers import DRAINAGE_NOTE, layer_windows, read_window, spec, units
+from ..pairlog import LOG_FIELDS
 from ..summary.catchments import FRAME_COLUMN_KINDS
 from ..summary.features import COLUMN_KINDS
 from ..summary.ranks import RANK_COLUMN_KINDS
-from ..sweep import SENSITIVITY_COLUMN_KINDS, SWEEP_COLUMN_KINDS
 from ..version import __version__
 from . import plot
 from .caution import CAUTION
@@ -332,9 +331,9 @@ def write_sweep(outdir: str | Path, result, *, input_path: str | None,
     geographic = any_run.dem.geographic
     clock = _Clock()
     with clock("tables"):
-        write_csv(out / "sweep.csv", rounded(result.rows, SWEEP_COLUMN_KINDS, geographic=geographic))
+        write_csv(out / "sweep.csv", rounded(result.rows, result.row_kinds, geographic=geographic))
         write_csv(out / "kernel_sensitivity.csv",
-                  rounded(result.sensitivity, SENSITIVITY_COLUMN_KINDS, geographic=geographic))
+                  rounded(result.sensitivity, result.sensitivity_kinds, geographic=geographic))
     with clock("figures"), plain_text():
         write_figure(out / "sweep.png",
                      plot.sweep_figure(result, units=any_run.dem.unit_label))

@@ -5,19 +5,27 @@ holds the whole grid. In blocked mode (``run_ensemble(..., block=N)``,
 ``--block N``) the realisations are taken one after another and the
 *blocks* of each run as tasks on the chosen backend -- this process, local
 processes or a Dask cluster -- through
-:func:`terrain.jobs.credit_blocked.realise_blocked`, so a worker holds one
+the job's ``realise_blocked`` (:class:`~terrain.runner.protocols.BlockedJob`), so a worker holds one
 block (plus halo) at a time and the global step only the block boundaries.
 The log is the same bit for bit, hence the layers: a run gives the same
 layers with or without ``--block``, with any block size, workers or
 backend.
 
-The tasks read the DEM and the unperturbed DEM's region labels from
-``.npy`` files written once into a scratch folder (memory-mapped per read),
-and each realisation is drawn once, block by block, into a third file there
-that the passes read (4 bytes per cell on disk), so a task pickles a few
-hundred bytes; on a Dask cluster whose workers run
-on other machines that folder must be on a file system they share
-(``scratch``). The folder is removed when the run ends.
+With local processes the tasks read the DEM and the unperturbed DEM's
+region labels from ``.npy`` files written once into a scratch folder
+(memory-mapped per read), and each realisation is drawn once, block by
+block, into a third file there that the passes read (4 bytes per cell on
+disk), so a task pickles a few hundred bytes. The folder is removed when
+the run ends.
+
+On Dask the tasks are pure (``realise_blocked(..., shipped=True)``): each
+is sent its window's values (the DEM with its halo; for the second pass of
+depressions the region labels too) with the task and returns its
+block's summary, or its counts and sums, through the scheduler; the error
+is drawn on the worker from the counter-based streams, and the second pass
+computes the block's local step again instead of reading what the first
+pass kept. Nothing goes through a folder, so workers need no file system
+shared with this process (no shared ``TMPDIR``).
 
 With a DEM kept on disk (:class:`~terrain.dem.DiskDem`) the run is out of
 core: the DEM and region labels are read from their files, and the
@@ -34,6 +42,7 @@ import collections
 import contextlib
 import itertools
 import os
+import warnings
 from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
@@ -41,7 +50,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import CairnError, OptionError, WorkerError
-from ..io import save_npy, scratch_folder
+from ..io import save_npy, scratch_file, scratch_folder
 from ..noise import ErrorSampler
 from .backends import (
     DaskWatch,
@@ -120,11 +129,11 @@ def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
     with scratch_folder(scratch, need=need, what=f"{cells:,} cells of scratch files (the DEM, "
                         "region labels and a realisation)") as folder:
         if on_disk:
-            yield z.path, labels.path, os.path.join(folder, "realisation.npy")
+            yield z.path, labels.path, scratch_file(folder, "realisation")
             return
-        yield (save_npy(os.path.join(folder, "dem.npy"), z),
-               save_npy(os.path.join(folder, "regions.npy"), labels),
-               os.path.join(folder, "realisation.npy"))
+        yield (save_npy(scratch_file(folder, "dem"), z),
+               save_npy(scratch_file(folder, "regions"), labels),
+               scratch_file(folder, "realisation"))
 
 
 def _ahead(submit, fn, items, ahead: int, result=None):
@@ -183,8 +192,14 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
         client, cluster = dask_client(scheduler, workers)
         watch = DaskWatch(client, scheduler, stop)
         try:
+            def submit(fn, item):
+                # a pure task carries its window's values (a few MB for large blocks); not
+                # scattered first, since a scatter waits for workers where a submit does not
+                with warnings.catch_warnings():
+                    warnings.filterwarnings("ignore", message="Sending large graph")
+                    return client.submit(fn, item, pure=False, retries=3)
+
             def dmap(fn, items):
-                submit = lambda f, x: client.submit(f, x, pure=False, retries=3)  # noqa: E731
                 try:
                     yield from _ahead(submit, fn, items, 2 * workers, watch.result)
                 except Exception as exc:
@@ -202,9 +217,7 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
     """The backend generator of blocked mode: yields ``(a, b, log, counts)``
     for chunks of realisations taken from ``plan`` while ``stop()`` is
     false, each realisation's blocks mapped over ``backend``."""
-    from ..jobs.credit_blocked import realise_blocked
-
-    job = ctx.job
+    job = ctx.job  # a BlockedJob (terrain.runner.protocols): it realises block by block
     shape = tuple(ctx.sampler.shape)
     with _block_map(backend, workers, scheduler, stop) as bmap:
         for a, b in plan:
@@ -216,8 +229,9 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
                 counts = job.new_counts(shape[0] * shape[1])
                 ponding = counts.get("ponding")
                 grid = ponding.reshape(shape) if ponding is not None else None
-            logs = [realise_blocked(ctx.dem, ctx.sampler, job, ctx.seed, i, block=ctx.block,
-                                    regions=ctx.regions, ponding=grid, map=bmap,
-                                    scratch=ctx.realisation, reference=ctx.reference)
+            logs = [job.realise_blocked(ctx.dem, ctx.sampler, ctx.seed, i, block=ctx.block,
+                                        regions=ctx.regions, ponding=grid, map=bmap,
+                                        scratch=ctx.realisation, reference=ctx.reference,
+                                        shipped=backend == "dask")
                     for i in range(a, b)]
             yield a, b, {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}, counts

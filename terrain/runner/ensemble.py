@@ -28,7 +28,7 @@ import numpy as np
 
 from ..dem import Dem
 from ..errors import MemoryGuardError, OptionError
-from ..io import CountStore, available_memory, hold_checkpoint, remove_orphan_scratch
+from ..io import CountStore, available_memory, count_store_file, hold_checkpoint, remove_orphan_scratch
 from ..noise import ErrorModel, ErrorSampler
 from ..noise.fields import check_range
 from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
@@ -354,8 +354,9 @@ def _runner(st, ex: Execution, plan, halt, scope: contextlib.ExitStack):
     if ex.block is None:
         return BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(ex.seed)),
                                              plan, ex.n_workers, ex.scheduler, halt)
+    # local processes read files in a scratch folder; Dask tasks are sent their windows
     dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
-        st.z, st.job.regions.labels, to_files=ex.resolved_backend != "serial"))
+        st.z, st.job.regions.labels, to_files=ex.resolved_backend == "processes"))
     ponding = st.acc.ponding if getattr(st.acc, "on_disk", False) else None
     on_disk = not isinstance(st.z, np.ndarray)  # the DEM as read: its values still to shift
     return blocked_runner(BlockedContext(dem_src, reg_src, st.sampler, st.job, int(ex.seed),
@@ -414,7 +415,7 @@ def _count_store(dem: Dem, job, ex: Execution, params: dict) -> dict:
     if getattr(job, "kind", None) != "depressions":
         return {}
     path = (counts_path(ex.checkpoint) if ex.checkpoint is not None
-            else os.path.join(dem.scratch, "counts.zarr"))
+            else count_store_file(dem.scratch))
     return {"ponding": CountStore(path, dem.shape, int(ex.block), resume=ex.resume,
                                   run=run_identity(params), checkpoint=ex.checkpoint)}
 

@@ -11,7 +11,7 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
-__all__ = ["Job", "Accumulator"]
+__all__ = ["Job", "Accumulator", "BlockedJob"]
 
 
 @runtime_checkable
@@ -95,3 +95,17 @@ class Job(Protocol):
         one realisation's arrays and its chunk's counts. The guard adds the
         DEM, the runner's copies, results in flight, summaries and figures
         (:mod:`terrain.resources`)."""
+
+
+@runtime_checkable
+class BlockedJob(Job, Protocol):
+    """A job that also realises block by block (blocked mode, ``block=N``):
+    the runner knows it by this method alone, never by importing a job."""
+
+    kind: str
+
+    def realise_blocked(self, dem, sampler, seed: int, i: int, **options) -> dict:
+        """Realisation ``i`` block by block: the very log of :meth:`Job.realise`.
+        ``options``: ``block``, ``regions``, ``ponding``, ``map``, ``scratch``,
+        ``reference``, ``shipped`` (see
+        :func:`terrain.jobs.credit_blocked.realise_blocked`)."""

@@ -33,12 +33,10 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from .. import defaults
 from ..dem import Dem
-from ..engine.persistence import AREA_QUANTUM, VOLUME_QUANTUM, count_ponding, pits_and_levels
-from ..jobs.credit import log_weights, region_figures
-from ..jobs.credit_blocked import grid_values_at, ponding_totals
+from ..jobs.credit_blocked import grid_values_at, unperturbed_ponding
 from ..layers import layer_name, layer_windows, read_window
+from ..pairlog import log_weights, region_figures
 from .ranks import (
     RANKS,
     display_order,
@@ -350,30 +348,6 @@ def _unperturbed(dem: Dem, job, ids: np.ndarray) -> dict:
             f"unperturbed_{d}_x": dx, f"unperturbed_{d}_y": dy,
             f"unperturbed_{d}_elevation": reg.death_value[k],
             "unperturbed_edge_limited": reg.edge_limited[k]}
-
-
-def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Ponded area (m^2) and storage volume (the DEM's vertical unit x m^2; times
-    ``dem.metres_per_unit`` for m^3) of every region on the DEM as given,
-    indexed by region id (index 0: cells in no region).
-
-    A cell is ponded when it lies below its depression's spill level and the
-    depression is at least the job's cut-off deep; its volume is the depth
-    to the filled level times the cell's area. On a DEM a water surface is
-    the floor, so this is storage above the surface the DEM captured.
-    """
-    k = len(job.regions) + 1
-    if dem.on_disk:
-        area, volume = ponding_totals(dem.z, job.regions.labels, job.area_row, job.threshold,
-                                      connectivity=job.connectivity, k=k,
-                                      block=block or defaults.DISK_BLOCK, keep=dem.scratch)
-        return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
-    _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
-    area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)
-    count_ponding(fill.zf, fill.valid, fill.labels, fill.level, fill.depth, job.threshold,
-                  np.zeros(fill.zf.size, np.int32), job.regions.labels.reshape(-1),
-                  job.area_row, dem.shape[1], area, volume)
-    return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
 
 
 def _pond_columns(result, ids: np.ndarray) -> dict:

@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .basins import before, descend, find, upsert
+from ..basins import before, descend, find, upsert
 
 EDGE = 1  # cell on the raster edge or next to nodata
 TERM = 2  # valid cell with a valid neighbour in another block

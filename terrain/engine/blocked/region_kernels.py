@@ -30,8 +30,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .basins import before, find
-from .blocked_kernels import EDGE, NOTERM, forest_root, frame_neighbour, ring_index
+from ..basins import before, find
+from .kernels import EDGE, NOTERM, forest_root, frame_neighbour, ring_index
 
 NOLINK = -3
 

@@ -1,0 +1,412 @@
+"""The output folder: one run per folder (``flock`` on its lock), outputs written into
+a staging folder and moved into place with signals held, the tidy-up of what a killed
+run left, and what a run would replace.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import errno
+import glob
+import json
+import os
+import re
+import shutil
+import stat
+import tempfile
+from pathlib import Path
+
+from ..errors import (
+    CheckpointError,
+    OutputError,
+)
+from ._base import LOCK_NAME, NOFOLLOW, PART_NAME, PUBLISHING, STAGING_PREFIX, owned, sync_dir
+from .checked import release_sqlite, replace_into, write_error
+from .files import resolves_into
+
+
+# ----------------------------------------------------------------------------
+# outputs
+# ----------------------------------------------------------------------------
+def prepare_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bool) -> Path:
+    """Check (and create) an output folder before any work starts.
+
+    Raises :class:`OutputError` when the path is an existing file, cannot be
+    created or written, or when one of ``names`` exists and ``overwrite`` is
+    False (the message lists them and names the ``overwrite`` parameter).
+    :func:`claim_outdir` does the same and also locks the folder.
+    """
+    out = Path(outdir)
+    _make_outdir(out)
+    _refuse_clash(out, names, overwrite)
+    return out
+
+
+def _make_outdir(out: Path) -> bool:
+    """Create ``out`` if missing (True when this call created it); refuse files
+    and folders that cannot be written."""
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{out}: exists and is a file, not a folder; choose another output folder")
+    existed = out.is_dir()
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot create the output folder ({exc.strerror})") from None
+    if not os.access(out, os.W_OK | os.X_OK):
+        raise OutputError(f"{out}: output folder is not writable; choose another output folder")
+    return not existed
+
+
+def _refuse_clash(out: Path, names: list[str], overwrite: bool) -> None:
+    clash = [n for n in names if (out / n).exists()]
+    if clash and not overwrite:
+        more = f" and {len(clash) - 3} more" if len(clash) > 3 else ""
+        raise OutputError(f"{out}: would overwrite {', '.join(clash[:3])}{more}; "
+                          "pass {overwrite} to replace them", "overwrite")
+
+
+#: what a file cairn publishes may be called: a plain name (no folder, no leading dot) with
+#: one of the extensions cairn writes; a publication marker naming anything else is not cairn's
+OUTPUT_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,200}\.(?:tif|gpkg|csv|png|json)\Z")
+
+
+_HELD: dict[str, list] = {}  # lock file (real path) -> [lock fd, depth] held by this process
+
+
+@contextlib.contextmanager
+def claim_outdir(outdir: str | os.PathLike, names: list[str], *, overwrite: bool):
+    """Hold an output folder for one run: create and check it, lock it, tidy it.
+
+    While the block runs no other cairn run can write into the folder (a lock
+    file, released when the block ends or the process dies, even by kill -9).
+    Leftovers of a killed run are cleaned first: temporary files are removed,
+    and a set of outputs whose publication was cut short is completed. Then
+    ``names`` are checked as :func:`prepare_outdir` does. A folder this call
+    created is removed again if the run leaves it empty.
+
+    Raises
+    ------
+    OutputError
+        The folder cannot be used, is held by another run, holds a lock
+        entry that is not cairn's (a link, a folder, a file with other
+        names), or would be overwritten without ``overwrite``.
+    """
+    out = Path(outdir)
+    created = _make_outdir(out)
+    try:
+        with hold_outdir(out):
+            clean_leftovers(out)
+            _refuse_clash(out, names, overwrite)
+            yield out
+    finally:
+        if created:
+            with contextlib.suppress(OSError):
+                out.rmdir()  # only when empty
+
+
+def hold_outdir(outdir: str | os.PathLike):
+    """Lock ``outdir`` for this process (re-entrant); another process holding
+    it makes this raise :class:`OutputError` at once."""
+    out = Path(outdir)
+    return _hold(out / LOCK_NAME, f"{out}: another cairn run is writing to this folder{{who}}; "
+                                  "wait for it to finish or choose another output folder")
+
+
+def hold_checkpoint(checkpoint: str | os.PathLike):
+    """Lock a checkpoint for this process (re-entrant) with a lock file beside it
+    (``.<name>.lock``); another run using it makes this raise at once.
+
+    Raises
+    ------
+    CheckpointError
+        Another cairn run (in any process) holds the checkpoint.
+    OutputError
+        The lock file cannot be made, or its name holds something that is
+        not cairn's lock file.
+    """
+    p = Path(checkpoint)
+    return _hold(p.parent / f".{p.name}.lock",
+                 f"{p}: another cairn run is using this checkpoint{{who}}; wait for it to finish "
+                 "or choose another {checkpoint} file", busy_error=CheckpointError,
+                 params=("checkpoint",))
+
+
+@contextlib.contextmanager
+def _hold(path: Path, busy: str, *, busy_error=OutputError, params=()):
+    """An exclusive lock on the lock file ``path`` for this process, re-entrant;
+    ``busy`` (``{who}`` is filled with the holder's process number) is the
+    error when another process holds it."""
+    key = os.path.join(os.path.realpath(path.parent), path.name)
+    held = _HELD.get(key)
+    if held is not None:
+        held[1] += 1
+        try:
+            yield path.parent
+        finally:
+            held[1] -= 1
+        return
+    fd = _lock(path, busy, busy_error, params)
+    _HELD[key] = [fd, 1]
+    try:
+        yield path.parent
+    finally:
+        del _HELD[key]
+        if fd is not None:
+            _unlock(path, fd)
+
+
+def _unlock(path: Path, fd: int) -> None:
+    """Remove the lock file (while still holding it), only if the name is still ours."""
+    with contextlib.suppress(OSError):
+        st, mine = os.lstat(path), os.fstat(fd)
+        if (st.st_ino, st.st_dev) == (mine.st_ino, mine.st_dev):
+            os.unlink(path)
+    os.close(fd)
+
+
+def _open_lock(path: Path) -> tuple[int, bool]:
+    """Open (or create) the lock file ``path`` without following a link; refuse
+    anything but a regular file of this user with no other name. Returns the
+    descriptor and whether this call created the file."""
+    flags = os.O_RDWR | getattr(os, "O_NONBLOCK", 0) | NOFOLLOW
+    created = True
+    try:
+        try:
+            fd = os.open(path, flags | os.O_CREAT | os.O_EXCL, 0o644)
+        except FileExistsError:
+            created = False
+            fd = os.open(path, flags)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP or path.is_symlink():
+            raise OutputError(f"{path}: is a symbolic link, not a cairn lock file; cairn never "
+                              "follows links it finds -- remove the link") from None
+        if path.is_dir():
+            raise OutputError(f"{path}: is a folder, not a cairn lock file; remove it") from None
+        raise OutputError(f"{path}: cannot create the lock file ({exc.strerror}); choose "
+                          "another folder") from None
+    st = os.fstat(fd)
+    why = ("it is not a regular file" if not stat.S_ISREG(st.st_mode) else
+           "it has other names (hard links)" if st.st_nlink != 1 else
+           "it belongs to another user" if hasattr(os, "geteuid") and st.st_uid != os.geteuid()
+           else None)
+    if why:
+        os.close(fd)
+        raise OutputError(f"{path}: is not a cairn lock file ({why}); cairn never writes "
+                          "through it -- remove it")
+    return fd, created
+
+
+def _lock(path: Path, busy: str, busy_error=OutputError, params=()) -> int | None:
+    """An exclusive ``flock`` on the lock file ``path`` (None where flock is missing
+    or the file system does not support it)."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        return None
+    for _ in range(10):
+        fd, created = _open_lock(path)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            pid = os.read(fd, 32).decode(errors="replace").strip()
+            os.close(fd)
+            who = f" (process {pid})" if pid.isdigit() else ""
+            raise busy_error(busy.replace("{who}", who), *params) from None
+        except OSError:  # a file system without locks (some network mounts): go on unlocked
+            os.close(fd)
+            if created:
+                with contextlib.suppress(OSError):
+                    os.unlink(path)
+            return None
+        try:
+            st, mine = os.lstat(path), os.fstat(fd)
+            same = (st.st_ino, st.st_dev) == (mine.st_ino, mine.st_dev)
+        except FileNotFoundError:
+            same = False  # the previous holder removed it after we opened it
+        if same:
+            with contextlib.suppress(OSError):
+                os.ftruncate(fd, 0)
+                os.write(fd, f"{os.getpid()}\n".encode())
+            return fd
+        os.close(fd)
+    raise OutputError(f"{path}: cannot take the lock; choose another folder")
+
+
+def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
+    """Tidy what a killed run left in ``outdir`` (call while holding it).
+
+    Temporary files of :func:`atomic_path` are removed; a staging folder is
+    removed, after moving its files into place when its publication had
+    begun (so the folder ends with the complete new set, never a mix).
+    Only entries cairn makes are touched, and never through a link: a
+    staging folder and the files it publishes must be real folders and
+    regular files of this user, and a publication marker may only name
+    plain file names of the kinds cairn writes (:data:`OUTPUT_NAME`) --
+    (a staged file must have no other name) -- anything else found there is
+    left alone. Returns the names removed or completed.
+    """
+    out = Path(outdir)
+    done = []
+    for p in sorted(out.iterdir()):
+        try:
+            st = os.lstat(p)
+        except OSError:
+            continue
+        if p.name.startswith(STAGING_PREFIX) and stat.S_ISDIR(st.st_mode) and owned(st):
+            done += _complete_publication(p, out)
+            shutil.rmtree(p, ignore_errors=True)
+            done.append(p.name)
+        elif PART_NAME.match(p.name) and stat.S_ISREG(st.st_mode) and owned(st):
+            with contextlib.suppress(OSError):
+                p.unlink()
+                done.append(p.name)
+    return done
+
+
+def _complete_publication(stage: Path, out: Path) -> list[str]:
+    """Move the files a cut-short publication listed from ``stage`` into ``out``."""
+    marker = stage / PUBLISHING
+    try:
+        if not stat.S_ISREG(os.lstat(marker).st_mode):
+            return []
+        names = json.loads(marker.read_text())
+    except (OSError, ValueError):
+        return []
+    done = []
+    for name in names if isinstance(names, list) else ():
+        if not isinstance(name, str) or not OUTPUT_NAME.match(name):
+            continue  # not a name cairn publishes: never followed
+        with contextlib.suppress(OSError):
+            st = os.lstat(stage / name)
+            if stat.S_ISREG(st.st_mode) and st.st_nlink == 1 and owned(st):
+                replace_into(stage / name, out / name)
+                done.append(name)
+    return done
+
+
+@contextlib.contextmanager
+def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ()):
+    """Yield a staging folder inside ``outdir``; publish its files as a set.
+
+    Write every file of a run into the staging folder; when the block ends
+    without error the files are moved into ``outdir`` together (Ctrl-C and
+    SIGTERM wait for the few renames), earlier files matching a glob pattern
+    in ``replaces`` that the new set does not include are removed, and the
+    staging folder goes. On any error or interrupt the staging folder is
+    removed and ``outdir`` keeps its previous files untouched. Holds the
+    folder's lock (:func:`hold_outdir`) throughout.
+    """
+    out = Path(outdir)
+    _make_outdir(out)
+    with hold_outdir(out):
+        try:
+            stage = Path(tempfile.mkdtemp(prefix=STAGING_PREFIX, dir=out))
+        except OSError as exc:
+            raise write_error(out, exc) from None
+        try:
+            yield stage
+            _publish(stage, out, replaces)
+        finally:
+            shutil.rmtree(stage, ignore_errors=True)
+
+
+def _publish(stage: Path, out: Path, replaces) -> None:
+    names = sorted(p.name for p in stage.iterdir())
+    try:
+        sync_dir(stage)
+        with _signals_held():
+            for name in names:  # before anything moves: a GeoPackage open elsewhere stops it
+                if name.lower().endswith(".gpkg"):
+                    release_sqlite(out / name)
+            marker = stage / PUBLISHING
+            with open(marker, "w") as fh:
+                fh.write(json.dumps(names))
+                fh.flush()
+                os.fsync(fh.fileno())
+            for pattern in replaces:
+                for old in out.glob(pattern):
+                    st = os.lstat(old)
+                    if old.name not in names and stat.S_ISREG(st.st_mode) and owned(st):
+                        old.unlink()
+            for name in names:
+                replace_into(stage / name, out / name)
+            sync_dir(out)
+    except OSError as exc:
+        raise write_error(out, exc) from None
+
+
+@contextlib.contextmanager
+def _signals_held():
+    """Ctrl-C and SIGTERM wait until the block is done (main thread only)."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught: list[int] = []
+    sigs = (signal.SIGINT, signal.SIGTERM)
+    previous = {s: signal.signal(s, lambda signum, frame: caught.append(signum)) for s in sigs}
+    try:
+        yield
+    finally:
+        for s, h in previous.items():
+            signal.signal(s, h)
+        for s in dict.fromkeys(caught):
+            signal.raise_signal(s)
+
+
+def replaced_by(path: str | os.PathLike, outdir: str | os.PathLike, names, patterns=()) -> str | None:
+    """What a run writing ``names`` into ``outdir`` would do to ``path`` (links
+    resolved): the output name that replaces it, the pattern of earlier
+    outputs the publication removes, or the leftover the tidy-up removes
+    (a staging folder, a temporary file, the lock) -- None when it stays."""
+    import fnmatch
+
+    real, top = Path(os.path.realpath(path)), Path(os.path.realpath(outdir))
+    if real.parent == top:
+        name = real.name
+        if name in names:
+            return name
+        for pattern in patterns:
+            if fnmatch.fnmatchcase(name, pattern):
+                return pattern
+        if PART_NAME.match(name) or name == LOCK_NAME:
+            return name
+    if resolves_into(real, top) and real != top:
+        first = real.relative_to(top).parts[0]
+        if first.startswith(STAGING_PREFIX):
+            return first
+    return None
+
+
+def check_file_folder(path: str | os.PathLike) -> Path:
+    """Make sure a file can be created at ``path`` before any work is done.
+
+    Creates (and removes) a probe file beside it, and removes temporary files
+    :func:`atomic_path` left there for this name by a killed run.
+
+    Raises
+    ------
+    OutputError
+        The folder does not exist, is not writable, or ``path`` is a folder.
+    """
+    p = Path(path)
+    folder = p.parent
+    if p.is_dir():
+        raise OutputError(f"{p}: is a folder; give a file name")
+    if not folder.is_dir():
+        raise OutputError(f"{p}: the folder {folder} does not exist; create it or choose "
+                          "another path")
+    try:
+        fd, probe = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".probe", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise OutputError(f"{p}: cannot write in {folder} ({exc.strerror}); choose another "
+                          "folder") from None
+    for q in folder.glob(f".{glob.escape(p.name)}.*.part*"):
+        if PART_NAME.match(q.name):
+            with contextlib.suppress(OSError):
+                q.unlink()
+    return p

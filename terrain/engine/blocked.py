@@ -152,6 +152,7 @@ import numpy as np
 
 from ..errors import OptionError
 from . import blocked_kernels as _k
+from . import elders  # relations: the elder of each pair
 from .basins import descend, fill_cells, resolve
 from .grid import forward_offsets, offsets
 from .persistence import KINDS, Pairs
@@ -293,6 +294,7 @@ class BlockSummary:
     strips: tuple[Strip, Strip, Strip, Strip]
     float32: bool = True
     roots: Roots | None = None
+    elder: np.ndarray | None = None  # relations: per final pair, see terrain.engine.elders
 
     def boundary_nbytes(self) -> int:
         """Bytes of the boundary part (what :func:`glue` reads)."""
@@ -441,6 +443,7 @@ class Merged(NamedTuple):
     ly: np.ndarray
     lo: np.ndarray
     lw: np.ndarray
+    pel: np.ndarray  # relations: elder of each final pair (local encoding, see local_merge)
 
 
 def _check(kind: str, connectivity: int) -> None:
@@ -721,6 +724,7 @@ def _local(block_values, window, shape, kind, connectivity, edge_outlet, min_per
     if merge_level is not None:
         keep &= _maybe_regions(bk, dk, merge_level, f32)
     pb, pd, pe, bk, dk = pb[keep], pd[keep], pe[keep], bk[keep], dk[keep]
+    elder = elders.local_elders(m.pel[keep], blk, minc[m.hvb])  # relations
     vertex_of_basin = np.full(minc.size, -1, np.int64)
     vertex_of_basin[hvb] = np.arange(hvb.size)
     vb = minc[hvb]
@@ -742,7 +746,7 @@ def _local(block_values, window, shape, kind, connectivity, edge_outlet, min_per
         to_global(vb, blk), zk[vb].astype(np.float64), to_global(hve, blk), effk,
         m.hu.astype(np.int32), m.hv.astype(np.int32), to_global(m.hw, blk),
         zk[m.hw].astype(np.float64), (blk.flags[m.hw] & _k.EDGE) != 0,
-        strips, bool(f32), roots)
+        strips, bool(f32), roots, elder)
     return summary, inputs
 
 
@@ -936,7 +940,8 @@ def _root_levels(summaries, off, forest: Forest, cells: np.ndarray):
 def _empty_pairs(kind: str) -> Pairs:
     e = np.empty(0, np.int64)
     f = np.empty(0, np.float64)
-    return Pairs(kind, e, e.copy(), f, f.copy(), f.copy(), np.empty(0, np.bool_))
+    return Pairs(kind, e, e.copy(), f, f.copy(), f.copy(), np.empty(0, np.bool_),
+                 e.copy())  # relations: elder
 
 
 def collect(summaries: Sequence[BlockSummary], resolution: Resolution, *,
@@ -954,11 +959,13 @@ def collect(summaries: Sequence[BlockSummary], resolution: Resolution, *,
     eb = cat([s.ess_birth for s in summaries] + [resolution.ess_birth])
     ebk = cat([s.ess_key for s in summaries] + [resolution.ess_key])
     ee = cat([s.ess_edge for s in summaries] + [resolution.ess_edge])
+    keep = None
     if min_persistence > 0:
         keep = _persistence_of_keys(kind, pbk, pdk) >= min_persistence
         pb, pd, pbk, pdk, pe = pb[keep], pd[keep], pbk[keep], pdk[keep], pe[keep]
+    pel = elders.collected_elders(summaries, resolution, pb, pd, pdk, keep)  # relations
     o = np.lexsort((pb, pbk, pd, pdk))
-    pb, pd, pbk, pdk, pe = pb[o], pd[o], pbk[o], pdk[o], pe[o]
+    pb, pd, pbk, pdk, pe, pel = pb[o], pd[o], pbk[o], pdk[o], pe[o], pel[o]
     o = np.lexsort((eb, ebk))
     eb, ebk, ee = eb[o], ebk[o], ee[o]
     bv, dv = cat([pbk, ebk]), pdk
@@ -968,7 +975,7 @@ def collect(summaries: Sequence[BlockSummary], resolution: Resolution, *,
                  cat([pd, np.full(eb.size, -1, np.int64)]).astype(np.int64),
                  bv.astype(np.float64), cat([dv, np.full(eb.size, np.nan)]).astype(np.float64),
                  cat([np.abs(bv[:pb.size] - dv), np.full(eb.size, np.inf)]),
-                 cat([pe, ee]).astype(np.bool_))
+                 cat([pe, ee]).astype(np.bool_), cat([pel, np.full(eb.size, -1, np.int64)]))
 
 
 # ----------------------------------------------------------------------------

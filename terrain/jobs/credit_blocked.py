@@ -61,7 +61,7 @@ from ..engine.blocked import (
 from ..engine.persistence import count_ponding
 from ..io import NpyWindows, create_npy, load_scratch, save_scratch, scratch_folder, write_npy_window
 from ..noise import ErrorSampler
-from .credit import CreditJob, pair_log, pond_log, realisation_threshold
+from .credit import CreditJob, pair_log, pond_log, realisation_threshold, summit_isolation
 
 __all__ = ["PerturbedSource", "materialise", "realise_blocked", "ponding_totals", "grid_values_at"]
 
@@ -264,8 +264,9 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -
 
             ponds = pond_log(i, *_pond_sums(src, regions, job.area_row, thr, res, wins, kept,
                                             len(job.regions) + 1, map, add))
+    iso = summit_isolation(src, job) if job.kind == "peaks" else None  # relations
     return {**pair_log(p, death_value, thr, i, math.prod(shape),
-                       lambda b: grid_values_at(regions, b, shape[1])), **ponds}
+                       lambda b: grid_values_at(regions, b, shape[1]), iso), **ponds}
 
 
 def ponding_totals(source: Any, regions: Any, area_row: np.ndarray, threshold: float, *,

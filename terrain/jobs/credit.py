@@ -300,7 +300,7 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
 def summit_isolation(z, job: CreditJob):
     """``births -> (isolation metres, edge-limited)`` on the realisation ``z``
     (:func:`terrain.jobs.relations.isolation_m`)."""
-    return lambda b: isolation_m(z, b, job.cell_metres, job.geo_transform)
+    return lambda b: isolation_m(z, b, job.cell_metres, job.geo_transform, lower_bound=False)
 
 
 def pair_log(p, death_value: np.ndarray, thr: float, i: int, n_cells: int, region,

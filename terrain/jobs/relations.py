@@ -16,11 +16,13 @@ Each logged pair carries (:data:`RELATION_FIELDS`):
 ``isolation``
     For peaks, metres from the summit cell to the nearest higher cell
     (:mod:`terrain.engine.isolation`; the geodesic on the WGS84 ellipsoid
-    for a geographic CRS), float32; NaN for depressions.
+    for a geographic CRS), float32; NaN when the raster holds no higher
+    cell (the realisation's highest summit) and for depressions.
 ``isolation_edge``
     Higher ground could lie nearer beyond the raster edge or under nodata
-    (for the highest summit, always: its isolation is then the distance to
-    the nearest cell beyond the edge or nodata, a lower bound).
+    (always for a summit with no higher cell on the raster). On the DEM as
+    given (:class:`Given`) such a summit's isolation is the distance to the
+    nearest cell beyond the edge or nodata, a lower bound.
 
 Memory: 9 bytes more per logged pair; per realisation of peaks the max
 pyramid of the isolation search (9 bytes per 64 cells).
@@ -63,13 +65,19 @@ class Given:
     isolation_edge: np.ndarray
 
 
-def isolation_m(z, cells: np.ndarray, cell_metres, geo_transform) -> tuple[np.ndarray, np.ndarray]:
+def isolation_m(z, cells: np.ndarray, cell_metres, geo_transform, *,
+                lower_bound: bool = True) -> tuple[np.ndarray, np.ndarray]:
     """Isolation (metres) and its edge-limited flag of summit ``cells`` of the
     raster ``z`` (:func:`terrain.engine.isolation.isolation`); with a
     geographic ``geo_transform`` (the affine of longitude/latitude degrees) the
-    distance to the higher cell found is the geodesic on WGS84 (pyproj)."""
+    distance to the higher cell found is the geodesic on WGS84 (pyproj). A
+    summit with no higher cell on the raster gets the distance to the nearest
+    cell beyond the edge or nodata (a lower bound), or NaN without
+    ``lower_bound``."""
     dx, dy = cell_metres
     d, c, e = isolation(z, cells, dx, dy)
+    if not lower_bound:
+        d[c < 0] = np.nan
     if geo_transform is not None and (c >= 0).any():
         from pyproj import Geod
 

@@ -63,6 +63,7 @@ class Pyramid:
 
 @njit(cache=True)
 def _leaf_level(z, r0, nr, nc, tc, top, nod):
+    """Finest level from the band ``z`` (first row ``r0``): highest valid value, nodata flag."""
     for r in range(nr):
         a = (r0 + r) // LEAF
         for c in range(nc):
@@ -76,6 +77,7 @@ def _leaf_level(z, r0, nr, nc, tc, top, nod):
 
 @njit(cache=True)
 def _coarser(top, nod, s0, r0, c0, s1, r1, c1):
+    """Next level (``s1``: its start, ``r1`` x ``c1`` tiles) from the one at ``s0`` (``r0`` x ``c0``)."""
     for a in range(r0):
         for b in range(c0):
             t = s1 + (a // 2) * c1 + b // 2
@@ -109,6 +111,7 @@ def pyramid(z) -> Pyramid:
 
 @njit(cache=True, inline="always")
 def _push(hk, hv, n, k, v):
+    """Push ``(k, v)`` on the binary min-heap ``hk``/``hv`` of ``n`` entries (grown when full)."""
     if n == hk.size:
         gk = np.empty(2 * n, np.float64)
         gv = np.empty(2 * n, np.int64)
@@ -130,6 +133,7 @@ def _push(hk, hv, n, k, v):
 
 @njit(cache=True, inline="always")
 def _pop(hk, hv, n):
+    """Pop the least key of the binary min-heap: ``(key, value, n)``."""
     k, v = hk[0], hv[0]
     n -= 1
     x, y = hk[n], hv[n]
@@ -163,6 +167,7 @@ def _gap(a0, a1, x):
 
 @njit(cache=True, inline="always")
 def _dist(ycum, dx, r0, c0, r, c):
+    """Metres between cells (r0, c0) and (r, c) (module docstring)."""
     dy = ycum[r] - ycum[r0]
     w = dx[(r + r0) // 2] * (c - c0)
     return np.sqrt(dy * dy + w * w)
@@ -170,6 +175,7 @@ def _dist(ycum, dx, r0, c0, r, c):
 
 @njit(cache=True)
 def _tile_bound(ycum, dxmin, r0, c0, ra, rb, ca, cb):
+    """A lower bound of the metres from cell (r0, c0) to any cell of rows ra..rb, columns ca..cb."""
     if r0 < ra:
         dy = ycum[ra] - ycum[r0]
     elif r0 > rb:

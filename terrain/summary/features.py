@@ -101,7 +101,9 @@ COLUMN_KINDS = {
     "volume_mean_m3": "volume", "volume_p05_m3": "volume", "volume_p95_m3": "volume",
     **RELATION_COLUMN_KINDS,  # relations: parent, spills into, isolation
 }
-COLUMNS = {k: v + RELATION_COLUMNS[k] for k, v in COLUMNS.items()}  # relations
+# relations: parent, spills into, isolation (extent_is_pit_cell, added last, stays last)
+COLUMNS = {k: tuple(c for c in v if c != "extent_is_pit_cell") + RELATION_COLUMNS[k]
+           + tuple(c for c in v if c == "extent_is_pit_cell") for k, v in COLUMNS.items()}
 LAYER_NAMES = {"peaks": ("summits", "summit_points", "summit_regions", "cols"),
                "depressions": ("pits", "pit_points", "pit_regions", "spill_points")}
 _DEATH = {"peaks": "col", "depressions": "spill"}

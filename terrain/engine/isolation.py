@@ -49,7 +49,8 @@ from numba import njit
 
 __all__ = ["LEAF", "Pyramid", "pyramid", "isolation"]
 
-LEAF = 8  # side of the pyramid's finest tiles, cells
+LEAF = 4  # side of the pyramid's finest tiles, cells
+SEED = 3  # cells scanned around each summit before the search (a 7 x 7 window)
 
 
 class Pyramid:
@@ -215,6 +216,10 @@ def _search(z, nr, nc, top, nod, start, prow, pcol, s, ycum, dx, dxmin, best, hk
     best[0] = np.inf
     best[1] = -1
     best[2] = np.inf
+    # seed the bound with the cells around the summit (most summits find higher ground
+    # within a few cells), so the pyramid search opens only tiles nearer than that
+    _scan_leaf(z, nc, max(r0 - SEED, 0), min(r0 + SEED, nr - 1), max(c0 - SEED, 0),
+               min(c0 + SEED, nc - 1), s, zs, ycum, dx, r0, c0, best)
     n = 0
     hk, hv, n = _push(hk, hv, n, 0.0, nl - 1)  # the top level's one tile (index 0)
     while n > 0:

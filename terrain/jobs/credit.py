@@ -59,7 +59,15 @@ from ..engine.persistence import (
 from ..errors import CheckpointError, OptionError
 from ..layers import layer_name, layers_of
 from ..noise import ErrorModel, ErrorSampler, Kernel, realisation_rng
-from .relations import RELATION_FIELDS, Given, given_relations, isolation_m, labels_at, relation_log
+from .relations import (
+    RELATION_FIELDS,
+    Given,
+    given_relations,
+    isolation_m,
+    labels_at,
+    region_pairs,
+    relation_log,
+)
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
            "realise", "pair_log", "pond_log", "log_weights", "concat_logs", "proportion", "region_figures",
@@ -313,7 +321,7 @@ def pair_log(p, death_value: np.ndarray, thr: float, i: int, n_cells: int, regio
     keep = p.persistence >= thr
     cell_t = np.int32 if n_cells < 2**31 - 1 else np.int64
     birth = p.birth[keep]
-    return {
+    log = {
         "real": np.full(int(keep.sum()), i, np.int32),
         "birth": birth.astype(cell_t),
         "death": p.death[keep].astype(cell_t),
@@ -321,8 +329,9 @@ def pair_log(p, death_value: np.ndarray, thr: float, i: int, n_cells: int, regio
         "death_value": death_value[keep].astype(np.float32),
         "edge_limited": p.edge_limited[keep],
         "region": region(birth),
-        **relation_log(p, keep, region, iso),
     }
+    only = region_pairs(log["region"], log_weights(log)) if iso is not None else None
+    return {**log, **relation_log(p, keep, region, iso, only)}
 
 
 def _ponds(fill, thr, ponding, reg, job, i, nc) -> dict:

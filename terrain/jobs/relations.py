@@ -17,7 +17,9 @@ Each logged pair carries (:data:`RELATION_FIELDS`):
     For peaks, metres from the summit cell to the nearest higher cell
     (:mod:`terrain.engine.isolation`; the geodesic on the WGS84 ellipsoid
     for a geographic CRS), float32; NaN when the raster holds no higher
-    cell (the realisation's highest summit) and for depressions.
+    cell (the realisation's highest summit) and for depressions. Computed
+    only for each region's pair (the largest figure born in it, the one the
+    feature tables read, :func:`region_pairs`); NaN for the other pairs.
 ``isolation_edge``
     Higher ground could lie nearer beyond the raster edge or under nodata
     (always for a summit with no higher cell on the raster). On the DEM as
@@ -45,7 +47,7 @@ import numpy as np
 
 from ..engine.isolation import isolation
 
-__all__ = ["RELATION_FIELDS", "OFF_RASTER", "NO_RELATION", "Given", "relation_log",
+__all__ = ["RELATION_FIELDS", "OFF_RASTER", "NO_RELATION", "Given", "relation_log", "region_pairs",
            "isolation_m", "given_relations", "labels_at"]
 
 RELATION_FIELDS = ("elder_region", "isolation", "isolation_edge")
@@ -95,10 +97,23 @@ def isolation_m(z, cells: np.ndarray, cell_metres, geo_transform, *,
     return d, e
 
 
-def relation_log(p, keep: np.ndarray, region, iso=None) -> dict:
+def region_pairs(region: np.ndarray, figure: np.ndarray) -> np.ndarray:
+    """Mask of each region's pair in one realisation's log: the largest figure
+    born in the region (ties: the last in log order), as the feature tables
+    count it (:func:`terrain.summary.relations.feature_relations`)."""
+    order = np.lexsort((figure, region))
+    last = np.ones(order.size, bool)
+    last[:-1] = region[order][1:] != region[order][:-1]
+    out = np.zeros(region.size, bool)
+    out[order[last]] = True
+    return out & (region > 0)
+
+
+def relation_log(p, keep: np.ndarray, region, iso=None, only: np.ndarray | None = None) -> dict:
     """The relation fields (:data:`RELATION_FIELDS`) of the pairs ``p[keep]``;
     ``region(cells)`` gives the DEM's region of cells, ``iso(births)`` the
-    isolation and its flag (peaks; None: NaN)."""
+    isolation and its flag (peaks; None: NaN), computed for the pairs where
+    ``only`` is True (default: all; the others get NaN and False)."""
     elder = np.asarray(p.elder[keep], np.int64)
     out = np.full(elder.size, NO_RELATION, np.int32)
     out[elder == -1] = OFF_RASTER
@@ -108,9 +123,10 @@ def relation_log(p, keep: np.ndarray, region, iso=None) -> dict:
     out[p.death[keep] < 0] = NO_RELATION
     dist = np.full(elder.size, np.nan, np.float32)
     edge = np.zeros(elder.size, np.bool_)
-    if iso is not None and elder.size:
-        d, e = iso(np.asarray(p.birth[keep], np.int64))
-        dist, edge = d.astype(np.float32), e
+    at = np.arange(elder.size) if only is None else np.flatnonzero(only)
+    if iso is not None and at.size:
+        d, e = iso(np.asarray(p.birth[keep], np.int64)[at])
+        dist[at], edge[at] = d.astype(np.float32), e
     return {"elder_region": out, "isolation": dist, "isolation_edge": edge}
 
 

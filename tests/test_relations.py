@@ -210,6 +210,19 @@ def test_isolation_search_equals_brute_force():
                 assert c[k] == -1
 
 
+def test_isolation_does_not_depend_on_the_pyramid_tiles():
+    # the search is exact: any tiling (4-cell tiles in memory, 32 on disk) gives the same
+    from terrain.engine.isolation import pyramid
+
+    z = np.random.default_rng(4).standard_normal((70, 90)).astype(np.float32)
+    z[10:14, 5:40] = np.nan
+    cells = np.arange(0, z.size, 7)
+    ref = isolation(z, cells, np.full(70, 3.0), np.full(70, 2.0))
+    for leaf in (2, 8, 32):
+        got = isolation(z, cells, np.full(70, 3.0), np.full(70, 2.0), pyr=pyramid(z, leaf))
+        assert all(a.tobytes() == b.tobytes() for a, b in zip(ref, got))
+
+
 def test_isolation_on_a_geographic_grid_is_the_geodesic():
     # reference: pyproj.Geod (GeographicLib; Karney 2013, J. Geodesy 87) on WGS84
     from pyproj import Geod

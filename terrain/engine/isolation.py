@@ -3,14 +3,15 @@
 The isolation of a summit cell ``s`` is the distance from ``s`` to the
 nearest cell higher than it in the total order of :mod:`terrain.engine.persistence`
 (higher, or as high with a smaller flat index). It is found by a best-first
-branch-and-bound search over a *max pyramid* of the raster: tiles of 8 x 8
-cells, then 16 x 16, ... up to one tile, each holding the highest valid
+branch-and-bound search over a *max pyramid* of the raster: tiles of 4 x 4
+cells, then 8 x 8, ... up to one tile, each holding the highest valid
 value below it and whether it holds nodata. Tiles are taken from a heap in
 the order of a lower bound of their distance to ``s``; a tile whose highest
 value is below ``s``'s (and that holds no nodata nearer than the best so far)
-is never opened, so the search reads the cells of the 8 x 8 tiles that may
-hold higher ground near the answer, not the raster. Built once per
-realisation (one pass, 9 bytes per 64 cells), the pyramid serves every
+is never opened, so the search reads the cells of the 4 x 4 tiles that may
+hold higher ground near the answer, not the raster (the 7 x 7 cells around
+the summit are read first, which settles most small summits). Built once per
+realisation (one pass; 9 bytes per tile, about 0.75 bytes per cell), the pyramid serves every
 counted summit; a summit costs about the number of tiles crossing the circle
 of its isolation whose highest value is at least its own (the highest summit:
 its own tile chain).
@@ -47,9 +48,10 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["LEAF", "Pyramid", "pyramid", "isolation"]
+__all__ = ["LEAF", "DISK_LEAF", "Pyramid", "pyramid", "isolation"]
 
 LEAF = 4  # side of the pyramid's finest tiles, cells
+DISK_LEAF = 32  # the same for a raster on disk (the pyramid then takes 0.012 bytes per cell)
 SEED = 3  # cells scanned around each summit before the search (a 7 x 7 window)
 
 
@@ -58,18 +60,19 @@ class Pyramid:
     cells on a side) with the highest valid value (``-inf``: none) and a
     nodata flag, flattened level after level (``start``/``rows``/``cols``)."""
 
-    def __init__(self, top, nod, start, rows, cols):
+    def __init__(self, top, nod, start, rows, cols, leaf=LEAF):
         self.top, self.nod, self.start, self.rows, self.cols = top, nod, start, rows, cols
+        self.leaf = leaf
 
 
 @njit(cache=True)
-def _leaf_level(z, r0, nr, nc, tc, top, nod):
+def _leaf_level(z, r0, nr, nc, tc, top, nod, leaf):
     """Finest level from the band ``z`` (first row ``r0``): highest valid value, nodata flag."""
     for r in range(nr):
-        a = (r0 + r) // LEAF
+        a = (r0 + r) // leaf
         for c in range(nc):
             v = z[r, c]
-            t = a * tc + c // LEAF
+            t = a * tc + c // leaf
             if np.isnan(v):
                 nod[t] = True
             elif v > top[t]:
@@ -88,11 +91,13 @@ def _coarser(top, nod, s0, r0, c0, s1, r1, c1):
             nod[t] = nod[t] or nod[u]
 
 
-def pyramid(z) -> Pyramid:
+def pyramid(z, leaf: int = LEAF) -> Pyramid:
     """The max pyramid of a 2-D float raster (NaN: nodata): an array, or
-    anything read by window (``z[r0:r1, :]``, 256 rows at a time)."""
+    anything read by window (``z[r0:r1, :]``, ``32 * leaf`` rows at a time),
+    with finest tiles ``leaf`` cells on a side (the search's answer does not
+    depend on it)."""
     nr, nc = z.shape
-    dims = [(-(-nr // LEAF), -(-nc // LEAF))]
+    dims = [(-(-nr // leaf), -(-nc // leaf))]
     while dims[-1] != (1, 1):
         r, c = dims[-1]
         dims.append((-(-r // 2), -(-c // 2)))
@@ -100,14 +105,14 @@ def pyramid(z) -> Pyramid:
     start = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
     top = np.full(int(start[-1]), -np.inf, np.float64)
     nod = np.zeros(int(start[-1]), np.bool_)
-    for r0 in range(0, nr, 32 * LEAF):
-        band = np.asarray(z[r0:r0 + 32 * LEAF, :])
-        _leaf_level(band, r0, band.shape[0], nc, dims[0][1], top, nod)
+    for r0 in range(0, nr, 32 * leaf):
+        band = np.asarray(z[r0:r0 + 32 * leaf, :])
+        _leaf_level(band, r0, band.shape[0], nc, dims[0][1], top, nod, leaf)
     for k in range(1, len(dims)):
         _coarser(top, nod, start[k - 1], dims[k - 1][0], dims[k - 1][1], start[k], dims[k][0],
                  dims[k][1])
     return Pyramid(top, nod, start, np.array([d[0] for d in dims], np.int64),
-                   np.array([d[1] for d in dims], np.int64))
+                   np.array([d[1] for d in dims], np.int64), leaf)
 
 
 @njit(cache=True, inline="always")
@@ -207,7 +212,7 @@ def _scan_leaf(z, nc, ra, rb, ca, cb, s, zs, ycum, dx, r0, c0, best):
 
 
 @njit(cache=True)
-def _search(z, nr, nc, top, nod, start, prow, pcol, s, ycum, dx, dxmin, best, hk, hv):
+def _search(z, nr, nc, top, nod, start, prow, pcol, leaf, s, ycum, dx, dxmin, best, hk, hv):
     """Best-first search from summit cell ``s`` (see the module docstring)."""
     r0 = s // nc
     c0 = s - r0 * nc
@@ -232,7 +237,7 @@ def _search(z, nr, nc, top, nod, start, prow, pcol, s, ycum, dx, dxmin, best, hk
         t = code // nl
         tr = t // pcol[lev]
         tc = t - tr * pcol[lev]
-        side = LEAF << lev
+        side = leaf << lev
         ra, ca = tr * side, tc * side
         rb, cb = min(ra + side, nr) - 1, min(ca + side, nc) - 1
         if lev == 0:
@@ -241,7 +246,7 @@ def _search(z, nr, nc, top, nod, start, prow, pcol, s, ycum, dx, dxmin, best, hk
         for a in range(2 * tr, min(2 * tr + 2, prow[lev - 1])):
             for b in range(2 * tc, min(2 * tc + 2, pcol[lev - 1])):
                 u = start[lev - 1] + a * pcol[lev - 1] + b
-                hs = LEAF << (lev - 1)
+                hs = leaf << (lev - 1)
                 d = _tile_bound(ycum, dxmin, r0, c0, a * hs, min(a * hs + hs, nr) - 1, b * hs,
                                 min(b * hs + hs, nc) - 1)
                 higher = top[u] >= zs and d <= best[0]
@@ -252,8 +257,8 @@ def _search(z, nr, nc, top, nod, start, prow, pcol, s, ycum, dx, dxmin, best, hk
 
 
 @njit(cache=True)
-def _isolation(z, nr, nc, top, nod, start, prow, pcol, cells, ycum, dx, dxmin, out_d, out_c,
-               out_n):
+def _isolation(z, nr, nc, top, nod, start, prow, pcol, leaf, cells, ycum, dx, dxmin, out_d,
+               out_c, out_n):
     """Per summit in ``cells``: the distance to the nearest higher cell (inf:
     none), that cell (-1: none) and the distance to the nearest nodata cell
     no farther (inf: none)."""
@@ -261,8 +266,8 @@ def _isolation(z, nr, nc, top, nod, start, prow, pcol, cells, ycum, dx, dxmin, o
     hk = np.empty(64, np.float64)
     hv = np.empty(64, np.int64)
     for q in range(cells.size):
-        hk, hv = _search(z, nr, nc, top, nod, start, prow, pcol, cells[q], ycum, dx, dxmin, best,
-                         hk, hv)
+        hk, hv = _search(z, nr, nc, top, nod, start, prow, pcol, leaf, cells[q], ycum, dx, dxmin,
+                         best, hk, hv)
         out_d[q] = best[0]
         out_c[q] = np.int64(best[1])
         out_n[q] = best[2]
@@ -280,7 +285,9 @@ def isolation(z, cells: np.ndarray, dx: np.ndarray, dy: np.ndarray, *,
     dx, dy : float arrays of length rows
         Cell width and height in metres per row (:meth:`terrain.dem.Dem.cell_metres`).
     pyr : Pyramid, optional
-        ``pyramid(z)``, when already built for this raster.
+        ``pyramid(z)``, when already built for this raster. Default: built
+        here, with :data:`DISK_LEAF` tiles for a raster on disk (small in
+        memory), :data:`LEAF` ones otherwise; the answer is the same.
 
     Returns
     -------
@@ -302,8 +309,9 @@ def isolation(z, cells: np.ndarray, dx: np.ndarray, dy: np.ndarray, *,
     ([2.828, 1.0], [8, -1], [True, True])
     """
     nr, nc = z.shape
-    pyr = pyr or pyramid(z)
-    z = z.mapped() if hasattr(z, "mapped") else np.asarray(z)
+    on_disk = hasattr(z, "mapped")
+    pyr = pyr or pyramid(z, DISK_LEAF if on_disk else LEAF)
+    z = z.mapped() if on_disk else np.asarray(z)
     dy = np.asarray(dy, np.float64)
     ycum = np.concatenate([[0.0], np.cumsum((dy[1:] + dy[:-1]) / 2)])
     dx = np.ascontiguousarray(dx, np.float64)
@@ -313,8 +321,8 @@ def isolation(z, cells: np.ndarray, dx: np.ndarray, dy: np.ndarray, *,
     zf = z.reshape(-1)
     if zf.dtype not in (np.float32, np.float64):
         zf = zf.astype(np.float64)
-    _isolation(zf, nr, nc, pyr.top, pyr.nod, pyr.start, pyr.rows, pyr.cols, cells, ycum, dx,
-               float(dx.min()), d, c, hole)
+    _isolation(zf, nr, nc, pyr.top, pyr.nod, pyr.start, pyr.rows, pyr.cols, pyr.leaf, cells,
+               ycum, dx, float(dx.min()), d, c, hole)
     # the nearest cell beyond the raster edge: one row above or below, one column aside
     r0, c0 = np.divmod(cells, nc)
     edge = np.minimum.reduce([hole, ycum[r0] + dy[0], ycum[-1] + dy[-1] - ycum[r0],

@@ -221,9 +221,9 @@ class CreditJob:
         estimate and standard error each, 3 or 4 layers). Worker: the DEM
         copy, noise (4), the perturbed copy and the key copy the pairing sorts
         on, basin labels (4), validity (1), region labels (4), ponding counts
-        (4)."""
+        (4); for peaks the isolation search's max pyramid (under 1)."""
         parent = 48 + (4 if self.kind == "depressions" else 0) + 16 * len(self.layers)
-        return parent, 3 * value_bytes + 17
+        return parent, 3 * value_bytes + 17 + (1 if self.kind == "peaks" else 0)
 
 
 def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int,

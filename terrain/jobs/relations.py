@@ -27,7 +27,7 @@ Each logged pair carries (:data:`RELATION_FIELDS`):
     nearest cell beyond the edge or nodata, a lower bound.
 
 Memory: 9 bytes more per logged pair; per realisation of peaks the max
-pyramid of the isolation search (9 bytes per 64 cells).
+pyramid of the isolation search (about 0.75 bytes per cell).
 
 References
 ----------

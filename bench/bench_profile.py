@@ -62,7 +62,7 @@ def replay(z, sampler, job, i, ponding, marks):
     mark("validity")
     res, lab, minc = P._engine(zz, s, valid, job.connectivity, kind == "pits",
                                labels=kind == "pits", clock=mark)
-    p = P._assemble(zz, s, kind, *res[:5])
+    p = P._assemble(zz, s, kind, *res[:5], res[9])
     mark("pairs")
     thr = realisation_threshold(job, sampler.kernel, 0, i)
     reg = job.regions.labels.reshape(-1)

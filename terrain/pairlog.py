@@ -15,10 +15,15 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "AREA_QUANTUM", "VOLUME_QUANTUM", "pair_log",
-           "pond_log", "concat_logs", "proportion", "log_weights", "region_figures"]
+__all__ = ["LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "RELATION_FIELDS", "AREA_QUANTUM", "VOLUME_QUANTUM",
+           "pair_log", "pond_log", "concat_logs", "proportion", "log_weights", "region_figures"]
 
-LOG_FIELDS = ("real", "birth", "death", "birth_value", "death_value", "edge_limited", "region")
+#: Fields each logged pair carries besides its own: its elder's region (parent /
+#: spills into) and, for summits, the isolation and its edge flag; made by
+#: :func:`terrain.jobs.relations.pair_log`.
+RELATION_FIELDS = ("elder_region", "isolation", "isolation_edge")
+LOG_FIELDS = ("real", "birth", "death", "birth_value", "death_value", "edge_limited", "region"
+              ) + RELATION_FIELDS
 POND_FIELDS = ("pond_real", "pond_region", "pond_area", "pond_volume")
 WEIGHTS = ("persistence", "count")
 
@@ -32,9 +37,10 @@ VOLUME_QUANTUM = 2.0 ** -12
 
 
 def pair_log(p, death_value: np.ndarray, thr: float, i: int, n_cells: int, region) -> dict:
-    """The pair log (:data:`LOG_FIELDS`) of realisation ``i``: the pairs of ``p`` at
-    least ``thr`` persistent, with ``death_value`` for their death values and
-    ``region(birth cells)`` for the unperturbed DEM's region of each birth."""
+    """The pair log of realisation ``i`` without its relation fields: the pairs of
+    ``p`` at least ``thr`` persistent, with ``death_value`` for their death values
+    and ``region(birth cells)`` for the unperturbed DEM's region of each birth
+    (:func:`terrain.jobs.relations.pair_log` adds :data:`RELATION_FIELDS`)."""
     keep = p.persistence >= thr
     cell_t = np.int32 if n_cells < 2**31 - 1 else np.int64
     birth = p.birth[keep]

@@ -68,7 +68,7 @@ QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, 
 SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run
 FIELD_DRAW = 24  # correlated error: a draw's float64 field and noise tiles, float32 copy (counted)
 COPULA_DRAW = 16  # ... and a non-Gaussian kernel's copula: quantiles and their temporaries (counted)
-LOG_BYTES_PER_PAIR = 21  # one logged pair on grids below 2**31 cells (counted)
+LOG_BYTES_PER_PAIR = 30  # one logged pair on grids below 2**31 cells (counted; 9 of relations)
 # Blocked mode (terrain.runner.blocked), per cell of a block task: block plus halo
 # (4), its error and the noise tiles it is drawn from (4 + 8), the local step on
 # white noise, the worst case (44) plus the level inputs kept for the second

@@ -51,7 +51,7 @@ from .conftest import smooth_terrain
 from .reference_regions import regions_by_cells, same_partition
 from .test_persistence import gudhi_pairs, values
 
-FIELDS = ("birth", "death", "birth_value", "death_value", "persistence", "edge_limited")
+FIELDS = ("birth", "death", "birth_value", "death_value", "persistence", "edge_limited", "elder")
 
 
 def assert_identical(p, q):
@@ -304,7 +304,7 @@ def test_empty_and_all_nodata():
 # ----------------------------------------------------------------------------
 # regions and depression depths
 # ----------------------------------------------------------------------------
-REGION_FIELDS = FIELDS
+REGION_FIELDS = FIELDS[:-1]  # regions carry no elder
 
 
 def assert_same_regions(got, ref):

@@ -190,13 +190,15 @@ def test_geopackage_layers_are_described(runs):
     _, out = runs
     from terrain.outputs.manifest import VECTOR_LAYERS
     from terrain.summary.features import LAYER_NAMES, RANK_LAYER
+    from terrain.summary.relations import LINK_TABLE
 
     for cmd, gpkg in (("peaks", "peaks.gpkg"), ("depressions", "depressions.gpkg")):
         with sqlite3.connect(out[cmd] / gpkg) as con:
             rows = dict(con.execute("SELECT table_name, description FROM gpkg_contents"))
             kinds = dict(con.execute("SELECT table_name, data_type FROM gpkg_contents"))
-        assert set(rows) == set(LAYER_NAMES[cmd]) | {RANK_LAYER}
+        assert set(rows) == set(LAYER_NAMES[cmd]) | {RANK_LAYER, LINK_TABLE[cmd]}
         assert kinds[RANK_LAYER] == "attributes"  # a table without geometry
+        assert kinds[LINK_TABLE[cmd]] == ("attributes" if cmd == "peaks" else "features")
         for name, text in rows.items():
             assert text.startswith(VECTOR_LAYERS[name])  # what the layer is
             assert "RMSE 1.5 m (gaussian)" in text and "4 realisations, seed 2" in text

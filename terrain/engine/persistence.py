@@ -109,6 +109,14 @@ class Pairs:
         cell in the total order holds a cell on the raster edge or next to
         nodata, or the death cell is such a cell (for an essential class: its
         component does). This is a property of the pair alone.
+    elder : ndarray of int64, optional
+        The birth cell of the component the pair's component merges into at
+        its death cell: the component holding the death cell once every
+        merge there is made (its highest summit, or deepest pit); -1 for the
+        outlet (pits with the edge as outlet) and for essential classes.
+        Canonical (it does not depend on the order of merges at one cell);
+        :mod:`terrain.summary.relations` reads it as a summit's parent or
+        the depression a pit spills into.
     """
 
     kind: str
@@ -118,6 +126,7 @@ class Pairs:
     death_value: np.ndarray
     persistence: np.ndarray
     edge_limited: np.ndarray
+    elder: np.ndarray | None = None
 
     def __len__(self) -> int:
         return int(self.birth.size)
@@ -353,7 +362,9 @@ def _merge(minc, kmin, emin0, kemin0, order, cells, key, own, edge, off, nbr, ou
 
     Returns the pairs, the essential classes, per basin the cell at which
     its component joined the outlet (-1: never) and the root basin of that
-    component, ``rpar`` and ``pair_of``.
+    component, ``rpar``, ``pair_of`` and, per pair, its *elder*: the birth
+    cell of the component holding the death cell once every merge there is
+    made (-1: the outlet).
     """
     nb = minc.size
     out_id = nb
@@ -371,6 +382,7 @@ def _merge(minc, kmin, emin0, kemin0, order, cells, key, own, edge, off, nbr, ou
     pk = np.empty(nb, key.dtype)
     pd = np.empty(nb, np.int64)
     pe = np.empty(nb, np.bool_)
+    pel = np.empty(nb, np.int64)  # relations: the elder each pair merges into
     pend_old = np.empty(10, np.int32)
     pend_young = np.empty(10, np.int32)
     npairs = 0
@@ -423,6 +435,11 @@ def _merge(minc, kmin, emin0, kemin0, order, cells, key, own, edge, off, nbr, ou
             _sort_group(pk, pb, pe, g0, npairs)
         for q in range(g0, npairs):
             pd[q] = w
+        # relations: every pair dying at w merges into the component holding w once
+        # every merge at w is made (canonical whatever the merge order); -1: the outlet
+        rw = find(parent, a)
+        for q in range(g0, npairs):
+            pel[q] = -1 if rw == out_id else minc[rw]
         # the event at w is done: components now include what merged at w
         for q in range(npend):
             old = pend_old[q]
@@ -435,7 +452,7 @@ def _merge(minc, kmin, emin0, kemin0, order, cells, key, own, edge, off, nbr, ou
                 kemin[old] = kemin[y]
     esb, ese = _essential(parent, minc, emin)
     join, jroot = _joins(up, mt, kmt, seq[:nmerged], nb, out_id, outlet)
-    return pb[:npairs], pd[:npairs], pe[:npairs], esb, ese, join, jroot, rpar, pair_of
+    return pb[:npairs], pd[:npairs], pe[:npairs], esb, ese, join, jroot, rpar, pair_of, pel[:npairs]
 
 
 @njit(cache=True)
@@ -674,11 +691,12 @@ def pairs(z: np.ndarray, *, kind: str, connectivity: int = 8,
     z, s, valid = _prepare(z, kind, connectivity, mask)
     if edge_outlet is None:
         edge_outlet = kind == "pits"
-    (pb, pd, pe, eb, ee, *_), _lab, _minc = _engine(z, s, valid, connectivity, bool(edge_outlet))
-    return _assemble(z, s, kind, pb, pd, pe, eb, ee)
+    (pb, pd, pe, eb, ee, *_, pel), _lab, _minc = _engine(z, s, valid, connectivity,
+                                                          bool(edge_outlet))
+    return _assemble(z, s, kind, pb, pd, pe, eb, ee, pel)
 
 
-def _assemble(z, s, kind, pb, pd, pe, eb, ee) -> Pairs:
+def _assemble(z, s, kind, pb, pd, pe, eb, ee, pel) -> Pairs:
     zf = z.reshape(-1)
     # canonical order: finite pairs by death, then birth, in the total order (as
     # the merge gives them); essential classes by birth
@@ -689,7 +707,8 @@ def _assemble(z, s, kind, pb, pd, pe, eb, ee) -> Pairs:
     bv = zf[birth].astype(np.float64)
     dv = np.concatenate([zf[pd].astype(np.float64), np.full(eb.size, np.nan)])
     pers = np.concatenate([np.abs(bv[:pb.size] - dv[:pd.size]), np.full(eb.size, np.inf)])
-    return Pairs(kind, birth, death, bv, dv, pers, np.concatenate([pe, ee]))
+    return Pairs(kind, birth, death, bv, dv, pers, np.concatenate([pe, ee]),
+                 np.concatenate([pel, np.full(eb.size, -1, np.int64)]))
 
 
 @njit(cache=True)
@@ -791,7 +810,7 @@ def regions(z: np.ndarray, *, kind: str, merge_level: float, connectivity: int =
     z, s, valid = _prepare(z, kind, connectivity, mask)
     if edge_outlet is None:
         edge_outlet = kind == "pits"
-    (pb, pd, pe, esb, ese, _j, _jr, rpar, pair_of), lab, minc = _engine(
+    (pb, pd, pe, esb, ese, _j, _jr, rpar, pair_of, _el), lab, minc = _engine(
         z, s, valid, connectivity, bool(edge_outlet), float(merge_level), labels=True)
     nb = minc.size
     reps = np.array([b for b in range(nb) if rpar[b] == b], np.int64)
@@ -839,11 +858,11 @@ def pits_and_levels(z: np.ndarray, *, connectivity: int = 8,
     into ponding and depths.
     """
     z, s, valid = _prepare(z, "pits", connectivity, mask)
-    (pb, pd, pe, eb, ee, join, jroot, _r, _p), lab, minc = _engine(z, s, valid, connectivity, True,
-                                                                   labels=True)
+    (pb, pd, pe, eb, ee, join, jroot, _r, _p, pel), lab, minc = _engine(
+        z, s, valid, connectivity, True, labels=True)
     zf = z.reshape(-1)
     level, depth = _fill_levels(zf, join, jroot, minc)
-    return _assemble(z, s, "pits", pb, pd, pe, eb, ee), Fill(zf, valid.reshape(-1), lab, level, depth)
+    return _assemble(z, s, "pits", pb, pd, pe, eb, ee, pel), Fill(zf, valid.reshape(-1), lab, level, depth)
 
 
 def pairs_and_fill(z: np.ndarray, *, connectivity: int = 8,

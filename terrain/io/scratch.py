@@ -66,6 +66,10 @@ class NpyWindows:
     def __getitem__(self, key) -> np.ndarray:
         return np.array(np.load(self.path, mmap_mode="r")[key])
 
+    def mapped(self) -> np.ndarray:  # relations (issue 28): the isolation search reads cells
+        """The whole raster mapped read-only (pages read only where touched)."""
+        return np.load(self.path, mmap_mode="r")
+
     def __setitem__(self, key, values) -> None:
         mm = np.load(self.path, mmap_mode="r+")
         mm[key] = values

@@ -6,7 +6,7 @@ threshold credits its weight to its birth cell (summit / pit) and its death
 cell (key col / spill point). Weight is the persistence (prominence or
 depth) or 1 (count mode); the essential peak is credited its elevation minus
 the base. A realisation's contribution is *sparse*, so the per-realisation
-output is a compact **pair log** (:data:`LOG_FIELDS`, 25 bytes per logged pair
+output is a compact **pair log** (:data:`LOG_FIELDS`, 34 bytes per logged pair
 on grids below 2**31 cells) plus, for depressions, ponding counts added in
 place and a **pond log** (:data:`POND_FIELDS`: per region holding water, its
 ponded area and volume).
@@ -28,7 +28,7 @@ Standard error of a layer: ``sqrt((mean(x^2) - mean(x)^2) / N)``, which for a
 proportion is the Monte Carlo standard error sqrt(p(1-p)/N).
 
 Memory in the accumulating process while realisations come in: the logs
-(25 bytes per counted pair) and, for depressions, 4 bytes per cell of
+(34 bytes per counted pair) and, for depressions, 4 bytes per cell of
 ponding counts; the credit layers are summed from the log at the end
 (:func:`credit_layers`, 48 bytes per cell of the window summed: 2 x 2
 float64 moments, 1 int32 count, scratch int32 + float64) into the finished
@@ -63,12 +63,12 @@ from ..pairlog import (
     WEIGHTS,
     concat_logs,
     log_weights,
-    pair_log,
     pond_log,
     proportion,
     region_figures,
 )
 from .credit_blocked import realise_blocked
+from .relations import Given, given_relations, labels_at, pair_log, summit_isolation
 from .thresholds import realisation_threshold
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
@@ -129,6 +129,9 @@ class CreditJob:
     area_row: np.ndarray | None = None
     from_defaults: tuple = ()
     reference: float | None = None
+    cell_metres: tuple | None = None  # relations: (dx, dy) metres per row
+    geo_transform: tuple | None = None  # relations: the affine of a geographic CRS
+    given: Given | None = None  # relations on the DEM as given, per region
 
     def __post_init__(self):
         if self.kind not in KINDS:
@@ -179,10 +182,15 @@ class CreditJob:
         if reg is None or reg.merge_level != merge or tuple(reg.labels.shape) != dem.shape:
             reg = dem_regions(dem, kind=self.filtration, merge_level=merge,
                               connectivity=self.connectivity, block=block)
+        metres = tuple(np.asarray(a, np.float64) for a in dem.cell_metres())
+        geo = tuple(dem.transform)[:6] if dem.geographic else None
+        given = self.given if reg is self.regions and self.given is not None else \
+            dem_relations(dem, reg, self.filtration, self.connectivity, metres, geo, block)
         return dataclasses.replace(
             self, threshold=thr, merge_level=merge, regions=reg, area_row=dem.cell_area_m2(),
             base=defaults.base_level(self.base, dem) if self.kind == "peaks" else None,
-            from_defaults=self._defaulted(), reference=dem.reference(model.rmse))
+            from_defaults=self._defaulted(), reference=dem.reference(model.rmse),
+            cell_metres=metres, geo_transform=geo, given=given)
 
     def defaults_used(self) -> dict:
         """The settings left to library defaults, with the rule each follows."""
@@ -190,7 +198,8 @@ class CreditJob:
 
     def describe(self) -> dict:
         d = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
-             if f.name not in ("regions", "area_row", "from_defaults")}
+             if f.name not in ("regions", "area_row", "from_defaults", "cell_metres",
+                              "geo_transform", "given")}
         return {"job": self.kind, **d}
 
     def new_counts(self, n_cells: int) -> dict:
@@ -216,9 +225,9 @@ class CreditJob:
         estimate and standard error each, 3 or 4 layers). Worker: the DEM
         copy, noise (4), the perturbed copy and the key copy the pairing sorts
         on, basin labels (4), validity (1), region labels (4), ponding counts
-        (4)."""
+        (4); for peaks the isolation search's max pyramid (under 1)."""
         parent = 48 + (4 if self.kind == "depressions" else 0) + 16 * len(self.layers)
-        return parent, 3 * value_bytes + 17
+        return parent, 3 * value_bytes + 17 + (1 if self.kind == "peaks" else 0)
 
 
 def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int,
@@ -233,6 +242,22 @@ def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int,
     return blocked_regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
                            block=block or defaults.DISK_BLOCK,
                            out=dem.new_grid("regions", dem.shape, np.int32))
+
+
+def dem_relations(dem: Dem, reg: Regions, filtration: str, connectivity: int, metres, geo,
+                  block: int | None = None) -> Given:
+    """Relations of every region on the DEM as given (:class:`~terrain.jobs.relations.Given`):
+    the DEM's pairs with their elders (block by block for a DEM on disk) and,
+    for peaks, the isolation of each region's summit."""
+    if not dem.on_disk:
+        p = pairs(dem.z, kind=filtration, connectivity=connectivity, mask=dem.nodata)
+    else:
+        from ..engine.blocked import blocked_pairs
+
+        p = blocked_pairs(dem.z, kind=filtration, connectivity=connectivity,
+                          block=block or defaults.DISK_BLOCK)
+    return given_relations(dem.z, p, reg, lambda c: labels_at(reg.labels, c), metres, geo,
+                           filtration == "peaks")
 
 
 def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: int,
@@ -270,7 +295,8 @@ def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: 
         death_value = p.death_value
         if ponding is not None:
             ponds = _ponds(fill, thr, ponding, reg, job, i, z.shape[1])
-    return {**pair_log(p, death_value, thr, i, z.size, lambda b: reg[b].astype(np.int32)),
+    iso = summit_isolation(zi, job) if job.kind == "peaks" else None
+    return {**pair_log(p, death_value, thr, i, z.size, lambda b: reg[b].astype(np.int32), iso),
             **ponds}
 
 
@@ -434,7 +460,7 @@ class CreditAccumulator:
     realisations with a counted pair (for the stop rule). The credit layers
     are computed from the log when asked for (:func:`credit_layers`), whole
     or window by window, so nothing dense but the ponding counts is held
-    while the run goes on: 4 bytes per cell (depressions) plus 25 bytes per
+    while the run goes on: 4 bytes per cell (depressions) plus 34 bytes per
     logged pair.
     """
 
@@ -526,4 +552,6 @@ class CreditAccumulator:
             getattr(self, k)[:] = st[k]
         self.n = int(st["n"])
         fields = LOG_FIELDS + (POND_FIELDS if self.job.kind == "depressions" else ())
+        if any(f"log_{k}" not in st for k in fields):
+            raise CheckpointError("checkpoint from an older cairn: its pair log has no relations")
         self.logs = [{k: st[f"log_{k}"] for k in fields}]

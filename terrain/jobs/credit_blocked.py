@@ -73,7 +73,8 @@ from ..io import (
     write_npy_window,
 )
 from ..noise import ErrorSampler
-from ..pairlog import AREA_QUANTUM, VOLUME_QUANTUM, pair_log, pond_log
+from ..pairlog import AREA_QUANTUM, VOLUME_QUANTUM, pond_log
+from .relations import pair_log, summit_isolation
 from .thresholds import realisation_threshold
 
 __all__ = ["PerturbedSource", "materialise", "realise_blocked", "ponding_totals", "grid_values_at",
@@ -347,7 +348,7 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -
         return map(task, zip(wins, kept))
 
     return _log_of(summaries, lowest, ponds, tuple(int(x) for x in src.shape), wins, job, thr, i,
-                   regions, ponding)
+                   regions, ponding, lambda: src)
 
 
 def _realise_shipped(dem, wins, draw: Draw, job, regions, ponding, map) -> dict:
@@ -366,13 +367,25 @@ def _realise_shipped(dem, wins, draw: Draw, job, regions, ponding, map) -> dict:
         task = functools.partial(_shipped_pond, draw, job.connectivity, thr, job.area_row, res)
         return map(task, _shipped_specs(dem, wins, shape, regions))
 
-    return _log_of(summaries, lowest, ponds, shape, wins, job, thr, draw.i, regions, ponding)
+    with contextlib.ExitStack() as scope:
+        def surface():  # summits' isolation reads the realisation: drawn here, in this process
+            target = np.empty(shape, np.float32)
+            if isinstance(dem, str):
+                folder = scope.enter_context(scratch_folder(os.path.dirname(os.path.abspath(dem))))
+                target = scratch_file(folder, "realisation")
+            src = PerturbedSource(dem, draw.sampler, draw.seed, draw.i, draw.reference)
+            return materialise(src, wins, target, builtins.map)
+
+        return _log_of(summaries, lowest, ponds, shape, wins, job, thr, draw.i, regions, ponding,
+                       surface)
 
 
-def _log_of(summaries, lowest, ponds, shape, wins, job, thr, i, regions, ponding) -> dict:
+def _log_of(summaries, lowest, ponds, shape, wins, job, thr, i, regions, ponding,
+            surface) -> dict:
     """The realisation's log from its blocks' summaries: the glue, the pairs
     and (depressions with ``ponding``) the second pass, ``ponds(resolution)``
-    giving each block's counts and sums in window order."""
+    giving each block's counts and sums in window order; ``surface()`` gives
+    the realisation's raster, read by summits' isolation."""
     res = glue(summaries)
     p = collect(summaries, res, min_persistence=thr)
     summaries.clear()  # the caller's list: nothing after the glue reads it
@@ -391,8 +404,9 @@ def _log_of(summaries, lowest, ponds, shape, wins, job, thr, i, regions, ponding
                     ponding[w.r0:w.r1, w.c0:w.c1] += cnt
 
             log = pond_log(i, *_sum_ponds(ponds(res), wins, len(job.regions) + 1, add))
+    iso = summit_isolation(surface(), job) if job.kind == "peaks" else None  # relations
     return {**pair_log(p, death_value, thr, i, math.prod(shape),
-                       lambda b: grid_values_at(regions, b, shape[1])), **log}
+                       lambda b: grid_values_at(regions, b, shape[1]), iso), **log}
 
 
 def ponding_totals(source: Any, regions: Any, area_row: np.ndarray, threshold: float, *,

@@ -47,20 +47,29 @@ _RANKING = OutputFile("ranking.png", "ranking chart: the features that rank 1st-
                                      "P(rank = k) for k = 1..10")
 _RANKS = OutputFile("ranks.csv", "the rank distribution in long form: feature, rank k = 1..10, "
                                  "P(rank = k) and its Monte Carlo standard error")
+_PARENTS = OutputFile("parents.csv", "each summit feature's parents in long form: feature, parent "
+                                     "(empty: the highest summit), share of the realisations "
+                                     "counting the feature and its Monte Carlo standard error, "
+                                     "whether it is the parent on the DEM as given")
+_SPILLS = OutputFile("spills.csv", "where each depression feature spills, in long form: feature, "
+                                   "receiving feature (-1: off the raster), share and its Monte "
+                                   "Carlo standard error, on the DEM as given, the spill point")
 
 MANIFEST: dict[str, list[OutputFile]] = {
     "peaks": _rasters("peaks") + [
         OutputFile("peaks.gpkg", "summit features: polygons and points with their statistics, "
                                  "each feature's most credited key col, and the rank "
                                  "distribution", ("summits", "summit_points", "summit_regions",
-                                                  "cols", "ranks")),
-        OutputFile("summits.csv", "the summit feature table"), _RANKS, _RANKING] + _COMMON,
+                                                  "cols", "ranks", "parents")),
+        OutputFile("summits.csv", "the summit feature table"), _RANKS, _RANKING,
+        _PARENTS] + _COMMON,
     "depressions": _rasters("depressions") + [
         OutputFile("depressions.gpkg", "depression features: polygons and points with their "
                                        "statistics, each feature's most credited spill point, "
                                        "and the rank distribution",
-                   ("pits", "pit_points", "pit_regions", "spill_points", "ranks")),
-        OutputFile("pits.csv", "the depression feature table"), _RANKS, _RANKING] + _COMMON,
+                   ("pits", "pit_points", "pit_regions", "spill_points", "ranks", "spill_links")),
+        OutputFile("pits.csv", "the depression feature table"), _RANKS, _RANKING,
+        _SPILLS] + _COMMON,
     "catchments": _rasters("catchments") + [
         OutputFile("catchments.gpkg", "per outlet: 50% and 90% catchment and sub-catchment "
                                       "polygons with areas, and the outlet as given and snapped, "
@@ -116,6 +125,19 @@ VECTOR_LAYERS: dict[str, str] = {
              "error p_rank_se; for every k the rows carry the whole probability, feature_id 0 "
              "holding the share of realisations in which fewer than k features were counted. "
              "Join feature_id to the other layers",
+    "parents": "Each summit feature's parent in long form (a table without geometry): the "
+               "feature holding the highest summit of the component its key col joins (by the "
+               "elder rule), one row per feature and parent with share (of the realisations "
+               "counting the feature) and share_se (its Monte Carlo standard error); an empty "
+               "parent_id is the share in which it is the highest summit; unperturbed marks the "
+               "parent on the DEM as given. Join feature_id to the other layers",
+    "spill_links": "Where each depression feature's water goes when it overflows: one line per "
+                   "feature and receiving feature, from the feature's pit on the DEM as given "
+                   "to its most frequent spill point for that link and on to the receiving "
+                   "feature's pit (ending at the spill point when the water leaves the raster, "
+                   "spills_into_id -1, or reaches no feature, 0), with share (of the "
+                   "realisations counting the feature), share_se (its Monte Carlo standard "
+                   "error) and unperturbed (the link on the DEM as given)",
     "catchments": "Cells draining to each outlet in at least 50% and at least 90% of "
                   "realisations, one polygon per outlet and level, with its area and the mean "
                   "and 5-95% range of the catchment area over realisations (nested outlets "

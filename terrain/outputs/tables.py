@@ -23,6 +23,7 @@ coordinate     2 / 7      x, y: 0.01 of a projected CRS unit; 7 decimals of a
                           degree (about 1 cm) in a geographic CRS
 area           2          square metres (CRS units squared without a CRS)
 volume         2          cubic metres
+distance       1          metres (a summit's isolation)
 mean_rank      2          a rank averaged over realisations
 id, integer,   as is      identifiers, counts, yes/no flags, names and the run
 flag, text,               parameters a row belongs to (an error level as the
@@ -37,7 +38,7 @@ import pandas as pd
 __all__ = ["DECIMALS", "AS_IS", "GEOGRAPHIC_COORDINATE_DECIMALS", "rounded"]
 
 DECIMALS = {"vertical": 2, "credit": 4, "probability": 4, "coordinate": 2, "area": 2,
-            "volume": 2, "mean_rank": 2}
+            "volume": 2, "mean_rank": 2, "distance": 1}
 AS_IS = frozenset({"id", "integer", "flag", "text", "parameter"})
 GEOGRAPHIC_COORDINATE_DECIMALS = 7  # 1e-7 degree of latitude is about 1.1 cm
 

@@ -43,6 +43,7 @@ from ..pairlog import LOG_FIELDS
 from ..summary.catchments import FRAME_COLUMN_KINDS
 from ..summary.features import COLUMN_KINDS
 from ..summary.ranks import RANK_COLUMN_KINDS
+from ..summary.relations import LINK_COLUMN_KINDS, LINK_CSV
 from ..version import __version__
 from . import plot
 from .caution import CAUTION
@@ -257,7 +258,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     kind = result.job.kind
     created = _now()
     clock = _Clock()
-    gpkg, csv, ranks = (f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv")))
+    gpkg, csv, ranks = [f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv"))][:3]
 
     def files():
         with clock("layers"):
@@ -267,6 +268,8 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
             write_csv(out / csv, rounded(features.table, COLUMN_KINDS,
                                          geographic=result.dem.geographic))
             write_csv(out / ranks, rounded(features.ranks, RANK_COLUMN_KINDS))
+            if features.links is not None:  # relations: parents.csv / spills.csv
+                write_csv(out / LINK_CSV[kind], rounded(features.links, LINK_COLUMN_KINDS))
 
     with _Beside(files), clock("figures"), plain_text():  # files written while figures are drawn
         figures = {"quicklook.png": plot.feature_map(result, features),

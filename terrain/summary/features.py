@@ -50,6 +50,7 @@ from .ranks import (
     top_shares,
     two_clusters,
 )
+from .relations import LINK_TABLE, RELATION_COLUMN_KINDS, RELATION_COLUMNS, link_frame, relations_of
 
 __all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "RANK_LAYER", "TOP_SHARE", "PONDED_SHARE",
            "RANKS", "FeatureSummary", "FigureMatrix", "figure_matrix", "rank_shares",
@@ -96,7 +97,11 @@ COLUMN_KINDS = {
     "top_area_m2": "area", "ponded_area_m2": "area", "ponded_area_mean_m2": "area",
     "ponded_area_p05_m2": "area", "ponded_area_p95_m2": "area", "volume_m3": "volume",
     "volume_mean_m3": "volume", "volume_p05_m3": "volume", "volume_p95_m3": "volume",
+    **RELATION_COLUMN_KINDS,  # relations: parent, spills into, isolation
 }
+# relations: parent, spills into, isolation (extent_is_pit_cell, added last, stays last)
+COLUMNS = {k: tuple(c for c in v if c != "extent_is_pit_cell") + RELATION_COLUMNS[k]
+           + tuple(c for c in v if c == "extent_is_pit_cell") for k, v in COLUMNS.items()}
 LAYER_NAMES = {"peaks": ("summits", "summit_points", "summit_regions", "cols"),
                "depressions": ("pits", "pit_points", "pit_regions", "spill_points")}
 _DEATH = {"peaks": "col", "depressions": "spill"}
@@ -178,6 +183,7 @@ class FeatureSummary:
     rank_share: pd.DataFrame | None = None
     ranks: pd.DataFrame | None = None
     clusters: pd.DataFrame | None = None
+    links: pd.DataFrame | None = None  # relations: parents / spill links in long form
 
 
 def _mc(share: np.ndarray, n: int) -> np.ndarray:
@@ -432,6 +438,8 @@ def summarise_features(result) -> FeatureSummary:
     rows = np.flatnonzero((p_above >= job.min_presence) | (p.sum(axis=1) > 0))
     data = _table(result, fm, rows, ranks)
     ids = data["feature_id"]
+    rel_columns, links = relations_of(result, ids)  # relations (terrain.summary.relations)
+    data.update(rel_columns)
     bimodal, split = two_clusters(fm.figure[:, rows])
     data["bimodal"] = bimodal
     data["group"] = _groups(result, ids, data["unperturbed"], split, p[rows])
@@ -457,6 +465,8 @@ def summarise_features(result) -> FeatureSummary:
     frames = _frames(dem, job, table, tops, table["feature_id"].map(share).to_numpy(float))
     long = rank_table(fm.ids, p, none, result.n)
     frames[RANK_LAYER] = _attribute_table(long)
+    if links is not None:  # relations
+        frames[LINK_TABLE[job.kind]] = link_frame(dem, job.regions, links, job.kind)
     kmax = max(p.shape[1], 1)
     ranked = pd.DataFrame(np.pad(p, ((0, 0), (0, kmax - p.shape[1])))[
         np.searchsorted(fm.ids, table["feature_id"].to_numpy())] if fm.ids.size else
@@ -464,7 +474,8 @@ def summarise_features(result) -> FeatureSummary:
                                                      name="feature_id"),
         columns=range(1, kmax + 1))
     return FeatureSummary(job.regions, table, frames, top, settings, ranked, long,
-                          _clusters(fm, rows, bimodal, split))
+                          _clusters(fm, rows, bimodal, split),
+                          None if links is None else links.drop(columns="death"))
 
 
 def _attribute_table(frame: pd.DataFrame):

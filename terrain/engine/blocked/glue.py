@@ -12,6 +12,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from ...errors import OptionError
+from .. import elders  # relations: the elder of each pair
 from ..persistence import Pairs
 from . import kernels as _k
 from .local import persistence_of_keys
@@ -209,7 +210,8 @@ def _root_levels(summaries, off, forest: Forest, cells: np.ndarray):
 def empty_pairs(kind: str) -> Pairs:
     e = np.empty(0, np.int64)
     f = np.empty(0, np.float64)
-    return Pairs(kind, e, e.copy(), f, f.copy(), f.copy(), np.empty(0, np.bool_))
+    return Pairs(kind, e, e.copy(), f, f.copy(), f.copy(), np.empty(0, np.bool_),
+                 e.copy())  # relations: elder
 
 
 def collect(summaries: Sequence[BlockSummary], resolution: Resolution, *,
@@ -227,11 +229,13 @@ def collect(summaries: Sequence[BlockSummary], resolution: Resolution, *,
     eb = cat([s.ess_birth for s in summaries] + [resolution.ess_birth])
     ebk = cat([s.ess_key for s in summaries] + [resolution.ess_key])
     ee = cat([s.ess_edge for s in summaries] + [resolution.ess_edge])
+    keep = None
     if min_persistence > 0:
         keep = persistence_of_keys(kind, pbk, pdk) >= min_persistence
         pb, pd, pbk, pdk, pe = pb[keep], pd[keep], pbk[keep], pdk[keep], pe[keep]
+    pel = elders.collected_elders(summaries, resolution, pb, pd, pdk, keep)  # relations
     o = np.lexsort((pb, pbk, pd, pdk))
-    pb, pd, pbk, pdk, pe = pb[o], pd[o], pbk[o], pdk[o], pe[o]
+    pb, pd, pbk, pdk, pe, pel = pb[o], pd[o], pbk[o], pdk[o], pe[o], pel[o]
     o = np.lexsort((eb, ebk))
     eb, ebk, ee = eb[o], ebk[o], ee[o]
     bv, dv = cat([pbk, ebk]), pdk
@@ -241,4 +245,4 @@ def collect(summaries: Sequence[BlockSummary], resolution: Resolution, *,
                  cat([pd, np.full(eb.size, -1, np.int64)]).astype(np.int64),
                  bv.astype(np.float64), cat([dv, np.full(eb.size, np.nan)]).astype(np.float64),
                  cat([np.abs(bv[:pb.size] - dv), np.full(eb.size, np.inf)]),
-                 cat([pe, ee]).astype(np.bool_))
+                 cat([pe, ee]).astype(np.bool_), cat([pel, np.full(eb.size, -1, np.int64)]))

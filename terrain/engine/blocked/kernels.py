@@ -223,6 +223,8 @@ def local_merge(zk, flags, minc, emin, term, ea, eb, ew):
     pb = np.empty(nb, np.int64)
     pd = np.empty(nb, np.int64)
     pe = np.empty(nb, np.bool_)
+    pel = np.empty(nb, np.int64)  # relations: each final pair's elder (see below)
+    g0 = 0
     ly = np.empty(nb + 1, np.int64)
     lo = np.empty(nb + 1, np.int64)
     lw = np.empty(nb + 1, np.int64)
@@ -230,6 +232,9 @@ def local_merge(zk, flags, minc, emin, term, ea, eb, ew):
     ne_h = 0
     nlog = 0
     for t in range(ew.size):
+        if t > 0 and ew[t] != ew[t - 1]:
+            _elders(parent, tt, node, minc, out_id, find(parent, ea[t - 1]), pel, g0, npairs)
+            g0 = npairs
         w = ew[t]
         ra = find(parent, ea[t])
         rb = find(parent, eb[t])
@@ -280,6 +285,8 @@ def local_merge(zk, flags, minc, emin, term, ea, eb, ew):
         lo[nlog] = old
         lw[nlog] = w
         nlog += 1
+    if ew.size:
+        _elders(parent, tt, node, minc, out_id, find(parent, ea[ew.size - 1]), pel, g0, npairs)
     ness = 0
     for b in range(nb):
         if parent[b] == b and tt[b] == NOTERM:
@@ -293,7 +300,37 @@ def local_merge(zk, flags, minc, emin, term, ea, eb, ew):
             ese[q] = eff[b] >= 0
             q += 1
     return (pb[:npairs], pd[:npairs], pe[:npairs], esb, ese, hvb[:nv], hve[:nv],
-            hu[:ne_h], hv[:ne_h], hw[:ne_h], tt, node, ly[:nlog], lo[:nlog], lw[:nlog])
+            hu[:ne_h], hv[:ne_h], hw[:ne_h], tt, node, ly[:nlog], lo[:nlog], lw[:nlog],
+            pel[:npairs])
+
+
+@njit(cache=True)
+def _elders(parent, tt, node, minc, out_id, root, pel, g0, g1):
+    """Relations: the elder of final pairs ``g0:g1`` (one death cell), from
+    the root of the component holding it once every local merge there is
+    made: its birth cell (a closed component), -1 (the outlet), or
+    ``-2 - vertex`` when the component reaches another block (the glued
+    merge forest resolves it, :func:`elder_roots`)."""
+    if root == out_id:
+        e = -1
+    elif tt[root] == NOTERM:
+        e = minc[root]
+    else:
+        e = -2 - node[root]
+    for q in range(g0, g1):
+        pel[q] = e
+
+
+@njit(cache=True)
+def elder_roots(up, mcell, mkey, v, wk, wc, out_id, vcell, out):
+    """Relations: per entry the birth cell of vertex ``v[q]``'s glued
+    component once every merge at cell (``wk[q]``, ``wc[q]``) is made (-1:
+    the outlet): the merge forest climbed while merges come at or before it."""
+    for q in range(v.size):
+        x = v[q]
+        while up[x] >= 0 and (mkey[x] < wk[q] or (mkey[x] == wk[q] and mcell[x] <= wc[q])):
+            x = up[x]
+        out[q] = -1 if x == out_id else vcell[x]
 
 
 @njit(cache=True)

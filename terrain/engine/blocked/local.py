@@ -14,6 +14,7 @@ from typing import NamedTuple
 import numpy as np
 
 from ...errors import OptionError
+from .. import elders  # relations: the elder of each pair
 from ..basins import descend, resolve
 from ..grid import forward_offsets, offsets
 from ..persistence import KINDS
@@ -63,6 +64,7 @@ class Merged(NamedTuple):
     ly: np.ndarray
     lo: np.ndarray
     lw: np.ndarray
+    pel: np.ndarray  # relations: elder of each final pair (local encoding, see local_merge)
 
 
 def check_kind(kind: str, connectivity: int) -> None:
@@ -343,6 +345,7 @@ def _local(block_values, window, shape, kind, connectivity, edge_outlet, min_per
     if merge_level is not None:
         keep &= _maybe_regions(bk, dk, merge_level, f32)
     pb, pd, pe, bk, dk = pb[keep], pd[keep], pe[keep], bk[keep], dk[keep]
+    elder = elders.local_elders(m.pel[keep], blk, minc[m.hvb])  # relations
     vertex_of_basin = np.full(minc.size, -1, np.int64)
     vertex_of_basin[hvb] = np.arange(hvb.size)
     vb = minc[hvb]
@@ -364,7 +367,7 @@ def _local(block_values, window, shape, kind, connectivity, edge_outlet, min_per
         to_global(vb, blk), zk[vb].astype(np.float64), to_global(hve, blk), effk,
         m.hu.astype(np.int32), m.hv.astype(np.int32), to_global(m.hw, blk),
         zk[m.hw].astype(np.float64), (blk.flags[m.hw] & _k.EDGE) != 0,
-        strips, bool(f32), roots)
+        strips, bool(f32), roots, elder)
     return summary, inputs
 
 

@@ -89,6 +89,7 @@ class BlockSummary:
     strips: tuple[Strip, Strip, Strip, Strip]
     float32: bool = True
     roots: Roots | None = None
+    elder: np.ndarray | None = None  # relations: per final pair, see terrain.engine.elders
 
     def boundary_nbytes(self) -> int:
         """Bytes of the boundary part (what :func:`glue` reads)."""

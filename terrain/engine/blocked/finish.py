@@ -58,7 +58,7 @@ def finish(block_values: np.ndarray, window: Window | Sequence[int], resolution:
 
 def ring_values(resolution: Resolution, window: Window, field: str) -> np.ndarray:
     """Per position of ``window``'s halo ring (see
-    :func:`~terrain.engine.blocked_kernels.ring_index`), the value at that
+    :func:`~terrain.engine.blocked.kernels.ring_index`), the value at that
     cell read from the facing strip of the neighbouring block: "vertex"
     (global reduced-graph vertex), "term" (the raster minimum its steepest
     descent ends at), "level" or "depth" (that minimum's fill level and

@@ -12,8 +12,8 @@ from collections.abc import Sequence
 import numpy as np
 
 from ...errors import OptionError
-from .. import elders  # relations: the elder of each pair
 from ..persistence import Pairs
+from . import elders  # relations: the elder of each pair
 from . import kernels as _k
 from .local import persistence_of_keys
 from .summaries import BlockSummary, Boundary, Forest, Minima, Resolution

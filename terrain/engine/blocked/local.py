@@ -14,10 +14,10 @@ from typing import NamedTuple
 import numpy as np
 
 from ...errors import OptionError
-from .. import elders  # relations: the elder of each pair
 from ..basins import descend, resolve
 from ..grid import forward_offsets, offsets
 from ..persistence import KINDS
+from . import elders  # relations: the elder of each pair
 from . import kernels as _k
 from .summaries import BlockSummary, LevelInputs, Roots, Strip
 from .windows import Window, as_float, halo
@@ -167,7 +167,7 @@ def strip_cells(window: Window, shape: tuple[int, int]) -> list[np.ndarray]:
 
 def ring_cells(window: Window, shape: tuple[int, int]) -> np.ndarray:
     """Global cell at each position of a block's halo ring (see
-    :func:`~terrain.engine.blocked_kernels.ring_index`), -1 off the raster."""
+    :func:`~terrain.engine.blocked.kernels.ring_index`), -1 off the raster."""
     r0, r1, c0, c1 = window
     across = np.arange(c0 - 1, c1 + 1)
     down = np.arange(r0, r1)
@@ -198,7 +198,7 @@ def descend_block(blk: Block, kind: str, connectivity: int,
     """Steepest descent of a block's cells on the whole raster (neighbours
     read from the halo), resolved inside the block: per cell the code of
     where its chain ends and per exit its halo ring position (see
-    :func:`~terrain.engine.blocked_kernels.global_descend`). 4 bytes per
+    :func:`~terrain.engine.blocked.kernels.global_descend`). 4 bytes per
     cell. ``pointer``, optional: the in-block pointers of
     :func:`local_engine` (``pointers=True``), taken over as the codes
     instead of descending again."""

@@ -40,7 +40,7 @@ class Roots:
     reached the block boundary (global cell ``tc``, -1: from birth, -2:
     never; key ``tk``); the reduced-graph vertex it then joined (``x``,
     block-local id; -1: the outlet, -2: none); and ``dk``, the deepest key
-    of its component below ``tk`` (:func:`~terrain.engine.blocked_kernels.depression_roots`).
+    of its component below ``tk`` (:func:`~terrain.engine.blocked.kernels.depression_roots`).
     What the glue needs to give these minima their fill level and
     depression depth. Sorted by ``cell``."""
 
@@ -89,7 +89,7 @@ class BlockSummary:
     strips: tuple[Strip, Strip, Strip, Strip]
     float32: bool = True
     roots: Roots | None = None
-    elder: np.ndarray | None = None  # relations: per final pair, see terrain.engine.elders
+    elder: np.ndarray | None = None  # relations: per final pair, see terrain.engine.blocked.elders
 
     def boundary_nbytes(self) -> int:
         """Bytes of the boundary part (what :func:`glue` reads)."""
@@ -114,7 +114,7 @@ class Forest:
     and key of that merge (``mcell``, ``mkey``), and the cell and key at
     which its component joins the outlet (``jcell``, -1: never; ``jkey``).
     A vertex's component just before any cell is found by climbing
-    (:func:`~terrain.engine.blocked_kernels.forest_root`). 48 bytes per
+    (:func:`~terrain.engine.blocked.kernels.forest_root`). 48 bytes per
     vertex."""
 
     vcell: np.ndarray
@@ -207,8 +207,8 @@ class LevelInputs:
     below ``tk.size`` for the ``q``-th raster minimum of the block (cell
     order), row ``tk.size + e`` when it leaves the block at exit ``e``
     (halo ring position ``ex_ring[e]``, see
-    :func:`~terrain.engine.blocked_kernels.ring_index`); -1 on nodata. Per
-    raster minimum, as :func:`~terrain.engine.blocked_kernels.levels_and_depths`
+    :func:`~terrain.engine.blocked.kernels.ring_index`); -1 on nodata. Per
+    raster minimum, as :func:`~terrain.engine.blocked.kernels.levels_and_depths`
     reads them: ``tk``/``tc`` (key and global cell of the time its component
     first reached the block boundary; -1 from birth, -2 never), ``x``
     (block-local reduced-graph vertex then joined; -1 the outlet, -2 none)

@@ -5,7 +5,7 @@ birth cell of the component holding its death cell once every merge at that
 cell is made; -1 for the outlet. A block's final pair knows it locally when
 that component is closed in the block (its birth cell) or is the outlet;
 when the component reaches another block the block hands up its
-reduced-graph vertex (``-2 - its birth cell``, :func:`~terrain.engine.blocked_kernels.local_merge`),
+reduced-graph vertex (``-2 - its birth cell``, :func:`~terrain.engine.blocked.kernels.local_merge`),
 and :func:`collected_elders` climbs the glued merge forest from it to the
 root once every merge at the death cell is made. The glue's own pairs climb
 from their own vertex. Memory: 8 bytes per pair; no pass over cells.
@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from .blocked import kernels as _k
+from . import kernels as _k
 
 __all__ = ["local_elders", "collected_elders"]
 

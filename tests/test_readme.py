@@ -80,18 +80,27 @@ def _start(code: str, cwd: Path) -> subprocess.Popen:
                             stderr=subprocess.PIPE, text=True, start_new_session=True)
 
 
+def _allowed(seconds: float) -> float:
+    """``seconds`` on an idle machine, stretched by how oversubscribed its cores are
+    now (load average per core, when above 1): the promise is about cairn, not about
+    other programs sharing the CPU."""
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else 0.0
+    return seconds * max(1.0, load / (os.cpu_count() or 1))
+
+
 def test_missing_main_guard_fails_fast_with_the_cure(workdir):
-    # worker processes re-import the script; the run must end within 10 s, say what to
-    # add, and leave no process behind
+    # worker processes re-import the script; the run must end within 10 s (on a machine
+    # not shared with other work), say what to add, and leave no process behind
+    limit = _allowed(10)
     t = time.monotonic()
     p = _start(_unguarded(), workdir)
     try:
-        _, err = p.communicate(timeout=10)
+        _, err = p.communicate(timeout=limit)
     finally:
         with contextlib.suppress(ProcessLookupError):
             os.killpg(p.pid, signal.SIGKILL)
     assert p.returncode != 0
-    assert time.monotonic() - t < 10
+    assert time.monotonic() - t < limit
     last = err.strip().splitlines()[-1]
     assert "WorkerError" in last and '__name__ == "__main__"' in last, err[-2000:]
     assert _group_gone(p.pid), "a worker process outlived the script"
@@ -107,7 +116,7 @@ def test_sigterm_ends_a_script_at_any_moment(workdir, guarded, after):
     with contextlib.suppress(ProcessLookupError):
         os.killpg(p.pid, signal.SIGTERM) if p.poll() is None else None
     try:
-        p.communicate(timeout=10)
+        p.communicate(timeout=_allowed(10))
     except subprocess.TimeoutExpired:
         os.killpg(p.pid, signal.SIGKILL)
         pytest.fail(f"SIGTERM after {after} s did not end the script within 10 s")

@@ -38,9 +38,10 @@ def dem_tif(tmp_path):
 
 @pytest.mark.parametrize("cmd,layers,gpkg,csv,lyr", [
     ("peaks", ["summit_credit", "col_credit", "summit_probability"], "peaks.gpkg", "summits.csv",
-     ["summits", "summit_points", "summit_regions", "cols", "ranks"]),
+     ["summits", "summit_points", "summit_regions", "cols", "ranks", "parents"]),
     ("depressions", ["pit_credit", "spill_credit", "pit_probability", "ponding_probability"],
-     "depressions.gpkg", "pits.csv", ["pits", "pit_points", "pit_regions", "spill_points", "ranks"]),
+     "depressions.gpkg", "pits.csv", ["pits", "pit_points", "pit_regions", "spill_points", "ranks",
+                                     "spill_links"]),
 ])
 def test_outputs_read_back(cairn, dem_tif, tmp_path, cmd, layers, gpkg, csv, lyr):
     out = tmp_path / "out"

@@ -6,6 +6,7 @@ scipy.ndimage.label (connected components) and brute force.
 """
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import ndimage
 from scipy.stats import norm
@@ -101,19 +102,13 @@ def test_two_crown_massif_parent_share_is_the_chance_of_not_holding_the_top():
     assert abs(t.loc[1, "parent_share"] - (1 - p_high)) < 4 * se
     assert t.loc[2, "parent_share_se"] == pytest.approx(
         np.sqrt(t.loc[2, "parent_share"] * (1 - t.loc[2, "parent_share"]) / res.n))
-    assert t.loc[2, "unperturbed_parent_id"] == 1 and t.loc[1, "unperturbed_parent_id"] is pd_na()
+    assert t.loc[2, "unperturbed_parent_id"] == 1 and t.loc[1, "unperturbed_parent_id"] is pd.NA
     # the long table: each crown's rows carry all its realisations (no parent: the top)
     links = fs.links
     assert np.allclose(links.groupby("feature_id")["share"].sum(), 1.0)
     none = links[links["parent_id"].isna()].set_index("feature_id")["share"]
     assert none.loc[1] + none.loc[2] == pytest.approx(1.0)
     assert "parents" in fs.frames
-
-
-def pd_na():
-    import pandas as pd
-
-    return pd.NA
 
 
 # --------------------------------------------------------------------------- spills

@@ -54,7 +54,7 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "SCRATCH_PREFIX", "hold_checkpoint", "OUTPUT_NAME", "csv_cell", "csv_safe",
            "FORMULA_START", "scratch_parent", "free_bytes", "check_scratch_space",
            "is_count_store", "check_count_store_path", "COUNTS_TAG", "SCRATCH_LOCK",
-           "resolves_into", "replaced_by", "kernel_cache_folder"]
+           "resolves_into", "replaced_by", "kernel_cache_folder", "replaced_beside_checkpoint"]
 
 
 # Common nodata values of DEM products and GIS packages that files often hold
@@ -1700,6 +1700,21 @@ def replaced_by(path: str | os.PathLike, outdir: str | os.PathLike, names, patte
         first = real.relative_to(top).parts[0]
         if first.startswith(STAGING_PREFIX):
             return first
+    return None
+
+
+def replaced_beside_checkpoint(path: str | os.PathLike, checkpoint: str | os.PathLike) -> str | None:
+    """What keeping ``checkpoint`` would do to ``path`` (links resolved): the name of
+    the checkpoint's lock file (:func:`hold_checkpoint`) or of a temporary file of
+    its writes that :func:`check_file_folder` removes -- None when it stays."""
+    c = Path(checkpoint)
+    real, folder = Path(os.path.realpath(path)), Path(os.path.realpath(c.parent))
+    if real.parent != folder:
+        return None
+    if real.name == f".{c.name}.lock":
+        return real.name
+    if real.name.startswith(f".{c.name}.") and _PART.match(real.name):
+        return real.name
     return None
 
 

@@ -705,11 +705,21 @@ def _make_outdir(out: Path) -> bool:
 
 
 def _refuse_clash(out: Path, names: list[str], overwrite: bool) -> None:
+    _refuse_folders(out, names)
     clash = [n for n in names if (out / n).exists()]
     if clash and not overwrite:
         more = f" and {len(clash) - 3} more" if len(clash) > 3 else ""
         raise OutputError(f"{out}: would overwrite {', '.join(clash[:3])}{more}; "
                           "pass {overwrite} to replace them", "overwrite")
+
+
+def _refuse_folders(out: Path, names) -> None:
+    """Refuse a folder (not a link) at a name the run publishes a file under: a rename
+    onto it fails, which would leave the set half published."""
+    for n in names:
+        if os.path.isdir(out / n) and not os.path.islink(out / n):
+            raise OutputError(f"{out / n}: is a folder where the run writes a file; move it or "
+                              "choose another output folder")
 
 
 # -- one run per output folder -------------------------------------------------------
@@ -968,6 +978,7 @@ def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ())
 
 def _publish(stage: Path, out: Path, replaces) -> None:
     names = sorted(p.name for p in stage.iterdir())
+    _refuse_folders(out, names)  # before anything moves
     try:
         _sync_dir(stage)
         with _signals_held():

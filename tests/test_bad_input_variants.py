@@ -10,12 +10,22 @@ from __future__ import annotations
 import pytest
 
 from .conftest import smooth_terrain, write_tif
-from .test_bad_input import RUN, no_traceback, one_line_error, outputs_of, outside, tree  # noqa: F401
+from .test_bad_input import RUN, no_traceback, one_line_error, outputs_of, tree  # noqa: F401
 
 
 @pytest.fixture
 def dem(tmp_path):
     return write_tif(tmp_path / "dem.tif", smooth_terrain((40, 40), seed=1))
+
+
+@pytest.fixture
+def outside(tmp_path):
+    """A folder beside the output folder holding a user's files (the victims)."""
+    v = tmp_path / "outside"
+    v.mkdir()
+    (v / "victim.txt").write_text("the user's own text\n")
+    (v / "notes.csv").write_text("a,b\n1,2\n")
+    return v
 
 
 # -- 3. inputs are sacred: the files kept beside a checkpoint ------------------------------------------
@@ -46,3 +56,39 @@ def test_a_checkpoint_where_the_tidy_up_or_publication_would_remove_it(cairn, de
                          *(("--resume", "-n", "6") if resume else ()))
     one_line_error(code, err, str(ck), "--checkpoint")
     assert tree(tmp_path) == before  # the checkpoint is still there, nothing was tidied
+
+
+# -- a set is published whole or not at all ------------------------------------------------------------
+def test_a_folder_at_an_output_name_is_refused_before_computing(cairn, dem, tmp_path, outside):
+    # a rename onto a folder fails: found when the set was half moved in, the folder held a mix
+    out = tmp_path / "o"
+    (out / "run.json").mkdir(parents=True)
+    (out / "run.json" / "mine.txt").write_text("mine\n")
+    (out / "summits.csv").symlink_to(outside / "notes.csv")  # a link is replaced, not followed
+    before = tree(tmp_path)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN, "--overwrite")
+    one_line_error(code, err, str(out / "run.json"), "is a folder where the run writes a file")
+    assert tree(tmp_path) == before
+
+
+@pytest.mark.slow
+def test_a_folder_appearing_at_an_output_name_stops_the_publication_before_anything_moves(
+        cairn, dem, tmp_path, monkeypatch):
+    import terrain.outputs.writer as writer
+
+    out = tmp_path / "o"
+    assert cairn("peaks", dem, "-o", out, *RUN)[0] == 0
+    first = tree(out)
+    real = writer.write_credit_run
+
+    def plant(out_, *a, **k):  # a folder appears at an output name while the run computes
+        (out_ / "summits.csv").unlink()
+        (out_ / "summits.csv").mkdir()
+        return real(out_, *a, **k)
+
+    monkeypatch.setattr("cairn_cli.attribution.write_credit_run", plant)
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN, "--seed", "7", "--overwrite")
+    one_line_error(code, err, "summits.csv", "is a folder where the run writes a file")
+    after = tree(out)
+    assert after.pop("summits.csv") == ("dir", None) and first.pop("summits.csv")
+    assert after == first  # the earlier set, no file of the new one moved in

@@ -929,25 +929,47 @@ def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
     return done
 
 
+_MARKER_BYTES = 16 * 2**20  # a publication marker lists file names: larger is not cairn's
+
+
 def _complete_publication(stage: Path, out: Path) -> list[str]:
-    """Move the files a cut-short publication listed from ``stage`` into ``out``."""
+    """Move the files a cut-short publication listed from ``stage`` into ``out``.
+
+    Raises
+    ------
+    OutputError
+        A file cannot be moved into place (a GeoPackage open in another
+        program, a folder at its name): nothing is moved and ``stage`` is
+        kept, so the folder never holds a mix of two sets.
+    """
     marker = stage / PUBLISHING
     try:
-        if not stat.S_ISREG(os.lstat(marker).st_mode):
+        st = os.lstat(marker)
+        if not stat.S_ISREG(st.st_mode) or st.st_size > _MARKER_BYTES:
             return []
         names = json.loads(marker.read_text())
-    except (OSError, ValueError):
+    except (OSError, ValueError, RecursionError):  # RecursionError: a deeply nested marker
         return []
-    done = []
+    todo = []
     for name in names if isinstance(names, list) else ():
-        if not isinstance(name, str) or not OUTPUT_NAME.match(name):
+        if not isinstance(name, str) or not OUTPUT_NAME.match(name) or name in todo:
             continue  # not a name cairn publishes: never followed
         with contextlib.suppress(OSError):
             st = os.lstat(stage / name)
             if stat.S_ISREG(st.st_mode) and st.st_nlink == 1 and _own(st):
-                _replace_into(stage / name, out / name)
-                done.append(name)
-    return done
+                todo.append(name)
+    try:
+        _refuse_folders(out, todo)
+        for name in todo:  # before anything moves: a GeoPackage open elsewhere stops it
+            if name.lower().endswith(".gpkg"):
+                _release_sqlite(out / name)
+        for name in todo:
+            _replace_into(stage / name, out / name)
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot complete the publication a killed run began "
+                          f"({_short(exc)}); its files are kept in {stage.name} until a run "
+                          "can") from None
+    return todo
 
 
 @contextlib.contextmanager

@@ -7,6 +7,10 @@ code, the one line, what is left on disk and that nothing outside the output fol
 
 from __future__ import annotations
 
+import json
+import subprocess
+import sys
+
 import pytest
 
 from .conftest import smooth_terrain, write_tif
@@ -92,3 +96,74 @@ def test_a_folder_appearing_at_an_output_name_stops_the_publication_before_anyth
     after = tree(out)
     assert after.pop("summits.csv") == ("dir", None) and first.pop("summits.csv")
     assert after == first  # the earlier set, no file of the new one moved in
+
+
+_HOLD_WAL = """
+import sqlite3, sys, time
+con = sqlite3.connect(sys.argv[1], isolation_level=None)
+con.execute("PRAGMA journal_mode=WAL")
+con.execute("BEGIN")
+con.execute("SELECT count(*) FROM sqlite_master").fetchall()
+print("held", flush=True)
+time.sleep(120)
+"""
+
+
+def _sqlite_file(path, text):
+    import sqlite3
+
+    con = sqlite3.connect(path)
+    con.execute("CREATE TABLE t (v TEXT)")
+    con.execute("INSERT INTO t VALUES (?)", (text,))
+    con.commit()
+    con.close()
+
+
+def test_a_cut_short_publication_is_completed_whole_or_kept(tmp_path):
+    # a killed run's publication is completed by the next run; a GeoPackage of it held open in
+    # a GIS used to stop only that file, and the staging folder went: a mix of two sets for good
+    from terrain.errors import OutputError
+    from terrain.io import clean_leftovers
+
+    out = tmp_path / "o"
+    stage = out / ".cairn-staging-cut"
+    stage.mkdir(parents=True)
+    _sqlite_file(out / "peaks.gpkg", "old")
+    _sqlite_file(stage / "peaks.gpkg", "new")
+    (out / "summits.csv").write_text("old\n")
+    (stage / "summits.csv").write_text("new\n")
+    (stage / ".publishing.json").write_text(json.dumps(["peaks.gpkg", "summits.csv"]))
+    holder = subprocess.Popen([sys.executable, "-c", _HOLD_WAL, str(out / "peaks.gpkg")],
+                              stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        with pytest.raises(OutputError, match="cannot complete the publication.*kept in "
+                                              ".cairn-staging-cut"):
+            clean_leftovers(out)
+        assert (out / "summits.csv").read_text() == "old\n" and stage.is_dir()  # nothing moved
+    finally:
+        holder.kill()
+        holder.wait()
+    assert "peaks.gpkg" in clean_leftovers(out)  # once the GIS is gone: completed, whole
+    assert (out / "summits.csv").read_text() == "new\n" and not stage.exists()
+    import sqlite3
+
+    con = sqlite3.connect(out / "peaks.gpkg")
+    assert con.execute("SELECT v FROM t").fetchall() == [("new",)]
+    con.close()
+
+
+@pytest.mark.parametrize("marker", [b"[" * 100000 + b"]" * 100000, b'["run.json\xff"]',
+                                    json.dumps(["run.json"]).encode("utf-16"), b"[" + b"9" * 5000 + b"]",
+                                    json.dumps(["run.json", "run.json"]).encode(),
+                                    json.dumps([{"n": 1}, ["x"], "run.json"]).encode()])
+def test_a_publication_marker_that_cannot_be_read_is_left_unfollowed(tmp_path, marker):
+    from terrain.io import clean_leftovers
+
+    out = tmp_path / "o"
+    stage = out / ".cairn-staging-x"
+    stage.mkdir(parents=True)
+    (stage / ".publishing.json").write_bytes(marker)
+    (stage / "run.json").write_text("{}")
+    clean_leftovers(out)  # no RecursionError from a deeply nested list
+    assert not stage.exists()

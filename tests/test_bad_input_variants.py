@@ -167,3 +167,21 @@ def test_a_publication_marker_that_cannot_be_read_is_left_unfollowed(tmp_path, m
     (stage / "run.json").write_text("{}")
     clean_leftovers(out)  # no RecursionError from a deeply nested list
     assert not stage.exists()
+
+
+# -- 10. the guard counts the kernel: ranges no float grid can hold ------------------------------------
+@pytest.mark.parametrize("cmd,rng", [("peaks", "1e200"), ("peaks", "1e306"), ("depressions", "1e308"),
+                                     ("catchments", "1.7e308"), ("sweep", "1e308")])
+def test_a_range_too_long_for_any_grid_is_one_line(cairn, dem, tmp_path, cmd, rng):
+    # was: OverflowError from sizing the kernel's periodic grid, or minutes searching its FFT length
+    import time
+
+    extra = ("--kind", "peaks", "--rmse", "1,2", "-n", "2", "--workers", "1", "-q") \
+        if cmd == "sweep" else RUN
+    t = time.time()
+    code, _, err = cairn(cmd, dem, "-o", tmp_path / "o", *extra, "--range", rng)
+    no_traceback(err)
+    one_line_error(code, err, "dem.tif", "--range", "longer than the grid's extent (400 m)",
+                   "at most 400 m")
+    assert time.time() - t < 30
+    assert not (tmp_path / "o").exists()

@@ -185,3 +185,27 @@ def test_a_range_too_long_for_any_grid_is_one_line(cairn, dem, tmp_path, cmd, rn
                    "at most 400 m")
     assert time.time() - t < 30
     assert not (tmp_path / "o").exists()
+
+
+# -- 14. outlet ids are text: in the console too -------------------------------------------------------
+@pytest.mark.slow
+def test_outlet_ids_and_folder_names_are_printed_as_text(cairn, tmp_path):
+    # rich read "[/x]" as a closing tag and raised after every realisation (a traceback, exit 1);
+    # an escape sequence in an id reached the terminal (clearing it, retitling it)
+    import csv
+
+    dem = write_tif(tmp_path / "dem.tif", smooth_terrain((40, 40), seed=1))
+    ids = ["[/x]", "[link=http://example.invalid]click[/link]", "\x1b[2J\x1b]0;title\x07:smile:"]
+    with open(tmp_path / "outlets.csv", "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["id", "x", "y"])
+        for k, i in enumerate(ids):
+            w.writerow([i, 500105.0 + 30 * k, 6799705.0 + 15 * k])
+    out = tmp_path / "o[/y]"
+    code, stdout, err = cairn("catchments", dem, "--outlets", tmp_path / "outlets.csv", "-o", out,
+                              "--rmse", "1", "-n", "4", "--workers", "1")
+    assert code == 0, err
+    no_traceback(err)
+    assert "[/x]" in stdout and "[link=http://example" in stdout  # ids are cut at 24
+    assert "\x1b" not in stdout and "\x07" not in stdout and ":smile:" in stdout
+    assert f"outputs in {out}" in stdout

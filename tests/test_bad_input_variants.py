@@ -209,3 +209,36 @@ def test_outlet_ids_and_folder_names_are_printed_as_text(cairn, tmp_path):
     assert "[/x]" in stdout and "[link=http://example" in stdout  # ids are cut at 24
     assert "\x1b" not in stdout and "\x07" not in stdout and ":smile:" in stdout
     assert f"outputs in {out}" in stdout
+
+
+# -- 10. a full TMPDIR in every phase: the workers' shared context of a whole-grid run ----------------
+def test_a_full_disk_under_the_workers_context_names_the_folder():
+    # a whole-grid run with --workers 2 writes its context for the workers under TMPDIR; a full
+    # disk there said only "disk full" (no folder); /dev/full fails every write with ENOSPC
+    import numpy as np
+
+    from terrain.errors import OutputError
+    from terrain.io import save_shared
+
+    with pytest.raises(OutputError, match=r"^/dev: disk full while writing scratch files .*TMPDIR"):
+        save_shared("/dev/full", {"dem": np.zeros((300, 300))})
+
+
+@pytest.mark.slow
+def test_a_full_tmpdir_in_a_whole_grid_run_with_workers_is_one_line(tmp_path):
+    from .test_bad_input import CLI, _can_mount_tmpfs
+
+    if not _can_mount_tmpfs(tmp_path):
+        pytest.skip("cannot mount a tmpfs here (needs unshare -rm)")
+    dem = write_tif(tmp_path / "dem.tif", smooth_terrain((150, 150), seed=1))
+    full = tmp_path / "full"
+    full.mkdir()
+    run = " ".join(f"'{a}'" for a in CLI)
+    script = (f"mount -t tmpfs -o size=8k tmpfs {full} && export TMPDIR={full} && {run} peaks {dem} "
+              f"-o {tmp_path}/o --rmse 1 -n 4 --workers 2 -q; echo rc=$?; ls -A {full}")
+    r = subprocess.run(["unshare", "-rm", "sh", "-c", script], capture_output=True, text=True,
+                       timeout=300)
+    no_traceback(r.stderr)
+    one_line_error(2, r.stderr, str(full), "disk full", "TMPDIR")
+    assert "rc=2" in r.stdout and r.stdout.split("rc=2", 1)[1].split() == [], r.stdout
+    assert not (tmp_path / "o").exists()

@@ -242,3 +242,19 @@ def test_a_full_tmpdir_in_a_whole_grid_run_with_workers_is_one_line(tmp_path):
     one_line_error(2, r.stderr, str(full), "disk full", "TMPDIR")
     assert "rc=2" in r.stdout and r.stdout.split("rc=2", 1)[1].split() == [], r.stdout
     assert not (tmp_path / "o").exists()
+
+
+def test_a_full_disk_under_the_checkpoint_names_the_option(cairn, dem, tmp_path, monkeypatch):
+    # was: "... choose another output folder" for the checkpoint's own folder
+    import errno
+
+    import numpy as np
+
+    def full(*a, **k):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(np, "savez", full)
+    code, _, err = cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--checkpoint", tmp_path / "ck.npz")
+    one_line_error(code, err, f"{tmp_path}: disk full while writing ck.npz", "--checkpoint file")
+    assert not (tmp_path / "o").exists()
+    assert [p.name for p in tmp_path.iterdir() if "ck" in p.name] == []

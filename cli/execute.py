@@ -21,6 +21,7 @@ from terrain.io import (
     read_dem,
     read_header,
     remove_file,
+    replaced_beside_checkpoint,
     replaced_by,
     resolves_into,
     same_file,
@@ -91,6 +92,7 @@ def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None
     cks = [Path(c) for c in (checkpoints if checkpoints is not None else [ck] if ck else [])]
     _inputs_kept(inputs, outdir, names, patterns, cks)
     _distinct(cks, inputs, [Path(outdir) / n for n in names])
+    _checkpoints_kept(cks, outdir, names, patterns)
     ctx = click.get_current_context()
     out = ctx.with_resource(claim_outdir(outdir, names,
                                          overwrite=opts["overwrite"] or opts["resume"]))
@@ -123,6 +125,22 @@ def _inputs_kept(inputs, outdir, names, patterns, checkpoints) -> None:
                 raise OutputError(f"{p}: is an input of this run and lies in {c}.counts, which "
                                   "the run replaces; choose another {checkpoint} file",
                                   "checkpoint")
+            beside = replaced_beside_checkpoint(p, c)
+            if beside is not None:
+                raise OutputError(f"{p}: is an input of this run, and the run would replace it "
+                                  f"({beside}, beside the checkpoint {c}); choose another "
+                                  "{checkpoint} file", "checkpoint")
+
+
+def _checkpoints_kept(checkpoints, outdir, names, patterns) -> None:
+    """A checkpoint may never lie where the output folder's tidy-up or publication
+    removes or replaces files (a staging folder, a temporary name, the lock)."""
+    for c in checkpoints:
+        hit = replaced_by(c, outdir, names, patterns)
+        if hit is not None:
+            raise OutputError(f"{c}: the checkpoint lies where the run would replace or remove "
+                              f"it ({hit} in the output folder {outdir}); choose another "
+                              "{checkpoint} file", "checkpoint")
 
 
 def _distinct(checkpoints, inputs, outputs) -> None:

@@ -21,9 +21,20 @@ ROWS = 20  # rows of the console table, at most (whole groups)
 
 
 def _console():
+    """The console the tables go to; text from users' files (outlet ids, folder names) is
+    printed as it is, never read as rich markup or emoji codes (``[/x]`` would raise)."""
     from rich.console import Console
 
-    return Console(file=sys.stdout, width=120)
+    return Console(file=sys.stdout, width=120, markup=False, emoji=False)
+
+
+#: control characters (C0, DEL, C1) shown as U+FFFD: an id from a user's file never moves
+#: the cursor, clears the screen or retitles the terminal
+_CONTROLS = {c: "\ufffd" for c in [*range(32), *range(127, 160)]}
+
+
+def _plain(text) -> str:
+    return str(text).translate(_CONTROLS)
 
 
 def _bracket(position: int, size: int) -> str:
@@ -104,8 +115,8 @@ def print_summary(table, *, kind: str, units: str, n: int, outdir, caution: str,
             console.print(f"{left} more features rank 1st-10th in at least {RANK_MASS:.0%} of "
                           "realisations; see ranks.csv.")
         console.print(READING, style="italic")
-    console.print(f"{len(table)} features ({settings}); outputs in {outdir}" if settings
-                  else f"{len(table)} features; outputs in {outdir}")
+    console.print(f"{len(table)} features ({settings}); outputs in {_plain(outdir)}" if settings
+                  else f"{len(table)} features; outputs in {_plain(outdir)}")
     console.print(caution, style="italic")
 
 
@@ -128,7 +139,7 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
         c, sc, o = frames["catchments"], frames["subcatchments"], frames["outlets"]
         for i in range(len(c)):
             k = i // len(LEVELS)
-            t.add_row(short(str(c["outlet_id"][i]), 24), f"{c['level'][i]:.0%}",
+            t.add_row(short(_plain(c["outlet_id"][i]), 24), f"{c['level'][i]:.0%}",
                       f"{c['area_m2'][i] / 1e6:.3f}",
                       f"{c['area_mean_m2'][i] / 1e6:.3f} ({c['area_p05_m2'][i] / 1e6:.3f}–"
                       f"{c['area_p95_m2'][i] / 1e6:.3f})", f"{sc['area_m2'][i] / 1e6:.3f}",
@@ -140,7 +151,7 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
     console.print(f"channel in >= 50% of realisations: {share:.1%} of cells "
                   f"(drainage area >= {area_text(result.job.channel_area)}, {result.job.conditioning}, "
                   f"D{result.job.connectivity})")
-    console.print(f"outputs in {outdir}")
+    console.print(f"outputs in {_plain(outdir)}")
     console.print(caution, style="italic")
 
 
@@ -172,7 +183,7 @@ def print_sensitivity(result, *, outdir, caution: str, note: str | None = None,
     sens = result.sensitivity
     console = _console()
     if sens.empty:
-        console.print(f"{note or 'no kernel sensitivity to report'}; outputs in {outdir}")
+        console.print(f"{note or 'no kernel sensitivity to report'}; outputs in {_plain(outdir)}")
         console.print(caution, style="italic")
         return
     t = Table(title="Kernel sensitivity (equal RMSE)", title_justify="left")
@@ -192,5 +203,5 @@ def print_sensitivity(result, *, outdir, caution: str, note: str | None = None,
     credit = "summit" if result.job.kind == "peaks" else "pit"
     console.print(SENSITIVITY_READING.format(credit=f"{credit} credit", unit=unit or "DEM units"),
                   style="italic")
-    console.print(f"outputs in {outdir}")
+    console.print(f"outputs in {_plain(outdir)}")
     console.print(caution, style="italic")

@@ -354,7 +354,8 @@ def field_bytes(grid: RasterHeader | Dem, model: ErrorModel | None) -> tuple[int
     spacing = grid_spacing(grid) if model is not None and model.correlated else None
     if spacing is None:
         return 0, 0, 0
-    return kernel_memory(spacing, model.range_m, grid.shape)
+    check_range(model.range_m, spacing, grid.shape, getattr(grid, "source", "the DEM"))  # first:
+    return kernel_memory(spacing, model.range_m, grid.shape)  # a range past the grid's is refused
 
 
 def check_field(grid: RasterHeader | Dem, model: ErrorModel | None) -> None:

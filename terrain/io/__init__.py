@@ -29,6 +29,7 @@ from .files import (
     file_sha256,
     kernel_cache_folder,
     remove_file,
+    replaced_beside_checkpoint,
     resolves_into,
     same_file,
 )
@@ -95,5 +96,6 @@ __all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings
            "SCRATCH_PREFIX", "hold_checkpoint", "OUTPUT_NAME", "csv_cell", "csv_safe",
            "FORMULA_START", "scratch_parent", "free_bytes", "check_scratch_space",
            "is_count_store", "check_count_store_path", "COUNTS_TAG", "SCRATCH_LOCK",
-           "resolves_into", "replaced_by", "kernel_cache_folder", "WINDOW_WRITE_CACHE",
+           "resolves_into", "replaced_by", "kernel_cache_folder", "replaced_beside_checkpoint",
+           "WINDOW_WRITE_CACHE",
            "scratch_file", "levels_file", "count_store_file", "CHECKPOINT_SUFFIX"]

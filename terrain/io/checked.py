@@ -113,8 +113,11 @@ def write_error(dest: Path, problem, native: str = "") -> BaseException:
     if full:
         if not any(t in why.lower() for t in DISK_FULL_TEXT) and free is not None:
             why = f"{free // 1024} kB left"  # rather than the library's own words
+        checkpoint = dest.suffix.lower() == ".npz"  # only checkpoints are npz archives
         return OutputError(f"{folder}: disk full while writing {dest.name} ({why}); free some "
-                           "space or choose another output folder")
+                           "space or choose another " + ("{checkpoint} file" if checkpoint else
+                                                         "output folder"),
+                           *(("checkpoint",) if checkpoint else ()))
     return OutputError(f"{dest}: could not be written ({why})")
 
 

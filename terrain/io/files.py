@@ -8,6 +8,8 @@ import os
 import tempfile
 from pathlib import Path
 
+from ._base import PART_NAME
+
 
 def available_memory() -> int:
     """MemAvailable from /proc/meminfo (Linux), else physical pages x page size."""
@@ -94,3 +96,19 @@ def file_exists(path: str | os.PathLike) -> bool:
 def remove_file(path: str | os.PathLike) -> None:
     """Remove one file (callers decide it is theirs to remove)."""
     os.unlink(path)
+
+
+def replaced_beside_checkpoint(path: str | os.PathLike, checkpoint: str | os.PathLike) -> str | None:
+    """What keeping ``checkpoint`` would do to ``path`` (links resolved): the name of
+    the checkpoint's lock file (:func:`~terrain.io.publication.hold_checkpoint`) or of
+    a temporary file of its writes that
+    :func:`~terrain.io.publication.check_file_folder` removes -- None when it stays."""
+    c = Path(checkpoint)
+    real, folder = Path(os.path.realpath(path)), Path(os.path.realpath(c.parent))
+    if real.parent != folder:
+        return None
+    if real.name == f".{c.name}.lock":
+        return real.name
+    if real.name.startswith(f".{c.name}.") and PART_NAME.match(real.name):
+        return real.name
+    return None

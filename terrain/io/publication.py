@@ -20,7 +20,16 @@ from ..errors import (
     CheckpointError,
     OutputError,
 )
-from ._base import LOCK_NAME, NOFOLLOW, PART_NAME, PUBLISHING, STAGING_PREFIX, owned, sync_dir
+from ._base import (
+    LOCK_NAME,
+    NOFOLLOW,
+    PART_NAME,
+    PUBLISHING,
+    STAGING_PREFIX,
+    owned,
+    short,
+    sync_dir,
+)
 from .checked import release_sqlite, replace_into, write_error
 from .files import resolves_into
 
@@ -58,11 +67,21 @@ def _make_outdir(out: Path) -> bool:
 
 
 def _refuse_clash(out: Path, names: list[str], overwrite: bool) -> None:
+    _refuse_folders(out, names)
     clash = [n for n in names if (out / n).exists()]
     if clash and not overwrite:
         more = f" and {len(clash) - 3} more" if len(clash) > 3 else ""
         raise OutputError(f"{out}: would overwrite {', '.join(clash[:3])}{more}; "
                           "pass {overwrite} to replace them", "overwrite")
+
+
+def _refuse_folders(out: Path, names) -> None:
+    """Refuse a folder (not a link) at a name the run publishes a file under: a rename
+    onto it fails, which would leave the set half published."""
+    for n in names:
+        if os.path.isdir(out / n) and not os.path.islink(out / n):
+            raise OutputError(f"{out / n}: is a folder where the run writes a file; move it or "
+                              "choose another output folder")
 
 
 #: what a file cairn publishes may be called: a plain name (no folder, no leading dot) with
@@ -263,25 +282,47 @@ def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
     return done
 
 
+_MARKER_BYTES = 16 * 2**20  # a publication marker lists file names: larger is not cairn's
+
+
 def _complete_publication(stage: Path, out: Path) -> list[str]:
-    """Move the files a cut-short publication listed from ``stage`` into ``out``."""
+    """Move the files a cut-short publication listed from ``stage`` into ``out``.
+
+    Raises
+    ------
+    OutputError
+        A file cannot be moved into place (a GeoPackage open in another
+        program, a folder at its name): nothing is moved and ``stage`` is
+        kept, so the folder never holds a mix of two sets.
+    """
     marker = stage / PUBLISHING
     try:
-        if not stat.S_ISREG(os.lstat(marker).st_mode):
+        st = os.lstat(marker)
+        if not stat.S_ISREG(st.st_mode) or st.st_size > _MARKER_BYTES:
             return []
         names = json.loads(marker.read_text())
-    except (OSError, ValueError):
+    except (OSError, ValueError, RecursionError):  # RecursionError: a deeply nested marker
         return []
-    done = []
+    todo = []
     for name in names if isinstance(names, list) else ():
-        if not isinstance(name, str) or not OUTPUT_NAME.match(name):
+        if not isinstance(name, str) or not OUTPUT_NAME.match(name) or name in todo:
             continue  # not a name cairn publishes: never followed
         with contextlib.suppress(OSError):
             st = os.lstat(stage / name)
             if stat.S_ISREG(st.st_mode) and st.st_nlink == 1 and owned(st):
-                replace_into(stage / name, out / name)
-                done.append(name)
-    return done
+                todo.append(name)
+    try:
+        _refuse_folders(out, todo)
+        for name in todo:  # before anything moves: a GeoPackage open elsewhere stops it
+            if name.lower().endswith(".gpkg"):
+                release_sqlite(out / name)
+        for name in todo:
+            replace_into(stage / name, out / name)
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot complete the publication a killed run began "
+                          f"({short(exc)}); its files are kept in {stage.name} until a run "
+                          "can") from None
+    return todo
 
 
 @contextlib.contextmanager
@@ -312,6 +353,7 @@ def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ())
 
 def _publish(stage: Path, out: Path, replaces) -> None:
     names = sorted(p.name for p in stage.iterdir())
+    _refuse_folders(out, names)  # before anything moves
     try:
         sync_dir(stage)
         with _signals_held():

@@ -170,6 +170,7 @@ _SHARED_MAGIC = b"CAIRNSH1"
 _SHARED_ALIGN = 64
 
 
+@_scratch_writes
 def save_shared(path: str, obj, *, min_bytes: int = 1 << 16) -> str:
     """Pickle ``obj`` into the scratch file ``path`` for processes that map it:
     protocol 5, each contiguous buffer of at least ``min_bytes`` (arrays) laid

@@ -211,11 +211,17 @@ def check_range(practical_range: float, spacing, shape, source: str = "the DEM")
     dy, dx = (float(v) for v in spacing)
     extent = max(shape[0] * dy, shape[1] * dx)
     if practical_range > extent:
-        my, mx = periodic_shape(spacing, practical_range)
-        need = KERNEL_BUILD_BYTES * my * mx
+        cells = 16.0 * practical_range / dy * (16.0 * practical_range / dx)  # floats: any range
+        if cells < 2.0**53:
+            my, mx = periodic_shape(spacing, practical_range)
+            need = f"{KERNEL_BUILD_BYTES * my * mx / 2**30:,.1f} GiB"
+        elif math.isfinite(cells):  # no machine: the grid is not sized (its FFT length search is slow)
+            need = f"{KERNEL_BUILD_BYTES * cells / 2**30:.3g} GiB"
+        else:
+            need = "more memory than any machine has"
         raise OptionError(f"{source}: {{range_m}} {practical_range:g} m is longer than the grid's "
                           f"extent ({extent:,.0f} m); error correlated over more than the whole "
                           "grid is nearly one offset for all of it, and an offset moves no "
                           "prominence, depth or flow path, while its kernel would need "
-                          f"{need / 2**30:,.1f} GiB to compute -- give a range of at most "
+                          f"{need} to compute -- give a range of at most "
                           f"{extent:,.0f} m", "range_m")

@@ -117,7 +117,7 @@ def test_dask_worker_killed_mid_run_gives_identical_layers():
     dem = Dem.from_array(z, cellsize=30.0)
     s, m = CreditJob("peaks", threshold=3.0), ErrorModel(rmse=2.0)
     ref = run_ensemble(dem, s, m, realisations=60, seed=2, backend="serial")
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
                       silence_logs=logging.CRITICAL) as cluster, Client(cluster) as client:
         pids = list(client.run(os.getpid).values())
         killed = threading.Event()

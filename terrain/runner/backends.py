@@ -329,7 +329,7 @@ def dask_client(scheduler: str | None, workers: int):
             raise _unreachable(scheduler, type(exc).__name__) from None
     else:
         cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR)
+                               dashboard_address=":0", silence_logs=logging.ERROR)
         client = Client(cluster)
     try:
         client.wait_for_workers(1, timeout=WORKER_WAIT_SECONDS)

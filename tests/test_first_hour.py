@@ -116,3 +116,14 @@ def test_a_changed_source_never_loads_the_old_kernels(tmp_path):
     assert os.stat(mod).st_size == stamp.st_size
     second = _python("import kern; print(kern.f())", env)
     assert second.stdout.strip() == "2", second.stderr
+
+
+def test_every_package_is_installed():
+    # a non-editable install ships only the packages pyproject lists: each folder of
+    # terrain/ with an __init__.py must be one of them
+    import tomllib
+
+    root = Path(__file__).resolve().parents[1]
+    listed = set(tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"]["packages"])
+    found = {".".join(p.parent.relative_to(root).parts) for p in (root / "terrain").rglob("__init__.py")}
+    assert found <= listed, f"pyproject.toml does not list {sorted(found - listed)}"

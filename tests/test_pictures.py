@@ -268,6 +268,26 @@ def test_crowded_labels_never_overlap():
         assert not any(_overlap(b, c) for c in boxes[:i]) and not any(_overlap(b, m) for m in markers)
 
 
+def test_a_map_places_at_most_its_label_cap_and_counts_the_rest():
+    # a hundred outlets: the map places the first MAX_LABELS labels in order of importance,
+    # and the footer names a few of the rest and counts the others
+    from terrain.outputs.mapframe import MAX_LABELS, NAMED_UNPLACED, MapFrame
+
+    rng = np.random.default_rng(5)
+    dem = _dem(np.zeros((200, 200)), crs=UTM)
+    frame = MapFrame(dem, title="t", subtitle="s", footer="f", caution=CAUTION)
+    x0, y0 = dem.transform[2], dem.transform[5] - 2000
+    x, y = x0 + rng.uniform(50, 1950, 100), y0 + rng.uniform(50, 1950, 100)
+    frame.points(x, y, marker="v", face="white", label="outlet")
+    for i in range(100):
+        frame.label(x[i], y[i], f"g{i}")
+    fig = frame.figure()
+    kept = [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "label"]
+    assert 0 < len(kept) <= MAX_LABELS and set(kept) <= {f"g{i}" for i in range(MAX_LABELS)}
+    footer = frame.footer_text.get_text().replace("\n", " ")
+    assert f"and {100 - len(kept) - NAMED_UNPLACED} more" in footer, footer
+
+
 # -- the ranking chart on the two-summit case ---------------------------------------------
 def _two_summits():
     """Two single-cell summits, 101 and 100 m, on a plain at 0 (as in test_features)."""

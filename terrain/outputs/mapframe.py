@@ -85,6 +85,12 @@ LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center
 ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
 LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
 ADJUST_STARTS = 4  # adjustText placements before the search for a free spot
+#: a map places at most this many labels, the most important first (a quick-look with a
+#: hundred outlets stays readable, and adjustText's cost grows with the square of them);
+#: the footer counts the rest
+MAX_LABELS = 30
+#: the footer names at most this many labels left out, then says how many more
+NAMED_UNPLACED = 8
 #: where the scale bar and the north arrow may go, in order of preference: corners, then
 #: the middles of the edges (matplotlib's legend location codes for the bar)
 PLACES = ("lower left", "lower right", "upper left", "upper right", "lower center",
@@ -405,10 +411,11 @@ class MapFrame:
         self.handles.append(_line_key(colour, label, lw=lw, ls=ls))
 
     def contours(self, values: np.ndarray, levels, *, colour: str, label: str,
-                 styles=("solid",), widths=(1.4,)) -> bool:
+                 styles=("solid",), widths=(1.4,), keyed: bool = True) -> bool:
         """Contour lines of a layer (e.g. a probability at 50% and 90%) in one
-        colour, one style per level, as one legend entry (say what the styles
-        mean with :meth:`key`); returns whether any line was drawn."""
+        colour, one style per level, as one legend entry unless not ``keyed``
+        (say what the styles mean with :meth:`key`); returns whether any line
+        was drawn."""
         v = self.view(values)
         if min(v.shape) < 2 or not np.isfinite(v).any() or np.nanmax(v) < min(levels):
             return False
@@ -425,7 +432,8 @@ class MapFrame:
         # float64 copies of the grid (~28 bytes per drawn cell per contoured layer)
         if hasattr(cs, "_contour_generator"):
             cs._contour_generator = None
-        self.handles.append(_line_key(colour, label, lw=widths[0], ls=styles[0]))
+        if keyed:
+            self.handles.append(_line_key(colour, label, lw=widths[0], ls=styles[0]))
         return True
 
     def symbol(self, glyph: str, label: str) -> None:
@@ -477,10 +485,11 @@ class MapFrame:
                  if a.get_gid() in ("scale_bar", "north_arrow")]
         fixed += [t.arrow_patch.get_window_extent(r) for t in self.ax.texts
                   if t.get_gid() == "north_arrow"]
-        kept = {t.get_text() for t in place_labels(self.ax, self.texts, self.avoid, fixed=fixed)}
+        kept = {t.get_text() for t in place_labels(self.ax, self.texts[:MAX_LABELS], self.avoid,
+                                                   fixed=fixed)}
         missing = [n for (*_, text), n in zip(self.texts, self.names) if text not in kept]
         if missing:  # say so in the footer; the map keeps its size, so labels stay clear
-            self.footer += " " + self.unplaced.format(names=", ".join(missing))
+            self.footer += " " + self.unplaced.format(names=_some(missing))
             self.footer_text.set_text(self._footer())
             _lay_out(self)
         return self.fig
@@ -724,6 +733,14 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
     for i, t in kept.items():
         _leader(ax, t, items[i][:2], size.get(items[i][:2], 0.0))
     return [kept[i] for i in sorted(kept)]
+
+
+def _some(names: list[str]) -> str:
+    """``names`` joined by commas, the first :data:`NAMED_UNPLACED` of them and a count of
+    the rest."""
+    if len(names) <= NAMED_UNPLACED:
+        return ", ".join(names)
+    return ", ".join(names[:NAMED_UNPLACED]) + f" and {len(names) - NAMED_UNPLACED} more"
 
 
 SEARCH_PX = 260.0  # the last resort looks for a free spot this far from a label's point

@@ -206,11 +206,11 @@ def _level_styles(levels) -> tuple:
     return tuple("dashed" if lev >= 0.9 else "dotted" if lev < 0.5 else "solid" for lev in levels)
 
 
-def _outlets(frame: MapFrame, outlets) -> None:
+def _outlets(frame: MapFrame, outlets, *, labelled: bool = True) -> None:
     if outlets:
         xs, ys, names = zip(*outlets)
         frame.points(xs, ys, marker="v", face="white", label="outlet, as given", size=9)
-        for x, y, name in outlets:
+        for x, y, name in outlets if labelled else ():
             frame.label(x, y, str(name))
 
 
@@ -408,18 +408,27 @@ def catchment_map(result: RunResult, summary=None) -> Figure:
     frame.layer(result.layers[main][0], cmap=palette("divides"), vmax=1.0, floor=DIVIDE_FLOOR,
                 label=bar_label(main, dem.unit_label) + f"; clear under {DIVIDE_FLOOR:.0%}")
     drawn = False
+    each = len(job.ids) <= len(OUTLINE_COLOURS)  # a legend entry per outlet while colours last
     for n, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
         name = sub.concrete(lid)
         if name in result.layers:
             drawn |= frame.contours(result.layers[name][0], (0.5, 0.9),
                                     colour=OUTLINE_COLOURS[n % len(OUTLINE_COLOURS)],
                                     label=f"sub-catchment of outlet {short(oid, 24)}",
-                                    styles=("solid", "dashed"), widths=(1.8, 1.2))
+                                    styles=("solid", "dashed"), widths=(1.8, 1.2), keyed=each)
+    if drawn and not each:
+        frame.key(f"sub-catchment of each outlet ({len(OUTLINE_COLOURS)} colours in turn)",
+                  colour=OUTLINE_COLOURS[0])
     if drawn:
         frame.key("in at least 50% of realisations", ls="solid")
         frame.key("in at least 90% of realisations", ls="dashed")
-    _outlets(frame, [(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)])
-    _snapped(frame, _outlet_rows(result, summary))
+    given = [(x, y, short(oid, 24)) for oid, (x, y) in zip(job.ids, job.xy)]
+    _outlets(frame, given, labelled=False)
+    snapped = _snapped(frame, _outlet_rows(result, summary))
+    for oid, (x, y, name) in zip(job.ids, given):  # each outlet's id, then its snapped share,
+        frame.label(x, y, name)                     # in the file's order (the map labels the
+        for sx, sy, text, what in snapped.get(str(oid), ()):  # first MAX_LABELS)
+            frame.label(sx, sy, text, name=what)
     return frame.figure()
 
 
@@ -432,13 +441,14 @@ def _outlet_rows(result: RunResult, summary):
     return outlet_table(result)
 
 
-def _snapped(frame: MapFrame, outlets) -> None:
+def _snapped(frame: MapFrame, outlets) -> dict:
     """Each outlet's most frequent snapped cell, tied to the point as given by a
-    thin line and labelled with the share of realisations that snapped there."""
+    thin line; returns each outlet's label (outlet id -> [(x, y, text, name=...)]),
+    the share of realisations that snapped there, for the caller to place."""
     ok = np.isfinite(outlets["snapped_x"].to_numpy(float))
     rows = outlets[ok]
     if rows.empty:
-        return
+        return {}
     # the point as given in the DEM's CRS (x, y are in the outlets file's own CRS)
     gx, gy = ("x_dem", "y_dem") if "x_dem" in rows else ("x", "y")
     frame.lines([((a, b), (c, d)) for a, b, c, d in zip(rows[gx], rows[gy], rows["snapped_x"],
@@ -446,9 +456,12 @@ def _snapped(frame: MapFrame, outlets) -> None:
                 colour=INK, lw=0.8, label="outlet as given to its snapped cell")
     frame.points(rows["snapped_x"], rows["snapped_y"], marker="o", face="#f2c14e",
                  label="most frequent snapped cell (share of realisations beside it)", size=7.0)
+    labels: dict = {}
     for row in rows.itertuples():
-        frame.label(row.snapped_x, row.snapped_y, f"snapped {share_text(row.snapped_share)}",
-                    name=f"{short(str(row.outlet_id), 24)} snapped")
+        labels.setdefault(str(row.outlet_id), []).append(
+            (row.snapped_x, row.snapped_y, f"snapped {share_text(row.snapped_share)}",
+             f"{short(str(row.outlet_id), 24)} snapped"))
+    return labels
 
 
 DRAINAGE_FLOOR = 1.0  # the drainage map leaves clear cells draining under this share of

@@ -140,3 +140,30 @@ def upland(shape=(200, 260), cell=1.0):
     feet = {"lake": dist(60, 60) <= 26, "hill": dist(60, 190) <= 22,
             "dome": dist(150, 80) <= 5, "hollow": dist(160, 200) <= 2}
     return z.astype(np.float32), feet
+
+
+def _stand_in_figure(*args, **kwargs):
+    """A small blank figure (matplotlib's Agg canvas), drawn in milliseconds."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(1, 1), dpi=10)
+    FigureCanvasAgg(fig)
+    return fig
+
+
+@pytest.fixture
+def stand_in_figures(monkeypatch, request):
+    """Runs in this test draw blank stand-ins for the quick-look figures.
+
+    For tests about something else (refusals, checkpoints, publication): the
+    figures cost seconds a run, and tests/test_pictures.py and tests/test_cli.py
+    check the real ones. Every file is still written and published as in a
+    real run. A test marked ``real_figures`` draws them as usual.
+    """
+    if request.node.get_closest_marker("real_figures"):
+        return
+    from terrain.outputs import plot
+
+    for name in ("feature_map", "ranking_chart", "catchment_map", "sweep_figure"):
+        monkeypatch.setattr(plot, name, _stand_in_figure)

@@ -18,6 +18,8 @@ import rasterio
 
 from .conftest import smooth_terrain, write_tif
 
+pytestmark = pytest.mark.usefixtures("stand_in_figures")
+
 RUN = ("--rmse", "1", "-n", "4", "--workers", "1", "-q")
 
 
@@ -880,6 +882,7 @@ def test_sweep_on_a_plane_without_features(cairn, tmp_path):
         "sweep.csv", "kernel_sensitivity.csv", "sweep.png", "run.json"}
 
 
+@pytest.mark.real_figures
 @pytest.mark.slow
 @pytest.mark.parametrize("shape", [(100, 1), (1000, 1), (1, 1000)])
 def test_quicklook_of_a_strip_stays_small(cairn, tmp_path, shape):
@@ -898,6 +901,7 @@ def test_nugget_without_range_refused(cairn, dem, tmp_path):
     nothing_written(tmp_path / "o")
 
 
+@pytest.mark.real_figures
 @pytest.mark.slow
 def test_quicklook_of_a_big_grid_is_drawn_in_blocks(cairn, dem, tmp_path, monkeypatch):
     # reference: scikit-image's block_reduce (a general-purpose library) for the blocks
@@ -1765,6 +1769,7 @@ def test_ctrl_c_and_sigterm_end_a_run_whose_workers_left(tmp_path, cluster, sig,
 
 
 # -- 12. outlets whose names or attributes are awkward -------------------------------------------------
+@pytest.mark.real_figures
 @pytest.mark.parametrize("ids", [
     ["$\\frac{a}{$", "$x$", "50$ gauge"],  # matplotlib math text, broken and whole
     ["Quelle \u6e90", "\u2603 snow", "\U0001f30a wave"],  # glyphs the map's font lacks

@@ -16,6 +16,10 @@ import pytest
 from .conftest import smooth_terrain, write_tif
 from .test_bad_input import RUN, no_traceback, one_line_error, outputs_of, tree  # noqa: F401
 
+# runs here draw blank stand-ins for the figures (tests/conftest.py); a test
+# marked real_figures draws them
+pytestmark = pytest.mark.usefixtures("stand_in_figures")
+
 
 @pytest.fixture
 def dem(tmp_path):

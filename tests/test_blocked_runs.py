@@ -21,6 +21,10 @@ from terrain.noise import ErrorSampler
 
 from .conftest import smooth_terrain, write_tif
 
+# runs here draw blank stand-ins for the figures (tests/conftest.py); a test
+# marked real_figures draws them
+pytestmark = pytest.mark.usefixtures("stand_in_figures")
+
 MODELS = {"independent": ErrorModel(rmse=1.0),
           "correlated": ErrorModel(rmse=1.0, range_m=150.0, nugget=0.2),
           # a non-Gaussian kernel under correlation: the copula, window by window

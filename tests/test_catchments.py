@@ -31,6 +31,10 @@ from terrain.summary.catchments import CATCHMENT_COLUMN_KINDS
 from .conftest import smooth_terrain, write_tif
 from .reference_fill import fill_depressions
 
+# runs here draw blank stand-ins for the figures (tests/conftest.py); a test
+# marked real_figures draws them
+pytestmark = pytest.mark.usefixtures("stand_in_figures")
+
 
 @pytest.mark.parametrize("seed", range(4))
 @pytest.mark.parametrize("ties", [False, True])

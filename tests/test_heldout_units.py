@@ -28,6 +28,10 @@ from terrain.summary.features import summarise_features
 
 from .conftest import smooth_terrain, write_tif
 
+# runs here draw blank stand-ins for the figures (tests/conftest.py); a test
+# marked real_figures draws them
+pytestmark = pytest.mark.usefixtures("stand_in_figures")
+
 US_FOOT = 1200 / 3937  # m, exact (NIST SP 811)
 
 
@@ -166,6 +170,7 @@ def _valley_dem(tmp_path):
         return dem, [ds.xy(60, 20), ds.xy(25, 20)]
 
 
+@pytest.mark.real_figures
 def test_outlets_in_web_mercator_keep_their_coordinates_and_the_map_ties_them(tmp_path, cairn):
     import geopandas as gpd
     from pyproj import Transformer

@@ -26,6 +26,10 @@ from terrain.summary.features import summarise_features
 
 from .conftest import smooth_terrain, write_tif
 
+# runs here draw blank stand-ins for the figures (tests/conftest.py); a test
+# marked real_figures draws them
+pytestmark = pytest.mark.usefixtures("stand_in_figures")
+
 FOOT = 0.3048  # m, exact (NIST SP 811)
 US_FOOT = 1200 / 3937  # m, exact (NIST SP 811)
 CELL = 10.0

@@ -263,7 +263,7 @@ def test_negative_elevations_bathymetry(cairn, tmp_path):
 # -- nothing lost ------------------------------------------------------------------
 @pytest.mark.slow
 def test_sigkill_during_writing_never_leaves_partial_outputs(tmp_path):
-    z = smooth_terrain((500, 500), seed=9)
+    z = smooth_terrain((300, 300), seed=9)  # writing (layers, tables, figures) lasts seconds
     dem = write_tif(tmp_path / "d.tif", z)
     ref = tmp_path / "ref"
     args = [sys.executable, "-c", "from cairn_cli.main import run; run()", "depressions", str(dem),

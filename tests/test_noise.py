@@ -135,6 +135,32 @@ def test_any_window_draws_the_same_error(model):
     assert not np.array_equal(whole, s.draw(4, 8)) and not np.array_equal(whole, s.draw(5, 7))
 
 
+@pytest.mark.parametrize("kernel", [k for k in KERNELS if KERNELS[k].one_stream])
+def test_one_stream_samplers_draw_a_tiles_top_rows_alone(kernel):
+    # numpy's Generator fills an array one value after another (row-major), so a draw of
+    # the top rows of a tile alone gives the whole tile's first rows (checked here against
+    # the installed numpy, since the noise of small grids relies on it)
+    from terrain.noise.model import NOISE_TILE, tile_rng
+
+    k = KERNELS[kernel]
+    whole = k.sample(tile_rng(5, 3, 0, 1, 2), (NOISE_TILE, NOISE_TILE))
+    for rows in (1, 17, NOISE_TILE - 1):
+        np.testing.assert_array_equal(k.sample(tile_rng(5, 3, 0, 1, 2), (rows, NOISE_TILE)),
+                                      whole[:rows])
+
+
+@pytest.mark.parametrize("kernel", KERNELS)
+@pytest.mark.parametrize("draw", ["direct", "quantile"])
+def test_a_small_grid_draws_the_top_left_of_a_big_ones_error(kernel, draw):
+    # the error at a cell depends on the seed, the realisation and the cell, not on how big
+    # the grid is (a small grid draws only the rows of a tile it needs)
+    model = ErrorModel(rmse=1.0, kernel=kernel, draw=draw)
+    big = ErrorSampler(model, (300, 530), (10.0, 10.0)).draw(2, 9)
+    for shape in ((15, 31), (1, 1), (256, 40), (257, 300)):
+        np.testing.assert_array_equal(ErrorSampler(model, shape, (10.0, 10.0)).draw(2, 9),
+                                      big[:shape[0], :shape[1]])
+
+
 @pytest.mark.parametrize("kernel", KERNELS)
 def test_quantile_inverts_the_cdf(kernel):
     u = np.linspace(0.001, 0.999, 37)

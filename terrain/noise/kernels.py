@@ -45,6 +45,13 @@ class Kernel:
         Support ``[-h, h]`` (else the whole line).
     unit_pdf, unit_quantile, unit_sample : callables
         Density, inverse CDF and sampler at ``h = 1``.
+    one_stream : bool
+        The sampler fills its output from one sequential draw of the
+        generator (one value after another, row-major), so the first rows of
+        a tile drawn alone equal the first rows of the whole tile: a window
+        that needs only the top of a tile draws only that. False when the
+        sampler makes several passes over the output (triangular,
+        Epanechnikov).
     """
 
     name: str
@@ -54,6 +61,7 @@ class Kernel:
     unit_pdf: Callable[[np.ndarray], np.ndarray]
     unit_quantile: Callable[[np.ndarray], np.ndarray]
     unit_sample: Callable[..., np.ndarray]
+    one_stream: bool = False
 
     def halfwidth(self, rmse: float) -> float:
         """Bandwidth ``h`` whose standard deviation is ``rmse``."""
@@ -149,12 +157,13 @@ def _epanechnikov_sample(rng, size, dtype):
 
 KERNELS: dict[str, Kernel] = {k.name: k for k in (
     Kernel("gaussian", 1.0, math.sqrt(2 / math.pi), False, _gauss_pdf, _gauss_quantile,
-           _gauss_sample),
+           _gauss_sample, one_stream=True),
     Kernel("epanechnikov", 1 / 5, 1.5, True, _epanechnikov_pdf, _epanechnikov_quantile,
            _epanechnikov_sample),
     Kernel("triangular", 1 / 6, 2.0, True, _triangular_pdf, _triangular_quantile,
            _triangular_sample),
-    Kernel("uniform", 1 / 3, 1.0, True, _uniform_pdf, _uniform_quantile, _uniform_sample),
+    Kernel("uniform", 1 / 3, 1.0, True, _uniform_pdf, _uniform_quantile, _uniform_sample,
+           one_stream=True),
 )}
 
 

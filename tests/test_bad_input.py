@@ -165,6 +165,7 @@ def test_memory_guard(cairn, dem, tmp_path, monkeypatch):
     assert cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--force")[0] == 0
 
 
+@pytest.mark.real_figures  # the figures of degenerate rasters are part of what is checked
 # -- edge cases with a defined answer ------------------------------------------------
 @pytest.mark.slow
 @pytest.mark.parametrize("shape", [(1, 1), (1, 9), (9, 1), (6, 7)])
@@ -1647,8 +1648,14 @@ def test_the_guard_counts_the_kernel(cairn, dem, tmp_path, monkeypatch):
 
 # -- 11. Dask: one line, never a hang -------------------------------------------------------------------
 WAIT = 3  # seconds a cluster may stay without workers in these tests (WORKER_WAIT_SECONDS)
+# the CLI with a short worker wait and a checkpoint every 10 realisations (not 50), so the
+# runs below reach their first checkpoint in a fifth of the time
 _DASK_CLI = [sys.executable, "-c", "import terrain.runner.backends as b; "
-             f"b.WORKER_WAIT_SECONDS = {WAIT}; from cairn_cli.main import run; run()"]
+             f"b.WORKER_WAIT_SECONDS = {WAIT}; import terrain.runner.ensemble as e; "
+             "i = e.Execution.__init__; "
+             "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
+             "object.__setattr__(s, 'checkpoint_every', 10))[0]; "
+             "from cairn_cli.main import run; run()"]
 
 
 def _free_port():
@@ -1716,7 +1723,7 @@ def test_a_scheduler_without_workers_is_one_line(tmp_path, cluster, block):
 
 
 def _start_dask_run(tmp_path, cluster, *extra):
-    side = 96 if "--block" in extra else 200  # the first checkpoint (50 realisations) comes soon
+    side = 96 if "--block" in extra else 200  # the first checkpoint (10 realisations) comes soon
     dem = write_tif(tmp_path / "d.tif", smooth_terrain((side, side), seed=4))
     ck = tmp_path / "ck.npz"
     p = subprocess.Popen(_DASK_CLI + [*extra, str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
@@ -1724,7 +1731,7 @@ def _start_dask_run(tmp_path, cluster, *extra):
                                       str(ck)], stderr=subprocess.PIPE, text=True)
     deadline = time.time() + 240
     while not ck.exists() and time.time() < deadline and p.poll() is None:
-        time.sleep(0.1)  # the first checkpoint: 50 realisations done
+        time.sleep(0.1)  # the first checkpoint: 10 realisations done
     assert ck.exists(), p.stderr.read() if p.poll() is not None else "no checkpoint"
     return p, ck
 

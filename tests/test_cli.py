@@ -144,7 +144,7 @@ def test_ctrl_c_saves_checkpoint_and_resume_is_identical(tmp_path):
     z = smooth_terrain((150, 150), seed=2)
     dem = write_tif(tmp_path / "d.tif", z)
     ck = tmp_path / "ck.npz"
-    args = ("peaks", dem, "--rmse", "1", "-n", "200", "--seed", "9", "--workers", "1")
+    args = ("peaks", dem, "--rmse", "1", "-n", "100", "--seed", "9", "--workers", "1")
     p = _cairn_proc(*args, "-o", tmp_path / "a", "--checkpoint", ck)
     deadline = time.time() + 120
     while not ck.exists() and time.time() < deadline:  # first checkpoint after 50 realisations

@@ -236,7 +236,7 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     drawn = table[(table["p_above"] >= LABEL_PRESENCE)
                   | table["group"].isin([g for g, _ in groups])]
     main = layer_name(job.kind, kind["main"])
-    if dem.on_disk:  # out of core: draw from rasters pooled band by band
+    if result.layout.on_disk:  # out of core: draw from rasters pooled band by band
         dem, values, inside, tops = _pooled_view(result, features, main)
     else:
         values = result.layers[main][0]

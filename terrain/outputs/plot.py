@@ -21,19 +21,8 @@ from ..layers import LAYERS, layer_name, read_window, spec, units
 from ..outlets import short
 from ..summary.features import LAYER_NAMES
 from .caution import CAUTION
-from .mapframe import (
-    FONT_PT,
-    INK,
-    OUTLINE_COLOURS,
-    PALETTES,
-    MapFrame,
-    hillshade,
-    palette,
-    pool_bands,
-    pooled_dem,
-    pooling,
-    short_unit,
-)
+from .mapframe import MapFrame, hillshade, pool_bands, pooled_dem, pooling
+from .style import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, palette, short_unit
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure

@@ -10,7 +10,7 @@ A :class:`MapFrame` draws a map of one DEM the same way for every command:
 - aspect correct for geographic CRSs (a degree of longitude drawn
   ``cos(latitude)`` times as long as a degree of latitude), a scale bar of a
   round length, and a north arrow only when the grid is north-up in a known
-  CRS;
+  CRS, both where the map is emptiest (:mod:`terrain.outputs.furniture`);
 - polygons, points and contour lines, each with a legend entry (the legend
   names every symbol and colour drawn);
 - labels placed so that they overlap neither each other nor any marker
@@ -41,15 +41,16 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from ..dem import Dem, metres_per_degree
+from ..dem import Dem
 from ..layers import MAX_PIXELS
-from .labels import boxes_overlap, marker_boxes, place_labels
+from .furniture import furniture_boxes, north_arrow, north_up, place_furniture, scale_bar
+from .labels import place_labels
 from .style import DPI, FONT_PT, INK, NODATA, halo, power_of_ten
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
-__all__ = ["MapFrame", "hillshade", "nice_length", "pooling", "pool_bands", "pooled_dem",
+__all__ = ["MapFrame", "hillshade", "pooling", "pool_bands", "pooled_dem",
            "MAX_LABELS", "NAMED_UNPLACED"]
 
 WIDTH_IN = 10.0  # every map is this wide
@@ -63,20 +64,6 @@ MAX_STRETCH = 3.0  # a map at most this many times wider than tall (or taller th
 MAX_LABELS = 30
 #: the footer names at most this many labels left out, then says how many more
 NAMED_UNPLACED = 8
-#: where the scale bar and the north arrow may go, in order of preference: corners, then
-#: the middles of the edges (matplotlib's legend location codes for the bar)
-PLACES = ("lower left", "lower right", "upper left", "upper right", "lower center",
-          "upper center", "center left", "center right")
-BAR_CODES = {"upper right": 1, "upper left": 2, "lower left": 3, "lower right": 4,
-             "center left": 6, "center right": 7, "lower center": 8, "upper center": 9}
-
-
-def nice_length(x: float) -> float:
-    """The largest round length (1, 2 or 5 x 10^k) not above ``x`` (x > 0)."""
-    e = 10.0 ** math.floor(math.log10(x))
-    return max(m * e for m in (1, 2, 5) if m * e <= x * (1 + 1e-9))
-
-
 def _pool(a: np.ndarray, k: int, how) -> np.ndarray:
     if k == 1:
         return a
@@ -400,11 +387,13 @@ class MapFrame:
         """Lay the map out, place the labels and return the Figure.
 
         The scale bar and the north arrow go where the map holds the fewest
-        markers and labelled points (:meth:`_corners`: a corner, or the middle
-        of an edge), so they cover as little of the map's content as it allows."""
-        self._scale_bar()
-        if self._north_up():
-            self._north_arrow("upper right")
+        markers and labelled points (:func:`~terrain.outputs.furniture.place_furniture`:
+        a corner, or the middle of an edge), so they cover as little of the map's
+        content as it allows."""
+        arrow = north_up(self.dem)
+        scale_bar(self.ax, self.dem, self.extent)
+        if arrow:
+            north_arrow(self.ax, "upper right")
         self._legend_and_text()
         self.ax.set_aspect(self.aspect())  # imshow resets it
         self.shown = self._shown_ratio()
@@ -413,65 +402,15 @@ class MapFrame:
             self.subtitle_text.set_text(self.subtitle_text.get_text() + "\nDrawn stretched: the "
                                         "raster is a thin strip.")
         _lay_out(self)
-        self._corners()
-        r = self.fig.canvas.get_renderer()
-        fixed = [a.get_window_extent(r) for a in self.ax.artists + self.ax.texts
-                 if a.get_gid() in ("scale_bar", "north_arrow")]
-        fixed += [t.arrow_patch.get_window_extent(r) for t in self.ax.texts
-                  if t.get_gid() == "north_arrow"]
+        place_furniture(self.ax, self.avoid + [(x, y, 0.0) for x, y, _ in self.texts], arrow=arrow)
         kept = {t.get_text() for t in place_labels(self.ax, self.texts[:MAX_LABELS], self.avoid,
-                                                   fixed=fixed)}
+                                                   fixed=furniture_boxes(self.ax))}
         missing = [n for (*_, text), n in zip(self.texts, self.names) if text not in kept]
         if missing:  # say so in the footer; the map keeps its size, so labels stay clear
             self.footer += " " + self.unplaced.format(names=_some(missing))
             self.footer_text.set_text(self._footer())
             _lay_out(self)
         return self.fig
-
-    def _north_arrow(self, place: str) -> None:
-        """The north arrow ("N" under an arrow pointing up) at ``place`` of the map
-        (one of :data:`PLACES`)."""
-        for t in [t for t in self.ax.texts if t.get_gid() == "north_arrow"]:
-            t.remove()
-        vertical, _, horizontal = place.partition(" ")
-        x = {"left": 0.045, "center": 0.5, "right": 0.955}[horizontal]
-        tip, text = {"upper": (0.965, 0.875), "center": (0.545, 0.455),
-                     "lower": (0.155, 0.065)}[vertical]
-        self.ax.annotate("N", xy=(x, tip), xytext=(x, text), xycoords="axes fraction",
-                         ha="center", va="center", fontsize=FONT_PT + 2, weight="bold",
-                         gid="north_arrow", zorder=8,
-                         bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8),
-                         arrowprops=dict(facecolor=INK, edgecolor="white", width=3, headwidth=10,
-                                         lw=0.6))
-
-    def _corners(self) -> None:
-        """Put the scale bar, then the north arrow, where the laid-out map is
-        emptiest: of :data:`PLACES` (the corners first, then the middles of the
-        edges), the first whose box covers the fewest markers and labelled points;
-        the arrow never covers the bar."""
-        r = self.fig.canvas.get_renderer()
-        points = marker_boxes(self.ax, self.avoid + [(x, y, 0.0) for x, y, _ in self.texts])
-        bar = next(a for a in self.ax.artists if a.get_gid() == "scale_bar")
-
-        def covered(boxes):
-            return sum(boxes_overlap(b, p, tol=0.0) for b in boxes for p in points)
-
-        counts = {}
-        for name in PLACES:
-            bar.loc = BAR_CODES[name]
-            counts[name] = covered([bar.get_window_extent(r)])
-        best = min(counts, key=counts.get)
-        bar.loc = BAR_CODES[best]
-        if not self._north_up():
-            return
-        taken, counts = bar.get_window_extent(r), {}
-        for name in ("upper right",) + tuple(p for p in PLACES if p != "upper right"):
-            self._north_arrow(name)
-            arrow = next(t for t in self.ax.texts if t.get_gid() == "north_arrow")
-            boxes = [arrow.get_window_extent(r), arrow.arrow_patch.get_window_extent(r)]
-            if not any(boxes_overlap(b, taken, tol=0.0) for b in boxes):
-                counts[name] = covered(boxes)
-        self._north_arrow(min(counts, key=counts.get))
 
     def _shown_ratio(self) -> float | None:
         """The height/width ratio to draw a thin strip at (None: true to scale)."""
@@ -488,36 +427,6 @@ class MapFrame:
         if not self.dem.geographic:
             return 1.0
         return 1.0 / math.cos(math.radians(float(np.mean(self.dem.row_latitudes()))))
-
-    def _north_up(self) -> bool:
-        a, b, _, d, e, _ = self.dem.transform
-        return self.dem.crs is not None and b == 0 and d == 0 and a > 0 and e < 0
-
-    def _scale_bar(self) -> None:
-        from matplotlib.font_manager import FontProperties
-        from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
-
-        dem = self.dem
-        width = self.extent[1] - self.extent[0]
-        if dem.crs is None:
-            m_per_unit, unit = 1.0, " cell units"
-        elif dem.geographic:
-            lat = float(np.mean(dem.row_latitudes()))
-            m_per_unit, unit = float(metres_per_degree(lat)[0]), None
-        else:
-            m_per_unit, unit = dem.linear_unit_m, None
-        length = nice_length(abs(width) * m_per_unit / 4)
-        if unit:
-            text = f"{length:g}{unit}"
-        else:
-            text = f"{length / 1000:g} km" if length >= 1000 else f"{length:g} m"
-        bar = AnchoredSizeBar(self.ax.transData, length / m_per_unit, text, "lower left",
-                              pad=0.4, borderpad=0.6, sep=3, frameon=True,
-                              size_vertical=abs(self.extent[3] - self.extent[2]) / 150,
-                              fontproperties=FontProperties(size=FONT_PT), color=INK)
-        bar.patch.set(alpha=0.8, edgecolor="none")
-        bar.set_gid("scale_bar")
-        self.ax.add_artist(bar)
 
     def _legend_and_text(self) -> None:
         fig = self.fig

@@ -28,9 +28,9 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     ex = execution(opts)
     head = header(dem_path, opts)
     out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
-    ex = guard_memory(head, job, ex, opts, model=model)
-    dem = read(dem_path, opts, on_disk=ex.block is not None)  # blocked: out of core
-    job = job.resolved(dem, model, **({"block": ex.block} if dem.on_disk else {}))
+    ex, layout = guard_memory(head, job, ex, opts, model=model)
+    dem = read(dem_path, opts, on_disk=layout.on_disk)
+    job = job.resolved(dem, model, layout=layout)
     res = run_job(dem, job, model, ex, opts, label=label or kind,
                   headline=settings_line(job, dem.unit_label))
     if model.range_m == 0:

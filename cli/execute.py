@@ -28,9 +28,8 @@ from terrain.io import (
     scratch_folder,
 )
 from terrain.noise import ErrorModel, rmse_from
-from terrain.resources import check_disk, check_memory, choose_block
+from terrain.resources import check_disk, check_memory, choose_layout
 from terrain.runner import Execution, RunInterrupted, run_ensemble
-from terrain.runner.blocked import effective_block
 from terrain.runner.checkpoint import prepare_checkpoint
 
 from .common import flush_warnings, warn, warn_later
@@ -156,18 +155,17 @@ def _distinct(checkpoints, inputs, outputs) -> None:
 def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int = 1,
                  quicklook: bool = True):
     """Refuse a run that would not fit in memory, from the DEM's header alone;
-    return the execution to use (blocked mode when only that fits, said once)."""
-    chosen = choose_block(head, job, ex, model=model, runs=runs, quicklook=quicklook)
-    if chosen.block is not None:  # a block larger than the grid is the grid
-        chosen = dataclasses.replace(chosen, block=effective_block(chosen.block, head.shape))
+    return the execution to use and its layout (``terrain.layout.RunLayout``:
+    blocked mode when only that fits, said once; out of core or not)."""
+    layout = choose_layout(head, job, ex, model=model, runs=runs, quicklook=quicklook)
+    chosen = dataclasses.replace(ex, block=layout.block)
     check_memory(head, job, chosen, model=model, runs=runs, quicklook=quicklook,
-                 force=opts["force"])
-    if runs == 1:  # a single blocked run keeps its grids on disk: they must fit there
-        check_disk(head, job, chosen)
-    if ex.block is None and chosen.block is not None:
+                 force=opts["force"], layout=layout)
+    check_disk(head, job, chosen, layout)  # out of core: the grids must fit on disk
+    if ex.block is None and layout.blocked:
         warn(f"a whole-grid run would not fit in memory; computing each realisation in blocks "
-             f"of {chosen.block} x {chosen.block} cells (--block; the layers are the same)")
-    return chosen
+             f"of {layout.block} x {layout.block} cells (--block; the layers are the same)")
+    return chosen, layout
 
 
 def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str):

@@ -105,7 +105,7 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     head = header(dem, opts)
     checkpoints = [run_checkpoint(ex.checkpoint, m) for m in models] if ex.checkpoint else []
     out = outputs(outdir, file_names("sweep"), opts, inputs=[dem], checkpoints=checkpoints)
-    ex = guard_memory(head, job, ex, opts, model=models[-1], runs=len(models), quicklook=False)
+    ex, _ = guard_memory(head, job, ex, opts, model=models[-1], runs=len(models), quicklook=False)
     d = read(dem, opts)
     if not opts["quiet"]:
         click.echo(f"cairn sweep: {len(models)} error model(s) x {ex.realisations} "

@@ -26,23 +26,22 @@ compares with the memory available.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from dataclasses import dataclass
 
 import numpy as np
 
-from .defaults import DISK_BLOCK
 from .dem import BAND_ROWS, Dem, RasterHeader, metres_per_degree
 from .errors import MemoryGuardError
 from .io import WINDOW_WRITE_CACHE, available_memory, check_scratch_space, scratch_parent
 from .layers import QUICKLOOK_CELLS, WINDOW_CELLS
+from .layout import DEFAULT_BLOCK, RunLayout, candidates, plan_layout
 from .noise import ErrorModel
 from .noise.fields import check_range, kernel_memory
 from .runner import Execution
 from .runner.protocols import Job
 
-__all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_block", "DEFAULT_BLOCK",
+__all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_layout", "DEFAULT_BLOCK",
            "describe_memory", "read_bytes", "available_bytes", "PROCESS_BYTES",
            "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR", "grid_spacing", "field_bytes",
            "check_field", "scratch_bytes", "check_disk"]
@@ -79,7 +78,6 @@ BLOCK_TASK = 80
 # The glue, per boundary cell (cells facing another block), white noise (145,
 # measured in bench/bench_blocked.py), and the summaries it reads (40).
 GLUE_PER_BOUNDARY_CELL = 185
-DEFAULT_BLOCK = DISK_BLOCK  # blocked mode's block side when the guard chooses it (one default)
 # Out of core, per cell of a window of layers while summarising and writing: the
 # log summed on the window (52), the layers (4 x 16), float32 copies (8), the DEM
 # window and mask (9), labels (4) and the features' temporaries (20) (counted).
@@ -119,6 +117,7 @@ class MemoryEstimate:
     per_cell: dict
     block: int | None = None
     kernel: int = 0
+    on_disk: bool = False
 
     def describe(self) -> str:
         """One line, e.g. ``~1.20 GiB = 0.60 GiB + 2 workers x 0.30 GiB (250 bytes
@@ -129,7 +128,7 @@ class MemoryEstimate:
         if self.kernel > self.total / 10:
             text += f", of which {_gib(self.kernel)} to compute the correlated error's kernel"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
-        if self.block and "regions" in self.per_cell:
+        if self.on_disk:
             return text + (f" (out of core: the DEM, region labels and counts stay on disk; "
                            f"a worker holds one block of {self.block} x {self.block})")
         if self.block:
@@ -168,7 +167,7 @@ def _planned(ex) -> int:
 
 def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
                  model: ErrorModel | None = None, runs: int = 1,
-                 quicklook: bool = True) -> MemoryEstimate:
+                 quicklook: bool = True, layout: RunLayout | None = None) -> MemoryEstimate:
     """The bytes a run of ``job`` on ``grid`` needs at its peak, in every process.
 
     Parameters
@@ -185,8 +184,13 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
         Runs one after another (a sweep keeps two layers of each).
     quicklook : bool
         Whether the run draws a quick-look map of the grid (a sweep does not).
+    layout : RunLayout, optional
+        Whole grid or blocks, in memory or on disk (default: as
+        :func:`terrain.layout.plan_layout` makes it from ``ex.block`` and ``runs``).
     """
     ex = ex if ex is not None else Execution()
+    layout = layout if layout is not None else plan_layout(grid.shape, ex.block, job=job,
+                                                           runs=runs)
     cells, value, stored = _grid(grid)
     field = field_bytes(grid, model)
     parent_job, worker_job = job.memory_per_cell(value, cells=cells)
@@ -195,10 +199,10 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     backend = ex.resolved_backend
     local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
     dem = value + 1
-    block = getattr(ex, "block", None)
-    if block and runs == 1:  # a single blocked run keeps its grids on disk
-        return _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook,
-                            field)
+    block = layout.block
+    if layout.on_disk:  # DEM, region labels and counts on disk
+        return _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs,
+                            quicklook, field)
     labels = 4 if block else 0  # blocked: the region labels, read at birth cells
     held = dem + CONTEXT + kept + labels + parent_job + SWEEP_KEPT * (runs - 1)
     here = 0  # bytes of this process that do not scale with the grid's cells
@@ -236,7 +240,8 @@ def _draw_bytes(model: ErrorModel | None) -> int:
     return FIELD_DRAW + (COPULA_DRAW if model.kernel != "gaussian" else 0)
 
 
-def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklook, field):
+def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, quicklook,
+                 field):
     """Blocked mode keeps the DEM, region labels and counts on disk: this
     process holds one band of the DEM while reading it, the glue of the block
     boundaries with one block task (region labels and the DEM's own ponding
@@ -244,7 +249,7 @@ def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklo
     summarising and writing (and GDAL's block cache), the quick-look's pooled rasters, and
     the log; a worker holds one block task."""
     rows, cols = grid.shape if hasattr(grid, "shape") else (cells, 1)
-    task, glue = _block_bytes(grid, cells, int(ex.block), draw)
+    task, glue = _block_bytes(grid, cells, int(block), draw)
     band = min(rows, BAND_ROWS * max(1, min(16, (64 * MiB) // max(cols * 8 * BAND_ROWS, 1))))
     window = min(cells, WINDOW_CELLS)
     phases = {"read": band * cols * (2 * stored + value + READ_SCRATCH),
@@ -260,7 +265,7 @@ def _out_of_core(grid, job, ex, cells, value, stored, draw, local, runs, quicklo
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells,
                           per_cell={**per, "worker": math.ceil(task / max(cells, 1))},
-                          block=int(ex.block), kernel=build)
+                          block=int(block), kernel=build, on_disk=True)
 
 
 def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:
@@ -272,29 +277,32 @@ def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:
     return (BLOCK_TASK + draw) * min(b, rows) * min(b, cols), GLUE_PER_BOUNDARY_CELL * boundary
 
 
-def choose_block(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
-                 model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True):
-    """The execution a run should use: ``ex`` itself when it fits in memory or
-    already names a block (or the job has no blocked mode); else ``ex`` in
-    blocked mode with :data:`DEFAULT_BLOCK` when that fits."""
-    if ex.block or getattr(job, "kind", None) not in ("peaks", "depressions"):
-        return ex
+def choose_layout(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
+                  model: ErrorModel | None = None, runs: int = 1,
+                  quicklook: bool = True) -> RunLayout:
+    """The run's layout, decided once (:mod:`terrain.layout`): the one asked for
+    when ``ex`` names a block (or the job has no blocked mode); else the whole
+    grid when it fits in memory, blocks of :data:`DEFAULT_BLOCK` when only
+    they fit, and the whole grid when neither does (:func:`check_memory`
+    then refuses it)."""
+    options = candidates(grid.shape, ex.block, job=job, runs=runs)
+    if len(options) == 1:
+        return options[0]
     have = available_bytes()
-    if estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook).total <= have:
-        return ex
-    blocked = dataclasses.replace(ex, block=DEFAULT_BLOCK)
-    if estimate_run(grid, job, blocked, model=model, runs=runs, quicklook=quicklook).total <= have:
-        return blocked
-    return ex
+    for layout in options:
+        if estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook,
+                        layout=layout).total <= have:
+            return layout
+    return options[0]
 
 
 def check_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
                  model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True,
-                 force: bool = False) -> MemoryEstimate:
-    """The run's :func:`estimate_run`; raises :class:`MemoryGuardError` when it
-    exceeds the memory available (unless ``force``)."""
+                 force: bool = False, layout: RunLayout | None = None) -> MemoryEstimate:
+    """The run's :func:`estimate_run` (in ``layout``, see there); raises
+    :class:`MemoryGuardError` when it exceeds the memory available (unless ``force``)."""
     check_field(grid, model)
-    est = estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook)
+    est = estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook, layout=layout)
     have = available_bytes()
     source = getattr(grid, "source", "the DEM")
     if est.kernel > have and not force:
@@ -314,15 +322,15 @@ def describe_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = N
                     model: ErrorModel | None = None) -> str:
     """One line on the memory a run of ``job`` needs: the guard's own figure."""
     ex = ex if ex is not None else Execution()
-    est = estimate_run(grid, job, ex, model=model)
+    layout = plan_layout(grid.shape, ex.block, job=job)
+    est = estimate_run(grid, job, ex, model=model, layout=layout)
     cells, value, _ = _grid(grid)
     parent, worker = job.memory_per_cell(value, cells=cells)
-    if getattr(ex, "block", None):
+    if layout.blocked:
         text = (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
                 f"{_gib(available_bytes())} available); ~{BLOCK_TASK} bytes per block cell "
                 "per worker")
-        rows, cols = grid.shape
-        if rows <= ex.block and cols <= ex.block:
+        if layout.one_block:
             text += "; the grid fits in one block, so blocks save nothing here"
         return text
     return (f"{est.describe()} for {ex.realisations} realisations (the guard's estimate; "
@@ -381,16 +389,17 @@ def scratch_bytes(grid: RasterHeader | Dem, job: Job, ex: Execution) -> dict[str
     return {"scratch": scratch, "checkpoint": beside}
 
 
-def check_disk(grid: RasterHeader | Dem, job: Job, ex: Execution) -> None:
-    """Refuse a blocked run whose scratch files (under TMPDIR) or counts (beside
-    the checkpoint) would not fit on their disks, before anything is read.
+def check_disk(grid: RasterHeader | Dem, job: Job, ex: Execution, layout: RunLayout) -> None:
+    """Refuse an out-of-core run (``layout.on_disk``) whose scratch files (under
+    TMPDIR) or counts (beside the checkpoint) would not fit on their disks,
+    before anything is read.
 
     Raises
     ------
     OutputError
         How much is needed, where, and what is free.
     """
-    if not getattr(ex, "block", None):
+    if not layout.on_disk:
         return
     need = scratch_bytes(grid, job, ex)
     what = (f"{grid.cells if hasattr(grid, 'cells') else _grid(grid)[0]:,} cells of scratch "

@@ -14,7 +14,11 @@
 - scratch and checkpoint file names (``.npy``, ``.npz``, ``.zarr``) are made in
   ``terrain/io/`` only;
 - no module is longer than 800 lines, except kernel modules (mostly numba);
-- a private module (``_name``) is imported only inside its own package.
+- a private module (``_name``) is imported only inside its own package;
+- the run's layout (blocked or whole, its block side, on disk or in memory) is
+  decided in ``terrain/layout.py`` only: no other module reads the default
+  block side, asks a DEM whether it is on disk, or compares a grid's size
+  with a block (the engines cut the blocks they are given).
 """
 
 from __future__ import annotations
@@ -192,7 +196,7 @@ def test_every_option_has_help(name, cmd):
 
 # -- the parts and the arrows that must never exist (shared/GUIDE.md, section 1) -----------------
 CORE = ("terrain.dem", "terrain.outlets", "terrain.errors", "terrain.layers", "terrain.defaults",
-        "terrain.pairlog")
+        "terrain.layout", "terrain.pairlog")
 WHOLE_GRID_ENGINE = ("terrain.engine.persistence", "terrain.engine.basins", "terrain.engine.grid",
                      "terrain.engine.hydro")
 NEVER = [  # (what, importer prefixes, forbidden target prefixes)
@@ -248,9 +252,7 @@ def test_only_io_names_scratch_and_checkpoint_files(path):
 
 MAX_MODULE_LINES = 800
 # modules waiting for their split, each with the reason (none may be added without one)
-OVERSIZE_PENDING = {
-    "terrain/outputs/mapframe.py": "label placement to move out; the figures' branch works here",
-}
+OVERSIZE_PENDING: dict[str, str] = {}
 
 
 def _is_kernel_module(tree: ast.Module) -> bool:
@@ -293,3 +295,52 @@ def test_the_runner_knows_a_blocked_job_by_its_protocol():
     src = (ROOT / "terrain" / "runner" / "blocked.py").read_text()
     assert "jobs" not in {a for n in ast.walk(ast.parse(src)) if isinstance(n, ast.ImportFrom)
                           for a in (n.module or "").split(".")}
+
+
+# -- the run's layout (whole grid or blocks, in memory or on disk) is decided in one place ------
+LAYOUT = ROOT / "terrain" / "layout.py"
+GRID_SIZE = {"shape", "rows", "cols", "cells", "size"}
+
+
+def _name(node: ast.AST) -> str | None:
+    return node.id if isinstance(node, ast.Name) else getattr(node, "attr", None)
+
+
+def _layout_decisions(path: Path, src: str | None = None) -> list[str]:
+    """Where ``path`` (or ``src``, read as that file) decides the layout again: it
+    reads the default block side, asks a DEM whether it is on disk, or
+    compares a grid's size with a block."""
+    bad = []
+    tree = ast.parse(src) if src is not None else _tree(path)
+    for node in ast.walk(tree):
+        where = f"{path.relative_to(ROOT)}:{getattr(node, 'lineno', 0)}"
+        if isinstance(node, ast.ImportFrom) and any(a.name == "DISK_BLOCK" for a in node.names):
+            bad.append(f"{where} imports DISK_BLOCK")
+        elif isinstance(node, (ast.Name, ast.Attribute)) and _name(node) == "DISK_BLOCK":
+            bad.append(f"{where} reads DISK_BLOCK")
+        elif isinstance(node, ast.Attribute) and node.attr == "on_disk" and _name(node.value) == "dem":
+            bad.append(f"{where} asks a DEM whether it is on disk")
+        elif isinstance(node, ast.Compare):
+            names = {_name(n) for n in ast.walk(node)} - {None}
+            if any("block" in n.lower() for n in names) and names & GRID_SIZE:
+                bad.append(f"{where} compares a grid's size with a block")
+    return bad
+
+
+@pytest.mark.parametrize("path", [p for p in LIB + CLI if p not in (LAYOUT, ROOT / "terrain" / "defaults.py")
+                                  and "engine" not in p.relative_to(ROOT).parts],
+                         ids=lambda p: str(p.relative_to(ROOT)))
+def test_the_layout_is_decided_only_in_terrain_layout(path):
+    # whether a run is blocked, its block side and whether its grids live on disk are made
+    # once, in terrain/layout.py (RunLayout), and read from there; the engines cut the
+    # blocks they are given
+    assert not _layout_decisions(path), _layout_decisions(path)
+
+
+def test_the_layout_check_sees_a_decision():
+    src = ("from terrain.defaults import DISK_BLOCK\n"
+           "def f(result, block):\n"
+           "    if result.dem.on_disk and max(result.dem.shape) <= block:\n"
+           "        return block or DISK_BLOCK\n")
+    found = _layout_decisions(ROOT / "terrain" / "summary" / "features.py", src)
+    assert len(found) == 4, found

@@ -181,9 +181,10 @@ def test_guard_chooses_blocks_when_only_they_fit(monkeypatch):
     blocked = resources.estimate_run(head, job, Execution(workers=2, block=1024))
     assert blocked.worker < whole.worker and blocked.total < whole.total
     monkeypatch.setattr(resources, "available_bytes", lambda: (whole.total + blocked.total) // 2)
-    assert resources.choose_block(head, job, ex).block == resources.DEFAULT_BLOCK
+    layout = resources.choose_layout(head, job, ex)
+    assert layout.block == resources.DEFAULT_BLOCK and layout.on_disk and layout.counts_on_disk
     monkeypatch.setattr(resources, "available_bytes", lambda: whole.total + 1)
-    assert resources.choose_block(head, job, ex) is ex
+    assert not resources.choose_layout(head, job, ex).blocked
 
 
 def test_scratch_of_a_killed_run_is_removed_by_the_next_run(tmp_path, monkeypatch):

@@ -28,9 +28,9 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["before", "lower", "descend", "resolve", "hslot", "upsert", "find", "fill_cells",
-           "CODES8", "CODES4", "GROUPS8", "GROUPS4", "CANDIDATE", "MINIMUM", "sweep", "label_of",
-           "resolve_all", "NOLABEL", "earlier"]
+__all__ = ["before", "kbefore", "elder_rule", "lower", "descend", "resolve", "hslot", "upsert",
+           "find", "fill_cells", "CODES8", "CODES4", "GROUPS8", "GROUPS4", "CANDIDATE", "MINIMUM",
+           "sweep", "label_of", "resolve_all", "NOLABEL", "earlier"]
 
 
 @njit(cache=True, inline="always")
@@ -39,6 +39,37 @@ def before(zk, a, b):
     za = zk[a]
     zb = zk[b]
     return za < zb or (za == zb and a < b)
+
+
+@njit(cache=True, inline="always")
+def kbefore(ka, a, kb, b):
+    """True when (key ``ka``, cell ``a``) precedes (key ``kb``, cell ``b``) in the total order."""
+    return ka < kb or (ka == kb and a < b)
+
+
+@njit(cache=True, inline="always")
+def elder_rule(ra, rb, out_id, key, cell):
+    """The elder rule where the distinct components ``ra`` and ``rb`` meet:
+    ``(old, young)``, the younger one dying there. The outlet ``out_id``
+    (born at -inf) is older than every component; otherwise the one whose
+    birth (key ``key[r]``, cell ``cell[r]``) comes first in the total order
+    is older. Shared by the whole-raster union-find
+    (:mod:`terrain.engine.persistence`) and the blocked engine's glue
+    (:func:`terrain.engine.blocked.kernels.glue_merge`).
+
+    References
+    ----------
+    .. [1] Edelsbrunner, H., Letscher, D., Zomorodian, A. (2002). Topological
+       persistence and simplification. Discrete Comput. Geom. 28, 511-533.
+       doi:10.1007/s00454-002-2885-2 (elder rule).
+    """
+    if ra == out_id:
+        return ra, rb
+    if rb == out_id:
+        return rb, ra
+    if kbefore(key[ra], cell[ra], key[rb], cell[rb]):
+        return ra, rb
+    return rb, ra
 
 
 @njit(cache=True, inline="always")

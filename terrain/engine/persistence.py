@@ -74,7 +74,20 @@ from numba import njit
 
 from ..errors import OptionError
 from ..pairlog import AREA_QUANTUM, VOLUME_QUANTUM  # the fixed point of ponded sums
-from .basins import CODES4, CODES8, GROUPS4, GROUPS8, earlier, fill_cells, find, label_of, resolve_all, sweep
+from .basins import (
+    CODES4,
+    CODES8,
+    GROUPS4,
+    GROUPS8,
+    earlier,
+    elder_rule,
+    fill_cells,
+    find,
+    kbefore,
+    label_of,
+    resolve_all,
+    sweep,
+)
 from .grid import is_edge, neighbour, offsets
 
 __all__ = ["Pairs", "pairs", "Fill", "pits_and_levels", "pairs_and_fill", "count_ponding",
@@ -308,18 +321,12 @@ def _gather(z, s, valid, nr, nc, dr, dc, lab, cells, ordered):
 
 
 @njit(cache=True, inline="always")
-def _kbefore(ka, a, kb, b):
-    """(key, cell) ``(ka, a)`` precedes ``(kb, b)``."""
-    return ka < kb or (ka == kb and a < b)
-
-
-@njit(cache=True, inline="always")
 def _sort_group(pk, pb, pe, g0, g1):
     """Order the pairs ``g0:g1`` (one death cell) by birth in the total order."""
     for q in range(g0 + 1, g1):
         k, b, e = pk[q], pb[q], pe[q]
         p = q
-        while p > g0 and _kbefore(k, b, pk[p - 1], pb[p - 1]):
+        while p > g0 and kbefore(k, b, pk[p - 1], pb[p - 1]):
             pk[p] = pk[p - 1]
             pb[p] = pb[p - 1]
             pe[p] = pe[p - 1]
@@ -400,22 +407,14 @@ def _merge(minc, kmin, emin0, kemin0, order, cells, key, own, edge, off, nbr, ou
             rb = find(parent, b)
             if ra == rb:
                 continue
-            # elder rule: the younger component dies at w
-            if ra == out_id:
-                old, young = ra, rb
-            elif rb == out_id:
-                old, young = rb, ra
-            elif _kbefore(kmin[ra], minc[ra], kmin[rb], minc[rb]):
-                old, young = ra, rb
-            else:
-                old, young = rb, ra
+            old, young = elder_rule(ra, rb, out_id, kmin, minc)  # the younger dies at w
             zm = kmin[young]
             if zm != zw:
                 e = emin[young]
                 pb[npairs] = minc[young]
                 pk[npairs] = zm
                 pd[npairs] = w
-                pe[npairs] = (e >= 0 and not _kbefore(zw, w, kemin[young], e)) or edge[t]
+                pe[npairs] = (e >= 0 and not kbefore(zw, w, kemin[young], e)) or edge[t]
                 if regions:
                     pair_of[young] = npairs
                 npairs += 1
@@ -447,7 +446,7 @@ def _merge(minc, kmin, emin0, kemin0, order, cells, key, own, edge, off, nbr, ou
                 continue
             y = pend_young[q]
             ey = emin[y]
-            if ey >= 0 and (emin[old] < 0 or _kbefore(kemin[y], ey, kemin[old], emin[old])):
+            if ey >= 0 and (emin[old] < 0 or kbefore(kemin[y], ey, kemin[old], emin[old])):
                 emin[old] = ey
                 kemin[old] = kemin[y]
     esb, ese = _essential(parent, minc, emin)

@@ -214,8 +214,10 @@ class CatchmentJob:
                 names += [LAYERS[layer_name("catchments", role)].concrete(i) for i in self.layer_ids]
         return tuple(names)
 
-    def resolved(self, dem: Dem, model: ErrorModel) -> CatchmentJob:
-        """This job with its defaults resolved and the grid's arrays prepared.
+    def resolved(self, dem: Dem, model: ErrorModel, *, layout=None) -> CatchmentJob:
+        """This job with its defaults resolved and the grid's arrays prepared
+        (the whole grid in memory, whatever the ``layout``: catchments have no
+        blocked mode).
 
         The first time (no snap candidates yet), outlets that snap to one cell on
         the DEM as given are refused (:func:`refuse_shared_cells`)."""

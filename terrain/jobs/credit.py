@@ -56,6 +56,7 @@ from ..engine.persistence import (
 )
 from ..errors import CheckpointError, OptionError
 from ..layers import layer_name, layers_of
+from ..layout import RunLayout, layout_of
 from ..noise import ErrorModel, ErrorSampler
 from ..pairlog import (
     LOG_FIELDS,
@@ -171,21 +172,24 @@ class CreditJob:
         names = ("threshold", "merge_level") + (("base",) if self.kind == "peaks" else ())
         return tuple(n for n in names if getattr(self, n) is None or n in self.from_defaults)
 
-    def resolved(self, dem: Dem, model: ErrorModel, *, block: int | None = None) -> CreditJob:
+    def resolved(self, dem: Dem, model: ErrorModel, *,
+                 layout: RunLayout | None = None) -> CreditJob:
         """This job with every ``None`` setting replaced by its library default
         and the unperturbed DEM's regions computed (resolving twice changes
-        nothing); a DEM on disk gets them in blocks of ``block`` cells (the
-        run's, so the glue holds no more boundary than the run's own)."""
+        nothing); a DEM on disk gets them block by block, in the run's
+        ``layout`` (:attr:`~terrain.layout.RunLayout.given_block`; default:
+        :func:`~terrain.layout.layout_of` the DEM)."""
+        layout = layout if layout is not None else layout_of(dem)
         thr = defaults.cutoff(self.threshold, model.rmse)
         merge = defaults.merge_level(self.merge_level, model.rmse, thr)
         reg = self.regions
         if reg is None or reg.merge_level != merge or tuple(reg.labels.shape) != dem.shape:
             reg = dem_regions(dem, kind=self.filtration, merge_level=merge,
-                              connectivity=self.connectivity, block=block)
+                              connectivity=self.connectivity, layout=layout)
         metres = tuple(np.asarray(a, np.float64) for a in dem.cell_metres())
         geo = tuple(dem.transform)[:6] if dem.geographic else None
         given = self.given if reg is self.regions and self.given is not None else \
-            dem_relations(dem, reg, self.filtration, self.connectivity, metres, geo, block)
+            dem_relations(dem, reg, self.filtration, self.connectivity, metres, geo, layout)
         return dataclasses.replace(
             self, threshold=thr, merge_level=merge, regions=reg, area_row=dem.cell_area_m2(),
             base=defaults.base_level(self.base, dem) if self.kind == "peaks" else None,
@@ -231,31 +235,32 @@ class CreditJob:
 
 
 def dem_regions(dem: Dem, *, kind: str, merge_level: float, connectivity: int,
-                block: int | None = None) -> Regions:
-    """The regions of ``dem`` as given; a DEM on disk gets them block by block,
-    its labels in a grid on disk beside it (the same regions, bit for bit)."""
-    if not dem.on_disk:
+                layout: RunLayout | None = None) -> Regions:
+    """The regions of ``dem`` as given; a DEM on disk gets them block by block
+    (``layout.given_block``), its labels in a grid on disk beside it (the same
+    regions, bit for bit)."""
+    block = (layout if layout is not None else layout_of(dem)).given_block
+    if block is None:
         return regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
                        mask=dem.nodata)
     from ..engine.blocked import blocked_regions
 
     return blocked_regions(dem.z, kind=kind, merge_level=merge_level, connectivity=connectivity,
-                           block=block or defaults.DISK_BLOCK,
-                           out=dem.new_grid("regions", dem.shape, np.int32))
+                           block=block, out=dem.new_grid("regions", dem.shape, np.int32))
 
 
 def dem_relations(dem: Dem, reg: Regions, filtration: str, connectivity: int, metres, geo,
-                  block: int | None = None) -> Given:
+                  layout: RunLayout | None = None) -> Given:
     """Relations of every region on the DEM as given (:class:`~terrain.jobs.relations.Given`):
-    the DEM's pairs with their elders (block by block for a DEM on disk) and,
-    for peaks, the isolation of each region's summit."""
-    if not dem.on_disk:
+    the DEM's pairs with their elders (block by block for a DEM on disk,
+    ``layout.given_block``) and, for peaks, the isolation of each region's summit."""
+    block = (layout if layout is not None else layout_of(dem)).given_block
+    if block is None:
         p = pairs(dem.z, kind=filtration, connectivity=connectivity, mask=dem.nodata)
     else:
         from ..engine.blocked import blocked_pairs
 
-        p = blocked_pairs(dem.z, kind=filtration, connectivity=connectivity,
-                          block=block or defaults.DISK_BLOCK)
+        p = blocked_pairs(dem.z, kind=filtration, connectivity=connectivity, block=block)
     return given_relations(dem.z, p, reg, lambda c: labels_at(reg.labels, c), metres, geo,
                            filtration == "peaks")
 

@@ -46,7 +46,6 @@ from typing import Any
 
 import numpy as np
 
-from ..defaults import DISK_BLOCK
 from ..dem import Dem
 from ..engine.blocked import (
     LevelInputs,
@@ -72,6 +71,7 @@ from ..io import (
     scratch_folder,
     write_npy_window,
 )
+from ..layout import RunLayout, layout_of
 from ..noise import ErrorSampler
 from ..pairlog import AREA_QUANTUM, VOLUME_QUANTUM, pond_log
 from .relations import pair_log, summit_isolation
@@ -478,7 +478,7 @@ def grid_values_at(regions: Any, cells: np.ndarray, nc: int) -> np.ndarray:
     return out
 
 
-def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+def unperturbed_ponding(dem: Dem, job, layout: RunLayout | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Ponded area (m^2) and storage volume (the DEM's vertical unit x m^2; times
     ``dem.metres_per_unit`` for m^3) of every region on the DEM as given,
     indexed by region id (index 0: cells in no region).
@@ -486,13 +486,16 @@ def unperturbed_ponding(dem: Dem, job, block: int | None = None) -> tuple[np.nda
     A cell is ponded when it lies below its depression's spill level and the
     depression is at least the job's cut-off deep; its volume is the depth
     to the filled level times the cell's area. On a DEM a water surface is
-    the floor, so this is storage above the surface the DEM captured.
+    the floor, so this is storage above the surface the DEM captured. A DEM
+    on disk is worked block by block (``layout.given_block``; default:
+    :func:`~terrain.layout.layout_of` the DEM).
     """
     k = len(job.regions) + 1
-    if dem.on_disk:
+    block = (layout if layout is not None else layout_of(dem)).given_block
+    if block is not None:
         area, volume = ponding_totals(dem.z, job.regions.labels, job.area_row, job.threshold,
                                       connectivity=job.connectivity, k=k,
-                                      block=block or DISK_BLOCK, keep=dem.scratch)
+                                      block=block, keep=dem.scratch)
         return area * AREA_QUANTUM, volume * VOLUME_QUANTUM
     _, fill = pits_and_levels(dem.z, connectivity=job.connectivity, mask=dem.nodata)
     area, volume = np.zeros(k, np.int64), np.zeros(k, np.int64)

@@ -10,12 +10,13 @@ A :class:`MapFrame` draws a map of one DEM the same way for every command:
 - aspect correct for geographic CRSs (a degree of longitude drawn
   ``cos(latitude)`` times as long as a degree of latitude), a scale bar of a
   round length, and a north arrow only when the grid is north-up in a known
-  CRS;
+  CRS, both where the map is emptiest (:mod:`terrain.outputs.furniture`);
 - polygons, points and contour lines, each with a legend entry (the legend
   names every symbol and colour drawn);
-- labels placed by adjustText so that they overlap neither each other nor
-  any marker, with leader lines where a label had to move; a label that the
-  placement could not clear is left out (its marker stays);
+- labels placed so that they overlap neither each other nor any marker
+  (:mod:`terrain.outputs.labels`), with leader lines where a label had to
+  move; at most :data:`MAX_LABELS`, and one that the placement could not
+  clear is left out (its marker stays) and named in the footer;
 - a title, and a footer with the error model, the realisation count and the
   caution; fonts of at least 9 pt at the saved size, laid out tightly.
 
@@ -27,17 +28,12 @@ pooled, one float64 copy of it on the DEM's grid exists for a moment (8
 bytes per cell; the hillshade of a DEM with nodata adds 16 for the nearest-
 cell indices).
 
-Colour maps are slices of matplotlib's perceptually uniform maps, each
-running from light to dark, so they read in greyscale and by colour-blind
-readers (matplotlib's maps were designed for both; van der Walt & Smith,
-"A Better Default Colormap for Matplotlib", SciPy 2015; Nuñez, Anderton &
-Renslow, "Optimizing colormaps with consideration for color vision
-deficiency", PLoS ONE 13, 2018, for ``cividis``).
+Text sizes, ink and the palettes are the house style
+(:mod:`terrain.outputs.style`).
 """
 
 from __future__ import annotations
 
-import logging
 import math
 import textwrap
 import warnings
@@ -45,104 +41,29 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from ..dem import Dem, metres_per_degree
+from ..dem import Dem
 from ..layers import MAX_PIXELS
+from .furniture import furniture_boxes, north_arrow, north_up, place_furniture, scale_bar
+from .labels import place_labels
+from .style import DPI, FONT_PT, INK, NODATA, halo, power_of_ten
 
 if TYPE_CHECKING:
-    from matplotlib.axes import Axes
-    from matplotlib.colors import Colormap
     from matplotlib.figure import Figure
 
-__all__ = ["MapFrame", "PALETTES", "OUTLINE_COLOURS", "INK", "palette", "hillshade", "nice_length",
-           "short_unit", "boxes_overlap", "place_labels", "power_of_ten", "FONT_PT", "DPI"]
+__all__ = ["MapFrame", "hillshade", "pooling", "pool_bands", "pooled_dem",
+           "MAX_LABELS", "NAMED_UNPLACED"]
 
-FONT_PT = 9.0  # the smallest text on any figure, at the saved size
-DPI = 120
-INK = "#1a1a1a"
-NODATA = "#ece6da"
-HALO_PT = 2.6
 WIDTH_IN = 10.0  # every map is this wide
 MAP_HEIGHT_IN = 8.5  # and its map at most this tall
 MAX_STRETCH = 3.0  # a map at most this many times wider than tall (or taller than wide); a
 #                     thinner strip of raster is drawn stretched, and the subtitle says so
 
-#: name -> (matplotlib map, start, end): light (low values) to dark (high values)
-PALETTES = {"summits": ("magma", 0.97, 0.22), "water": ("cividis", 0.97, 0.08),
-            "divides": ("viridis", 0.97, 0.12)}
-#: outline colours for catchments, told apart by lightness as well as hue
-OUTLINE_COLOURS = ("#1f5fa8", "#d1600a", "#6a3d9a", "#127a5c", "#b0124a", "#7a5c00",
-                   "#0092b8", "#505050")
-#: where a label starts in each placement (pixels right and up of its point, alignment) and
-#: where adjustText may move it: right of it, anywhere; labels that still overlap start left
-#: of it, above it moving only up, below it moving only down, then at the four diagonals,
-#: then further out; :func:`place_labels` tries the first ADJUST_STARTS of them with adjustText
-#: and then looks for the nearest free spot (cheaper than more adjustText passes)
-LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center", "xy"),
-                (0.0, 9.0, "center", "bottom", "y+"), (0.0, -9.0, "center", "top", "y-"),
-                (8.0, -8.0, "left", "top", "xy"), (-8.0, -8.0, "right", "top", "xy"),
-                (8.0, 8.0, "left", "bottom", "xy"), (-8.0, 8.0, "right", "bottom", "xy"),
-                (0.0, -40.0, "center", "top", "y-"), (0.0, 40.0, "center", "bottom", "y+"))
-ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
-LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
-ADJUST_STARTS = 4  # adjustText placements before the search for a free spot
 #: a map places at most this many labels, the most important first (a quick-look with a
 #: hundred outlets stays readable, and adjustText's cost grows with the square of them);
 #: the footer counts the rest
 MAX_LABELS = 30
 #: the footer names at most this many labels left out, then says how many more
 NAMED_UNPLACED = 8
-#: where the scale bar and the north arrow may go, in order of preference: corners, then
-#: the middles of the edges (matplotlib's legend location codes for the bar)
-PLACES = ("lower left", "lower right", "upper left", "upper right", "lower center",
-          "upper center", "center left", "center right")
-BAR_CODES = {"upper right": 1, "upper left": 2, "lower left": 3, "lower right": 4,
-             "center left": 6, "center right": 7, "lower center": 8, "upper center": 9}
-
-
-def palette(name: str) -> Colormap:
-    """A named colour map of :data:`PALETTES` (light = low, dark = high).
-
-    References
-    ----------
-    .. [1] van der Walt, S. & Smith, N. (2015). A Better Default Colormap for
-       Matplotlib. SciPy 2015 (the perceptually uniform maps sliced here).
-    """
-    import matplotlib
-    from matplotlib.colors import ListedColormap
-
-    base, start, end = PALETTES[name]
-    return ListedColormap(matplotlib.colormaps[base](np.linspace(start, end, 256)), name=name)
-
-
-def nice_length(x: float) -> float:
-    """The largest round length (1, 2 or 5 x 10^k) not above ``x`` (x > 0)."""
-    e = 10.0 ** math.floor(math.log10(x))
-    return max(m * e for m in (1, 2, 5) if m * e <= x * (1 + 1e-9))
-
-
-def short_unit(unit: str | None) -> str:
-    """A vertical unit as a reader writes it (``metre`` -> ``m``)."""
-    u = (unit or "").strip().lower()
-    return {"metre": "m", "meter": "m", "metres": "m", "meters": "m", "m": "m",
-            "foot": "ft", "feet": "ft", "ft": "ft", "us survey foot": "US survey ft",
-            "us-ft": "US survey ft"}.get(u, unit or "DEM units")
-
-
-
-_SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
-
-
-def power_of_ten(v: float) -> str:
-    """A tick of a log scale as plain text: 1e5 -> '10⁵' (mathtext is off in figures,
-    so matplotlib's own '$10^{5}$' would be printed as it is); other values as numbers."""
-    if v <= 0 or not np.isfinite(v):
-        return ""
-    e = round(float(np.log10(v)))
-    if abs(v - 10.0 ** e) > 1e-9 * v:
-        return f"{v:g}"
-    return "1" if e == 0 else "10" if e == 1 else "10" + str(e).translate(_SUPERSCRIPT)
-
-
 def _pool(a: np.ndarray, k: int, how) -> np.ndarray:
     if k == 1:
         return a
@@ -379,7 +300,7 @@ class MapFrame:
         if not paths:
             return
         coll = PathCollection(paths, facecolors="none", edgecolors=colour, linewidths=lw,
-                              label=label, zorder=3, path_effects=_halo(lw + 1.6))
+                              label=label, zorder=3, path_effects=halo(lw + 1.6))
         self.ax.add_collection(coll)
         self.handles.append(_line_key(colour, label, lw=lw))
 
@@ -406,7 +327,7 @@ class MapFrame:
         if not segs:
             return
         coll = LineCollection(segs, colors=colour, linewidths=lw, linestyles=ls, label=label,
-                              zorder=4, path_effects=_halo(lw + 1.4))
+                              zorder=4, path_effects=halo(lw + 1.4))
         self.ax.add_collection(coll)
         self.handles.append(_line_key(colour, label, lw=lw, ls=ls))
 
@@ -427,7 +348,7 @@ class MapFrame:
             cs.remove()
             return False
         cs.set_label(label)
-        cs.set(path_effects=_halo(max(widths) + 1.6))
+        cs.set(path_effects=halo(max(widths) + 1.6))
         # the lines are drawn; matplotlib's contour generator would keep its own
         # float64 copies of the grid (~28 bytes per drawn cell per contoured layer)
         if hasattr(cs, "_contour_generator"):
@@ -466,11 +387,13 @@ class MapFrame:
         """Lay the map out, place the labels and return the Figure.
 
         The scale bar and the north arrow go where the map holds the fewest
-        markers and labelled points (:meth:`_corners`: a corner, or the middle
-        of an edge), so they cover as little of the map's content as it allows."""
-        self._scale_bar()
-        if self._north_up():
-            self._north_arrow("upper right")
+        markers and labelled points (:func:`~terrain.outputs.furniture.place_furniture`:
+        a corner, or the middle of an edge), so they cover as little of the map's
+        content as it allows."""
+        arrow = north_up(self.dem)
+        scale_bar(self.ax, self.dem, self.extent)
+        if arrow:
+            north_arrow(self.ax, "upper right")
         self._legend_and_text()
         self.ax.set_aspect(self.aspect())  # imshow resets it
         self.shown = self._shown_ratio()
@@ -479,65 +402,15 @@ class MapFrame:
             self.subtitle_text.set_text(self.subtitle_text.get_text() + "\nDrawn stretched: the "
                                         "raster is a thin strip.")
         _lay_out(self)
-        self._corners()
-        r = self.fig.canvas.get_renderer()
-        fixed = [a.get_window_extent(r) for a in self.ax.artists + self.ax.texts
-                 if a.get_gid() in ("scale_bar", "north_arrow")]
-        fixed += [t.arrow_patch.get_window_extent(r) for t in self.ax.texts
-                  if t.get_gid() == "north_arrow"]
+        place_furniture(self.ax, self.avoid + [(x, y, 0.0) for x, y, _ in self.texts], arrow=arrow)
         kept = {t.get_text() for t in place_labels(self.ax, self.texts[:MAX_LABELS], self.avoid,
-                                                   fixed=fixed)}
+                                                   fixed=furniture_boxes(self.ax))}
         missing = [n for (*_, text), n in zip(self.texts, self.names) if text not in kept]
         if missing:  # say so in the footer; the map keeps its size, so labels stay clear
             self.footer += " " + self.unplaced.format(names=_some(missing))
             self.footer_text.set_text(self._footer())
             _lay_out(self)
         return self.fig
-
-    def _north_arrow(self, place: str) -> None:
-        """The north arrow ("N" under an arrow pointing up) at ``place`` of the map
-        (one of :data:`PLACES`)."""
-        for t in [t for t in self.ax.texts if t.get_gid() == "north_arrow"]:
-            t.remove()
-        vertical, _, horizontal = place.partition(" ")
-        x = {"left": 0.045, "center": 0.5, "right": 0.955}[horizontal]
-        tip, text = {"upper": (0.965, 0.875), "center": (0.545, 0.455),
-                     "lower": (0.155, 0.065)}[vertical]
-        self.ax.annotate("N", xy=(x, tip), xytext=(x, text), xycoords="axes fraction",
-                         ha="center", va="center", fontsize=FONT_PT + 2, weight="bold",
-                         gid="north_arrow", zorder=8,
-                         bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8),
-                         arrowprops=dict(facecolor=INK, edgecolor="white", width=3, headwidth=10,
-                                         lw=0.6))
-
-    def _corners(self) -> None:
-        """Put the scale bar, then the north arrow, where the laid-out map is
-        emptiest: of :data:`PLACES` (the corners first, then the middles of the
-        edges), the first whose box covers the fewest markers and labelled points;
-        the arrow never covers the bar."""
-        r = self.fig.canvas.get_renderer()
-        points = _marker_boxes(self.ax, self.avoid + [(x, y, 0.0) for x, y, _ in self.texts])
-        bar = next(a for a in self.ax.artists if a.get_gid() == "scale_bar")
-
-        def covered(boxes):
-            return sum(boxes_overlap(b, p, tol=0.0) for b in boxes for p in points)
-
-        counts = {}
-        for name in PLACES:
-            bar.loc = BAR_CODES[name]
-            counts[name] = covered([bar.get_window_extent(r)])
-        best = min(counts, key=counts.get)
-        bar.loc = BAR_CODES[best]
-        if not self._north_up():
-            return
-        taken, counts = bar.get_window_extent(r), {}
-        for name in ("upper right",) + tuple(p for p in PLACES if p != "upper right"):
-            self._north_arrow(name)
-            arrow = next(t for t in self.ax.texts if t.get_gid() == "north_arrow")
-            boxes = [arrow.get_window_extent(r), arrow.arrow_patch.get_window_extent(r)]
-            if not any(boxes_overlap(b, taken, tol=0.0) for b in boxes):
-                counts[name] = covered(boxes)
-        self._north_arrow(min(counts, key=counts.get))
 
     def _shown_ratio(self) -> float | None:
         """The height/width ratio to draw a thin strip at (None: true to scale)."""
@@ -554,36 +427,6 @@ class MapFrame:
         if not self.dem.geographic:
             return 1.0
         return 1.0 / math.cos(math.radians(float(np.mean(self.dem.row_latitudes()))))
-
-    def _north_up(self) -> bool:
-        a, b, _, d, e, _ = self.dem.transform
-        return self.dem.crs is not None and b == 0 and d == 0 and a > 0 and e < 0
-
-    def _scale_bar(self) -> None:
-        from matplotlib.font_manager import FontProperties
-        from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
-
-        dem = self.dem
-        width = self.extent[1] - self.extent[0]
-        if dem.crs is None:
-            m_per_unit, unit = 1.0, " cell units"
-        elif dem.geographic:
-            lat = float(np.mean(dem.row_latitudes()))
-            m_per_unit, unit = float(metres_per_degree(lat)[0]), None
-        else:
-            m_per_unit, unit = dem.linear_unit_m, None
-        length = nice_length(abs(width) * m_per_unit / 4)
-        if unit:
-            text = f"{length:g}{unit}"
-        else:
-            text = f"{length / 1000:g} km" if length >= 1000 else f"{length:g} m"
-        bar = AnchoredSizeBar(self.ax.transData, length / m_per_unit, text, "lower left",
-                              pad=0.4, borderpad=0.6, sep=3, frameon=True,
-                              size_vertical=abs(self.extent[3] - self.extent[2]) / 150,
-                              fontproperties=FontProperties(size=FONT_PT), color=INK)
-        bar.patch.set(alpha=0.8, edgecolor="none")
-        bar.set_gid("scale_bar")
-        self.ax.add_artist(bar)
 
     def _legend_and_text(self) -> None:
         fig = self.fig
@@ -608,13 +451,6 @@ def _single(colour: str):
     from matplotlib.colors import ListedColormap
 
     return ListedColormap([colour])
-
-
-def _halo(width: float):
-    from matplotlib import patheffects
-
-    return [patheffects.Stroke(linewidth=width, foreground="white", alpha=0.85),
-            patheffects.Normal()]
 
 
 def _line_key(colour: str, label: str, *, lw: float = 1.5, ls: str = "solid"):
@@ -669,233 +505,9 @@ def _lay_out(frame: MapFrame) -> None:
     frame.subtitle_text.set_position((0.5, 1 - (pad + title_h + 0.05) / height))
 
 
-def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT) -> list:
-    """Place text labels by their points without overlap (adjustText).
-
-    Each label starts beside its point and is pushed off every marker and
-    every other label. Labels come in order of importance. After the
-    placement, a label that still overlaps a more important label, a marker
-    or a ``fixed`` box is placed again from another start, through
-    :data:`LABEL_STARTS` (the first :data:`ADJUST_STARTS`); a less important
-    label in the way gives way (it is placed again in the next round), so
-    importance decides who keeps a place. One that still overlaps after the
-    last start goes to the nearest free spot within :data:`SEARCH_PX` pixels,
-    or is left out (its marker stays), so what is drawn never overlaps. A label that ends up
-    away from its point gets a leader line.
-
-    Parameters
-    ----------
-    ax : Axes
-        With its final position (lay the figure out first).
-    items : sequence of (x, y, text)
-    avoid : sequence of (x, y, marker size in points)
-    fixed : sequence of display boxes
-        Further places to keep clear (the scale bar, the north arrow).
-
-    Returns
-    -------
-    list of the Text objects kept, in the order of ``items``.
-
-    References
-    ----------
-    .. [1] adjustText (Flyamer et al., Zenodo, 2024): iterative repulsion of
-       text bounding boxes from each other and from given objects.
-    """
-    r = ax.figure.canvas.get_renderer()
-    items = list(items)
-    if items and not _fits(ax, r, items[0][2], fontsize):
-        items = []  # a thin strip of a map: no label fits inside it (the footer names them)
-    if not items:
-        return []
-    boxes = _marker_boxes(ax, avoid) + list(fixed)
-    kept: dict[int, object] = {}
-    todo = list(range(len(items)))
-    with _only_labels(ax):  # adjustText draws the figure; nothing else moves the labels
-        for start in LABEL_STARTS[:ADJUST_STARTS]:
-            if not todo:
-                break
-            # labels kept so far that are more important than every label to place are
-            # fixed; a less important one gives way if a more important label needs its room
-            fixed_kept = [kept[i].get_window_extent(r) for i in kept if i < todo[0]]
-            near = _near(ax, [items[i] for i in todo], boxes + fixed_kept)
-            texts = _adjust(ax, [items[i] for i in todo], near, fontsize, start)
-            evicted = _clear(ax, dict(zip(todo, texts)), boxes, kept)
-            for i, t in zip(todo, texts):
-                if kept.get(i) is not t:
-                    t.remove()
-            todo = sorted(set(i for i in todo if i not in kept) | set(evicted))
-        for i in todo:  # the last resort: the nearest free spot within SEARCH_PX
-            text = _free_spot(ax, items[i], boxes + [t.get_window_extent(r) for t in kept.values()],
-                              fontsize)
-            if text is not None:
-                kept[i] = text
-    size = {(x, y): s for x, y, s in avoid}
-    for i, t in kept.items():
-        _leader(ax, t, items[i][:2], size.get(items[i][:2], 0.0))
-    return [kept[i] for i in sorted(kept)]
-
-
 def _some(names: list[str]) -> str:
     """``names`` joined by commas, the first :data:`NAMED_UNPLACED` of them and a count of
     the rest."""
     if len(names) <= NAMED_UNPLACED:
         return ", ".join(names)
     return ", ".join(names[:NAMED_UNPLACED]) + f" and {len(names) - NAMED_UNPLACED} more"
-
-
-SEARCH_PX = 260.0  # the last resort looks for a free spot this far from a label's point
-
-
-def _free_spot(ax, item, obstacles, fontsize: float):
-    """A label for ``item`` at the free spot nearest its point (in rings of 12
-    pixels out to :data:`SEARCH_PX`, 24 directions each) where it lies inside
-    the axes and overlaps no obstacle; None when there is none."""
-    r = ax.figure.canvas.get_renderer()
-    x, y, label = item
-    t = ax.text(x, y, label, fontsize=fontsize, color=INK, zorder=7, ha="center", va="center",
-                gid="label", path_effects=_halo(HALO_PT))
-    t.set_in_layout(False)
-    box, frame = t.get_window_extent(r), ax.get_window_extent(r)
-    px, py = ax.transData.transform((x, y))
-    w, h = box.width / 2, box.height / 2
-    for radius in np.arange(12.0, SEARCH_PX + 1, 12.0):
-        for a in np.linspace(0, 2 * np.pi, 24, endpoint=False):
-            cx, cy = px + radius * np.cos(a), py + radius * np.sin(a)
-            b = box.translated(cx - (box.x0 + w), cy - (box.y0 + h))
-            if (frame.x0 <= b.x0 and b.x1 <= frame.x1 and frame.y0 <= b.y0 and b.y1 <= frame.y1
-                    and not any(boxes_overlap(b, o) for o in obstacles)):
-                t.set_position(ax.transData.inverted().transform((cx, cy)))
-                return t
-    t.remove()
-    return None
-
-
-def _fits(ax: Axes, r, text: str, fontsize: float) -> bool:
-    """Whether a label like ``text`` fits inside the map's axes (with room to move)."""
-    t = ax.text(0, 0, text, fontsize=fontsize, transform=None)
-    box = t.get_window_extent(r)
-    t.remove()
-    axes = ax.get_window_extent(r)
-    return axes.height >= 2 * box.height and axes.width >= box.width
-
-
-class _only_labels:
-    """Hide every artist of the figure but the map's texts for a while (adjustText
-    draws the whole figure each time it starts; the rest only costs time)."""
-
-    def __init__(self, ax):
-        fig = ax.figure
-        others = [a for a in fig.axes if a is not ax] + list(fig.legends) + list(fig.texts)
-        mine = [a for a in ax.get_children() if a not in ax.texts and a is not ax.patch]
-        self.hidden = [a for a in others + mine if a.get_visible()]
-
-    def __enter__(self):
-        for a in self.hidden:
-            a.set_visible(False)
-        return self
-
-    def __exit__(self, *exc):
-        for a in self.hidden:
-            a.set_visible(True)
-        return False
-
-
-def _adjust(ax, items, obstacles, fontsize, start) -> list:
-    """One adjustText placement of ``items`` away from ``obstacles`` (display
-    boxes), each label starting at ``start`` (offset in pixels, alignment, the
-    directions it may move) from its point; returns the texts."""
-    from adjustText import adjust_text
-    from matplotlib.transforms import Bbox
-
-    dx, dy, ha, va, move = start
-    xy = np.array([(x, y) for x, y, _ in items], float)
-    inv = ax.transData.inverted()
-    at = inv.transform(ax.transData.transform(xy) + np.array([dx, dy]))
-    texts = [ax.text(sx, sy, s, fontsize=fontsize, color=INK, zorder=7, ha=ha, va=va, gid="label",
-                     path_effects=_halo(HALO_PT)) for (sx, sy), (_, _, s) in zip(at, items)]
-    for t in texts:
-        t.set_in_layout(False)
-    objects = [Bbox(inv.transform(b.get_points())) for b in obstacles]
-    # adjustText logs when labels cannot fit (a thin strip of a map); the labels it
-    # cannot clear are left out and named in the footer, so its message is not ours
-    log = logging.getLogger("adjustText")
-    level = log.level
-    log.setLevel(logging.ERROR)
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            adjust_text(texts, objects=objects or None, ax=ax, avoid_self=False,
-                        target_x=xy[:, 0], target_y=xy[:, 1], **ADJUST,
-                        only_move={"text": move, "static": move, "explode": move, "pull": "xy"})
-    finally:
-        log.setLevel(level)
-    return texts
-
-
-def _leader(ax, text, xy, marker_pt: float) -> None:
-    """A straight leader line from the edge of ``text`` to its point, when the label
-    stands more than :data:`LEADER_PX` pixels off the point's marker."""
-    r = ax.figure.canvas.get_renderer()
-    box = text.get_window_extent(r).padded(2.0)
-    px, py = ax.transData.transform(xy)
-    qx, qy = min(max(px, box.x0), box.x1), min(max(py, box.y0), box.y1)  # nearest point of the box
-    gap = math.hypot(px - qx, py - qy) - marker_pt / 2 * ax.figure.dpi / 72.0
-    if gap <= LEADER_PX:
-        return
-    shrink = (marker_pt / 2 * ax.figure.dpi / 72.0 + 2.0) / math.hypot(px - qx, py - qy)
-    end = (px + (qx - px) * shrink, py + (qy - py) * shrink)
-    (x0, y0), (x1, y1) = ax.transData.inverted().transform([(qx, qy), end])
-    ax.plot([x0, x1], [y0, y1], color=INK, lw=0.7, zorder=6, gid="leader", label="_leader")
-
-
-def _near(ax, items, boxes, reach: float = 160.0, most: int = 160) -> list:
-    """The boxes adjustText is given: those within ``reach`` pixels of a labelled
-    point, at most ``most`` of them, nearest first (its cost grows with the square of
-    the obstacles; labels do not travel far, and :func:`_clear` checks them all)."""
-    if not boxes:
-        return []
-    pts = ax.transData.transform(np.array([(x, y) for x, y, _ in items], float))
-    centres = np.array([[(b.x0 + b.x1) / 2, (b.y0 + b.y1) / 2] for b in boxes])
-    d = np.abs(centres[:, None, :] - pts[None, :, :]).max(axis=2).min(axis=1)
-    order = np.argsort(d, kind="stable")[:most]
-    return [boxes[i] for i in order if d[i] <= reach]
-
-
-def _marker_boxes(ax, avoid) -> list:
-    from matplotlib.transforms import Bbox
-
-    if not avoid:
-        return []
-    xy = ax.transData.transform(np.array([(x, y) for x, y, _ in avoid]))
-    half = np.array([s for *_, s in avoid]) / 2 * ax.figure.dpi / 72.0 + 1.0
-    return [Bbox([[px - h, py - h], [px + h, py + h]]) for (px, py), h in zip(xy, half)]
-
-
-def boxes_overlap(a, b, tol: float = 0.5) -> bool:
-    """Whether two display boxes share an area wider and taller than ``tol`` pixels."""
-    return (min(a.x1, b.x1) - max(a.x0, b.x0) > tol) and (min(a.y1, b.y1) - max(a.y0, b.y0) > tol)
-
-
-def _clear(ax, texts: dict, obstacles, kept: dict) -> list:
-    """Keep those of ``texts`` (index of importance -> text, 0 the most important)
-    that lie inside the axes and overlap no obstacle, no more important label
-    kept, and no more important text of this pass; a less important label kept
-    earlier that a new one overlaps is taken out (removed from the axes and
-    from ``kept``) to be placed again. Updates ``kept``; returns the indices
-    taken out."""
-    r = ax.figure.canvas.get_renderer()
-    frame = ax.get_window_extent(r)
-    evicted = []
-    for i in sorted(texts):
-        e = texts[i].get_window_extent(r)
-        inside = (frame.x0 - 1 <= e.x0 and e.x1 <= frame.x1 + 1 and frame.y0 - 1 <= e.y0
-                  and e.y1 <= frame.y1 + 1)
-        if not inside or any(boxes_overlap(e, b) for b in obstacles):
-            continue
-        if any(boxes_overlap(e, kept[j].get_window_extent(r)) for j in kept if j < i):
-            continue
-        for j in [j for j in kept if j > i and boxes_overlap(e, kept[j].get_window_extent(r))]:
-            kept.pop(j).remove()
-            evicted.append(j)
-        kept[i] = texts[i]
-    return [j for j in evicted if j not in kept]

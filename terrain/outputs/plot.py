@@ -21,19 +21,8 @@ from ..layers import LAYERS, layer_name, read_window, spec, units
 from ..outlets import short
 from ..summary.features import LAYER_NAMES
 from .caution import CAUTION
-from .mapframe import (
-    FONT_PT,
-    INK,
-    OUTLINE_COLOURS,
-    PALETTES,
-    MapFrame,
-    hillshade,
-    palette,
-    pool_bands,
-    pooled_dem,
-    pooling,
-    short_unit,
-)
+from .mapframe import MapFrame, hillshade, pool_bands, pooled_dem, pooling
+from .style import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, palette, short_unit
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -236,7 +225,7 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     drawn = table[(table["p_above"] >= LABEL_PRESENCE)
                   | table["group"].isin([g for g, _ in groups])]
     main = layer_name(job.kind, kind["main"])
-    if dem.on_disk:  # out of core: draw from rasters pooled band by band
+    if result.layout.on_disk:  # out of core: draw from rasters pooled band by band
         dem, values, inside, tops = _pooled_view(result, features, main)
     else:
         values = result.layers[main][0]

@@ -224,7 +224,7 @@ def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
         describe[name] = dict(units=units(name, result.dem.unit_label, weight),
                               description=desc, note=s.note, roles=s.bands,
                               tags={**tags, **({"note": s.note} if s.note else {})})
-    if result.dem.on_disk:  # out of core: every layer written window by window
+    if result.layout.on_disk:  # out of core: every layer written window by window
         write_layers_by_window({n: outdir / f"{n}.tif" for n in describe}, result.dem,
                                functools.partial(read_window, result.layers),
                                layer_windows(result.dem.shape), describe)

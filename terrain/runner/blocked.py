@@ -49,7 +49,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import CairnError, OptionError, WorkerError
+from ..errors import CairnError, WorkerError
 from ..io import save_npy, scratch_file, scratch_folder
 from ..noise import ErrorSampler
 from .backends import (
@@ -62,36 +62,7 @@ from .backends import (
     spawning,
 )
 
-__all__ = ["BlockedContext", "blocked_runner", "check_block", "MIN_BLOCK", "scratch_arrays",
-           "effective_block"]
-
-MIN_BLOCK = 16  # cells a side, at least
-
-
-def check_block(block: int | None, job=None) -> None:
-    """Refuse a block size below :data:`MIN_BLOCK` or (given) a job that has no blocked mode."""
-    if block is None:
-        return
-    if isinstance(block, bool) or int(block) != block or block < MIN_BLOCK:
-        raise OptionError(f"{{block}} must be a whole number of cells >= {MIN_BLOCK}, got {block}",
-                          "block")
-    if job is not None and getattr(job, "kind", None) not in ("peaks", "depressions"):
-        raise OptionError("{block} is for peaks and depressions runs (catchments need the "
-                          "whole grid's flow directions)", "block")
-
-
-def effective_block(block: int | None, shape) -> int | None:
-    """The block side a run uses: ``block``, but no larger than the grid's longer
-    side (a block larger than the grid is one block, whatever number was
-    given; the layers do not depend on it) and never below :data:`MIN_BLOCK`.
-    Values that are not a whole number are returned for :func:`check_block`
-    to refuse."""
-    if block is None or isinstance(block, bool) or not isinstance(block, (int, np.integer)):
-        return block
-    if block < MIN_BLOCK:
-        return block
-    return int(max(MIN_BLOCK, min(int(block), max(int(v) for v in shape))))
-
+__all__ = ["BlockedContext", "blocked_runner", "scratch_arrays"]
 
 @dataclass
 class BlockedContext:
@@ -113,14 +84,14 @@ class BlockedContext:
 
 
 @contextlib.contextmanager
-def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool,
+def scratch_arrays(z: np.ndarray, labels: np.ndarray, *, to_files: bool, on_disk: bool = False,
                    scratch: str | os.PathLike | None = None):
     """Yield ``(dem, regions, realisation)``: the arrays themselves and None, or
     (``to_files``) paths of ``.npy`` copies in a new scratch folder under
     ``scratch`` (default: the system's temporary folder) and the path each
     realisation is drawn into; the folder is removed on exit. Arrays already
-    on disk (:class:`~terrain.io.NpyWindows`) are passed by path, not copied."""
-    on_disk = not isinstance(z, np.ndarray)  # already files (a DEM kept on disk)
+    on disk (``on_disk``: :class:`~terrain.io.NpyWindows` of an out-of-core
+    run, :attr:`terrain.layout.RunLayout.on_disk`) are passed by path, not copied."""
     if not to_files and not on_disk:
         yield z, labels, None
         return

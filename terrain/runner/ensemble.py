@@ -19,6 +19,7 @@ References
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import os
 import time
 from collections.abc import Callable
@@ -29,10 +30,11 @@ import numpy as np
 from ..dem import Dem
 from ..errors import MemoryGuardError, OptionError
 from ..io import CountStore, available_memory, count_store_file, hold_checkpoint, remove_orphan_scratch
+from ..layout import RunLayout, check_block, layout_of
 from ..noise import ErrorModel, ErrorSampler
 from ..noise.fields import check_range
 from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
-from .blocked import BlockedContext, blocked_runner, check_block, effective_block, scratch_arrays
+from .blocked import BlockedContext, blocked_runner, scratch_arrays
 from .checkpoint import (
     check_resume,
     counts_path,
@@ -79,6 +81,8 @@ class RunResult:
         Everything that defines the run's realisations (checkpoints).
     info : dict
         Backend, workers, timings, defaults used, whether adaptive stopping fired.
+    layout : RunLayout
+        Whole grid or blocks, in memory or on disk (:mod:`terrain.layout`).
     """
 
     dem: Dem
@@ -89,6 +93,7 @@ class RunResult:
     n: int
     params: dict
     info: dict = field(default_factory=dict)
+    layout: RunLayout = field(default_factory=RunLayout)
 
 
 def _catch_sigint(flag: dict) -> Callable[[], None]:
@@ -287,37 +292,34 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
        Analysis. Chapman & Hall (kernel smoothing by convolution).
     """
     refuse_in_bootstrapping_child()
-    block = effective_block(block, dem.shape)
     ex = Execution(realisations, seed, backend, workers, scheduler, chunk, checkpoint,
                    checkpoint_every, resume, target_se, check_every, min_realisations,
                    memory_check, block)
-    check_block(block, job)
-    if dem.on_disk and block is None:
-        raise OptionError(f"{dem.source}: a DEM kept on disk is run block by block; give "
-                          "{block}", "block")
+    layout = layout_of(dem, block, job=job, run=True)
+    ex = dataclasses.replace(ex, block=layout.block)
     remove_orphan_scratch()  # what a killed blocked run left in the temporary folder
     if checkpoint is not None:  # its folder can be written, before its lock is made there
         prepare_checkpoint(checkpoint, resume=resume)
     with hold_checkpoint(checkpoint) if checkpoint is not None else contextlib.nullcontext():
-        return _run(dem, job, model, ex, progress)
+        return _run(dem, job, model, ex, layout, progress)
 
 
-def _run(dem: Dem, job, model: ErrorModel, ex: Execution, progress) -> RunResult:
+def _run(dem: Dem, job, model: ErrorModel, ex: Execution, layout: RunLayout,
+         progress) -> RunResult:
     """:func:`run_ensemble` once the execution is validated and the checkpoint held."""
-    realisations, block, checkpoint = ex.realisations, ex.block, ex.checkpoint
+    realisations, block, checkpoint = ex.realisations, layout.block, ex.checkpoint
     stop = StopRule(ex.target_se, ex.check_every, ex.min_realisations)
     t0 = time.perf_counter()
-    st = _start(dem, job, model, ex)
+    st = _start(dem, job, model, ex, layout)
     acc, start = st.acc, st.acc.n
     # blocked mode takes realisations one at a time (its tasks are the blocks), so
     # Ctrl-C stops after the realisation under way
-    size = ex.chunk or (1 if block is not None else chunk_size(
+    size = ex.chunk or (1 if layout.blocked else chunk_size(
         start, realisations, workers=ex.n_workers, checkpoint_every=ex.checkpoint_every,
         check_every=ex.check_every if stop.active else None))
     flag = {"stop": False, "interrupted": False}
-    layout = {"counts_on_disk": bool(getattr(acc, "on_disk", False)), "block": block}
     saver = _Saver(checkpoint, ex.checkpoint_every, acc, st.params, resumed=ex.resume,
-                   layout=layout)
+                   layout=layout.checkpoint_layout())
     watch = LogWatch(dem.source, realisations, stop if stop.active else None) \
         if ex.memory_check else None
 
@@ -332,9 +334,9 @@ def _run(dem: Dem, job, model: ErrorModel, ex: Execution, progress) -> RunResult
     halt = lambda: flag["stop"] or flag["interrupted"]  # noqa: E731
     with contextlib.ExitStack() as scope:
         # chunks shrink towards the end, unless adaptive stopping needs whole check intervals
-        taper = ex.n_workers if (ex.resolved_backend != "serial" and block is None
+        taper = ex.n_workers if (ex.resolved_backend != "serial" and not layout.blocked
                                  and ex.chunk is None and not stop.active) else 0
-        runner = _runner(st, ex, chunks(start, realisations, size, taper), halt, scope)
+        runner = _runner(st, ex, layout, chunks(start, realisations, size, taper), halt, scope)
         stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
                                       on_fold=on_fold, saver=saver)
     wall = time.perf_counter() - t0
@@ -346,22 +348,24 @@ def _run(dem: Dem, job, model: ErrorModel, ex: Execution, progress) -> RunResult
             "stop_statistic": acc.stop_statistic() if stop.active else None,
             "defaults": st.used,
             "field_kernel_radius_cells": list(st.sampler.field.radius) if st.sampler.field else None}
-    return RunResult(dem, st.job, model, acc.layers(dem.shape), acc.log(), acc.n, st.params, info)
+    return RunResult(dem, st.job, model, acc.layers(dem.shape), acc.log(), acc.n, st.params, info,
+                     layout)
 
 
-def _runner(st, ex: Execution, plan, halt, scope: contextlib.ExitStack):
+def _runner(st, ex: Execution, layout: RunLayout, plan, halt, scope: contextlib.ExitStack):
     """The backend generator of the run: whole realisations, or blocks of each."""
-    if ex.block is None:
+    if not layout.blocked:
         return BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(ex.seed)),
                                              plan, ex.n_workers, ex.scheduler, halt)
     # local processes read files in a scratch folder; Dask tasks are sent their windows
     dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
-        st.z, st.job.regions.labels, to_files=ex.resolved_backend == "processes"))
-    ponding = st.acc.ponding if getattr(st.acc, "on_disk", False) else None
-    on_disk = not isinstance(st.z, np.ndarray)  # the DEM as read: its values still to shift
+        st.z, st.job.regions.labels, to_files=ex.resolved_backend == "processes",
+        on_disk=layout.on_disk))
+    ponding = st.acc.ponding if layout.counts_on_disk else None
+    # a DEM on disk is read as it is stored: its values are still to shift
     return blocked_runner(BlockedContext(dem_src, reg_src, st.sampler, st.job, int(ex.seed),
-                                         int(ex.block), drawn, ponding,
-                                         _reference(st.job) if on_disk else 0.0),
+                                         int(layout.block), drawn, ponding,
+                                         _reference(st.job) if layout.on_disk else 0.0),
                           plan, ex.resolved_backend, ex.n_workers, ex.scheduler, halt)
 
 
@@ -375,7 +379,7 @@ class _Start:
     acc: object
 
 
-def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
+def _start(dem: Dem, job, model: ErrorModel, ex: Execution, layout: RunLayout) -> _Start:
     """Resolve the job, build the sampler and accumulator, restore a checkpoint."""
     if ex.checkpoint is not None:
         prepare_checkpoint(ex.checkpoint, resume=ex.resume)
@@ -384,16 +388,16 @@ def _start(dem: Dem, job, model: ErrorModel, ex: Execution) -> _Start:
     spacing = (float(np.mean(h_m)), float(np.mean(w_m)))
     if model.correlated:
         check_range(model.range_m, spacing, dem.shape, dem.source or "the DEM")
-    job = job.resolved(dem, model, **({"block": ex.block} if dem.on_disk else {}))
+    job = job.resolved(dem, model, layout=layout)
     params = run_params(dem, job, model, ex.seed)
-    on_disk = dem.on_disk and getattr(job, "kind", None) == "depressions"
     if ex.resume:  # before anything is opened: the checkpoint is this run's, in this layout
         check_resume(ex.checkpoint, params, realisations=ex.realisations,
-                     counts_on_disk=on_disk, block=ex.block)
+                     counts_on_disk=layout.counts_on_disk, block=layout.block)
     sampler = ErrorSampler(model, dem.shape, spacing)
-    if dem.on_disk:  # out of core: the DEM's file is read by window; counts go to disk
+    if layout.on_disk:  # out of core: the DEM's file is read by window; counts go to disk
         z = dem.z
-        acc = job.accumulator(dem.shape[0] * dem.shape[1], **_count_store(dem, job, ex, params))
+        acc = job.accumulator(dem.shape[0] * dem.shape[1],
+                              **_count_store(dem, ex, layout, params))
     else:  # float32, relative to the job's reference elevation (terrain.dem.Dem.reference)
         ref = _reference(job)
         z = np.where(dem.nodata, np.nan, dem.z - ref if ref else dem.z).astype(np.float32)
@@ -408,15 +412,16 @@ def _reference(job) -> float:
     return float(getattr(job, "reference", None) or 0.0)
 
 
-def _count_store(dem: Dem, job, ex: Execution, params: dict) -> dict:
-    """The on-disk ponding counts of an out-of-core depressions run: beside the
-    checkpoint (``<checkpoint>.counts``, kept for a resume) or in the DEM's
-    scratch folder; the store carries the run's identity."""
-    if getattr(job, "kind", None) != "depressions":
+def _count_store(dem: Dem, ex: Execution, layout: RunLayout, params: dict) -> dict:
+    """The on-disk ponding counts of an out-of-core depressions run
+    (``layout.counts_on_disk``): beside the checkpoint (``<checkpoint>.counts``,
+    kept for a resume) or in the DEM's scratch folder; the store carries the
+    run's identity."""
+    if not layout.counts_on_disk:
         return {}
     path = (counts_path(ex.checkpoint) if ex.checkpoint is not None
             else count_store_file(dem.scratch))
-    return {"ponding": CountStore(path, dem.shape, int(ex.block), resume=ex.resume,
+    return {"ponding": CountStore(path, dem.shape, int(layout.block), resume=ex.resume,
                                   run=run_identity(params), checkpoint=ex.checkpoint)}
 
 

@@ -65,8 +65,11 @@ class Job(Protocol):
     def layers(self) -> tuple[str, ...]:
         """Names of the layers the accumulator produces (see terrain.layers)."""
 
-    def resolved(self, dem, model) -> Job:
-        """A copy with every default resolved (and grid arrays prepared)."""
+    def resolved(self, dem, model, *, layout=None) -> Job:
+        """A copy with every default resolved (and grid arrays prepared);
+        ``layout`` (:class:`~terrain.layout.RunLayout`) says whether the DEM is
+        on disk and in which blocks to work on it (None: as
+        :func:`terrain.layout.layout_of` states it for ``dem``)."""
 
     def defaults_used(self) -> dict:
         """Settings left to library defaults, with the rule each follows."""

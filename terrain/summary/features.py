@@ -362,7 +362,7 @@ def _pond_columns(result, ids: np.ndarray) -> dict:
     in the DEM's vertical unit times m^2 and converted to m^3 with the unit's
     exact factor (1, 0.3048 or 1200/3937 m per unit)."""
     log, n = result.log, result.n
-    area0, vol0 = unperturbed_ponding(result.dem, result.job, result.info.get("block"))
+    area0, vol0 = unperturbed_ponding(result.dem, result.job, result.layout)
     to_m = result.dem.metres_per_unit
     vol0 = vol0 * to_m
     col = np.searchsorted(ids, log["pond_region"]) if ids.size else log["pond_region"]

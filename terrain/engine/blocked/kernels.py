@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from ..basins import before, descend, find, upsert
+from ..basins import before, descend, elder_rule, find, kbefore, upsert
 
 EDGE = 1  # cell on the raster edge or next to nodata
 TERM = 2  # valid cell with a valid neighbour in another block
@@ -404,12 +404,6 @@ def fill_levels(zk, T, X, jcell, jkey, r0, c0, nc, ncols):
 # ----------------------------------------------------------------------------
 # global step
 # ----------------------------------------------------------------------------
-@njit(cache=True, inline="always")
-def _kbefore(ka, ia, kb, ib):
-    """True when the cell (key ``ka``, index ``ia``) precedes (``kb``, ``ib``)."""
-    return ka < kb or (ka == kb and ia < ib)
-
-
 @njit(cache=True)
 def cross_edges(va, ka, fa, base_a, vb, kb, fb, base_b, stride, conn8, nv):
     """Edges between two facing strips of boundary cells of adjacent blocks.
@@ -446,7 +440,7 @@ def cross_edges(va, ka, fa, base_a, vb, kb, fb, base_b, stride, conn8, nv):
                 continue
             ia = base_a + j * stride
             ib = base_b + m * stride
-            if _kbefore(ka[j], ia, kb[m], ib):
+            if kbefore(ka[j], ia, kb[m], ib):
                 w, wk, wf = ib, kb[m], fb[m]
             else:
                 w, wk, wf = ia, ka[j], fa[j]
@@ -454,7 +448,7 @@ def cross_edges(va, ka, fa, base_a, vb, kb, fb, base_b, stride, conn8, nv):
             s = ((key ^ (key >> 29)) * 0x5BD1E995) & mask
             while True:
                 if hk[s] == key:
-                    if _kbefore(wk, w, hz[s], hw[s]):
+                    if kbefore(wk, w, hz[s], hw[s]):
                         hz[s] = wk
                         hw[s] = w
                         hf[s] = wf
@@ -521,27 +515,20 @@ def glue_merge(vcell, vkey, veff, veffk, ea, eb, ew, ewk, ewf):
         rb = find(parent, eb[t])
         if ra == rb:
             continue
-        if ra == out_id:
-            old, young = ra, rb
-        elif rb == out_id:
-            old, young = rb, ra
-        elif _kbefore(vkey[ra], vcell[ra], vkey[rb], vcell[rb]):
-            old, young = ra, rb
-        else:
-            old, young = rb, ra
+        old, young = elder_rule(ra, rb, out_id, vkey, vcell)
         e = eff[young]
         if vkey[young] != wk:
             pb[npairs] = vcell[young]
             pbk[npairs] = vkey[young]
             pd[npairs] = w
             pdk[npairs] = wk
-            pe[npairs] = (e >= 0 and _kbefore(effk[young], e, wk, w)) or ewf[t]
+            pe[npairs] = (e >= 0 and kbefore(effk[young], e, wk, w)) or ewf[t]
             npairs += 1
         if e >= 0:
             ek = effk[young]
-            if _kbefore(ek, e, wk, w):
+            if kbefore(ek, e, wk, w):
                 e, ek = w, wk
-            if eff[old] < 0 or _kbefore(ek, e, effk[old], eff[old]):
+            if eff[old] < 0 or kbefore(ek, e, effk[old], eff[old]):
                 eff[old] = e
                 effk[old] = ek
         parent[young] = old

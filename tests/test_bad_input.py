@@ -165,8 +165,8 @@ def test_memory_guard(cairn, dem, tmp_path, monkeypatch):
     assert cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--force")[0] == 0
 
 
-@pytest.mark.real_figures  # the figures of degenerate rasters are part of what is checked
 # -- edge cases with a defined answer ------------------------------------------------
+@pytest.mark.real_figures  # the figures of degenerate rasters are part of what is checked
 @pytest.mark.slow
 @pytest.mark.parametrize("shape", [(1, 1), (1, 9), (9, 1), (6, 7)])
 @pytest.mark.parametrize("cmd", ["peaks", "depressions"])

@@ -157,3 +157,19 @@ def test_dask_workers_read_the_dem_from_its_path(tmp_path, monkeypatch):
                 gm, ge = got.layers[name]
                 assert m.tobytes() == np.asarray(gm).tobytes() and \
                     e.tobytes() == np.asarray(ge).tobytes(), (kind, name)
+
+
+@pytest.mark.slow
+def test_the_cli_reads_a_gdal_virtual_path(cairn, tmp_path):
+    import rasterio
+    from rasterio.io import MemoryFile
+
+    p = _terrain_tif(tmp_path)
+    args = ["-n", "3", "--rmse", "1", "--workers", "1"]
+    with MemoryFile(open(p, "rb").read(), filename="dem.tif") as mem:
+        code, _, err = cairn("peaks", mem.name, "-o", tmp_path / "virtual", *args)
+        assert code == 0, err
+    assert cairn("peaks", p, "-o", tmp_path / "file", *args)[0] == 0
+    for name in ("summit_credit.tif", "col_credit.tif"):
+        with rasterio.open(tmp_path / "virtual" / name) as a, rasterio.open(tmp_path / "file" / name) as b:
+            assert a.read().tobytes() == b.read().tobytes(), name

@@ -77,6 +77,9 @@ def test_a_dem_without_its_file_has_no_reader(tmp_path):
     p = _terrain_tif(tmp_path)
     dem = read_dem(p)
     assert dem_windows(dem) is not None
+    dem.z[3, 4] += 1.0  # the values changed after they were read: they must be sent
+    assert dem_windows(dem) is None
+    dem = read_dem(p)
     write_tif(p, np.ones((9, 9), np.float32))  # the file changed after it was read
     assert dem_windows(dem) is None
 

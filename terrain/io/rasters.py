@@ -212,8 +212,10 @@ def dem_windows(dem: Dem) -> RasterWindows | None:
     """The raster ``dem`` was read from, read by window as :func:`read_dem`
     read it (:class:`RasterWindows`), or None: a DEM made from an array, or
     whose file no longer opens or no longer gives the grid, scale and offset
-    read (its values then have to be sent with the tasks). Reads the header
-    only."""
+    read, or (a DEM in memory) whose values are no longer the file's: its
+    values then have to be sent with the tasks. Reads the header, and for a
+    DEM in memory the file once, band by band, to compare checksums (a
+    :class:`~terrain.dem.DiskDem` was read from the file in this run)."""
     m = dem.meta
     if dem.source == "<array>" or not {"band", "scale", "offset", "window"} <= m.keys():
         return None
@@ -227,7 +229,23 @@ def dem_windows(dem: Dem) -> RasterWindows | None:
     if (h.shape != tuple(dem.shape) or (h.scale, h.offset) != (m["scale"], m["offset"])
             or window != m["window"] or h.dtype != m.get("dtype", h.dtype)):
         return None
-    return RasterWindows(h, m.get("nodata"))
+    reader = RasterWindows(h, m.get("nodata"))
+    if not isinstance(dem, DiskDem) and _checksum(reader) != dem.checksum():
+        return None  # the values were changed after they were read
+    return reader
+
+
+def _checksum(reader: RasterWindows) -> str:
+    """:meth:`terrain.dem.Dem.checksum` of the DEM ``reader`` reads, band by band."""
+    from ..dem import BAND_ROWS, DemChecksum
+
+    check, rows = DemChecksum(reader.shape), reader.shape[0]
+    step = BAND_ROWS * 16
+    for r0 in range(0, rows, step):
+        z = reader[r0:r0 + step, :]
+        for s in range(0, z.shape[0], BAND_ROWS):
+            check.update(z[s:s + BAND_ROWS], np.isnan(z[s:s + BAND_ROWS]))
+    return check.hexdigest()
 
 
 def _new_grid(folder: Path, name: str, shape, dtype) -> NpyWindows:

@@ -8,7 +8,7 @@ previous file or none, never a partial one.
 =================  ==========================================================
 module             job
 =================  ==========================================================
-``rasters``        raster headers and DEMs (in memory or read onto disk)
+``rasters``        raster headers; DEMs in memory, onto disk or by window
 ``outlets``        outlets files and their CRS
 ``publication``    the output folder: lock, staging, publication, tidy-up
 ``checked``        checked atomic writes (read back, fsync, rename)
@@ -60,7 +60,7 @@ from .publication import (
     replaced_by,
     staged_outputs,
 )
-from .rasters import SENTINELS, dem_warnings, read_dem, read_header
+from .rasters import SENTINELS, RasterWindows, dem_warnings, dem_windows, read_dem, read_header
 from .scratch import (
     COUNTS_TAG,
     SCRATCH_LOCK,
@@ -85,7 +85,8 @@ from .scratch import (
     write_npy_window,
 )
 
-__all__ = ["read_dem", "read_header", "SENTINELS", "read_outlets", "dem_warnings", "atomic_path",
+__all__ = ["read_dem", "read_header", "RasterWindows", "dem_windows", "SENTINELS", "read_outlets",
+           "dem_warnings", "atomic_path",
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",

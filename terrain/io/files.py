@@ -61,9 +61,13 @@ def kernel_cache_folder(version: str) -> str | None:
     return None
 
 
-def file_sha256(path: str | os.PathLike) -> str:
-    """SHA-256 of a file's bytes (provenance)."""
+def file_sha256(path: str | os.PathLike) -> str | None:
+    """SHA-256 of a file's bytes (provenance); None for a GDAL virtual path
+    (``/vsis3/...``, ``/vsicurl/...``: read through GDAL only, not hashed here)."""
     import hashlib
+
+    if str(path).startswith("/vsi"):
+        return None
 
     h = hashlib.sha256()
     with open(path, "rb") as fh:

@@ -9,6 +9,7 @@ import functools
 import math
 import os
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -16,6 +17,7 @@ import numpy as np
 from ..dem import Dem, DiskDem, RasterHeader, vertical_unit
 from ..errors import (
     BandError,
+    CairnError,
     CairnWarning,
     CorruptRasterError,
     DemNotFoundError,
@@ -169,6 +171,83 @@ def _read_to_disk(p: Path, ds, h: RasterHeader, nodata, bbox, folder: Path) -> D
                                                                             bbox))
 
 
+@dataclass(frozen=True)
+class RasterWindows:
+    """A DEM's raster read window by window exactly as :func:`read_dem` reads
+    it: ``source[r0:r1, c0:c1]`` opens the file (any path or URL GDAL opens,
+    ``/vsis3/`` and ``/vsicurl/`` included), reads that window of the band
+    (offset by the ``bbox`` window read) and applies the same nodata, scale
+    and offset (:func:`_elevations`), giving the same values (float32 or
+    float64 as :attr:`~terrain.dem.RasterHeader.value_bytes`, NaN on nodata)
+    as the same window of ``read_dem(...).z``. The vertical unit is a label:
+    ``read_dem`` converts no values, and neither does this. Pickles as its
+    header, so a task on a Dask worker reads its own window from the file
+    instead of being sent the values. Memory: the window read, 8 bytes per
+    cell at most besides the stored values."""
+
+    header: RasterHeader
+    nodata: float | None = None
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(int(x) for x in self.header.shape)
+
+    def __getitem__(self, key) -> np.ndarray:
+        rs, cs = key
+        r0, r1, _ = rs.indices(self.shape[0])
+        c0, c1, _ = cs.indices(self.shape[1])
+        h = self.header
+        col_off, row_off = (h.window[0], h.window[1]) if h.window is not None else (0, 0)
+        p = Path(h.source)
+        with _open_raster(p) as ds:
+            arr = _read_band(p, ds, h.band, (col_off + c0, row_off + r0, max(c1 - c0, 0),
+                                             max(r1 - r0, 0)))
+        z, mask, _ = _elevations(np.asarray(arr.data), np.ma.getmaskarray(arr), h, self.nodata)
+        mask |= ~np.isfinite(z)
+        z[mask] = np.nan
+        return z
+
+
+def dem_windows(dem: Dem) -> RasterWindows | None:
+    """The raster ``dem`` was read from, read by window as :func:`read_dem`
+    read it (:class:`RasterWindows`), or None: a DEM made from an array, or
+    whose file no longer opens or no longer gives the grid, scale and offset
+    read, or (a DEM in memory) whose values are no longer the file's: its
+    values then have to be sent with the tasks. Reads the header, and for a
+    DEM in memory the file once, band by band, to compare checksums (a
+    :class:`~terrain.dem.DiskDem` was read from the file in this run)."""
+    m = dem.meta
+    if dem.source == "<array>" or not {"band", "scale", "offset", "window"} <= m.keys():
+        return None
+    given = dem.vertical_unit if dem.vertical_unit_source == "given" else None
+    try:
+        h = read_header(dem.source, band=m["band"], bbox=m.get("bbox"), nodata=m.get("nodata"),
+                        vertical_unit=given)
+    except CairnError:
+        return None
+    window = list(h.window) if h.window is not None else None
+    if (h.shape != tuple(dem.shape) or (h.scale, h.offset) != (m["scale"], m["offset"])
+            or window != m["window"] or h.dtype != m.get("dtype", h.dtype)):
+        return None
+    reader = RasterWindows(h, m.get("nodata"))
+    if not isinstance(dem, DiskDem) and _checksum(reader) != dem.checksum():
+        return None  # the values were changed after they were read
+    return reader
+
+
+def _checksum(reader: RasterWindows) -> str:
+    """:meth:`terrain.dem.Dem.checksum` of the DEM ``reader`` reads, band by band."""
+    from ..dem import BAND_ROWS, DemChecksum
+
+    check, rows = DemChecksum(reader.shape), reader.shape[0]
+    step = BAND_ROWS * 16
+    for r0 in range(0, rows, step):
+        z = reader[r0:r0 + step, :]
+        for s in range(0, z.shape[0], BAND_ROWS):
+            check.update(z[s:s + BAND_ROWS], np.isnan(z[s:s + BAND_ROWS]))
+    return check.hexdigest()
+
+
 def _new_grid(folder: Path, name: str, shape, dtype) -> NpyWindows:
     """A grid-sized ``.npy`` array ``name`` in ``folder``, read and written by window."""
     path = str(folder / f"{name}.npy")
@@ -275,7 +354,7 @@ def _open_raster(p: Path):
     import rasterio
     from rasterio.errors import RasterioIOError
 
-    if not p.exists():
+    if not _gdal_virtual(p) and not p.exists():
         raise DemNotFoundError(f"{p}: no such file")
     if p.is_dir() and not any(p.iterdir()):
         raise NotARasterError(f"{p}: is an empty folder, not a raster")
@@ -285,6 +364,12 @@ def _open_raster(p: Path):
             return rasterio.open(p)
         except RasterioIOError as exc:
             raise NotARasterError(f"{p}: not a raster any driver can read ({short(exc)})") from None
+
+
+def _gdal_virtual(p: Path) -> bool:
+    """True for a GDAL virtual file system path (``/vsis3/...``, ``/vsicurl/...``,
+    ``/vsimem/...``): opened by GDAL, not looked up on the local disk."""
+    return str(p).startswith("/vsi")
 
 
 def _band(p: Path, ds, band: int | None) -> int:

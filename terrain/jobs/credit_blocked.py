@@ -213,16 +213,22 @@ class WindowData:
 class Draw:
     """What a pure block task needs to draw realisation ``i`` on its window:
     the sampler (counter-based streams: the same error whatever window or
-    worker draws it), the seed, the realisation and the DEM's reference."""
+    worker draws it), the seed, the realisation and the DEM's reference;
+    and ``dem``, the DEM the task reads its window from itself (a
+    :class:`~terrain.io.RasterWindows`, pickled as the file's path and
+    header; ``reference`` is then the job's), or None when the task is
+    sent its window's values."""
 
     sampler: ErrorSampler
     seed: int
     i: int
     reference: float = 0.0
+    dem: Any = None
 
-    def source(self, dem: WindowData) -> PerturbedSource:
-        """Realisation ``i`` on the DEM window ``dem``."""
-        return PerturbedSource(dem, self.sampler, self.seed, self.i, self.reference)
+    def source(self, dem: WindowData | None) -> PerturbedSource:
+        """Realisation ``i`` on the DEM window ``dem`` (None: read from ``self.dem``)."""
+        return PerturbedSource(self.dem if dem is None else dem, self.sampler, self.seed, self.i,
+                               self.reference)
 
 
 def _shipped_local(draw: Draw, kind: str, connectivity: int, thr: float, levels: bool, spec):
@@ -255,11 +261,13 @@ def _shipped_pond(draw: Draw, connectivity: int, thr: float, area_row: np.ndarra
 
 def _shipped_specs(dem: Any, wins, shape, regions: Any = None):
     """The specs of the pure tasks, one window at a time: the window and the
-    DEM's values on it and its halo (and the region labels on the window)."""
-    grid = _array(dem)
+    DEM's values on it and its halo (None when ``dem`` is None: the task
+    reads them itself; see :class:`Draw`), and the region labels on the window."""
+    grid = None if dem is None else _array(dem)
     for w in wins:
         h = halo(w, shape)
-        data = WindowData(np.asarray(grid[h.r0:h.r1, h.c0:h.c1]), h.r0, h.c0)
+        data = None if grid is None else WindowData(np.asarray(grid[h.r0:h.r1, h.c0:h.c1]),
+                                                    h.r0, h.c0)
         if regions is None:
             yield w, data
         else:
@@ -270,7 +278,7 @@ def _shipped_specs(dem: Any, wins, shape, regions: Any = None):
 def realise_blocked(dem: Any, sampler: ErrorSampler, job: Any, seed: int, i: int, *,
                     block: int, regions: Any, ponding: np.ndarray | None = None,
                     map: Callable[..., Iterable] = builtins.map, scratch: Any = None,
-                    reference: float = 0.0, shipped: bool = False) -> dict:
+                    reference: float = 0.0, shipped: bool = False, remote: Any = None) -> dict:
     """Realisation ``i`` block by block: the log of :func:`~terrain.jobs.credit.realise`.
 
     Parameters
@@ -304,6 +312,14 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: Any, seed: int, i: int
         nothing is written to or read from a folder (``scratch`` unused), so
         the workers need no file system shared with this process. The
         results are the same bit for bit.
+    remote : object read by window, optional
+        With ``shipped``: the DEM as the tasks read it themselves, its values
+        as the DEM's file gives them (:class:`~terrain.io.RasterWindows`,
+        made by :func:`~terrain.io.dem_windows`; ``job.reference`` is
+        subtracted, as from a DEM on disk), so no DEM values are sent with a
+        task, only the file's path and header; the region labels of the
+        second pass of depressions still are. ``dem`` is then read here only
+        for summits' isolation (peaks). The results are the same bit for bit.
 
     Returns
     -------
@@ -319,8 +335,9 @@ def realise_blocked(dem: Any, sampler: ErrorSampler, job: Any, seed: int, i: int
     shape = src.shape
     wins = windows(shape, block)
     if shipped:
-        return _realise_shipped(dem, wins, Draw(sampler, int(seed), int(i), float(reference)),
-                                job, regions, ponding, map)
+        draw = Draw(sampler, int(seed), int(i), float(reference)) if remote is None else \
+            Draw(sampler, int(seed), int(i), float(job.reference or 0.0), remote)
+        return _realise_shipped(dem, float(reference), wins, draw, job, regions, ponding, map)
     with contextlib.ExitStack() as scope:
         if scratch is None and isinstance(dem, str):  # tasks elsewhere: a scratch file
             folder = scope.enter_context(scratch_folder(os.path.dirname(os.path.abspath(dem))))
@@ -351,21 +368,23 @@ def _realise_on(src, wins, sampler, job, seed, i, regions, ponding, map, keep) -
                    regions, ponding, lambda: src)
 
 
-def _realise_shipped(dem, wins, draw: Draw, job, regions, ponding, map) -> dict:
-    """:func:`realise_blocked` with pure tasks (``shipped``)."""
+def _realise_shipped(dem, reference, wins, draw: Draw, job, regions, ponding, map) -> dict:
+    """:func:`realise_blocked` with pure tasks (``shipped``); ``dem`` and
+    ``reference`` as this process reads the DEM."""
     shape = tuple(int(x) for x in draw.sampler.shape)
     thr = realisation_threshold(job, draw.sampler.kernel, draw.seed, draw.i)
     kind = "peaks" if job.kind == "peaks" else "pits"
     levels = job.kind == "depressions" and ponding is not None
+    sent = dem if draw.dem is None else None  # the DEM's values, unless the tasks read them
     out = list(map(functools.partial(_shipped_local, draw, kind, job.connectivity, thr, levels),
-                   _shipped_specs(dem, wins, shape)))
+                   _shipped_specs(sent, wins, shape)))
     summaries = [s for s, _ in out]
     lowest = min((v for _, v in out), default=math.inf)
     del out
 
     def ponds(res):
         task = functools.partial(_shipped_pond, draw, job.connectivity, thr, job.area_row, res)
-        return map(task, _shipped_specs(dem, wins, shape, regions))
+        return map(task, _shipped_specs(sent, wins, shape, regions))
 
     with contextlib.ExitStack() as scope:
         def surface():  # summits' isolation reads the realisation: drawn here, in this process
@@ -373,7 +392,7 @@ def _realise_shipped(dem, wins, draw: Draw, job, regions, ponding, map) -> dict:
             if isinstance(dem, str):
                 folder = scope.enter_context(scratch_folder(os.path.dirname(os.path.abspath(dem))))
                 target = scratch_file(folder, "realisation")
-            src = PerturbedSource(dem, draw.sampler, draw.seed, draw.i, draw.reference)
+            src = PerturbedSource(dem, draw.sampler, draw.seed, draw.i, reference)
             return materialise(src, wins, target, builtins.map)
 
         return _log_of(summaries, lowest, ponds, shape, wins, job, thr, draw.i, regions, ponding,

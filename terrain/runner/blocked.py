@@ -40,6 +40,7 @@ from __future__ import annotations
 import builtins
 import collections
 import contextlib
+import functools
 import itertools
 import os
 import warnings
@@ -50,7 +51,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import CairnError, WorkerError
-from ..io import save_npy, scratch_file, scratch_folder
+from ..io import NpyWindows, save_npy, scratch_file, scratch_folder
 from ..noise import ErrorSampler
 from .backends import (
     DaskWatch,
@@ -81,6 +82,7 @@ class BlockedContext:
     realisation: str | None = None
     ponding: Any = None
     reference: float = 0.0  # subtracted from ``dem`` (a DEM on disk, as read)
+    remote: Any = None  # the DEM's file read by window (terrain.io.dem_windows), for Dask tasks
 
 
 @contextlib.contextmanager
@@ -124,14 +126,44 @@ def _ahead(submit, fn, items, ahead: int, result=None):
         yield result_
 
 
+def _probe_read(reader: Any, rows: int, cols: int, reference: float) -> np.ndarray | None:
+    """On a worker: the DEM's top-left window read from ``reader``, shifted
+    by ``reference`` to float32 as a task shifts it; None if it cannot be read."""
+    try:
+        z = np.asarray(reader[0:rows, 0:cols])
+    except Exception:
+        return None
+    return (z - reference if reference else z).astype(np.float32)
+
+
+def _workers_read(client, reader: Any, dem: Any, reference: float, shift: float) -> bool:
+    """True when every worker of ``client`` reads the DEM's top-left window
+    (up to 64 x 64 cells) from ``reader`` (shifted by ``shift``) as this
+    process has it in ``dem`` (an array or ``.npy`` path, shifted by
+    ``reference``): then the tasks may read their windows themselves. A worker
+    that cannot reach the file, or finds other values there, says no."""
+    rows, cols = (min(64, int(n)) for n in reader.shape)
+    grid = NpyWindows(dem) if isinstance(dem, str) else dem
+    want = np.asarray(grid[0:rows, 0:cols])
+    want = (want - reference if reference else want).astype(np.float32)
+    try:
+        got = client.run(_probe_read, reader, rows, cols, shift)
+    except Exception:
+        return False
+    return bool(got) and all(g is not None and np.array_equal(g, want, equal_nan=True)
+                             for g in got.values())
+
+
 @contextlib.contextmanager
 def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: False):
-    """``map(fn, windows)`` running the block tasks on ``backend``: an iterator
-    of the results in order, a few tasks ahead of the caller. On Dask a wait
-    never hangs (:class:`~terrain.runner.backends.DaskWatch`): ``stop()``
-    turning true (Ctrl-C, SIGTERM) interrupts it at once."""
+    """``(map, reads)``: ``map(fn, windows)`` running the block tasks on
+    ``backend``, an iterator of the results in order, a few tasks ahead of
+    the caller; and on Dask ``reads(reader, dem, reference, shift)``
+    (:func:`_workers_read`), else None. On Dask a wait never hangs
+    (:class:`~terrain.runner.backends.DaskWatch`): ``stop()`` turning true
+    (Ctrl-C, SIGTERM) interrupts it at once."""
     if backend == "serial":
-        yield builtins.map
+        yield builtins.map, None
         return
     if backend == "processes":
         import concurrent.futures as cf
@@ -152,7 +184,7 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
             state["started"] = True
 
         try:
-            yield pmap
+            yield pmap, None
         finally:
             for proc in list((getattr(pool, "_processes", None) or {}).values()):
                 with contextlib.suppress(Exception):
@@ -178,7 +210,7 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
                         raise
                     raise WorkerError(f"a block task failed on the Dask cluster "
                                       f"({type(exc).__name__}: {exc})") from None
-            yield dmap
+            yield dmap, functools.partial(_workers_read, client)
         finally:
             close_dask(client, cluster)
 
@@ -190,7 +222,11 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
     false, each realisation's blocks mapped over ``backend``."""
     job = ctx.job  # a BlockedJob (terrain.runner.protocols): it realises block by block
     shape = tuple(ctx.sampler.shape)
-    with _block_map(backend, workers, scheduler, stop) as bmap:
+    with _block_map(backend, workers, scheduler, stop) as (bmap, reads):
+        remote = None  # Dask tasks read the DEM's file themselves when every worker reads it so
+        if reads is not None and ctx.remote is not None and \
+                reads(ctx.remote, ctx.dem, ctx.reference, float(getattr(job, "reference", None) or 0.0)):
+            remote = ctx.remote
         for a, b in plan:
             if stop():
                 return
@@ -203,6 +239,6 @@ def blocked_runner(ctx: BlockedContext, plan, backend: str, workers: int,
             logs = [job.realise_blocked(ctx.dem, ctx.sampler, ctx.seed, i, block=ctx.block,
                                         regions=ctx.regions, ponding=grid, map=bmap,
                                         scratch=ctx.realisation, reference=ctx.reference,
-                                        shipped=backend == "dask")
+                                        shipped=backend == "dask", remote=remote)
                     for i in range(a, b)]
             yield a, b, {k: np.concatenate([g[k] for g in logs]) for k in logs[0]}, counts

@@ -29,7 +29,14 @@ import numpy as np
 
 from ..dem import Dem
 from ..errors import MemoryGuardError, OptionError
-from ..io import CountStore, available_memory, count_store_file, hold_checkpoint, remove_orphan_scratch
+from ..io import (
+    CountStore,
+    available_memory,
+    count_store_file,
+    dem_windows,
+    hold_checkpoint,
+    remove_orphan_scratch,
+)
 from ..layout import RunLayout, check_block, layout_of
 from ..noise import ErrorModel, ErrorSampler
 from ..noise.fields import check_range
@@ -336,7 +343,8 @@ def _run(dem: Dem, job, model: ErrorModel, ex: Execution, layout: RunLayout,
         # chunks shrink towards the end, unless adaptive stopping needs whole check intervals
         taper = ex.n_workers if (ex.resolved_backend != "serial" and not layout.blocked
                                  and ex.chunk is None and not stop.active) else 0
-        runner = _runner(st, ex, layout, chunks(start, realisations, size, taper), halt, scope)
+        runner = _runner(st, ex, layout, chunks(start, realisations, size, taper), halt, scope,
+                         dem)
         stopped_early = _fold_or_save(runner, acc, InOrder(start), realisations, stop, flag,
                                       on_fold=on_fold, saver=saver)
     wall = time.perf_counter() - t0
@@ -352,12 +360,15 @@ def _run(dem: Dem, job, model: ErrorModel, ex: Execution, layout: RunLayout,
                      layout)
 
 
-def _runner(st, ex: Execution, layout: RunLayout, plan, halt, scope: contextlib.ExitStack):
+def _runner(st, ex: Execution, layout: RunLayout, plan, halt, scope: contextlib.ExitStack,
+            dem: Dem):
     """The backend generator of the run: whole realisations, or blocks of each."""
     if not layout.blocked:
         return BACKENDS[ex.resolved_backend](Context(st.z, st.sampler, st.job, int(ex.seed)),
                                              plan, ex.n_workers, ex.scheduler, halt)
-    # local processes read files in a scratch folder; Dask tasks are sent their windows
+    # local processes read files in a scratch folder; Dask tasks read their windows from the
+    # DEM's file (dem_windows: a path or URL every worker reads) or are sent them
+    remote = dem_windows(dem) if ex.resolved_backend == "dask" else None
     dem_src, reg_src, drawn = scope.enter_context(scratch_arrays(
         st.z, st.job.regions.labels, to_files=ex.resolved_backend == "processes",
         on_disk=layout.on_disk))
@@ -365,7 +376,8 @@ def _runner(st, ex: Execution, layout: RunLayout, plan, halt, scope: contextlib.
     # a DEM on disk is read as it is stored: its values are still to shift
     return blocked_runner(BlockedContext(dem_src, reg_src, st.sampler, st.job, int(ex.seed),
                                          int(layout.block), drawn, ponding,
-                                         _reference(st.job) if layout.on_disk else 0.0),
+                                         _reference(st.job) if layout.on_disk else 0.0,
+                                         remote),
                           plan, ex.resolved_backend, ex.n_workers, ex.scheduler, halt)
 
 

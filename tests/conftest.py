@@ -2,9 +2,34 @@
 
 from __future__ import annotations
 
+import os
+import subprocess
+import sys
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy.ndimage import gaussian_filter
+
+
+def pytest_configure(config):
+    """Before the test processes start (in pytest-xdist's controller, or in a run
+    without it), compile cairn's kernels once, in two processes at a time
+    (tests/warm_kernels.py): on a fresh checkout none is cached, and every test
+    process would otherwise compile the same kernels at the same time."""
+    if hasattr(config, "workerinput") or config.option.collectonly:
+        return
+    script = Path(__file__).with_name("warm_kernels.py")
+    root = str(Path(__file__).parent.parent)
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(filter(None, [root, os.environ.get(
+        "PYTHONPATH")]))}
+    procs = [subprocess.Popen([sys.executable, str(script), part], env=env, cwd=root,
+                              stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+             for part in ("whole", "blocked")]
+    for p in procs:
+        _, err = p.communicate()
+        if p.returncode:  # the tests themselves will show what is wrong
+            print(f"warm_kernels.py failed:\n{err}", file=sys.stderr)
 
 
 def exact_p_higher_first(kernel, sigma, delta):
@@ -161,9 +186,13 @@ def stand_in_figures(monkeypatch, request):
     check the real ones. Every file is still written and published as in a
     real run. A test marked ``real_figures`` draws them as usual.
     """
-    if request.node.get_closest_marker("real_figures"):
-        return
+    if not request.node.get_closest_marker("real_figures"):
+        use_stand_in_figures(monkeypatch)
+
+
+def use_stand_in_figures(mp: pytest.MonkeyPatch) -> None:
+    """Replace the quick-look figures by blank stand-ins through ``mp``."""
     from terrain.outputs import plot
 
     for name in ("feature_map", "ranking_chart", "catchment_map", "sweep_figure"):
-        monkeypatch.setattr(plot, name, _stand_in_figure)
+        mp.setattr(plot, name, _stand_in_figure)

@@ -852,6 +852,7 @@ def test_sigterm_saves_and_exits_143_and_a_killed_parent_takes_its_workers(big_d
     assert _all_gone(kids)  # they die with their parent
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
 def test_a_dead_worker_ends_the_run_in_one_line(big_dem, tmp_path):
     ck = tmp_path / "ck.npz"
@@ -1398,6 +1399,7 @@ def test_a_count_store_of_another_run_is_refused(cairn, tmp_path, blocked_ck):
     nothing_written(tmp_path / "r")
 
 
+@pytest.mark.slow
 def test_a_whole_count_store_resumes_to_the_uninterrupted_run(cairn, tmp_path, blocked_ck):
     dem, ck = blocked_ck
     code, _, err = cairn("depressions", dem, "-o", tmp_path / "resumed", *BLOCKED, "-n", "6",
@@ -1433,6 +1435,7 @@ def test_a_checkpoint_in_use_by_another_run_is_refused(cairn, dem, tmp_path):
     assert ck.exists() and not (tmp_path / ".shared.npz.lock").exists()
 
 
+@pytest.mark.slow
 def test_two_runs_on_one_checkpoint_at_once(tmp_path):
     # two real runs started together on one --checkpoint (different DEMs, different folders):
     # one runs, the other is refused in one line; neither publishes the other's counts
@@ -1496,6 +1499,7 @@ def test_a_live_runs_scratch_survives_any_sweep(tmp_path, outside):
     assert tree(outside) == before
 
 
+@pytest.mark.slow
 def test_a_killed_blocked_runs_scratch_is_swept_by_the_next(tmp_path, monkeypatch):
     monkeypatch.setenv("TMPDIR", str(tmp_path / "tmp"))
     (tmp_path / "tmp").mkdir()
@@ -1574,6 +1578,7 @@ _SKIP_SPACE_CHECK = ("import terrain.io.scratch as io, terrain.resources as r, c
                      "lambda *a, **k: None; from cairn_cli.main import run; run()")
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("size,checkpoint", [("96k", False), ("400k", False), ("600k", True)])
 def test_a_full_tmpdir_during_a_blocked_run_is_one_line(tmp_path, size, checkpoint):
     # a real full file system (a tmpfs in a private mount namespace) under TMPDIR, the space

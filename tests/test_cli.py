@@ -82,6 +82,7 @@ def test_outputs_read_back(cairn, dem_tif, tmp_path, cmd, layers, gpkg, csv, lyr
     assert not [p for p in os.listdir(out) if ".part" in p]
 
 
+@pytest.mark.slow
 def test_big_layer_is_tiled_with_overviews(tmp_path, cairn):
     z = smooth_terrain((300, 280), seed=1)
     dem = write_tif(tmp_path / "big.tif", z)
@@ -93,6 +94,7 @@ def test_big_layer_is_tiled_with_overviews(tmp_path, cairn):
         assert ds.overviews(1) and ds.compression is not None
 
 
+@pytest.mark.slow
 def test_existing_outputs_refused_without_overwrite(cairn, dem_tif, tmp_path):
     out = tmp_path / "out"
     assert cairn("peaks", dem_tif, "-o", out, *COMMON)[0] == 0
@@ -257,6 +259,7 @@ def test_readme_figures_about_the_demo_agree_with_a_demo_run(demo_out):
             f"README quotes {name} as {text}; the demo gives {value:.3f} ± {se:.3f}")
 
 
+@pytest.mark.slow
 def test_demo_layers_are_valid_cogs(demo_out):
     # OGC Cloud Optimized GeoTIFF Standard (2023), via rio-cogeo's validator, statistics
     # against numpy, a window and an overview read back (test_output_formats.check_cog)
@@ -312,6 +315,7 @@ def test_target_se_stops_early_and_says_its_unit(cairn, dem_tif, tmp_path):
     assert "vertical units" in help_text.split("--target-se SE")[1][:400]
 
 
+@pytest.mark.slow
 def test_resume_says_what_it_needs(cairn, dem_tif, tmp_path):
     code, _, err = cairn("peaks", dem_tif, "-o", tmp_path / "o", *COMMON, "--resume")
     assert code == 2 and "--resume needs a --checkpoint file" in err

@@ -56,7 +56,7 @@ def test_dem_on_disk_with_no_valid_cell_is_refused(tmp_path):
 
 
 @pytest.mark.parametrize("kind", ["peaks", "depressions"])
-@pytest.mark.parametrize("backend", ["serial", "processes"])
+@pytest.mark.parametrize("backend", ["serial", pytest.param("processes", marks=pytest.mark.slow)])
 def test_run_on_disk_equals_run_in_memory(tmp_path, kind, backend):
     p = _raster(tmp_path)
     want = run_ensemble(read_dem(p), CreditJob(kind), MODEL, realisations=3, seed=5,

@@ -42,7 +42,7 @@ from terrain.summary.catchments import CATCHMENT_COLUMN_KINDS, CATCHMENT_COLUMNS
 from terrain.summary.features import COLUMN_KINDS, COLUMNS
 from terrain.sweep import SENSITIVITY_COLUMN_KINDS, SENSITIVITY_COLUMNS, SWEEP_COLUMN_KINDS, SWEEP_COLUMNS
 
-from .conftest import smooth_terrain, write_tif
+from .conftest import smooth_terrain, use_stand_in_figures, write_tif
 
 STATS = ("STATISTICS_MINIMUM", "STATISTICS_MAXIMUM", "STATISTICS_MEAN", "STATISTICS_STDDEV",
          "STATISTICS_VALID_PERCENT")
@@ -105,12 +105,14 @@ def runs(tmp_path_factory):
     z[140:160, 100:130] = -9999
     dem = write_tif(tmp / "dem.tif", z, nodata=-9999, units="metre")
     out = {}
-    for cmd in ("peaks", "depressions"):
-        out[cmd] = tmp / cmd
-        res = CliRunner().invoke(cli, [cmd, str(dem), "-o", str(out[cmd]), "--rmse", "1.5",
-                                       "-n", "4", "--seed", "2", "--workers", "1", "-q"],
-                                 catch_exceptions=False)
-        assert res.exit_code == 0, res.output
+    with pytest.MonkeyPatch.context() as mp:  # the layers and tables are checked here, and
+        use_stand_in_figures(mp)              # the figures in test_pictures and test_cli
+        for cmd in ("peaks", "depressions"):
+            out[cmd] = tmp / cmd
+            res = CliRunner().invoke(cli, [cmd, str(dem), "-o", str(out[cmd]), "--rmse", "1.5",
+                                           "-n", "4", "--seed", "2", "--workers", "1", "-q"],
+                                     catch_exceptions=False)
+            assert res.exit_code == 0, res.output
     return dem, out
 
 

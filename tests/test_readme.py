@@ -46,6 +46,7 @@ def test_readme_has_python_blocks():
     assert _blocks(), "the README shows the library in at least one python block"
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("k", range(len(_blocks())))
 def test_readme_block_runs_as_written(workdir, k):
     p = _run(_blocks()[k], workdir)
@@ -88,6 +89,7 @@ def _allowed(seconds: float) -> float:
     return seconds * max(1.0, load / (os.cpu_count() or 1))
 
 
+@pytest.mark.slow
 def test_missing_main_guard_fails_fast_with_the_cure(workdir):
     # worker processes re-import the script; the run must end within 10 s (on a machine
     # not shared with other work), say what to add, and leave no process behind

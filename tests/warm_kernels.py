@@ -1,0 +1,40 @@
+"""Compile cairn's numba kernels into the per-user cache, once, before tests start.
+
+Run by tests/conftest.py in two processes at the start of a session (one for the
+whole-grid engines, one for the blocked ones), so the test processes load the
+kernels from the cache instead of each compiling the same ones at the same time
+(a fresh checkout has none cached: numba keys its cache by the source's path).
+Usage: ``python tests/warm_kernels.py whole|blocked``.
+"""
+
+from __future__ import annotations
+
+import sys
+
+import numpy as np
+
+
+def main(part: str) -> None:
+    from scipy.ndimage import gaussian_filter
+
+    from terrain import CreditJob, Dem, ErrorModel, run_ensemble
+    from terrain.jobs.catchments import CatchmentJob
+    from terrain.summary.features import summarise_features
+
+    rng = np.random.default_rng(0)
+    z = (gaussian_filter(rng.standard_normal((40, 40)), 2) * 100).astype(np.float32)
+    dem = Dem.from_array(z, cellsize=10.0, crs="EPSG:32633")
+    model = ErrorModel(rmse=1.0)
+    block = 16 if part == "blocked" else None
+    for kind in ("peaks", "depressions"):
+        res = run_ensemble(dem, CreditJob(kind), model, realisations=2, seed=0, backend="serial",
+                           block=block)
+        summarise_features(res)
+    if part == "whole":
+        x0, top = dem.transform[2], dem.transform[5]
+        run_ensemble(dem, CatchmentJob(("a",), np.array([[x0 + 205.0, top - 205.0]])), model,
+                     realisations=2, seed=0, backend="serial")
+
+
+if __name__ == "__main__":
+    main(sys.argv[1])

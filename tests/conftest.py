@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import os
 import subprocess
 import sys
@@ -32,6 +33,7 @@ def pytest_configure(config):
             print(f"warm_kernels.py failed:\n{err}", file=sys.stderr)
 
 
+@functools.cache  # nested quadrature: seconds a call, the same calls recur
 def exact_p_higher_first(kernel, sigma, delta):
     """P(e1 - e2 > -delta) for iid kernel errors of standard deviation sigma: the
     probability that the higher of two summits (heights a + delta, a) stays higher.

@@ -27,6 +27,10 @@ from terrain.summary.ranks import RANK_COLUMN_KINDS
 
 from .conftest import smooth_terrain, write_tif
 
+# in-process runs here draw blank stand-ins for the figures (tests/conftest.py): the
+# real ones are checked in test_pictures.py and by the demo run below (a subprocess)
+pytestmark = pytest.mark.usefixtures("stand_in_figures")
+
 COMMON = ("--rmse", "1.5", "-n", "12", "--seed", "3", "--workers", "1", "-q")
 
 

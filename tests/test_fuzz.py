@@ -34,7 +34,10 @@ cells = st.one_of(st.floats(-50, 50, width=32), st.sampled_from([0.0, 3.0, np.na
        kernel=st.sampled_from(["gaussian", "uniform", "triangular", "epanechnikov"]),
        thr=st.sampled_from([0.0, 0.5, 5.0]), jitter=st.sampled_from([0.0, 0.3]),
        conn=st.sampled_from([4, 8]))
-def test_pipeline_properties(tmp_path_factory, z, kind, weight, kernel, thr, jitter, conn):
+def test_pipeline_properties(tmp_path_factory, stand_in_figures, z, kind, weight, kernel, thr,
+                            jitter, conn):
+    # the figures are blank stand-ins here: degenerate rasters draw real ones in
+    # test_bad_input.py::test_tiny_and_constant_rasters
     out = tmp_path_factory.mktemp("fuzz")
     try:
         dem = Dem.from_array(z, cellsize=5.0, crs="EPSG:32633")

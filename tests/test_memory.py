@@ -78,9 +78,9 @@ def peak_resident(args) -> tuple[int, int, str]:
 @pytest.fixture(scope="module")
 def dems(tmp_path_factory):
     d = tmp_path_factory.mktemp("mem")
-    paths = {n: write_tif(d / f"s{n}.tif", smooth_terrain((n, n), seed=3)) for n in (250, 600)}
+    paths = {n: write_tif(d / f"s{n}.tif", smooth_terrain((n, n), seed=3)) for n in (250, 400)}
     rng = np.random.default_rng(0)
-    for n, k in ((600, 1), (250, 100)):
+    for n, k in ((400, 1), (250, 100)):
         xy = np.column_stack([500000 + rng.uniform(20, n * 10 - 20, k),
                               6800000 - rng.uniform(20, n * 10 - 20, k)])
         with open(d / f"outlets{k}.csv", "w") as fh:
@@ -90,13 +90,13 @@ def dems(tmp_path_factory):
 
 
 CASES = {  # name: (command, dem size, extra arguments, workers)
-    "peaks": ("peaks", 600, ("--min-prominence", "10"), 1),
-    "depressions-2-workers": ("depressions", 600, ("--min-depth", "10"), 2),
-    "depressions-blocks-2-workers": ("depressions", 600, ("--min-depth", "10", "--block", "256"),
+    "peaks": ("peaks", 400, ("--min-prominence", "10"), 1),
+    "depressions-2-workers": ("depressions", 400, ("--min-depth", "10"), 2),
+    "depressions-blocks-2-workers": ("depressions", 400, ("--min-depth", "10", "--block", "256"),
                                      2),
-    "catchments-1": ("catchments", 600, (), 1),
+    "catchments-1": ("catchments", 400, (), 1),
     "catchments-100": ("catchments", 250, (), 1),
-    "sweep": ("sweep", 600, ("--kind", "peaks", "--min-prominence", "10"), 1),
+    "sweep": ("sweep", 400, ("--kind", "peaks", "--min-prominence", "10"), 1),
 }
 
 

@@ -286,6 +286,7 @@ def usgs_runs(tmp_path_factory, usgs_dem):
     return out
 
 
+@pytest.mark.xdist_group("usgs_runs")  # one worker makes the module fixture
 @pytest.mark.slow
 def test_real_dem_twin_crowns_are_shown_together(usgs_runs):
     folder, stdout = usgs_runs["peaks"]
@@ -318,6 +319,7 @@ def test_real_dem_twin_crowns_are_shown_together(usgs_runs):
     assert set(held) <= set(t.feature_id)
 
 
+@pytest.mark.xdist_group("usgs_runs")  # one worker makes the module fixture
 @pytest.mark.slow
 @pytest.mark.parametrize("cmd", ["peaks", "depressions"])
 def test_real_dem_polygon_layers_have_no_null_geometry(usgs_runs, cmd):

@@ -71,9 +71,28 @@ def _pool(a: np.ndarray, k: int, how) -> np.ndarray:
     pad = np.full((-(-r // k) * k, -(-c // k) * k), np.nan)
     pad[:r, :c] = a
     blocks = pad.reshape(pad.shape[0] // k, k, pad.shape[1] // k, k)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-nodata blocks
-        return how(blocks, axis=(1, 3))
+    fill = _FILLS.get(how)
+    if fill is None:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-nodata blocks
+            return how(blocks, axis=(1, 3))
+    # numpy's nan-reductions warn on an all-nodata block; a warnings filter is global to
+    # the process and the layers are written in another thread meanwhile (each file's
+    # write restores the filters it found), so the common reductions are done without
+    # a warning: NaN where a block has no valid cell
+    valid = ~np.isnan(blocks)
+    count = valid.sum(axis=(1, 3))
+    filled = np.where(valid, blocks, fill)
+    if how is np.nanmean:
+        with np.errstate(invalid="ignore", divide="ignore"):  # thread-local in numpy
+            out = filled.sum(axis=(1, 3)) / count
+    else:
+        out = (filled.max if how is np.nanmax else filled.min)(axis=(1, 3))
+    out[count == 0] = np.nan
+    return out
+
+
+_FILLS = {np.nanmean: 0.0, np.nanmax: -np.inf, np.nanmin: np.inf}
 
 
 def pool_bands(read, shape: tuple[int, int], k: int, how) -> np.ndarray:

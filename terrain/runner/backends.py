@@ -240,6 +240,12 @@ def _stop_pool(pool, pending, broken: bool = False) -> None:
     for proc in procs if early else ():
         with contextlib.suppress(Exception):
             proc.join(5)
+    # the pool's manager thread ends once it sees its workers gone; wait for it, or the
+    # interpreter's exit (a signal's exit follows at once) races it closing its wake-up
+    # pipe and prints "Exception ignored ... Bad file descriptor" (Python 3.11)
+    manager = getattr(pool, "_executor_manager_thread", None)
+    if early and manager is not None:
+        manager.join(5)
 
 
 def check_scheduler_address(address: str) -> str:

@@ -169,6 +169,19 @@ def upland(shape=(200, 260), cell=1.0):
     return z.astype(np.float32), feet
 
 
+_ONCE: dict = {}
+
+
+def once(name: str, make):
+    """``make()``, made once per test process and kept (a pytest-xdist worker tears a
+    module or session fixture down whenever its queue runs dry, and would make an
+    expensive one again; with ``--dist loadgroup`` and an ``xdist_group`` mark the
+    tests sharing it run in one process)."""
+    if name not in _ONCE:
+        _ONCE[name] = make()
+    return _ONCE[name]
+
+
 def _stand_in_figure(*args, **kwargs):
     """A small blank figure (matplotlib's Agg canvas), drawn in milliseconds."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg

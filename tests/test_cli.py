@@ -25,7 +25,7 @@ from terrain.outputs.tables import rounded
 from terrain.summary.features import COLUMN_KINDS, COLUMNS
 from terrain.summary.ranks import RANK_COLUMN_KINDS
 
-from .conftest import smooth_terrain, write_tif
+from .conftest import once, smooth_terrain, write_tif
 
 # in-process runs here draw blank stand-ins for the figures (tests/conftest.py): the
 # real ones are checked in test_pictures.py and by the demo run below (a subprocess)
@@ -171,13 +171,17 @@ def test_ctrl_c_saves_checkpoint_and_resume_is_identical(tmp_path):
 
 @pytest.fixture(scope="session")
 def demo_out(tmp_path_factory):
-    out = tmp_path_factory.mktemp("demo")
-    p = subprocess.run([sys.executable, "-c", "from cairn_cli.main import run; run()", "demo",
-                        "-o", str(out), "-q"], capture_output=True, text=True, timeout=600)
-    assert p.returncode == 0, p.stderr
-    return out
+    def make():
+        out = tmp_path_factory.mktemp("demo")
+        p = subprocess.run([sys.executable, "-c", "from cairn_cli.main import run; run()", "demo",
+                            "-o", str(out), "-q"], capture_output=True, text=True, timeout=600)
+        assert p.returncode == 0, p.stderr
+        return out
+
+    return once("demo", make)
 
 
+@pytest.mark.xdist_group("demo")  # one worker runs the demo
 @pytest.mark.slow
 def test_demo_twin_summit_splits_and_knolls_spread(demo_out):
     summits = pd.read_csv(demo_out / "peaks" / "summits.csv").sort_values("rank")
@@ -247,6 +251,7 @@ def test_readme_quotes_every_figure_it_checks():
     assert len(quoted_figures(readme)) == 29
 
 
+@pytest.mark.xdist_group("demo")  # one worker runs the demo
 @pytest.mark.slow
 def test_readme_figures_about_the_demo_agree_with_a_demo_run(demo_out):
     # every number the README quotes about the demo's pictures lies within Monte Carlo
@@ -263,6 +268,7 @@ def test_readme_figures_about_the_demo_agree_with_a_demo_run(demo_out):
             f"README quotes {name} as {text}; the demo gives {value:.3f} ± {se:.3f}")
 
 
+@pytest.mark.xdist_group("demo")  # one worker runs the demo
 @pytest.mark.slow
 def test_demo_layers_are_valid_cogs(demo_out):
     # OGC Cloud Optimized GeoTIFF Standard (2023), via rio-cogeo's validator, statistics

@@ -43,7 +43,7 @@ from terrain.summary.ranks import (
     two_clusters,
 )
 
-from .conftest import write_tif
+from .conftest import once, write_tif
 
 
 # -- ranks as distributions ------------------------------------------------------------
@@ -272,18 +272,21 @@ def usgs_runs(tmp_path_factory, usgs_dem):
 
     from cairn_cli.main import cli
 
-    tmp = tmp_path_factory.mktemp("usgs")
-    dem = write_tif(tmp / "usgs.tif", usgs_dem.astype(np.int16), units="metre",
-                    transform=from_origin(700000.0, 4030000.0, 90.0, 90.0))
-    out = {}
-    for cmd, args in (("peaks", ("--min-prominence", "30", "-n", "40")),
-                      ("depressions", ("--range", "500", "-n", "20"))):
-        res = CliRunner().invoke(cli, [cmd, str(dem), "-o", str(tmp / cmd), "--rmse", "2.5",
-                                       "--workers", "2", "--seed", "0", *args],
-                                 catch_exceptions=False)
-        assert res.exit_code == 0, res.output
-        out[cmd] = (tmp / cmd, res.stdout)
-    return out
+    def make():
+        tmp = tmp_path_factory.mktemp("usgs")
+        dem = write_tif(tmp / "usgs.tif", usgs_dem.astype(np.int16), units="metre",
+                        transform=from_origin(700000.0, 4030000.0, 90.0, 90.0))
+        out = {}
+        for cmd, args in (("peaks", ("--min-prominence", "30", "-n", "40")),
+                          ("depressions", ("--range", "500", "-n", "20"))):
+            res = CliRunner().invoke(cli, [cmd, str(dem), "-o", str(tmp / cmd), "--rmse", "2.5",
+                                           "--workers", "2", "--seed", "0", *args],
+                                     catch_exceptions=False)
+            assert res.exit_code == 0, res.output
+            out[cmd] = (tmp / cmd, res.stdout)
+        return out
+
+    return once("usgs_runs", make)
 
 
 @pytest.mark.xdist_group("usgs_runs")  # one worker makes the module fixture

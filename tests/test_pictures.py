@@ -243,16 +243,23 @@ def test_rotated_grid_has_no_north_arrow():
     assert not [t for t in fig.axes[0].texts if t.get_gid() == "north_arrow"]
 
 
+def _scattered_points(cells: int, n: int, *, seed: int):
+    """A blank map of ``cells`` x ``cells`` 10 m cells and ``n`` random points inside it
+    (at least 50 m from its edges): (frame, x, y)."""
+    from terrain.outputs.mapframe import MapFrame
+
+    rng = np.random.default_rng(seed)
+    dem = _dem(np.zeros((cells, cells)), crs=UTM)
+    frame = MapFrame(dem, title="t", subtitle="s", footer="f", caution=CAUTION)
+    side = 10.0 * cells
+    x0, y0 = dem.transform[2], dem.transform[5] - side
+    return frame, x0 + rng.uniform(50, side - 50, n), y0 + rng.uniform(50, side - 50, n)
+
+
 def test_crowded_labels_never_overlap():
     # 40 markers and 12 labels in a small square: whatever adjustText manages, what is
     # drawn overlaps nothing, and the most important label is kept
-    from terrain.outputs.mapframe import MapFrame
-
-    rng = np.random.default_rng(4)
-    dem = _dem(np.zeros((80, 80)), crs=UTM)
-    frame = MapFrame(dem, title="t", subtitle="s", footer="f", caution=CAUTION)
-    x0, y0 = dem.transform[2], dem.transform[5] - 800
-    x, y = x0 + rng.uniform(50, 750, 20), y0 + rng.uniform(50, 750, 20)
+    frame, x, y = _scattered_points(80, 20, seed=4)
     frame.points(x, y, marker="^", face="white", label="a point")
     frame.points(x + 30, y - 20, marker="D", face="grey", label="another", size=6)
     for i in range(12):
@@ -271,13 +278,9 @@ def test_crowded_labels_never_overlap():
 def test_a_map_places_at_most_its_label_cap_and_counts_the_rest():
     # a hundred outlets: the map places the first MAX_LABELS labels in order of importance,
     # and the footer names a few of the rest and counts the others
-    from terrain.outputs.mapframe import MAX_LABELS, NAMED_UNPLACED, MapFrame
+    from terrain.outputs.mapframe import MAX_LABELS, NAMED_UNPLACED
 
-    rng = np.random.default_rng(5)
-    dem = _dem(np.zeros((200, 200)), crs=UTM)
-    frame = MapFrame(dem, title="t", subtitle="s", footer="f", caution=CAUTION)
-    x0, y0 = dem.transform[2], dem.transform[5] - 2000
-    x, y = x0 + rng.uniform(50, 1950, 100), y0 + rng.uniform(50, 1950, 100)
+    frame, x, y = _scattered_points(200, 100, seed=5)
     frame.points(x, y, marker="v", face="white", label="outlet")
     for i in range(100):
         frame.label(x[i], y[i], f"g{i}")

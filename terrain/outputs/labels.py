@@ -119,14 +119,26 @@ def _free_spot(ax, item, obstacles, fontsize: float):
     box, frame = t.get_window_extent(r), ax.get_window_extent(r)
     px, py = ax.transData.transform((x, y))
     w, h = box.width / 2, box.height / 2
-    for radius in np.arange(12.0, SEARCH_PX + 1, 12.0):
-        for a in np.linspace(0, 2 * np.pi, 24, endpoint=False):
-            cx, cy = px + radius * np.cos(a), py + radius * np.sin(a)
-            b = box.translated(cx - (box.x0 + w), cy - (box.y0 + h))
-            if (frame.x0 <= b.x0 and b.x1 <= frame.x1 and frame.y0 <= b.y0 and b.y1 <= frame.y1
-                    and not any(boxes_overlap(b, o) for o in obstacles)):
-                t.set_position(ax.transData.inverted().transform((cx, cy)))
-                return t
+    # every candidate centre at once, in the order of the search (ring by ring, 24
+    # directions each), tested against every obstacle as arrays (boxes_overlap's rule)
+    radius = np.repeat(np.arange(12.0, SEARCH_PX + 1, 12.0), 24)
+    a = np.tile(np.linspace(0, 2 * np.pi, 24, endpoint=False), radius.size // 24)
+    cx, cy = px + radius * np.cos(a), py + radius * np.sin(a)
+    dx, dy = cx - (box.x0 + w), cy - (box.y0 + h)
+    x0, x1, y0, y1 = box.x0 + dx, box.x1 + dx, box.y0 + dy, box.y1 + dy
+    ok = (frame.x0 <= x0) & (x1 <= frame.x1) & (frame.y0 <= y0) & (y1 <= frame.y1)
+    if obstacles:
+        o = np.array([(b.x0, b.x1, b.y0, b.y1) for b in obstacles])
+        for start in range(0, o.shape[0], 256):  # at most 528 x 256 at a time
+            ob = o[start:start + 256]
+            wide = np.minimum(x1[:, None], ob[:, 1]) - np.maximum(x0[:, None], ob[:, 0]) > 0.5
+            tall = np.minimum(y1[:, None], ob[:, 3]) - np.maximum(y0[:, None], ob[:, 2]) > 0.5
+            ok &= ~(wide & tall).any(axis=1)
+    free = np.flatnonzero(ok)
+    if free.size:
+        k = free[0]
+        t.set_position(ax.transData.inverted().transform((cx[k], cy[k])))
+        return t
     t.remove()
     return None
 

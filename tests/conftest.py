@@ -12,6 +12,15 @@ import numpy as np
 import pytest
 from scipy.ndimage import gaussian_filter
 
+# Bytecode is cached while the tests run, whatever PYTHONDONTWRITEBYTECODE says: the
+# suite starts hundreds of Python processes (command lines, pool and Dask workers),
+# and without the cache each compiles cairn's modules again (~0.4 s each) and each
+# test process rewrites every test module's asserts again (~4 s). Set here, before
+# pytest-xdist starts its test processes, so they and their children inherit it;
+# the files go to __pycache__ folders, which git ignores.
+os.environ.pop("PYTHONDONTWRITEBYTECODE", None)
+sys.dont_write_bytecode = False
+
 
 def pytest_configure(config):
     """Before the test processes start (in pytest-xdist's controller, or in a run
@@ -31,6 +40,28 @@ def pytest_configure(config):
         _, err = p.communicate()
         if p.returncode:  # the tests themselves will show what is wrong
             print(f"warm_kernels.py failed:\n{err}", file=sys.stderr)
+
+
+@pytest.hookimpl(trylast=True)
+def pytest_collection_modifyitems(config, items):
+    """Make ``--dist loadgroup`` group again under pytest 9.
+
+    pytest-xdist (3.8) marks a grouped test by appending ``@group`` to
+    ``item._nodeid``; pytest 9 reads a node's id from ``item._id`` instead, so the
+    group never reaches the scheduler and the tests of an ``xdist_group`` (which
+    share one expensive run through ``once``) land on both workers, each making
+    the run. Set the id pytest 9 reads, once xdist has named the group."""
+    if not getattr(config.option, "loadgroup", False):
+        return
+    try:
+        from _pytest.nodeid import NodeId
+    except ImportError:  # pytest < 9: xdist's own suffix already took effect
+        return
+    for item in items:
+        names = sorted({str(m.args[0] if m.args else m.kwargs.get("name", "default"))
+                        for m in item.iter_markers("xdist_group")})
+        if names and "@" not in item.nodeid:
+            item._id = NodeId.parse(f"{item.nodeid}@{'_'.join(names)}")
 
 
 @functools.cache  # nested quadrature: seconds a call, the same calls recur
@@ -180,6 +211,46 @@ def once(name: str, make):
     if name not in _ONCE:
         _ONCE[name] = make()
     return _ONCE[name]
+
+
+def pytest_sessionfinish(session):
+    """Close what ``once`` made that needs closing (a Dask cluster) before the process ends."""
+    for made in _ONCE.values():
+        if hasattr(made, "close") and callable(made.close):
+            made.close()
+    _ONCE.clear()
+
+
+def _groups(item) -> set:
+    return {m.args[0] for m in item.iter_markers("xdist_group") if m.args} if item else set()
+
+
+def pytest_runtest_teardown(item, nextitem):
+    """Close the shared Dask cluster once its group's tests are done: idle, its two
+    worker processes still spend ~6% of a core each (heartbeats, memory checks)."""
+    if "dask_cluster" in _groups(item) and "dask_cluster" not in _groups(nextitem):
+        made = _ONCE.pop("dask_cluster", None)
+        if made is not None:
+            made.close()
+
+
+@pytest.fixture
+def dask_cluster():
+    """A local Dask cluster, two worker processes of one thread each, made once per
+    test process and kept (each start costs seconds of CPU). For tests that only run
+    on it: a test that kills a worker or the scheduler makes its own. Mark its tests
+    ``xdist_group("dask_cluster")`` so one test process makes it."""
+    pytest.importorskip("distributed")
+
+    def make():
+        import logging
+
+        from distributed import LocalCluster
+
+        return LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                            dashboard_address=":0", silence_logs=logging.CRITICAL)
+
+    return once("dask_cluster", make)
 
 
 def _stand_in_figure(*args, **kwargs):

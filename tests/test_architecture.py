@@ -24,6 +24,7 @@
 from __future__ import annotations
 
 import ast
+import functools
 import re
 from pathlib import Path
 
@@ -38,6 +39,7 @@ OPENERS = {"open", "rasterio.open", "np.load", "np.save", "np.savez", "savefig",
            "read_csv", "mkstemp", "unlink", "replace", "mkdir", "iterdir", "fsync"}
 
 
+@functools.cache  # parsed once per test process; the tests only read the trees
 def _tree(path: Path) -> ast.Module:
     return ast.parse(path.read_text(), filename=str(path))
 

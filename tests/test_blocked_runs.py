@@ -97,14 +97,14 @@ def test_run_layers_identical_with_blocks_on_every_backend(kind):
 
 
 @pytest.mark.slow
-def test_blocked_run_on_dask_is_identical():
-    pytest.importorskip("distributed")
+@pytest.mark.xdist_group("dask_cluster")
+def test_blocked_run_on_dask_is_identical(dask_cluster):
     dem = _dem((48, 40))
     m = MODELS["independent"]
     want = run_ensemble(dem, CreditJob("depressions"), m, realisations=2, seed=4,
                         backend="serial")
-    got = run_ensemble(dem, CreditJob("depressions"), m, realisations=2, seed=4, backend="dask",
-                       workers=2, block=16)
+    got = run_ensemble(dem, CreditJob("depressions"), m, realisations=2, seed=4,
+                       scheduler=dask_cluster.scheduler_address, block=16)
     _same(want.log, got.log)
 
 

@@ -254,14 +254,15 @@ def _hilly_job():
 
 
 @pytest.mark.slow
-def test_catchments_identical_across_backends():
+@pytest.mark.xdist_group("dask_cluster")
+def test_catchments_identical_across_backends(dask_cluster):
     # every layer (channel, divides, catchments, sub-catchments) and the log, bit for bit
     dem, job, m = _hilly_job()
     a = run_ensemble(dem, job, m, realisations=12, seed=4, backend="serial")
     _same_layers(a, run_ensemble(dem, job, m, realisations=12, seed=4, backend="processes",
                                  workers=2, chunk=5))
-    _same_layers(a, run_ensemble(dem, job, m, realisations=12, seed=4, backend="dask", workers=2,
-                                 chunk=7))
+    _same_layers(a, run_ensemble(dem, job, m, realisations=12, seed=4,
+                                 scheduler=dask_cluster.scheduler_address, chunk=7))
     assert len(a.layers) == 3 + 2 * 3 and a.log["subarea"].shape == (36,)
 
 

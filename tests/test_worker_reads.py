@@ -130,9 +130,9 @@ def test_pure_tasks_carry_the_path_not_the_values(tmp_path, kind):
 
 
 @pytest.mark.slow
-def test_dask_workers_read_the_dem_from_its_path(tmp_path, monkeypatch):
-    pytest.importorskip("distributed")
-    from distributed import Client, LocalCluster
+@pytest.mark.xdist_group("dask_cluster")
+def test_dask_workers_read_the_dem_from_its_path(tmp_path, monkeypatch, dask_cluster):
+    from distributed import Client
 
     from terrain.runner import blocked
     from terrain.runner.blocked import _workers_read
@@ -143,8 +143,8 @@ def test_dask_workers_read_the_dem_from_its_path(tmp_path, monkeypatch):
 
     p = _terrain_tif(tmp_path)
     dem = read_dem(p)
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0") \
-            as cluster, Client(cluster) as client:
+    cluster = dask_cluster
+    with Client(cluster) as client:
         reader, z = dem_windows(dem), dem.z.astype(np.float32)
         assert _workers_read(client, reader, z, 0.0, 0.0)  # so the run's tasks read the file
         assert not _workers_read(client, reader, z + 1, 0.0, 0.0)  # other values: sent instead

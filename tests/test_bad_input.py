@@ -1655,12 +1655,18 @@ def test_the_guard_counts_the_kernel(cairn, dem, tmp_path, monkeypatch):
 WAIT = 3  # seconds a cluster may stay without workers in these tests (WORKER_WAIT_SECONDS)
 # the CLI with a short worker wait and a checkpoint every 10 realisations (not 50), so the
 # runs below reach their first checkpoint in a fifth of the time
-_DASK_CLI = [sys.executable, "-c", "import terrain.runner.backends as b; "
-             f"b.WORKER_WAIT_SECONDS = {WAIT}; import terrain.runner.ensemble as e; "
-             "i = e.Execution.__init__; "
-             "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
-             "object.__setattr__(s, 'checkpoint_every', 10))[0]; "
-             "from cairn_cli.main import run; run()"]
+
+
+def _dask_cli(wait: float = WAIT) -> list[str]:
+    return [sys.executable, "-c", "import terrain.runner.backends as b; "
+            f"b.WORKER_WAIT_SECONDS = {wait}; import terrain.runner.ensemble as e; "
+            "i = e.Execution.__init__; "
+            "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
+            "object.__setattr__(s, 'checkpoint_every', 10))[0]; "
+            "from cairn_cli.main import run; run()"]
+
+
+_DASK_CLI = _dask_cli()
 
 
 def _free_port():
@@ -1727,11 +1733,11 @@ def test_a_scheduler_without_workers_is_one_line(tmp_path, cluster, block):
     nothing_written(tmp_path / "o")
 
 
-def _start_dask_run(tmp_path, cluster, *extra):
+def _start_dask_run(tmp_path, cluster, *extra, wait: float = WAIT):
     side = 96 if "--block" in extra else 200  # the first checkpoint (10 realisations) comes soon
     dem = write_tif(tmp_path / "d.tif", smooth_terrain((side, side), seed=4))
     ck = tmp_path / "ck.npz"
-    p = subprocess.Popen(_DASK_CLI + [*extra, str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
+    p = subprocess.Popen(_dask_cli(wait) + [*extra, str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
                                       "-q", "--scheduler", cluster.address, "--checkpoint",
                                       str(ck)], stderr=subprocess.PIPE, text=True)
     deadline = time.time() + 240
@@ -1766,7 +1772,9 @@ def test_a_lost_worker_or_scheduler_is_one_line(tmp_path, cluster, mode, lost):
 @pytest.mark.parametrize("cluster", [1], indirect=True)
 @pytest.mark.parametrize("sig,code", [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
 def test_ctrl_c_and_sigterm_end_a_run_whose_workers_left(tmp_path, cluster, sig, code):
-    p, ck = _start_dask_run(tmp_path, cluster, *RUNS["blocked"])
+    # a long worker wait, so that only the signal can end the run within the 10 s below
+    # (with the usual 3 s, a busy machine could let the wait end it first)
+    p, ck = _start_dask_run(tmp_path, cluster, *RUNS["blocked"], wait=30)
     cluster.workers[0].kill()  # the run now waits for workers: a signal must still end it
     time.sleep(1)
     t = time.time()

@@ -139,8 +139,13 @@ def test_inspect(cairn, dem_tif):
     assert "metre" in out and "bytes per cell" in out
 
 
-def _cairn_proc(*args, **kw):
-    return subprocess.Popen([sys.executable, "-c", "from cairn_cli.main import run; run()",
+def _cairn_proc(*args, every: int | None = None, **kw):
+    """The CLI in a process of its own; ``every``: checkpoint every so many realisations
+    (instead of 50)."""
+    patch = ("import terrain.runner.ensemble as e; i = e.Execution.__init__; "
+             "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
+             f"object.__setattr__(s, 'checkpoint_every', {every}))[0]; ") if every else ""
+    return subprocess.Popen([sys.executable, "-c", f"{patch}from cairn_cli.main import run; run()",
                              *map(str, args)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True, **kw)
 
@@ -151,9 +156,9 @@ def test_ctrl_c_saves_checkpoint_and_resume_is_identical(tmp_path):
     dem = write_tif(tmp_path / "d.tif", z)
     ck = tmp_path / "ck.npz"
     args = ("peaks", dem, "--rmse", "1", "-n", "100", "--seed", "9", "--workers", "1")
-    p = _cairn_proc(*args, "-o", tmp_path / "a", "--checkpoint", ck)
+    p = _cairn_proc(*args, "-o", tmp_path / "a", "--checkpoint", ck, every=10)
     deadline = time.time() + 120
-    while not ck.exists() and time.time() < deadline:  # first checkpoint after 50 realisations
+    while not ck.exists() and time.time() < deadline:  # first checkpoint after 10 realisations
         time.sleep(0.02)
     p.send_signal(signal.SIGINT)
     _, err = p.communicate(timeout=120)

@@ -5,10 +5,8 @@ that takes chunks ``(a, b)`` from the lazy ``plan`` while ``stop()`` is
 false and yields ``(a, b, log, counts)`` in completion order; the caller
 folds them in realisation order.
 
-``"processes"`` uses a local process pool (:func:`pool_context`: workers
-forked from a fork server that has already loaded cairn, where the platform
-has one, else spawned); the DEM and error model reach each worker once,
-through the pool initialiser.
+``"processes"`` uses a local process pool with the spawn start method (the
+DEM and error model reach each worker once, through the pool initialiser).
 ``"dask"`` uses a ``dask.distributed`` client, to a running scheduler
 (``scheduler="tcp://host:port"``) or to a ``LocalCluster`` started here; the
 context is scattered once and Dask reschedules the tasks of a worker that
@@ -39,7 +37,7 @@ from ..errors import CairnError, SchedulerError, WorkerError
 from ..io import load_shared, save_shared, scratch_folder
 from ..noise import ErrorSampler
 
-__all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", "pool_context",
+__all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
            "init_worker", "spawning", "DaskWatch", "WORKER_WAIT_SECONDS", "POLL_SECONDS",
            "close_dask", "quiet_dask"]
@@ -87,64 +85,20 @@ def refuse_in_bootstrapping_child() -> None:
 _CTX: Context | None = None
 
 
-def pool_context():
-    """The multiprocessing context of cairn's worker pools.
-
-    Where the platform has the fork server start method (Linux, macOS), the
-    workers are forked from a server process that has imported cairn and set
-    up numba once (:mod:`terrain.runner.preload`): a worker starts in a
-    fraction of a second instead of importing everything again. Like spawned
-    workers they share no threads or locks with the run's process, and a
-    script's main module is imported in each of them as with spawn (hence the
-    ``if __name__ == "__main__":`` rule). Elsewhere: spawn.
-
-    References
-    ----------
-    Python documentation, ``multiprocessing``: "Contexts and start methods".
-    """
-    import multiprocessing as mp
-
-    if "forkserver" not in mp.get_all_start_methods():
-        return mp.get_context("spawn")
-    ctx = mp.get_context("forkserver")
-    from multiprocessing import forkserver
-
-    server = getattr(forkserver, "_forkserver", None)
-    if getattr(server, "_forkserver_pid", None) is None:  # not started yet: say what it loads
-        ctx.set_forkserver_preload(["terrain.runner.preload"])
-    return ctx
-
-
 def init_worker(ctx: Context | str | None, parent: int) -> None:
     """Set up a pool worker: signals, death with the parent, and the run's
-    context (given, or the path of a :func:`~terrain.io.save_shared` file).
-
-    ``parent`` is the run's process; a forked worker's own parent is the fork
-    server, which ends when the run's process does."""
+    context (given, or the path of a :func:`~terrain.io.save_shared` file)."""
     import os
     import signal
 
     global _CTX
     # Ctrl-C is the parent's to handle: the worker was started with SIGINT
-    # blocked (see spawning, and terrain.runner.preload) and from here on ignores it too
+    # blocked (see spawning) and from here on ignores it too
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    ppid = os.getppid()
-    _die_with_parent(ppid)
-    if os.getppid() != ppid or not _alive(parent):  # a parent died before we were ready
+    _die_with_parent(parent)
+    if os.getppid() != parent:  # the parent died before we were ready
         os._exit(1)
     _CTX = load_shared(ctx) if isinstance(ctx, str) else ctx
-
-
-def _alive(pid: int) -> bool:
-    import os
-
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except OSError:  # it exists (another user's would say EPERM)
-        return True
-    return True
 
 
 def _die_with_parent(parent: int) -> None:
@@ -218,11 +172,12 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
 
 def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
     import concurrent.futures as cf
+    import multiprocessing as mp
     import os
     from concurrent.futures.process import BrokenProcessPool
 
     started = broken = False
-    pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=pool_context(),
+    pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
                                   initializer=init_worker, initargs=(shared, os.getpid()))
     window = _Window(2 * workers)
     pending: dict = {}

@@ -59,7 +59,6 @@ from .backends import (
     close_dask,
     dask_client,
     init_worker,
-    pool_context,
     quiet_dask,
     spawning,
 )
@@ -168,10 +167,11 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
         return
     if backend == "processes":
         import concurrent.futures as cf
+        import multiprocessing as mp
         from concurrent.futures.process import BrokenProcessPool
 
         with spawning():
-            pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=pool_context(),
+            pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
                                           initializer=init_worker, initargs=(None, os.getpid()))
         state = {"started": False}
 

@@ -58,8 +58,7 @@ def pytest_collection_modifyitems(config, items):
     except ImportError:  # pytest < 9: xdist's own suffix already took effect
         return
     for item in items:
-        names = sorted({str(m.args[0] if m.args else m.kwargs.get("name", "default"))
-                        for m in item.iter_markers("xdist_group")})
+        names = sorted(_groups(item))
         if names and "@" not in item.nodeid:
             item._id = NodeId.parse(f"{item.nodeid}@{'_'.join(names)}")
 
@@ -221,8 +220,24 @@ def pytest_sessionfinish(session):
     _ONCE.clear()
 
 
-def _groups(item) -> set:
-    return {m.args[0] for m in item.iter_markers("xdist_group") if m.args} if item else set()
+def _groups(item) -> set[str]:
+    """The names of ``item``'s xdist groups (none for no item)."""
+    return {str(m.args[0] if m.args else m.kwargs.get("name", "default"))
+            for m in item.iter_markers("xdist_group")} if item else set()
+
+
+def cli_command(*, checkpoint_every: int | None = None, worker_wait: float | None = None):
+    """``python -c`` running cairn's command line, optionally checkpointing every
+    ``checkpoint_every`` realisations (not 50) and waiting ``worker_wait`` seconds for
+    Dask workers: for tests that interrupt a run in a process of its own."""
+    patch = ""
+    if worker_wait is not None:
+        patch += f"import terrain.runner.backends as b; b.WORKER_WAIT_SECONDS = {worker_wait}; "
+    if checkpoint_every is not None:
+        patch += ("import terrain.runner.ensemble as e; i = e.Execution.__init__; "
+                  "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
+                  f"object.__setattr__(s, 'checkpoint_every', {checkpoint_every}))[0]; ")
+    return [sys.executable, "-c", f"{patch}from cairn_cli.main import run; run()"]
 
 
 def pytest_runtest_teardown(item, nextitem):

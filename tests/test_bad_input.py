@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 import rasterio
 
-from .conftest import smooth_terrain, write_tif
+from .conftest import cli_command, smooth_terrain, write_tif
 
 pytestmark = pytest.mark.usefixtures("stand_in_figures")
 
@@ -1658,12 +1658,7 @@ WAIT = 3  # seconds a cluster may stay without workers in these tests (WORKER_WA
 
 
 def _dask_cli(wait: float = WAIT) -> list[str]:
-    return [sys.executable, "-c", "import terrain.runner.backends as b; "
-            f"b.WORKER_WAIT_SECONDS = {wait}; import terrain.runner.ensemble as e; "
-            "i = e.Execution.__init__; "
-            "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
-            "object.__setattr__(s, 'checkpoint_every', 10))[0]; "
-            "from cairn_cli.main import run; run()"]
+    return cli_command(checkpoint_every=10, worker_wait=wait)
 
 
 _DASK_CLI = _dask_cli()

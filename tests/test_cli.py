@@ -25,7 +25,7 @@ from terrain.outputs.tables import rounded
 from terrain.summary.features import COLUMN_KINDS, COLUMNS
 from terrain.summary.ranks import RANK_COLUMN_KINDS
 
-from .conftest import once, smooth_terrain, write_tif
+from .conftest import cli_command, once, smooth_terrain, write_tif
 
 # in-process runs here draw blank stand-ins for the figures (tests/conftest.py): the
 # real ones are checked in test_pictures.py and by the demo run below (a subprocess)
@@ -142,12 +142,8 @@ def test_inspect(cairn, dem_tif):
 def _cairn_proc(*args, every: int | None = None, **kw):
     """The CLI in a process of its own; ``every``: checkpoint every so many realisations
     (instead of 50)."""
-    patch = ("import terrain.runner.ensemble as e; i = e.Execution.__init__; "
-             "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
-             f"object.__setattr__(s, 'checkpoint_every', {every}))[0]; ") if every else ""
-    return subprocess.Popen([sys.executable, "-c", f"{patch}from cairn_cli.main import run; run()",
-                             *map(str, args)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            text=True, **kw)
+    return subprocess.Popen(cli_command(checkpoint_every=every) + [*map(str, args)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
 
 
 @pytest.mark.slow

@@ -16,7 +16,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ..dem import Dem, metres_per_degree
-from .labels import boxes_overlap, marker_boxes
+from .labels import box_array, boxes_overlap, marker_boxes, overlaps
 from .style import FONT_PT, INK
 
 if TYPE_CHECKING:
@@ -99,13 +99,10 @@ def place_furniture(ax: Axes, points, *, arrow: bool) -> None:
     points = marker_boxes(ax, points)
     bar = next(a for a in ax.artists if a.get_gid() == "scale_bar")
 
-    pts = np.array([(p.x0, p.x1, p.y0, p.y1) for p in points]).reshape(-1, 4)
+    pts = box_array(points)
 
-    def covered(boxes):  # how many (box, point) pairs overlap: boxes_overlap's rule, as arrays
-        b = np.array([(x.x0, x.x1, x.y0, x.y1) for x in boxes]).reshape(-1, 4)
-        wide = np.minimum(b[:, None, 1], pts[:, 1]) - np.maximum(b[:, None, 0], pts[:, 0]) > 0.0
-        tall = np.minimum(b[:, None, 3], pts[:, 3]) - np.maximum(b[:, None, 2], pts[:, 2]) > 0.0
-        return int((wide & tall).sum())
+    def covered(boxes):  # how many (box, point) pairs overlap
+        return int(overlaps(box_array(boxes), pts, tol=0.0).sum())
 
     counts = {}
     for name in PLACES:

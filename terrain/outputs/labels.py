@@ -23,7 +23,8 @@ from .style import FONT_PT, HALO_PT, INK, halo
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
 
-__all__ = ["place_labels", "boxes_overlap", "marker_boxes", "LABEL_STARTS", "SEARCH_PX"]
+__all__ = ["place_labels", "boxes_overlap", "box_array", "overlaps", "marker_boxes", "LABEL_STARTS",
+           "SEARCH_PX"]
 
 #: where a label starts in each placement (pixels right and up of its point, alignment) and
 #: where adjustText may move it: right of it, anywhere; labels that still overlap start left
@@ -127,13 +128,9 @@ def _free_spot(ax, item, obstacles, fontsize: float):
     dx, dy = cx - (box.x0 + w), cy - (box.y0 + h)
     x0, x1, y0, y1 = box.x0 + dx, box.x1 + dx, box.y0 + dy, box.y1 + dy
     ok = (frame.x0 <= x0) & (x1 <= frame.x1) & (frame.y0 <= y0) & (y1 <= frame.y1)
-    if obstacles:
-        o = np.array([(b.x0, b.x1, b.y0, b.y1) for b in obstacles])
-        for start in range(0, o.shape[0], 256):  # at most 528 x 256 at a time
-            ob = o[start:start + 256]
-            wide = np.minimum(x1[:, None], ob[:, 1]) - np.maximum(x0[:, None], ob[:, 0]) > 0.5
-            tall = np.minimum(y1[:, None], ob[:, 3]) - np.maximum(y0[:, None], ob[:, 2]) > 0.5
-            ok &= ~(wide & tall).any(axis=1)
+    spots, o = np.column_stack([x0, x1, y0, y1]), box_array(obstacles)
+    for start in range(0, o.shape[0], 256):  # at most 528 x 256 at a time
+        ok &= ~overlaps(spots, o[start:start + 256]).any(axis=1)
     free = np.flatnonzero(ok)
     if free.size:
         k = free[0]
@@ -248,6 +245,19 @@ def marker_boxes(ax, avoid) -> list:
 def boxes_overlap(a, b, tol: float = 0.5) -> bool:
     """Whether two display boxes share an area wider and taller than ``tol`` pixels."""
     return (min(a.x1, b.x1) - max(a.x0, b.x0) > tol) and (min(a.y1, b.y1) - max(a.y0, b.y0) > tol)
+
+
+def box_array(boxes) -> np.ndarray:
+    """Display boxes as an (n, 4) array of x0, x1, y0, y1."""
+    return np.array([(b.x0, b.x1, b.y0, b.y1) for b in boxes], float).reshape(-1, 4)
+
+
+def overlaps(a: np.ndarray, b: np.ndarray, tol: float = 0.5) -> np.ndarray:
+    """:func:`boxes_overlap` of every box of ``a`` with every box of ``b`` ((n, 4) and
+    (m, 4) arrays of x0, x1, y0, y1, as :func:`box_array`): an (n, m) boolean array."""
+    wide = np.minimum(a[:, None, 1], b[:, 1]) - np.maximum(a[:, None, 0], b[:, 0]) > tol
+    tall = np.minimum(a[:, None, 3], b[:, 3]) - np.maximum(a[:, None, 2], b[:, 2]) > tol
+    return wide & tall
 
 
 def _clear(ax, texts: dict, obstacles, kept: dict) -> list:

@@ -81,8 +81,12 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
     if not items:
         return []
     boxes = marker_boxes(ax, avoid) + list(fixed)
+    clear = box_array(boxes)
     kept: dict[int, object] = {}
-    todo = list(range(len(items)))
+    # a label with no free spot near its point among the markers and the fixed boxes
+    # has none later either (labels kept only add obstacles): it is left out at once,
+    # instead of costing every adjustText pass on a crowded map
+    todo = [i for i, item in enumerate(items) if _free_spot(ax, item, clear, fontsize, probe=True)]
     with _only_labels(ax):  # adjustText draws the figure; nothing else moves the labels
         for start in LABEL_STARTS[:ADJUST_STARTS]:
             if not todo:
@@ -92,14 +96,14 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
             fixed_kept = [kept[i].get_window_extent(r) for i in kept if i < todo[0]]
             near = _near(ax, [items[i] for i in todo], boxes + fixed_kept)
             texts = _adjust(ax, [items[i] for i in todo], near, fontsize, start)
-            evicted = _clear(ax, dict(zip(todo, texts)), boxes, kept)
+            evicted = _clear(ax, dict(zip(todo, texts)), clear, kept)
             for i, t in zip(todo, texts):
                 if kept.get(i) is not t:
                     t.remove()
             todo = sorted(set(i for i in todo if i not in kept) | set(evicted))
         for i in todo:  # the last resort: the nearest free spot within SEARCH_PX
-            text = _free_spot(ax, items[i], boxes + [t.get_window_extent(r) for t in kept.values()],
-                              fontsize)
+            taken = box_array([t.get_window_extent(r) for t in kept.values()])
+            text = _free_spot(ax, items[i], np.vstack([clear, taken]), fontsize)
             if text is not None:
                 kept[i] = text
     size = {(x, y): s for x, y, s in avoid}
@@ -108,10 +112,12 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
     return [kept[i] for i in sorted(kept)]
 
 
-def _free_spot(ax, item, obstacles, fontsize: float):
+def _free_spot(ax, item, obstacles: np.ndarray, fontsize: float, *, probe: bool = False):
     """A label for ``item`` at the free spot nearest its point (in rings of 12
     pixels out to :data:`SEARCH_PX`, 24 directions each) where it lies inside
-    the axes and overlaps no obstacle; None when there is none."""
+    the axes and overlaps none of the ``obstacles`` (display boxes as
+    :func:`box_array`); None when there is none. ``probe``: only whether there
+    is one (the label is not kept)."""
     r = ax.figure.canvas.get_renderer()
     x, y, label = item
     t = ax.text(x, y, label, fontsize=fontsize, color=INK, zorder=7, ha="center", va="center",
@@ -128,16 +134,16 @@ def _free_spot(ax, item, obstacles, fontsize: float):
     dx, dy = cx - (box.x0 + w), cy - (box.y0 + h)
     x0, x1, y0, y1 = box.x0 + dx, box.x1 + dx, box.y0 + dy, box.y1 + dy
     ok = (frame.x0 <= x0) & (x1 <= frame.x1) & (frame.y0 <= y0) & (y1 <= frame.y1)
-    spots, o = np.column_stack([x0, x1, y0, y1]), box_array(obstacles)
+    spots, o = np.column_stack([x0, x1, y0, y1]), obstacles
     for start in range(0, o.shape[0], 256):  # at most 528 x 256 at a time
-        ok &= ~overlaps(spots, o[start:start + 256]).any(axis=1)
+        ok[ok] &= ~overlaps(spots[ok], o[start:start + 256]).any(axis=1)
     free = np.flatnonzero(ok)
-    if free.size:
+    if free.size and not probe:
         k = free[0]
         t.set_position(ax.transData.inverted().transform((cx[k], cy[k])))
         return t
     t.remove()
-    return None
+    return bool(free.size) if probe else None
 
 
 def _fits(ax: Axes, r, text: str, fontsize: float) -> bool:
@@ -260,9 +266,10 @@ def overlaps(a: np.ndarray, b: np.ndarray, tol: float = 0.5) -> np.ndarray:
     return wide & tall
 
 
-def _clear(ax, texts: dict, obstacles, kept: dict) -> list:
+def _clear(ax, texts: dict, obstacles: np.ndarray, kept: dict) -> list:
     """Keep those of ``texts`` (index of importance -> text, 0 the most important)
-    that lie inside the axes and overlap no obstacle, no more important label
+    that lie inside the axes and overlap no obstacle (display boxes as
+    :func:`box_array`), no more important label
     kept, and no more important text of this pass; a less important label kept
     earlier that a new one overlaps is taken out (removed from the axes and
     from ``kept``) to be placed again. Updates ``kept``; returns the indices
@@ -274,7 +281,7 @@ def _clear(ax, texts: dict, obstacles, kept: dict) -> list:
         e = texts[i].get_window_extent(r)
         inside = (frame.x0 - 1 <= e.x0 and e.x1 <= frame.x1 + 1 and frame.y0 - 1 <= e.y0
                   and e.y1 <= frame.y1 + 1)
-        if not inside or any(boxes_overlap(e, b) for b in obstacles):
+        if not inside or overlaps(box_array([e]), obstacles).any():
             continue
         if any(boxes_overlap(e, kept[j].get_window_extent(r)) for j in kept if j < i):
             continue

@@ -15,6 +15,7 @@ import textwrap
 from typing import TYPE_CHECKING
 
 import numpy as np
+import shapely
 
 from ..dem import Dem
 from ..layers import LAYERS, layer_name, read_window, spec, units
@@ -287,11 +288,10 @@ def _draw_features(frame: MapFrame, features: FeatureSummary, drawn, kind: dict,
     by a dotted one."""
     job_kind = "peaks" if kind["feature"] == "summit" else "depressions"
     geoms = features.frames[LAYER_NAMES[job_kind][0]].set_index("feature_id").geometry
-    geoms = [geoms.get(i) for i in drawn["feature_id"]]
+    geoms = geoms.reindex(drawn["feature_id"]).to_numpy()  # None where a feature has no shape
     if job_kind == "peaks":  # a top's cells are scattered: outline them together
-        geoms = [g.buffer(ENVELOPE_CELLS * max(dem.cellsize)) if g is not None else None
-                 for g in geoms]
-    frame.polygons(geoms, colour=kind["accent"], label=kind["polygons"])
+        geoms = shapely.buffer(geoms, ENVELOPE_CELLS * max(dem.cellsize))
+    frame.polygons(list(geoms), colour=kind["accent"], label=kind["polygons"])
     d = "col" if job_kind == "peaks" else "spill"
     n = len(drawn)
     size = 8.0 if n <= 40 else 6.0 if n <= 150 else 4.5  # crowded: smaller
@@ -299,10 +299,11 @@ def _draw_features(frame: MapFrame, features: FeatureSummary, drawn, kind: dict,
                                                         drawn[f"{d}_y"])],
                 colour=kind["accent"], lw=0.7,
                 label=f"{kind['death'][1]}: tied to its {kind['feature']} by a thin line")
-    ties = []
-    for _, members in drawn.groupby("group", sort=False):
-        x0, y0 = members["x"].iloc[0], members["y"].iloc[0]
-        ties += [((x0, y0), (x, y)) for x, y in zip(members["x"].iloc[1:], members["y"].iloc[1:])]
+    # each member of a group after its first, tied to the first (in the order drawn)
+    group, x, y = (drawn[c].to_numpy() for c in ("group", "x", "y"))
+    ids, first = np.unique(group, return_index=True)
+    lead = first[np.searchsorted(ids, group)]
+    ties = [((x[j], y[j]), (x[i], y[i])) for i, j in enumerate(lead) if i != j]
     place = "a top" if job_kind == "peaks" else "a floor"
     frame.lines(ties, colour=INK, lw=1.3, ls="dotted",
                 label=f"one group: features that trade a place or share {place}")

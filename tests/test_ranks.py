@@ -280,7 +280,7 @@ def usgs_runs(tmp_path_factory, usgs_dem):
         for cmd, args in (("peaks", ("--min-prominence", "30", "-n", "40")),
                           ("depressions", ("--range", "500", "-n", "20"))):
             res = CliRunner().invoke(cli, [cmd, str(dem), "-o", str(tmp / cmd), "--rmse", "2.5",
-                                           "--workers", "2", "--seed", "0", *args],
+                                           "--workers", "1", "--seed", "0", *args],
                                      catch_exceptions=False)
             assert res.exit_code == 0, res.output
             out[cmd] = (tmp / cmd, res.stdout)

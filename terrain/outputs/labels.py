@@ -38,7 +38,7 @@ LABEL_STARTS = ((9.0, 0.0, "left", "center", "xy"), (-9.0, 0.0, "right", "center
                 (0.0, -40.0, "center", "top", "y-"), (0.0, 40.0, "center", "bottom", "y+"))
 ADJUST = dict(expand=(1.12, 1.45), iter_lim=60, force_text=(0.3, 0.4), force_static=(0.3, 0.4))
 LEADER_PX = 6.0  # a label further than this from its marker gets a leader line
-ADJUST_STARTS = 4  # adjustText placements before the search for a free spot
+ADJUST_STARTS = 2  # adjustText placements before the search for a free spot
 SEARCH_PX = 260.0  # the last resort looks for a free spot this far from a label's point
 
 

@@ -6,6 +6,7 @@ output files.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import subprocess
@@ -809,10 +810,28 @@ def _all_gone(pids, within: float = 10.0) -> bool:
     return not [k for k in pids if _alive(k)]
 
 
+_STARTED: list = []  # runs started by _start_two_workers: killed after their test
+
+
+@pytest.fixture(autouse=True)
+def _reap_runs():
+    """A test that fails before its run ends leaves no run (or its workers) behind."""
+    yield
+    while _STARTED:
+        p = _STARTED.pop()
+        if p.poll() is None:
+            for k in _children(p.pid):
+                with contextlib.suppress(OSError):
+                    os.kill(k, signal.SIGKILL)
+            p.kill()
+            p.wait()
+
+
 def _start_two_workers(dem, out, *extra):
     p = subprocess.Popen(CLI + ["peaks", str(dem), "-o", str(out), "--rmse", "1", "-n", "400",
                                 "--workers", "2", "-q", *map(str, extra)],
                          stderr=subprocess.PIPE, text=True)
+    _STARTED.append(p)
     deadline = time.time() + 120
     while time.time() < deadline and len(_children(p.pid)) < 2:
         time.sleep(0.01)  # the workers are being spawned
@@ -865,6 +884,33 @@ def test_a_dead_worker_ends_the_run_in_one_line(big_dem, tmp_path):
     one_line_error(p.returncode, err, "worker process died", "--workers")
     assert ck.exists()
     nothing_written(tmp_path / "o")
+
+
+def test_stopping_a_pool_whose_worker_died_mid_result_does_not_hang():
+    # A worker killed (SIGTERM's stop, Ctrl-C) while it sends a large result leaves the
+    # pool's manager thread reading the rest of the message; this process holds the
+    # pipe's write end too, so the read never ends and the interpreter's exit (which
+    # joins that thread) hung after "terminated after ...". Simulated exactly: a
+    # message header promising 1 MB, followed by 10 bytes, in the result pipe.
+    import concurrent.futures as cf
+    import multiprocessing as mp
+    import struct
+
+    from terrain.runner.backends import _stop_pool
+
+    pool = cf.ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
+    writer = pool._result_queue._writer
+    try:
+        assert pool.submit(abs, -3).result(timeout=120) == 3  # the manager thread runs
+        manager = pool._executor_manager_thread
+        os.write(writer.fileno(), struct.pack("!i", 2**20) + b"x" * 10)
+        time.sleep(0.3)  # the manager thread is now inside the read
+        t = time.time()
+        _stop_pool(pool, {}, broken=True)
+        assert not manager.is_alive() and time.time() - t < 8
+    finally:
+        if not writer.closed:  # the fix failed: free the thread, or pytest's exit would hang
+            writer.close()
 
 
 # -- every traceback above is one line ------------------------------------------------------------------

@@ -232,6 +232,9 @@ def _stop_pool(pool, pending, broken: bool = False) -> None:
     for f in pending:
         f.cancel()
     procs = list((getattr(pool, "_processes", None) or {}).values())
+    # taken before the shutdown, which drops the pool's references to them
+    manager = getattr(pool, "_executor_manager_thread", None)
+    results = getattr(getattr(pool, "_result_queue", None), "_writer", None)
     if early:
         for proc in procs:
             with contextlib.suppress(Exception):
@@ -243,8 +246,16 @@ def _stop_pool(pool, pending, broken: bool = False) -> None:
     # the pool's manager thread ends once it sees its workers gone; wait for it, or the
     # interpreter's exit (a signal's exit follows at once) races it closing its wake-up
     # pipe and prints "Exception ignored ... Bad file descriptor" (Python 3.11)
-    manager = getattr(pool, "_executor_manager_thread", None)
     if early and manager is not None:
+        manager.join(0.5)
+        if manager.is_alive():
+            # a worker killed while it was sending a result leaves the manager thread
+            # reading the rest of it for ever (this process holds the pipe's write end
+            # too, so no end of file comes), and the interpreter's exit joins that thread:
+            # the run would hang after its message. Closing that end ends the read; the
+            # thread then sees a broken pool and stops.
+            with contextlib.suppress(Exception):
+                results.close()
         manager.join(5)
 
 

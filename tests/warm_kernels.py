@@ -32,8 +32,32 @@ def main(part: str) -> None:
         summarise_features(res)
     if part == "whole":
         x0, top = dem.transform[2], dem.transform[5]
-        run_ensemble(dem, CatchmentJob(("a",), np.array([[x0 + 205.0, top - 205.0]])), model,
-                     realisations=2, seed=0, backend="serial")
+        for job in (CatchmentJob(("a",), np.array([[x0 + 205.0, top - 205.0]])),
+                    CatchmentJob()):  # with an outlet; channels and drainage area alone
+            run_ensemble(dem, job, model, realisations=2, seed=0, backend="serial")
+    else:  # out of core: the DEM, region labels and counts on disk (blocked regions)
+        import tempfile
+
+        from terrain.io import read_dem, scratch_folder
+
+        with tempfile.TemporaryDirectory() as tmp:
+            path = _tif(f"{tmp}/dem.tif", z)
+            with scratch_folder(tmp) as f:
+                for kind in ("peaks", "depressions"):
+                    res = run_ensemble(read_dem(path, scratch=f), CreditJob(kind), model,
+                                       realisations=2, seed=0, backend="serial", block=16)
+                    summarise_features(res)
+
+
+def _tif(path: str, z: np.ndarray) -> str:
+    import rasterio
+    from rasterio.transform import from_origin
+
+    with rasterio.open(path, "w", driver="GTiff", height=z.shape[0], width=z.shape[1], count=1,
+                       dtype="float32", crs="EPSG:32633",
+                       transform=from_origin(500000.0, 6800000.0, 10.0, 10.0)) as ds:
+        ds.write(z, 1)
+    return path
 
 
 if __name__ == "__main__":

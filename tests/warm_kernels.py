@@ -1,8 +1,9 @@
 """Compile cairn's numba kernels into the per-user cache, once, before tests start.
 
 Run by tests/conftest.py in two processes at the start of a session (one for the
-whole-grid engines, one for the blocked ones), so the test processes load the
-kernels from the cache instead of each compiling the same ones at the same time
+whole-grid engines and catchments, one for the blocked ones; then each makes one
+out-of-core run, whose read-only arrays need kernels of their own), so the test
+processes load the kernels from the cache instead of each compiling the same ones at the same time
 (a fresh checkout has none cached: numba keys its cache by the source's path).
 Usage: ``python tests/warm_kernels.py whole|blocked``.
 """
@@ -35,18 +36,24 @@ def main(part: str) -> None:
         for job in (CatchmentJob(("a",), np.array([[x0 + 205.0, top - 205.0]])),
                     CatchmentJob()):  # with an outlet; channels and drainage area alone
             run_ensemble(dem, job, model, realisations=2, seed=0, backend="serial")
-    else:  # out of core: the DEM, region labels and counts on disk (blocked regions)
-        import tempfile
+    # out of core (the DEM, region labels and counts on disk: blocked regions), one kind in
+    # each process, after the rest (by then the other process has compiled what they share)
+    _on_disk(z, model, "depressions" if part == "whole" else "peaks")
 
-        from terrain.io import read_dem, scratch_folder
 
-        with tempfile.TemporaryDirectory() as tmp:
-            path = _tif(f"{tmp}/dem.tif", z)
-            with scratch_folder(tmp) as f:
-                for kind in ("peaks", "depressions"):
-                    res = run_ensemble(read_dem(path, scratch=f), CreditJob(kind), model,
-                                       realisations=2, seed=0, backend="serial", block=16)
-                    summarise_features(res)
+def _on_disk(z: np.ndarray, model, kind: str) -> None:
+    import tempfile
+
+    from terrain import CreditJob, run_ensemble
+    from terrain.io import read_dem, scratch_folder
+    from terrain.summary.features import summarise_features
+
+    with tempfile.TemporaryDirectory() as tmp:
+        path = _tif(f"{tmp}/dem.tif", z)
+        with scratch_folder(tmp) as f:
+            res = run_ensemble(read_dem(path, scratch=f), CreditJob(kind), model,
+                               realisations=2, seed=0, backend="serial", block=16)
+            summarise_features(res)
 
 
 def _tif(path: str, z: np.ndarray) -> str:

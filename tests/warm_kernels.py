@@ -17,11 +17,15 @@ import numpy as np
 
 
 def main(part: str) -> None:
+    import tempfile
+
     from scipy.ndimage import gaussian_filter
 
     from terrain import CreditJob, Dem, ErrorModel, run_ensemble
+    from terrain.io import read_dem, scratch_folder
     from terrain.jobs.catchments import CatchmentJob
     from terrain.summary.features import summarise_features
+    from tests.conftest import write_tif
 
     rng = np.random.default_rng(0)
     z = (gaussian_filter(rng.standard_normal((40, 40)), 2) * 100).astype(np.float32)
@@ -39,33 +43,12 @@ def main(part: str) -> None:
             run_ensemble(dem, job, model, realisations=2, seed=0, backend="serial")
     # out of core (the DEM, region labels and counts on disk: blocked regions), one kind in
     # each process, after the rest (by then the other process has compiled what they share)
-    _on_disk(z, model, "depressions" if part == "whole" else "peaks")
-
-
-def _on_disk(z: np.ndarray, model, kind: str) -> None:
-    import tempfile
-
-    from terrain import CreditJob, run_ensemble
-    from terrain.io import read_dem, scratch_folder
-    from terrain.summary.features import summarise_features
-
-    with tempfile.TemporaryDirectory() as tmp:
-        path = _tif(f"{tmp}/dem.tif", z)
-        with scratch_folder(tmp) as f:
-            res = run_ensemble(read_dem(path, scratch=f), CreditJob(kind), model,
-                               realisations=2, seed=0, backend="serial", block=16)
-            summarise_features(res)
-
-
-def _tif(path: str, z: np.ndarray) -> str:
-    import rasterio
-    from rasterio.transform import from_origin
-
-    with rasterio.open(path, "w", driver="GTiff", height=z.shape[0], width=z.shape[1], count=1,
-                       dtype="float32", crs="EPSG:32633",
-                       transform=from_origin(500000.0, 6800000.0, 10.0, 10.0)) as ds:
-        ds.write(z, 1)
-    return path
+    kind = "depressions" if part == "whole" else "peaks"
+    with tempfile.TemporaryDirectory() as tmp, scratch_folder(tmp) as f:
+        path = str(write_tif(f"{tmp}/dem.tif", z))
+        res = run_ensemble(read_dem(path, scratch=f), CreditJob(kind), model, realisations=2,
+                           seed=0, backend="serial", block=16)
+        summarise_features(res)
 
 
 if __name__ == "__main__":

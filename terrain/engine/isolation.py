@@ -106,7 +106,7 @@ def pyramid(z, leaf: int = LEAF) -> Pyramid:
     top = np.full(int(start[-1]), -np.inf, np.float64)
     nod = np.zeros(int(start[-1]), np.bool_)
     for r0 in range(0, nr, 32 * leaf):
-        band = np.asarray(z[r0:r0 + 32 * leaf, :])
+        band = np.ascontiguousarray(z[r0:r0 + 32 * leaf, :])  # one kernel: C order
         _leaf_level(band, r0, band.shape[0], nc, dims[0][1], top, nod, leaf)
     for k in range(1, len(dims)):
         _coarser(top, nod, start[k - 1], dims[k - 1][0], dims[k - 1][1], start[k], dims[k][0],

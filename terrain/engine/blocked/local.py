@@ -78,7 +78,9 @@ def prepare_block(block_values, window, shape, kind, connectivity) -> Block:
     window = Window(*(int(x) for x in window))
     shape = (int(shape[0]), int(shape[1]))
     h = halo(window, shape)
-    vals = as_float(np.asarray(block_values))
+    # C order always (a view of an in-memory raster is not): one compiled kernel per
+    # dtype, not two (numba specialises on the layout)
+    vals = np.ascontiguousarray(as_float(np.asarray(block_values)))
     if vals.shape != (h.r1 - h.r0, h.c1 - h.c0):
         raise OptionError(f"block values of shape {vals.shape} do not cover {h} (window plus halo)")
     vh = np.isfinite(vals)

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import sys
+import threading
 from pathlib import Path
 
 import click
@@ -28,6 +29,7 @@ from terrain.io import (
     scratch_folder,
 )
 from terrain.noise import ErrorModel, rmse_from
+from terrain.outputs.mapframe import prepare_drawing
 from terrain.resources import check_disk, check_memory, choose_layout
 from terrain.runner import Execution, RunInterrupted, run_ensemble
 from terrain.runner.checkpoint import prepare_checkpoint
@@ -176,6 +178,10 @@ def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline:
                    f"{dem.unit_label}, error {model.describe(dem.unit_label)}, {headline}, "
                    f"{ex.realisations} realisations"
                    f"{' at most' if ex.target_se is not None else ''}, seed {ex.seed}", err=True)
+    # the plotting libraries load, and the map's hillshade is made, while the realisations
+    # run (in worker processes)
+    threading.Thread(target=prepare_drawing, args=(dem,), name="cairn-prepare-drawing",
+                     daemon=True).start()
     try:
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label=label) as bar:
             return run_ensemble(dem, job, model, progress=bar,

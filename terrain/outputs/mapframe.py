@@ -50,7 +50,7 @@ from .style import DPI, FONT_PT, INK, NODATA, halo, power_of_ten
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
-__all__ = ["MapFrame", "hillshade", "pooling", "pool_bands", "pooled_dem",
+__all__ = ["MapFrame", "hillshade", "prepare_drawing", "pooling", "pool_bands", "pooled_dem",
            "MAX_LABELS", "NAMED_UNPLACED"]
 
 WIDTH_IN = 10.0  # every map is this wide
@@ -125,6 +125,8 @@ def pooling(shape: tuple[int, int]) -> int:
 #: The last hillshade made and what it was made from: the maps of one run (and the
 #: peaks and depressions maps of one DEM) share it. 8 bytes per drawn cell.
 _LAST_SHADE: dict = {}
+#: The largest DEM (cells) :func:`prepare_drawing` shades ahead of the map (64 MB of float64).
+PRESHADE_CELLS = 1 << 23
 
 
 def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
@@ -175,6 +177,36 @@ def _shade(dem: Dem, azimuth: float, altitude: float, k: int) -> np.ndarray:
     ls = LightSource(azdeg=azimuth, altdeg=altitude)
     return ls.hillshade(z, vert_exag=dem.metres_per_unit, dx=float(np.mean(w)) * k,
                         dy=float(np.mean(h)) * k)
+
+
+
+def prepare_drawing(dem: Dem) -> None:
+    """Import what drawing a map of ``dem`` takes and shade the DEM as the map will.
+
+    About 2 s of a process's first map is importing matplotlib (its figure,
+    Agg canvas, collections, text paths), adjustText and reading the font
+    list, and up to a second more is the hillshade, which depends on the DEM
+    alone. A command line calls this in a second thread while the
+    realisations run in the worker processes, so that time is not spent
+    after them. It draws nothing and changes no setting; the hillshade is
+    kept as :func:`hillshade` keeps its last one, so the map is the same
+    with or without it. Only for a DEM in memory of at most
+    :data:`PRESHADE_CELLS` cells (the shading's float64 copy of the
+    elevations, 8 bytes per cell, then overlaps the realisations' memory).
+    """
+    import adjustText  # noqa: F401
+    import matplotlib.collections  # noqa: F401
+    import matplotlib.colors  # noqa: F401
+    import matplotlib.lines  # noqa: F401
+    import matplotlib.textpath  # noqa: F401
+    import matplotlib.ticker  # noqa: F401
+    from matplotlib import font_manager
+    from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: F401
+    from matplotlib.figure import Figure  # noqa: F401
+
+    font_manager.findfont(font_manager.FontProperties())
+    if not dem.on_disk and dem.z.size <= PRESHADE_CELLS:
+        hillshade(dem, k=pooling(dem.shape))
 
 
 class MapFrame:

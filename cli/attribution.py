@@ -32,7 +32,7 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     dem = read(dem_path, opts, on_disk=layout.on_disk)
     job = job.resolved(dem, model, layout=layout)
     res = run_job(dem, job, model, ex, opts, label=label or kind,
-                  headline=settings_line(job, dem.unit_label))
+                  headline=settings_line(job, dem.unit_label), layout=layout)
     if model.range_m == 0:
         warn(INDEPENDENT_ERROR)
     features = summarise_features(res)

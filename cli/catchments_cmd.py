@@ -123,7 +123,7 @@ def catchments_cmd(dem, outlets, outlets_crs, outdir, snap, channel_area, condit
     out = outputs(outdir, file_names("catchments", job.layer_ids), opts,
                   inputs=[dem] + ([outlets] if outlets else []),
                   patterns=replace_patterns("catchments"))
-    guard_memory(head, job, ex, opts, model=model)
+    _, layout = guard_memory(head, job, ex, opts, model=model)
     d = read(dem, opts)
     try:
         job = job.resolved(d, model)
@@ -134,7 +134,7 @@ def catchments_cmd(dem, outlets, outlets_crs, outdir, snap, channel_area, condit
                 "{outlets_crs} or a sidecar " + Path(outlets).name + ".crs)")
         raise OutletError(e.template + hint, *e.params, "outlets_crs") from None
     res = run_job(d, job, model, ex, opts, label="catchments",
-                  headline=catchment_settings(job, d.unit_label))
+                  headline=catchment_settings(job, d.unit_label), layout=layout)
     summary = summarise_catchments(res, pts.attributes if pts else None, outlets=pts)
     write_catchment_run(out, res, summary, input_path=str(dem),
                         outlets_path=str(outlets) if outlets else None, command_line=command_line())

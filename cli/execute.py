@@ -170,8 +170,10 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
     return chosen, layout
 
 
-def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str):
-    """Run the ensemble with a progress bar; Ctrl-C exits 130, SIGTERM 143."""
+def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str,
+            layout=None):
+    """Run the ensemble with a progress bar; Ctrl-C exits 130, SIGTERM 143. ``layout``
+    (the run's RunLayout) lets the map's hillshade be made while the realisations run."""
     flush_warnings()
     if not opts["quiet"]:
         click.echo(f"cairn {label}: {dem.shape[0]}x{dem.shape[1]} cells, elevations in "
@@ -180,7 +182,7 @@ def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline:
                    f"{' at most' if ex.target_se is not None else ''}, seed {ex.seed}", err=True)
     # the plotting libraries load, and the map's hillshade is made, while the realisations
     # run (in worker processes)
-    threading.Thread(target=prepare_drawing, args=(dem,), name="cairn-prepare-drawing",
+    threading.Thread(target=prepare_drawing, args=(dem, layout), name="cairn-prepare-drawing",
                      daemon=True).start()
     try:
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label=label) as bar:

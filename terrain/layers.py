@@ -158,6 +158,10 @@ WINDOW_CELLS = 1 << 20
 #: cells a quick-look holds: figures the drawing code and the memory guard share
 MAX_PIXELS = 1600
 QUICKLOOK_CELLS = MAX_PIXELS ** 2
+#: the largest DEM in memory (cells) whose map's hillshade a command line makes while
+#: the realisations run (terrain.outputs.mapframe.prepare_drawing; one the map draws
+#: unpooled; the memory guard counts it in the running phase)
+PRESHADE_CELLS = QUICKLOOK_CELLS
 
 
 def layer_windows(shape: tuple[int, int], cells: int = WINDOW_CELLS) -> list[tuple[int, int, int, int]]:

@@ -34,7 +34,7 @@ import numpy as np
 from .dem import BAND_ROWS, Dem, RasterHeader, metres_per_degree
 from .errors import MemoryGuardError
 from .io import WINDOW_WRITE_CACHE, available_memory, check_scratch_space, scratch_parent
-from .layers import QUICKLOOK_CELLS, WINDOW_CELLS
+from .layers import PRESHADE_CELLS, QUICKLOOK_CELLS, WINDOW_CELLS
 from .layout import DEFAULT_BLOCK, RunLayout, candidates, plan_layout
 from .noise import ErrorModel
 from .noise.fields import check_range, kernel_memory
@@ -64,6 +64,8 @@ SUMMARY_SCRATCH = 100  # feature or catchment summaries and GeoTIFF encoding (me
 BLOCKS_SCRATCH = 32  # the quick-look's float64 copy of a layer and its padded copy while it is
 #                      pooled, or the hillshade's nearest-cell indices (counted)
 QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, rendering (measured)
+PRESHADE = 73  # the map's hillshade made while the realisations run: float64 elevations,
+#               matplotlib's gradients and normals, the shade (peak measured with tracemalloc)
 SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run
 FIELD_DRAW = 24  # correlated error: a draw's float64 field and noise tiles, float32 copy (counted)
 COPULA_DRAW = 16  # ... and a non-Gaussian kernel's copula: quantiles and their temporaries (counted)
@@ -219,6 +221,8 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
         worker_cell = CONTEXT + kept + worker_job + draw + 2 * counts if local else 0
         worker_bytes = worker_cell * cells
     drawn = min(cells, QUICKLOOK_CELLS) / max(cells, 1)  # a big grid is drawn in blocks
+    if quicklook and cells <= PRESHADE_CELLS:  # the hillshade made while the realisations run
+        running += PRESHADE
     phases = {"read": 2 * stored + value + READ_SCRATCH, "running": running,
               "finishing": held + MOMENTS_SCRATCH,
               "writing": dem + parent_job + SUMMARY_SCRATCH + SWEEP_KEPT * (runs - 1)

@@ -42,13 +42,15 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ..dem import Dem
-from ..layers import MAX_PIXELS
+from ..layers import MAX_PIXELS, PRESHADE_CELLS
 from .furniture import furniture_boxes, north_arrow, north_up, place_furniture, scale_bar
 from .labels import place_labels
 from .style import DPI, FONT_PT, INK, NODATA, halo, power_of_ten
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
+
+    from ..layout import RunLayout
 
 __all__ = ["MapFrame", "hillshade", "prepare_drawing", "pooling", "pool_bands", "pooled_dem",
            "MAX_LABELS", "NAMED_UNPLACED"]
@@ -125,8 +127,6 @@ def pooling(shape: tuple[int, int]) -> int:
 #: The last hillshade made and what it was made from: the maps of one run (and the
 #: peaks and depressions maps of one DEM) share it. 8 bytes per drawn cell.
 _LAST_SHADE: dict = {}
-#: The largest DEM (cells) :func:`prepare_drawing` shades ahead of the map (64 MB of float64).
-PRESHADE_CELLS = 1 << 23
 
 
 def hillshade(dem: Dem, *, azimuth: float = 315.0, altitude: float = 45.0,
@@ -180,7 +180,7 @@ def _shade(dem: Dem, azimuth: float, altitude: float, k: int) -> np.ndarray:
 
 
 
-def prepare_drawing(dem: Dem) -> None:
+def prepare_drawing(dem: Dem, layout: RunLayout | None = None) -> None:
     """Import what drawing a map of ``dem`` takes and shade the DEM as the map will.
 
     About 2 s of a process's first map is importing matplotlib (its figure,
@@ -190,9 +190,12 @@ def prepare_drawing(dem: Dem) -> None:
     realisations run in the worker processes, so that time is not spent
     after them. It draws nothing and changes no setting; the hillshade is
     kept as :func:`hillshade` keeps its last one, so the map is the same
-    with or without it. Only for a DEM in memory of at most
-    :data:`PRESHADE_CELLS` cells (the shading's float64 copy of the
-    elevations, 8 bytes per cell, then overlaps the realisations' memory).
+    with or without it. The hillshade is made only when ``layout`` (the
+    run's :class:`~terrain.layout.RunLayout`) keeps the DEM in memory, and
+    for a DEM of at most
+    :data:`terrain.layers.PRESHADE_CELLS` cells (the shading's copies of
+    the elevations then overlap the realisations' memory; the memory guard
+    counts them, ``resources.PRESHADE``).
     """
     import adjustText  # noqa: F401
     import matplotlib.collections  # noqa: F401
@@ -205,7 +208,7 @@ def prepare_drawing(dem: Dem) -> None:
     from matplotlib.figure import Figure  # noqa: F401
 
     font_manager.findfont(font_manager.FontProperties())
-    if not dem.on_disk and dem.z.size <= PRESHADE_CELLS:
+    if layout is not None and not layout.on_disk and dem.z.size <= PRESHADE_CELLS:
         hillshade(dem, k=pooling(dem.shape))
 
 

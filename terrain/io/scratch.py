@@ -67,8 +67,11 @@ class NpyWindows:
         return np.array(np.load(self.path, mmap_mode="r")[key])
 
     def mapped(self) -> np.ndarray:  # relations (issue 28): the isolation search reads cells
-        """The whole raster mapped read-only (pages read only where touched)."""
-        return np.load(self.path, mmap_mode="r")
+        """The whole raster mapped (pages read only where touched), copy-on-write:
+        the array is writable in this process and the file is never written, so
+        numba runs the same compiled kernel on it as on an array in memory
+        (a read-only array would need one of its own, seconds to compile)."""
+        return np.load(self.path, mmap_mode="c")
 
     def __setitem__(self, key, values) -> None:
         mm = np.load(self.path, mmap_mode="r+")

@@ -8,8 +8,6 @@ import click
 
 from terrain.jobs import CreditJob
 from terrain.outputs.manifest import file_names, help_text
-from terrain.outputs.writer import write_credit_run
-from terrain.summary.features import summarise_features
 
 from . import options
 from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
@@ -21,6 +19,9 @@ __all__ = ["peaks_cmd", "depressions_cmd", "demo_cmd"]
 
 def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None, label=None):
     """One peaks or depressions run, from options to files and the console table."""
+    from terrain.outputs.writer import write_credit_run  # loaded when a command runs
+    from terrain.summary.features import summarise_features
+
     model = error_model(opts)
     job = CreditJob(kind, threshold=threshold, threshold_jitter=opts["threshold_jitter"],
                     weight=opts["weight"], connectivity=opts["connectivity"], base=base,

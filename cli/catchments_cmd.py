@@ -10,9 +10,7 @@ from terrain.errors import OptionError, OutletError
 from terrain.io import read_outlets
 from terrain.jobs import CatchmentJob
 from terrain.outputs.manifest import file_names, help_text, replace_patterns
-from terrain.outputs.plot import area_text
-from terrain.outputs.writer import write_catchment_run
-from terrain.summary.catchments import summarise_catchments
+from terrain.outputs.style import area_text
 
 from . import options
 from .common import CAUTION, command_line, guarded, warn_later
@@ -101,6 +99,9 @@ def catchments_cmd(dem, outlets, outlets_crs, outdir, snap, channel_area, condit
 
     Analysis aids, not engineering design: see the caution below.
     """
+    from terrain.outputs.writer import write_catchment_run  # loaded when the command runs
+    from terrain.summary.catchments import summarise_catchments
+
     model = error_model(opts)
     ex = execution(opts)
     head = header(dem, opts)

@@ -14,7 +14,7 @@ import sys
 import click
 
 from terrain.errors import CairnError, CairnWarning
-from terrain.outputs.writer import CAUTION
+from terrain.outputs.caution import CAUTION
 
 __all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn",
            "warn_later", "flush_warnings", "Terminated"]

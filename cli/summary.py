@@ -125,7 +125,7 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
     from rich.table import Table
 
     from terrain.outlets import short
-    from terrain.outputs.plot import area_text
+    from terrain.outputs.style import area_text
     from terrain.summary.catchments import LEVELS
 
     console = _console()

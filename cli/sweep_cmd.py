@@ -10,9 +10,7 @@ from terrain.errors import OptionError
 from terrain.jobs import CreditJob
 from terrain.noise import rmse_from
 from terrain.outputs.manifest import file_names, help_text
-from terrain.outputs.writer import write_sweep
 from terrain.runner import RunInterrupted
-from terrain.sweep import run_checkpoint, sweep, sweep_models
 
 from . import options
 from .common import CAUTION, INDEPENDENT_ERROR, command_line, flag, flush_warnings, guarded, warn
@@ -94,6 +92,9 @@ def sweep_cmd(dem, outdir, kind, min_prominence, min_depth, base, **opts):
     numbers, follows each feature across runs, and measures differences
     between kernels of equal RMSE.
     """
+    from terrain.outputs.writer import write_sweep  # loaded when the command runs
+    from terrain.sweep import run_checkpoint, sweep, sweep_models
+
     job = CreditJob(kind, threshold=_cutoff(kind, min_prominence, min_depth),
                     threshold_jitter=opts["threshold_jitter"], weight=opts["weight"],
                     connectivity=opts["connectivity"], base=base,

@@ -23,7 +23,7 @@ from ..outlets import short
 from ..summary.features import LAYER_NAMES
 from .caution import CAUTION
 from .mapframe import MapFrame, hillshade, pool_bands, pooled_dem, pooling
-from .style import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, palette, short_unit
+from .style import FONT_PT, INK, OUTLINE_COLOURS, PALETTES, area_text, palette, short_unit
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -32,7 +32,7 @@ if TYPE_CHECKING:
     from ..summary.features import FeatureSummary
 
 __all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_map",
-           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED", "area_text", "figure_text"]
+           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED", "figure_text"]
 
 LABELLED = 12  # features labelled on a map, at most
 LABEL_PRESENCE = 0.5  # ... among those counted in at least this share of realisations
@@ -104,13 +104,6 @@ def figure_text(v: float) -> str:
     if not np.isfinite(v):
         return "-"
     return f"{v:.0f}" if abs(v) >= 100 else f"{v:.3g}"
-
-
-def area_text(a: float) -> str:
-    """An area as a reader writes it: ``30 km²`` from 1 km² up, else ``20,000 m²``."""
-    if not np.isfinite(a):
-        return "-"
-    return f"{a / 1e6:.4g} km²" if a >= 1e6 else f"{a:,.4g} m²" if a < 1000 else f"{a:,.0f} m²"
 
 
 def cell_text(p: float) -> str:

@@ -18,7 +18,7 @@ if TYPE_CHECKING:
     from matplotlib.colors import Colormap
 
 __all__ = ["FONT_PT", "DPI", "INK", "NODATA", "HALO_PT", "PALETTES", "OUTLINE_COLOURS", "palette",
-           "halo", "short_unit", "power_of_ten"]
+           "halo", "short_unit", "power_of_ten", "area_text"]
 
 FONT_PT = 9.0  # the smallest text on any figure, at the saved size
 DPI = 120
@@ -78,3 +78,10 @@ def halo(width: float):
 
     return [patheffects.Stroke(linewidth=width, foreground="white", alpha=0.85),
             patheffects.Normal()]
+
+
+def area_text(a: float) -> str:
+    """An area as a reader writes it: ``30 km²`` from 1 km² up, else ``20,000 m²``."""
+    if not np.isfinite(a):
+        return "-"
+    return f"{a / 1e6:.4g} km²" if a >= 1e6 else f"{a:,.4g} m²" if a < 1000 else f"{a:,.0f} m²"

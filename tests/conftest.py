@@ -226,11 +226,16 @@ def _groups(item) -> set[str]:
             for m in item.iter_markers("xdist_group")} if item else set()
 
 
-def cli_command(*, checkpoint_every: int | None = None, worker_wait: float | None = None):
+def cli_command(*, checkpoint_every: int | None = None, worker_wait: float | None = None,
+                stand_in_figures: bool = False):
     """``python -c`` running cairn's command line, optionally checkpointing every
-    ``checkpoint_every`` realisations (not 50) and waiting ``worker_wait`` seconds for
-    Dask workers: for tests that interrupt a run in a process of its own."""
+    ``checkpoint_every`` realisations (not 50), waiting ``worker_wait`` seconds for
+    Dask workers and drawing blank figures (tests/stand_ins.py): for tests that run
+    or interrupt a run in a process of its own."""
     patch = ""
+    if stand_in_figures:
+        patch += (f"import sys; sys.path.insert(0, {str(Path(__file__).parent)!r}); "
+                  "import stand_ins; stand_ins.install(); ")
     if worker_wait is not None:
         patch += f"import terrain.runner.backends as b; b.WORKER_WAIT_SECONDS = {worker_wait}; "
     if checkpoint_every is not None:
@@ -268,16 +273,6 @@ def dask_cluster():
     return once("dask_cluster", make)
 
 
-def _stand_in_figure(*args, **kwargs):
-    """A small blank figure (matplotlib's Agg canvas), drawn in milliseconds."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(1, 1), dpi=10)
-    FigureCanvasAgg(fig)
-    return fig
-
-
 @pytest.fixture
 def stand_in_figures(monkeypatch, request):
     """Runs in this test draw blank stand-ins for the quick-look figures.
@@ -294,6 +289,7 @@ def stand_in_figures(monkeypatch, request):
 def use_stand_in_figures(mp: pytest.MonkeyPatch) -> None:
     """Replace the quick-look figures by blank stand-ins through ``mp``."""
     from terrain.outputs import plot
+    from tests.stand_ins import FIGURES, blank_figure
 
-    for name in ("feature_map", "ranking_chart", "catchment_map", "sweep_figure"):
-        mp.setattr(plot, name, _stand_in_figure)
+    for name in FIGURES:
+        mp.setattr(plot, name, blank_figure)

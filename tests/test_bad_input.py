@@ -314,6 +314,7 @@ def test_sigkill_during_writing_never_leaves_partial_outputs(tmp_path):
 # no traceback, and what is left on disk (nothing, or the previous complete set).
 # =====================================================================================
 CLI = [sys.executable, "-c", "from cairn_cli.main import run; run()"]
+QUICK_CLI = cli_command(stand_in_figures=True)  # blank figures: for runs about something else
 
 
 def no_traceback(err):
@@ -1487,7 +1488,7 @@ def test_two_runs_on_one_checkpoint_at_once(tmp_path):
     # one runs, the other is refused in one line; neither publishes the other's counts
     dems = [write_tif(tmp_path / f"d{k}.tif", smooth_terrain((120, 120), seed=k)) for k in (1, 2)]
     ck = tmp_path / "ck.npz"
-    procs = [subprocess.Popen(CLI + ["depressions", str(d), "-o", str(tmp_path / f"o{k}"), "--rmse",
+    procs = [subprocess.Popen(QUICK_CLI + ["depressions", str(d), "-o", str(tmp_path / f"o{k}"), "--rmse",
                                      "1", "-n", "60", "--workers", "1", "-q", "--block", "64",
                                      "--checkpoint", str(ck)], stderr=subprocess.PIPE, text=True)
              for k, d in enumerate(dems)]
@@ -1550,7 +1551,7 @@ def test_a_killed_blocked_runs_scratch_is_swept_by_the_next(tmp_path, monkeypatc
     monkeypatch.setenv("TMPDIR", str(tmp_path / "tmp"))
     (tmp_path / "tmp").mkdir()
     dem = write_tif(tmp_path / "d.tif", smooth_terrain((300, 300), seed=2))
-    p = subprocess.Popen(CLI + ["depressions", str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
+    p = subprocess.Popen(QUICK_CLI + ["depressions", str(dem), "-o", str(tmp_path / "o"), "--rmse", "1",
                                 "-n", "50", "--workers", "1", "-q", "--block", "64"])
     deadline = time.time() + 120
     while time.time() < deadline and not list((tmp_path / "tmp").glob("cairn-blocks-*/dem.npy")):
@@ -1559,7 +1560,7 @@ def test_a_killed_blocked_runs_scratch_is_swept_by_the_next(tmp_path, monkeypatc
     p.wait()
     assert list((tmp_path / "tmp").glob("cairn-blocks-*"))
     small = write_tif(tmp_path / "s.tif", smooth_terrain((40, 40), seed=2))
-    r = subprocess.run(CLI + ["depressions", str(small), "-o", str(tmp_path / "o2"), "--rmse", "1",
+    r = subprocess.run(QUICK_CLI + ["depressions", str(small), "-o", str(tmp_path / "o2"), "--rmse", "1",
                               "-n", "2", "--workers", "1", "-q", "--block", "16"],
                        capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr

@@ -142,7 +142,8 @@ def test_inspect(cairn, dem_tif):
 def _cairn_proc(*args, every: int | None = None, **kw):
     """The CLI in a process of its own; ``every``: checkpoint every so many realisations
     (instead of 50)."""
-    return subprocess.Popen(cli_command(checkpoint_every=every) + [*map(str, args)],
+    return subprocess.Popen(cli_command(checkpoint_every=every, stand_in_figures=True)
+                            + [*map(str, args)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
 
 

@@ -94,7 +94,7 @@ def test_a_folder_appearing_at_an_output_name_stops_the_publication_before_anyth
         (out_ / "summits.csv").mkdir()
         return real(out_, *a, **k)
 
-    monkeypatch.setattr("cairn_cli.attribution.write_credit_run", plant)
+    monkeypatch.setattr(writer, "write_credit_run", plant)  # the command loads it when it runs
     code, _, err = cairn("peaks", dem, "-o", out, *RUN, "--seed", "7", "--overwrite")
     one_line_error(code, err, "summits.csv", "is a folder where the run writes a file")
     after = tree(out)

@@ -170,6 +170,15 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
     return chosen, layout
 
 
+def _prepare_drawing(dem, layout) -> None:
+    """prepare_drawing, quietly: it only saves time; whatever fails here fails again
+    when the figures are drawn, and is reported then, in one line."""
+    try:
+        prepare_drawing(dem, layout)
+    except Exception:  # noqa: BLE001, S110
+        pass
+
+
 def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str,
             layout=None):
     """Run the ensemble with a progress bar; Ctrl-C exits 130, SIGTERM 143. ``layout``
@@ -182,7 +191,7 @@ def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline:
                    f"{' at most' if ex.target_se is not None else ''}, seed {ex.seed}", err=True)
     # the plotting libraries load, and the map's hillshade is made, while the realisations
     # run (in worker processes)
-    threading.Thread(target=prepare_drawing, args=(dem, layout), name="cairn-prepare-drawing",
+    threading.Thread(target=_prepare_drawing, args=(dem, layout), name="cairn-prepare-drawing",
                      daemon=True).start()
     try:
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label=label) as bar:

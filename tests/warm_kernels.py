@@ -2,11 +2,10 @@
 
 Run by tests/conftest.py in two processes at the start of a session (one for the
 whole-grid engines and catchments, one for the blocked ones, each on a float32 and a
-float64 raster; then each makes one out-of-core run, whose read-only arrays need
-kernels of their own), so the test
-processes load the kernels from the cache instead of each compiling the same ones
-at the same time (a fresh checkout has none cached: numba keys its cache by the
-source's path).
+float64 raster; then each makes one out-of-core run, which reaches the kernels of
+regions and counts kept on disk), so the test processes load the kernels from the
+cache instead of each compiling the same ones at the same time (a fresh checkout
+has none cached: numba keys its cache by the source's path).
 Usage: ``python tests/warm_kernels.py whole|blocked``.
 """
 

@@ -42,19 +42,24 @@ from .runner import Execution
 from .runner.protocols import Job
 
 __all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_layout", "DEFAULT_BLOCK",
-           "describe_memory", "read_bytes", "available_bytes", "PROCESS_BYTES",
+           "describe_memory", "read_bytes", "available_bytes", "PROCESS_BYTES", "DRAWING_BYTES",
            "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR", "grid_spacing", "field_bytes",
            "check_field", "scratch_bytes", "check_disk"]
 
 MiB = 2 ** 20
 # Resident size of the processes before their arrays (interpreter, numpy, GDAL,
-# numba's compiled kernels, matplotlib, GeoPandas), measured with cairn's own
-# runs on Linux x86-64, Python 3.11 (the peak of small runs, rounded up): the
-# footprint depends on the installed wheels -- a fresh install from the package
-# index measured 60-90 MiB more per process than an older environment -- so
-# these are the larger figures.
+# numba's compiled kernels, GeoPandas), measured with cairn's own runs on Linux
+# x86-64, Python 3.11 (the peak of small runs, rounded up): the footprint depends
+# on the installed wheels and on the machine -- a fresh install from the package
+# index measured 60-90 MiB more per process than an older environment, and the
+# CI machine 80 MiB more again than this one with the same wheels -- so these
+# are the larger figures.
 PROCESS_BYTES = 480 * MiB
 WORKER_PROCESS_BYTES = 240 * MiB
+# ... and what drawing the quick-look maps adds to this process: matplotlib,
+# adjustText and the font list (measured: 55-60 MiB resident after the first
+# figure is saved; rounded up).
+DRAWING_BYTES = 64 * MiB
 # Bytes per cell (measured or counted, as noted).
 READ_SCRATCH = 4  # nodata mask and boolean temporaries while reading (counted)
 CHECKSUM_SCRATCH = 13  # float64 copy of the DEM while it is hashed (counted)
@@ -229,7 +234,8 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
               + quicklook * (BLOCKS_SCRATCH + math.ceil(QUICKLOOK_SCRATCH * drawn))}
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
     build, kept, tile = field
-    parent = (PROCESS_BYTES + max(max(phases.values()) * cells, dem * cells + build) + log + here
+    parent = (PROCESS_BYTES + quicklook * DRAWING_BYTES
+              + max(max(phases.values()) * cells, dem * cells + build) + log + here
               + kept + (0 if local else tile))
     worker = WORKER_PROCESS_BYTES + worker_bytes + kept + tile if local else 0
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
@@ -263,7 +269,8 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
               + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH}
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
     build, kept, tile = field
-    parent = PROCESS_BYTES + max(max(phases.values()), build) + log + kept + (0 if local else tile)
+    parent = (PROCESS_BYTES + quicklook * DRAWING_BYTES + max(max(phases.values()), build) + log
+              + kept + (0 if local else tile))
     worker = WORKER_PROCESS_BYTES + task + kept + tile if local else 0
     per = {k: math.ceil(v / max(cells, 1)) for k, v in phases.items()}
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,

@@ -123,3 +123,36 @@ def test_sigterm_ends_a_script_at_any_moment(workdir, guarded, after):
         os.killpg(p.pid, signal.SIGKILL)
         pytest.fail(f"SIGTERM after {after} s did not end the script within 10 s")
     assert _group_gone(p.pid), "a worker process outlived the script"
+
+
+# -- the guard is read from the script before any work (terrain.runner.backends) --------
+@pytest.mark.parametrize("source,refused", [
+    ("run()\n", True),
+    ("def main():\n    run()\n\n\nmain()\n", True),
+    ('if __name__ == "__main__":\n    run()\n', False),
+    ('if "__main__" == __name__ and True:\n    run()\n', False),
+    ('def main():\n    run()\n\n\nif __name__ == "__main__":\n    main()\n', False),
+    ('if __name__ == "__main__":\n    pass\nrun()\n', True),
+])
+def test_a_run_started_outside_the_main_guard_is_refused_before_any_work(
+        tmp_path, monkeypatch, source, refused):
+    import types
+
+    from terrain.errors import WorkerError
+    from terrain.runner.backends import refuse_unguarded
+
+    script = tmp_path / "s.py"
+    script.write_text(source)
+    module = types.ModuleType("__main__")  # the script, run as python s.py runs it
+    module.__file__ = str(script)
+    module.run = refuse_unguarded
+    monkeypatch.setitem(sys.modules, "__main__", module)
+    code = compile(source, str(script), "exec")
+    if refused:
+        with pytest.raises(WorkerError, match=r's\.py, line \d+: .*__name__ == "__main__"'):
+            exec(code, vars(module))
+    else:
+        exec(code, vars(module))
+    # python -c, a notebook, an interactive session: no script to read, nothing refused
+    del module.__file__
+    exec(compile("run()\n", "<string>", "exec"), vars(module))

@@ -32,6 +32,7 @@ from .files import (
     replaced_beside_checkpoint,
     resolves_into,
     same_file,
+    source_bytes,
 )
 from .formats import (
     CHECKPOINT_SUFFIX,
@@ -90,7 +91,8 @@ __all__ = ["read_dem", "read_header", "RasterWindows", "dem_windows", "SENTINELS
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "LOCK_NAME",
-           "STAGING_PREFIX", "PUBLISHING", "same_file", "file_exists", "remove_file", "check_file_folder",
+           "STAGING_PREFIX", "PUBLISHING", "same_file", "source_bytes", "file_exists",
+           "remove_file", "check_file_folder",
            "NpyWindows", "create_npy", "write_npy_window", "save_npy", "save_scratch",
            "load_scratch", "scratch_folder", "save_shared", "load_shared",
            "remove_orphan_scratch", "CountStore", "write_layers_by_window",

@@ -1,5 +1,6 @@
 """Plain questions about files and the machine: hashes, whether two paths are one
-file, the memory available, and the folder numba keeps compiled kernels in.
+file, a script's source, the memory available, and the folder numba keeps
+compiled kernels in.
 """
 
 from __future__ import annotations
@@ -9,6 +10,15 @@ import tempfile
 from pathlib import Path
 
 from ._base import PART_NAME
+
+
+def source_bytes(path: str | os.PathLike) -> bytes | None:
+    """The bytes of a (script) file, or None when it cannot be read."""
+    try:
+        with open(path, "rb") as fh:
+            return fh.read()
+    except OSError:
+        return None
 
 
 def available_memory() -> int:

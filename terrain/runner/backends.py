@@ -34,10 +34,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import CairnError, SchedulerError, WorkerError
-from ..io import load_shared, save_shared, scratch_folder
+from ..io import load_shared, save_shared, scratch_folder, source_bytes
 from ..noise import ErrorSampler
 
-__all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child",
+__all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", "refuse_unguarded",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
            "init_worker", "spawning", "DaskWatch", "WORKER_WAIT_SECONDS", "POLL_SECONDS",
            "close_dask", "quiet_dask"]
@@ -79,6 +79,65 @@ def refuse_in_bootstrapping_child() -> None:
     # set while a spawned process is still importing its parent's main module
     if getattr(mp.current_process(), "_inheriting", False):
         raise SystemExit(f"cairn: error: {MAIN_GUARD_HINT}")
+
+
+def refuse_unguarded() -> None:
+    """Before any work: refuse, with :data:`MAIN_GUARD_HINT`, a run that a script
+    starts from its top level outside ``if __name__ == "__main__":``.
+
+    Each spawned worker re-imports the script, which would start the run again;
+    the pool breaks once the workers try, but only after this process has read
+    the DEM and compiled its kernels (tens of seconds on a cold kernel cache).
+    The test reads the script's own source (:mod:`ast`): the line of the script
+    that is running now must lie inside an ``if`` comparing ``__name__`` with
+    ``"__main__"``. A run started from a function, a notebook, ``python -c`` or
+    an interactive session is left alone.
+
+    Raises
+    ------
+    WorkerError
+        When the call comes from the script's top level, outside the guard.
+    """
+    main = sys.modules.get("__main__")
+    path = getattr(main, "__file__", None)
+    if not path or not str(path).endswith(".py"):
+        return
+    frame = sys._getframe(1)
+    while frame is not None and not (frame.f_globals is vars(main)
+                                     and frame.f_code.co_name == "<module>"):
+        frame = frame.f_back
+    if frame is None:  # the script's top level is not running: called later, from elsewhere
+        return
+    import ast
+
+    source = source_bytes(path)
+    try:
+        tree = ast.parse(source, filename=str(path)) if source is not None else None
+    except (SyntaxError, ValueError):
+        tree = None
+    if tree is None:
+        return
+    line = frame.f_lineno
+    if any(isinstance(node, ast.If) and _is_main_test(node.test)
+           and node.lineno <= line <= (node.end_lineno or node.lineno)
+           for node in ast.walk(tree)):
+        return
+    raise WorkerError(f"{path}, line {line}: {MAIN_GUARD_HINT}")
+
+
+def _is_main_test(test) -> bool:
+    """Whether an ``if``'s test compares ``__name__`` with ``"__main__"`` (either way
+    round, alone or within ``and`` / ``or``)."""
+    import ast
+
+    for node in ast.walk(test):
+        if isinstance(node, ast.Compare) and len(node.ops) == 1:
+            sides = [node.left, node.comparators[0]]
+            if (any(isinstance(s, ast.Name) and s.id == "__name__" for s in sides)
+                    and any(isinstance(s, ast.Constant) and s.value == "__main__"
+                            for s in sides)):
+                return True
+    return False
 
 
 # -- worker side of the process pool ------------------------------------------------

@@ -40,7 +40,13 @@ from ..io import (
 from ..layout import RunLayout, check_block, layout_of
 from ..noise import ErrorModel, ErrorSampler
 from ..noise.fields import check_range
-from .backends import BACKENDS, Context, check_scheduler_address, refuse_in_bootstrapping_child
+from .backends import (
+    BACKENDS,
+    Context,
+    check_scheduler_address,
+    refuse_in_bootstrapping_child,
+    refuse_unguarded,
+)
 from .blocked import BlockedContext, blocked_runner, scratch_arrays
 from .checkpoint import (
     check_resume,
@@ -302,6 +308,8 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
     ex = Execution(realisations, seed, backend, workers, scheduler, chunk, checkpoint,
                    checkpoint_every, resume, target_se, check_every, min_realisations,
                    memory_check, block)
+    if ex.resolved_backend == "processes":  # spawned workers re-import the script
+        refuse_unguarded()
     layout = layout_of(dem, block, job=job, run=True)
     ex = dataclasses.replace(ex, block=layout.block)
     remove_orphan_scratch()  # what a killed blocked run left in the temporary folder

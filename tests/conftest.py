@@ -288,8 +288,8 @@ def stand_in_figures(monkeypatch, request):
 
 def use_stand_in_figures(mp: pytest.MonkeyPatch) -> None:
     """Replace the quick-look figures by blank stand-ins through ``mp``."""
-    from terrain.outputs import plot
-    from tests.stand_ins import FIGURES, blank_figure
+    import cairn_cli.execute  # noqa: F401  (its prepare_drawing is replaced too)
+    from tests.stand_ins import targets
 
-    for name in FIGURES:
-        mp.setattr(plot, name, blank_figure)
+    for module, name, stand_in in targets():
+        mp.setattr(module, name, stand_in)

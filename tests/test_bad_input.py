@@ -376,7 +376,10 @@ def test_write_failure_keeps_the_previous_set(cairn, dem, done, monkeypatch):
     def full(self, *a, **k):
         raise OSError(errno.ENOSPC, "No space left on device")
 
+    from .stand_ins import BlankFigure
+
     monkeypatch.setattr(Figure, "savefig", full)
+    monkeypatch.setattr(BlankFigure, "savefig", full)  # where the figures are stand-ins
     code, _, err = cairn("peaks", dem, "-o", done, *RUN, "--seed", "7", "--overwrite")
     no_traceback(err)
     one_line_error(code, err, "disk full", "quicklook.png", "No space left on device")

@@ -1704,11 +1704,12 @@ def test_the_guard_counts_the_kernel(cairn, dem, tmp_path, monkeypatch):
 # -- 11. Dask: one line, never a hang -------------------------------------------------------------------
 WAIT = 3  # seconds a cluster may stay without workers in these tests (WORKER_WAIT_SECONDS)
 # the CLI with a short worker wait and a checkpoint every 10 realisations (not 50), so the
-# runs below reach their first checkpoint in a fifth of the time
+# runs below reach their first checkpoint in a fifth of the time; these runs end before
+# any figure, so nothing is drawn or prepared for drawing (stand-ins)
 
 
 def _dask_cli(wait: float = WAIT) -> list[str]:
-    return cli_command(checkpoint_every=10, worker_wait=wait)
+    return cli_command(checkpoint_every=10, worker_wait=wait, stand_in_figures=True)
 
 
 _DASK_CLI = _dask_cli()

@@ -256,8 +256,13 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
     process holds one band of the DEM while reading it, the glue of the block
     boundaries with one block task (region labels and the DEM's own ponding
     are made here, in the run's blocks), one window of layers while
-    summarising and writing (and GDAL's block cache), the quick-look's pooled rasters, and
-    the log; a worker holds one block task."""
+    summarising and writing (and GDAL's block cache) and, while the quick-look
+    is drawn beside the writing, a second window its pooled rasters are read
+    through, the quick-look's pooled rasters, and the log; a worker holds one
+    block task. Not counted: the feature summaries (table and outline
+    polygons), which grow with the number of features and the length of their
+    outlines, not with anything a header tells (about 400 MiB for the 36,000
+    depressions of a rugged 4096² test DEM)."""
     rows, cols = grid.shape if hasattr(grid, "shape") else (cells, 1)
     task, glue = _block_bytes(grid, cells, int(block), draw)
     band = min(rows, BAND_ROWS * max(1, min(16, (64 * MiB) // max(cols * 8 * BAND_ROWS, 1))))
@@ -265,7 +270,8 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
     phases = {"read": band * cols * (2 * stored + value + READ_SCRATCH),
               "regions": glue + task,  # the same blocks (terrain.jobs.credit.dem_regions)
               "running": glue + (0 if local else task),
-              "writing": window * WINDOW_BYTES + WINDOW_WRITE_CACHE
+              # the writer's window and, while the map is drawn beside it, the map's
+              "writing": (1 + quicklook) * window * WINDOW_BYTES + WINDOW_WRITE_CACHE
               + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH}
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
     build, kept, tile = field

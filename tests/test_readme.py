@@ -153,6 +153,11 @@ def test_a_run_started_outside_the_main_guard_is_refused_before_any_work(
             exec(code, vars(module))
     else:
         exec(code, vars(module))
+    # python -m package: multiprocessing does not run a package's __main__.py again in
+    # its workers (multiprocessing.spawn, _fixup_main_from_name), so nothing is refused
+    module.__spec__ = types.SimpleNamespace(name="tool.__main__")
+    exec(code, vars(module))
     # python -c, a notebook, an interactive session: no script to read, nothing refused
+    module.__spec__ = None
     del module.__file__
     exec(compile("run()\n", "<string>", "exec"), vars(module))

@@ -90,8 +90,10 @@ def refuse_unguarded() -> None:
     the DEM and compiled its kernels (tens of seconds on a cold kernel cache).
     The test reads the script's own source (:mod:`ast`): the line of the script
     that is running now must lie inside an ``if`` comparing ``__name__`` with
-    ``"__main__"``. A run started from a function, a notebook, ``python -c`` or
-    an interactive session is left alone.
+    ``"__main__"``. A run started from a function, a notebook, ``python -c``,
+    an interactive session or a package's ``__main__.py`` (``python -m
+    package``, which multiprocessing does not run again in its workers) is
+    left alone.
 
     Raises
     ------
@@ -102,6 +104,9 @@ def refuse_unguarded() -> None:
     path = getattr(main, "__file__", None)
     if not path or not str(path).endswith(".py"):
         return
+    name = getattr(getattr(main, "__spec__", None), "name", None) or ""
+    if name == "__main__" or name.endswith(".__main__"):
+        return  # python -m package: multiprocessing never runs a package's __main__ again
     frame = sys._getframe(1)
     while frame is not None and not (frame.f_globals is vars(main)
                                      and frame.f_code.co_name == "<module>"):

@@ -52,8 +52,8 @@ MiB = 2 ** 20
 # x86-64, Python 3.11 (the peak of small runs, rounded up): the footprint depends
 # on the installed wheels and on the machine -- a fresh install from the package
 # index measured 60-90 MiB more per process than an older environment, and the
-# CI machine 80 MiB more again than this one with the same wheels -- so these
-# are the larger figures.
+# CI machine 80 MiB more than the development machine with the same wheels --
+# so these are the larger figures.
 PROCESS_BYTES = 480 * MiB
 WORKER_PROCESS_BYTES = 240 * MiB
 # ... and what drawing the quick-look maps adds to this process: matplotlib,

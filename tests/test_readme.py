@@ -133,6 +133,13 @@ def test_sigterm_ends_a_script_at_any_moment(workdir, guarded, after):
     ('if "__main__" == __name__ and True:\n    run()\n', False),
     ('def main():\n    run()\n\n\nif __name__ == "__main__":\n    main()\n', False),
     ('if __name__ == "__main__":\n    pass\nrun()\n', True),
+    ("with open(__file__) as fh:\n    run()\n", True),
+    ("class Job:\n    result = run()\n", True),
+    ('main = lambda: run()\nmain() if __name__ == "__main__" else None\n', False),
+    ('__name__ == "__main__" and run()\n', False),
+    ('IS_MAIN = __name__ == "__main__"\nif IS_MAIN:\n    run()\n', False),
+    ('if __name__ == "__main__":\n    exec("run()")\n', False),  # cProfile.run and the like
+    ("@guarded(__name__)\ndef main():\n    run()\n", False),  # a guard decorator
 ])
 def test_a_run_started_outside_the_main_guard_is_refused_before_any_work(
         tmp_path, monkeypatch, source, refused):
@@ -146,13 +153,18 @@ def test_a_run_started_outside_the_main_guard_is_refused_before_any_work(
     module = types.ModuleType("__main__")  # the script, run as python s.py runs it
     module.__file__ = str(script)
     module.run = refuse_unguarded
+    module.guarded = lambda name: (lambda f: f() if name == "__main__" else f)
     monkeypatch.setitem(sys.modules, "__main__", module)
-    code = compile(source, str(script), "exec")
+    code = compile(source, str(script), "exec", dont_inherit=True)
     if refused:
         with pytest.raises(WorkerError, match=r's\.py, line \d+: .*__name__ == "__main__"'):
             exec(code, vars(module))
     else:
         exec(code, vars(module))
+    # the script changed on disk since it started: its line numbers are not trusted
+    script.write_text("# a line added above\n" + source)
+    exec(code, vars(module))
+    script.write_text(source)
     # python -m package: multiprocessing does not run a package's __main__.py again in
     # its workers (multiprocessing.spawn, _fixup_main_from_name), so nothing is refused
     module.__spec__ = types.SimpleNamespace(name="tool.__main__")

@@ -23,6 +23,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import hashlib
+import os
 import re
 import socket
 import struct
@@ -83,66 +84,84 @@ def refuse_in_bootstrapping_child() -> None:
 
 def refuse_unguarded() -> None:
     """Before any work: refuse, with :data:`MAIN_GUARD_HINT`, a run that a script
-    starts from its top level outside ``if __name__ == "__main__":``.
+    starts from its top level with no ``if __name__ == "__main__":`` around it.
 
     Each spawned worker re-imports the script, which would start the run again;
     the pool breaks once the workers try, but only after this process has read
     the DEM and compiled its kernels (tens of seconds on a cold kernel cache).
-    The test reads the script's own source (:mod:`ast`): the line of the script
-    that is running now must lie inside an ``if`` comparing ``__name__`` with
-    ``"__main__"``. A run started from a function, a notebook, ``python -c``,
-    an interactive session or a package's ``__main__.py`` (``python -m
-    package``, which multiprocessing does not run again in its workers) is
-    left alone.
+    The test reads the script's own source (:mod:`ast`) and finds the top-level
+    statement running now (its frame's file is the script's). The run is
+    refused only when nothing around the running line is conditional (an
+    ``if``, a conditional expression, ``and`` / ``or``, ``match``, ``while``)
+    and the statement does not mention ``__name__`` or ``__spec__`` (a guard
+    decorator): a plain top-level call, directly or through functions, a
+    ``with``, ``for`` or ``try``. Everything else is left alone, and a case
+    this misses still ends with the pool's own one-line error: a run started
+    from a function called later, ``exec`` or ``eval`` of other code, a
+    debugger or console prompt, a notebook, ``python -c``, a package's
+    ``__main__.py`` (which multiprocessing does not run again in its
+    workers), a script changed on disk since it started, or a script whose
+    source cannot be read or parsed.
 
     Raises
     ------
     WorkerError
-        When the call comes from the script's top level, outside the guard.
+        When the call comes from the script's top level, with no guard around it.
     """
     main = sys.modules.get("__main__")
     path = getattr(main, "__file__", None)
-    if not path or not str(path).endswith(".py"):
-        return
+    if not path or os.path.basename(str(path)).lower().startswith("ipython"):
+        return  # multiprocessing's own rule: it re-runs every other main file
     name = getattr(getattr(main, "__spec__", None), "name", None) or ""
     if name == "__main__" or name.endswith(".__main__"):
         return  # python -m package: multiprocessing never runs a package's __main__ again
     frame = sys._getframe(1)
     while frame is not None and not (frame.f_globals is vars(main)
-                                     and frame.f_code.co_name == "<module>"):
+                                     and frame.f_code.co_name == "<module>"
+                                     and _same_file(frame.f_code.co_filename, str(path))):
         frame = frame.f_back
-    if frame is None:  # the script's top level is not running: called later, from elsewhere
+    if frame is None:  # the script's top level is not running: called later, or from exec
         return
+    try:
+        line = _unguarded_line(str(path), frame)
+    except Exception:  # noqa: BLE001  (the check itself must never stop a run)
+        return
+    if line is not None:
+        raise WorkerError(f"{path}, line {line}: {MAIN_GUARD_HINT}")
+
+
+def _same_file(a: str, b: str) -> bool:
+    return a == b or os.path.abspath(a) == os.path.abspath(b)
+
+
+_CONDITIONAL = ("If", "IfExp", "BoolOp", "Match", "While")
+
+
+def _unguarded_line(path: str, frame) -> int | None:
+    """The running line of the script's top level when nothing guards it, else None
+    (also None when the source on disk is not the code that runs)."""
     import ast
 
     source = source_bytes(path)
-    try:
-        tree = ast.parse(source, filename=str(path)) if source is not None else None
-    except (SyntaxError, ValueError):
-        tree = None
-    if tree is None:
-        return
+    if source is None:
+        return None
+    code = compile(source, path, "exec", dont_inherit=True)
+    if (code.co_code != frame.f_code.co_code
+            or list(code.co_lines()) != list(frame.f_code.co_lines())):
+        return None  # changed on disk since it started: its lines cannot be trusted
     line = frame.f_lineno
-    if any(isinstance(node, ast.If) and _is_main_test(node.test)
-           and node.lineno <= line <= (node.end_lineno or node.lineno)
-           for node in ast.walk(tree)):
-        return
-    raise WorkerError(f"{path}, line {line}: {MAIN_GUARD_HINT}")
-
-
-def _is_main_test(test) -> bool:
-    """Whether an ``if``'s test compares ``__name__`` with ``"__main__"`` (either way
-    round, alone or within ``and`` / ``or``)."""
-    import ast
-
-    for node in ast.walk(test):
-        if isinstance(node, ast.Compare) and len(node.ops) == 1:
-            sides = [node.left, node.comparators[0]]
-            if (any(isinstance(s, ast.Name) and s.id == "__name__" for s in sides)
-                    and any(isinstance(s, ast.Constant) and s.value == "__main__"
-                            for s in sides)):
-                return True
-    return False
+    for stmt in ast.parse(source, filename=path).body:
+        first = min([stmt.lineno] + [d.lineno for d in getattr(stmt, "decorator_list", [])])
+        if not first <= line <= (stmt.end_lineno or stmt.lineno):
+            continue
+        for node in ast.walk(stmt):
+            if isinstance(node, ast.Name) and node.id in ("__name__", "__spec__"):
+                return None
+            if (type(node).__name__ in _CONDITIONAL and hasattr(node, "lineno")
+                    and node.lineno <= line <= (node.end_lineno or node.lineno)):
+                return None
+        return line
+    return None
 
 
 # -- worker side of the process pool ------------------------------------------------

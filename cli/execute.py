@@ -29,7 +29,6 @@ from terrain.io import (
     scratch_folder,
 )
 from terrain.noise import ErrorModel, rmse_from
-from terrain.outputs.mapframe import prepare_drawing
 from terrain.resources import check_disk, check_memory, choose_layout
 from terrain.runner import Execution, RunInterrupted, run_ensemble
 from terrain.runner.checkpoint import prepare_checkpoint
@@ -173,6 +172,8 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
 def _prepare_drawing(dem, layout) -> None:
     """prepare_drawing, quietly: it only saves time; whatever fails here fails again
     when the figures are drawn, and is reported then, in one line."""
+    from terrain.outputs.mapframe import prepare_drawing  # looked up when the thread runs
+
     try:
         prepare_drawing(dem, layout)
     except Exception:  # noqa: BLE001, S110

@@ -288,7 +288,6 @@ def stand_in_figures(monkeypatch, request):
 
 def use_stand_in_figures(mp: pytest.MonkeyPatch) -> None:
     """Replace the quick-look figures by blank stand-ins through ``mp``."""
-    import cairn_cli.execute  # noqa: F401  (its prepare_drawing is replaced too)
     from tests.stand_ins import targets
 
     for module, name, stand_in in targets():

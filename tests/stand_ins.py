@@ -12,7 +12,6 @@ only stand-ins never imports matplotlib's figure machinery or adjustText (about
 from __future__ import annotations
 
 import struct
-import sys
 import zlib
 
 FIGURES = ("feature_map", "ranking_chart", "catchment_map", "sweep_figure")
@@ -51,8 +50,6 @@ def targets():
 
     out = [(plot, name, blank_figure) for name in FIGURES]
     out.append((mapframe, "prepare_drawing", no_drawing_to_prepare))
-    if "cairn_cli.execute" in sys.modules:  # imported the name before the stand-ins came
-        out.append((sys.modules["cairn_cli.execute"], "prepare_drawing", no_drawing_to_prepare))
     return out
 
 

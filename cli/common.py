@@ -39,7 +39,7 @@ FLAGS = {
     "channel_area": "--channel-area", "conditioning": "--conditioning",
     "breach_cap": "--breach-cap", "nodata": "--nodata", "memory_check": "--force",
     "block": "--block", "vertical_unit": "--vertical-unit", "accuracy": "--le90/--a95",
-    "outlets_crs": "--outlets-crs", "outdir": "-o/--outdir",
+    "outlets_crs": "--outlets-crs", "outdir": "-o/--outdir", "counts": "--counts-store",
 }
 _CUTOFF = {"peaks": "--min-prominence", "depressions": "--min-depth"}
 

@@ -39,7 +39,7 @@ from .progress import progress_bar
 __all__ = ["EXEC_KEYS", "error_model", "read", "header", "execution", "outputs", "guard_memory", "run_job"]
 
 RUN_KEYS = ("realisations", "seed", "workers", "scheduler", "checkpoint", "resume", "target_se")
-EXEC_KEYS = RUN_KEYS + ("memory_check", "block")  # what run_ensemble takes from an Execution
+EXEC_KEYS = RUN_KEYS + ("memory_check", "block", "counts")  # what run_ensemble takes from an Execution
 
 
 def error_model(opts: dict, rmse: float | None = None) -> ErrorModel:
@@ -76,7 +76,7 @@ def read(path, opts: dict, *, on_disk: bool = False):
 def execution(opts: dict) -> Execution:
     """The run's execution settings, validated before any output is touched."""
     return Execution(**{k: opts[k] for k in RUN_KEYS}, memory_check=not opts.get("force", False),
-                     block=opts.get("block"))
+                     block=opts.get("block"), counts=opts.get("counts"))
 
 
 def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None,

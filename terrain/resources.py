@@ -401,7 +401,7 @@ def scratch_bytes(grid: RasterHeader | Dem, job: Job, ex: Execution) -> dict[str
     cells, value, _ = _grid(grid)
     depressions = getattr(job, "kind", None) == "depressions"
     counts = 8 * cells if depressions else 0
-    beside = counts if ex.checkpoint is not None else 0
+    beside = counts if ex.checkpoint is not None or ex.counts is not None else 0
     scratch = (value + 4 + 4 + (4 if depressions else 0)) * cells + (counts - beside)
     return {"scratch": scratch, "checkpoint": beside}
 
@@ -424,7 +424,7 @@ def check_disk(grid: RasterHeader | Dem, job: Job, ex: Execution, layout: RunLay
             + (", depression levels and counts)" if getattr(job, "kind", None) == "depressions"
                else ")"))
     check_scratch_space(scratch_parent(), need["scratch"], what)
-    if need["checkpoint"]:
+    if need["checkpoint"] and ex.counts is None:  # a URL's space is not ours to see
         import os
 
         folder = os.path.dirname(os.path.abspath(ex.checkpoint))

@@ -2028,3 +2028,32 @@ def test_ctrl_c_while_cairn_starts(tmp_path, delay):
     lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
     assert len(lines) == 1 and lines[0].startswith("cairn: interrupted"), err
     nothing_written(tmp_path / "o")
+
+
+@pytest.mark.parametrize("version", [1, 2])
+def test_available_memory_respects_the_control_groups_limit(tmp_path, version):
+    """A container's memory limit, which /proc/meminfo does not show, caps what the guard
+    takes as available (Linux kernel documentation, "Control Group v2" and "Memory
+    Resource Controller", 2024: memory.max / memory.current, memory.limit_in_bytes /
+    memory.usage_in_bytes; inactive file pages can be reclaimed)."""
+    from terrain.io.files import cgroup_memory_room
+
+    proc = tmp_path / "cgroup"
+    root = tmp_path / "fs"
+    if version == 2:
+        proc.write_text("0::/job/step\n")
+        group, files, stat = root / "job" / "step", ("memory.max", "memory.current"), "inactive_file"
+        (root / "job").mkdir(parents=True)
+        (root / "job" / "memory.max").write_text("max\n")  # no limit above the step
+    else:
+        proc.write_text("4:memory:/job/step\n3:cpu:/job\n")
+        group = root / "memory" / "job" / "step"
+        files, stat = ("memory.limit_in_bytes", "memory.usage_in_bytes"), "total_inactive_file"
+    group.mkdir(parents=True)
+    (group / files[0]).write_text(f"{3 * 2**30}\n")
+    (group / files[1]).write_text(f"{2 * 2**30}\n")
+    (group / "memory.stat").write_text(f"anon 1\n{stat} {2**29}\n")
+    assert cgroup_memory_room(str(proc), str(root)) == 3 * 2**30 - (2 * 2**30 - 2**29)
+    (group / files[0]).write_text("max\n" if version == 2 else f"{2**63 - 4096}\n")
+    assert cgroup_memory_room(str(proc), str(root)) is None  # no limit
+    assert cgroup_memory_room(str(tmp_path / "missing"), str(root)) is None

@@ -58,11 +58,11 @@ def _hwm(pid: int) -> int | None:
     return None
 
 
-def peak_resident(args) -> tuple[int, int, str]:
+def peak_resident(args, preexec_fn=None) -> tuple[int, int, str]:
     """Run the CLI; the sum over its process tree of each process's peak resident set."""
     p = subprocess.Popen([sys.executable, "-c", "from cairn_cli.main import run; run()",
                           *map(str, args)], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
-                         text=True)
+                         text=True, preexec_fn=preexec_fn)
     seen: dict[int, int] = {}
     while p.poll() is None:
         for pid in _tree(p.pid):
@@ -125,3 +125,119 @@ def test_estimate_covers_the_measured_peak_at_most_twice(dems, tmp_path, case):
                        runs=runs, quicklook=quicklook)
     print(f"{case}: measured {measured / 2**20:.0f} MiB, estimate {est.total / 2**20:.0f} MiB")
     assert measured <= est.total <= 2 * measured, (measured / 2**20, est.total / 2**20)
+
+
+class MemoryCap:
+    """A memory control group of its own with a hard limit (the Linux kernel's memory
+    controller, cgroup v1 or v2: Linux kernel documentation, "Memory Resource
+    Controller" and "Control Group v2", 2024): a process moved into it, and every
+    process it starts, is held to ``limit`` bytes together, the page cache
+    included (reclaimed before anything is killed). Needs a writable cgroup
+    hierarchy (root, or a delegated group); None where there is none."""
+
+    def __init__(self, folder: str, version: int, limit: int):
+        self.folder, self.version, self.limit = folder, version, limit
+
+    @classmethod
+    def make(cls, limit: int) -> MemoryCap | None:
+        import os
+
+        name = f"cairn-test-{os.getpid()}"
+        for root, version, limit_file in (("/sys/fs/cgroup/memory", 1, "memory.limit_in_bytes"),
+                                          ("/sys/fs/cgroup", 2, "memory.max")):
+            if version == 2:
+                try:
+                    with open(os.path.join(root, "cgroup.subtree_control")) as fh:
+                        if "memory" not in fh.read().split():
+                            continue
+                except OSError:
+                    continue
+            folder = os.path.join(root, name)
+            try:
+                os.mkdir(folder)
+            except OSError:
+                continue
+            try:
+                with open(os.path.join(folder, limit_file), "w") as fh:
+                    fh.write(str(limit))
+            except OSError:
+                os.rmdir(folder)
+                continue
+            return cls(folder, version, limit)
+        return None
+
+    def enter(self) -> None:
+        """Move the calling process into the group (a ``preexec_fn``)."""
+        import os
+
+        with open(os.path.join(self.folder, "cgroup.procs"), "w") as fh:
+            fh.write(str(os.getpid()))
+
+    def _read(self, name: str) -> str:
+        import os
+
+        with open(os.path.join(self.folder, name)) as fh:
+            return fh.read()
+
+    def oom_kills(self) -> int:
+        """Processes the kernel killed in the group for want of memory."""
+        text = self._read("memory.oom_control" if self.version == 1 else "memory.events")
+        return sum(int(line.split()[1]) for line in text.splitlines()
+                   if line.startswith("oom_kill "))
+
+    def peak(self) -> int | None:
+        """The group's peak usage, page cache included (None where the kernel keeps none)."""
+        try:
+            return int(self._read("memory.max_usage_in_bytes" if self.version == 1
+                                  else "memory.peak"))
+        except OSError:
+            return None
+
+    def remove(self) -> None:
+        import os
+
+        for _ in range(50):  # the group's processes have ended; the kernel lets go of it
+            try:
+                os.rmdir(self.folder)
+                return
+            except OSError:
+                time.sleep(0.1)
+
+
+CAP = 9 * 2**28  # 2.25 GiB: the cap the two runs below are held to
+
+
+@pytest.fixture(scope="module")
+def capped_dem(tmp_path_factory):
+    """A 3072 x 3072 DEM (9.4e6 cells) whose whole-grid depressions run the guard puts
+    above :data:`CAP` for one worker (~3.1 GiB) and for two (~4.3 GiB); broad relief
+    with a few dozen depressions, so the summaries and figures stay quick."""
+    path = tmp_path_factory.mktemp("cap") / "big.tif"
+    return write_tif(path, smooth_terrain((3072, 3072), seed=5, scales=(96, 384)))
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_a_run_too_big_for_the_cap_finishes_in_blocks_under_it(capped_dem, tmp_path, workers):
+    """Memory bounded on every local backend: under a hard limit a whole-grid run
+    would exceed, ``cairn depressions`` (no --block given) finds the limit, turns
+    to blocks by itself and finishes within it, with no process killed."""
+    whole = estimate_run(read_header(capped_dem), CreditJob("depressions"),
+                         Execution(realisations=2, workers=workers))
+    assert whole.total > CAP, whole.total / 2**30  # the premise: a whole grid would not fit
+    cap = MemoryCap.make(CAP)
+    if cap is None:
+        pytest.skip("no writable memory control group here (needs root or a delegated cgroup)")
+    try:
+        measured, code, err = peak_resident(
+            ["depressions", capped_dem, "-o", tmp_path / "o", "-n", 2, "--workers", workers,
+             "--rmse", "1", "-q"], preexec_fn=cap.enter)
+        kills, peak = cap.oom_kills(), cap.peak()
+    finally:
+        cap.remove()
+    print(f"workers {workers}: resident {measured / 2**20:.0f} MiB, group peak "
+          f"{(peak or 0) / 2**20:.0f} MiB, cap {CAP / 2**20:.0f} MiB")
+    assert code == 0, err
+    assert "computing each realisation in blocks" in err
+    assert kills == 0
+    assert measured <= CAP and (peak is None or peak <= CAP)
+    assert (tmp_path / "o" / "ponding_probability.tif").exists()

@@ -172,3 +172,59 @@ def test_memory_of_a_blocked_run_does_not_grow_with_the_grid():
     assert est[32768].worker == est[16384].worker == est[65536].worker
     assert est[65536].parent < 2 * est[16384].parent
     assert est[16384].total < 3e9
+
+
+def test_counts_kept_at_a_url_give_the_same_layers_and_resume(tmp_path):
+    """Counts where the client says (an fsspec URL: here fsspec's in-memory file
+    system, as an object store would be): the layers equal those of counts in the
+    scratch folder, bit for bit, and a checkpointed run resumes from the store at
+    the URL to equal a run done in one go."""
+    import fsspec
+
+    p = _raster(tmp_path)
+    url = f"memory://cairn-test/{tmp_path.name}/run.counts"
+    with scratch_folder(tmp_path) as f:
+        dem = read_dem(p, scratch=f)
+        want = run_ensemble(dem, CreditJob("depressions"), MODEL, realisations=6, seed=5,
+                            backend="serial", block=32)
+        ck = tmp_path / "run.npz"
+        first = run_ensemble(dem, CreditJob("depressions"), MODEL, realisations=3, seed=5,
+                             backend="serial", block=32, counts=url, checkpoint=ck)
+        assert first.n == 3 and fsspec.filesystem("memory").exists(url[len("memory://"):])
+        got = run_ensemble(dem, CreditJob("depressions"), MODEL, realisations=6, seed=5,
+                           backend="serial", block=32, counts=url, checkpoint=ck, resume=True)
+        rows, cols = dem.shape
+        a, b = want.layers.read(0, rows, 0, cols), got.layers.read(0, rows, 0, cols)
+        assert a.keys() == b.keys()
+        for name in a:
+            for x, y in zip(a[name], b[name]):
+                assert x.tobytes() == y.tobytes(), name
+        with pytest.raises(CheckpointError, match="damaged checkpoint"):  # another place: no store
+            run_ensemble(dem, CreditJob("depressions"), MODEL, realisations=8, seed=5,
+                         backend="serial", block=32, counts=url + "-elsewhere", checkpoint=ck,
+                         resume=True)
+    fsspec.filesystem("memory").rm(f"/cairn-test/{tmp_path.name}", recursive=True)
+
+
+@pytest.mark.parametrize("url, needle", [("/a/folder", "takes a URL"),
+                                         ("file:///a/folder", "takes a URL"),
+                                         ("nope://x", "no file system for nope")])
+def test_counts_place_must_be_a_url_with_a_file_system(url, needle):
+    with pytest.raises(OptionError, match=needle):
+        Execution(counts=url)
+
+
+def test_counts_url_refuses_a_whole_grid_run_and_a_foreign_store(tmp_path):
+    import fsspec
+
+    p = _raster(tmp_path)
+    with pytest.raises(OptionError, match="keeps them in memory"):
+        run_ensemble(read_dem(p), CreditJob("depressions"), MODEL, realisations=1,
+                     backend="serial", counts="memory://cairn-test/whole")
+    fs = fsspec.filesystem("memory")
+    fs.pipe(f"/cairn-test/{tmp_path.name}/theirs/notes.txt", b"someone else's")
+    with scratch_folder(tmp_path) as f, pytest.raises(CheckpointError, match="not cairn's"):
+        run_ensemble(read_dem(p, scratch=f), CreditJob("depressions"), MODEL, realisations=1,
+                     backend="serial", block=32, counts=f"memory://cairn-test/{tmp_path.name}/theirs")
+    assert fs.cat(f"/cairn-test/{tmp_path.name}/theirs/notes.txt") == b"someone else's"
+    fs.rm(f"/cairn-test/{tmp_path.name}", recursive=True)

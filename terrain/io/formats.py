@@ -16,6 +16,7 @@ import numpy as np
 from ..dem import Dem
 from ._base import short
 from .checked import atomic_path
+from .files import release_freed_memory
 
 
 def write_json(dest: str | os.PathLike, obj: dict) -> None:
@@ -131,12 +132,14 @@ def write_layers_by_window(dests: dict, dem: Dem, read, windows, describe: dict)
                         for band, v in enumerate(bands, start=1):
                             out[n].write(np.where(nd, np.nan, v).astype(np.float32), band,
                                          window=win)
+                release_freed_memory()  # the window's arrays, before the next is read
             for n, ds in out.items():
                 _describe(ds, name=n, **describe[n])
         for n, dest in dests.items():
             with rasterio.Env(GDAL_CACHEMAX=WINDOW_WRITE_CACHE), \
                     atomic_path(dest, bands=count[n]) as tmp, _cog_staging(tmp):
                 rasterio.shutil.copy(stages[n], tmp, **COG_OPTIONS)
+            release_freed_memory()  # GDAL's block cache of the copy
     finally:
         for p in stages.values():
             with contextlib.suppress(FileNotFoundError):
@@ -275,7 +278,10 @@ def write_figure(dest: str | os.PathLike, figure) -> None:
     """Save a matplotlib Figure as PNG, atomically.
 
     zlib level 3, not Pillow's default 6: a quick-look map encodes in less than
-    half the time and comes out within 1% of the size."""
+    half the time and comes out within 1% of the size. What earlier writing
+    freed is handed back first: rendering needs a few hundred MiB for a big
+    map (:func:`release_freed_memory`)."""
+    release_freed_memory()
     with atomic_path(dest) as tmp:
         figure.savefig(tmp, format="png", pil_kwargs={"compress_level": 3})
 

@@ -22,6 +22,7 @@ import numpy as np
 
 from ..errors import (
     CheckpointError,
+    OptionError,
     OutputError,
 )
 from ._base import NOFOLLOW, disk_full, free_bytes, owned, short
@@ -384,10 +385,61 @@ _STORE_FILE = re.compile(r"^(?:zarr\.json|(?:counts_[01]|applied|digest_[01])/(?
 COUNTS_TAG = "cairn per-cell counts"  # the store's own attribute: it is cairn's
 
 
+def is_url(path: str | os.PathLike) -> bool:
+    """True for an fsspec URL (``s3://bucket/run.counts``, ``memory://x``), not a path
+    on this machine's file system."""
+    return "://" in str(path)
+
+
+def check_counts_url(url: str) -> None:
+    """Refuse a place for a run's per-cell counts that is not an fsspec URL with a
+    file system installed (``s3://`` needs s3fs, ``gs://`` gcsfs, ...). A folder
+    on this machine is not taken here: the counts go beside ``{checkpoint}``.
+
+    Raises
+    ------
+    OptionError
+        Naming the URL and what is wrong, for the ``counts`` parameter.
+    """
+    import fsspec
+
+    protocol = url.split("://", 1)[0] if is_url(url) else ""
+    if protocol in ("", "file", "local"):
+        raise OptionError(f"{url}: {{counts}} takes a URL (s3://..., gs://..., memory://...); "
+                          "for a folder on this machine give {checkpoint}: the counts are kept "
+                          "beside it", "counts", "checkpoint")
+    try:
+        fsspec.get_filesystem_class(protocol)
+    except (ValueError, ImportError) as exc:
+        raise OptionError(f"{url}: no file system for {protocol}:// here ({short(exc)})",
+                          "counts") from None
+
+
+def _url_fs(url: str):
+    """(file system, path within it) of an fsspec URL."""
+    import fsspec
+
+    return fsspec.core.url_to_fs(url)
+
+
+def _url_is_count_store(url: str) -> bool:
+    fs, root = _url_fs(url)
+    try:
+        if json.loads(fs.cat_file(f"{root}/zarr.json")).get("node_type") != "group":
+            return False
+        names = fs.find(root)
+    except (OSError, ValueError, AttributeError):
+        return False
+    return all(_STORE_FILE.match(name[len(root):].lstrip("/")) for name in names)
+
+
 def is_count_store(path: str | os.PathLike) -> bool:
-    """True when ``path`` is a real folder (not a link) holding nothing but a
-    Zarr store laid out as a :class:`CountStore` (no file of anyone else's)."""
+    """True when ``path`` is a real folder (not a link), or a place an fsspec URL
+    names, holding nothing but a Zarr store laid out as a :class:`CountStore`
+    (no file of anyone else's)."""
     p = str(path)
+    if is_url(p):
+        return _url_is_count_store(p)
     try:
         if not stat.S_ISDIR(os.lstat(p).st_mode):
             return False
@@ -415,6 +467,13 @@ def check_count_store_path(path: str | os.PathLike, what: str = "") -> None:
     CheckpointError
         Naming the path and the ``checkpoint`` parameter.
     """
+    if is_url(path):
+        fs, root = _url_fs(str(path))
+        if fs.exists(root) and not is_count_store(path):
+            raise CheckpointError(f"{path}: exists and is not cairn's per-cell counts; cairn only "
+                                  "replaces its own -- move it or choose another place for the "
+                                  "counts", "checkpoint")
+        return
     if os.path.lexists(path) and not is_count_store(path):
         kind = ("a link" if os.path.islink(path) else "a file" if not os.path.isdir(path)
                 else "a folder holding other files")
@@ -425,7 +484,21 @@ def check_count_store_path(path: str | os.PathLike, what: str = "") -> None:
 
 def _remove_store(path: str) -> None:
     check_count_store_path(path)
-    shutil.rmtree(path, ignore_errors=True)
+    if is_url(path):
+        fs, root = _url_fs(path)
+        if fs.exists(root):
+            fs.rm(root, recursive=True)
+    else:
+        shutil.rmtree(path, ignore_errors=True)
+
+
+def _move_store(src: str, dst: str) -> None:
+    """Rename a count store (on this machine: atomically, ``os.replace``)."""
+    if is_url(src):
+        fs, a = _url_fs(src)
+        fs.mv(a, _url_fs(dst)[1], recursive=True)
+    else:
+        os.replace(src, dst)
 
 
 class CountStore:
@@ -479,8 +552,8 @@ class CountStore:
     def _open(self):
         import zarr
 
-        if os.path.islink(self.path) or (os.path.lexists(self.path)
-                                         and not is_count_store(self.path)):
+        if not is_url(self.path) and (os.path.islink(self.path) or (
+                os.path.lexists(self.path) and not is_count_store(self.path))):
             check_count_store_path(self.path)
         try:
             group = zarr.open_group(self.path, mode="r+")
@@ -561,9 +634,9 @@ class CountStore:
         group["applied"][:, :] = n
         old = self.path + ".old"
         _remove_store(old)
-        os.replace(self.path, old)
-        os.replace(new, self.path)
-        shutil.rmtree(old, ignore_errors=True)
+        _move_store(self.path, old)
+        _move_store(new, self.path)
+        _remove_store(old)
         import zarr
 
         self.group, self.rechunk = zarr.open_group(self.path, mode="r+"), False

@@ -42,6 +42,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ..dem import Dem
+from ..io import release_freed_memory
 from ..layers import MAX_PIXELS, PRESHADE_CELLS
 from .furniture import furniture_boxes, north_arrow, north_up, place_furniture, scale_bar
 from .labels import place_labels
@@ -103,8 +104,11 @@ def pool_bands(read, shape: tuple[int, int], k: int, how) -> np.ndarray:
     read in bands of whole blocks, so only one band is held at a time."""
     rows, cols = shape
     step = k * max(1, (1 << 20) // max(k * cols, 1))  # bands of about a million cells
-    return np.concatenate([_pool(np.asarray(read(r0, min(r0 + step, rows)), np.float64), k, how)
-                           for r0 in range(0, rows, step)])
+    pooled = []
+    for r0 in range(0, rows, step):
+        pooled.append(_pool(np.asarray(read(r0, min(r0 + step, rows)), np.float64), k, how))
+        release_freed_memory()  # the band's arrays, before the next is read
+    return np.concatenate(pooled)
 
 
 def pooled_dem(dem: Dem, k: int) -> Dem:

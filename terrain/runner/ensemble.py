@@ -32,9 +32,11 @@ from ..errors import MemoryGuardError, OptionError
 from ..io import (
     CountStore,
     available_memory,
+    check_counts_url,
     count_store_file,
     dem_windows,
     hold_checkpoint,
+    release_freed_memory,
     remove_orphan_scratch,
 )
 from ..layout import RunLayout, check_block, layout_of
@@ -158,6 +160,7 @@ class Execution:
     min_realisations: int = 20
     memory_check: bool = True
     block: int | None = None
+    counts: str | None = None
 
     def __post_init__(self):
         for name in ("realisations", "seed", "checkpoint_every", "check_every", "min_realisations"):
@@ -180,6 +183,8 @@ class Execution:
                               "checkpoint")
         StopRule(self.target_se, self.check_every, self.min_realisations)  # validates target_se
         check_block(self.block)
+        if self.counts is not None:
+            check_counts_url(str(self.counts))
 
     @property
     def n_workers(self) -> int:
@@ -249,7 +254,8 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
                  checkpoint: str | os.PathLike | None = None, checkpoint_every: int = 50,
                  resume: bool = False, target_se: float | None = None, check_every: int = 20,
                  min_realisations: int = 20, memory_check: bool = True,
-                 block: int | None = None, progress: Callable[[int, int], None] | None = None) -> RunResult:
+                 block: int | None = None, counts: str | None = None,
+                 progress: Callable[[int, int], None] | None = None) -> RunResult:
     """Run ``realisations`` perturbed realisations of a job and average them.
 
     Parameters
@@ -284,6 +290,15 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
         Watch the log as it grows and stop (saving the checkpoint) before it
         would outgrow the memory available; with ``target_se`` the run only
         plans as far as its next stopping check.
+    block : int, optional
+        Compute each realisation in blocks of ``block`` x ``block`` cells (the
+        layers are the same); see :mod:`terrain.layout`.
+    counts : str, optional
+        An fsspec URL (``s3://bucket/run.counts``, ``memory://...``) where an
+        out-of-core depressions run keeps its per-cell ponding counts, a Zarr
+        store the process running the ensemble writes (default: beside
+        ``checkpoint``, or in the run's scratch folder). A store there is
+        kept after the run; one that is not cairn's is refused.
     progress : callable(done, total), optional
 
     Returns
@@ -307,10 +322,14 @@ def run_ensemble(dem: Dem, job, model: ErrorModel, *, realisations: int = 200, s
     refuse_in_bootstrapping_child()
     ex = Execution(realisations, seed, backend, workers, scheduler, chunk, checkpoint,
                    checkpoint_every, resume, target_se, check_every, min_realisations,
-                   memory_check, block)
+                   memory_check, block, counts)
     if ex.resolved_backend == "processes":  # spawned workers re-import the script
         refuse_unguarded()
     layout = layout_of(dem, block, job=job, run=True)
+    if counts is not None and not layout.counts_on_disk:
+        raise OptionError("{counts} is where an out-of-core depressions run (in blocks, the DEM "
+                          "kept on disk) keeps its per-cell counts; this run keeps them in memory",
+                          "counts")
     ex = dataclasses.replace(ex, block=layout.block)
     remove_orphan_scratch()  # what a killed blocked run left in the temporary folder
     if checkpoint is not None:  # its folder can be written, before its lock is made there
@@ -364,8 +383,10 @@ def _run(dem: Dem, job, model: ErrorModel, ex: Execution, layout: RunLayout,
             "stop_statistic": acc.stop_statistic() if stop.active else None,
             "defaults": st.used,
             "field_kernel_radius_cells": list(st.sampler.field.radius) if st.sampler.field else None}
-    return RunResult(dem, st.job, model, acc.layers(dem.shape), acc.log(), acc.n, st.params, info,
-                     layout)
+    result = RunResult(dem, st.job, model, acc.layers(dem.shape), acc.log(), acc.n, st.params,
+                       info, layout)
+    release_freed_memory()  # what the realisations freed, before the summaries and writing
+    return result
 
 
 def _runner(st, ex: Execution, layout: RunLayout, plan, halt, scope: contextlib.ExitStack,
@@ -434,13 +455,13 @@ def _reference(job) -> float:
 
 def _count_store(dem: Dem, ex: Execution, layout: RunLayout, params: dict) -> dict:
     """The on-disk ponding counts of an out-of-core depressions run
-    (``layout.counts_on_disk``): beside the checkpoint (``<checkpoint>.counts``,
-    kept for a resume) or in the DEM's scratch folder; the store carries the
-    run's identity."""
+    (``layout.counts_on_disk``): at ``ex.counts`` (an fsspec URL) when given,
+    else beside the checkpoint (``<checkpoint>.counts``, kept for a resume) or
+    in the DEM's scratch folder; the store carries the run's identity."""
     if not layout.counts_on_disk:
         return {}
-    path = (counts_path(ex.checkpoint) if ex.checkpoint is not None
-            else count_store_file(dem.scratch))
+    path = (str(ex.counts) if ex.counts is not None else counts_path(ex.checkpoint)
+            if ex.checkpoint is not None else count_store_file(dem.scratch))
     return {"ponding": CountStore(path, dem.shape, int(layout.block), resume=ex.resume,
                                   run=run_identity(params), checkpoint=ex.checkpoint)}
 

@@ -34,6 +34,7 @@ import pandas as pd
 from scipy import ndimage
 
 from ..dem import Dem
+from ..io import release_freed_memory
 from ..jobs.credit_blocked import grid_values_at, unperturbed_ponding
 from ..layers import layer_name, layer_windows, read_window
 from ..pairlog import log_weights, region_figures
@@ -473,9 +474,11 @@ def summarise_features(result) -> FeatureSummary:
         np.zeros((len(table), kmax)), index=pd.Index(table["feature_id"].to_numpy(),
                                                      name="feature_id"),
         columns=range(1, kmax + 1))
-    return FeatureSummary(job.regions, table, frames, top, settings, ranked, long,
-                          _clusters(fm, rows, bimodal, split),
-                          None if links is None else links.drop(columns="death"))
+    summary = FeatureSummary(job.regions, table, frames, top, settings, ranked, long,
+                             _clusters(fm, rows, bimodal, split),
+                             None if links is None else links.drop(columns="death"))
+    release_freed_memory()  # the summaries' temporaries, before the layers are written
+    return summary
 
 
 def _attribute_table(frame: pd.DataFrame):
@@ -526,6 +529,7 @@ def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
         for geom, value in shapes(lab, mask=mask, connectivity=connectivity,
                                   transform=t * Affine.translation(c0, r0)):
             parts[where[int(value)]].append(shape(geom))
+        release_freed_memory()  # the window's traced rings, before the next window's
     return [_valid(unary_union(p)) if p else None for p in parts]
 
 

@@ -249,3 +249,22 @@ def test_relations_identical_across_backends_workers_and_blocks():
     for log in logs[1:]:
         for f in ("elder_region", "isolation", "isolation_edge"):
             assert log[f].tobytes() == logs[0][f].tobytes(), f
+
+
+def test_pairs_counted_as_numpy_counts_records():
+    """The links' (feature, target) and (pair, death) counts equal numpy's own
+    ``np.unique(..., axis=1)`` of the stacked records (numpy, a general-purpose
+    reference), order included, also where the int64 keys would overflow."""
+    from terrain.summary.relations import _unique_pairs
+
+    rng = np.random.default_rng(3)
+    for k in range(60):
+        n = int(rng.integers(1, 300))
+        a = rng.integers(0, 1 + int(rng.integers(1, 40)), n)
+        b = rng.integers(-2, 1 + int(rng.integers(1, 40)), n)  # -2: no relation
+        if k % 20 == 0:
+            a, b = a * 2**40, b * 2**30  # keys past 2**62: the records' path
+        want, count = np.unique(np.stack([a, b]), axis=1, return_counts=True)
+        got, got_count, inverse = _unique_pairs(a, b)
+        assert np.array_equal(got, want) and np.array_equal(got_count, count)
+        assert np.array_equal(got[:, inverse], np.stack([a, b]))

@@ -106,21 +106,40 @@ def _counts(rel: dict, ids: np.ndarray):
     ok = (row < ids.size) & (ids[np.minimum(row, ids.size - 1)] == rel["region"]) if ids.size \
         else np.zeros(rel["region"].size, bool)
     n_f = np.bincount(row[ok], minlength=ids.size)
-    pairs, cnt = np.unique(np.stack([row[ok], rel["target"][ok]]), axis=1, return_counts=True)
+    pairs, cnt, _ = _unique_pairs(row[ok], rel["target"][ok])
     return row, ok, n_f, pairs, cnt
+
+
+def _unique_pairs(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``np.unique(np.stack([a, b]), axis=1, return_counts=True, return_inverse=True)``
+    for two integer arrays, as one sort of int64 keys (``a`` major, ``b`` minor)
+    instead of a sort of (a, b) records: the same pairs in the same (lexicographic)
+    order, their counts and each element's pair index."""
+    a, b = np.asarray(a, np.int64), np.asarray(b, np.int64)
+    if a.size == 0:
+        return np.zeros((2, 0), np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64)
+    a0, b0 = int(a.min()), int(b.min())
+    span = int(b.max()) - b0 + 1
+    if (int(a.max()) - a0 + 1) * span >= 2**62:  # keys would not fit: records, as before
+        pairs, inv, cnt = np.unique(np.stack([a, b]), axis=1, return_inverse=True,
+                                    return_counts=True)
+        return pairs, cnt, inv.reshape(-1)
+    keys, inv, cnt = np.unique((a - a0) * span + (b - b0), return_inverse=True,
+                               return_counts=True)
+    return np.stack([keys // span + a0, keys % span + b0]), cnt, inv.reshape(-1)
 
 
 def _modal_deaths(row: np.ndarray, target: np.ndarray, death: np.ndarray) -> np.ndarray:
     """Per (row, target) pair, in the lexicographic order of ``np.unique``, its
     most frequent death cell (the smallest of those tied): one sort of the log's
-    (row, target, death) triples, not one pass over the log per link."""
-    trip, c = np.unique(np.stack([row.astype(np.int64), target.astype(np.int64),
-                                  death.astype(np.int64)]), axis=1, return_counts=True)
-    order = np.lexsort((trip[2], -c, trip[1], trip[0]))  # per pair: most frequent first
+    (pair, death) keys, not one pass over the log per link."""
+    _, _, pair = _unique_pairs(row, target)
+    trip, c, _ = _unique_pairs(pair, death)  # (pair, death) in order, with counts
+    order = np.lexsort((trip[1], -c, trip[0]))  # per pair: most frequent, then smallest death
     trip = trip[:, order]
     first = np.ones(trip.shape[1], bool)
-    first[1:] = (trip[0, 1:] != trip[0, :-1]) | (trip[1, 1:] != trip[1, :-1])
-    return trip[2, first]
+    first[1:] = trip[0, 1:] != trip[0, :-1]
+    return trip[1, first]
 
 
 def relation_links(rel: dict, ids: np.ndarray, kind: str, given) -> pd.DataFrame:

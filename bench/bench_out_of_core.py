@@ -7,9 +7,10 @@ apart), rounded to 0.1 m (ties and plateaus), with a round nodata hole;
 10 m cells. Nothing is committed.
 
 1. ``cairn depressions big.tif -n 20 --block 2048`` on a 16384^2 raster (2.7e8
-   cells) with 2 worker processes: wall time and the peak resident memory of
-   all its processes together (the sum of the process tree's RSS, sampled
-   every 0.1 s), against the 3 GB bound.
+   cells; ``--side``) with 1 and with 2 worker processes: wall time and the
+   peak resident memory of all its processes together (the sum of the process
+   tree's RSS, sampled every 0.1 s), against the 3 GB bound and the memory
+   guard's estimate; the two runs' layers must be equal.
 2. The same command with ``--scheduler`` on a Dask LocalCluster of 2 workers
    limited to 1.5 GB each (one thread each): whether any worker was
    restarted (its process id changed) and the peak memory of the command
@@ -21,7 +22,8 @@ apart), rounded to 0.1 m (ties and plateaus), with a round nodata hole;
    pits realisation (:func:`terrain.jobs.credit.realise`, with ponding
    counts) of a 4096^2 raster measured in this process.
 
-Run:  python bench/bench_out_of_core.py [--tmp /var/tmp] [--skip-32k] [--skip-dask]
+Run:  python bench/bench_out_of_core.py [--tmp /var/tmp] [--side 16384] [-n 20] [--skip-32k]
+      [--skip-dask]
 """
 
 from __future__ import annotations
@@ -176,6 +178,7 @@ def main() -> None:
     ap.add_argument("--tmp", default=tempfile.gettempdir())
     ap.add_argument("--side", type=int, default=16384)
     ap.add_argument("--big", type=int, default=32768)
+    ap.add_argument("-n", type=int, default=20, help="realisations of runs 1 and 2")
     ap.add_argument("--skip-dask", action="store_true")
     ap.add_argument("--skip-32k", action="store_true")
     ap.add_argument("--skip-processes", action="store_true",
@@ -189,21 +192,39 @@ def main() -> None:
         t0 = time.perf_counter()
         write_terrain(dem, a.side)
         print(f"generated {a.side}^2 raster in {time.perf_counter() - t0:.0f} s")
-        run = ["depressions", dem, "--rmse", "1", "-n", "20", "--block", "2048", "--seed", "1"]
-        print("\n| run | cells | wall s | realisations s | peak RSS, all processes | bound |")
-        print("|---|---|---|---|---|---|")
+        run = ["depressions", dem, "--rmse", "1", "-n", str(a.n), "--block", "2048", "--seed", "1"]
+        print("\n| run | cells | wall s | realisations s | peak RSS, all processes | bound "
+              "| guard's estimate |")
+        print("|---|---|---|---|---|---|---|")
         if not a.skip_processes:
-            wall, peak, _ = cairn([*run, "-o", os.path.join(work, "out"), "--workers", "2"])
-            rs = json.load(open(os.path.join(work, "out", "run.json")))["timings"]
-            print(f"| depressions -n 20 --block 2048, 2 processes | {a.side}^2 | {wall:.0f} | "
-                  f"{rs['realisations_s']:.0f} | {peak / GB:.2f} GB | < 3 GB: "
-                  f"{'yes' if peak < 3 * GB else 'NO'} |", flush=True)
+            for workers in (1, 2):
+                out = os.path.join(work, "out" if workers == 2 else "out-1")
+                wall, peak, _ = cairn([*run, "-o", out, "--workers", str(workers)])
+                rs = json.load(open(os.path.join(out, "run.json")))["timings"]
+                same = "" if workers == 1 else (
+                    f"; layers equal to 1 process: {layers_equal(os.path.join(work, 'out-1'), out)}")
+                print(f"| depressions -n {a.n} --block 2048, {workers} process"
+                      f"{'es' if workers > 1 else ''} | {a.side}^2 | {wall:.0f} | "
+                      f"{rs['realisations_s']:.0f} | {peak / GB:.2f} GB | < 3 GB: "
+                      f"{'yes' if peak < 3 * GB else 'NO'}{same} | "
+                      f"{guard_estimate(dem, a.n, workers) / GB:.2f} GB |", flush=True)
         if not a.skip_dask:
             dask_run(a, work, run, dem)
         if not a.skip_32k:
             big_run(a, work)
     finally:
         shutil.rmtree(work, ignore_errors=True)
+
+
+def guard_estimate(dem: str, n: int, workers: int) -> int:
+    """The memory guard's estimate (bytes, every process) of the run above."""
+    from terrain.io import read_header
+    from terrain.jobs import CreditJob
+    from terrain.resources import estimate_run
+    from terrain.runner import Execution
+
+    return estimate_run(read_header(dem), CreditJob("depressions"),
+                        Execution(realisations=n, workers=workers, block=2048)).total
 
 
 def dask_run(a, work: str, run: list[str], dem: str) -> None:
@@ -219,9 +240,11 @@ def dask_run(a, work: str, run: list[str], dem: str) -> None:
         restarted = sorted(set(before.values()) ^ set(after.values()))
         same = (layers_equal(os.path.join(work, "out"), os.path.join(work, "out-dask"))
                 if os.path.isdir(os.path.join(work, "out")) else "not compared")
-    print(f"| the same on a Dask LocalCluster, 2 workers x 1.5 GB | {a.side}^2 | {wall:.0f} | - | "
-          f"{peak / GB:.2f} GB (command + workers) | workers restarted: "
-          f"{len(restarted) // 2}; layers equal to run 1: {same} |", flush=True)
+    rs = json.load(open(os.path.join(work, "out-dask", "run.json")))["timings"]
+    print(f"| the same on a Dask LocalCluster, 2 workers x 1.5 GB | {a.side}^2 | {wall:.0f} | "
+          f"{rs['realisations_s']:.0f} | {peak / GB:.2f} GB (command + workers) | workers "
+          f"restarted: {len(restarted) // 2}; layers equal to 2 processes: {same} | - |",
+          flush=True)
 
 
 ONE_REALISATION = """

@@ -11,7 +11,16 @@ from terrain.outputs.manifest import file_names, help_text
 
 from . import options
 from .common import CAUTION, INDEPENDENT_ERROR, command_line, guarded, warn
-from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
+from .execute import (
+    error_model,
+    execution,
+    guard_memory,
+    guard_summaries,
+    header,
+    outputs,
+    read,
+    run_job,
+)
 from .summary import print_summary
 
 __all__ = ["peaks_cmd", "depressions_cmd", "demo_cmd"]
@@ -32,6 +41,7 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     ex, layout = guard_memory(head, job, ex, opts, model=model)
     dem = read(dem_path, opts, on_disk=layout.on_disk)
     job = job.resolved(dem, model, layout=layout)
+    guard_summaries(head, job, ex, opts, model=model, layout=layout)
     res = run_job(dem, job, model, ex, opts, label=label or kind,
                   headline=settings_line(job, dem.unit_label), layout=layout)
     if model.range_m == 0:

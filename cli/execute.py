@@ -24,6 +24,7 @@ from terrain.io import (
     remove_file,
     replaced_beside_checkpoint,
     replaced_by,
+    resident_memory,
     resolves_into,
     same_file,
     scratch_folder,
@@ -36,7 +37,8 @@ from terrain.runner.checkpoint import prepare_checkpoint
 from .common import flush_warnings, warn, warn_later
 from .progress import progress_bar
 
-__all__ = ["EXEC_KEYS", "error_model", "read", "header", "execution", "outputs", "guard_memory", "run_job"]
+__all__ = ["EXEC_KEYS", "error_model", "read", "header", "execution", "outputs", "guard_memory",
+           "guard_summaries", "run_job"]
 
 RUN_KEYS = ("realisations", "seed", "workers", "scheduler", "checkpoint", "resume", "target_se")
 EXEC_KEYS = RUN_KEYS + ("memory_check", "block", "counts")  # what run_ensemble takes from an Execution
@@ -167,6 +169,15 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
         warn(f"a whole-grid run would not fit in memory; computing each realisation in blocks "
              f"of {layout.block} x {layout.block} cells (--block; the layers are the same)")
     return chosen, layout
+
+
+def guard_summaries(head, job, ex: Execution, opts: dict, *, model, layout) -> None:
+    """Out of core, once the regions are made and before any realisation: refuse a
+    run whose feature summaries (``len(job.regions)`` of them) would not fit beside
+    the rest (no header tells how many there are)."""
+    if layout.on_disk:
+        check_memory(head, job, ex, model=model, force=opts["force"], layout=layout,
+                     features=len(job.regions), held=resident_memory())
 
 
 def _prepare_drawing(dem, layout) -> None:

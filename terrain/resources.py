@@ -46,7 +46,7 @@ __all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_layout", "D
            "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR", "grid_spacing", "field_bytes",
            "check_field", "scratch_bytes", "check_disk"]
 
-MiB = 2 ** 20
+KiB, MiB = 2 ** 10, 2 ** 20
 # Resident size of the processes before their arrays (interpreter, numpy, GDAL,
 # numba's compiled kernels, GeoPandas), measured with cairn's own runs on Linux
 # x86-64, Python 3.11 (the peak of small runs, rounded up): the footprint depends
@@ -90,6 +90,11 @@ GLUE_PER_BOUNDARY_CELL = 185
 # window and mask (9), labels (4) and the features' temporaries (20) (counted).
 WINDOW_BYTES = 160
 PAIRS_PER_REALISATION = 2000  # assumed; the run re-checks its log as it grows
+# Out of core, per feature region of the DEM as given, while its summaries are made
+# and held through the writing: its table and rank rows, outline polygons and
+# their tracing (measured: 11-13 KiB per depression of rugged 4096^2 test DEMs,
+# 16,856 and 36,430 of them; rounded up). Known once the regions are made.
+FEATURE_BYTES = 16 * KiB
 
 
 def available_bytes() -> int:
@@ -125,6 +130,7 @@ class MemoryEstimate:
     block: int | None = None
     kernel: int = 0
     on_disk: bool = False
+    features: int = 0
 
     def describe(self) -> str:
         """One line, e.g. ``~1.20 GiB = 0.60 GiB + 2 workers x 0.30 GiB (250 bytes
@@ -136,8 +142,10 @@ class MemoryEstimate:
             text += f", of which {_gib(self.kernel)} to compute the correlated error's kernel"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
         if self.on_disk:
+            summaries = (f"; the summaries of its {self.features:,} features: "
+                         f"{_gib(self.features * FEATURE_BYTES)}" if self.features else "")
             return text + (f" (out of core: the DEM, region labels and counts stay on disk; "
-                           f"a worker holds one block of {self.block} x {self.block})")
+                           f"a worker holds one block of {self.block} x {self.block}{summaries})")
         if self.block:
             return text + (f" ({peak:,} bytes per cell at the peak in the accumulating process; "
                            f"a worker holds one block of {self.block} x {self.block})")
@@ -174,7 +182,8 @@ def _planned(ex) -> int:
 
 def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
                  model: ErrorModel | None = None, runs: int = 1,
-                 quicklook: bool = True, layout: RunLayout | None = None) -> MemoryEstimate:
+                 quicklook: bool = True, layout: RunLayout | None = None,
+                 features: int = 0) -> MemoryEstimate:
     """The bytes a run of ``job`` on ``grid`` needs at its peak, in every process.
 
     Parameters
@@ -194,6 +203,10 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     layout : RunLayout, optional
         Whole grid or blocks, in memory or on disk (default: as
         :func:`terrain.layout.plan_layout` makes it from ``ex.block`` and ``runs``).
+    features : int
+        Out of core: the feature regions of the DEM as given, once they are
+        made (``len(job.regions)``), whose summaries are held from the summary
+        phase through the writing (:data:`FEATURE_BYTES` each); 0 before.
     """
     ex = ex if ex is not None else Execution()
     layout = layout if layout is not None else plan_layout(grid.shape, ex.block, job=job,
@@ -209,7 +222,7 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     block = layout.block
     if layout.on_disk:  # DEM, region labels and counts on disk
         return _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs,
-                            quicklook, field)
+                            quicklook, field, features)
     labels = 4 if block else 0  # blocked: the region labels, read at birth cells
     held = dem + CONTEXT + kept + labels + parent_job + SWEEP_KEPT * (runs - 1)
     here = 0  # bytes of this process that do not scale with the grid's cells
@@ -251,7 +264,7 @@ def _draw_bytes(model: ErrorModel | None) -> int:
 
 
 def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, quicklook,
-                 field):
+                 field, features=0):
     """Blocked mode keeps the DEM, region labels and counts on disk: this
     process holds one band of the DEM while reading it, the glue of the block
     boundaries with one block task (region labels and the DEM's own ponding
@@ -259,10 +272,9 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
     summarising and writing (and GDAL's block cache) and, while the quick-look
     is drawn beside the writing, a second window its pooled rasters are read
     through, the quick-look's pooled rasters, and the log; a worker holds one
-    block task. Not counted: the feature summaries (table and outline
-    polygons), which grow with the number of features and the length of their
-    outlines, not with anything a header tells (about 400 MiB for the 36,000
-    depressions of a rugged 4096² test DEM)."""
+    block task. The feature summaries (table and outline polygons) grow with
+    the number of features, which no header tells: counted once the regions
+    are made (``features``), held through the writing."""
     rows, cols = grid.shape if hasattr(grid, "shape") else (cells, 1)
     task, glue = _block_bytes(grid, cells, int(block), draw)
     band = min(rows, BAND_ROWS * max(1, min(16, (64 * MiB) // max(cols * 8 * BAND_ROWS, 1))))
@@ -272,7 +284,8 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
               "running": glue + (0 if local else task),
               # the writer's window and, while the map is drawn beside it, the map's
               "writing": (1 + quicklook) * window * WINDOW_BYTES + WINDOW_WRITE_CACHE
-              + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH}
+              + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH
+              + features * FEATURE_BYTES}
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
     build, kept, tile = field
     parent = (PROCESS_BYTES + quicklook * DRAWING_BYTES + max(max(phases.values()), build) + log
@@ -282,7 +295,7 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells,
                           per_cell={**per, "worker": math.ceil(task / max(cells, 1))},
-                          block=int(block), kernel=build, on_disk=True)
+                          block=int(block), kernel=build, on_disk=True, features=features)
 
 
 def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:
@@ -315,12 +328,16 @@ def choose_layout(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
 
 def check_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
                  model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True,
-                 force: bool = False, layout: RunLayout | None = None) -> MemoryEstimate:
-    """The run's :func:`estimate_run` (in ``layout``, see there); raises
-    :class:`MemoryGuardError` when it exceeds the memory available (unless ``force``)."""
+                 force: bool = False, layout: RunLayout | None = None,
+                 features: int = 0, held: int = 0) -> MemoryEstimate:
+    """The run's :func:`estimate_run` (in ``layout``, with ``features``, see there);
+    raises :class:`MemoryGuardError` when it exceeds the memory available (unless
+    ``force``). ``held``: bytes this process holds already, which the estimate
+    counts and the memory available no longer shows (a check made mid-run)."""
     check_field(grid, model)
-    est = estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook, layout=layout)
-    have = available_bytes()
+    est = estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook, layout=layout,
+                       features=features)
+    have = available_bytes() + held
     source = getattr(grid, "source", "the DEM")
     if est.kernel > have and not force:
         raise MemoryGuardError(

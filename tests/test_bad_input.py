@@ -166,6 +166,18 @@ def test_memory_guard(cairn, dem, tmp_path, monkeypatch):
     assert cairn("peaks", dem, "-o", tmp_path / "o", *RUN, "--force")[0] == 0
 
 
+def test_memory_guard_counts_the_summaries_once_the_regions_are_made(cairn, dem, tmp_path,
+                                                                      monkeypatch):
+    """Out of core, the feature summaries grow with the features, which no header
+    tells: checked once the regions are made, before any realisation."""
+    import terrain.resources as r
+
+    monkeypatch.setattr(r, "FEATURE_BYTES", 2**40)  # a feature's summaries outgrow any machine
+    code, _, err = cairn("depressions", dem, "-o", tmp_path / "o", *RUN, "--block", "64")
+    one_line_error(code, err, "the summaries of its", "features", "--bbox", "--force")
+    nothing_written(tmp_path / "o")
+
+
 # -- edge cases with a defined answer ------------------------------------------------
 @pytest.mark.real_figures  # the figures of degenerate rasters are part of what is checked
 @pytest.mark.slow

@@ -51,6 +51,15 @@ def available_memory() -> int:
     return have if room is None else min(have, room)
 
 
+def resident_memory() -> int:
+    """This process's resident size in bytes (``/proc/self/statm``; 0 where unknown)."""
+    try:
+        with open("/proc/self/statm") as fh:
+            return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError, IndexError):
+        return 0
+
+
 CGROUP_ROOT = "/sys/fs/cgroup"
 
 

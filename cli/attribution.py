@@ -112,9 +112,10 @@ def peaks_cmd(dem, outdir, min_prominence, base, **opts):
 @shared
 @click.option("--counts-store", "counts", default=None, metavar="URL",
               help="Out of core (--block): keep the per-cell ponding counts in a Zarr store at "
-                   "this URL (s3://..., gs://..., memory://...; any fsspec file system "
-                   "installed), written by this process, kept after the run. Default: beside "
-                   "--checkpoint, or in the scratch folder.")
+                   "this URL (s3://... with s3fs installed, gs://... with gcsfs; any fsspec "
+                   "file system), written by this process and kept after the run (give the "
+                   "same URL with --resume). Default: beside --checkpoint, or in the scratch "
+                   "folder.")
 @guarded
 def depressions_cmd(dem, outdir, min_depth, **opts):
     """Pits, spill points and depression depth, stable under DEM error.

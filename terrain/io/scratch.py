@@ -405,7 +405,7 @@ def check_counts_url(url: str) -> None:
 
     protocol = url.split("://", 1)[0] if is_url(url) else ""
     if protocol in ("", "file", "local"):
-        raise OptionError(f"{url}: {{counts}} takes a URL (s3://..., gs://..., memory://...); "
+        raise OptionError(f"{url}: {{counts}} takes a URL (s3://..., gs://..., ...); "
                           "for a folder on this machine give {checkpoint}: the counts are kept "
                           "beside it", "counts", "checkpoint")
     try:

@@ -228,3 +228,31 @@ def test_counts_url_refuses_a_whole_grid_run_and_a_foreign_store(tmp_path):
                      backend="serial", block=32, counts=f"memory://cairn-test/{tmp_path.name}/theirs")
     assert fs.cat(f"/cairn-test/{tmp_path.name}/theirs/notes.txt") == b"someone else's"
     fs.rm(f"/cairn-test/{tmp_path.name}", recursive=True)
+
+
+@pytest.mark.parametrize("path, url", [("s3://bucket/run.counts", True), ("memory://x", True),
+                                       ("/tmp/x://y/run.npz.counts", False),
+                                       ("C://dir/run.npz.counts", False), ("run.counts", False)])
+def test_only_a_scheme_makes_a_url(path, url):
+    """A local path that happens to hold '://' (or a Windows drive) stays a path: its
+    store gets the os checks, never fsspec's."""
+    from terrain.io import is_url
+
+    assert is_url(path) is url
+
+
+def test_a_url_ending_in_a_slash_keeps_its_store_when_rechunked(tmp_path):
+    """Siblings of a store (made when a resume changes the block) go beside it, not into it."""
+    import fsspec
+
+    p = _raster(tmp_path)
+    url = f"memory://cairn-test/{tmp_path.name}/run.counts/"
+    ck = tmp_path / "run.npz"
+    with scratch_folder(tmp_path) as f:
+        dem = read_dem(p, scratch=f)
+        run_ensemble(dem, CreditJob("depressions"), MODEL, realisations=2, seed=5,
+                     backend="serial", block=32, counts=url, checkpoint=ck)
+        got = run_ensemble(dem, CreditJob("depressions"), MODEL, realisations=3, seed=5,
+                           backend="serial", block=16, counts=url, checkpoint=ck, resume=True)
+        assert got.n == 3
+    fsspec.filesystem("memory").rm(f"/cairn-test/{tmp_path.name}", recursive=True)

@@ -385,10 +385,14 @@ _STORE_FILE = re.compile(r"^(?:zarr\.json|(?:counts_[01]|applied|digest_[01])/(?
 COUNTS_TAG = "cairn per-cell counts"  # the store's own attribute: it is cairn's
 
 
+_URL = re.compile(r"^[A-Za-z][A-Za-z0-9+.-]+://")
+
+
 def is_url(path: str | os.PathLike) -> bool:
-    """True for an fsspec URL (``s3://bucket/run.counts``, ``memory://x``), not a path
-    on this machine's file system."""
-    return "://" in str(path)
+    """True for an fsspec URL (``s3://bucket/run.counts``, ``memory://x``: a scheme of
+    two or more characters first), not a path on this machine's file system (a
+    path containing ``://`` further on, or a Windows drive ``C://``)."""
+    return bool(_URL.match(str(path)))
 
 
 def check_counts_url(url: str) -> None:
@@ -535,6 +539,8 @@ class CountStore:
     def __init__(self, path: str | os.PathLike, shape, block: int, *, resume: bool = False,
                  run: str = "", checkpoint: str | os.PathLike | None = None):
         self.path, self.shape, self.block = str(path), tuple(int(x) for x in shape), int(block)
+        if is_url(self.path):  # siblings (.rechunk, .old) beside the store, never inside it
+            self.path = self.path.rstrip("/")
         self.run = str(run)
         self.checkpoint = str(checkpoint) if checkpoint is not None else self.path
         if resume:

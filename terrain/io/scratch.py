@@ -508,7 +508,8 @@ def _move_store(src: str, dst: str) -> None:
 class CountStore:
     """Per-cell int32 counts of a run kept on disk (out-of-core runs): a Zarr
     group chunked by block, each chunk stamped with the realisations it holds
-    and sealed by a digest.
+    and sealed by a digest; in a folder here, or wherever an fsspec URL names
+    (:func:`is_url`: an object store, say), opened through fsspec.
 
     ``add(window, i, counts)`` adds realisation ``i``'s counts of one block
     (windows aligned to the block grid): it reads the chunk's buffer holding

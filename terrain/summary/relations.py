@@ -101,13 +101,13 @@ def feature_relations(log: dict) -> dict:
 
 def _counts(rel: dict, ids: np.ndarray):
     """Per feature in ``ids``: realisations counting it, and the (feature,
-    target) pairs with their counts."""
+    target) pairs with their counts and each counted entry's pair index."""
     row = np.searchsorted(ids, rel["region"])
     ok = (row < ids.size) & (ids[np.minimum(row, ids.size - 1)] == rel["region"]) if ids.size \
         else np.zeros(rel["region"].size, bool)
     n_f = np.bincount(row[ok], minlength=ids.size)
-    pairs, cnt, _ = _unique_pairs(row[ok], rel["target"][ok])
-    return row, ok, n_f, pairs, cnt
+    pairs, cnt, pair = _unique_pairs(row[ok], rel["target"][ok])
+    return row, ok, n_f, pairs, cnt, pair
 
 
 def _unique_pairs(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -129,11 +129,11 @@ def _unique_pairs(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray,
     return np.stack([keys // span + a0, keys % span + b0]), cnt, inv.reshape(-1)
 
 
-def _modal_deaths(row: np.ndarray, target: np.ndarray, death: np.ndarray) -> np.ndarray:
-    """Per (row, target) pair, in the lexicographic order of ``np.unique``, its
-    most frequent death cell (the smallest of those tied): one sort of the log's
+def _modal_deaths(pair: np.ndarray, death: np.ndarray) -> np.ndarray:
+    """Per (row, target) pair (``pair``: each entry's index among the pairs in the
+    lexicographic order of ``np.unique``, as :func:`_counts` gives it), its most
+    frequent death cell (the smallest of those tied): one sort of the log's
     (pair, death) keys, not one pass over the log per link."""
-    _, _, pair = _unique_pairs(row, target)
     trip, c, _ = _unique_pairs(pair, death)  # (pair, death) in order, with counts
     order = np.lexsort((trip[1], -c, trip[0]))  # per pair: most frequent, then smallest death
     trip = trip[:, order]
@@ -149,11 +149,11 @@ def relation_links(rel: dict, ids: np.ndarray, kind: str, given) -> pd.DataFrame
     with the most frequent key col / spill point of those realisations
     (``death``, a flat cell), by feature id then share."""
     ids = np.sort(np.asarray(ids, np.int64))
-    row, ok, n_f, pairs, cnt = _counts(rel, ids)
+    row, ok, n_f, pairs, cnt, pair = _counts(rel, ids)
     share = cnt / np.maximum(n_f[pairs[0]], 1)
     target = pairs[1]
     on_dem = given.target[ids[pairs[0]] - 1] == target
-    death = _modal_deaths(row[ok], rel["target"][ok], rel["death"][ok])
+    death = _modal_deaths(pair, rel["death"][ok])
     t = pd.array(np.where(target == NO_RELATION, 0, target), dtype="Int64")
     t[target == NO_RELATION] = pd.NA
     out = pd.DataFrame({"feature_id": ids[pairs[0]], _TARGET[kind]: t, "share": share,

@@ -50,7 +50,7 @@ def run_shares(folder: Path, side: int, counts) -> None:
     for n in counts:
         for kind in ("peaks", "depressions"):
             out = folder / f"{kind}-{n}"
-            subprocess.run([sys.executable, "-c", "from cairn_cli.main import run; run()", kind,
+            subprocess.run([sys.executable, "-c", "from cairn_cli.main import main; main()", kind,
                             str(dem), "--rmse", "2", "-n", str(n), "--workers", "2", "-o",
                             str(out), "-q"], check=True, stderr=subprocess.DEVNULL)
             t = json.loads((out / "run.json").read_text())["timings"]

@@ -17,7 +17,7 @@ from terrain.errors import CairnError, CairnWarning
 from terrain.outputs.caution import CAUTION
 
 __all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn",
-           "warn_later", "flush_warnings", "Terminated"]
+           "warn_later", "flush_warnings", "Terminated", "on_sigterm_terminate"]
 
 INDEPENDENT_ERROR = (
     "independent per-cell error deepens flat floors and raises flat tops (the lowest of n noisy "
@@ -75,7 +75,10 @@ def guarded(fn):
     def wrapper(*args, **kwargs):
         previous = _on_sigterm(_terminate)
         try:
-            return fn(*args, **kwargs)
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                _release_resources()
         except CairnError as exc:
             kind = _kind()
             click.echo(f"cairn: error: {exc.render(lambda p: flag(p, kind))}", err=True)
@@ -111,6 +114,37 @@ def _disk_full(exc: BaseException) -> bool:
             return True
         exc = exc.__cause__ or exc.__context__
     return False
+
+
+def _release_resources() -> None:
+    """Release what the command holds (the output folder's lock, checkpoint
+    locks, a scratch folder) here, inside :func:`guarded`, rather than when
+    click closes the context afterwards, and with Ctrl-C and SIGTERM
+    ignored meanwhile: once the command has published or failed there is
+    nothing left to interrupt, and a signal must not cut a folder's removal
+    short or kill the process with its lock still in place."""
+    import signal
+    import threading
+
+    ctx = click.get_current_context(silent=True)
+    if ctx is None:
+        return
+    if threading.current_thread() is not threading.main_thread():
+        ctx.close()
+        return
+    sigs = (signal.SIGINT, signal.SIGTERM)
+    previous = {s: signal.signal(s, signal.SIG_IGN) for s in sigs}
+    try:
+        ctx.close()  # click's own close at the context's end then finds nothing left
+    finally:
+        for s, h in previous.items():
+            signal.signal(s, h)
+
+
+def on_sigterm_terminate():
+    """SIGTERM raises :class:`Terminated` from here on (main thread only); returns the
+    previous handler."""
+    return _on_sigterm(_terminate)
 
 
 def _on_sigterm(handler):

@@ -36,14 +36,14 @@ from terrain import __version__  # noqa: E402
 
 from .attribution import demo_cmd, depressions_cmd, peaks_cmd  # noqa: E402
 from .catchments_cmd import catchments_cmd  # noqa: E402
-from .common import CAUTION  # noqa: E402
+from .common import CAUTION, Terminated, on_sigterm_terminate  # noqa: E402
 from .inspect_cmd import inspect_cmd  # noqa: E402
 from .sweep_cmd import sweep_cmd  # noqa: E402
 
 for _signum, _handler in _LOADING.items():  # loaded: the commands handle signals from here
     signal.signal(_signum, _handler)
 
-__all__ = ["cli", "run"]
+__all__ = ["cli", "main", "run"]
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100},
@@ -78,11 +78,32 @@ def run(argv=None) -> None:
     except click.ClickException as exc:
         click.echo(f"cairn: error: {exc.format_message()}", err=True)
         sys.exit(exc.exit_code)
-    except click.exceptions.Abort:
-        click.echo("cairn: interrupted", err=True)
-        sys.exit(130)
+    except click.exceptions.Abort as exc:  # a signal outside a command's own handling
+        term = isinstance(exc.__cause__, Terminated)
+        click.echo(f"cairn: {'terminated' if term else 'interrupted'}", err=True)
+        sys.exit(143 if term else 130)
     sys.exit(rv if isinstance(rv, int) else 0)
 
 
+def main() -> None:
+    """The ``cairn`` command: :func:`run`, then leave with its exit code.
+
+    Once the command is over (its outputs published, or its error said),
+    Ctrl-C and SIGTERM are ignored: the interpreter's shutdown gives signals
+    with a Python handler back their default action, so one arriving in its
+    last fraction of a second would otherwise kill a finished run by signal
+    instead of letting it exit with its code. Before that, SIGTERM ends the
+    command in one line, as Ctrl-C does. (Blocking the signals in the
+    main thread is not enough: any other thread still alive, such as a
+    library's worker thread, would take the signal.)
+    """
+    on_sigterm_terminate()  # SIGTERM ends the command in one line, like Ctrl-C, throughout
+    try:
+        run()
+    finally:
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            signal.signal(signum, signal.SIG_IGN)
+
+
 if __name__ == "__main__":  # pragma: no cover
-    run()
+    main()

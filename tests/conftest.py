@@ -242,7 +242,7 @@ def cli_command(*, checkpoint_every: int | None = None, worker_wait: float | Non
         patch += ("import terrain.runner.ensemble as e; i = e.Execution.__init__; "
                   "e.Execution.__init__ = lambda s, *a, **k: (i(s, *a, **k), "
                   f"object.__setattr__(s, 'checkpoint_every', {checkpoint_every}))[0]; ")
-    return [sys.executable, "-c", f"{patch}from cairn_cli.main import run; run()"]
+    return [sys.executable, "-c", f"{patch}from cairn_cli.main import main; main()"]
 
 
 def pytest_runtest_teardown(item, nextitem):

@@ -175,7 +175,7 @@ def test_ctrl_c_saves_checkpoint_and_resume_is_identical(tmp_path):
 def demo_out(tmp_path_factory):
     def make():
         out = tmp_path_factory.mktemp("demo")
-        p = subprocess.run([sys.executable, "-c", "from cairn_cli.main import run; run()", "demo",
+        p = subprocess.run([sys.executable, "-c", "from cairn_cli.main import main; main()", "demo",
                             "-o", str(out), "-q"], capture_output=True, text=True, timeout=600)
         assert p.returncode == 0, p.stderr
         return out

@@ -63,7 +63,7 @@ def _hwm(pid: int) -> int | None:
 
 def peak_resident(args, preexec_fn=None) -> tuple[int, int, str]:
     """Run the CLI; the sum over its process tree of each process's peak resident set."""
-    p = subprocess.Popen([sys.executable, "-c", "from cairn_cli.main import run; run()",
+    p = subprocess.Popen([sys.executable, "-c", "from cairn_cli.main import main; main()",
                           *map(str, args)], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                          text=True, preexec_fn=preexec_fn)
     with _killed_if_left(p):

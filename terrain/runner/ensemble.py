@@ -217,7 +217,7 @@ def _fold(runner, acc, order: InOrder, realisations: int, stop: StopRule, flag: 
             flag["stop"] = True
         if flag["interrupted"]:
             raise KeyboardInterrupt
-    if flag["interrupted"] and acc.n < realisations and not stopped_early:
+    if flag["interrupted"]:  # after the last chunk: still an interrupt (what is folded is saved)
         raise KeyboardInterrupt
     return stopped_early
 

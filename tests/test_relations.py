@@ -218,6 +218,32 @@ def test_isolation_does_not_depend_on_the_pyramid_tiles():
         assert all(a.tobytes() == b.tobytes() for a, b in zip(ref, got))
 
 
+@pytest.mark.parametrize("leaf", [2, 4, 32])
+def test_the_max_pyramid_is_each_tiles_highest_value_and_nodata_flag(leaf):
+    # every level against numpy's nanmax and any(isnan) over the tile's cells (common
+    # practice: a max pyramid is the tile maxima, level after level), odd shapes, all-nodata
+    # tiles, float32 and float64, tile rows across the 32-tile bands the raster is read in
+    from terrain.engine.isolation import pyramid
+
+    rng = np.random.default_rng(leaf)
+    for shape in [(1, 1), (5, 7), (37, 130), (131, 9)]:
+        for dtype in (np.float32, np.float64):
+            z = rng.standard_normal(shape).astype(dtype)
+            z[rng.random(shape) < 0.1] = np.nan
+            z[: min(leaf, shape[0]), : min(leaf, shape[1])] = np.nan  # one whole tile of nodata
+            p = pyramid(z, leaf)
+            for k in range(p.rows.size):
+                side = leaf << k
+                top = p.top[p.start[k]:p.start[k + 1]].reshape(p.rows[k], p.cols[k])
+                nod = p.nod[p.start[k]:p.start[k + 1]].reshape(p.rows[k], p.cols[k])
+                for a in range(p.rows[k]):
+                    for b in range(p.cols[k]):
+                        tile = z[a * side:(a + 1) * side, b * side:(b + 1) * side]
+                        valid = tile[np.isfinite(tile)]
+                        assert top[a, b] == (valid.max() if valid.size else -np.inf)
+                        assert nod[a, b] == bool(np.isnan(tile).any())
+
+
 def test_isolation_on_a_geographic_grid_is_the_geodesic():
     # reference: pyproj.Geod (GeographicLib; Karney 2013, J. Geodesy 87) on WGS84
     from pyproj import Geod

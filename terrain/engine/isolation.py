@@ -67,16 +67,37 @@ class Pyramid:
 
 @njit(cache=True)
 def _leaf_level(z, r0, nr, nc, tc, top, nod, leaf):
-    """Finest level from the band ``z`` (first row ``r0``): highest valid value, nodata flag."""
-    for r in range(nr):
+    """Finest level from the band ``z`` (first row ``r0``): highest valid value, nodata flag.
+
+    One tile row at a time: the column maxima and nodata flags of its rows
+    first (a branch-free pass along each row, no division per cell), then
+    each tile's ``leaf`` columns of them. ``v > m`` is false for NaN, so
+    nodata never becomes a maximum."""
+    m = np.empty(nc, z.dtype)
+    h = np.empty(nc, np.bool_)
+    r = 0
+    while r < nr:
         a = (r0 + r) // leaf
-        for c in range(nc):
-            v = z[r, c]
-            t = a * tc + c // leaf
-            if np.isnan(v):
-                nod[t] = True
-            elif v > top[t]:
-                top[t] = v
+        end = min(nr, (a + 1) * leaf - r0)  # the band's rows in tile row a
+        m[:] = -np.inf
+        h[:] = False
+        for rr in range(r, end):
+            for c in range(nc):
+                v = z[rr, c]
+                m[c] = v if v > m[c] else m[c]
+                h[c] = h[c] | (v != v)
+        base = a * tc
+        for t in range(tc):
+            best = top[base + t]
+            hole = False
+            for c in range(t * leaf, min(t * leaf + leaf, nc)):
+                if m[c] > best:
+                    best = m[c]
+                hole = hole | h[c]
+            top[base + t] = best
+            if hole:
+                nod[base + t] = True
+        r = end
 
 
 @njit(cache=True)

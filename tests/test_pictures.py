@@ -412,3 +412,27 @@ def test_figures_of_a_run_without_features():
     fig = plot.ranking_chart(res, feat)
     check_figure(fig)
     assert any("No depression feature" in t.get_text() for t in fig.axes[0].texts)
+
+
+def test_feature_outlines_are_the_paths_matplotlib_makes_ring_by_ring():
+    # reference: matplotlib's own Path(ring, closed=True) per ring, joined by
+    # Path.make_compound_path (the map's outlines are built in bulk instead)
+    import shapely
+    from matplotlib.path import Path
+
+    from terrain.outputs.mapframe import _outline_paths
+
+    holed = shapely.Polygon([(0, 0), (4, 0), (4, 4), (0, 4)],
+                            [[(1, 1), (2, 1), (2, 2), (1, 1)], [(3, 3), (3.5, 3), (3.5, 3.5)]])
+    geoms = [shapely.box(0, 0, 1, 1), None, holed, shapely.Polygon(),
+             shapely.MultiPolygon([shapely.box(5, 5, 6, 7), holed]),
+             shapely.buffer(shapely.Point(10, 10), 2.0)]
+    want = [Path.make_compound_path(*[Path(np.asarray(r.coords), closed=True)
+                                      for r in [g.exterior, *g.interiors]])
+            for geom in geoms if geom is not None and not geom.is_empty
+            for g in getattr(geom, "geoms", [geom])]
+    got = _outline_paths(geoms)
+    assert len(got) == len(want) == 5
+    for a, b in zip(got, want):
+        assert np.array_equal(a.vertices, b.vertices) and np.array_equal(a.codes, b.codes)
+    assert _outline_paths([None, shapely.Polygon()]) == []

@@ -96,10 +96,8 @@ def place_furniture(ax: Axes, points, *, arrow: bool) -> None:
     edges), the first whose box covers the fewest of ``points`` ((x, y, marker
     size in points): markers and labelled points); the arrow never covers the bar."""
     r = ax.figure.canvas.get_renderer()
-    points = marker_boxes(ax, points)
+    pts = marker_boxes(ax, points)
     bar = next(a for a in ax.artists if a.get_gid() == "scale_bar")
-
-    pts = box_array(points)
 
     def covered(boxes):  # how many (box, point) pairs overlap
         return int(overlaps(box_array(boxes), pts, tol=0.0).sum())

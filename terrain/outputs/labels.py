@@ -80,8 +80,7 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
         items = []  # a thin strip of a map: no label fits inside it (the footer names them)
     if not items:
         return []
-    boxes = marker_boxes(ax, avoid) + list(fixed)
-    clear = box_array(boxes)
+    clear = np.vstack([marker_boxes(ax, avoid), box_array(list(fixed))])
     kept: dict[int, object] = {}
     # a label with no free spot near its point among the markers and the fixed boxes
     # has none later either (labels kept only add obstacles): it is left out at once,
@@ -94,7 +93,7 @@ def place_labels(ax: Axes, items, avoid, *, fixed=(), fontsize: float = FONT_PT)
             # labels kept so far that are more important than every label to place are
             # fixed; a less important one gives way if a more important label needs its room
             fixed_kept = [kept[i].get_window_extent(r) for i in kept if i < todo[0]]
-            near = _near(ax, [items[i] for i in todo], boxes + fixed_kept)
+            near = _near(ax, [items[i] for i in todo], np.vstack([clear, box_array(fixed_kept)]))
             texts = _adjust(ax, [items[i] for i in todo], near, fontsize, start)
             evicted = _clear(ax, dict(zip(todo, texts)), clear, kept)
             for i, t in zip(todo, texts):
@@ -224,28 +223,33 @@ def _leader(ax, text, xy, marker_pt: float) -> None:
     ax.plot([x0, x1], [y0, y1], color=INK, lw=0.7, zorder=6, gid="leader", label="_leader")
 
 
-def _near(ax, items, boxes, reach: float = 160.0, most: int = 160) -> list:
-    """The boxes adjustText is given: those within ``reach`` pixels of a labelled
-    point, at most ``most`` of them, nearest first (its cost grows with the square of
-    the obstacles; labels do not travel far, and :func:`_clear` checks them all)."""
-    if not boxes:
-        return []
-    pts = ax.transData.transform(np.array([(x, y) for x, y, _ in items], float))
-    centres = np.array([[(b.x0 + b.x1) / 2, (b.y0 + b.y1) / 2] for b in boxes])
-    d = np.abs(centres[:, None, :] - pts[None, :, :]).max(axis=2).min(axis=1)
-    order = np.argsort(d, kind="stable")[:most]
-    return [boxes[i] for i in order if d[i] <= reach]
-
-
-def marker_boxes(ax, avoid) -> list:
-    """Display boxes of the markers at ``avoid`` ((x, y, size in points)), a pixel wider."""
+def _near(ax, items, boxes: np.ndarray, reach: float = 160.0, most: int = 160) -> list:
+    """The boxes adjustText is given: of ``boxes`` (display boxes as :func:`box_array`),
+    those within ``reach`` pixels of a labelled point, at most ``most`` of them, nearest
+    first (its cost grows with the square of the obstacles; labels do not travel far,
+    and :func:`_clear` checks them all), as matplotlib Bboxes."""
     from matplotlib.transforms import Bbox
 
-    if not avoid:
+    if not len(boxes):
         return []
-    xy = ax.transData.transform(np.array([(x, y) for x, y, _ in avoid]))
-    half = np.array([s for *_, s in avoid]) / 2 * ax.figure.dpi / 72.0 + 1.0
-    return [Bbox([[px - h, py - h], [px + h, py + h]]) for (px, py), h in zip(xy, half)]
+    pts = ax.transData.transform(np.array([(x, y) for x, y, _ in items], float))
+    centres = np.column_stack([(boxes[:, 0] + boxes[:, 1]) / 2, (boxes[:, 2] + boxes[:, 3]) / 2])
+    d = np.abs(centres[:, None, :] - pts[None, :, :]).max(axis=2).min(axis=1)
+    order = np.argsort(d, kind="stable")[:most]
+    return [Bbox.from_extents(boxes[i, 0], boxes[i, 2], boxes[i, 1], boxes[i, 3])
+            for i in order if d[i] <= reach]
+
+
+def marker_boxes(ax, avoid) -> np.ndarray:
+    """Display boxes of the markers at ``avoid`` ((x, y, size in points)), a pixel
+    wider, as :func:`box_array` gives them (one row per marker, no Bbox objects:
+    a map holds thousands)."""
+    if not avoid:
+        return np.empty((0, 4))
+    xy = ax.transData.transform(np.array([(x, y) for x, y, _ in avoid], float))
+    half = np.array([s for *_, s in avoid], float) / 2 * ax.figure.dpi / 72.0 + 1.0
+    return np.column_stack([xy[:, 0] - half, xy[:, 0] + half, xy[:, 1] - half,
+                            xy[:, 1] + half])
 
 
 def boxes_overlap(a, b, tol: float = 0.5) -> bool:

@@ -349,13 +349,8 @@ class MapFrame:
     def polygons(self, geoms, *, colour: str, label: str, lw: float = 1.5) -> None:
         """Outlines of shapely (multi)polygons, as one legend entry."""
         from matplotlib.collections import PathCollection
-        from matplotlib.path import Path
 
-        paths = []
-        for geom in geoms:
-            for g in getattr(geom, "geoms", [geom]) if geom is not None else []:
-                rings = [np.asarray(g.exterior.coords)] + [np.asarray(r.coords) for r in g.interiors]
-                paths.append(Path.make_compound_path(*[Path(r, closed=True) for r in rings]))
+        paths = _outline_paths(geoms)
         if not paths:
             return
         self._haloed(PathCollection, paths, lw, halo_lw=lw + 1.6, zorder=3, facecolors="none",
@@ -514,6 +509,29 @@ class MapFrame:
 
     def _footer(self) -> str:
         return "\n".join(textwrap.wrap(self.footer, 140) + textwrap.wrap(self.caution, 140))
+
+
+def _outline_paths(geoms) -> list:
+    """One compound matplotlib Path per polygon of ``geoms`` (shapely polygons and
+    multipolygons; None skipped): its exterior, then its holes, each ring
+    closed -- the vertices and codes of ``Path(ring, closed=True)`` joined by
+    ``Path.make_compound_path`` -- with the rings' coordinates and codes made in
+    bulk, not ring by ring (a map may outline thousands of features)."""
+    import shapely
+    from matplotlib.path import Path
+
+    parts = shapely.get_parts(np.array([g for g in geoms if g is not None], dtype=object))
+    parts = parts[~shapely.is_empty(parts)]
+    if not parts.size:
+        return []
+    rings, owner = shapely.get_rings(parts, return_index=True)  # exterior first, in order
+    xy, ring = shapely.get_coordinates(rings, return_index=True)
+    codes = np.full(len(xy), Path.LINETO, Path.code_type)
+    first = np.flatnonzero(np.r_[True, ring[1:] != ring[:-1]])
+    codes[first] = Path.MOVETO
+    codes[np.r_[first[1:], len(xy)] - 1] = Path.CLOSEPOLY
+    cuts = np.searchsorted(owner[ring], np.arange(1, parts.size))
+    return [Path(v, c) for v, c in zip(np.split(xy, cuts), np.split(codes, cuts))]
 
 
 def _single(colour: str):

@@ -143,10 +143,12 @@ def release_freed_memory() -> None:
     if not _TRIM:
         try:
             import ctypes
-            import ctypes.util
 
-            _TRIM.append(ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").malloc_trim)
-        except (OSError, AttributeError):
+            # the C library already loaded into this process: ctypes.util.find_library
+            # would run `ldconfig -p` in a child process, one the size of this one
+            # until it execs
+            _TRIM.append(ctypes.CDLL(None).malloc_trim)
+        except (OSError, AttributeError, TypeError):  # TypeError: Windows wants a name
             _TRIM.append(None)
     if _TRIM[0] is not None:
         _TRIM[0](0)

@@ -137,8 +137,15 @@ def _release_resources() -> None:
     try:
         ctx.close()  # click's own close at the context's end then finds nothing left
     finally:
-        for s, h in previous.items():
-            signal.signal(s, h)
+        if not CONSOLE:  # the console entry keeps them ignored: the command is over
+            for s, h in previous.items():
+                signal.signal(s, h)
+
+
+#: set by the console entry (:func:`cairn_cli.main.main`): the process ends with the
+#: command, so signals stay ignored once its resources are released; an in-process
+#: caller of ``run()`` gets its handlers back
+CONSOLE = False
 
 
 def on_sigterm_terminate():

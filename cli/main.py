@@ -97,7 +97,10 @@ def main() -> None:
     main thread is not enough: any other thread still alive, such as a
     library's worker thread, would take the signal.)
     """
-    on_sigterm_terminate()  # SIGTERM ends the command in one line, like Ctrl-C, throughout
+    from . import common
+
+    common.CONSOLE = True
+    on_sigterm_terminate()  # SIGTERM ends the command in one line, like Ctrl-C
     try:
         run()
     finally:

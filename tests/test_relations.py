@@ -227,8 +227,17 @@ def test_the_max_pyramid_is_each_tiles_highest_value_and_nodata_flag(leaf):
 
     rng = np.random.default_rng(leaf)
     for shape in [(1, 1), (5, 7), (37, 130), (131, 9)]:
-        for dtype in (np.float32, np.float64):
-            z = rng.standard_normal(shape).astype(dtype)
+        for dtype in (np.float32, np.float64, np.int16):
+            z = (rng.standard_normal(shape) * 100).astype(dtype).astype(float)
+            if dtype == np.int16:  # an integer raster (no nodata) goes in as it is
+                zi = z.astype(np.int16)
+                p = pyramid(zi, leaf)
+                n = p.rows[0] * p.cols[0]
+                want = [zi[a * leaf:(a + 1) * leaf, b * leaf:(b + 1) * leaf].max()
+                        for a in range(p.rows[0]) for b in range(p.cols[0])]
+                assert p.top[:n].tolist() == want and not p.nod[:n].any()
+                continue
+            z = z.astype(dtype)
             z[rng.random(shape) < 0.1] = np.nan
             z[: min(leaf, shape[0]), : min(leaf, shape[1])] = np.nan  # one whole tile of nodata
             p = pyramid(z, leaf)

@@ -73,7 +73,7 @@ def _leaf_level(z, r0, nr, nc, tc, top, nod, leaf):
     first (a branch-free pass along each row, no division per cell), then
     each tile's ``leaf`` columns of them. ``v > m`` is false for NaN, so
     nodata never becomes a maximum."""
-    m = np.empty(nc, z.dtype)
+    m = np.empty(nc, np.float64)  # any input dtype: -inf and every value exact
     h = np.empty(nc, np.bool_)
     r = 0
     while r < nr:

@@ -203,7 +203,14 @@ class _Beside:
         return self
 
     def __exit__(self, *exc):
-        self.thread.join()
+        interrupt = None
+        while self.thread.is_alive():  # a second Ctrl-C must not leave it writing on
+            try:
+                self.thread.join()
+            except KeyboardInterrupt as e:
+                interrupt = e
+        if interrupt is not None:
+            raise interrupt
         if self.error is not None and exc[0] is None:
             raise self.error
         return False

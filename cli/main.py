@@ -34,9 +34,10 @@ import click  # noqa: E402
 
 from terrain import __version__  # noqa: E402
 
+from . import common  # noqa: E402
 from .attribution import demo_cmd, depressions_cmd, peaks_cmd  # noqa: E402
 from .catchments_cmd import catchments_cmd  # noqa: E402
-from .common import CAUTION, Terminated, on_sigterm_terminate  # noqa: E402
+from .common import CAUTION, Terminated  # noqa: E402
 from .inspect_cmd import inspect_cmd  # noqa: E402
 from .sweep_cmd import sweep_cmd  # noqa: E402
 
@@ -97,10 +98,8 @@ def main() -> None:
     main thread is not enough: any other thread still alive, such as a
     library's worker thread, would take the signal.)
     """
-    from . import common
-
     common.CONSOLE = True
-    on_sigterm_terminate()  # SIGTERM ends the command in one line, like Ctrl-C
+    common.on_sigterm_terminate()  # SIGTERM ends the command in one line, like Ctrl-C
     try:
         run()
     finally:

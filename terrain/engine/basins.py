@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["before", "kbefore", "elder_rule", "lower", "descend", "resolve", "hslot", "upsert",
+__all__ = ["before", "kbefore", "elder_rule", "descend", "resolve", "hslot", "upsert",
            "find", "fill_cells", "CODES8", "CODES4", "GROUPS8", "GROUPS4", "CANDIDATE", "MINIMUM",
            "sweep", "label_of", "resolve_all", "NOLABEL", "earlier"]
 
@@ -80,41 +80,40 @@ def earlier(z, s, a, b):
     return za < zb or (za == zb and a < b)
 
 
-@njit(cache=True, inline="always")
-def lower(zk, bz, bi, j):
-    """The lower of (value ``bz``, cell ``bi``) and cell ``j`` (ties keep ``bi``)."""
-    zj = zk[j]
-    if zj < bz:
-        return zj, j
-    return bz, bi
-
-
 @njit(cache=True)
 def descend_inner(zk, nr, nc, conn8, lab):
     """Pass 1 on interior cells of a raster without nodata (unrolled).
 
     Neighbours are visited in ascending flat index with the cell itself in
-    its place, so a strict ``<`` breaks ties by index.
+    its place, so a strict ``<`` breaks ties by index. Rows are read through
+    views indexed from 0 up (see :func:`_fast_row`: no wraparound, so the
+    vectorised loop's overlap check covers only the rows read).
     """
     for r in range(1, nr - 1):
-        for i in range(r * nc + 1, r * nc + nc - 1):
+        o = r * nc
+        up = zk[o - nc:o]
+        mid = zk[o:o + nc]
+        dn = zk[o + nc:o + 2 * nc]
+        out = lab[o:o + nc]
+        for c in range(1, nc - 1):
+            i = o + c
             if conn8:
                 bi = i - nc - 1
-                bz = zk[bi]
-                bz, bi = lower(zk, bz, bi, i - nc)
-                bz, bi = lower(zk, bz, bi, i - nc + 1)
+                bz = up[c - 1]
+                bz, bi = (up[c], i - nc) if up[c] < bz else (bz, bi)
+                bz, bi = (up[c + 1], i - nc + 1) if up[c + 1] < bz else (bz, bi)
             else:
                 bi = i - nc
-                bz = zk[bi]
-            bz, bi = lower(zk, bz, bi, i - 1)
-            bz, bi = lower(zk, bz, bi, i)
-            bz, bi = lower(zk, bz, bi, i + 1)
+                bz = up[c]
+            bz, bi = (mid[c - 1], i - 1) if mid[c - 1] < bz else (bz, bi)
+            bz, bi = (mid[c], i) if mid[c] < bz else (bz, bi)
+            bz, bi = (mid[c + 1], i + 1) if mid[c + 1] < bz else (bz, bi)
             if conn8:
-                bz, bi = lower(zk, bz, bi, i + nc - 1)
-            bz, bi = lower(zk, bz, bi, i + nc)
+                bz, bi = (dn[c - 1], i + nc - 1) if dn[c - 1] < bz else (bz, bi)
+            bz, bi = (dn[c], i + nc) if dn[c] < bz else (bz, bi)
             if conn8:
-                bz, bi = lower(zk, bz, bi, i + nc + 1)
-            lab[i] = bi
+                bz, bi = (dn[c + 1], i + nc + 1) if dn[c + 1] < bz else (bz, bi)
+            out[c] = bi
 
 
 @njit(cache=True)
@@ -360,53 +359,49 @@ def _fast_row(z, s, o, nc, conn8, lab, mrow):
     filtration neighbours (ties by index: neighbours come in ascending flat
     index with the cell in its place, and only a strictly lower one wins)
     into ``lab``, mask of earlier neighbours into ``mrow``. No branches, so
-    the compiler vectorises it."""
-    if conn8:
-        for c in range(1, nc - 1):
-            i = o + c
-            zi = z[i] * s
-            a0 = z[i - nc - 1] * s
-            a1 = z[i - nc] * s
-            a2 = z[i - nc + 1] * s
-            a3 = z[i - 1] * s
-            a4 = z[i + 1] * s
-            a5 = z[i + nc - 1] * s
-            a6 = z[i + nc] * s
-            a7 = z[i + nc + 1] * s
+    the compiler vectorises it.
+
+    The three rows are read through views indexed from 0 up: an index the
+    compiler can prove non-negative needs no negative-index wraparound, so
+    its runtime check that ``lab`` and ``z`` do not overlap covers only the
+    rows read. (With ``z[i - nc - 1]`` the check spanned twice ``z``'s
+    length, and a ``lab`` that the allocator placed just past ``z`` sent the
+    row to the scalar loop, at half the speed.)"""
+    up = z[o - nc:o]
+    mid = z[o:o + nc]
+    dn = z[o + nc:o + 2 * nc]
+    out = lab[o:o + nc]
+    for c in range(1, nc - 1):
+        zi = mid[c] * s
+        a0 = up[c - 1] * s
+        a1 = up[c] * s
+        a2 = up[c + 1] * s
+        a3 = mid[c - 1] * s
+        a4 = mid[c + 1] * s
+        a5 = dn[c - 1] * s
+        a6 = dn[c] * s
+        a7 = dn[c + 1] * s
+        i = o + c
+        if conn8:
             best = i - nc - 1
             bz = a0
             best, bz = (i - nc, a1) if a1 < bz else (best, bz)
             best, bz = (i - nc + 1, a2) if a2 < bz else (best, bz)
-            best, bz = (i - 1, a3) if a3 < bz else (best, bz)
-            best, bz = (i, zi) if zi < bz else (best, bz)
-            best, bz = (i + 1, a4) if a4 < bz else (best, bz)
+        else:
+            best = i - nc
+            bz = a1
+        best, bz = (i - 1, a3) if a3 < bz else (best, bz)
+        best, bz = (i, zi) if zi < bz else (best, bz)
+        best, bz = (i + 1, a4) if a4 < bz else (best, bz)
+        if conn8:
             best, bz = (i + nc - 1, a5) if a5 < bz else (best, bz)
             best, bz = (i + nc, a6) if a6 < bz else (best, bz)
             best = i + nc + 1 if a7 < bz else best
-            lab[i] = best
-            mrow[c] = ((a0 <= zi) + 2 * (a1 <= zi) + 4 * (a2 <= zi) + 8 * (a3 <= zi)
-                       + 16 * (a4 < zi) + 32 * (a5 < zi) + 64 * (a6 < zi) + 128 * (a7 < zi))
-    else:
-        for c in range(1, nc - 1):
-            i = o + c
-            zi = z[i] * s
-            a0 = z[i - nc - 1] * s
-            a1 = z[i - nc] * s
-            a2 = z[i - nc + 1] * s
-            a3 = z[i - 1] * s
-            a4 = z[i + 1] * s
-            a5 = z[i + nc - 1] * s
-            a6 = z[i + nc] * s
-            a7 = z[i + nc + 1] * s
-            best = i - nc
-            bz = a1
-            best, bz = (i - 1, a3) if a3 < bz else (best, bz)
-            best, bz = (i, zi) if zi < bz else (best, bz)
-            best, bz = (i + 1, a4) if a4 < bz else (best, bz)
+        else:
             best = i + nc if a6 < bz else best
-            lab[i] = best
-            mrow[c] = ((a0 <= zi) + 2 * (a1 <= zi) + 4 * (a2 <= zi) + 8 * (a3 <= zi)
-                       + 16 * (a4 < zi) + 32 * (a5 < zi) + 64 * (a6 < zi) + 128 * (a7 < zi))
+        out[c] = best
+        mrow[c] = ((a0 <= zi) + 2 * (a1 <= zi) + 4 * (a2 <= zi) + 8 * (a3 <= zi)
+                   + 16 * (a4 < zi) + 32 * (a5 < zi) + 64 * (a6 < zi) + 128 * (a7 < zi))
 
 
 @njit(cache=True)

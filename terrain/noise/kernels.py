@@ -23,6 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import OptionError
+from .normals import standard_normal32
 
 __all__ = ["Kernel", "KERNELS", "kernel"]
 
@@ -127,6 +128,8 @@ def _epanechnikov_quantile(u):
 
 # -- fast direct samplers ------------------------------------------------------------
 def _gauss_sample(rng, size, dtype):
+    if np.dtype(dtype) == np.float32:  # numpy's numbers, drawn in compiled code
+        return standard_normal32(rng, size)
     return rng.standard_normal(size, dtype=dtype)
 
 

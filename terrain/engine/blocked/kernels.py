@@ -677,9 +677,21 @@ def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, n
             if valid[i]:
                 bR, bC = _ring_pointer(vals, sgn, r + hr, c + hc, hr0, hc0, ncols, dr, dc)
                 ne = _point(code, ex_ring, ne, i, r, c, bR, bC, hr, hc, nr, nc)
+    # every chain to its end: forward, a pointer to an earlier cell takes what
+    # that cell holds (its end, or a pointer to a later cell); then backward,
+    # most pointers reach a cell already ended (one read), the rest are followed
     for i in range(n):
-        if code[i] >= 0:
-            k = i
+        p = code[i]
+        if 0 <= p < i:
+            code[i] = code[p]
+    for i in range(n - 1, -1, -1):
+        p = code[i]
+        if p >= 0:
+            q = code[p]
+            if q < 0:
+                code[i] = q
+                continue
+            k = p
             while code[k] >= 0:
                 k = code[k]
             end = code[k]

@@ -327,3 +327,23 @@ def test_regions_equal_the_cell_by_cell_definition(a, kind, conn, outlet, level)
     # each region holds its own extremum
     flat = r.labels.reshape(-1)
     assert flat[r.birth].tolist() == list(range(1, len(r) + 1))
+
+
+@pytest.mark.parametrize("conn", [8, 4])
+def test_candidates_alone_are_the_sweeps_candidates(conn):
+    # the blocked engine's edges come from basins.candidates: the same cells and
+    # masks as the sweep lists, on rasters with ties, nodata and thin shapes
+    from terrain.engine.basins import CODES4, CODES8, candidates, sweep
+
+    codes = CODES8 if conn == 8 else CODES4
+    rng = np.random.default_rng(conn)
+    for it in range(60):
+        nr, nc = (int(v) for v in rng.integers(1, 40, 2))
+        z = (rng.integers(0, 5, (nr, nc)) if it % 2 else rng.standard_normal((nr, nc))
+             ).astype(np.float32).reshape(-1)
+        valid = np.ones(z.size, bool) if it % 3 else rng.random(z.size) > 0.2
+        for s in (np.float32(1), np.float32(-1)):
+            lab = np.empty(z.size, np.int32)
+            _, cand, cmask, _ = sweep(z, s, valid, nr, nc, conn == 8, codes, lab)
+            got, gmask = candidates(z * s, valid, nr, nc, conn == 8, codes)
+            assert np.array_equal(got, cand) and np.array_equal(gmask, cmask)

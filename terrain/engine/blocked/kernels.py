@@ -2,7 +2,7 @@
 
 Local step (one block, flat row-major *local* indices; inside one block the
 local order of cells equals their global order, so ties break the same way):
-:func:`cell_flags`, :func:`block_boundaries`, :func:`local_merge`,
+:func:`cell_flags`, :func:`block_edges`, :func:`local_merge`,
 :func:`basin_links`, :func:`global_descend` (steepest descent over the whole
 raster's neighbourhood, read from the halo), :func:`depression_roots`,
 :func:`descent_rows`.
@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from ..basins import before, descend, elder_rule, find, kbefore, upsert
+from ..basins import before, descend, elder_rule, find, kbefore
 
 EDGE = 1  # cell on the raster edge or next to nodata
 TERM = 2  # valid cell with a valid neighbour in another block
@@ -87,76 +87,56 @@ def cell_flags(vh, nr, nc, hr, hc, sides, dr, dc, all_valid, flags):
 
 
 @njit(cache=True)
-def block_boundaries(zk, valid, flags, has_nodata, nr, nc, fr, fc, lab, nb, emin, term, cap):
-    """Lowest pass between every two adjacent basins of one block.
+def block_edges(zk, valid, flags, nr, nc, lab, nb, emin, term, cand, cmask, groups):
+    """The merges' edges of one block, from its saddle candidates.
 
-    As ``persistence._boundaries`` (every neighbour pair inside the block
-    visited once, an edge weighs its later cell, an open-addressing table
-    keeps the lowest per basin pair) with the edge test read from ``flags``:
-    ``emin`` receives each basin's first ``EDGE`` cell and ``term`` is set
-    for basins holding a ``TERM`` cell. Returns (a, b, w, ok); ``ok`` is
-    False when the table of ``cap`` slots filled past half.
+    Only a saddle candidate (:func:`terrain.engine.basins.candidates`, the
+    block read as a raster of its own) can join two components: the earlier
+    neighbours of any other cell are one component before it enters. Each
+    candidate ``w`` gives an edge, weighing ``w``, from its own basin to the
+    basin of one neighbour per other group, as the whole-raster engine's
+    events do (:func:`terrain.engine.persistence._gather_groups`); the
+    union-find meets the same merges as with every basin pair's lowest
+    pass, in a fraction of the time. ``emin`` receives each basin's first
+    ``EDGE`` cell and ``term`` is set for basins holding a ``TERM`` cell.
+    ``lab`` holds every valid cell's label ``-(basin + 1)``. Returns
+    (a, b, w) in candidate order.
     """
-    hk = np.full(cap, -1, np.int64)
-    hw = np.empty(cap, np.int64)
-    hz = np.empty(cap, zk.dtype)
-    used = 0
-    nf = fr.size
-    conn8 = nf == 4
-    fast = not has_nodata and nc >= 3
-    for r in range(nr):
-        last_row = r == nr - 1
-        for c in range(nc):
-            i = r * nc + c
-            if not valid[i]:
-                continue
-            li = lab[i]
-            if fast and not last_row and 0 < c < nc - 1:
-                j = i + 1
-                if lab[j] != li:
-                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
-                if conn8:
-                    j = i + nc - 1
-                    if lab[j] != li:
-                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
-                j = i + nc
-                if lab[j] != li:
-                    used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
-                if conn8:
-                    j = i + nc + 1
-                    if lab[j] != li:
-                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
-            else:
-                for k in range(nf):
-                    rr = r + fr[k]
-                    cc = c + fc[k]
-                    if rr >= nr or cc < 0 or cc >= nc:
-                        continue
-                    j = rr * nc + cc
-                    if valid[j] and lab[j] != li:
-                        used += upsert(zk, hk, hw, hz, nb, i, j, li, lab[j])
-            if 2 * used > cap:
-                return hk[:0], hk[:0], hk[:0], False
-            f = flags[i]
-            if f:
-                b0 = -li - 1
-                if f & TERM:
-                    term[b0] = True
-                if f & EDGE:
-                    e = emin[b0]
-                    if e < 0 or zk[i] < zk[e] or (zk[i] == zk[e] and i < e):
-                        emin[b0] = i
-    ea = np.empty(used, np.int64)
-    eb = np.empty(used, np.int64)
-    ew = np.empty(used, np.int64)
+    n = nr * nc
+    for i in range(n):
+        f = flags[i]
+        if f and valid[i]:
+            b0 = -lab[i] - 1
+            if f & TERM:
+                term[b0] = True
+            if f & EDGE:
+                e = emin[b0]
+                if e < 0 or zk[i] < zk[e] or (zk[i] == zk[e] and i < e):
+                    emin[b0] = i
+    ring = np.array([-nc - 1, -nc, -nc + 1, -1, 1, nc - 1, nc, nc + 1])
+    ea = np.empty(3 * cand.size, np.int64)
+    eb = np.empty(3 * cand.size, np.int64)
+    ew = np.empty(3 * cand.size, np.int64)
     q = 0
-    for t in range(hk.size):
-        if hk[t] >= 0:
-            ea[q] = hk[t] // nb
-            eb[q] = hk[t] - ea[q] * nb
-            ew[q] = hw[t]
-            q += 1
-    return ea, eb, ew, True
+    for t in range(cand.size):
+        w = cand[t]
+        m = np.int64(cmask[t])
+        a = -lab[w] - 1
+        q0 = q
+        for g in range(4):
+            k = groups[m, g]
+            if k < 0:
+                break
+            b = -lab[w + ring[k]] - 1
+            dup = b == a
+            for v in range(q0, q):
+                dup = dup or eb[v] == b
+            if not dup:
+                ea[q] = a
+                eb[q] = b
+                ew[q] = w
+                q += 1
+    return ea[:q], eb[:q], ew[:q]
 
 
 @njit(cache=True, inline="always")

@@ -14,8 +14,8 @@ from typing import NamedTuple
 import numpy as np
 
 from ...errors import OptionError
-from ..basins import descend, resolve
-from ..grid import forward_offsets, offsets
+from ..basins import CODES4, CODES8, GROUPS4, GROUPS8, candidates, descend, resolve
+from ..grid import offsets
 from ..persistence import KINDS
 from . import elders  # relations: the elder of each pair
 from . import kernels as _k
@@ -104,7 +104,8 @@ def prepare_block(block_values, window, shape, kind, connectivity) -> Block:
 
 
 def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = False):
-    """Basins, their lowest passes and the boundary-aware merge of one block.
+    """Basins, the edges of their merges (from the saddle candidates) and the
+    boundary-aware merge of one block.
 
     Returns ``(lab, minc, merged, pointer)``: with ``pointers``, ``pointer``
     is a copy of each cell's steepest-descent pointer inside the block (what
@@ -113,23 +114,18 @@ def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = F
     nr, nc = blk.nr, blk.nc
     n = nr * nc
     dr, dc = offsets(connectivity)
-    fr, fc = forward_offsets(connectivity)
     has_nodata = not blk.valid.all()
     lab = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
     descend(blk.zk, blk.valid, has_nodata, nr, nc, dr, dc, lab)
     pointer = lab.astype(_code_dtype(n)) if pointers else None
     minc = resolve(blk.valid, lab)
     nb = minc.size
-    cap = 1024
-    while cap < 8 * nb:
-        cap *= 2
-    ok = False
-    while not ok:
-        emin = np.full(nb, -1, np.int64)
-        term = np.zeros(nb, np.bool_)
-        ea, eb, ew, ok = _k.block_boundaries(blk.zk, blk.valid, blk.flags, has_nodata, nr, nc, fr, fc,
-                                             lab, max(nb, 1), emin, term, cap)
-        cap *= 4
+    codes, groups = (CODES8, GROUPS8) if connectivity == 8 else (CODES4, GROUPS4)
+    cand, cmask = candidates(blk.zk, blk.valid, nr, nc, connectivity == 8, codes)
+    emin = np.full(nb, -1, np.int64)
+    term = np.zeros(nb, np.bool_)
+    ea, eb, ew = _k.block_edges(blk.zk, blk.valid, blk.flags, nr, nc, lab, max(nb, 1), emin, term,
+                                cand, cmask, groups)
     if outlet:
         has = np.flatnonzero(emin >= 0)
         ea = np.concatenate([ea, has])

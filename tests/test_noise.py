@@ -292,6 +292,24 @@ def test_compiled_normals_are_numpys_numbers_and_leave_its_state(seed, size):
                           g1.standard_normal(9, dtype=np.float32))
 
 
+@pytest.mark.parametrize("seed", [0, 5, 101])
+@pytest.mark.parametrize("size", [1, 3, (5, 7), (1024, 1024)])
+@pytest.mark.parametrize("half_word", [False, True])
+def test_compiled_float64_normals_are_numpys_numbers_and_leave_its_state(seed, size, half_word):
+    # reference: numpy's Generator.standard_normal() (float64; a reference library); a
+    # half word left by an earlier float32 draw is kept, as numpy keeps it
+    from terrain.noise.normals import standard_normal64
+
+    g1, g2 = np.random.default_rng(seed), np.random.default_rng(seed)
+    if half_word:
+        g1.standard_normal(1, dtype=np.float32)
+        g2.standard_normal(1, dtype=np.float32)
+    want = g1.standard_normal(size)
+    got = standard_normal64(g2, size)
+    assert got.dtype == np.float64 and np.array_equal(got, want)
+    assert g2.bit_generator.state == g1.bit_generator.state
+
+
 def test_compiled_normals_defer_to_numpy_for_other_generators_and_half_words():
     from terrain.noise.normals import standard_normal32
 
@@ -311,4 +329,7 @@ def test_compiled_normals_draw_more_words_when_the_first_batch_runs_out(monkeypa
     g1, g2 = np.random.default_rng(12), np.random.default_rng(12)
     assert np.array_equal(normals.standard_normal32(g2, 5001),
                           g1.standard_normal(5001, dtype=np.float32))
+    assert g2.bit_generator.state == g1.bit_generator.state
+    g1, g2 = np.random.default_rng(13), np.random.default_rng(13)
+    assert np.array_equal(normals.standard_normal64(g2, 5001), g1.standard_normal(5001))
     assert g2.bit_generator.state == g1.bit_generator.state

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import OptionError
-from .normals import standard_normal32
+from .normals import standard_normal32, standard_normal64
 
 __all__ = ["Kernel", "KERNELS", "kernel"]
 
@@ -128,9 +128,8 @@ def _epanechnikov_quantile(u):
 
 # -- fast direct samplers ------------------------------------------------------------
 def _gauss_sample(rng, size, dtype):
-    if np.dtype(dtype) == np.float32:  # numpy's numbers, drawn in compiled code
-        return standard_normal32(rng, size)
-    return rng.standard_normal(size, dtype=dtype)
+    # numpy's numbers, drawn in compiled code
+    return (standard_normal32 if np.dtype(dtype) == np.float32 else standard_normal64)(rng, size)
 
 
 def _uniform_sample(rng, size, dtype):

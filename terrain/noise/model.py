@@ -50,6 +50,7 @@ import numpy as np
 from ..errors import OptionError
 from .fields import COVARIANCES, ConvolutionKernel
 from .kernels import Kernel, kernel
+from .normals import standard_normal64
 
 __all__ = ["ErrorModel", "ErrorSampler", "rmse_from", "realisation_rng", "tile_rng", "NOISE_TILE",
            "LE90_FACTOR", "A95_FACTOR", "DRAWS", "ACCURACY_HINT"]
@@ -266,7 +267,7 @@ class ErrorSampler:
                 tile = None if cache is None else cache.get((tr, tc))
                 if tile is None or len(tile) < rows:
                     rng = tile_rng(seed, i, stream, tr, tc)
-                    tile = rng.standard_normal((rows, t)) if normal else \
+                    tile = standard_normal64(rng, (rows, t)) if normal else \
                         self._kernel_draw(rng, (rows, t), k)
                     if cache is not None:
                         cache[(tr, tc)] = tile

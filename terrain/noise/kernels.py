@@ -128,8 +128,12 @@ def _epanechnikov_quantile(u):
 
 # -- fast direct samplers ------------------------------------------------------------
 def _gauss_sample(rng, size, dtype):
-    # numpy's numbers, drawn in compiled code
-    return (standard_normal32 if np.dtype(dtype) == np.float32 else standard_normal64)(rng, size)
+    # numpy's numbers, drawn in compiled code (another dtype: numpy's answer)
+    if dtype is np.float32 or np.dtype(dtype) == np.float32:
+        return standard_normal32(rng, size)
+    if np.dtype(dtype) == np.float64:
+        return standard_normal64(rng, size)
+    return rng.standard_normal(size, dtype=dtype)
 
 
 def _uniform_sample(rng, size, dtype):

@@ -1,4 +1,4 @@
-"""Standard normal draws in compiled code: numpy's own float32 numbers, 2.5x sooner.
+"""Standard normal draws in compiled code: numpy's own numbers, 2-2.5x sooner.
 
 A realisation's error is mostly float32 standard normals (the Gaussian
 kernel's draw, one per cell). numpy's ``Generator.standard_normal(dtype=
@@ -11,10 +11,16 @@ state: it takes PCG64's raw 64-bit outputs in one call
 ``next_uint32`` would hand out (low half first), and runs numpy's float32
 ziggurat over them in numba: the same tables, the same float32 arithmetic,
 the wedge test against a float64 exponential as numpy's C source has it.
-Parity with numpy is a test (``tests/test_noise.py``), so a numpy or numba
-release that changed either side would be caught, not silently followed.
+:func:`standard_normal64` does the same for float64 (one 64-bit word per
+value: a correlated field's white noise). Parity with numpy is a test
+(``tests/test_noise.py``), so a numpy or numba release that changed
+either side would be caught, not silently followed. The match assumes
+numpy's C ziggurat is compiled without fused multiply-adds, as on x86-64;
+the parity tests would show a platform where it is not.
 
-Memory: the float32 output and about 4.1 bytes per value of raw words.
+Memory per value, while a draw runs: the output and the raw words, 8.25
+bytes for float32 and 16.5 for float64 (numpy's own: 4 and 8). cairn draws
+a 256 x 256 noise tile at a time.
 
 References
 ----------
@@ -31,7 +37,7 @@ from __future__ import annotations
 import numpy as np
 from numba import float32, float64, njit, uint32, uint64
 
-try:  # numpy's 256-layer float32 ziggurat tables, as numba ships them for its
+try:  # numpy's 256-layer ziggurat tables (float32, float64), as numba ships them for its
     # own port of numpy's generator methods (a private module: without it,
     # numpy draws)
     from numba.np.random._constants import (
@@ -159,18 +165,60 @@ def _ziggurat64(raw, out):
 
 
 def _first_batch(n: int) -> int:
-    """Raw 64-bit outputs drawn first for ``n`` values: half a word each, and
-    a margin for the ~1.2% of draws that take more words (more are drawn if
-    short)."""
+    """Raw 64-bit outputs drawn first for ``n`` float32 values: half a word
+    each, and a margin for the ~1.5% of draws that take more words (more are
+    drawn if short; float64 draws take twice as many)."""
     return n // 2 + n // 32 + 64
+
+
+def _draw(rng: np.random.Generator, size, dtype, kernel, words_per_value: int):
+    """Fill an array of ``size`` with ``kernel`` over ``rng``'s raw words and
+    leave ``rng`` as numpy's own draw would: all under the bit generator's
+    lock, as numpy draws, the words taken from a copy of its state (its
+    ``random_raw`` takes the lock itself). ``words_per_value``: 32-bit words
+    (1, float32) or 64-bit words (2, float64) per value. None when numpy
+    must draw: another bit generator, the tables missing, ``size`` None, or
+    half a word pending before a float32 draw."""
+    bg = rng.bit_generator
+    if type(bg) is not np.random.PCG64 or not TABLES or size is None:
+        return None
+    with bg.lock:
+        state = bg.state
+        if words_per_value == 1 and state["has_uint32"]:
+            return None
+        out = np.empty(size, dtype)
+        flat = out.reshape(-1)
+        copy = np.random.PCG64(0)
+        copy.state = state
+        raw = copy.random_raw(words_per_value * _first_batch(flat.size))
+        while True:
+            k = kernel(raw, flat)
+            if k >= 0:
+                break
+            raw = np.concatenate([raw, copy.random_raw(raw.size // 8 + 64)])
+        copy.state = state
+        after = state
+        if words_per_value == 1:
+            # (k + 1) // 2 outputs taken, the high half of the last one kept when k is odd
+            copy.advance((k + 1) // 2)
+            after = copy.state
+            last = int(raw[(k - 1) >> 1] >> np.uint64(32)) if k else state["uinteger"]
+            after["has_uint32"], after["uinteger"] = k & 1, last
+        elif k:
+            # k outputs taken; a half word kept from an earlier float32 draw stays
+            copy.advance(k)
+            after = copy.state
+            after["has_uint32"], after["uinteger"] = state["has_uint32"], state["uinteger"]
+        bg.state = after
+    return out
 
 
 def standard_normal32(rng: np.random.Generator, size) -> np.ndarray:
     """``rng.standard_normal(size, dtype=np.float32)``: the same values, and
     ``rng`` left in the same state, drawn in compiled code.
 
-    A generator other than PCG64, or one holding half of a 64-bit output
-    from an earlier 32-bit draw, is drawn by numpy itself.
+    numpy itself draws for a generator other than PCG64, one holding half of
+    a 64-bit output from an earlier 32-bit draw, or ``size`` None (a scalar).
 
     References
     ----------
@@ -184,35 +232,21 @@ def standard_normal32(rng: np.random.Generator, size) -> np.ndarray:
     >>> bool(np.array_equal(a, b))
     True
     """
-    bg = rng.bit_generator
-    state = bg.state if type(bg) is np.random.PCG64 else None
-    if state is None or state["has_uint32"] or not TABLES:
-        return rng.standard_normal(size, dtype=np.float32)
-    out = np.empty(size, np.float32)
-    flat = out.reshape(-1)
-    n = flat.size
-    raw = bg.random_raw(_first_batch(n))
-    while True:
-        k = _ziggurat(raw, flat)
-        if k >= 0:
-            break
-        raw = np.concatenate([raw, bg.random_raw(raw.size // 8 + 64)])
-    # the generator as numpy's draw leaves it: (k + 1) // 2 outputs taken, and
-    # the high half of the last one kept when k is odd
-    bg.state = state
-    bg.advance((k + 1) // 2)
-    after = bg.state
-    last = int(raw[(k - 1) >> 1] >> np.uint64(32)) if k else state["uinteger"]
-    after["has_uint32"], after["uinteger"] = k & 1, last
-    bg.state = after
-    return out
+    out = _draw(rng, size, np.float32, _ziggurat, 1)
+    return rng.standard_normal(size, dtype=np.float32) if out is None else out
 
 
 def standard_normal64(rng: np.random.Generator, size) -> np.ndarray:
     """``rng.standard_normal(size)`` (float64): the same values, and ``rng``
     left in the same state, drawn in compiled code from one 64-bit word per
-    value (and a few more for the ~1.2% of draws past the ziggurat's
-    boxes). A generator other than PCG64 is drawn by numpy itself.
+    value (and a few more for the ~1.5% of draws outside the ziggurat's
+    boxes). numpy itself draws for a generator other than PCG64 or ``size``
+    None.
+
+    References
+    ----------
+    .. [1] Marsaglia, G., Tsang, W. W. (2000). The ziggurat method for
+       generating random variables. J. Stat. Softw. 5(8).
 
     Examples
     --------
@@ -220,23 +254,5 @@ def standard_normal64(rng: np.random.Generator, size) -> np.ndarray:
     >>> bool(np.array_equal(a, np.random.default_rng(7).standard_normal(5)))
     True
     """
-    bg = rng.bit_generator
-    if type(bg) is not np.random.PCG64 or not TABLES:
-        return rng.standard_normal(size)
-    state = bg.state
-    out = np.empty(size, np.float64)
-    flat = out.reshape(-1)
-    n = flat.size
-    raw = bg.random_raw(2 * _first_batch(n))  # a whole word per value
-    while True:
-        k = _ziggurat64(raw, flat)
-        if k >= 0:
-            break
-        raw = np.concatenate([raw, bg.random_raw(raw.size // 8 + 64)])
-    # k 64-bit outputs taken; a half word kept from an earlier 32-bit draw stays
-    bg.state = state
-    bg.advance(k)
-    after = bg.state
-    after["has_uint32"], after["uinteger"] = state["has_uint32"], state["uinteger"]
-    bg.state = after
-    return out
+    out = _draw(rng, size, np.float64, _ziggurat64, 2)
+    return rng.standard_normal(size) if out is None else out

@@ -87,14 +87,15 @@ def cell_flags(vh, nr, nc, hr, hc, sides, dr, dc, all_valid, flags):
 
 
 @njit(cache=True)
-def block_edges(zk, valid, flags, nr, nc, lab, nb, emin, term, cand, cmask, groups):
+def block_edges(zk, valid, flags, nr, nc, lab, emin, term, cand, cmask, groups):
     """The merges' edges of one block, from its saddle candidates.
 
     Only a saddle candidate (:func:`terrain.engine.basins.candidates`, the
     block read as a raster of its own) can join two components: the earlier
     neighbours of any other cell are one component before it enters. Each
     candidate ``w`` gives an edge, weighing ``w``, from its own basin to the
-    basin of one neighbour per other group, as the whole-raster engine's
+    basin of one neighbour of each group of its earlier neighbours (its own
+    basin and basins already listed left out), as the whole-raster engine's
     events do (:func:`terrain.engine.persistence._gather_groups`); the
     union-find meets the same merges as with every basin pair's lowest
     pass, in a fraction of the time. ``emin`` receives each basin's first

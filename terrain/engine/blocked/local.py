@@ -1,5 +1,5 @@
 """The local step (one task per block, independent): steepest-descent basins,
-lowest passes and the elder rule inside the block, final pairs settled and a
+merge edges at the saddle candidates and the elder rule inside the block, final pairs settled and a
 reduced graph of the rest handed up (:func:`local`); with ``termini``, where
 each boundary cell's descent ends (:func:`descend_block`).
 
@@ -124,8 +124,8 @@ def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = F
     cand, cmask = candidates(blk.zk, blk.valid, nr, nc, connectivity == 8, codes)
     emin = np.full(nb, -1, np.int64)
     term = np.zeros(nb, np.bool_)
-    ea, eb, ew = _k.block_edges(blk.zk, blk.valid, blk.flags, nr, nc, lab, max(nb, 1), emin, term,
-                                cand, cmask, groups)
+    ea, eb, ew = _k.block_edges(blk.zk, blk.valid, blk.flags, nr, nc, lab, emin, term, cand, cmask,
+                                groups)
     if outlet:
         has = np.flatnonzero(emin >= 0)
         ea = np.concatenate([ea, has])

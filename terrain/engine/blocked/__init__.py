@@ -20,8 +20,8 @@ The raster is cut into a grid of blocks. Three pure steps, each on arrays:
    (the block read as a raster of its own) and the elder-rule union-find
    of ``persistence.py``, with one change. A basin is *terminal* when it
    holds a cell with a valid neighbour in another block (read from the
-   halo; the virtual outlet is terminal in every block). When two components meet at cell ``w`` and the younger
-   one is not terminal, it dies at ``w`` for good: no cell outside the
+   halo; the virtual outlet is terminal in every block). When two
+   components meet at cell ``w`` and the younger one is not terminal, it dies at ``w`` for good: no cell outside the
    block touches it, and its partner only gets older when more cells are
    added. Such pairs are final and leave the block with the summary. A
    merge in which the younger component is terminal is not decided

@@ -15,23 +15,23 @@ Algorithm
 ---------
 The raster is cut into a grid of blocks. Three pure steps, each on arrays:
 
-1. :func:`local` (one task per block, independent): steepest-descent
-   basins *inside the block*, the merge edges at its saddle candidates
-   (the block read as a raster of its own) and the elder-rule union-find
-   of ``persistence.py``, with one change. A basin is *terminal* when it
-   holds a cell with a valid neighbour in another block (read from the
-   halo; the virtual outlet is terminal in every block). When two
-   components meet at cell ``w`` and the younger one is not terminal, it dies at ``w`` for good: no cell outside the
-   block touches it, and its partner only gets older when more cells are
-   added. Such pairs are final and leave the block with the summary. A
-   merge in which the younger component is terminal is not decided
-   locally, since a merge in another block may change which side is elder;
-   it is handed up as an edge of a *reduced graph* whose vertices are the
-   terminal basins and the birth basin of every older closed component
-   that joins a terminal one (its birth may win the global elder rule).
-   As in distributed merge trees [1]_, a block settles what its boundary
-   cannot affect and hands up only the part of its merge tree that
-   touches the block boundary.
+1. :func:`local` (one task per block, independent): steepest-descent basins
+   *inside the block*, the merge edges at its saddle candidates (the block
+   read as a raster of its own) and the elder-rule union-find of
+   ``persistence.py``, with one change. A basin is *terminal* when it holds
+   a cell with a valid neighbour in another block (read from the halo; the
+   virtual outlet is terminal in every block). When two components meet at
+   cell ``w`` and the younger one is not terminal, it dies at ``w`` for
+   good: no cell outside the block touches it, and its partner only gets
+   older when more cells are added. Such pairs are final and leave the
+   block with the summary. A merge in which the younger component is
+   terminal is not decided locally, since a merge in another block may
+   change which side is elder; it is handed up as an edge of a *reduced
+   graph* whose vertices are the terminal basins and the birth basin of
+   every older closed component that joins a terminal one (its birth may
+   win the global elder rule). As in distributed merge trees [1]_, a block
+   settles what its boundary cannot affect and hands up only the part of
+   its merge tree that touches the block boundary.
 2. :func:`glue` (global, one task): the reduced graphs of all blocks plus
    the cross-block neighbour edges (one per pair of facing boundary
    cells, built from the blocks' boundary strips, lowest kept per vertex

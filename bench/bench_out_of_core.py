@@ -251,6 +251,7 @@ ONE_REALISATION = """
 import json, sys, time
 from terrain import CreditJob, ErrorModel, run_ensemble
 from terrain.io import read_dem, scratch_folder
+from terrain.layout import plan_layout
 if __name__ == "__main__":
     t = {}
     with scratch_folder() as f:
@@ -259,7 +260,8 @@ if __name__ == "__main__":
         t["read_s"] = time.perf_counter() - t0
         model = ErrorModel(rmse=1.0)
         t0 = time.perf_counter()
-        job = CreditJob("depressions").resolved(dem, model, block=2048)
+        job = CreditJob("depressions")
+        job = job.resolved(dem, model, layout=plan_layout(dem.shape, 2048, job=job))
         t["regions_s"] = time.perf_counter() - t0
         res = run_ensemble(dem, job, model, realisations=1, seed=1, block=2048, workers=2,
                            backend="processes")

@@ -2028,11 +2028,19 @@ def test_a_geographic_grid_beyond_a_pole_is_refused(cairn, tmp_path, north, ok):
 @pytest.mark.parametrize("delay", [0.3, 0.7, 1.2, 2.0])
 def test_ctrl_c_while_cairn_starts(tmp_path, delay):
     dem = write_tif(tmp_path / "d.tif", smooth_terrain((40, 40), seed=1))
+    # Python's fault handler on: a run that hangs is sent SIGABRT and every thread's
+    # stack comes back in the failure (one hang in ~200 tries was seen, not reproduced)
     p = subprocess.Popen(CLI + ["peaks", str(dem), "-o", str(tmp_path / "o"), *RUN],
-                         stderr=subprocess.PIPE, text=True)
+                         stderr=subprocess.PIPE, text=True,
+                         env={**os.environ, "PYTHONFAULTHANDLER": "1"})
     time.sleep(delay)
     p.send_signal(signal.SIGINT)
-    _, err = p.communicate(timeout=120)
+    try:
+        _, err = p.communicate(timeout=60)
+    except subprocess.TimeoutExpired:
+        p.send_signal(signal.SIGABRT)
+        _, err = p.communicate(timeout=30)
+        pytest.fail(f"still running 60 s after one Ctrl-C; its threads:\n{err}")
     no_traceback(err)
     if p.returncode == 0:  # it finished first (a fast machine): nothing to check
         return

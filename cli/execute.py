@@ -203,14 +203,20 @@ def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline:
                    f"{' at most' if ex.target_se is not None else ''}, seed {ex.seed}", err=True)
     # the plotting libraries load, and the map's hillshade is made, while the realisations
     # run (in worker processes)
-    threading.Thread(target=_prepare_drawing, args=(dem, layout), name="cairn-prepare-drawing",
-                     daemon=True).start()
+    prep = threading.Thread(target=_prepare_drawing, args=(dem, layout),
+                            name="cairn-prepare-drawing", daemon=True)
+    prep.start()
     try:
         with progress_bar(enabled=not opts["quiet"] and sys.stderr.isatty(), label=label) as bar:
-            return run_ensemble(dem, job, model, progress=bar,
-                                **{k: getattr(ex, k) for k in EXEC_KEYS})
+            result = run_ensemble(dem, job, model, progress=bar,
+                                  **{k: getattr(ex, k) for k in EXEC_KEYS})
     except RunInterrupted as exc:
         interrupted(exc, ex.checkpoint)
+    # its imports end before the writing's begin: CPython 3.11 can deadlock when
+    # three threads import at once (seen: this thread importing adjustText, the
+    # writer thread pyogrio's dependencies, the main thread adjustText again)
+    prep.join()
+    return result
 
 
 def interrupted(exc: RunInterrupted, checkpoint=None):

@@ -176,6 +176,20 @@ class _Clock:
         return out
 
 
+def _import_writers() -> None:
+    """The modules the writer thread imports on first use, imported here in
+    the caller's thread first: two threads importing at once can deadlock on
+    CPython 3.11's module locks (seen once in ~200 runs, with a third thread
+    importing too)."""
+    import sqlite3  # noqa: F401
+    import zipfile  # noqa: F401
+
+    import pyogrio  # noqa: F401
+    import rasterio  # noqa: F401
+    import rasterio.shutil  # noqa: F401
+    import rasterio.transform  # noqa: F401
+
+
 class _Beside:
     """Run ``fn()`` in a second thread while the block runs; on leaving, wait for
     it and raise what it raised. GDAL and the GeoPackage driver release the
@@ -199,6 +213,7 @@ class _Beside:
             self.error = exc
 
     def __enter__(self):
+        _import_writers()
         self.thread.start()
         return self
 

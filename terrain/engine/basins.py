@@ -363,6 +363,18 @@ def _fast_row(z, s, o, nc, conn8, lab, mrow):
 
 
 @njit(cache=True, inline="always")
+def _full_rows(valid, nr, nc):
+    """Per row, whether every cell of it is valid."""
+    rowok = np.empty(nr, np.bool_)
+    for r in range(nr):
+        ok = True
+        for i in range(r * nc, r * nc + nc):
+            ok = ok and valid[i]
+        rowok[r] = ok
+    return rowok
+
+
+@njit(cache=True, inline="always")
 def _mask_row(z, o, nc, mrow):
     """:func:`_fast_row`'s masks of earlier neighbours alone (keys ``z``)."""
     up = z[o - nc:o]
@@ -384,12 +396,7 @@ def candidates(zk, valid, nr, nc, conn8, codes):
     cand = np.empty(max(64, n // 32), np.int64)
     cmask = np.empty(cand.size, np.uint8)
     mrow = np.zeros(nc, np.uint8)
-    rowok = np.empty(nr, np.bool_)
-    for r in range(nr):
-        ok = True
-        for i in range(r * nc, r * nc + nc):
-            ok = ok and valid[i]
-        rowok[r] = ok
+    rowok = _full_rows(valid, nr, nc)
     one = zk.dtype.type(1)
     ncand = 0
     for r in range(nr):
@@ -440,12 +447,7 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
     nmin = 0
     ncand = 0
     nedge = 0
-    rowok = np.empty(nr, np.bool_)
-    for r in range(nr):
-        ok = True
-        for i in range(r * nc, r * nc + nc):
-            ok = ok and valid[i]
-        rowok[r] = ok
+    rowok = _full_rows(valid, nr, nc)
     for r in range(nr):
         minc = _grow(minc, nmin, nc)
         cand = _grow(cand, ncand, nc)

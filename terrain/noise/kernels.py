@@ -129,9 +129,10 @@ def _epanechnikov_quantile(u):
 # -- fast direct samplers ------------------------------------------------------------
 def _gauss_sample(rng, size, dtype):
     # numpy's numbers, drawn in compiled code (another dtype: numpy's answer)
-    if dtype is np.float32 or np.dtype(dtype) == np.float32:
+    dt = np.dtype(dtype)
+    if dt == np.float32:
         return standard_normal32(rng, size)
-    if np.dtype(dtype) == np.float64:
+    if dt == np.float64:
         return standard_normal64(rng, size)
     return rng.standard_normal(size, dtype=dtype)
 

@@ -9,8 +9,9 @@ folds them in realisation order.
 DEM and error model reach each worker once, through the pool initialiser).
 ``"dask"`` uses a ``dask.distributed`` client, to a running scheduler
 (``scheduler="tcp://host:port"``) or to a ``LocalCluster`` started here; the
-context is scattered once and Dask reschedules the tasks of a worker that
-dies. A worker pool that cannot start or breaks ends the run with a
+context is scattered to every worker and Dask reschedules the tasks of a
+worker that dies (scattering the context again when its last copy died
+with it). A worker pool that cannot start or breaks ends the run with a
 :class:`~terrain.errors.WorkerError` at once; nothing waits forever: on Dask
 (:class:`DaskWatch`) a cluster without workers for
 :data:`WORKER_WAIT_SECONDS` (none joined, or all left), a lost scheduler and
@@ -46,6 +47,7 @@ __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
 WORKER_WAIT_SECONDS = 60.0  # a Dask cluster without any worker (none joined, all left), at most
 POLL_SECONDS = 0.5  # waits on Dask look at signals, workers and the scheduler this often
+RESCATTERS = 8  # a whole-grid Dask run scatters its context again this often at most
 _ADDRESS = re.compile(r"^(?:(?P<scheme>[a-z]+)://)?(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)"
                       r":(?P<port>\d{1,5})/?$")
 _SCHEMES = ("tcp", "tls", "ws", "wss", "ucx")
@@ -550,9 +552,13 @@ class DaskWatch:
             return
         if not connected:
             raise self._lost("no connection")
-        raise WorkerError(f"{_where(self.scheduler)}: all Dask workers left the cluster (none for "
-                          f"{WORKER_WAIT_SECONDS:g} s); what was done is in the checkpoint -- "
-                          "start workers and rerun with {resume}", "resume")
+        raise self.no_workers()
+
+    def no_workers(self) -> WorkerError:
+        """The error for a cluster left without workers for :data:`WORKER_WAIT_SECONDS`."""
+        return WorkerError(f"{_where(self.scheduler)}: all Dask workers left the cluster (none "
+                           f"for {WORKER_WAIT_SECONDS:g} s); what was done is in the checkpoint "
+                           "-- start workers and rerun with {resume}", "resume")
 
     def _lost(self, why: str) -> SchedulerError:
         return SchedulerError(f"{_where(self.scheduler)}: lost the Dask scheduler ({why}); what "
@@ -600,23 +606,40 @@ def _dask(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
 
 
 def _dask_chunks(client, watch: DaskWatch, ctx, plan, workers, stop) -> Iterator[tuple]:
-    """The whole-grid Dask backend's chunks, in completion order (see :func:`_dask`)."""
+    """The whole-grid Dask backend's chunks, in completion order (see :func:`_dask`).
+
+    The context is scattered to every worker, but Dask's active memory manager
+    keeps as few copies of a key as its waiting tasks need, so the last copy can
+    sit on a worker that then dies; Dask cancels the chunks that needed it
+    ("lost dependencies") rather than recompute data it was handed. The context
+    is then scattered again and every pending chunk resubmitted (a chunk's
+    result depends only on the context and its realisations, so the layers do
+    not change), at most :data:`RESCATTERS` times a run.
+    """
     try:
         nworkers = max(1, len(client.scheduler_info().get("workers", {})) or workers)
-        ctx_f = client.scatter(ctx, broadcast=True)
     except Exception as exc:
         raise watch.error(exc) from None
     token = hashlib.sha1(f"{id(ctx)}-{time.time_ns()}".encode()).hexdigest()[:10]
     window = _Window(2 * nworkers)
     pending: dict = {}  # future -> start
+    chunks: dict = {}  # start -> the plan's chunk, while it is pending
+    state = {"ctx": _scatter(client, watch, ctx), "round": 0}
+    if state["ctx"] is None:
+        return
+
+    def submit(nxt):
+        key = f"cairn-{token}-{state['round']}-{nxt[0]}"
+        pending[client.submit(run_chunk, state["ctx"], *nxt, key=key, retries=3,
+                              pure=False)] = nxt[0]
 
     def top_up():
         while window.room(pending) and not stop():
             nxt = next(plan, None)
             if nxt is None:
                 return
-            pending[client.submit(run_chunk, ctx_f, *nxt, key=f"cairn-{token}-{nxt[0]}",
-                                  retries=3, pure=False)] = nxt[0]
+            chunks[nxt[0]] = nxt
+            submit(nxt)
 
     top_up()
     while pending:
@@ -624,12 +647,42 @@ def _dask_chunks(client, watch: DaskWatch, ctx, plan, workers, stop) -> Iterator
         if done is None:  # Ctrl-C or SIGTERM: the run saves what it folded
             return
         for fut in sorted(done, key=pending.get):
-            res = watch.result(fut)
-            del pending[fut]
+            try:
+                res = watch.result(fut)
+            except WorkerError:
+                if state["ctx"].status == "finished" or state["round"] >= RESCATTERS:
+                    raise
+                for f in pending:
+                    f.release()
+                starts = sorted(pending.values())
+                pending.clear()
+                state["round"] += 1
+                state["ctx"] = _scatter(client, watch, ctx)
+                if state["ctx"] is None:  # Ctrl-C or SIGTERM while no worker was there
+                    return
+                for a in starts:
+                    submit(chunks[a])
+                break
+            del pending[fut], chunks[res[0]]
             fut.release()
             window.yielded(res[0])
             yield res
         top_up()
+
+
+def _scatter(client, watch: DaskWatch, ctx):
+    """``ctx`` scattered to every worker, once there is one (the wait is
+    :meth:`DaskWatch.check`'s); None when ``stop()`` became true first."""
+    while True:
+        try:
+            client.wait_for_workers(1, timeout=POLL_SECONDS)
+            return client.scatter(ctx, broadcast=True, hash=False)
+        except (TimeoutError, asyncio.TimeoutError):
+            if watch.stop():
+                return None
+            watch.check()
+        except Exception as exc:
+            raise watch.error(exc) from None
 
 
 BACKENDS: dict[str, Callable[..., Iterator[tuple]]] = {

@@ -364,3 +364,41 @@ def test_compiled_normals_draw_more_words_when_the_first_batch_runs_out(monkeypa
     g1, g2 = np.random.default_rng(13), np.random.default_rng(13)
     assert np.array_equal(normals.standard_normal64(g2, 5001), g1.standard_normal(5001))
     assert g2.bit_generator.state == g1.bit_generator.state
+
+
+def test_compiled_normals_defer_to_numpy_on_a_big_endian_machine(monkeypatch):
+    # the float32 kernel reads raw words in memory order, numpy's order only on a
+    # little-endian machine; elsewhere numpy draws (float64 reads whole words: kept)
+    from terrain.noise import normals
+
+    calls = []
+    monkeypatch.setattr(normals, "LITTLE_ENDIAN", False)
+    monkeypatch.setattr(normals, "_ziggurat", lambda raw, out: calls.append(1) or -1)
+    g1, g2 = np.random.default_rng(21), np.random.default_rng(21)
+    assert np.array_equal(normals.standard_normal32(g2, 777),
+                          g1.standard_normal(777, dtype=np.float32))
+    assert not calls and g2.bit_generator.state == g1.bit_generator.state
+    assert np.array_equal(normals.standard_normal64(g2, 777), g1.standard_normal(777))
+
+
+def test_boxed_values_are_the_fast_path_of_every_word():
+    # the vectorised pass against the word-by-word fast path (numpy's ziggurat, its
+    # first branch): a value inside the boxes, NaN outside them
+    from terrain.noise import normals
+
+    raw = np.random.PCG64(8).random_raw(50_000)
+    xs = np.empty(2 * raw.size, np.float32)
+    normals._boxed(raw, 0, xs)
+    part = np.full(4096, 7.0, np.float32)
+    normals._boxed(raw, xs.size - 1000, part)  # the stream's last 1000 words; the rest untouched
+    assert np.array_equal(part[:1000], xs[-1000:], equal_nan=True) and (part[1000:] == 7).all()
+    words = np.stack([raw & np.uint64(0xFFFFFFFF), raw >> np.uint64(32)], axis=1).reshape(-1)
+    words = words.astype(np.uint32)
+    idx = words & 0xFF
+    rabs = (words >> 9) & 0x7FFFFF
+    x = (rabs.astype(np.float32) * normals.wi_float[idx]).astype(np.float32)
+    x = np.where((words >> 8) & 1, -x, x)
+    inside = rabs < normals.ki_float[idx]
+    assert np.array_equal(np.isnan(xs), ~inside)
+    assert np.array_equal(xs[inside], x[inside])
+    assert 0.98 < inside.mean() < 0.99  # ~98.5% of words end in the boxes (measured here)

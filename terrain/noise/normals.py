@@ -1,4 +1,4 @@
-"""Standard normal draws in compiled code: numpy's own numbers, 2-2.5x sooner.
+"""Standard normal draws in compiled code: numpy's own numbers, 2.3-3.3x sooner.
 
 A realisation's error is mostly float32 standard normals (the Gaussian
 kernel's draw, one per cell). numpy's ``Generator.standard_normal(dtype=
@@ -18,9 +18,11 @@ either side would be caught, not silently followed. The match assumes
 numpy's C ziggurat is compiled without fused multiply-adds, as on x86-64;
 the parity tests would show a platform where it is not.
 
-Memory per value, while a draw runs: the output and the raw words, 8.25
-bytes for float32 and 16.5 for float64 (numpy's own: 4 and 8). cairn draws
-a 256 x 256 noise tile at a time.
+Memory per value, while a draw runs: the output and the raw words, and for
+float32 each word's boxed value (numpy's fast path, computed for every word
+at once, vectorised, before the values are taken in order): 12.4 bytes for
+float32 and 16.5 for float64 (numpy's own: 4 and 8). cairn draws a
+256 x 256 noise tile at a time.
 
 References
 ----------
@@ -33,6 +35,8 @@ References
 """
 
 from __future__ import annotations
+
+import sys
 
 import numpy as np
 from numba import float32, float64, njit, uint32, uint64
@@ -63,6 +67,8 @@ except ImportError:  # pragma: no cover - a numba that moved them
 
 __all__ = ["standard_normal32", "standard_normal64"]
 
+LITTLE_ENDIAN = sys.byteorder == "little"  # the float32 kernel reads raw words in memory order
+
 
 @njit(cache=True, inline="always")
 def _u32(raw, k):
@@ -78,43 +84,86 @@ def _f32(raw, k):
 
 
 @njit(cache=True)
+def _boxed(raw, k0, xs):
+    """The boxed value of words ``k0, k0 + 1, ...`` (as many as ``xs`` holds,
+    to the end of the stream): the word's value when it falls inside the
+    ziggurat's boxes (numpy's fast path, ~98.5% of words), NaN where it does
+    not; one pass without branches that the compiler vectorises. ``raw`` is
+    read as its 32-bit words in memory order, which on a little-endian
+    machine is numpy's order (low half of each output first; :func:`_draw`
+    lets numpy draw on any other)."""
+    words = raw.view(np.uint32)
+    for j in range(min(xs.size, words.size - k0)):
+        r = words[k0 + j]
+        idx = r & 0xFF
+        rabs = (r >> 9) & 0x007FFFFF
+        x = float32(float32(rabs) * wi_float[idx])
+        x = -x if (r >> 8) & 0x1 else x
+        xs[j] = x if rabs < ki_float[idx] else np.float32(np.nan)
+
+
+@njit(cache=True)
+def _unboxed(raw, k, lim):
+    """numpy's float32 ziggurat from word ``k`` on, once that word fell
+    outside the boxes: ``(value, the next word)``, or ``(0, -1)`` when the
+    words ran out first."""
+    while True:
+        if k + 3 > lim:
+            return float32(0), -1
+        r = _u32(raw, k)
+        k += 1
+        idx = r & 0xFF
+        rabs = (r >> 9) & 0x007FFFFF
+        x = float32(float32(rabs) * wi_float[idx])
+        if (r >> 8) & 0x1:
+            x = -x
+        if rabs < ki_float[idx]:
+            return x, k
+        if idx == 0:  # the tail beyond r
+            while True:
+                if k + 2 > lim:
+                    return float32(0), -1
+                xx = float32(-ziggurat_nor_inv_r_f * float32(np.log1p(-_f32(raw, k))))
+                yy = float32(-float32(np.log1p(-_f32(raw, k + 1))))
+                k += 2
+                if float32(yy + yy) > float32(xx * xx):
+                    break
+            t = float32(ziggurat_nor_r_f + xx)
+            return (-t if (rabs >> 8) & 0x1 else t), k
+        u = _f32(raw, k)  # the wedge
+        k += 1
+        lhs = float32(float32((fi_float[idx - 1] - fi_float[idx]) * u) + fi_float[idx])
+        if float64(lhs) < np.exp(-0.5 * float64(x) * float64(x)):
+            return x, k
+
+
+@njit(cache=True)
 def _ziggurat(raw, out):
     """Fill ``out`` from the raw words: the number of 32-bit words used, or
-    -1 when ``raw`` ran out first (``out`` is then partly filled)."""
-    k = 0
+    -1 when ``raw`` ran out first (``out`` is then partly filled). Every
+    word's boxed value is computed first, in one vectorised pass
+    (:func:`_boxed`); the values are then taken in order, and a word outside
+    the boxes goes through :func:`_unboxed`, which takes the words after it
+    as numpy would, so the values that follow shift along the stream. (The
+    boxed values of all words at once, 4 bytes a word: computing them 4096
+    words at a time, in L1, made the in-order pass slower, 2.0 against 1.3
+    ms per 10^6 values.)"""
     lim = 2 * raw.size
+    xs = np.empty(lim, np.float32)
+    _boxed(raw, 0, xs)
+    k = 0
     for i in range(out.size):
-        while True:
-            if k + 3 > lim:
+        if k + 3 > lim:
+            return -1
+        v = xs[k]
+        if v == v:
+            out[i] = v
+            k += 1
+        else:
+            v, k = _unboxed(raw, k, lim)
+            if k < 0:
                 return -1
-            r = _u32(raw, k)
-            k += 1
-            idx = r & 0xFF
-            rabs = (r >> 9) & 0x007FFFFF
-            x = float32(float32(rabs) * wi_float[idx])
-            if (r >> 8) & 0x1:
-                x = -x
-            if rabs < ki_float[idx]:  # 99.3% of draws end here
-                out[i] = x
-                break
-            if idx == 0:  # the tail beyond r
-                while True:
-                    if k + 2 > lim:
-                        return -1
-                    xx = float32(-ziggurat_nor_inv_r_f * float32(np.log1p(-_f32(raw, k))))
-                    yy = float32(-float32(np.log1p(-_f32(raw, k + 1))))
-                    k += 2
-                    if float32(yy + yy) > float32(xx * xx):
-                        break
-                t = float32(ziggurat_nor_r_f + xx)
-                out[i] = -t if (rabs >> 8) & 0x1 else t
-                break
-            u = _f32(raw, k)
-            k += 1
-            lhs = float32(float32((fi_float[idx - 1] - fi_float[idx]) * u) + fi_float[idx])
-            if float64(lhs) < np.exp(-0.5 * float64(x) * float64(x)):
-                out[i] = x
-                break
+            out[i] = v
     return k
 
 
@@ -178,9 +227,10 @@ def _draw(rng: np.random.Generator, size, dtype, kernel, words_per_value: int):
     ``random_raw`` takes the lock itself). ``words_per_value``: 32-bit words
     (1, float32) or 64-bit words (2, float64) per value. None when numpy
     must draw: another bit generator, the tables missing, ``size`` None, or
-    half a word pending before a float32 draw."""
+    for float32 half a word pending or a big-endian machine."""
     bg = rng.bit_generator
-    if type(bg) is not np.random.PCG64 or not TABLES or size is None:
+    if type(bg) is not np.random.PCG64 or not TABLES or size is None or \
+            (words_per_value == 1 and not LITTLE_ENDIAN):
         return None
     with bg.lock:
         state = bg.state

@@ -347,3 +347,20 @@ def test_candidates_alone_are_the_sweeps_candidates(conn):
             _, cand, cmask, _ = sweep(z, s, valid, nr, nc, conn == 8, codes, lab)
             got, gmask = candidates(z * s, valid, nr, nc, conn == 8, codes)
             assert np.array_equal(got, cand) and np.array_equal(gmask, cmask)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_event_order_is_the_lexsort_of_key_then_cell(seed):
+    # the packed sort against numpy's lexsort (stable: equal (key, cell) keep their
+    # order): keys with ties, -0.0 beside +0.0, cells in order and out of it, repeated
+    from terrain.engine.persistence import event_order
+
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(1, 5000))
+    k = rng.integers(-4, 5, n).astype(np.float32) * np.float32(0.5)
+    k[rng.random(n) < 0.1] = -0.0
+    sorted_cells = np.sort(rng.integers(0, n // 2 + 1, n))
+    unsorted = np.concatenate([sorted_cells[: n // 2], rng.integers(0, n, n - n // 2)])
+    for cells in (sorted_cells, unsorted):
+        assert np.array_equal(event_order(k, cells), np.lexsort((cells, k)))
+        assert np.array_equal(event_order(k.astype(np.float64), cells), np.lexsort((cells, k)))

@@ -581,22 +581,30 @@ def _prepare(z, kind, connectivity, mask):
     return np.ascontiguousarray(z), s, valid
 
 
-def _event_order(k, cells):
-    """The order of events with keys ``k`` at ``cells`` (raster order) in the
-    total order (key, cell): one sort of 64-bit words packing the key's
-    order-preserving bits over the event number (float32 keys), else a
-    lexsort."""
+def event_order(k: np.ndarray, cells: np.ndarray) -> np.ndarray:
+    """The order of events with keys ``k`` at ``cells`` in the total order
+    (key, cell), ties kept in the events' order: ``np.lexsort((cells, k))``
+    (-0.0 and +0.0 one value), as one sort of 64-bit words packing the key's
+    order-preserving bits over the event's rank in cell order, for float32
+    keys; else the lexsort. Events already in cell order (the whole-grid
+    engine's, in raster order) are ranked as they come; others are first put
+    in cell order by a stable sort (the blocked engine's edges: two runs in
+    cell order, which the sort merges in one pass)."""
     k = k + k.dtype.type(0)  # -0.0 and +0.0 are one value
-    if k.dtype == np.float32 and k.size < 2**32:
-        # cells are in raster order, so the event number orders equal keys by cell
-        u = k.view(np.uint32).astype(np.uint64)
-        u = np.where(u >= 2**31, u ^ 0xFFFFFFFF, u | 2**31)
-        u <<= np.uint64(32)
-        u |= np.arange(k.size, dtype=np.uint64)
-        u.sort()
-        u &= np.uint64(0xFFFFFFFF)
-        return u.astype(np.int64)
-    return np.lexsort((cells, k))
+    if k.dtype != np.float32 or k.size >= 2**32:
+        return np.lexsort((cells, k))
+    by_cell = None
+    if k.size > 1 and bool((cells[1:] < cells[:-1]).any()):
+        by_cell = np.argsort(cells, kind="stable")
+        k = k[by_cell]
+    u = k.view(np.uint32).astype(np.uint64)
+    u = np.where(u >= 2**31, u ^ 0xFFFFFFFF, u | 2**31)
+    u <<= np.uint64(32)
+    u |= np.arange(k.size, dtype=np.uint64)
+    u.sort()
+    u &= np.uint64(0xFFFFFFFF)
+    order = u.astype(np.int64)
+    return order if by_cell is None else by_cell[order]
 
 
 def _engine(z, s, valid, connectivity, outlet, merge_level=-1.0, labels=False, clock=None):
@@ -627,7 +635,7 @@ def _engine(z, s, valid, connectivity, outlet, merge_level=-1.0, labels=False, c
         cells, key, own, flag, off, nbr = _gather_groups(zf, s, vf, nr, nc, dr, dc, lab, cand,
                                                          cmask, extra, groups)
     clock("events")
-    order = _event_order(key, cells)
+    order = event_order(key, cells)
     clock("event order")
     res = _merge(minc, zf[minc] * s, emin, kemin, order, cells, key, own, flag, off, nbr,
                  outlet, merge_level)

@@ -184,7 +184,9 @@ def _pond_task(src: Any, regions: Any, area_row: np.ndarray, thr: float, resolut
     lv, dp = levels_from(inputs, window, resolution)
     r0, r1, c0, c1 = window
     zb = np.ascontiguousarray(as_float(np.asarray(src[r0:r1, c0:c1]))).reshape(-1)
-    reg = np.ascontiguousarray(_array(regions)[r0:r1, c0:c1]).reshape(-1).astype(np.int64)
+    reg = np.ascontiguousarray(_array(regions)[r0:r1, c0:c1]).reshape(-1)
+    if reg.dtype not in (np.int32, np.int64):  # region labels are int32 (no copy for them)
+        reg = reg.astype(np.int64)
     cnt = np.zeros(zb.size, np.int32)
     k = int(reg.max()) + 1 if reg.size else 1
     area, vol = np.zeros(k, np.int64), np.zeros(k, np.int64)

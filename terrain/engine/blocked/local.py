@@ -16,7 +16,7 @@ import numpy as np
 from ...errors import OptionError
 from ..basins import CODES4, CODES8, GROUPS4, GROUPS8, candidates, descend, resolve
 from ..grid import offsets
-from ..persistence import KINDS
+from ..persistence import KINDS, event_order
 from . import elders  # relations: the elder of each pair
 from . import kernels as _k
 from .summaries import BlockSummary, LevelInputs, Roots, Strip
@@ -131,7 +131,7 @@ def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = F
         ea = np.concatenate([ea, has])
         eb = np.concatenate([eb, np.full(has.size, nb, np.int64)])
         ew = np.concatenate([ew, emin[has]])
-    order = np.lexsort((ew, blk.zk[ew]))
+    order = event_order(blk.zk[ew], ew)
     merged = _k.local_merge(blk.zk, blk.flags, minc, emin, term, ea[order], eb[order], ew[order])
     return lab, minc, Merged(*merged), pointer
 

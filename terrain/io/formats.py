@@ -38,9 +38,12 @@ def _json_default(o):
 #: How every raster layer is laid out: a Cloud Optimized GeoTIFF written by GDAL's COG
 #: driver (OGC Cloud Optimized GeoTIFF standard, 2023): 256x256 internal tiles, internal
 #: overviews (average of valid cells) down to one tile, placed as the standard requires,
-#: DEFLATE with the floating-point predictor, per-band statistics stored in the file.
+#: DEFLATE with the floating-point predictor, per-band statistics stored in the file;
+#: tiles compressed on every core (the same bytes as on one: each tile is compressed
+#: alone, and written in order).
 COG_OPTIONS = dict(driver="COG", compress="deflate", predictor=3, blocksize=256,
-                   overview_resampling="average", statistics="YES", bigtiff="IF_SAFER")
+                   overview_resampling="average", statistics="YES", bigtiff="IF_SAFER",
+                   num_threads="ALL_CPUS")
 
 
 def write_layer(dest: str | os.PathLike, dem: Dem, *bands: np.ndarray, name: str, units: str,
@@ -157,7 +160,8 @@ def _open_tiles(path: Path, dem: Dem, count: int = 2):
         return rasterio.open(path, "w", driver="GTiff", height=rows, width=cols, count=count,
                              dtype="float32", crs=dem.crs, transform=Affine(*dem.transform),
                              nodata=np.nan, tiled=True, blockxsize=256, blockysize=256,
-                             compress="deflate", zlevel=1, predictor=3, bigtiff="IF_SAFER")
+                             compress="deflate", zlevel=1, predictor=3, bigtiff="IF_SAFER",
+                             num_threads="ALL_CPUS")
 
 
 def _open_cog(tmp: Path, dem: Dem, count: int = 2):

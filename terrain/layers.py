@@ -140,15 +140,18 @@ def units(name: str, vertical_units: str | None, weight: str = "persistence") ->
     return vertical_units or "DEM units"
 
 
-def read_window(layers, r0: int, r1: int, c0: int, c1: int) -> dict:
-    """Every layer's (estimate, standard error) on rows ``r0:r1`` and columns ``c0:c1``.
+def read_window(layers, r0: int, r1: int, c0: int, c1: int, names=None) -> dict:
+    """Every layer's (estimate, standard error) on rows ``r0:r1`` and columns
+    ``c0:c1``, or only those named in ``names``.
 
     ``layers`` is a run's layers: a dict of whole arrays, or a set computed
-    window by window when read (its ``read`` method; out-of-core runs).
+    window by window when read (its ``read(r0, r1, c0, c1, names)`` method;
+    out-of-core runs), which then computes only the layers asked for.
     """
     if hasattr(layers, "read"):
-        return layers.read(r0, r1, c0, c1)
-    return {k: tuple(a[r0:r1, c0:c1] for a in bands) for k, bands in layers.items()}
+        return layers.read(r0, r1, c0, c1, names)
+    return {k: tuple(a[r0:r1, c0:c1] for a in bands) for k, bands in layers.items()
+            if names is None or k in names}
 
 
 #: cells per window when layers are read, summarised and written window by window

@@ -374,8 +374,9 @@ def _moments(s, q, n):
 
 
 def credit_layers(log: dict, n: int, job: CreditJob, nc: int,
-                  window: tuple[int, int, int, int]) -> dict:
-    """The birth/death credit and birth probability layers on a window.
+                  window: tuple[int, int, int, int], names=None) -> dict:
+    """The birth/death credit and birth probability layers on a window (or
+    those of them named in ``names``).
 
     Computed from the pair log (sorted by realisation) for the cells of rows
     ``r0:r1`` and columns ``c0:c1`` of a raster ``nc`` columns wide: each
@@ -391,9 +392,10 @@ def credit_layers(log: dict, n: int, job: CreditJob, nc: int,
                 log_weights(log, job.weight), nc, r0, r1, c0, c1, bsum, bsq, dsum, dsq, bcount,
                 scratch, np.zeros(size, np.int32))
     shape = (r1 - r0, c1 - c0)
-    out = {layer_name(job.kind, "birth_credit"): _moments(bsum, bsq, n),
-           layer_name(job.kind, "death_credit"): _moments(dsum, dsq, n),
-           layer_name(job.kind, "birth_probability"): proportion(bcount, n)}
+    make = {layer_name(job.kind, "birth_credit"): lambda: _moments(bsum, bsq, n),
+            layer_name(job.kind, "death_credit"): lambda: _moments(dsum, dsq, n),
+            layer_name(job.kind, "birth_probability"): lambda: proportion(bcount, n)}
+    out = {k: f() for k, f in make.items() if names is None or k in names}
     return {k: (m.reshape(shape), e.reshape(shape)) for k, (m, e) in out.items()}
 
 
@@ -439,8 +441,8 @@ class CreditLayers:
         self.acc, self.shape = acc, shape
         self.names = tuple(s.name for s in layers_of(acc.job.kind))
 
-    def read(self, r0: int, r1: int, c0: int, c1: int) -> dict:
-        return self.acc.window_layers(self.shape, (r0, r1, c0, c1))
+    def read(self, r0: int, r1: int, c0: int, c1: int, names=None) -> dict:
+        return self.acc.window_layers(self.shape, (r0, r1, c0, c1), names)
 
     def __iter__(self):
         return iter(self.names)
@@ -514,17 +516,22 @@ class CreditAccumulator:
             return CreditLayers(self, tuple(shape))
         return self.window_layers(tuple(shape), (0, shape[0], 0, shape[1]))
 
-    def window_layers(self, shape, window) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-        """Each layer's mean and standard error on ``window`` (r0, r1, c0, c1)."""
+    def window_layers(self, shape, window, names=None) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Each layer's mean and standard error on ``window`` (r0, r1, c0, c1),
+        or only those of the layers named in ``names`` (the pair log is not
+        read when none of its layers is asked for)."""
         r0, r1, c0, c1 = window
-        out = credit_layers(self.log(), self.n, self.job, shape[1], window)
-        if self.ponding is not None:
+        pond = layer_name(self.job.kind, "ponding_probability") if self.ponding is not None \
+            else None
+        out = {}
+        if names is None or any(k != pond for k in names):
+            out = credit_layers(self.log(), self.n, self.job, shape[1], window, names)
+        if self.ponding is not None and (names is None or pond in names):
             if self.on_disk:
                 cnt = self.ponding[r0:r1, c0:c1]
             else:
                 cnt = self.ponding.reshape(shape)[r0:r1, c0:c1]
-            m, e = proportion(cnt, self.n)
-            out[layer_name(self.job.kind, "ponding_probability")] = (m, e)
+            out[pond] = proportion(cnt, self.n)
         return out
 
     def stop_statistic(self) -> float:

@@ -343,7 +343,7 @@ def _pooled_view(result: RunResult, features: FeatureSummary, main: str):
 
     def layer(r0, r1):
         return np.where(np.isnan(dem.window(r0, r1, 0, cols)), np.nan,
-                        read_window(result.layers, r0, r1, 0, cols)[main][0])
+                        read_window(result.layers, r0, r1, 0, cols, (main,))[main][0])
 
     def inside(r0, r1):
         return np.isin(np.asarray(features.regions.labels[r0:r1, 0:cols]), ids).astype(float)

@@ -268,7 +268,8 @@ def _best_cells(result, labels, ids: np.ndarray) -> np.ndarray:
         sel = np.flatnonzero(np.isin(lab, ids))
         if not sel.size:
             continue
-        v = np.nan_to_num(read_window(result.layers, r0, r1, c0, c1)[name][0]).reshape(-1)[sel]
+        v = np.nan_to_num(read_window(result.layers, r0, r1, c0, c1, (name,))[name][0])
+        v = v.reshape(-1)[sel]
         rr, cc = np.divmod(sel, c1 - c0)
         flat = (rr + r0) * nc + cc + c0
         order = np.lexsort((flat, -v, lab[sel]))
@@ -307,8 +308,8 @@ class PondedTop:
 
     def __getitem__(self, key) -> np.ndarray:
         (r0, r1, _), (c0, c1, _) = (k.indices(n) for k, n in zip(key, self.shape))
-        p = read_window(self.result.layers, r0, r1, c0, c1)[
-            layer_name("depressions", "ponding_probability")][0]
+        name = layer_name("depressions", "ponding_probability")
+        p = read_window(self.result.layers, r0, r1, c0, c1, (name,))[name][0]
         lab = np.asarray(self.labels[r0:r1, c0:c1])
         return np.where((p >= PONDED_SHARE) & np.isin(lab, self.ids), lab, 0).astype(np.int32)
 

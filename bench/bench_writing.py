@@ -4,10 +4,12 @@
    temporary folder, ``--workers 2``) on a ``--side``² smooth terrain GeoTIFF
    (``common.terrain``, 30 m cells, RMSE 2 m) for each of ``--counts``
    realisations, and prints from each run's ``run.json`` timings the seconds
-   spent on the realisations, the layers, the tables and the figures, the
-   writing's wall time (layers and tables are written while the figures are
-   drawn, so it is less than their sum) and its share of the run (target
-   <= 15% at 300 realisations, 1024²).
+   spent on the realisations (and per realisation, in np.sorts of the
+   raster measured in this run: the cost of a realisation on 2 workers,
+   target <= 5), the layers, the tables and the figures, the writing's wall
+   time (layers and tables are written while the figures are drawn, so it
+   is less than their sum) and its share of the run (target <= 15% at 300
+   realisations, 1024²).
 2. Writes one two-band float32 layer of ``--layer-side``² cells through
    ``terrain.io.write_layer`` (GDAL's COG driver with statistics) and, as the
    reference measured in the same run, as a plain tiled DEFLATE GeoTIFF with
@@ -44,9 +46,13 @@ def write_dem(path: Path, side: int) -> None:
 def run_shares(folder: Path, side: int, counts) -> None:
     dem = folder / "dem.tif"
     write_dem(dem, side)
-    print(f"cairn peaks/depressions on a {side}² terrain, RMSE 2, --workers 2")
-    print(f"  {'kind':<12} {'n':>5} {'realis. s':>10} {'layers s':>9} {'tables s':>9} "
-          f"{'figures s':>10} {'writing s':>10} {'writing share':>14}")
+    flat = terrain(side).reshape(-1)
+    sort = median_time(lambda: np.sort(flat), repeat=7)
+    print(f"cairn peaks/depressions on a {side}² terrain, RMSE 2, --workers 2; one np.sort of "
+          f"the raster {sort * 1e3:.1f} ms (a realisation's cost in sorts: realisations_s / n "
+          "over it, target <= 5)")
+    print(f"  {'kind':<12} {'n':>5} {'realis. s':>10} {'sorts':>6} {'layers s':>9} "
+          f"{'tables s':>9} {'figures s':>10} {'writing s':>10} {'writing share':>14}")
     for n in counts:
         for kind in ("peaks", "depressions"):
             out = folder / f"{kind}-{n}"
@@ -54,7 +60,8 @@ def run_shares(folder: Path, side: int, counts) -> None:
                             str(dem), "--rmse", "2", "-n", str(n), "--workers", "2", "-o",
                             str(out), "-q"], check=True, stderr=subprocess.DEVNULL)
             t = json.loads((out / "run.json").read_text())["timings"]
-            print(f"  {kind:<12} {n:>5} {t['realisations_s']:>10.2f} {t['layers_s']:>9.2f} "
+            per = t["realisations_s"] / n / sort
+            print(f"  {kind:<12} {n:>5} {t['realisations_s']:>10.2f} {per:>6.2f} {t['layers_s']:>9.2f} "
                   f"{t['tables_s']:>9.2f} {t['figures_s']:>10.2f} {t['writing_s']:>10.2f} "
                   f"{t['writing_share']:>14.1%}", flush=True)
 

@@ -650,7 +650,7 @@ def _dask_chunks(client, watch: DaskWatch, ctx, plan, workers, stop) -> Iterator
             try:
                 res = watch.result(fut)
             except WorkerError:
-                if state["ctx"].status == "finished" or state["round"] >= RESCATTERS:
+                if state["round"] >= RESCATTERS or not _context_lost(client, state["ctx"]):
                     raise
                 for f in pending:
                     f.release()
@@ -668,6 +668,18 @@ def _dask_chunks(client, watch: DaskWatch, ctx, plan, workers, stop) -> Iterator
             window.yielded(res[0])
             yield res
         top_up()
+
+
+def _context_lost(client, ctx_f) -> bool:
+    """Whether no worker holds the scattered context any more: its future is no
+    longer finished, or the scheduler knows no copy of it (asked, since the
+    cancelled chunks can be seen before the context's own news)."""
+    if ctx_f.status != "finished":
+        return True
+    try:
+        return not client.who_has([ctx_f]).get(ctx_f.key)
+    except Exception:  # the scheduler is gone too: the caller's error stands
+        return False
 
 
 def _scatter(client, watch: DaskWatch, ctx):

@@ -29,6 +29,7 @@ import re
 import socket
 import struct
 import sys
+import threading
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
@@ -47,7 +48,7 @@ __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
 WORKER_WAIT_SECONDS = 60.0  # a Dask cluster without any worker (none joined, all left), at most
 POLL_SECONDS = 0.5  # waits on Dask look at signals, workers and the scheduler this often
-RESCATTERS = 8  # a whole-grid Dask run scatters its context again this often at most
+RESCATTERS = 3  # a whole-grid Dask run scatters its context again this often at most
 _ADDRESS = re.compile(r"^(?:(?P<scheme>[a-z]+)://)?(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)"
                       r":(?P<port>\d{1,5})/?$")
 _SCHEMES = ("tcp", "tls", "ws", "wss", "ucx")
@@ -624,7 +625,7 @@ def _dask_chunks(client, watch: DaskWatch, ctx, plan, workers, stop) -> Iterator
     window = _Window(2 * nworkers)
     pending: dict = {}  # future -> start
     chunks: dict = {}  # start -> the plan's chunk, while it is pending
-    state = {"ctx": _scatter(client, watch, ctx), "round": 0}
+    state = {"ctx": _scatter(client, watch, ctx, broadcast=True), "round": 0}
     if state["ctx"] is None:
         return
 
@@ -650,15 +651,21 @@ def _dask_chunks(client, watch: DaskWatch, ctx, plan, workers, stop) -> Iterator
             try:
                 res = watch.result(fut)
             except WorkerError:
-                if state["round"] >= RESCATTERS or not _context_lost(client, state["ctx"]):
+                if not _context_lost(client, state["ctx"]):
                     raise
+                if state["round"] >= RESCATTERS:  # the workers holding it keep dying
+                    raise WorkerError(
+                        f"{_where(watch.scheduler)}: the Dask workers holding the run's data "
+                        f"died {RESCATTERS + 1} times (a task may be ending its workers: out "
+                        "of memory?); give the workers more memory or use a smaller {block}, "
+                        "and rerun with {resume}", "block", "resume") from None
                 for f in pending:
                     f.release()
                 starts = sorted(pending.values())
                 pending.clear()
                 state["round"] += 1
-                state["ctx"] = _scatter(client, watch, ctx)
-                if state["ctx"] is None:  # Ctrl-C or SIGTERM while no worker was there
+                state["ctx"] = _scatter(client, watch, ctx, broadcast=False)
+                if state["ctx"] is None:  # Ctrl-C or SIGTERM while it was being sent
                     return
                 for a in starts:
                     submit(chunks[a])
@@ -678,23 +685,46 @@ def _context_lost(client, ctx_f) -> bool:
         return True
     try:
         return not client.who_has([ctx_f]).get(ctx_f.key)
-    except Exception:  # the scheduler is gone too: the caller's error stands
-        return False
+    except Exception as exc:  # cancelled meanwhile: lost; the scheduler gone: the error stands
+        return "Cancelled" in type(exc).__name__
 
 
-def _scatter(client, watch: DaskWatch, ctx):
-    """``ctx`` scattered to every worker, once there is one (the wait is
-    :meth:`DaskWatch.check`'s); None when ``stop()`` became true first."""
+def _scatter(client, watch: DaskWatch, ctx, *, broadcast: bool):
+    """``ctx`` scattered (to every worker with ``broadcast``; a scatter again
+    after a loss goes to one worker, and the others fetch it as their tasks
+    need it: a broadcast waits for good on a worker that dies while it
+    copies), once there is a worker; None when ``stop()`` became true first.
+    Every wait, for a worker and for the scatter, looks at ``stop()`` and
+    :meth:`DaskWatch.check` each :data:`POLL_SECONDS`."""
     while True:
         try:
             client.wait_for_workers(1, timeout=POLL_SECONDS)
-            return client.scatter(ctx, broadcast=True, hash=False)
+            break
         except (TimeoutError, asyncio.TimeoutError):
             if watch.stop():
                 return None
             watch.check()
         except Exception as exc:
             raise watch.error(exc) from None
+    box: dict = {}
+
+    def send():
+        try:
+            box["future"] = client.scatter(ctx, broadcast=broadcast, hash=False)
+        except BaseException as exc:  # handed to the waiting thread
+            box["error"] = exc
+
+    sender = threading.Thread(target=send, name="cairn-scatter", daemon=True)
+    sender.start()
+    while sender.is_alive():
+        sender.join(POLL_SECONDS)
+        if sender.is_alive():
+            if watch.stop():
+                return None  # the sender ends with the client, closed by the caller
+            watch.check()
+    if "error" in box:
+        raise watch.error(box["error"]) from None
+    return box["future"]
 
 
 BACKENDS: dict[str, Callable[..., Iterator[tuple]]] = {

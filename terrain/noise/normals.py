@@ -83,6 +83,18 @@ def _f32(raw, k):
     return float32(float32(_u32(raw, k) >> 8) * float32(1.0) / float32(16777216.0))
 
 
+@njit(cache=True, inline="always")
+def _in_box(r):
+    """numpy's float32 ziggurat on the 32-bit word ``r``, its first branch:
+    ``(value, layer, |value| bits, inside)``, ``inside`` when the value lies
+    in its layer's box (numpy's fast path)."""
+    idx = r & 0xFF
+    rabs = (r >> 9) & 0x007FFFFF
+    x = float32(float32(rabs) * wi_float[idx])
+    x = -x if (r >> 8) & 0x1 else x
+    return x, idx, rabs, rabs < ki_float[idx]
+
+
 @njit(cache=True)
 def _boxed(raw, k0, xs):
     """The boxed value of words ``k0, k0 + 1, ...`` (as many as ``xs`` holds,
@@ -94,12 +106,8 @@ def _boxed(raw, k0, xs):
     lets numpy draw on any other)."""
     words = raw.view(np.uint32)
     for j in range(min(xs.size, words.size - k0)):
-        r = words[k0 + j]
-        idx = r & 0xFF
-        rabs = (r >> 9) & 0x007FFFFF
-        x = float32(float32(rabs) * wi_float[idx])
-        x = -x if (r >> 8) & 0x1 else x
-        xs[j] = x if rabs < ki_float[idx] else np.float32(np.nan)
+        x, _, _, inside = _in_box(words[k0 + j])
+        xs[j] = x if inside else np.float32(np.nan)
 
 
 @njit(cache=True)
@@ -110,14 +118,9 @@ def _unboxed(raw, k, lim):
     while True:
         if k + 3 > lim:
             return float32(0), -1
-        r = _u32(raw, k)
+        x, idx, rabs, inside = _in_box(_u32(raw, k))
         k += 1
-        idx = r & 0xFF
-        rabs = (r >> 9) & 0x007FFFFF
-        x = float32(float32(rabs) * wi_float[idx])
-        if (r >> 8) & 0x1:
-            x = -x
-        if rabs < ki_float[idx]:
+        if inside:
             return x, k
         if idx == 0:  # the tail beyond r
             while True:

@@ -553,13 +553,9 @@ class DaskWatch:
             return
         if not connected:
             raise self._lost("no connection")
-        raise self.no_workers()
-
-    def no_workers(self) -> WorkerError:
-        """The error for a cluster left without workers for :data:`WORKER_WAIT_SECONDS`."""
-        return WorkerError(f"{_where(self.scheduler)}: all Dask workers left the cluster (none "
-                           f"for {WORKER_WAIT_SECONDS:g} s); what was done is in the checkpoint "
-                           "-- start workers and rerun with {resume}", "resume")
+        raise WorkerError(f"{_where(self.scheduler)}: all Dask workers left the cluster (none for "
+                          f"{WORKER_WAIT_SECONDS:g} s); what was done is in the checkpoint -- "
+                          "start workers and rerun with {resume}", "resume")
 
     def _lost(self, why: str) -> SchedulerError:
         return SchedulerError(f"{_where(self.scheduler)}: lost the Dask scheduler ({why}); what "
@@ -693,9 +689,10 @@ def _scatter(client, watch: DaskWatch, ctx, *, broadcast: bool):
     """``ctx`` scattered (to every worker with ``broadcast``; a scatter again
     after a loss goes to one worker, and the others fetch it as their tasks
     need it: a broadcast waits for good on a worker that dies while it
-    copies), once there is a worker; None when ``stop()`` became true first.
-    Every wait, for a worker and for the scatter, looks at ``stop()`` and
-    :meth:`DaskWatch.check` each :data:`POLL_SECONDS`."""
+    copies), once there is a worker (a scatter without one gives up after
+    Dask's own timeout, with Dask's words); None when ``stop()`` became true
+    first. Every wait, for a worker and for the scatter (in a thread), looks
+    at ``stop()`` and :meth:`DaskWatch.check` each :data:`POLL_SECONDS`."""
     while True:
         try:
             client.wait_for_workers(1, timeout=POLL_SECONDS)

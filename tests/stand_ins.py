@@ -14,7 +14,9 @@ from __future__ import annotations
 import struct
 import zlib
 
-FIGURES = ("feature_map", "ranking_chart", "catchment_map", "sweep_figure")
+#: (module in terrain.outputs, function) of every figure
+FIGURES = (("plot", "feature_map"), ("plot", "ranking_chart"), ("plot", "catchment_map"),
+           ("sweepchart", "sweep_figure"))
 
 
 def _chunk(kind: bytes, data: bytes) -> bytes:
@@ -44,12 +46,20 @@ def no_drawing_to_prepare(*args, **kwargs) -> None:
     """A stand-in for ``mapframe.prepare_drawing``: nothing will be drawn."""
 
 
+def no_figure_process(*args, **kwargs) -> None:
+    """A stand-in for ``drawing.start_figure_process``: the stand-ins are drawn here."""
+
+
 def targets():
     """(module, attribute, stand-in) for every name :func:`install` replaces."""
-    from terrain.outputs import mapframe, plot
+    import importlib
 
-    out = [(plot, name, blank_figure) for name in FIGURES]
+    from terrain.outputs import drawing, mapframe
+
+    out = [(importlib.import_module(f"terrain.outputs.{module}"), name, blank_figure)
+           for module, name in FIGURES]
     out.append((mapframe, "prepare_drawing", no_drawing_to_prepare))
+    out.append((drawing, "start_figure_process", no_figure_process))
     return out
 
 

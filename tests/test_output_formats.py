@@ -303,7 +303,7 @@ def test_sweep_figure_reads_at_one_kernel_and_at_four(kernels):
     # legends outside the panels, one panel per statistic; common practice, no published source
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
-    from terrain.outputs.plot import sweep_figure
+    from terrain.outputs.sweepchart import sweep_figure
     from terrain.sweep import sweep, sweep_models
 
     z = np.zeros((15, 31), np.float32)

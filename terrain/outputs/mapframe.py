@@ -235,9 +235,13 @@ class MapFrame:
         The error model and realisations line; the caution is added below it.
     caution : str
         The caution every output carries.
+    shade : array, optional
+        The hillshade of ``dem`` on the grid drawn, made beforehand
+        (:func:`hillshade` with this frame's pooling); by default it is made here.
     """
 
-    def __init__(self, dem: Dem, *, title: str, subtitle: str, footer: str, caution: str):
+    def __init__(self, dem: Dem, *, title: str, subtitle: str, footer: str, caution: str,
+                 shade: np.ndarray | None = None):
         from matplotlib.backends.backend_agg import FigureCanvasAgg
         from matplotlib.figure import Figure
 
@@ -259,7 +263,7 @@ class MapFrame:
         self.names: list[str] = []  # each label's short name, for the unplaced note
         #: the footer's note when some labels find no room ({names}: their short names)
         self.unplaced = "No room on the map to label {names}."
-        self._base()
+        self._base(shade)
 
     # -- drawing ---------------------------------------------------------------------
     def view(self, values: np.ndarray, *, how=np.nanmax) -> np.ndarray:
@@ -267,10 +271,10 @@ class MapFrame:
         v = np.where(self.dem.nodata, np.nan, np.asarray(values, np.float64))
         return _pool(v, self.k, how)
 
-    def _base(self) -> None:
+    def _base(self, shade: np.ndarray | None) -> None:
         ax, dem = self.ax, self.dem
         nodata = _pool(dem.nodata.astype(np.float64), self.k, np.nanmin) > 0
-        shade = np.ma.masked_where(nodata, hillshade(dem, k=self.k))
+        shade = np.ma.masked_where(nodata, hillshade(dem, k=self.k) if shade is None else shade)
         ax.imshow(shade, cmap="gray", vmin=-0.45, vmax=1.05, extent=self.view_extent,
                   interpolation="bilinear" if self.k == 1 else "nearest", gid="hillshade")
         if nodata.any():

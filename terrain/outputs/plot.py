@@ -1,4 +1,4 @@
-"""Figures: quick-look maps, the ranking chart and the sweep figure.
+"""Figures: quick-look maps and the ranking chart (the sweep's figure: :mod:`.sweepchart`).
 
 Rendering only; every function returns a matplotlib Figure and the writer
 saves it (atomically, through :mod:`terrain.io`). Every map is drawn in the
@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 import textwrap
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -32,7 +33,9 @@ if TYPE_CHECKING:
     from ..summary.features import FeatureSummary
 
 __all__ = ["quicklook", "hillshade", "feature_map", "ranking_chart", "catchment_map",
-           "sweep_figure", "LABELLED", "LABEL_PRESENCE", "RANKED", "figure_text"]
+           "FeatureMapSheet", "feature_map_sheet", "draw_feature_map", "ChartSheet",
+           "ranking_chart_sheet", "draw_ranking_chart",
+           "LABELLED", "LABEL_PRESENCE", "RANKED", "figure_text"]
 
 LABELLED = 12  # features labelled on a map, at most
 LABEL_PRESENCE = 0.5  # ... among those counted in at least this share of realisations
@@ -197,8 +200,72 @@ def _outlets(frame: MapFrame, outlets, *, labelled: bool = True) -> None:
             frame.label(x, y, str(name))
 
 
+@dataclass(frozen=True)
+class FeatureMapSheet:
+    """What a peaks or depressions map draws, gathered from a run by
+    :func:`feature_map_sheet`; :func:`draw_feature_map` draws it, in this
+    process or in another (:mod:`terrain.outputs.drawing`).
+
+    The rasters are on the grid drawn (pooled as :class:`MapFrame` pools, so
+    at most :data:`terrain.layers.MAX_PIXELS` cells a side whatever the
+    DEM's size): a sheet holds a few float64 arrays of at most
+    :data:`terrain.layers.QUICKLOOK_CELLS` cells and the drawn features'
+    outlines, and pickles small.
+    """
+
+    kind: str  # "peaks" or "depressions"
+    grid: Dem  # the grid drawn (the DEM, or its pooled copy)
+    shade: np.ndarray | None  # its hillshade (None: MapFrame shades ``grid``)
+    values: np.ndarray  # the main layer (NaN: nodata)
+    inside: np.ndarray  # on a feature counted in the table (any cell of a pooled block)
+    tops: np.ndarray | None  # peaks: on a top (any cell of a pooled block)
+    drawn: object  # the table's rows drawn (DataFrame)
+    outlines: list  # each drawn row's outline (shapely; None where it has none)
+    groups: list  # (group id, its rows): the groups labelled, in table order
+    features: int  # rows in the table
+    rank_share: object  # P(rank = k) per feature (DataFrame), or None
+    unit: str  # the figure's short unit (m, ft, ...)
+    bar: str  # the colour bar's label
+    footer: str
+
+
+def feature_map_sheet(result: RunResult, features: FeatureSummary) -> FeatureMapSheet:
+    """Gather what :func:`draw_feature_map` draws from a peaks or depressions run.
+
+    The rasters are read band by band and pooled (out of core, only the map's
+    main layer is computed); an in-memory run's hillshade is the one
+    :func:`hillshade` keeps (made while the realisations ran), an out-of-core
+    run's is made from the pooled DEM when drawn.
+    """
+    dem, job, table = result.dem, result.job, features.table
+    kind = _KIND[job.kind]
+    main = layer_name(job.kind, kind["main"])
+    groups = _label_groups(table)
+    drawn = table[(table["p_above"] >= LABEL_PRESENCE)
+                  | table["group"].isin([g for g, _ in groups])]
+    k = pooling(dem.shape)
+    on_disk = result.layout.on_disk
+    grid, values, inside, tops = _pooled_view(result, features, main)
+    geoms = features.frames[LAYER_NAMES[job.kind][0]].set_index("feature_id").geometry
+    geoms = geoms.reindex(drawn["feature_id"]).to_numpy()  # None where a feature has no shape
+    if job.kind == "peaks":  # a top's cells are scattered: outline them together
+        geoms = shapely.buffer(geoms, ENVELOPE_CELLS * max(dem.cellsize))
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.unit_label, job.weight))
+    return FeatureMapSheet(
+        kind=job.kind, grid=grid, shade=None if on_disk else hillshade(dem, k=k), values=values,
+        inside=inside, tops=tops, drawn=drawn, outlines=list(geoms), groups=groups,
+        features=len(table), rank_share=features.rank_share, unit=unit,
+        bar=bar_label(main, dem.unit_label), footer=run_footer(result, main))
+
+
 def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
-    """The quick-look of a peaks or depressions run.
+    """The quick-look of a peaks or depressions run (:func:`draw_feature_map` of
+    :func:`feature_map_sheet`)."""
+    return draw_feature_map(feature_map_sheet(result, features))
+
+
+def draw_feature_map(sheet: FeatureMapSheet) -> Figure:
+    """Draw the quick-look of a peaks or depressions run from its sheet.
 
     Peaks: summit probability; depressions: ponding probability with its 50%
     contour outside the features. Over it, the features counted in at least
@@ -212,39 +279,27 @@ def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
     place its members trade and each one's share; members of a group are
     tied by a dotted line. Never a mean: a bimodal mean is no outcome.
     """
-    dem, job, table = result.dem, result.job, features.table
-    kind = _KIND[job.kind]
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.unit_label, job.weight))
-    groups = _label_groups(table)
-    drawn = table[(table["p_above"] >= LABEL_PRESENCE)
-                  | table["group"].isin([g for g, _ in groups])]
-    main = layer_name(job.kind, kind["main"])
-    if result.layout.on_disk:  # out of core: draw from rasters pooled band by band
-        dem, values, inside, tops = _pooled_view(result, features, main)
-    else:
-        values = result.layers[main][0]
-        inside = np.isin(features.regions.labels, table["feature_id"].to_numpy())
-        tops = features.top[0:dem.shape[0], 0:dem.shape[1]] > 0 if job.kind == "peaks" else None
-    frame = MapFrame(dem, title=kind["title"], subtitle=_map_subtitle(kind, table, drawn),
-                     footer=run_footer(result, main), caution=CAUTION)
-    if job.kind == "peaks":  # elsewhere, single noise summits would speckle the whole map
-        values = np.where(tops, values, 0.0)
+    kind, groups = _KIND[sheet.kind], sheet.groups
+    frame = MapFrame(sheet.grid, title=kind["title"],
+                     subtitle=_map_subtitle(kind, sheet.features, len(sheet.drawn)),
+                     footer=sheet.footer, caution=CAUTION, shade=sheet.shade)
+    values = sheet.values
+    if sheet.kind == "peaks":  # elsewhere, single noise summits would speckle the whole map
+        values = np.where(sheet.tops, values, 0.0)
         vmax, note = _round_up(float(np.nanmax(values, initial=0.0))), ", where the tops are"
     else:
         vmax, note = 1.0, f"; clear under {PONDING_FLOOR:.0%}"
     frame.layer(values, cmap=palette(kind["palette"]), vmax=vmax, sqrt=kind["sqrt"],
-                label=bar_label(main, dem.unit_label) + note,
-                floor=0.0 if job.kind == "peaks" else PONDING_FLOOR)
-    if job.kind == "depressions":
-        frame.contours(np.where(inside, np.nan, values), [0.5], colour=INK,
+                label=sheet.bar + note, floor=0.0 if sheet.kind == "peaks" else PONDING_FLOOR)
+    if sheet.kind == "depressions":
+        frame.contours(np.where(sheet.inside, np.nan, values), [0.5], colour=INK,
                        label="ponded in 50% of realisations, outside the features",
                        styles=("dashed",), widths=(1.0,))
-    _draw_features(frame, features, drawn, kind, dem)
+    _draw_features(frame, sheet.drawn, sheet.outlines, kind)
     frame.unplaced = "No room on the map to label {names}: see ranking.png and the table."
-    share = features.rank_share
     for _, members in groups:
         first = members.iloc[0]
-        frame.label(first["x"], first["y"], _group_label(members, share, unit),
+        frame.label(first["x"], first["y"], _group_label(members, sheet.rank_share, sheet.unit),
                     name="/".join(f"#{i}" for i in members["feature_id"]))
     if any(members["bimodal"].any() for _, members in groups):
         frame.symbol("*", f"bimodal {kind['figure']}: two clusters, no mean shown")
@@ -264,10 +319,10 @@ def _label_groups(table) -> list:
     return out
 
 
-def _map_subtitle(kind: dict, table, drawn) -> str:
-    more = len(table) - len(drawn)
+def _map_subtitle(kind: dict, features: int, drawn: int) -> str:
+    more = features - drawn
     place = "a top" if kind["feature"] == "summit" else "a floor"
-    return (f"Drawn: the {len(drawn)} features counted in at least {LABEL_PRESENCE:.0%} of "
+    return (f"Drawn: the {drawn} features counted in at least {LABEL_PRESENCE:.0%} of "
             f"realisations" + (f" or labelled ({more} more in the table)" if more else "")
             + f". Labels, one per group, in table order: #id, {kind['figure']} on the DEM as "
             f"given (* bimodal: two clusters of outcomes, so no mean is shown), P(ranks first); "
@@ -275,16 +330,12 @@ def _map_subtitle(kind: dict, table, drawn) -> str:
             "place its members trade and each one's share.")
 
 
-def _draw_features(frame: MapFrame, features: FeatureSummary, drawn, kind: dict, dem) -> None:
-    """Polygons, summit / pit and key col / spill markers of the ``drawn`` rows, each
+def _draw_features(frame: MapFrame, drawn, outlines: list, kind: dict) -> None:
+    """Outlines, summit / pit and key col / spill markers of the ``drawn`` rows, each
     key col or spill point tied to its feature by a thin line, a group's members
     by a dotted one."""
     job_kind = "peaks" if kind["feature"] == "summit" else "depressions"
-    geoms = features.frames[LAYER_NAMES[job_kind][0]].set_index("feature_id").geometry
-    geoms = geoms.reindex(drawn["feature_id"]).to_numpy()  # None where a feature has no shape
-    if job_kind == "peaks":  # a top's cells are scattered: outline them together
-        geoms = shapely.buffer(geoms, ENVELOPE_CELLS * max(dem.cellsize))
-    frame.polygons(list(geoms), colour=kind["accent"], label=kind["polygons"])
+    frame.polygons(outlines, colour=kind["accent"], label=kind["polygons"])
     d = "col" if job_kind == "peaks" else "spill"
     n = len(drawn)
     size = 8.0 if n <= 40 else 6.0 if n <= 150 else 4.5  # crowded: smaller
@@ -335,8 +386,9 @@ def _shares(values) -> str:
 
 def _pooled_view(result: RunResult, features: FeatureSummary, main: str):
     """The DEM and the map's rasters pooled as a map pools them, read band by
-    band from a run kept on disk: (pooled DEM, layer (max), inside a feature
-    (any cell), on a top (any cell))."""
+    band (a run kept on disk computes only ``main`` of its layers): (the grid
+    drawn, layer (max), inside a feature (any cell), on a top (any cell)).
+    The grid drawn is the DEM itself when it is in memory and drawn unpooled."""
     dem = result.dem
     k, cols = pooling(dem.shape), dem.shape[1]
     ids = features.table["feature_id"].to_numpy()
@@ -351,7 +403,8 @@ def _pooled_view(result: RunResult, features: FeatureSummary, main: str):
     def tops(r0, r1):
         return (features.top[r0:r1, 0:cols] > 0).astype(float)
 
-    return (pooled_dem(dem, k), pool_bands(layer, dem.shape, k, np.nanmax),
+    grid = dem if k == 1 and not result.layout.on_disk else pooled_dem(dem, k)
+    return (grid, pool_bands(layer, dem.shape, k, np.nanmax),
             pool_bands(inside, dem.shape, k, np.nanmax) > 0,
             pool_bands(tops, dem.shape, k, np.nanmax) > 0 if result.job.kind == "peaks" else None)
 
@@ -469,7 +522,38 @@ def _drainage_map(result: RunResult, how: str) -> Figure:
     return frame.figure()
 
 
+@dataclass(frozen=True)
+class ChartSheet:
+    """What a ranking chart draws, gathered from a run by :func:`ranking_chart_sheet`
+    (the feature table, P(rank = k), the bimodal figures' clusters and the
+    text); :func:`draw_ranking_chart` draws it, here or in another process."""
+
+    kind: str  # "peaks" or "depressions"
+    table: object  # the feature table (DataFrame)
+    rank_share: object  # P(rank = k) per feature (DataFrame), or None
+    clusters: object  # each bimodal figure's two clusters (DataFrame), or None
+    min_presence: float
+    unit: str  # the figure's short unit
+    footer: str
+
+
+def ranking_chart_sheet(result: RunResult, features: FeatureSummary) -> ChartSheet:
+    """Gather what :func:`draw_ranking_chart` draws from a peaks or depressions run."""
+    job = result.job
+    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.unit_label,
+                            job.weight))
+    return ChartSheet(kind=job.kind, table=features.table, rank_share=features.rank_share,
+                      clusters=features.clusters, min_presence=job.min_presence, unit=unit,
+                      footer=run_footer(result))
+
+
 def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
+    """The ranking chart of a peaks or depressions run (:func:`draw_ranking_chart`
+    of :func:`ranking_chart_sheet`)."""
+    return draw_ranking_chart(ranking_chart_sheet(result, features))
+
+
+def draw_ranking_chart(sheet: ChartSheet) -> Figure:
     """Which feature is first, and how sure: the ranking chart of a peaks or
     depressions run.
 
@@ -490,11 +574,8 @@ def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
 
     from ..summary.ranks import RANK_MASS, ordinal, ranked_rows
 
-    job, table = result.job, features.table
-    kind = _KIND[job.kind]
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.unit_label,
-                            job.weight))
-    share = features.rank_share
+    table, unit, share = sheet.table, sheet.unit, sheet.rank_share
+    kind = _KIND[sheet.kind]
     rows, left_out = ranked_rows(table, share, RANKED)
     n = max(len(rows), 1)
     kmax = share.shape[1] if share is not None and share.shape[1] else 1
@@ -504,22 +585,22 @@ def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:
         ax = fig.subplots()
         ax.set_axis_off()
         ax.text(0.5, 0.5, f"No {kind['feature']} feature was counted in at least "
-                          f"{job.min_presence:.0%} of realisations.", ha="center",
+                          f"{sheet.min_presence:.0%} of realisations.", ha="center",
                 fontsize=FONT_PT + 1, transform=ax.transAxes)
     else:
         left, right = fig.subplots(1, 2, sharey=True,
                                    gridspec_kw=dict(width_ratios=[1.0, max(0.4, 0.08 * kmax)]))
-        _ranges(left, rows, kind, unit, features.clusters)
+        _ranges(left, rows, kind, unit, sheet.clusters)
         _rank_matrix(right, rows, share, kmax, kind)
         _group_bands((left, right), rows, share,
-                     "share a top" if job.kind == "peaks" else "share a floor")
+                     "share a top" if sheet.kind == "peaks" else "share a floor")
         left.set_ylim(n - 0.5, -0.5)
     more = (f"; {left_out} more in ranks.csv" if left_out else "")
     fig.suptitle(f"Which {kind['feature']} ranks first, and how sure?\nThe {len(rows)} of "
                  f"{len(table)} features that rank 1st-{ordinal(kmax)} in at least "
                  f"{RANK_MASS:.0%} of realisations, by median rank{more}",
                  fontsize=FONT_PT + 3, weight="bold")
-    fig.supxlabel("\n".join(textwrap.wrap(run_footer(result), 150) + textwrap.wrap(CAUTION, 150)),
+    fig.supxlabel("\n".join(textwrap.wrap(sheet.footer, 150) + textwrap.wrap(CAUTION, 150)),
                   fontsize=FONT_PT, color="0.25")
     return fig
 
@@ -668,80 +749,3 @@ def _rank_matrix(ax, rows, share, kmax, kind) -> None:
     label = "P(rank = k): share of realisations in which the feature ranks k-th"
     ax.set_xlabel("\n".join(textwrap.wrap(label, max(24, 6 * kmax))), fontsize=FONT_PT + 1)
     ax.set_xlim(0.5, kmax + 0.5)
-
-
-SWEEP_STATISTICS = (("credit_share", "credit_share_se", "share of total credit"),
-                    ("p_first", "p_first_se", "P(ranks first)"))
-_KERNEL_STYLE = (("o", "-"), ("s", "--"), ("^", "-."), ("D", ":"))
-
-
-def sweep_figure(result, *, units: str):
-    """One panel per statistic (credit share, P(ranks first)) against the error level.
-
-    Each of the sweep's top features is a colour, each kernel a marker and
-    line style; error bars are one standard error, and the kernels' points
-    are set slightly apart along the (log) error axis so their bars do not
-    hide each other. Legends sit outside the panels, beside the panel they
-    explain, and the figure is laid out with matplotlib's constrained layout
-    so nothing is cut off at one kernel or at four.
-
-    Parameters
-    ----------
-    result : terrain.sweep.SweepResult
-    units : str
-        Vertical units of the error level (x axis).
-    """
-    import matplotlib
-
-    matplotlib.use("Agg", force=False)
-    from matplotlib.figure import Figure
-
-    rows = result.rows
-    kernels = list(dict.fromkeys(rows["kernel"]))
-    what = "summit" if result.job.kind == "peaks" else "depression"
-    fig = Figure(figsize=(9.0, 7.4), dpi=110, layout="constrained")
-    axes = fig.subplots(len(SWEEP_STATISTICS), 1, sharex=True)
-    levels = sorted(set(rows["rmse"]))
-    features, kernel_keys = _sweep_lines(axes, rows, result.top, kernels, what)
-    for ax, (_, _, label) in zip(axes, SWEEP_STATISTICS):
-        ax.set_ylabel(label, fontsize=10)
-        ax.set_xscale("log")
-        ax.set_xticks(levels, [f"{v:g}" for v in levels])
-        ax.minorticks_off()
-        ax.grid(alpha=0.3)
-        ax.tick_params(labelsize=9)
-    axes[-1].set_xlabel(f"assumed error RMSE ({units})", fontsize=10)
-    axes[0].legend(handles=features, title=f"{what} feature", fontsize=9, title_fontsize=9,
-                   loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
-    axes[1].legend(handles=kernel_keys, title="error kernel", fontsize=9, title_fontsize=9,
-                   loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
-    fig.suptitle(f"How {what} attribution spreads as the assumed error grows\n"
-                 "(error bars: 1 standard error)", fontsize=11)
-    return fig
-
-
-def _sweep_lines(axes, rows, top, kernels, what):
-    """Draw every (feature, kernel) line on every statistic's panel; return legend handles."""
-    import matplotlib
-    from matplotlib.lines import Line2D
-
-    colours = matplotlib.colormaps["tab10"]
-    kern, fid = np.array(rows["kernel"]), np.array(rows["feature_id"])
-    rmse = np.array(rows["rmse"], dtype=float)
-    spread = 0.035 * (np.arange(len(kernels)) - (len(kernels) - 1) / 2)  # in natural-log units
-    for j, kernel in enumerate(kernels):
-        marker, style = _KERNEL_STYLE[j % len(_KERNEL_STYLE)]
-        for n_f, f in enumerate(top):
-            sel = (kern == kernel) & (fid == f)
-            order = np.argsort(rmse[sel])
-            x = rmse[sel][order] * np.exp(spread[j])
-            for ax, (col, se, _) in zip(axes, SWEEP_STATISTICS):
-                ax.errorbar(x, np.array(rows[col])[sel][order], yerr=np.array(rows[se])[sel][order],
-                            marker=marker, ms=4, capsize=2, lw=1.2, ls=style,
-                            color=colours(n_f % 10))
-    features = [Line2D([], [], color=colours(n_f % 10), lw=2, label=f"{what} #{f}")
-                for n_f, f in enumerate(top)]
-    kernel_keys = [Line2D([], [], color="0.25", marker=m, ls=ls, lw=1.2, label=k)
-                   for k, (m, ls) in zip(kernels, (_KERNEL_STYLE[j % len(_KERNEL_STYLE)]
-                                                   for j in range(len(kernels))))]
-    return features, kernel_keys

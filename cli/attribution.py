@@ -28,8 +28,7 @@ __all__ = ["peaks_cmd", "depressions_cmd", "demo_cmd"]
 
 def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None, label=None):
     """One peaks or depressions run, from options to files and the console table."""
-    from terrain.outputs.drawing import start_figure_process  # loaded when a command runs
-    from terrain.outputs.writer import write_credit_run
+    from terrain.outputs.writer import write_credit_run  # loaded when a command runs
     from terrain.summary.features import summarise_features
 
     model = error_model(opts)
@@ -39,23 +38,16 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     ex = execution(opts)
     head = header(dem_path, opts)
     out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
-    ex, layout = guard_memory(head, job, ex, opts, model=model, figure_process=True)
+    ex, layout = guard_memory(head, job, ex, opts, model=model)
     dem = read(dem_path, opts, on_disk=layout.on_disk)
     job = job.resolved(dem, model, layout=layout)
-    guard_summaries(head, job, ex, opts, model=model, layout=layout, figure_process=True)
-    # the figures' process imports its libraries while the realisations run
-    drawer = start_figure_process()
-    try:
-        res = run_job(dem, job, model, ex, opts, label=label or kind,
-                      headline=settings_line(job, dem.unit_label), layout=layout)
-        if model.range_m == 0:
-            warn(INDEPENDENT_ERROR)
-        features = summarise_features(res)
-        write_credit_run(out, res, features, input_path=str(dem_path),
-                         command_line=command_line(), drawer=drawer)
-    finally:
-        if drawer is not None:
-            drawer.close()
+    guard_summaries(head, job, ex, opts, model=model, layout=layout)
+    res = run_job(dem, job, model, ex, opts, label=label or kind,
+                  headline=settings_line(job, dem.unit_label), layout=layout)
+    if model.range_m == 0:
+        warn(INDEPENDENT_ERROR)
+    features = summarise_features(res)
+    write_credit_run(out, res, features, input_path=str(dem_path), command_line=command_line())
     if not opts["quiet"]:
         print_summary(features.table, kind=kind, units=dem.unit_label, n=res.n,
                       outdir=out, caution=CAUTION, share=features.rank_share,

@@ -156,16 +156,14 @@ def _distinct(checkpoints, inputs, outputs) -> None:
 
 
 def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int = 1,
-                 quicklook: bool = True, figure_process: bool = False):
+                 quicklook: bool = True):
     """Refuse a run that would not fit in memory, from the DEM's header alone;
     return the execution to use and its layout (``terrain.layout.RunLayout``:
-    blocked mode when only that fits, said once; out of core or not).
-    ``figure_process``: the figures are drawn in a second process."""
-    layout = choose_layout(head, job, ex, model=model, runs=runs, quicklook=quicklook,
-                           figure_process=figure_process)
+    blocked mode when only that fits, said once; out of core or not)."""
+    layout = choose_layout(head, job, ex, model=model, runs=runs, quicklook=quicklook)
     chosen = dataclasses.replace(ex, block=layout.block)
     check_memory(head, job, chosen, model=model, runs=runs, quicklook=quicklook,
-                 force=opts["force"], layout=layout, figure_process=figure_process)
+                 force=opts["force"], layout=layout)
     check_disk(head, job, chosen, layout)  # out of core: the grids must fit on disk
     if ex.block is None and layout.blocked:
         warn(f"a whole-grid run would not fit in memory; computing each realisation in blocks "
@@ -173,15 +171,13 @@ def guard_memory(head, job, ex: Execution, opts: dict, *, model=None, runs: int 
     return chosen, layout
 
 
-def guard_summaries(head, job, ex: Execution, opts: dict, *, model, layout,
-                    figure_process: bool = False) -> None:
+def guard_summaries(head, job, ex: Execution, opts: dict, *, model, layout) -> None:
     """Out of core, once the regions are made and before any realisation: refuse a
     run whose feature summaries (``len(job.regions)`` of them) would not fit beside
     the rest (no header tells how many there are)."""
     if layout.on_disk:
         check_memory(head, job, ex, model=model, force=opts["force"], layout=layout,
-                     features=len(job.regions), held=resident_memory(),
-                     figure_process=figure_process)
+                     features=len(job.regions), held=resident_memory())
 
 
 def _prepare_drawing(dem, layout) -> None:

@@ -26,7 +26,6 @@ compares with the memory available.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from dataclasses import dataclass
 
@@ -44,8 +43,8 @@ from .runner.protocols import Job
 
 __all__ = ["MemoryEstimate", "estimate_run", "check_memory", "choose_layout", "DEFAULT_BLOCK",
            "describe_memory", "read_bytes", "available_bytes", "PROCESS_BYTES", "DRAWING_BYTES",
-           "WORKER_PROCESS_BYTES", "FIGURE_PROCESS_BYTES", "LOG_BYTES_PER_PAIR", "grid_spacing",
-           "field_bytes", "check_field", "scratch_bytes", "check_disk"]
+           "WORKER_PROCESS_BYTES", "LOG_BYTES_PER_PAIR", "grid_spacing", "field_bytes",
+           "check_field", "scratch_bytes", "check_disk"]
 
 KiB, MiB = 2 ** 10, 2 ** 20
 # Resident size of the processes before their arrays (interpreter, numpy, GDAL,
@@ -61,12 +60,6 @@ WORKER_PROCESS_BYTES = 240 * MiB
 # adjustText and the font list (measured: 55-60 MiB resident after the first
 # figure is saved; rounded up).
 DRAWING_BYTES = 64 * MiB
-# A peaks or depressions command line draws its figures in a second process
-# (terrain.outputs.drawing) that imports the plotting libraries and cairn's
-# summaries: measured 284-287 MiB resident on a 400 x 400 run before its arrays
-# (rounded up as PROCESS_BYTES is); it holds one map's sheet and its rendering,
-# QUICKLOOK_SCRATCH per cell drawn (measured: +110 MiB at 1024 x 1024).
-FIGURE_PROCESS_BYTES = 360 * MiB
 # Bytes per cell (measured or counted, as noted).
 READ_SCRATCH = 4  # nodata mask and boolean temporaries while reading (counted)
 CHECKSUM_SCRATCH = 13  # float64 copy of the DEM while it is hashed (counted)
@@ -138,7 +131,6 @@ class MemoryEstimate:
     kernel: int = 0
     on_disk: bool = False
     features: int = 0
-    figures: int = 0  # the figures' process (0 without one)
 
     def describe(self) -> str:
         """One line, e.g. ``~1.20 GiB = 0.60 GiB + 2 workers x 0.30 GiB (250 bytes
@@ -146,8 +138,6 @@ class MemoryEstimate:
         text = f"~{_gib(self.total)}"
         if self.workers:
             text += f" = {_gib(self.parent)} + {self.workers} workers x {_gib(self.worker)}"
-        if self.figures:
-            text += f"{'' if self.workers else ' = ' + _gib(self.parent)} + figures {_gib(self.figures)}"
         if self.kernel > self.total / 10:
             text += f", of which {_gib(self.kernel)} to compute the correlated error's kernel"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
@@ -193,7 +183,7 @@ def _planned(ex) -> int:
 def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
                  model: ErrorModel | None = None, runs: int = 1,
                  quicklook: bool = True, layout: RunLayout | None = None,
-                 features: int = 0, figure_process: bool = False) -> MemoryEstimate:
+                 features: int = 0) -> MemoryEstimate:
     """The bytes a run of ``job`` on ``grid`` needs at its peak, in every process.
 
     Parameters
@@ -217,11 +207,6 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
         Out of core: the feature regions of the DEM as given, once they are
         made (``len(job.regions)``), whose summaries are held from the summary
         phase through the writing (:data:`FEATURE_BYTES` each); 0 before.
-    figure_process : bool
-        Whether the quick-looks are drawn in a second process
-        (:mod:`terrain.outputs.drawing`): :data:`FIGURE_PROCESS_BYTES` and
-        ``QUICKLOOK_SCRATCH`` per cell drawn. This process still counts its
-        own drawing (it draws what that process did not).
     """
     ex = ex if ex is not None else Execution()
     layout = layout if layout is not None else plan_layout(grid.shape, ex.block, job=job,
@@ -235,12 +220,9 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     local = 0 if backend == "serial" or (backend == "dask" and ex.scheduler) else ex.n_workers
     dem = value + 1
     block = layout.block
-    figures = (FIGURE_PROCESS_BYTES + QUICKLOOK_SCRATCH * min(cells, QUICKLOOK_CELLS)
-               if quicklook and figure_process else 0)
     if layout.on_disk:  # DEM, region labels and counts on disk
-        est = _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs,
-                           quicklook, field, features)
-        return dataclasses.replace(est, total=est.total + figures, figures=figures)
+        return _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs,
+                            quicklook, field, features)
     labels = 4 if block else 0  # blocked: the region labels, read at birth cells
     held = dem + CONTEXT + kept + labels + parent_job + SWEEP_KEPT * (runs - 1)
     here = 0  # bytes of this process that do not scale with the grid's cells
@@ -269,9 +251,9 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
               + max(max(phases.values()) * cells, dem * cells + build) + log + here
               + kept + (0 if local else tile))
     worker = WORKER_PROCESS_BYTES + worker_bytes + kept + tile if local else 0
-    return MemoryEstimate(total=parent + local * worker + figures, parent=parent, worker=worker,
+    return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells, per_cell={**phases, "worker": worker_cell},
-                          block=int(block) if block else None, kernel=build, figures=figures)
+                          block=int(block) if block else None, kernel=build)
 
 
 def _draw_bytes(model: ErrorModel | None) -> int:
@@ -327,7 +309,7 @@ def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:
 
 def choose_layout(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
                   model: ErrorModel | None = None, runs: int = 1,
-                  quicklook: bool = True, figure_process: bool = False) -> RunLayout:
+                  quicklook: bool = True) -> RunLayout:
     """The run's layout, decided once (:mod:`terrain.layout`): the one asked for
     when ``ex`` names a block (or the job has no blocked mode); else the whole
     grid when it fits in memory, blocks of :data:`DEFAULT_BLOCK` when only
@@ -339,7 +321,7 @@ def choose_layout(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
     have = available_bytes()
     for layout in options:
         if estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook,
-                        layout=layout, figure_process=figure_process).total <= have:
+                        layout=layout).total <= have:
             return layout
     return options[0]
 
@@ -347,14 +329,14 @@ def choose_layout(grid: RasterHeader | Dem, job: Job, ex: Execution, *,
 def check_memory(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None, *,
                  model: ErrorModel | None = None, runs: int = 1, quicklook: bool = True,
                  force: bool = False, layout: RunLayout | None = None,
-                 features: int = 0, held: int = 0, figure_process: bool = False) -> MemoryEstimate:
+                 features: int = 0, held: int = 0) -> MemoryEstimate:
     """The run's :func:`estimate_run` (in ``layout``, with ``features``, see there);
     raises :class:`MemoryGuardError` when it exceeds the memory available (unless
     ``force``). ``held``: bytes this process holds already, which the estimate
     counts and the memory available no longer shows (a check made mid-run)."""
     check_field(grid, model)
     est = estimate_run(grid, job, ex, model=model, runs=runs, quicklook=quicklook, layout=layout,
-                       features=features, figure_process=figure_process)
+                       features=features)
     have = available_bytes() + held
     source = getattr(grid, "source", "the DEM")
     if est.kernel > have and not force:

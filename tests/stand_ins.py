@@ -46,20 +46,15 @@ def no_drawing_to_prepare(*args, **kwargs) -> None:
     """A stand-in for ``mapframe.prepare_drawing``: nothing will be drawn."""
 
 
-def no_figure_process(*args, **kwargs) -> None:
-    """A stand-in for ``drawing.start_figure_process``: the stand-ins are drawn here."""
-
-
 def targets():
     """(module, attribute, stand-in) for every name :func:`install` replaces."""
     import importlib
 
-    from terrain.outputs import drawing, mapframe
+    from terrain.outputs import mapframe
 
     out = [(importlib.import_module(f"terrain.outputs.{module}"), name, blank_figure)
            for module, name in FIGURES]
     out.append((mapframe, "prepare_drawing", no_drawing_to_prepare))
-    out.append((drawing, "start_figure_process", no_figure_process))
     return out
 
 

@@ -849,23 +849,9 @@ def _start_two_workers(dem, out, *extra):
                          stderr=subprocess.PIPE, text=True)
     _STARTED.append(p)
     deadline = time.time() + 120
-    while time.time() < deadline and len(_workers(p.pid)) < 2:
+    while time.time() < deadline and len(_children(p.pid)) < 2:
         time.sleep(0.01)  # the workers are being spawned
-    return p, _workers(p.pid)
-
-
-def _workers(pid):
-    """The children of ``pid`` but its figures' process (terrain.outputs.drawing)."""
-    out = []
-    for k in _children(pid):
-        try:
-            with open(f"/proc/{k}/cmdline", "rb") as fh:
-                if b"terrain.outputs.drawing" in fh.read():
-                    continue
-        except OSError:
-            continue
-        out.append(k)
-    return out
+    return p, _children(p.pid)
 
 
 @pytest.mark.slow

@@ -150,8 +150,7 @@ def test_estimate_covers_the_measured_peak_at_most_twice(dems, tmp_path, case):
     block = int(extra[extra.index("--block") + 1]) if "--block" in extra else None
     est = estimate_run(read_header(dem), job,
                        Execution(realisations=n, workers=workers, block=block),
-                       runs=runs, quicklook=quicklook,
-                       figure_process=command in ("peaks", "depressions"))
+                       runs=runs, quicklook=quicklook)
     print(f"{case}: measured {measured / 2**20:.0f} MiB, estimate {est.total / 2**20:.0f} MiB")
     assert measured <= est.total <= 2 * measured, (measured / 2**20, est.total / 2**20)
 

@@ -203,14 +203,15 @@ def _outlets(frame: MapFrame, outlets, *, labelled: bool = True) -> None:
 @dataclass(frozen=True)
 class FeatureMapSheet:
     """What a peaks or depressions map draws, gathered from a run by
-    :func:`feature_map_sheet`; :func:`draw_feature_map` draws it, in this
-    process or in another (:mod:`terrain.outputs.drawing`).
+    :func:`feature_map_sheet`; :func:`draw_feature_map` draws it. Gathering
+    reads the run (in memory or on disk, the same way); drawing reads only
+    the sheet.
 
     The rasters are on the grid drawn (pooled as :class:`MapFrame` pools, so
     at most :data:`terrain.layers.MAX_PIXELS` cells a side whatever the
     DEM's size): a sheet holds a few float64 arrays of at most
     :data:`terrain.layers.QUICKLOOK_CELLS` cells and the drawn features'
-    outlines, and pickles small.
+    outlines.
     """
 
     kind: str  # "peaks" or "depressions"
@@ -526,7 +527,7 @@ def _drainage_map(result: RunResult, how: str) -> Figure:
 class ChartSheet:
     """What a ranking chart draws, gathered from a run by :func:`ranking_chart_sheet`
     (the feature table, P(rank = k), the bimodal figures' clusters and the
-    text); :func:`draw_ranking_chart` draws it, here or in another process."""
+    text); :func:`draw_ranking_chart` draws it."""
 
     kind: str  # "peaks" or "depressions"
     table: object  # the feature table (DataFrame)

@@ -270,16 +270,11 @@ def vector_descriptions(result, names, *, note: str = "") -> dict:
 
 @published(lambda result: result.job.kind)
 def write_credit_run(outdir: str | Path, result, features, *, input_path: str | None,
-                     command_line: str | None = None, drawer=None) -> None:
+                     command_line: str | None = None) -> None:
     """Write a peaks or depressions run: layers, feature tables, quick-look, ranking chart,
     run.json.
 
     ``features`` is a :class:`terrain.summary.features.FeatureSummary`.
-    ``drawer`` (a started :class:`terrain.outputs.drawing.FigureProcess`,
-    optional) draws the figures in a second process while the layers and
-    tables are written here; what it does not make is drawn here after them.
-    Without it, the layers and tables are written in a second thread while
-    the figures are drawn here.
     """
     out = Path(outdir)
     kind = result.job.kind
@@ -298,24 +293,12 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
             if features.links is not None:  # relations: parents.csv / spills.csv
                 write_csv(out / LINK_CSV[kind], rounded(features.links, LINK_COLUMN_KINDS))
 
-    figures = {"quicklook.png": (plot.feature_map, plot.draw_feature_map, plot.feature_map_sheet),
-               "ranking.png": (plot.ranking_chart, plot.draw_ranking_chart,
-                               plot.ranking_chart_sheet)}
-    if drawer is not None:  # figures drawn in the second process while the files are written
-        with clock("figures"):
-            drawer.draw({out / name: (draw, functools.partial(sheet, result, features))
-                         for name, (_, draw, sheet) in figures.items()})
-            files()
-            missing = {Path(d).name for d in drawer.wait()}
-            with plain_text():
-                for name in missing:
-                    write_figure(out / name, figures[name][0](result, features))
-    else:
-        with _Beside(files), clock("figures"), plain_text():  # files written while drawing
-            drawn = {name: make(result, features) for name, (make, *_) in figures.items()}
-        with clock("figures"), plain_text():
-            for name, fig in drawn.items():
-                write_figure(out / name, fig)
+    with _Beside(files), clock("figures"), plain_text():  # files written while figures are drawn
+        figures = {"quicklook.png": plot.feature_map(result, features),
+                   "ranking.png": plot.ranking_chart(result, features)}
+    with clock("figures"), plain_text():
+        for name, fig in figures.items():
+            write_figure(out / name, fig)
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**result.job.describe(), "features": features.settings})
     run.update({"features": int(len(features.table)),

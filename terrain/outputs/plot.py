@@ -218,7 +218,7 @@ class FeatureMapSheet:
     grid: Dem  # the grid drawn (the DEM, or its pooled copy)
     shade: np.ndarray | None  # its hillshade (None: MapFrame shades ``grid``)
     values: np.ndarray  # the main layer (NaN: nodata)
-    inside: np.ndarray  # on a feature counted in the table (any cell of a pooled block)
+    inside: np.ndarray | None  # depressions: on a counted feature (any cell of a pooled block)
     tops: np.ndarray | None  # peaks: on a top (any cell of a pooled block)
     drawn: object  # the table's rows drawn (DataFrame)
     outlines: list  # each drawn row's outline (shapely; None where it has none)
@@ -239,24 +239,29 @@ def feature_map_sheet(result: RunResult, features: FeatureSummary) -> FeatureMap
     run's is made from the pooled DEM when drawn.
     """
     dem, job, table = result.dem, result.job, features.table
-    kind = _KIND[job.kind]
-    main = layer_name(job.kind, kind["main"])
+    main = layer_name(job.kind, _KIND[job.kind]["main"])
     groups = _label_groups(table)
     drawn = table[(table["p_above"] >= LABEL_PRESENCE)
                   | table["group"].isin([g for g, _ in groups])]
-    k = pooling(dem.shape)
     on_disk = result.layout.on_disk
     grid, values, inside, tops = _pooled_view(result, features, main)
     geoms = features.frames[LAYER_NAMES[job.kind][0]].set_index("feature_id").geometry
     geoms = geoms.reindex(drawn["feature_id"]).to_numpy()  # None where a feature has no shape
     if job.kind == "peaks":  # a top's cells are scattered: outline them together
         geoms = shapely.buffer(geoms, ENVELOPE_CELLS * max(dem.cellsize))
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), dem.unit_label, job.weight))
     return FeatureMapSheet(
-        kind=job.kind, grid=grid, shade=None if on_disk else hillshade(dem, k=k), values=values,
-        inside=inside, tops=tops, drawn=drawn, outlines=list(geoms), groups=groups,
-        features=len(table), rank_share=features.rank_share, unit=unit,
-        bar=bar_label(main, dem.unit_label), footer=run_footer(result, main))
+        kind=job.kind, grid=grid, shade=None if on_disk else hillshade(dem, k=pooling(dem.shape)),
+        values=values, inside=inside, tops=tops, drawn=drawn, outlines=list(geoms),
+        groups=groups, features=len(table), rank_share=features.rank_share,
+        unit=_figure_unit(result), bar=bar_label(main, dem.unit_label),
+        footer=run_footer(result, main))
+
+
+def _figure_unit(result: RunResult) -> str:
+    """The short unit of a peaks or depressions run's figure (prominence, depth)."""
+    job = result.job
+    return short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.unit_label,
+                            job.weight))
 
 
 def feature_map(result: RunResult, features: FeatureSummary) -> Figure:
@@ -388,8 +393,9 @@ def _shares(values) -> str:
 def _pooled_view(result: RunResult, features: FeatureSummary, main: str):
     """The DEM and the map's rasters pooled as a map pools them, read band by
     band (a run kept on disk computes only ``main`` of its layers): (the grid
-    drawn, layer (max), inside a feature (any cell), on a top (any cell)).
-    The grid drawn is the DEM itself when it is in memory and drawn unpooled."""
+    drawn, layer (max), depressions: inside a feature (any cell), peaks: on a
+    top (any cell)); None for what the other kind's map does not draw. The
+    grid drawn is the DEM itself when it is in memory and drawn unpooled."""
     dem = result.dem
     k, cols = pooling(dem.shape), dem.shape[1]
     ids = features.table["feature_id"].to_numpy()
@@ -405,9 +411,10 @@ def _pooled_view(result: RunResult, features: FeatureSummary, main: str):
         return (features.top[r0:r1, 0:cols] > 0).astype(float)
 
     grid = dem if k == 1 and not result.layout.on_disk else pooled_dem(dem, k)
+    peaks = result.job.kind == "peaks"
     return (grid, pool_bands(layer, dem.shape, k, np.nanmax),
-            pool_bands(inside, dem.shape, k, np.nanmax) > 0,
-            pool_bands(tops, dem.shape, k, np.nanmax) > 0 if result.job.kind == "peaks" else None)
+            None if peaks else pool_bands(inside, dem.shape, k, np.nanmax) > 0,
+            pool_bands(tops, dem.shape, k, np.nanmax) > 0 if peaks else None)
 
 
 def _round_up(x: float) -> float:
@@ -541,11 +548,9 @@ class ChartSheet:
 def ranking_chart_sheet(result: RunResult, features: FeatureSummary) -> ChartSheet:
     """Gather what :func:`draw_ranking_chart` draws from a peaks or depressions run."""
     job = result.job
-    unit = short_unit(units(layer_name(job.kind, "birth_credit"), result.dem.unit_label,
-                            job.weight))
     return ChartSheet(kind=job.kind, table=features.table, rank_share=features.rank_share,
-                      clusters=features.clusters, min_presence=job.min_presence, unit=unit,
-                      footer=run_footer(result))
+                      clusters=features.clusters, min_presence=job.min_presence,
+                      unit=_figure_unit(result), footer=run_footer(result))
 
 
 def ranking_chart(result: RunResult, features: FeatureSummary) -> Figure:

@@ -22,7 +22,7 @@ Every public name is re-exported here: ``from terrain.io import X``.
 """
 
 from ._base import LOCK_NAME, PUBLISHING, STAGING_PREFIX, free_bytes
-from .checked import atomic_path
+from .checked import atomic_path, discard_partial
 from .files import (
     available_memory,
     file_exists,
@@ -91,7 +91,7 @@ from .scratch import (
 )
 
 __all__ = ["read_dem", "read_header", "RasterWindows", "dem_windows", "SENTINELS", "read_outlets",
-           "dem_warnings", "atomic_path",
+           "dem_warnings", "atomic_path", "discard_partial",
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "release_freed_memory",

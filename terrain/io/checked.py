@@ -6,6 +6,7 @@ a full disk is one :class:`~terrain.errors.OutputError`.
 from __future__ import annotations
 
 import contextlib
+import glob
 import json
 import os
 import re
@@ -83,6 +84,15 @@ def atomic_path(dest: str | os.PathLike, *, bands: int | None = None):
         if tmp is not None:
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(tmp)
+
+
+def discard_partial(dest: str | os.PathLike) -> None:
+    """Remove the temporary files an :func:`atomic_path` for ``dest`` left
+    beside it when its process was killed mid-write (``.{name}.*.part*``)."""
+    dest = Path(dest)
+    for part in dest.parent.glob(f".{glob.escape(dest.name)}.*.part*"):
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(part)
 
 
 def write_error(dest: Path, problem, native: str = "") -> BaseException:

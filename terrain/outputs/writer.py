@@ -46,6 +46,7 @@ from ..summary.ranks import RANK_COLUMN_KINDS
 from ..summary.relations import LINK_COLUMN_KINDS, LINK_CSV
 from ..version import __version__
 from . import plot, sweepchart
+from .beside import plain_text, write_beside
 from .caution import CAUTION
 from .manifest import MANIFEST, VECTOR_LAYERS, replace_patterns
 from .tables import rounded
@@ -74,21 +75,6 @@ def published(command: Callable[[object], str]) -> Callable:
         return wrapper
 
     return decorate
-
-
-@contextlib.contextmanager
-def plain_text():
-    """Figures made and saved in this block show text as given: a ``$`` in an
-    outlet id or attribute is not matplotlib's math markup (an unbalanced one
-    would fail the figure), and a character the font lacks is drawn as a
-    box, not announced as a warning."""
-    import warnings
-
-    import matplotlib
-
-    with matplotlib.rc_context({"text.parse_math": False}), warnings.catch_warnings():
-        warnings.filterwarnings("ignore", r"Glyph \d+ .*missing from", UserWarning)
-        yield
 
 
 def _now():
@@ -144,6 +130,7 @@ class _Clock:
     def __init__(self):
         self.seconds: dict[str, float] = {}
         self.span = [math.inf, -math.inf]  # first start, last end of any step
+        self.forked: list[str] = []  # the files a forked copy wrote
 
     @contextlib.contextmanager
     def __call__(self, step: str):
@@ -156,14 +143,26 @@ class _Clock:
             self.seconds[step] = self.seconds.get(step, 0.0) + t1 - t0
             self.span[1] = max(self.span[1], t1)
 
+    def record(self, step: str, seconds: float, start: float, end: float, *,
+               files: tuple[str, ...] = ()) -> None:
+        """Add ``seconds`` of ``step`` done in a forked copy of this process
+        between ``start`` and ``end`` (this process's ``time.perf_counter``);
+        ``files``: what it wrote (``timings``' ``forked``)."""
+        self.seconds[step] = self.seconds.get(step, 0.0) + seconds
+        self.span = [min(self.span[0], start), max(self.span[1], end)]
+        self.forked += list(files)
+
     def timings(self, realisations_s: float) -> dict:
         """Seconds per step and the shares of the run's wall time.
 
         The run's wall time is the realisations' plus the writing's (reading
         the DEM and summarising are left out, so the shares are upper bounds);
         ``layers`` is the GeoTIFFs, ``tables`` the GeoPackage and CSV files,
-        ``figures`` drawing and saving the PNGs; ``writing`` is the wall time
-        of all of it (less than their sum when they overlap).
+        ``figures`` drawing and saving the PNGs (in both processes when one
+        is drawn in a forked copy, named in ``forked``); ``writing`` is the
+        wall time of all of it,
+        from the first step's start to the last one's end (less than the
+        steps' sum when they overlap).
         """
         writing = max(self.span[1] - self.span[0], 0.0) if self.seconds else 0.0
         run = realisations_s + writing
@@ -171,64 +170,11 @@ class _Clock:
         out.update({f"{k}_s": round(v, 3) for k, v in self.seconds.items()})
         out.update({"writing_s": round(writing, 3), "run_s": round(run, 3),
                     "writing_share": round(writing / run, 4) if run > 0 else None})
+        if self.forked:
+            out["forked"] = self.forked
         if "layers" in self.seconds:
             out["layers_share"] = round(self.seconds["layers"] / run, 4) if run > 0 else None
         return out
-
-
-def _import_writers() -> None:
-    """The modules the writer thread imports on first use, imported here in
-    the caller's thread first: two threads importing at once can deadlock on
-    CPython 3.11's module locks (seen once in ~200 runs, with a third thread
-    importing too)."""
-    import sqlite3  # noqa: F401
-    import zipfile  # noqa: F401
-
-    import pyogrio  # noqa: F401
-    import rasterio  # noqa: F401
-    import rasterio.shutil  # noqa: F401
-    import rasterio.transform  # noqa: F401
-
-
-class _Beside:
-    """Run ``fn()`` in a second thread while the block runs; on leaving, wait for
-    it and raise what it raised. GDAL and the GeoPackage driver release the
-    interpreter while they compress and write, so layers and tables are
-    written while the figures' labels are placed; each file still goes
-    through :func:`terrain.io.atomic_path`, and the figures are saved only
-    after the thread is done (atomic_path watches the process's error
-    stream, one file at a time)."""
-
-    def __init__(self, fn: Callable[[], None]):
-        import threading
-
-        self.error: BaseException | None = None
-        self.thread = threading.Thread(target=self._run, args=(fn,), name="cairn-writer",
-                                       daemon=True)
-
-    def _run(self, fn) -> None:
-        try:
-            fn()
-        except BaseException as exc:  # handed to the caller's thread
-            self.error = exc
-
-    def __enter__(self):
-        _import_writers()
-        self.thread.start()
-        return self
-
-    def __exit__(self, *exc):
-        interrupt = None
-        while self.thread.is_alive():  # a second Ctrl-C must not leave it writing on
-            try:
-                self.thread.join()
-            except KeyboardInterrupt as e:
-                interrupt = e
-        if interrupt is not None:
-            raise interrupt
-        if self.error is not None and exc[0] is None:
-            raise self.error
-        return False
 
 
 def write_layers(outdir: Path, result, *, command_line: str | None) -> None:
@@ -293,12 +239,9 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
             if features.links is not None:  # relations: parents.csv / spills.csv
                 write_csv(out / LINK_CSV[kind], rounded(features.links, LINK_COLUMN_KINDS))
 
-    with _Beside(files), clock("figures"), plain_text():  # files written while figures are drawn
-        figures = {"quicklook.png": plot.feature_map(result, features),
-                   "ranking.png": plot.ranking_chart(result, features)}
-    with clock("figures"), plain_text():
-        for name, fig in figures.items():
-            write_figure(out / name, fig)
+    write_beside(out, clock, files,  # figures drawn while the files are written
+                 {"quicklook.png": lambda: plot.feature_map(result, features),
+                  "ranking.png": lambda: plot.ranking_chart(result, features)})
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**result.job.describe(), "features": features.settings})
     run.update({"features": int(len(features.table)),
@@ -321,17 +264,20 @@ def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str 
     out = Path(outdir)
     created = _now()
     clock = _Clock()
-    with clock("layers"):
-        write_layers(out, result, command_line=command_line)
-    if summary.frames:
-        with clock("tables"):
-            write_frames(out / "catchments.gpkg", summary.frames,
-                         vector_descriptions(result, summary.frames, note=DRAINAGE_NOTE))
-            for name, frame in summary.frames.items():
-                write_csv(out / f"{name}.csv",
-                          rounded(frame, FRAME_COLUMN_KINDS[name], geographic=result.dem.geographic))
-    with clock("figures"), plain_text():
-        write_figure(out / "quicklook.png", plot.catchment_map(result, summary))
+
+    def files():
+        with clock("layers"):
+            write_layers(out, result, command_line=command_line)
+        if summary.frames:
+            with clock("tables"):
+                write_frames(out / "catchments.gpkg", summary.frames,
+                             vector_descriptions(result, summary.frames, note=DRAINAGE_NOTE))
+                for name, frame in summary.frames.items():
+                    write_csv(out / f"{name}.csv", rounded(frame, FRAME_COLUMN_KINDS[name],
+                                                           geographic=result.dem.geographic))
+
+    write_beside(out, clock, files,  # the map drawn while the files are written
+                 {"quicklook.png": lambda: plot.catchment_map(result, summary)})
     job = result.job
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**job.describe(), "outlets_file": outlets_path})

@@ -39,6 +39,7 @@ import numpy as np
 from ..errors import CairnError, SchedulerError, WorkerError
 from ..io import load_shared, save_shared, scratch_folder, source_bytes
 from ..noise import ErrorSampler
+from ..processes import die_with_parent, spawning
 
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", "refuse_unguarded",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
@@ -181,46 +182,10 @@ def init_worker(ctx: Context | str | None, parent: int) -> None:
     # Ctrl-C is the parent's to handle: the worker was started with SIGINT
     # blocked (see spawning) and from here on ignores it too
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    _die_with_parent(parent)
+    die_with_parent(parent)
     if os.getppid() != parent:  # the parent died before we were ready
         os._exit(1)
     _CTX = load_shared(ctx) if isinstance(ctx, str) else ctx
-
-
-def _die_with_parent(parent: int) -> None:
-    """Ask Linux to kill this process when its parent dies (prctl
-    PR_SET_PDEATHSIG); elsewhere a no-op."""
-    if not sys.platform.startswith("linux"):
-        return
-    import ctypes
-    import signal
-
-    try:
-        ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)
-    except (OSError, AttributeError):
-        pass
-
-
-class spawning:
-    """Block SIGINT in this thread while worker processes start: a spawned
-    process inherits the blocked signal, so a Ctrl-C during its start-up
-    never reaches it (the parent receives it when the block ends)."""
-
-    def __enter__(self):
-        import signal
-        import threading
-
-        self.old = None
-        if hasattr(signal, "pthread_sigmask") and threading.current_thread() is threading.main_thread():
-            self.old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
-        return self
-
-    def __exit__(self, *exc):
-        import signal
-
-        if self.old is not None:
-            signal.pthread_sigmask(signal.SIG_SETMASK, self.old)
-        return False
 
 
 def _chunk_in_worker(start: int, stop: int):

@@ -1,0 +1,164 @@
+"""A run's figures drawn beside its layers and tables.
+
+Drawing a figure holds the interpreter's lock, so in one process the
+figures and the writing of layers and tables take turns on one core. On
+Linux, in a process running no other thread, :func:`write_beside` forks:
+the copy draws and saves the first figure (the map, the costliest) while
+this process writes the layers and tables and then draws the others, each
+on a core of its own. The copy imports nothing and starts
+in milliseconds (its memory is this process's, shared until either side
+writes to a page), draws from the same arrays with the same code, so its
+PNG is the bytes this process would write. It dies with this process and
+ignores Ctrl-C (this process handles it and kills the copy), and when it
+fails or dies this process draws its figure itself, so a figure's error is
+raised here as every other writing error is.
+
+Elsewhere (no ``fork``, or another thread running: a fork copies only the
+calling thread, and a lock another thread held would stay held in the copy
+for ever) the files are written and then the figures drawn, one after the
+other. (Writing the files in a second thread while the figures were drawn
+was tried and dropped: Python's warning filters are one list for all
+threads, and ``warnings.catch_warnings`` in two threads at once can leave a
+filter set or lose one.)
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import struct
+import sys
+import threading
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+from ..io import discard_partial, write_figure
+from ..processes import die_with_parent, spawning
+
+__all__ = ["write_beside", "plain_text", "can_fork"]
+
+
+@contextlib.contextmanager
+def plain_text():
+    """Figures made and saved in this block show text as given: a ``$`` in an
+    outlet id or attribute is not matplotlib's math markup (an unbalanced one
+    would fail the figure), and a character the font lacks is drawn as a
+    box, not announced as a warning."""
+    import warnings
+
+    import matplotlib
+
+    with matplotlib.rc_context({"text.parse_math": False}), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", r"Glyph \d+ .*missing from", UserWarning)
+        yield
+
+
+def can_fork() -> bool:
+    """Whether the figures may be drawn in a forked copy: on Linux, with no
+    other Python thread running in this process."""
+    return sys.platform.startswith("linux") and hasattr(os, "fork") \
+        and threading.active_count() == 1
+
+
+def write_beside(out: Path, clock, files: Callable[[], None],
+                 figures: dict[str, Callable[[], object]]) -> None:
+    """Run ``files()`` (layers and tables) and save each of ``figures`` (file
+    name: a function returning a matplotlib Figure) as ``out / name``, side by
+    side; ``clock(step)`` times each step (``figures`` for the figures, in
+    both processes) and ``clock.record`` takes what a forked copy did.
+    Forked, the copy draws the first figure (put the costliest first) and
+    this process the others once the files are written.
+
+    Returns when every file is written; raises what ``files()`` or a figure
+    raised (a figure's error after the layers and tables are written).
+    """
+    if not can_fork():  # one after the other
+        files()
+        with clock("figures"), plain_text():
+            for name, make in figures.items():
+                write_figure(out / name, make())
+        return
+    first, *rest = figures.items()
+    copy = _FigureCopy(out, dict([first]))
+    try:
+        files()
+        with clock("figures"), plain_text():  # the rest here, once the files are written
+            for name, make in rest:
+                write_figure(out / name, make())
+        seconds = copy.wait()
+    finally:
+        copy.stop()
+    if seconds is not None:
+        clock.record("figures", seconds, copy.started, copy.ended, files=(first[0],))
+        return
+    name, make = first  # the copy failed or died: what it left, then its figure here
+    discard_partial(out / name)
+    with clock("figures"), plain_text():
+        write_figure(out / name, make())
+
+
+class _FigureCopy:
+    """A forked copy of this process that saves ``figures`` into ``out`` and
+    reports the seconds it took through a pipe (8 bytes), then exits; it
+    exits with status 1 and reports nothing when anything fails."""
+
+    def __init__(self, out: Path, figures: dict[str, Callable[[], object]]):
+        parent = os.getpid()
+        self.started = self.ended = time.perf_counter()
+        self.read, write = os.pipe()
+        with spawning():  # SIGINT blocked until the copy ignores it
+            self.pid = os.fork()
+            if self.pid == 0:
+                _draw_in_copy(parent, write, out, figures)  # never returns
+        os.close(write)
+
+    def wait(self) -> float | None:
+        """Wait for the copy; its seconds, or None when it failed or died."""
+        _, status = os.waitpid(self.pid, 0)
+        self.pid = None
+        self.ended = time.perf_counter()
+        report = os.read(self.read, 8)
+        ok = os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and len(report) == 8
+        return struct.unpack("d", report)[0] if ok else None
+
+    def stop(self) -> None:
+        """Kill the copy if it still runs (this process failed or was
+        interrupted), reap it, close the pipe."""
+        import signal
+
+        if self.pid is not None:
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(self.pid, signal.SIGKILL)
+            with contextlib.suppress(ChildProcessError):
+                os.waitpid(self.pid, 0)
+            self.pid = None
+        if self.read is not None:
+            os.close(self.read)
+            self.read = None
+
+
+def _draw_in_copy(parent: int, write: int, out: Path, figures) -> None:
+    """The forked copy's whole life: draw, save, report, exit. Nothing of the
+    parent's stack below the fork runs here (``os._exit``: no ``finally``,
+    no ``atexit``, no buffers flushed twice)."""
+    status = 1
+    try:
+        import signal
+
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles Ctrl-C and kills us
+        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+        die_with_parent(parent)
+        if os.getppid() != parent:
+            os._exit(1)
+        t0 = time.perf_counter()
+        with plain_text():
+            for name, make in figures.items():
+                write_figure(out / name, make())
+        os.write(write, struct.pack("d", time.perf_counter() - t0))
+        status = 0
+    except BaseException:  # the parent draws the figures again and raises what fails
+        pass
+    finally:
+        os._exit(status)

@@ -1,0 +1,134 @@
+"""The map drawn in a forked copy while the layers and tables are written
+(terrain.outputs.beside): the same PNG bytes as drawn here, a copy that dies
+leaves its figure (and nothing else) to this process, an interrupted writer
+takes its copy with it, and no fork while another thread runs."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import threading
+import time
+
+import numpy as np
+import pytest
+
+from terrain.outputs import beside
+from terrain.outputs.writer import _Clock
+
+from .conftest import cli_command, smooth_terrain, write_tif
+
+pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"),
+                                reason="figures are drawn in a forked copy on Linux only")
+
+
+def _figure(text: str):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(2, 1), dpi=50)
+    FigureCanvasAgg(fig)
+    fig.text(0.1, 0.5, text)
+    return fig
+
+
+def test_a_forked_copy_writes_the_bytes_drawn_here(tmp_path, monkeypatch):
+    figures = {"a.png": lambda: _figure("map"), "b.png": lambda: _figure("chart")}
+    done = []
+    for name, fork in (("forked", True), ("here", False)):
+        (tmp_path / name).mkdir()
+        monkeypatch.setattr(beside, "can_fork", lambda fork=fork: fork)
+        clock = _Clock()
+        beside.write_beside(tmp_path / name, clock, lambda name=name: done.append(name), figures)
+        assert clock.forked == (["a.png"] if fork else [])  # the first figure, in the copy
+        assert clock.seconds["figures"] > 0
+    assert done == ["forked", "here"]
+    for name in figures:
+        assert (tmp_path / "forked" / name).read_bytes() == (tmp_path / "here" / name).read_bytes()
+
+
+def test_a_copy_that_dies_leaves_its_figure_to_this_process(tmp_path, monkeypatch):
+    parent = os.getpid()
+
+    def dies_in_the_copy():
+        if os.getpid() != parent:  # half a file, then killed
+            (tmp_path / ".a.png.k3x9.part.png").write_bytes(b"\x89PNG half")
+            os.kill(os.getpid(), signal.SIGKILL)
+        return _figure("map")
+
+    monkeypatch.setattr(beside, "can_fork", lambda: True)
+    clock = _Clock()
+    beside.write_beside(tmp_path, clock, lambda: None, {"a.png": dies_in_the_copy})
+    assert clock.forked == []
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.png"]
+    assert (tmp_path / "a.png").read_bytes()[:4] == b"\x89PNG"
+
+
+def test_a_figure_that_fails_raises_here(tmp_path, monkeypatch):
+    def broken():
+        raise ValueError("no such colour map")
+
+    monkeypatch.setattr(beside, "can_fork", lambda: True)
+    with pytest.raises(ValueError, match="no such colour map"):
+        beside.write_beside(tmp_path, _Clock(), lambda: None, {"a.png": broken})
+    assert not list(tmp_path.iterdir())
+
+
+def test_an_interrupted_writer_takes_its_copy_with_it(tmp_path, monkeypatch):
+    parent, pids = os.getpid(), []
+
+    def slow():
+        if os.getpid() != parent:
+            time.sleep(60)
+        return _figure("map")
+
+    def interrupted():
+        raise KeyboardInterrupt
+
+    start = beside._FigureCopy.__init__
+
+    def spy(self, *args, **kwargs):
+        start(self, *args, **kwargs)
+        pids.append(self.pid)
+
+    monkeypatch.setattr(beside, "can_fork", lambda: True)
+    monkeypatch.setattr(beside._FigureCopy, "__init__", spy)
+    t0 = time.monotonic()
+    with pytest.raises(KeyboardInterrupt):
+        beside.write_beside(tmp_path, _Clock(), interrupted, {"a.png": slow})
+    assert time.monotonic() - t0 < 10
+    with pytest.raises(ProcessLookupError):  # killed and reaped
+        os.kill(pids[0], 0)
+    assert not list(tmp_path.iterdir())
+
+
+def test_no_fork_while_another_thread_runs():
+    release = threading.Event()
+    other = threading.Thread(target=release.wait)
+    other.start()
+    try:
+        assert not beside.can_fork()
+    finally:
+        release.set()
+        other.join()
+
+
+def test_the_command_line_forks_and_writes_the_same_figures(tmp_path, cairn, monkeypatch):
+    """A command-line run in a process of its own (one thread: the map is drawn
+    in a forked copy) and the same run in this process, drawn here."""
+    dem = write_tif(tmp_path / "dem.tif", smooth_terrain((60, 70), seed=3))
+    args = ["peaks", str(dem), "--rmse", "1", "-n", "6", "--workers", "1", "--seed", "5", "-q"]
+    subprocess.run([*cli_command(), *args, "-o", str(tmp_path / "forked")], check=True,
+                   capture_output=True, timeout=300)
+    monkeypatch.setattr(beside, "can_fork", lambda: False)
+    assert cairn(*args, "-o", tmp_path / "here")[0] == 0
+    timings = [json.loads((tmp_path / d / "run.json").read_text())["timings"]
+               for d in ("forked", "here")]
+    assert timings[0]["forked"] == ["quicklook.png"] and "forked" not in timings[1]
+    for name in ("quicklook.png", "ranking.png"):
+        a, b = ((tmp_path / d / name).read_bytes() for d in ("forked", "here"))
+        assert a == b, name
+    assert np.isfinite(timings[0]["writing_share"])

@@ -46,8 +46,8 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
                   headline=settings_line(job, dem.unit_label), layout=layout)
     if model.range_m == 0:
         warn(INDEPENDENT_ERROR)
-    features = summarise_features(res)
-    write_credit_run(out, res, features, input_path=str(dem_path), command_line=command_line())
+    features = write_credit_run(out, res, lambda: summarise_features(res),  # layers beside it
+                                input_path=str(dem_path), command_line=command_line())
     if not opts["quiet"]:
         print_summary(features.table, kind=kind, units=dem.unit_label, n=res.n,
                       outdir=out, caution=CAUTION, share=features.rank_share,

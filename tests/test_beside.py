@@ -1,6 +1,6 @@
-"""The map drawn in a forked copy while the layers and tables are written
-(terrain.outputs.beside): the same PNG bytes as drawn here, a copy that dies
-leaves its figure (and nothing else) to this process, an interrupted writer
+"""Files written in a forked copy while this process works on
+(terrain.outputs.beside): the same bytes as written here, a copy that dies
+leaves its file (and nothing else) to this process, an interrupted writer
 takes its copy with it, and no fork while another thread runs."""
 
 from __future__ import annotations
@@ -88,14 +88,14 @@ def test_an_interrupted_writer_takes_its_copy_with_it(tmp_path, monkeypatch):
     def interrupted():
         raise KeyboardInterrupt
 
-    start = beside._FigureCopy.__init__
+    start = beside._Copy.__init__
 
     def spy(self, *args, **kwargs):
         start(self, *args, **kwargs)
         pids.append(self.pid)
 
     monkeypatch.setattr(beside, "can_fork", lambda: True)
-    monkeypatch.setattr(beside._FigureCopy, "__init__", spy)
+    monkeypatch.setattr(beside._Copy, "__init__", spy)
     t0 = time.monotonic()
     with pytest.raises(KeyboardInterrupt):
         beside.write_beside(tmp_path, _Clock(), interrupted, {"a.png": slow})
@@ -116,9 +116,14 @@ def test_no_fork_while_another_thread_runs():
         other.join()
 
 
-def test_the_command_line_forks_and_writes_the_same_figures(tmp_path, cairn, monkeypatch):
-    """A command-line run in a process of its own (one thread: the map is drawn
-    in a forked copy) and the same run in this process, drawn here."""
+def test_the_command_line_forks_and_writes_the_same_files(tmp_path, cairn, monkeypatch):
+    """A command-line run in a process of its own (one thread: the layers are
+    written in a forked copy while the features are summarised, the map in
+    another while the tables are written) and the same run in this process,
+    one file after another: the same figures, bytes for bytes, and the same
+    layers, pixels and layout."""
+    import rasterio
+
     dem = write_tif(tmp_path / "dem.tif", smooth_terrain((60, 70), seed=3))
     args = ["peaks", str(dem), "--rmse", "1", "-n", "6", "--workers", "1", "--seed", "5", "-q"]
     subprocess.run([*cli_command(), *args, "-o", str(tmp_path / "forked")], check=True,
@@ -127,8 +132,16 @@ def test_the_command_line_forks_and_writes_the_same_figures(tmp_path, cairn, mon
     assert cairn(*args, "-o", tmp_path / "here")[0] == 0
     timings = [json.loads((tmp_path / d / "run.json").read_text())["timings"]
                for d in ("forked", "here")]
-    assert timings[0]["forked"] == ["quicklook.png"] and "forked" not in timings[1]
+    layers = sorted(p.name for p in (tmp_path / "here").glob("*.tif"))
+    assert sorted(timings[0]["forked"]) == sorted(layers + ["quicklook.png"])
+    assert "forked" not in timings[1] and timings[0]["summary_s"] > 0
     for name in ("quicklook.png", "ranking.png"):
         a, b = ((tmp_path / d / name).read_bytes() for d in ("forked", "here"))
         assert a == b, name
+    for name in layers:
+        with rasterio.open(tmp_path / "forked" / name) as a, \
+                rasterio.open(tmp_path / "here" / name) as b:
+            pa, pb = ({k: v for k, v in d.profile.items() if k != "nodata"} for d in (a, b))
+            assert pa == pb and a.overviews(1) == b.overviews(1) and np.isnan(a.nodata)
+            assert np.array_equal(a.read(), b.read(), equal_nan=True), name
     assert np.isfinite(timings[0]["writing_share"])

@@ -43,6 +43,7 @@ from .formats import (
     csv_cell,
     csv_safe,
     load_npz,
+    one_gdal_thread,
     save_npz,
     write_csv,
     write_figure,
@@ -91,7 +92,7 @@ from .scratch import (
 )
 
 __all__ = ["read_dem", "read_header", "RasterWindows", "dem_windows", "SENTINELS", "read_outlets",
-           "dem_warnings", "atomic_path", "discard_partial",
+           "dem_warnings", "atomic_path", "discard_partial", "one_gdal_thread",
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "release_freed_memory",

@@ -47,6 +47,14 @@ COG_OPTIONS = dict(driver="COG", compress="deflate", predictor=3, level=3, block
                    num_threads="ALL_CPUS")
 
 
+def one_gdal_thread() -> None:
+    """Write GeoTIFFs with one GDAL thread from here on, in a forked copy of a
+    process (:func:`terrain.outputs.beside.in_a_copy`): the worker threads
+    GDAL started in the parent are not in the copy, and a job handed to
+    them would wait for ever."""
+    COG_OPTIONS["num_threads"] = "1"
+
+
 def write_layer(dest: str | os.PathLike, dem: Dem, *bands: np.ndarray, name: str, units: str,
                 description: str, tags: dict, note: str = "",
                 roles: tuple = ("estimate", "standard_error")) -> None:
@@ -162,7 +170,7 @@ def _open_tiles(path: Path, dem: Dem, count: int = 2):
                              dtype="float32", crs=dem.crs, transform=Affine(*dem.transform),
                              nodata=np.nan, tiled=True, blockxsize=256, blockysize=256,
                              compress="deflate", zlevel=1, predictor=3, bigtiff="IF_SAFER",
-                             num_threads="ALL_CPUS")
+                             num_threads=COG_OPTIONS["num_threads"])
 
 
 def _open_cog(tmp: Path, dem: Dem, count: int = 2):

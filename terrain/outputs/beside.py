@@ -36,7 +36,7 @@ from pathlib import Path
 from ..io import discard_partial, write_figure
 from ..processes import die_with_parent, spawning
 
-__all__ = ["write_beside", "plain_text", "can_fork"]
+__all__ = ["write_beside", "in_a_copy", "plain_text", "can_fork"]
 
 
 @contextlib.contextmanager
@@ -65,52 +65,74 @@ def write_beside(out: Path, clock, files: Callable[[], None],
                  figures: dict[str, Callable[[], object]]) -> None:
     """Run ``files()`` (layers and tables) and save each of ``figures`` (file
     name: a function returning a matplotlib Figure) as ``out / name``, side by
-    side; ``clock(step)`` times each step (``figures`` for the figures, in
-    both processes) and ``clock.record`` takes what a forked copy did.
-    Forked, the copy draws the first figure (put the costliest first) and
-    this process the others once the files are written.
+    side: the first figure (put the costliest first) in a forked copy
+    (:func:`in_a_copy`), the others here once the files are written.
+    ``clock(step)`` times each step (``figures`` for the figures, in both
+    processes).
 
     Returns when every file is written; raises what ``files()`` or a figure
     raised (a figure's error after the layers and tables are written).
     """
-    if not can_fork():  # one after the other
-        files()
-        with clock("figures"), plain_text():
-            for name, make in figures.items():
-                write_figure(out / name, make())
-        return
     first, *rest = figures.items()
-    copy = _FigureCopy(out, dict([first]))
-    try:
+    with in_a_copy(clock, "figures", lambda: _save(out, [first]), [out / first[0]]):
         files()
-        with clock("figures"), plain_text():  # the rest here, once the files are written
-            for name, make in rest:
-                write_figure(out / name, make())
+        _save(out, rest, clock)
+
+
+def _save(out: Path, figures, clock=None) -> None:
+    with clock("figures") if clock else contextlib.nullcontext(), plain_text():
+        for name, make in figures:
+            write_figure(out / name, make())
+
+
+@contextlib.contextmanager
+def in_a_copy(clock, step: str, work: Callable[[], None], outputs: list[Path]):
+    """Run ``work()``, which writes the files ``outputs``, in a forked copy of
+    this process while the block runs here (:func:`can_fork`); without a
+    fork, here after the block.
+
+    The copy's seconds go to ``clock.record(step, ...)``, with the names it
+    wrote; here ``clock(step)`` times ``work()``. When the copy fails or
+    dies, what it left half-written is removed and ``work()`` runs here
+    after the block, raising what fails as any writing error; when the
+    block raises or is interrupted the copy is killed (and reaped) first.
+    GDAL in the copy writes with one thread: its worker threads, if this
+    process started any, are not in the copy.
+    """
+    if not can_fork():
+        yield
+        with clock(step):
+            work()
+        return
+    copy = _Copy(work)
+    try:
+        yield
         seconds = copy.wait()
     finally:
         copy.stop()
     if seconds is not None:
-        clock.record("figures", seconds, copy.started, copy.ended, files=(first[0],))
+        clock.record(step, seconds, copy.started, copy.ended,
+                     files=tuple(p.name for p in outputs))
         return
-    name, make = first  # the copy failed or died: what it left, then its figure here
-    discard_partial(out / name)
-    with clock("figures"), plain_text():
-        write_figure(out / name, make())
+    for path in outputs:
+        discard_partial(path)
+    with clock(step):
+        work()
 
 
-class _FigureCopy:
-    """A forked copy of this process that saves ``figures`` into ``out`` and
-    reports the seconds it took through a pipe (8 bytes), then exits; it
-    exits with status 1 and reports nothing when anything fails."""
+class _Copy:
+    """A forked copy of this process that runs ``work()`` and reports the
+    seconds it took through a pipe (8 bytes), then exits; it exits with
+    status 1 and reports nothing when anything fails."""
 
-    def __init__(self, out: Path, figures: dict[str, Callable[[], object]]):
+    def __init__(self, work: Callable[[], None]):
         parent = os.getpid()
         self.started = self.ended = time.perf_counter()
         self.read, write = os.pipe()
         with spawning():  # SIGINT blocked until the copy ignores it
             self.pid = os.fork()
             if self.pid == 0:
-                _draw_in_copy(parent, write, out, figures)  # never returns
+                _in_copy(parent, write, work)  # never returns
         os.close(write)
 
     def wait(self) -> float | None:
@@ -138,13 +160,15 @@ class _FigureCopy:
             self.read = None
 
 
-def _draw_in_copy(parent: int, write: int, out: Path, figures) -> None:
-    """The forked copy's whole life: draw, save, report, exit. Nothing of the
+def _in_copy(parent: int, write: int, work: Callable[[], None]) -> None:
+    """The forked copy's whole life: work, report, exit. Nothing of the
     parent's stack below the fork runs here (``os._exit``: no ``finally``,
     no ``atexit``, no buffers flushed twice)."""
     status = 1
     try:
         import signal
+
+        from ..io import one_gdal_thread
 
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles Ctrl-C and kills us
         signal.signal(signal.SIGTERM, signal.SIG_DFL)
@@ -152,13 +176,12 @@ def _draw_in_copy(parent: int, write: int, out: Path, figures) -> None:
         die_with_parent(parent)
         if os.getppid() != parent:
             os._exit(1)
+        one_gdal_thread()
         t0 = time.perf_counter()
-        with plain_text():
-            for name, make in figures.items():
-                write_figure(out / name, make())
+        work()
         os.write(write, struct.pack("d", time.perf_counter() - t0))
         status = 0
-    except BaseException:  # the parent draws the figures again and raises what fails
+    except BaseException:  # the parent does the work again and raises what fails
         pass
     finally:
         os._exit(status)

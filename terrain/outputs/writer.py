@@ -46,7 +46,7 @@ from ..summary.ranks import RANK_COLUMN_KINDS
 from ..summary.relations import LINK_COLUMN_KINDS, LINK_CSV
 from ..version import __version__
 from . import plot, sweepchart
-from .beside import plain_text, write_beside
+from .beside import in_a_copy, plain_text, write_beside
 from .caution import CAUTION
 from .manifest import MANIFEST, VECTOR_LAYERS, replace_patterns
 from .tables import rounded
@@ -159,12 +159,16 @@ class _Clock:
         the DEM and summarising are left out, so the shares are upper bounds);
         ``layers`` is the GeoTIFFs, ``tables`` the GeoPackage and CSV files,
         ``figures`` drawing and saving the PNGs (in both processes when one
-        is drawn in a forked copy, named in ``forked``); ``writing`` is the
-        wall time of all of it,
-        from the first step's start to the last one's end (less than the
+        is drawn in a forked copy; ``forked`` names what a copy wrote),
+        ``summary`` the feature summary when it was made while the layers
+        were written; ``writing`` is the wall time from the first step's
+        start to the last one's end, less the summary's (less than the
         steps' sum when they overlap).
         """
-        writing = max(self.span[1] - self.span[0], 0.0) if self.seconds else 0.0
+        # a summary made while the layers were written is not writing: only the
+        # wall time writing added to it counts
+        writing = max(self.span[1] - self.span[0] - self.seconds.get("summary", 0.0), 0.0) \
+            if self.seconds else 0.0
         run = realisations_s + writing
         out = {"realisations_s": round(realisations_s, 3)}
         out.update({f"{k}_s": round(v, 3) for k, v in self.seconds.items()})
@@ -216,11 +220,16 @@ def vector_descriptions(result, names, *, note: str = "") -> dict:
 
 @published(lambda result: result.job.kind)
 def write_credit_run(outdir: str | Path, result, features, *, input_path: str | None,
-                     command_line: str | None = None) -> None:
+                     command_line: str | None = None):
     """Write a peaks or depressions run: layers, feature tables, quick-look, ranking chart,
-    run.json.
+    run.json; return the feature summary.
 
-    ``features`` is a :class:`terrain.summary.features.FeatureSummary`.
+    ``features`` is a :class:`terrain.summary.features.FeatureSummary`, or a
+    function of no arguments that makes one (``lambda:
+    summarise_features(result)``): the layers, which do not need it, are
+    then written in a forked copy of this process while it runs
+    (:func:`terrain.outputs.beside.in_a_copy`; a run held in memory), and
+    ``run.json``'s ``timings`` say how long it took (``summary_s``).
     """
     out = Path(outdir)
     kind = result.job.kind
@@ -228,9 +237,21 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     clock = _Clock()
     gpkg, csv, ranks = [f.name for f in MANIFEST[kind] if f.name.endswith((".gpkg", ".csv"))][:3]
 
+    def layers():
+        write_layers(out, result, command_line=command_line)
+
+    layers_here = True
+    if callable(features):  # in memory, the layers are written beside the summary
+        summarise, layers_here = features, result.layout.on_disk
+        paths = [out / f"{name}.tif" for name in result.layers]
+        with contextlib.nullcontext() if layers_here else in_a_copy(clock, "layers", layers, paths):
+            with clock("summary"):
+                features = summarise()
+
     def files():
-        with clock("layers"):
-            write_layers(out, result, command_line=command_line)
+        if layers_here:
+            with clock("layers"):
+                layers()
         with clock("tables"):
             write_frames(out / gpkg, features.frames, vector_descriptions(result, features.frames))
             write_csv(out / csv, rounded(features.table, COLUMN_KINDS,
@@ -250,6 +271,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
                                                     for k in LOG_FIELDS)),
                 "timings": clock.timings(result.info.get("wall_seconds", 0.0))})
     write_json(out / "run.json", run)
+    return features
 
 
 @published(lambda result: "catchments")

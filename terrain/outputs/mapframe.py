@@ -411,22 +411,36 @@ class MapFrame:
         colour, one style per level, as one legend entry unless not ``keyed``
         (say what the styles mean with :meth:`key`); returns whether any line
         was drawn."""
+        import contourpy
+        from matplotlib.collections import PathCollection
+        from matplotlib.path import Path
+
         v = self.view(values)
         if min(v.shape) < 2 or not np.isfinite(v).any() or np.nanmax(v) < min(levels):
             return False
-        n = len(levels)
-        cs = self.ax.contour(v, levels=list(levels), extent=self.view_extent, origin="upper",
-                             colors=colour, linestyles=list(styles)[:n],
-                             linewidths=list(widths)[:n], zorder=4)
-        if not any(len(p.vertices) for p in cs.get_paths()):
-            cs.remove()
+        # matplotlib's own contouring (its default algorithm and corner masking) on
+        # the cells' indices, placed by the drawn grid's affine afterwards: no
+        # float64 coordinate grids (16 bytes per drawn cell), and one path per level
+        # as matplotlib's contour set draws them
+        gen = contourpy.contour_generator(z=np.ma.masked_invalid(v), name="mpl2014",
+                                          corner_mask=True,
+                                          line_type=contourpy.LineType.SeparateCode)
+        left, right, bottom, top = self.view_extent
+        rows, cols = v.shape
+        dx, dy = (right - left) / cols, (top - bottom) / rows
+        paths = []
+        for level in levels:
+            lines, codes = gen.lines(level)
+            ij = np.concatenate(lines) if lines else np.empty((0, 2))
+            xy = np.column_stack([left + (ij[:, 0] + 0.5) * dx, bottom + (rows - 0.5 - ij[:, 1]) * dy])
+            paths.append(Path(xy, np.concatenate(codes) if lines else None))
+        if not any(len(p.vertices) for p in paths):
             return False
-        cs.set_label(label)
-        cs.set(path_effects=halo(max(widths) + 1.6))
-        # the lines are drawn; matplotlib's contour generator would keep its own
-        # float64 copies of the grid (~28 bytes per drawn cell per contoured layer)
-        if hasattr(cs, "_contour_generator"):
-            cs._contour_generator = None
+        n = len(levels)
+        self.ax.add_collection(PathCollection(
+            paths, facecolors="none", edgecolors=colour, linestyles=list(styles)[:n],
+            linewidths=list(widths)[:n], zorder=4, label=label,
+            path_effects=halo(max(widths) + 1.6)), autolim=False)
         if keyed:
             self.handles.append(_line_key(colour, label, lw=widths[0], ls=styles[0]))
         return True

@@ -246,8 +246,9 @@ def marker_boxes(ax, avoid) -> np.ndarray:
     a map holds thousands)."""
     if not avoid:
         return np.empty((0, 4))
-    xy = ax.transData.transform(np.array([(x, y) for x, y, _ in avoid], float))
-    half = np.array([s for *_, s in avoid], float) / 2 * ax.figure.dpi / 72.0 + 1.0
+    xys = np.array(avoid, float).reshape(-1, 3)
+    xy = ax.transData.transform(xys[:, :2])
+    half = xys[:, 2] / 2 * ax.figure.dpi / 72.0 + 1.0
     return np.column_stack([xy[:, 0] - half, xy[:, 0] + half, xy[:, 1] - half,
                             xy[:, 1] + half])
 

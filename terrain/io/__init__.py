@@ -27,6 +27,7 @@ from .files import (
     available_memory,
     file_exists,
     file_sha256,
+    keep_freed_memory,
     kernel_cache_folder,
     release_freed_memory,
     remove_file,
@@ -92,7 +93,7 @@ from .scratch import (
 )
 
 __all__ = ["read_dem", "read_header", "RasterWindows", "dem_windows", "SENTINELS", "read_outlets",
-           "dem_warnings", "atomic_path", "discard_partial", "one_gdal_thread",
+           "dem_warnings", "atomic_path", "discard_partial", "one_gdal_thread", "keep_freed_memory",
            "write_json", "write_layer", "prepare_outdir", "claim_outdir", "hold_outdir",
            "staged_outputs", "clean_leftovers", "write_frames", "write_csv", "write_figure",
            "save_npz", "load_npz", "file_sha256", "available_memory", "release_freed_memory",

@@ -154,6 +154,13 @@ def release_freed_memory() -> None:
         _TRIM[0](0)
 
 
+def keep_freed_memory() -> None:
+    """From here on :func:`release_freed_memory` does nothing: for a forked copy
+    that exits when its step is done (:func:`terrain.outputs.beside.in_a_copy`),
+    handing memory back is work for nothing (0.05 s of a 1024² map, measured)."""
+    _TRIM[:] = [None]
+
+
 def kernel_cache_folder(version: str) -> str | None:
     """Point numba's on-disk cache of compiled kernels at a per-user folder.
 

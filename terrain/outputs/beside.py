@@ -97,7 +97,8 @@ def in_a_copy(clock, step: str, work: Callable[[], None], outputs: list[Path]):
     after the block, raising what fails as any writing error; when the
     block raises or is interrupted the copy is killed (and reaped) first.
     GDAL in the copy writes with one thread: its worker threads, if this
-    process started any, are not in the copy.
+    process started any, are not in the copy; and the copy hands no freed
+    memory back (it exits when done).
     """
     if not can_fork():
         yield
@@ -168,7 +169,7 @@ def _in_copy(parent: int, write: int, work: Callable[[], None]) -> None:
     try:
         import signal
 
-        from ..io import one_gdal_thread
+        from ..io import keep_freed_memory, one_gdal_thread
 
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles Ctrl-C and kills us
         signal.signal(signal.SIGTERM, signal.SIG_DFL)
@@ -177,6 +178,7 @@ def _in_copy(parent: int, write: int, work: Callable[[], None]) -> None:
         if os.getppid() != parent:
             os._exit(1)
         one_gdal_thread()
+        keep_freed_memory()
         t0 = time.perf_counter()
         work()
         os.write(write, struct.pack("d", time.perf_counter() - t0))

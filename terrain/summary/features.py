@@ -135,9 +135,10 @@ class FigureMatrix:
         return ordinal_ranks(self.figure, self.present)
 
 
-def figure_matrix(log: dict, n_real: int) -> FigureMatrix:
-    """The :class:`FigureMatrix` of a run's pair log (n_real x regions present)."""
-    real, reg, fig, edge = region_figures(log)
+def figure_matrix(log: dict, n_real: int, figures: tuple | None = None) -> FigureMatrix:
+    """The :class:`FigureMatrix` of a run's pair log (n_real x regions present);
+    ``figures``: :func:`terrain.pairlog.region_figures` of it, when already made."""
+    real, reg, fig, edge = (figures if figures is not None else region_figures(log))[:4]
     ids = np.unique(reg)
     col = np.searchsorted(ids, reg)
     shape = (n_real, ids.size)
@@ -314,11 +315,10 @@ class PondedTop:
         return np.where((p >= PONDED_SHARE) & np.isin(lab, self.ids), lab, 0).astype(np.int32)
 
 
-def _top_cells(log: dict, labels, ids: np.ndarray, shape) -> SparseTop:
+def _top_cells(birth: np.ndarray, labels, ids: np.ndarray, shape) -> SparseTop:
     """Per region in ``ids``: the fewest cells holding TOP_SHARE of the births
-    of its figure's pair (the feature's summit in each realisation), most
-    frequent first."""
-    *_, birth = region_figures(log, with_birth=True)
+    of its figure's pair (the feature's summit in each realisation; ``birth``,
+    from :func:`terrain.pairlog.region_figures`), most frequent first."""
     cells, counts = np.unique(birth, return_counts=True)
     lab = grid_values_at(labels, cells, shape[1])
     keep_ = np.isin(lab, ids)
@@ -433,7 +433,9 @@ def _clusters(fm: FigureMatrix, rows: np.ndarray, bimodal: np.ndarray,
 def summarise_features(result) -> FeatureSummary:
     """The features of a peaks or depressions run (see the module docstring)."""
     dem, job = result.dem, result.job
-    fm = figure_matrix(result.log, result.n)
+    # one pass over the log (a sort of every pair) serves the figures and the tops
+    figures = region_figures(result.log, with_birth=job.kind == "peaks")
+    fm = figure_matrix(result.log, result.n, figures)
     ranks = fm.ranks()
     p, none = rank_distribution(ranks, min(RANKS, fm.ids.size))
     p_above = fm.present.mean(axis=0) if result.n else np.zeros(fm.ids.size)
@@ -451,7 +453,7 @@ def summarise_features(result) -> FeatureSummary:
     data["rank"][order] = np.arange(1, ids.size + 1)
     share = dict(zip(ids.tolist(), data.pop(f"{_DEATH[job.kind]}_share")))
     if job.kind == "peaks":
-        top = _top_cells(result.log, job.regions.labels, ids, dem.shape)
+        top = _top_cells(figures[4], job.regions.labels, ids, dem.shape)
         data["top_area_m2"] = _areas(dem, top, ids)
     else:
         top = PondedTop(result, job.regions.labels, ids)

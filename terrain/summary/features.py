@@ -517,7 +517,6 @@ def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
     (None for an id without cells)."""
     from rasterio.features import shapes
     from rasterio.transform import Affine
-    from shapely.geometry import shape
     from shapely.ops import unary_union
 
     ids = list(ids)
@@ -529,11 +528,32 @@ def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
         mask = np.isin(lab, ids) & (lab > 0)
         if not mask.any():
             continue
-        for geom, value in shapes(lab, mask=mask, connectivity=connectivity,
-                                  transform=t * Affine.translation(c0, r0)):
-            parts[where[int(value)]].append(shape(geom))
+        traced = list(shapes(lab, mask=mask, connectivity=connectivity,
+                             transform=t * Affine.translation(c0, r0)))
+        for polygon, (_, value) in zip(_polygons([g for g, _ in traced]), traced):
+            parts[where[int(value)]].append(polygon)
         release_freed_memory()  # the window's traced rings, before the next window's
     return [_valid(unary_union(p)) if p else None for p in parts]
+
+
+def _polygons(traced: list) -> np.ndarray:
+    """Shapely polygons of GeoJSON-like polygons (rings of coordinate lists),
+    made in bulk: the coordinates of the rings as one array, then every ring
+    and polygon at once (the same coordinates as ``shapely.geometry.shape``
+    of each, a third of the time)."""
+    import shapely
+
+    rings, owner = [], []
+    for k, geom in enumerate(traced):
+        for ring in geom["coordinates"]:
+            rings.append(np.asarray(ring, dtype=np.float64))
+            owner.append(k)
+    if not rings:
+        return np.empty(0, dtype=object)
+    sizes = np.fromiter((r.shape[0] for r in rings), np.int64, len(rings))
+    ring_geoms = shapely.linearrings(np.concatenate(rings),
+                                     indices=np.repeat(np.arange(len(rings)), sizes))
+    return shapely.polygons(ring_geoms, indices=np.asarray(owner))
 
 
 def _valid(geom):

@@ -30,6 +30,7 @@ import struct
 import sys
 import threading
 import time
+import warnings
 from collections.abc import Callable
 from pathlib import Path
 
@@ -130,7 +131,12 @@ class _Copy:
         parent = os.getpid()
         self.started = self.ended = time.perf_counter()
         self.read, write = os.pipe()
-        with spawning():  # SIGINT blocked until the copy ignores it
+        with spawning(), warnings.catch_warnings():  # SIGINT blocked until the copy ignores it
+            # Python 3.12+ warns of a fork with any thread of the process running;
+            # the only others are idle native pools (OpenBLAS, GDAL) that the copy
+            # leaves alone (GDAL writes with one thread there)
+            warnings.filterwarnings("ignore", r".*multi-threaded, use of fork\(\)",
+                                    DeprecationWarning)
             self.pid = os.fork()
             if self.pid == 0:
                 _in_copy(parent, write, work)  # never returns

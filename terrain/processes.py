@@ -1,9 +1,9 @@
 """What this package's child processes share: dying with the parent, and a
 Ctrl-C that cannot reach a child while it starts.
 
-The realisations' pool workers (:mod:`terrain.runner.backends`) and the
-forked process that draws a run's figures (:mod:`terrain.outputs.beside`)
-both use these.
+The realisations' pool workers (:mod:`terrain.runner.backends`) use both;
+the forked copies that write a run's files (:mod:`terrain.outputs.beside`)
+die with their parent too (and block SIGTERM as well while they fork).
 """
 
 from __future__ import annotations

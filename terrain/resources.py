@@ -75,7 +75,7 @@ PRESHADE = 73  # the map's hillshade made while the realisations run: float64 el
 # while the features are summarised, then the map while the tables are written; one
 # at a time): its own arrays and the pages the parent writes to while it lives,
 # which stop being shared. Measured (private memory, the larger copy): 67 MiB at
-# 400², 116 MiB at 1024², depressions.
+# 400², 116 MiB at 1024² (depressions; peaks 117 MiB at 1024²).
 FORKED_COPY_BYTES = 60 * MiB
 FORKED_COPY = 80  # bytes per cell
 SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run

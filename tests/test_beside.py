@@ -72,9 +72,87 @@ def test_a_figure_that_fails_raises_here(tmp_path, monkeypatch):
         raise ValueError("no such colour map")
 
     monkeypatch.setattr(beside, "can_fork", lambda: True)
+    clock = _Clock()
     with pytest.raises(ValueError, match="no such colour map"):
-        beside.write_beside(tmp_path, _Clock(), lambda: None, {"a.png": broken})
+        beside.write_beside(tmp_path, clock, lambda: None, {"a.png": broken})
+    assert clock.fell_back == ["figures"]  # the copy ran, failed, and it was done again here
     assert not list(tmp_path.iterdir())
+
+
+def _write(path, text: str = "x"):
+    def work():
+        with open(path, "w") as fh:
+            fh.write(text)
+    return work
+
+
+def test_no_fork_to_be_had_does_the_work_here(tmp_path, monkeypatch):
+    import errno
+
+    def no_fork():
+        raise OSError(errno.EAGAIN, "Resource temporarily unavailable")
+
+    monkeypatch.setattr(beside, "can_fork", lambda: True)
+    monkeypatch.setattr(os, "fork", no_fork)
+    clock, order = _Clock(), []
+    with beside.in_a_copy(clock, "layers", lambda: order.append("work"), [tmp_path / "a"]):
+        order.append("block")
+    assert order == ["block", "work"] and clock.forked == [] and clock.fell_back == []
+
+
+def test_a_copy_reaped_elsewhere_is_judged_by_its_report(tmp_path, monkeypatch):
+    # a host process that ignores SIGCHLD: the kernel reaps the copy itself
+    monkeypatch.setattr(beside, "can_fork", lambda: True)
+    previous = signal.signal(signal.SIGCHLD, signal.SIG_IGN)
+    try:
+        clock = _Clock()
+        with beside.in_a_copy(clock, "layers", _write(tmp_path / "a"), [tmp_path / "a"]):
+            time.sleep(0.3)
+    finally:
+        signal.signal(signal.SIGCHLD, previous)
+    assert clock.forked == ["a"] and (tmp_path / "a").read_text() == "x"
+
+
+def test_a_copy_past_its_deadline_is_killed_and_its_work_done_here(tmp_path, monkeypatch):
+    parent = os.getpid()
+
+    def hangs_in_the_copy():
+        if os.getpid() != parent:
+            time.sleep(60)
+        _write(tmp_path / "a", "here")()
+
+    monkeypatch.setattr(beside, "can_fork", lambda: True)
+    monkeypatch.setattr(beside, "copy_deadline", lambda seconds: 0.5)
+    clock, t0 = _Clock(), time.monotonic()
+    with beside.in_a_copy(clock, "layers", hangs_in_the_copy, [tmp_path / "a"]):
+        pass
+    assert time.monotonic() - t0 < 10
+    assert clock.fell_back == ["layers"] and (tmp_path / "a").read_text() == "here"
+
+
+def test_ctrl_c_as_the_copy_forks_takes_the_copy_with_it(tmp_path, monkeypatch):
+    """A Ctrl-C arriving while the copy is forked (held until the copy's pid is
+    kept) ends the block, and the copy is killed and reaped."""
+    real_fork, pids = os.fork, []
+
+    def fork_then_ctrl_c():
+        pid = real_fork()
+        if pid:
+            pids.append(pid)
+            # to this thread, which holds it blocked until the pid is kept (a
+            # process-wide signal could go to a test runner's own thread)
+            signal.pthread_kill(threading.get_ident(), signal.SIGINT)
+        return pid
+
+    monkeypatch.setattr(beside, "can_fork", lambda: True)
+    monkeypatch.setattr(os, "fork", fork_then_ctrl_c)
+    ran = []
+    with pytest.raises(KeyboardInterrupt):
+        with beside.in_a_copy(_Clock(), "layers", lambda: time.sleep(60), [tmp_path / "a"]):
+            ran.append("block")
+    assert not ran
+    with pytest.raises(ProcessLookupError):  # killed and reaped
+        os.kill(pids[0], 0)
 
 
 def test_an_interrupted_writer_takes_its_copy_with_it(tmp_path, monkeypatch):
@@ -88,14 +166,14 @@ def test_an_interrupted_writer_takes_its_copy_with_it(tmp_path, monkeypatch):
     def interrupted():
         raise KeyboardInterrupt
 
-    start = beside._Copy.__init__
+    start = beside._Copy.start
 
     def spy(self, *args, **kwargs):
         start(self, *args, **kwargs)
         pids.append(self.pid)
 
     monkeypatch.setattr(beside, "can_fork", lambda: True)
-    monkeypatch.setattr(beside._Copy, "__init__", spy)
+    monkeypatch.setattr(beside._Copy, "start", spy)
     t0 = time.monotonic()
     with pytest.raises(KeyboardInterrupt):
         beside.write_beside(tmp_path, _Clock(), interrupted, {"a.png": slow})

@@ -115,6 +115,8 @@ def _watch(p) -> tuple[int, int, str]:
             if pid != p.pid and h is not None and _cmdline(pid) == command:  # a forked copy
                 h = max(seen.get(pid, 0), _private(pid) or 0)
                 forked.add(pid)
+            else:  # a spawned worker seen before its exec is not a copy
+                forked.discard(pid)
             if h is not None:
                 # the latest reading: a child caught between fork and exec still shows
                 # its parent's memory; after exec its high-water mark starts afresh

@@ -35,9 +35,9 @@ from collections.abc import Callable
 from pathlib import Path
 
 from ..io import discard_partial, write_figure
-from ..processes import die_with_parent, spawning
+from ..processes import die_with_parent
 
-__all__ = ["write_beside", "in_a_copy", "plain_text", "can_fork"]
+__all__ = ["write_beside", "in_a_copy", "copy_deadline", "plain_text", "can_fork"]
 
 
 @contextlib.contextmanager
@@ -93,67 +93,135 @@ def in_a_copy(clock, step: str, work: Callable[[], None], outputs: list[Path]):
     fork, here after the block.
 
     The copy's seconds go to ``clock.record(step, ...)``, with the names it
-    wrote; here ``clock(step)`` times ``work()``. When the copy fails or
-    dies, what it left half-written is removed and ``work()`` runs here
-    after the block, raising what fails as any writing error; when the
-    block raises or is interrupted the copy is killed (and reaped) first.
-    GDAL in the copy writes with one thread: its worker threads, if this
-    process started any, are not in the copy; and the copy hands no freed
-    memory back (it exits when done).
+    wrote; here ``clock(step)`` times ``work()``. When the copy cannot start
+    (no memory or processes left to fork), fails, dies or outlives
+    :func:`copy_deadline`, what it left half-written is removed and
+    ``work()`` runs here after the block, raising what fails as any writing
+    error (``clock.fell_back`` names the step); when the block raises or is
+    interrupted the copy is killed (and reaped) first. GDAL in the copy
+    writes with one thread: its worker threads, if this process started
+    any, are not in the copy; and the copy hands no freed memory back (it
+    exits when done).
     """
-    if not can_fork():
+    copy = _Copy() if can_fork() else None
+    if copy is not None:
+        try:
+            copy.start(work)
+        except BaseException:
+            copy.stop()
+            raise
+    if copy is None or copy.pid is None:  # no fork, or none to be had
+        if copy is not None:
+            copy.stop()
         yield
         with clock(step):
             work()
         return
-    copy = _Copy(work)
     try:
+        began = time.perf_counter()
         yield
-        seconds = copy.wait()
+        seconds = copy.wait(copy_deadline(time.perf_counter() - began))
     finally:
         copy.stop()
     if seconds is not None:
         clock.record(step, seconds, copy.started, copy.ended,
                      files=tuple(p.name for p in outputs))
         return
+    clock.fell_back.append(step)
     for path in outputs:
         discard_partial(path)
     with clock(step):
         work()
 
 
+def copy_deadline(block_seconds: float) -> float:
+    """Seconds to wait for a forked copy once this process's own part is done:
+    5 minutes and ten times that part. A copy that takes longer is taken to
+    hang (a lock a native thread of this process held at the fork, say) and
+    is killed; its work is done here."""
+    return 300.0 + 10.0 * block_seconds
+
+
 class _Copy:
     """A forked copy of this process that runs ``work()`` and reports the
     seconds it took through a pipe (8 bytes), then exits; it exits with
-    status 1 and reports nothing when anything fails."""
+    status 1 and reports nothing when anything fails. ``pid`` is None until
+    it runs (and when the fork failed)."""
 
-    def __init__(self, work: Callable[[], None]):
-        parent = os.getpid()
+    def __init__(self):
+        self.pid: int | None = None
+        self.read: int | None = None
         self.started = self.ended = time.perf_counter()
-        self.read, write = os.pipe()
-        with spawning(), warnings.catch_warnings():  # SIGINT blocked until the copy ignores it
-            # Python 3.12+ warns of a fork with any thread of the process running;
-            # the only others are idle native pools (OpenBLAS, GDAL) that the copy
-            # leaves alone (GDAL writes with one thread there)
-            warnings.filterwarnings("ignore", r".*multi-threaded, use of fork\(\)",
-                                    DeprecationWarning)
-            self.pid = os.fork()
-            if self.pid == 0:
-                _in_copy(parent, write, work)  # never returns
-        os.close(write)
 
-    def wait(self) -> float | None:
-        """Wait for the copy; its seconds, or None when it failed or died."""
-        _, status = os.waitpid(self.pid, 0)
+    def start(self, work: Callable[[], None]) -> None:
+        """Fork. Ctrl-C and SIGTERM are blocked from before the fork until
+        the pid is kept and the copy has set its own handlers, so neither
+        can reach the copy while it still runs this process's code (a
+        handler raising there would run the caller's ``finally`` blocks
+        in the copy) nor leave a copy nobody knows of. A fork that fails
+        (ENOMEM, EAGAIN) leaves ``pid`` None."""
+        import signal
+
+        parent = os.getpid()
+        blocked = {signal.SIGINT, signal.SIGTERM}
+        old = signal.pthread_sigmask(signal.SIG_BLOCK, blocked)
+        try:
+            try:
+                self.read, write = os.pipe()
+            except OSError:
+                return
+            with warnings.catch_warnings():
+                # Python 3.12+ warns of a fork with any thread of the process
+                # running; the only others are idle native pools (OpenBLAS, GDAL)
+                # that the copy leaves alone (GDAL writes with one thread there)
+                warnings.filterwarnings("ignore", r".*multi-threaded, use of fork\(\)",
+                                        DeprecationWarning)
+                try:
+                    pid = os.fork()
+                except OSError:
+                    os.close(write)
+                    return
+            if pid == 0:
+                try:
+                    _in_copy(parent, write, work, old)
+                finally:
+                    os._exit(1)
+            self.pid = pid
+            self.started = time.perf_counter()
+            os.close(write)
+        finally:
+            signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+    def wait(self, deadline: float) -> float | None:
+        """Wait for the copy, at most ``deadline`` seconds (then kill it); its
+        seconds, or None when it failed, died or was killed. A copy reaped
+        elsewhere (SIGCHLD ignored) is judged by its report alone."""
+        import errno
+
+        end, ok = time.monotonic() + deadline, True
+        while True:
+            try:
+                pid, status = os.waitpid(self.pid, os.WNOHANG)
+            except ChildProcessError as exc:  # reaped by someone else
+                if exc.errno != errno.ECHILD:
+                    raise
+                pid, status = self.pid, 0
+            if pid:
+                ok = os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0
+                break
+            if time.monotonic() > end:
+                self.stop()
+                return None
+            time.sleep(0.01)
         self.pid = None
         self.ended = time.perf_counter()
         report = os.read(self.read, 8)
-        ok = os.WIFEXITED(status) and os.WEXITSTATUS(status) == 0 and len(report) == 8
-        return struct.unpack("d", report)[0] if ok else None
+        return struct.unpack("d", report)[0] if ok and len(report) == 8 else None
 
     def stop(self) -> None:
         """Kill the copy if it still runs (this process failed or was
-        interrupted), reap it, close the pipe."""
+        interrupted, or the copy outlived its deadline), reap it, close
+        the pipe."""
         import signal
 
         if self.pid is not None:
@@ -167,19 +235,21 @@ class _Copy:
             self.read = None
 
 
-def _in_copy(parent: int, write: int, work: Callable[[], None]) -> None:
+def _in_copy(parent: int, write: int, work: Callable[[], None], mask) -> None:
     """The forked copy's whole life: work, report, exit. Nothing of the
     parent's stack below the fork runs here (``os._exit``: no ``finally``,
-    no ``atexit``, no buffers flushed twice)."""
+    no ``atexit``, no buffers flushed twice). Starts with Ctrl-C and SIGTERM
+    blocked; sets its own handlers (Ctrl-C ignored: the parent handles it
+    and kills the copy; SIGTERM ends it) before ``mask`` is restored."""
     status = 1
     try:
         import signal
 
         from ..io import keep_freed_memory, one_gdal_thread
 
-        signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles Ctrl-C and kills us
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
         signal.signal(signal.SIGTERM, signal.SIG_DFL)
-        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+        signal.pthread_sigmask(signal.SIG_SETMASK, mask)
         die_with_parent(parent)
         if os.getppid() != parent:
             os._exit(1)

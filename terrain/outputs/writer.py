@@ -131,6 +131,7 @@ class _Clock:
         self.seconds: dict[str, float] = {}
         self.span = [math.inf, -math.inf]  # first start, last end of any step
         self.forked: list[str] = []  # the files a forked copy wrote
+        self.fell_back: list[str] = []  # steps a copy did not do, done here instead
 
     @contextlib.contextmanager
     def __call__(self, step: str):
@@ -159,7 +160,8 @@ class _Clock:
         the DEM and summarising are left out, so the shares are upper bounds);
         ``layers`` is the GeoTIFFs, ``tables`` the GeoPackage and CSV files,
         ``figures`` drawing and saving the PNGs (in both processes when one
-        is drawn in a forked copy; ``forked`` names what a copy wrote),
+        is drawn in a forked copy; ``forked`` names what a copy wrote,
+        ``forked_failed`` the steps a copy did not finish, done here instead),
         ``summary`` the feature summary when it was made while the layers
         were written; ``writing`` is the wall time from the first step's
         start to the last one's end, less the summary's (less than the
@@ -176,6 +178,8 @@ class _Clock:
                     "writing_share": round(writing / run, 4) if run > 0 else None})
         if self.forked:
             out["forked"] = self.forked
+        if self.fell_back:
+            out["forked_failed"] = self.fell_back
         if "layers" in self.seconds:
             out["layers_share"] = round(self.seconds["layers"] / run, 4) if run > 0 else None
         return out

@@ -209,3 +209,23 @@ def test_edge_limited_share_flags_features_cut_by_the_edge():
     t = feat.table.set_index("feature_id")
     assert t.loc[feat.regions.labels[15, 0], "edge_limited_share"] == 1.0
     assert t.loc[feat.regions.labels[15, 28], "edge_limited_share"] == 0.0
+
+
+def test_polygons_made_in_bulk_are_shapelys_own():
+    # reference: shapely.geometry.shape of each traced polygon (shapely 2.0, 2022), on
+    # regions with holes, corner-touching cells and more polygons than one batch
+    import shapely
+    from rasterio.features import shapes
+    from scipy import ndimage
+    from shapely.geometry import shape
+
+    import terrain.summary.features as F
+
+    rng = np.random.default_rng(4)
+    lab, _ = ndimage.label(rng.random((120, 130)) < 0.45, structure=np.ones((3, 3)))
+    lab[40:60, 40:60], lab[45:50, 45:50] = 7, 0  # a ring with a hole
+    traced = [g for g, _ in shapes(lab.astype(np.int32), mask=lab > 0, connectivity=8)]
+    assert any(len(g["coordinates"]) > 1 for g in traced)
+    got = F._polygons(traced)
+    assert [shapely.to_wkb(a) for a in got] == [shapely.to_wkb(shape(g)) for g in traced]
+    assert F._polygons([]).size == 0

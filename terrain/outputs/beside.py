@@ -1,17 +1,17 @@
-"""A run's figures drawn beside its layers and tables.
+"""Writing a run's files on both cores: a step in a forked copy of the process.
 
-Drawing a figure holds the interpreter's lock, so in one process the
-figures and the writing of layers and tables take turns on one core. On
-Linux, in a process running no other thread, :func:`write_beside` forks:
-the copy draws and saves the first figure (the map, the costliest) while
-this process writes the layers and tables and then draws the others, each
-on a core of its own. The copy imports nothing and starts
-in milliseconds (its memory is this process's, shared until either side
-writes to a page), draws from the same arrays with the same code, so its
-PNG is the bytes this process would write. It dies with this process and
-ignores Ctrl-C (this process handles it and kills the copy), and when it
-fails or dies this process draws its figure itself, so a figure's error is
-raised here as every other writing error is.
+Drawing a figure and summarising features hold the interpreter's lock, so
+in one process they and the writing of layers and tables take turns on one
+core. On Linux, in a process running no other thread, :func:`in_a_copy`
+forks: the copy does one writing step (a run's layers while its features
+are summarised; with :func:`write_beside`, the map while the tables are
+written and the chart drawn) and this process the rest, each on a core of
+its own. The copy imports nothing and starts in milliseconds (its memory is
+this process's, shared until either side writes to a page), works from the
+same arrays with the same code, so its files are the bytes this process
+would write. It dies with this process and ignores Ctrl-C (this process
+handles it and kills the copy), and when it fails or dies this process does
+its step itself, so an error is raised here as every other writing error is.
 
 Elsewhere (no ``fork``, or another thread running: a fork copies only the
 calling thread, and a lock another thread held would stay held in the copy
@@ -46,8 +46,6 @@ def plain_text():
     outlet id or attribute is not matplotlib's math markup (an unbalanced one
     would fail the figure), and a character the font lacks is drawn as a
     box, not announced as a warning."""
-    import warnings
-
     import matplotlib
 
     with matplotlib.rc_context({"text.parse_math": False}), warnings.catch_warnings():
@@ -56,7 +54,7 @@ def plain_text():
 
 
 def can_fork() -> bool:
-    """Whether the figures may be drawn in a forked copy: on Linux, with no
+    """Whether a writing step may run in a forked copy: on Linux, with no
     other Python thread running in this process."""
     return sys.platform.startswith("linux") and hasattr(os, "fork") \
         and threading.active_count() == 1

@@ -25,6 +25,7 @@ import platform
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -50,6 +51,9 @@ from .beside import in_a_copy, plain_text, write_beside
 from .caution import CAUTION
 from .manifest import MANIFEST, VECTOR_LAYERS, replace_patterns
 from .tables import rounded
+
+if TYPE_CHECKING:
+    from ..summary.features import FeatureSummary
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
            "vector_descriptions", "published", "READ_SETTINGS", "plain_text",
@@ -224,7 +228,7 @@ def vector_descriptions(result, names, *, note: str = "") -> dict:
 
 @published(lambda result: result.job.kind)
 def write_credit_run(outdir: str | Path, result, features, *, input_path: str | None,
-                     command_line: str | None = None):
+                     command_line: str | None = None) -> FeatureSummary:
     """Write a peaks or depressions run: layers, feature tables, quick-look, ranking chart,
     run.json; return the feature summary.
 

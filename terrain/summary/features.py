@@ -26,6 +26,7 @@ columns are how precisely the Monte Carlo run estimated a mean.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 
@@ -528,12 +529,18 @@ def region_polygons(dem: Dem, labels, ids, *, connectivity: int = 8) -> list:
         mask = np.isin(lab, ids) & (lab > 0)
         if not mask.any():
             continue
-        traced = list(shapes(lab, mask=mask, connectivity=connectivity,
-                             transform=t * Affine.translation(c0, r0)))
-        for polygon, (_, value) in zip(_polygons([g for g, _ in traced]), traced):
-            parts[where[int(value)]].append(polygon)
+        traced = shapes(lab, mask=mask, connectivity=connectivity,
+                        transform=t * Affine.translation(c0, r0))
+        while batch := list(itertools.islice(traced, POLYGON_BATCH)):
+            for polygon, (_, value) in zip(_polygons([g for g, _ in batch]), batch):
+                parts[where[int(value)]].append(polygon)
         release_freed_memory()  # the window's traced rings, before the next window's
     return [_valid(unary_union(p)) if p else None for p in parts]
+
+
+#: traced polygons made into shapely ones at a time (their coordinate lists, ~100
+#: bytes a vertex, are held until then)
+POLYGON_BATCH = 4096
 
 
 def _polygons(traced: list) -> np.ndarray:

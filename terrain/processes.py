@@ -15,17 +15,21 @@ __all__ = ["die_with_parent", "spawning"]
 
 def die_with_parent(parent: int) -> None:
     """Ask Linux to kill this process when its parent dies (prctl
-    PR_SET_PDEATHSIG); elsewhere a no-op. ``parent`` is the parent's pid as
-    the child saw it before asking: a parent already gone is not watched."""
-    if not sys.platform.startswith("linux"):
-        return
-    import ctypes
-    import signal
+    PR_SET_PDEATHSIG; elsewhere that is a no-op), and exit at once (status 1)
+    if the parent, ``parent`` by pid, is already gone: the request only
+    watches a parent alive when it is made."""
+    import os
 
-    try:
-        ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)
-    except (OSError, AttributeError):
-        pass
+    if sys.platform.startswith("linux"):
+        import ctypes
+        import signal
+
+        try:
+            ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):
+            pass
+    if os.getppid() != parent:
+        os._exit(1)
 
 
 class spawning:

@@ -56,8 +56,8 @@ def atomic_path(dest: str | os.PathLike, *, bands: int | None = None):
     dest = Path(dest)
     tmp = None
     try:
-        fd, name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".part" + dest.suffix,
-                                    dir=dest.parent)
+        prefix, suffix = _temporary(dest)
+        fd, name = tempfile.mkstemp(prefix=prefix, suffix=suffix, dir=dest.parent)
         os.close(fd)
         os.unlink(name)
         tmp = Path(name)
@@ -86,11 +86,17 @@ def atomic_path(dest: str | os.PathLike, *, bands: int | None = None):
                 os.unlink(tmp)
 
 
+def _temporary(dest: Path) -> tuple[str, str]:
+    """The prefix and suffix of :func:`atomic_path`'s temporary names for ``dest``."""
+    return f".{dest.name}.", ".part" + dest.suffix
+
+
 def discard_partial(dest: str | os.PathLike) -> None:
     """Remove the temporary files an :func:`atomic_path` for ``dest`` left
-    beside it when its process was killed mid-write (``.{name}.*.part*``)."""
+    beside it when its process was killed mid-write."""
     dest = Path(dest)
-    for part in dest.parent.glob(f".{glob.escape(dest.name)}.*.part*"):
+    prefix, suffix = _temporary(dest)
+    for part in dest.parent.glob(f"{glob.escape(prefix)}*{glob.escape(suffix)}"):
         with contextlib.suppress(FileNotFoundError):
             os.unlink(part)
 

@@ -15,11 +15,11 @@ its step itself, so an error is raised here as every other writing error is.
 
 Elsewhere (no ``fork``, or another thread running: a fork copies only the
 calling thread, and a lock another thread held would stay held in the copy
-for ever) the files are written and then the figures drawn, one after the
-other. (Writing the files in a second thread while the figures were drawn
-was tried and dropped: Python's warning filters are one list for all
-threads, and ``warnings.catch_warnings`` in two threads at once can leave a
-filter set or lose one.)
+for ever) the step runs here after the rest, one after the other. (Writing
+the files in a second thread while the figures were drawn was tried and
+dropped: Python's warning filters are one list for all threads, and
+``warnings.catch_warnings`` in two threads at once can leave a filter set
+or lose one.)
 """
 
 from __future__ import annotations
@@ -249,8 +249,6 @@ def _in_copy(parent: int, write: int, work: Callable[[], None], mask) -> None:
         signal.signal(signal.SIGTERM, signal.SIG_DFL)
         signal.pthread_sigmask(signal.SIG_SETMASK, mask)
         die_with_parent(parent)
-        if os.getppid() != parent:
-            os._exit(1)
         one_gdal_thread()
         keep_freed_memory()
         t0 = time.perf_counter()

@@ -175,16 +175,13 @@ _CTX: Context | None = None
 def init_worker(ctx: Context | str | None, parent: int) -> None:
     """Set up a pool worker: signals, death with the parent, and the run's
     context (given, or the path of a :func:`~terrain.io.save_shared` file)."""
-    import os
     import signal
 
     global _CTX
     # Ctrl-C is the parent's to handle: the worker was started with SIGINT
     # blocked (see spawning) and from here on ignores it too
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    die_with_parent(parent)
-    if os.getppid() != parent:  # the parent died before we were ready
-        os._exit(1)
+    die_with_parent(parent)  # or exit, if the parent died before we were ready
     _CTX = load_shared(ctx) if isinstance(ctx, str) else ctx
 
 

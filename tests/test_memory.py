@@ -111,11 +111,13 @@ def _watch(p) -> tuple[int, int, str]:
     while p.poll() is None:
         command = _cmdline(p.pid)  # read again: the first reading may precede the exec
         for pid in _tree(p.pid):
-            h = _hwm(pid)
-            if pid != p.pid and h is not None and _cmdline(pid) == command:  # a forked copy
-                h = max(seen.get(pid, 0), _private(pid) or 0)
+            line = _cmdline(pid)
+            h = _hwm(pid) if line is not None else None  # None: it has just ended
+            if pid != p.pid and h is not None and line == command:  # a forked copy
+                private = _private(pid)
+                h = max(seen.get(pid, 0), private) if private is not None else None
                 forked.add(pid)
-            else:  # a spawned worker seen before its exec is not a copy
+            elif h is not None:  # a spawned worker seen before its exec is not a copy
                 forked.discard(pid)
             if h is not None:
                 # the latest reading: a child caught between fork and exec still shows

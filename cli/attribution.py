@@ -29,7 +29,7 @@ __all__ = ["peaks_cmd", "depressions_cmd", "demo_cmd"]
 def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None, label=None):
     """One peaks or depressions run, from options to files and the console table."""
     from terrain.outputs.writer import write_credit_run  # loaded when a command runs
-    from terrain.summary.features import summarise_features
+    from terrain.summary.features import summary_steps
 
     model = error_model(opts)
     job = CreditJob(kind, threshold=threshold, threshold_jitter=opts["threshold_jitter"],
@@ -46,7 +46,7 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
                   headline=settings_line(job, dem.unit_label), layout=layout)
     if model.range_m == 0:
         warn(INDEPENDENT_ERROR)
-    features = write_credit_run(out, res, lambda: summarise_features(res),  # layers beside it
+    features = write_credit_run(out, res, summary_steps(res),  # layers, map beside it
                                 input_path=str(dem_path), command_line=command_line())
     if not opts["quiet"]:
         print_summary(features.table, kind=kind, units=dem.unit_label, n=res.n,

@@ -229,3 +229,28 @@ def test_polygons_made_in_bulk_are_shapelys_own():
     got = F._polygons(traced)
     assert [shapely.to_wkb(a) for a in got] == [shapely.to_wkb(shape(g)) for g in traced]
     assert F._polygons([]).size == 0
+
+
+@pytest.mark.parametrize("kind", ["peaks", "depressions"])
+def test_the_first_summary_step_draws_what_the_whole_summary_draws(kind, tmp_path):
+    # the map is drawn from summary_steps' first step while the second is made: the
+    # same table less the relation columns, the same tops, so the same PNG bytes
+    from terrain.io import write_figure
+    from terrain.outputs import plot
+    from terrain.summary.features import LAYER_NAMES, summary_steps
+    from terrain.summary.relations import RELATION_COLUMNS
+
+    res, whole = _run(smooth_terrain((48, 56), seed=3), kind, rmse=4.0, n=40)
+    first, last = summary_steps(res)
+    assert whole.links is not None and first.links is None
+    assert set(whole.table.columns) - set(first.table.columns) == set(RELATION_COLUMNS[kind])
+    assert first.table.equals(whole.table[first.table.columns])
+    assert list(first.frames) == [LAYER_NAMES[kind][0]]
+    assert first.frames[LAYER_NAMES[kind][0]].geometry.geom_equals_exact(
+        whole.frames[LAYER_NAMES[kind][0]].geometry, 0).all()
+    assert last.table.equals(whole.table) and list(last.frames) == list(whole.frames)
+    for name, draw in (("map", plot.feature_map), ("chart", plot.ranking_chart)):
+        write_figure(tmp_path / f"{name}-first.png", draw(res, first))
+        write_figure(tmp_path / f"{name}-whole.png", draw(res, whole))
+        assert (tmp_path / f"{name}-first.png").read_bytes() == \
+            (tmp_path / f"{name}-whole.png").read_bytes()

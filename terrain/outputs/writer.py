@@ -25,7 +25,6 @@ import platform
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -42,7 +41,7 @@ from ..io import (
 from ..layers import DRAINAGE_NOTE, layer_windows, read_window, spec, units
 from ..pairlog import LOG_FIELDS
 from ..summary.catchments import FRAME_COLUMN_KINDS
-from ..summary.features import COLUMN_KINDS
+from ..summary.features import COLUMN_KINDS, FeatureSummary
 from ..summary.ranks import RANK_COLUMN_KINDS
 from ..summary.relations import LINK_COLUMN_KINDS, LINK_CSV
 from ..version import __version__
@@ -51,9 +50,6 @@ from .beside import in_a_copy, plain_text, write_beside
 from .caution import CAUTION
 from .manifest import MANIFEST, VECTOR_LAYERS, replace_patterns
 from .tables import rounded
-
-if TYPE_CHECKING:
-    from ..summary.features import FeatureSummary
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
            "vector_descriptions", "published", "READ_SETTINGS", "plain_text",
@@ -127,8 +123,9 @@ def _tags(result, command_line: str | None) -> dict:
 class _Clock:
     """Wall time of each writing step, for ``run.json``'s ``timings``.
 
-    Steps may overlap (layers and tables are written in a second thread while
-    the figures are drawn), so the writing's own wall time is kept too.
+    Steps may overlap (a step may run in a forked copy while this process
+    does another, :mod:`terrain.outputs.beside`), so the writing's own wall
+    time is kept too.
     """
 
     def __init__(self):
@@ -232,12 +229,15 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     """Write a peaks or depressions run: layers, feature tables, quick-look, ranking chart,
     run.json; return the feature summary.
 
-    ``features`` is a :class:`terrain.summary.features.FeatureSummary`, or a
-    function of no arguments that makes one (``lambda:
-    summarise_features(result)``): the layers, which do not need it, are
-    then written in a forked copy of this process while it runs
-    (:func:`terrain.outputs.beside.in_a_copy`; a run held in memory), and
-    ``run.json``'s ``timings`` say how long it took (``summary_s``).
+    ``features`` is a :class:`terrain.summary.features.FeatureSummary`, or
+    :func:`terrain.summary.features.summary_steps` of ``result`` (an
+    iterator: first what the figures draw, then the whole summary). Then,
+    in a run held in memory, the layers, which need no summary, are written
+    in a forked copy of this process while the first step is made
+    (:func:`terrain.outputs.beside.in_a_copy`), and the map is drawn from it
+    in another copy while this process makes the second step and writes
+    the tables; ``run.json``'s ``timings`` say how long the summary took
+    (``summary_s``).
     """
     out = Path(outdir)
     kind = result.job.kind
@@ -248,15 +248,19 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
     def layers():
         write_layers(out, result, command_line=command_line)
 
-    layers_here = True
-    if callable(features):  # in memory, the layers are written beside the summary
-        summarise, layers_here = features, result.layout.on_disk
+    steps, layers_here, drawn = None, True, features
+    if not isinstance(features, FeatureSummary):  # the layers are written beside the summary
+        steps, layers_here = iter(features), result.layout.on_disk
         paths = [out / f"{name}.tif" for name in result.layers]
         with contextlib.nullcontext() if layers_here else in_a_copy(clock, "layers", layers, paths):
             with clock("summary"):
-                features = summarise()
+                drawn = next(steps)
 
     def files():
+        nonlocal features
+        if steps is not None:  # while the map is drawn from the first step
+            with clock("summary"):
+                features = next(steps)
         if layers_here:
             with clock("layers"):
                 layers()
@@ -269,8 +273,8 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
                 write_csv(out / LINK_CSV[kind], rounded(features.links, LINK_COLUMN_KINDS))
 
     write_beside(out, clock, files,  # figures drawn while the files are written
-                 {"quicklook.png": lambda: plot.feature_map(result, features),
-                  "ranking.png": lambda: plot.ranking_chart(result, features)})
+                 {"quicklook.png": lambda: plot.feature_map(result, drawn),
+                  "ranking.png": lambda: plot.ranking_chart(result, drawn)})
     run = provenance(result, input_path=input_path, command_line=command_line, created=created,
                      parameters={**result.job.describe(), "features": features.settings})
     run.update({"features": int(len(features.table)),

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -56,7 +57,8 @@ from .relations import LINK_TABLE, RELATION_COLUMN_KINDS, RELATION_COLUMNS, link
 
 __all__ = ["COLUMNS", "COLUMN_KINDS", "LAYER_NAMES", "RANK_LAYER", "TOP_SHARE", "PONDED_SHARE",
            "RANKS", "FeatureSummary", "FigureMatrix", "figure_matrix", "rank_shares",
-           "summarise_features", "region_polygons", "unperturbed_ponding", "unperturbed_figures"]
+           "summarise_features", "summary_steps", "region_polygons", "unperturbed_ponding",
+           "unperturbed_figures"]
 
 TOP_SHARE = 0.9  # "where the top is": the fewest cells holding 90% of a summit's births
 PONDED_SHARE = 0.5  # the ponded extent: cells ponded in at least half the realisations
@@ -433,6 +435,24 @@ def _clusters(fm: FigureMatrix, rows: np.ndarray, bimodal: np.ndarray,
 
 def summarise_features(result) -> FeatureSummary:
     """The features of a peaks or depressions run (see the module docstring)."""
+    *_, whole = summary_steps(result)
+    return whole
+
+
+def summary_steps(result) -> Iterator[FeatureSummary]:
+    """:func:`summarise_features` in two steps, so that a map can be drawn from
+    the first while the second is made.
+
+    Yields
+    ------
+    FeatureSummary
+        First what the figures draw: the table (by rank) without the relation
+        columns, ``frames`` holding only the top polygons (``summits`` /
+        ``pits``) and the rank table, no ``links``; every other field is
+        whole. Then the whole summary: the relation columns, the regions'
+        polygons (the costliest part), the points and key cols / spill
+        points, and the links.
+    """
     dem, job = result.dem, result.job
     # one pass over the log (a sort of every pair) serves the figures and the tops
     figures = region_figures(result.log, with_birth=job.kind == "peaks")
@@ -443,8 +463,6 @@ def summarise_features(result) -> FeatureSummary:
     rows = np.flatnonzero((p_above >= job.min_presence) | (p.sum(axis=1) > 0))
     data = _table(result, fm, rows, ranks)
     ids = data["feature_id"]
-    rel_columns, links = relations_of(result, ids)  # relations (terrain.summary.relations)
-    data.update(rel_columns)
     bimodal, split = two_clusters(fm.figure[:, rows])
     data["bimodal"] = bimodal
     data["group"] = _groups(result, ids, data["unperturbed"], split, p[rows])
@@ -458,8 +476,12 @@ def summarise_features(result) -> FeatureSummary:
         data["top_area_m2"] = _areas(dem, top, ids)
     else:
         top = PondedTop(result, job.regions.labels, ids)
-    table = pd.DataFrame(data, columns=[c for c in COLUMNS[job.kind] if c in data]).sort_values(
-        "rank", kind="stable").reset_index(drop=True)
+
+    def by_rank(data: dict) -> pd.DataFrame:
+        return pd.DataFrame(data, columns=[c for c in COLUMNS[job.kind] if c in data]).sort_values(
+            "rank", kind="stable").reset_index(drop=True)
+
+    table = by_rank(data)
     settings = {"merge_level": job.merge_level, "min_presence": job.min_presence,
                 "top_share": TOP_SHARE if job.kind == "peaks" else None,
                 "ponded_share": PONDED_SHARE if job.kind == "depressions" else None,
@@ -467,22 +489,37 @@ def summarise_features(result) -> FeatureSummary:
     tops, fallback = _top_polygons(dem, job, table, top)
     if job.kind == "depressions":
         table["extent_is_pit_cell"] = fallback
-    frames = _frames(dem, job, table, tops, table["feature_id"].map(share).to_numpy(float))
     long = rank_table(fm.ids, p, none, result.n)
+    ranked, clusters = _rank_share(fm, p, table), _clusters(fm, rows, bimodal, split)
+    yield FeatureSummary(job.regions, table, _frames(dem, job, table, tops, None), top, settings,
+                         ranked, long, clusters)
+
+    rel_columns, links = relations_of(result, ids)  # relations (terrain.summary.relations)
+    if rel_columns:
+        data.update(rel_columns)
+        table = by_rank(data)
+        if job.kind == "depressions":
+            table["extent_is_pit_cell"] = fallback
+    frames = _frames(dem, job, table, tops, table["feature_id"].map(share).to_numpy(float))
     frames[RANK_LAYER] = _attribute_table(long)
     if links is not None:  # relations
         frames[LINK_TABLE[job.kind]] = link_frame(dem, job.regions, links, job.kind)
-    kmax = max(p.shape[1], 1)
-    ranked = pd.DataFrame(np.pad(p, ((0, 0), (0, kmax - p.shape[1])))[
-        np.searchsorted(fm.ids, table["feature_id"].to_numpy())] if fm.ids.size else
-        np.zeros((len(table), kmax)), index=pd.Index(table["feature_id"].to_numpy(),
-                                                     name="feature_id"),
-        columns=range(1, kmax + 1))
-    summary = FeatureSummary(job.regions, table, frames, top, settings, ranked, long,
-                             _clusters(fm, rows, bimodal, split),
+    summary = FeatureSummary(job.regions, table, frames, top, settings, ranked, long, clusters,
                              None if links is None else links.drop(columns="death"))
     release_freed_memory()  # the summaries' temporaries, before the layers are written
-    return summary
+    yield summary
+
+
+def _rank_share(fm: FigureMatrix, p: np.ndarray, table: pd.DataFrame) -> pd.DataFrame:
+    """P(rank = k) of the table's rows (``p``: :func:`rank_distribution` of
+    every region in ``fm``), by ``feature_id`` in table order and rank k =
+    1.. (at least one column)."""
+    kmax = max(p.shape[1], 1)
+    ids = table["feature_id"].to_numpy()
+    values = np.pad(p, ((0, 0), (0, kmax - p.shape[1])))[np.searchsorted(fm.ids, ids)] \
+        if fm.ids.size else np.zeros((len(table), kmax))
+    return pd.DataFrame(values, index=pd.Index(ids, name="feature_id"),
+                        columns=range(1, kmax + 1))
 
 
 def _attribute_table(frame: pd.DataFrame):
@@ -604,14 +641,17 @@ def _frames(dem: Dem, job, table: pd.DataFrame, tops: list, share: np.ndarray) -
     """The GeoPackage layers (:data:`LAYER_NAMES`): the polygons (``tops``, from
     :func:`_top_polygons`) and the points of the table's rows, and a point
     layer of each feature's most credited key col / spill point (``share``: its
-    share of the feature's col / spill credit)."""
+    share of the feature's col / spill credit); only the polygons when
+    ``share`` is None."""
     import geopandas as gpd
     from shapely.geometry import Point
 
+    top_name, point_name, region_name, death_name = LAYER_NAMES[job.kind]
+    if share is None:
+        return {top_name: gpd.GeoDataFrame(table, geometry=tops, crs=dem.crs)}
     ids = table["feature_id"].to_numpy()
     whole = region_polygons(dem, job.regions.labels, ids, connectivity=job.connectivity)
     points = [Point(x, y) for x, y in zip(table["x"], table["y"])]
-    top_name, point_name, region_name, death_name = LAYER_NAMES[job.kind]
     d = _DEATH[job.kind]
     has = (np.isfinite(table[f"{d}_x"]) & np.isfinite(share)).to_numpy()
     deaths = pd.DataFrame({"feature_id": ids[has], "rank": table["rank"].to_numpy()[has],

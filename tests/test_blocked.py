@@ -537,3 +537,40 @@ def test_regions_empty_and_all_nodata():
     for kind in ("peaks", "pits"):
         assert_same_regions(blocked_regions(z, kind=kind, merge_level=1.0, block=3),
                             regions(z, kind=kind, merge_level=1.0))
+
+
+@pytest.mark.parametrize("conn", [4, 8])
+@pytest.mark.parametrize("seed", range(6))
+def test_cell_flags_follow_their_definition(conn, seed):
+    # EDGE: on the raster edge or beside nodata; TERM: a valid neighbour in
+    # another block (the definitions, cell by cell: common practice for
+    # blocked merge trees); blocks with and without nodata, and halos with it
+    from terrain.engine.grid import offsets
+    from terrain.engine.blocked import kernels as K
+    from terrain.engine.blocked.local import prepare_block
+    from terrain.engine.blocked.windows import Window, halo
+
+    rng = np.random.default_rng(seed)
+    shape = (int(rng.integers(3, 30)), int(rng.integers(3, 30)))
+    z = rng.random(shape)
+    z[rng.random(shape) < [0.0, 0.02, 0.2, 0.5, 0.05, 0.9][seed]] = np.nan
+    dr, dc = offsets(conn)
+    r0, c0 = int(rng.integers(0, shape[0] - 2)), int(rng.integers(0, shape[1] - 2))
+    w = Window(r0, int(rng.integers(r0 + 1, shape[0] + 1)), c0,
+               int(rng.integers(c0 + 1, shape[1] + 1)))
+    h = halo(w, shape)
+    blk = prepare_block(z[h.r0:h.r1, h.c0:h.c1], w, shape, "pits", conn)
+    want = np.zeros((w.r1 - w.r0, w.c1 - w.c0), np.uint8)
+    for r in range(w.r0, w.r1):
+        for c in range(w.c0, w.c1):
+            if np.isnan(z[r, c]):
+                continue
+            f = 0
+            for a, b in zip(dr, dc):
+                rr, cc = r + a, c + b
+                if not (0 <= rr < shape[0] and 0 <= cc < shape[1]) or np.isnan(z[rr, cc]):
+                    f |= K.EDGE
+                elif not (w.r0 <= rr < w.r1 and w.c0 <= cc < w.c1):
+                    f |= K.TERM
+            want[r - w.r0, c - w.c0] = f
+    assert np.array_equal(blk.flags.reshape(want.shape), want)

@@ -69,21 +69,29 @@ def cell_flags(vh, nr, nc, hr, hc, sides, dr, dc, all_valid, flags):
 
     The block's cell (r, c) is ``vh[r + hr, c + hc]``; ``sides`` tells which
     of the block's top, bottom, left and right sides lie on the raster edge.
-    When ``all_valid`` only the block's outer ring can carry a flag.
+    Only the block's outer ring and the cells next to a nodata cell of the
+    block can carry a flag (an inner cell's neighbours are all in the
+    block): the ring is read cell by cell, then each nodata cell marks its
+    valid inner neighbours ``EDGE`` (neighbourhoods are symmetric), unless
+    ``all_valid``. Nodata cells get 0.
     """
-    if all_valid:
-        flags[:] = 0
-        for r in range(nr):
-            step = 1 if (r == 0 or r == nr - 1) else max(nc - 1, 1)
-            for c in range(0, nc, step):
+    flags[:] = 0
+    for r in range(nr):
+        step = 1 if (r == 0 or r == nr - 1) else max(nc - 1, 1)
+        for c in range(0, nc, step):
+            if vh[r + hr, c + hc]:
                 flags[r * nc + c] = _flag_cell(vh, r, c, nr, nc, hr, hc, sides, dr, dc)
+    if all_valid:
         return
     for r in range(nr):
         for c in range(nc):
             if vh[r + hr, c + hc]:
-                flags[r * nc + c] = _flag_cell(vh, r, c, nr, nc, hr, hc, sides, dr, dc)
-            else:
-                flags[r * nc + c] = 0
+                continue
+            for k in range(dr.size):
+                rr = r + dr[k]
+                cc = c + dc[k]
+                if 0 < rr < nr - 1 and 0 < cc < nc - 1 and vh[rr + hr, cc + hc]:
+                    flags[rr * nc + cc] = EDGE
 
 
 @njit(cache=True)

@@ -7,9 +7,11 @@
    spent on the realisations (and per realisation, in np.sorts of the
    raster measured in this run: the cost of a realisation on 2 workers,
    target <= 5), the layers, the tables and the figures, the writing's wall
-   time (layers and tables are written while the figures are drawn, so it
-   is less than their sum) and its share of the run (target <= 15% at 300
-   realisations, 1024²).
+   time and its share of the run (target <= 15% at 300 realisations,
+   1024²). The steps overlap (the layers are written while the features
+   are summarised, the map drawn while the summary is finished and the
+   tables written), so the writing's wall time is less than their sum; it
+   counts only what the writing adds to the summary's time.
 2. Writes one two-band float32 layer of ``--layer-side``² cells through
    ``terrain.io.write_layer`` (GDAL's COG driver with statistics) and, as the
    reference measured in the same run, as a plain tiled DEFLATE GeoTIFF with

@@ -545,10 +545,10 @@ def test_cell_flags_follow_their_definition(conn, seed):
     # EDGE: on the raster edge or beside nodata; TERM: a valid neighbour in
     # another block (the definitions, cell by cell: common practice for
     # blocked merge trees); blocks with and without nodata, and halos with it
-    from terrain.engine.grid import offsets
     from terrain.engine.blocked import kernels as K
     from terrain.engine.blocked.local import prepare_block
     from terrain.engine.blocked.windows import Window, halo
+    from terrain.engine.grid import offsets
 
     rng = np.random.default_rng(seed)
     shape = (int(rng.integers(3, 30)), int(rng.integers(3, 30)))

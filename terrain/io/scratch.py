@@ -38,8 +38,8 @@ def scratch_file(folder: str | os.PathLike, name: str) -> str:
 
 def levels_file(folder: str | os.PathLike, r0: int, c0: int) -> str:
     """The path of what the first pass of depressions keeps for the block at
-    (``r0``, ``c0``), an ``.npz`` in ``folder``."""
-    return os.path.join(folder, f"levels-{r0}-{c0}.npz")
+    (``r0``, ``c0``), a file of :func:`save_scratch` in ``folder``."""
+    return os.path.join(folder, f"levels-{r0}-{c0}.npys")
 
 
 def count_store_file(folder: str | os.PathLike) -> str:
@@ -154,18 +154,29 @@ def save_npy(path: str, a: np.ndarray) -> str:
 
 @_scratch_writes
 def save_scratch(path: str, arrays: dict) -> str:
-    """Save ``arrays`` (name: array) as an uncompressed ``.npz`` scratch file at
-    ``path``, read back within the run by :func:`load_scratch` (not flushed to
-    disk, not checked); return the path."""
+    """Save ``arrays`` (name: array) as a scratch file at ``path``, read back
+    within the run by :func:`load_scratch` (not flushed to disk, not
+    checked); return the path. The file is ``.npy`` records one after the
+    other: the names (a string array), then each array. (An ``.npz`` zip
+    archive, with its CRC-32 over every byte written and checked on reading,
+    took twice as long: 1.03 s against 0.54 s per realisation of a 8192²
+    out-of-core depressions run keeping its level inputs between passes.)"""
+    from numpy.lib.format import write_array
+
     with open(path, "wb") as fh:
-        np.savez(fh, **arrays)
+        write_array(fh, np.array(list(arrays), dtype=str), allow_pickle=False)
+        for a in arrays.values():
+            write_array(fh, np.asarray(a), allow_pickle=False)
     return path
 
 
 def load_scratch(path: str) -> dict:
     """The arrays :func:`save_scratch` wrote (no pickled objects)."""
-    with np.load(path, allow_pickle=False) as f:
-        return {k: f[k] for k in f.files}
+    from numpy.lib.format import read_array
+
+    with open(path, "rb") as fh:
+        names = read_array(fh, allow_pickle=False)
+        return {str(k): read_array(fh, allow_pickle=False) for k in names}
 
 
 _SHARED_MAGIC = b"CAIRNSH1"

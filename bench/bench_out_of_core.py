@@ -21,9 +21,20 @@ apart), rounded to 0.1 m (ties and plateaus), with a round nodata hole;
    memory, and the realisation's time per 10^8 cells next to one whole-grid
    pits realisation (:func:`terrain.jobs.credit.realise`, with ponding
    counts) of a 4096^2 raster measured in this process.
+4. Where a blocked realisation's time goes: the ``--side``^2 raster read onto
+   disk, its regions made, then ``--profile-n`` depressions realisations
+   with ``block=2048`` in one process (serial: every step's seconds are its
+   own) under cProfile; per step (the cumulative time of the functions that
+   do it: the error drawn, the realisation written to and read from its
+   scratch ``.npy``, the local step's basins and merges, its descent codes
+   and level inputs, those inputs to and from scratch, the glue, the fill
+   levels and ponding counts of the second pass, the on-disk count store's
+   updates, the pair log) its seconds per realisation, per block and share
+   of the realisation, and the same per 10^8 cells next to one whole-grid
+   pits realisation of a 4096^2 raster.
 
 Run:  python bench/bench_out_of_core.py [--tmp /var/tmp] [--side 16384] [-n 20] [--skip-32k]
-      [--skip-dask]
+      [--skip-dask] [--profile-n 2] [--skip-profile]
 """
 
 from __future__ import annotations
@@ -181,6 +192,9 @@ def main() -> None:
     ap.add_argument("-n", type=int, default=20, help="realisations of runs 1 and 2")
     ap.add_argument("--skip-dask", action="store_true")
     ap.add_argument("--skip-32k", action="store_true")
+    ap.add_argument("--profile-n", type=int, default=2,
+                    help="realisations profiled step by step (part 4)")
+    ap.add_argument("--skip-profile", action="store_true")
     ap.add_argument("--skip-processes", action="store_true",
                     help="leave out run 1 (the Dask run's layers are then not compared)")
     a = ap.parse_args()
@@ -210,6 +224,8 @@ def main() -> None:
                       f"{guard_estimate(dem, a.n, workers) / GB:.2f} GB |", flush=True)
         if not a.skip_dask:
             dask_run(a, work, run, dem)
+        if not a.skip_profile:
+            step_profile(a, dem)
         if not a.skip_32k:
             big_run(a, work)
     finally:
@@ -298,6 +314,83 @@ def big_run(a, work: str) -> None:
     print(f"\nread {t['read_s']:.0f} s, regions {t['regions_s']:.0f} s, {t['pairs']} pairs "
           f"logged. One pits realisation per 10^8 cells: blocked {a.big}^2 (2 processes) "
           f"{per:.1f} s; whole grid 4096^2 (one core) {whole / (4096 ** 2 / 1e8):.1f} s")
+
+
+PROFILE = """
+import cProfile, json, pstats, sys, time
+from terrain import CreditJob, ErrorModel, run_ensemble
+from terrain.io import read_dem, scratch_folder
+from terrain.layout import plan_layout
+if __name__ == "__main__":
+    n, steps = int(sys.argv[2]), json.loads(sys.argv[3])
+    with scratch_folder() as f:
+        dem = read_dem(sys.argv[1], scratch=f)
+        model = ErrorModel(rmse=1.0)
+        job = CreditJob("depressions")
+        job = job.resolved(dem, model, layout=plan_layout(dem.shape, 2048, job=job))
+        run_ensemble(dem, job, model, realisations=1, seed=2, block=2048, workers=1,
+                     backend="serial")  # compiled kernels loaded, caches warm
+        prof = cProfile.Profile()
+        prof.enable()
+        res = run_ensemble(dem, job, model, realisations=n, seed=1, block=2048, workers=1,
+                           backend="serial")
+        prof.disable()
+    stats = pstats.Stats(prof).stats
+    out = {"wall_s": res.info["wall_seconds"], "steps": {}}
+    for label, names in steps:
+        out["steps"][label] = sum(v[3] for (path, _, fn), v in stats.items()
+                                  if any(path.endswith(m) and fn == f for m, f in names))
+    print(json.dumps(out))
+"""
+
+#: the steps of a blocked depressions realisation, each the cumulative time of
+#: the functions doing it (file suffix, function name); disjoint calls
+STEPS = [
+    ("error field drawn", [("noise/model.py", "draw_window")]),
+    ("realisation written to scratch .npy", [("io/scratch.py", "write_npy_window")]),
+    ("scratch .npy read by window (DEM, realisation)", [("io/scratch.py", "__getitem__")]),
+    ("local step: basins and merges", [("blocked/local.py", "local_engine")]),
+    ("local step: descent codes", [("blocked/local.py", "descend_block")]),
+    ("local step: level inputs", [("blocked/local.py", "level_inputs")]),
+    ("level inputs to and from a scratch file", [("io/scratch.py", "save_scratch"),
+                                              ("io/scratch.py", "load_scratch")]),
+    ("glue over block boundaries, pairs", [("blocked/glue.py", "glue"),
+                                           ("blocked/glue.py", "collect")]),
+    ("second pass: fill levels", [("blocked/finish.py", "levels_from")]),
+    ("second pass: ponding counts", [("engine/persistence.py", "count_ponding")]),
+    ("count store: read, digest check, add, write, seal", [("io/scratch.py", "add")]),
+    ("pair log", [("pairlog.py", "pair_log"), ("pairlog.py", "pond_log")]),
+]
+
+
+def step_profile(a, dem: str) -> None:
+    """Part 4: a blocked realisation of ``dem`` step by step, in one process."""
+    proc = subprocess.run([sys.executable, "-c", PROFILE, dem, str(a.profile_n), json.dumps(STEPS)],
+                          capture_output=True, text=True)
+    if proc.returncode:
+        sys.exit(f"the profiled realisations failed:\n{proc.stderr}")
+    t = json.loads(proc.stdout.strip().splitlines()[-1])
+    n, cells = a.profile_n, a.side ** 2
+    blocks = (-(-a.side // 2048)) ** 2
+    per = t["wall_s"] / n
+    whole = whole_pits_seconds(4096) / (4096 ** 2 / 1e8)
+    print(f"\nOne depressions realisation of the {a.side}^2 raster, --block 2048 ({blocks} blocks), "
+          f"one process, profiled ({n} realisations; cProfile adds its own overhead):")
+    print("| step | s per realisation | ms per block | share | s per 10^8 cells |")
+    print("|---|---|---|---|---|")
+    rest = per
+    for label, _ in STEPS:
+        s = t["steps"][label] / n
+        rest -= s
+        print(f"| {label} | {s:.2f} | {1e3 * s / blocks:.0f} | {s / per:.1%} | "
+              f"{s / (cells / 1e8):.2f} |")
+    print(f"| everything else | {rest:.2f} | {1e3 * rest / blocks:.0f} | {rest / per:.1%} | "
+          f"{rest / (cells / 1e8):.2f} |")
+    print(f"| **the realisation** | {per:.2f} | {1e3 * per / blocks:.0f} | 100% | "
+          f"{per / (cells / 1e8):.2f} |")
+    print(f"\nOne whole-grid pits realisation of a 4096^2 raster (one core, no profiler): "
+          f"{whole:.2f} s per 10^8 cells; the blocked one above is "
+          f"{per / (cells / 1e8) / whole:.2f}x that (with the profiler's overhead).")
 
 
 if __name__ == "__main__":

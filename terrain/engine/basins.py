@@ -423,7 +423,8 @@ def candidates(zk, valid, nr, nc, conn8, codes):
 
 @njit(cache=True)
 def sweep(z, s, valid, nr, nc, conn8, codes, lab):
-    """One pass over the cells: descent pointers, minima, saddle candidates.
+    """One pass over the cells: descent pointers, minima, saddle candidates
+    (:func:`sweep_keeping` keeping no raw pointers).
 
     ``lab[i]`` receives the steepest-descent pointer of valid cell ``i``
     (its lowest neighbour in the total order of keys ``z * s``, ties by
@@ -438,6 +439,16 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
     through :func:`_slow_cell`. Memory: the labels (4 bytes per cell) and
     8 bytes per minimum, candidate (9) and edge cell.
     """
+    return sweep_keeping(z, s, valid, nr, nc, conn8, codes, lab, lab[:0])
+
+
+@njit(cache=True)
+def sweep_keeping(z, s, valid, nr, nc, conn8, codes, lab, pointer):
+    """:func:`sweep`; with ``pointer`` of ``nr * nc`` entries (else empty),
+    also each valid cell's raw steepest-descent pointer there (itself for a
+    local minimum): :func:`descend`'s pointers, from the same pass
+    (nodata cells are left as they are)."""
+    keep = pointer.size > 0
     n = nr * nc
     minc = np.empty(max(64, n // 64), np.int64)
     cand = np.empty(max(64, n // 32), np.int64)
@@ -457,6 +468,8 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
         fast = 0 < r < nr - 1 and nc >= 3 and rowok[r - 1] and rowok[r] and rowok[r + 1]
         if fast:
             _fast_row(z, s, o, nc, conn8, lab, mrow)
+            if keep:
+                pointer[o + 1:o + nc - 1] = lab[o + 1:o + nc - 1]
         for c in range(nc):
             i = o + c
             if fast and 0 < c < nc - 1:
@@ -465,6 +478,8 @@ def sweep(z, s, valid, nr, nc, conn8, codes, lab):
             elif valid[i]:
                 m, best, is_edge = _slow_cell(z, s, valid, i, r, c, nr, nc, conn8)
                 lab[i] = best
+                if keep:
+                    pointer[i] = best
                 code = codes[m]
                 if is_edge:
                     edge[nedge] = i

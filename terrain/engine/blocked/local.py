@@ -14,7 +14,7 @@ from typing import NamedTuple
 import numpy as np
 
 from ...errors import OptionError
-from ..basins import CODES4, CODES8, GROUPS4, GROUPS8, candidates, descend, resolve
+from ..basins import CODES4, CODES8, GROUPS4, GROUPS8, resolve_all, sweep_keeping
 from ..grid import offsets
 from ..persistence import KINDS, event_order
 from . import elders  # relations: the elder of each pair
@@ -113,15 +113,16 @@ def local_engine(blk: Block, connectivity: int, outlet: bool, pointers: bool = F
     """
     nr, nc = blk.nr, blk.nc
     n = nr * nc
-    dr, dc = offsets(connectivity)
-    has_nodata = not blk.valid.all()
     lab = np.empty(n, np.int32 if n < 2**31 - 1 else np.int64)
-    descend(blk.zk, blk.valid, has_nodata, nr, nc, dr, dc, lab)
-    pointer = lab.astype(_code_dtype(n)) if pointers else None
-    minc = resolve(blk.valid, lab)
-    nb = minc.size
     codes, groups = (CODES8, GROUPS8) if connectivity == 8 else (CODES4, GROUPS4)
-    cand, cmask = candidates(blk.zk, blk.valid, nr, nc, connectivity == 8, codes)
+    # one pass: pointers, minima (basins numbered in raster order of their
+    # minima) and saddle candidates, as the whole raster's engine makes them
+    pointer = np.empty(n, _code_dtype(n)) if pointers else None
+    minc, cand, cmask, _ = sweep_keeping(blk.zk, blk.zk.dtype.type(1), blk.valid, nr, nc,
+                                         connectivity == 8, codes, lab,
+                                         lab[:0] if pointer is None else pointer)
+    resolve_all(lab)
+    nb = minc.size
     emin = np.full(nb, -1, np.int64)
     term = np.zeros(nb, np.bool_)
     ea, eb, ew = _k.block_edges(blk.zk, blk.valid, blk.flags, nr, nc, lab, emin, term, cand, cmask,

@@ -330,23 +330,32 @@ def test_regions_equal_the_cell_by_cell_definition(a, kind, conn, outlet, level)
 
 
 @pytest.mark.parametrize("conn", [8, 4])
-def test_candidates_alone_are_the_sweeps_candidates(conn):
-    # the blocked engine's edges come from basins.candidates: the same cells and
-    # masks as the sweep lists, on rasters with ties, nodata and thin shapes
-    from terrain.engine.basins import CODES4, CODES8, candidates, sweep
+def test_the_sweep_keeps_the_descent_pointers(conn):
+    # the blocked engine's local step takes its pointers, minima and candidates from
+    # one sweep_keeping: its raw pointers are basins.descend's (the lowest neighbour
+    # in the total order, itself for a minimum), its labels and candidates sweep's,
+    # on rasters with ties, nodata and thin shapes
+    from terrain.engine.basins import CODES4, CODES8, descend, sweep, sweep_keeping
+    from terrain.engine.grid import offsets
 
     codes = CODES8 if conn == 8 else CODES4
+    dr, dc = offsets(conn)
     rng = np.random.default_rng(conn)
     for it in range(60):
         nr, nc = (int(v) for v in rng.integers(1, 40, 2))
         z = (rng.integers(0, 5, (nr, nc)) if it % 2 else rng.standard_normal((nr, nc))
              ).astype(np.float32).reshape(-1)
         valid = np.ones(z.size, bool) if it % 3 else rng.random(z.size) > 0.2
-        for s in (np.float32(1), np.float32(-1)):
-            lab = np.empty(z.size, np.int32)
-            _, cand, cmask, _ = sweep(z, s, valid, nr, nc, conn == 8, codes, lab)
-            got, gmask = candidates(z * s, valid, nr, nc, conn == 8, codes)
-            assert np.array_equal(got, cand) and np.array_equal(gmask, cmask)
+        z[~valid] = np.nan
+        zk = z * np.float32(-1) if it % 4 == 1 else z
+        want = np.full(z.size, -7, np.int32)
+        descend(zk, valid, not valid.all(), nr, nc, dr, dc, want)
+        lab, lab2 = np.empty(z.size, np.int32), np.empty(z.size, np.int32)
+        got = np.full(z.size, -7, np.int32)
+        out = sweep_keeping(zk, np.float32(1), valid, nr, nc, conn == 8, codes, lab, got)
+        ref = sweep(zk, np.float32(1), valid, nr, nc, conn == 8, codes, lab2)
+        assert np.array_equal(got[valid], want[valid]) and (got[~valid] == -7).all()
+        assert np.array_equal(lab, lab2) and all(np.array_equal(a, b) for a, b in zip(out, ref))
 
 
 @pytest.mark.parametrize("seed", range(6))

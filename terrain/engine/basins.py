@@ -27,9 +27,9 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["before", "kbefore", "elder_rule", "descend", "resolve",
+__all__ = ["before", "kbefore", "elder_rule", "descend",
            "find", "fill_cells", "CODES8", "CODES4", "GROUPS8", "GROUPS4", "CANDIDATE", "MINIMUM",
-           "sweep", "candidates", "label_of", "resolve_all", "NOLABEL", "earlier"]
+           "sweep", "sweep_keeping", "label_of", "resolve_all", "NOLABEL", "earlier"]
 
 
 @njit(cache=True, inline="always")
@@ -143,51 +143,6 @@ def descend(zk, valid, has_nodata, nr, nc, dr, dc, lab):
                         bz = zj
                         bi = j
             lab[i] = bi
-
-
-@njit(cache=True)
-def resolve(valid, lab):
-    """Pass 2: number the minima and label every cell ``-(basin + 1)``.
-
-    Returns the cell of each basin's minimum.
-    """
-    n = lab.size
-    cap = max(16, n // 64)
-    minc = np.empty(cap, np.int64)
-    nb = 0
-    for i in range(n):
-        if not valid[i]:
-            continue
-        j = lab[i]
-        if j < 0:
-            continue
-        if j < i:  # target already resolved: the common case
-            lab[i] = lab[j]
-            continue
-        k = i
-        while True:
-            x = lab[k]
-            if x < 0:
-                root = x
-                break
-            if x == k:  # an unnumbered minimum
-                if nb == cap:
-                    cap *= 2
-                    grown = np.empty(cap, np.int64)
-                    grown[:nb] = minc[:nb]
-                    minc = grown
-                minc[nb] = k
-                nb += 1
-                root = -nb
-                lab[k] = root
-                break
-            k = x
-        k = i
-        while lab[k] >= 0:
-            nxt = lab[k]
-            lab[k] = root
-            k = nxt
-    return minc[:nb]
 
 
 @njit(cache=True, inline="always")
@@ -372,53 +327,6 @@ def _full_rows(valid, nr, nc):
             ok = ok and valid[i]
         rowok[r] = ok
     return rowok
-
-
-@njit(cache=True, inline="always")
-def _mask_row(z, o, nc, mrow):
-    """:func:`_fast_row`'s masks of earlier neighbours alone (keys ``z``)."""
-    up = z[o - nc:o]
-    mid = z[o:o + nc]
-    dn = z[o + nc:o + 2 * nc]
-    for c in range(1, nc - 1):
-        zi = mid[c]
-        mrow[c] = ((up[c - 1] <= zi) + 2 * (up[c] <= zi) + 4 * (up[c + 1] <= zi)
-                   + 8 * (mid[c - 1] <= zi) + 16 * (mid[c + 1] < zi) + 32 * (dn[c - 1] < zi)
-                   + 64 * (dn[c] < zi) + 128 * (dn[c + 1] < zi))
-
-
-@njit(cache=True)
-def candidates(zk, valid, nr, nc, conn8, codes):
-    """The saddle candidates of a raster with keys ``zk`` (raster order) and
-    their masks of earlier neighbours: the cells :func:`sweep` lists, without
-    its pointers or minima. Memory: 9 bytes per candidate."""
-    n = nr * nc
-    cand = np.empty(max(64, n // 32), np.int64)
-    cmask = np.empty(cand.size, np.uint8)
-    mrow = np.zeros(nc, np.uint8)
-    rowok = _full_rows(valid, nr, nc)
-    one = zk.dtype.type(1)
-    ncand = 0
-    for r in range(nr):
-        cand = _grow(cand, ncand, nc)
-        cmask = _grow(cmask, ncand, nc)
-        o = r * nc
-        fast = 0 < r < nr - 1 and nc >= 3 and rowok[r - 1] and rowok[r] and rowok[r + 1]
-        if fast:
-            _mask_row(zk, o, nc, mrow)
-        for c in range(nc):
-            i = o + c
-            if fast and 0 < c < nc - 1:
-                m = mrow[c]
-            elif valid[i]:
-                m, best, is_edge = _slow_cell(zk, one, valid, i, r, c, nr, nc, conn8)
-            else:
-                continue
-            if codes[m] == CANDIDATE:
-                cand[ncand] = i
-                cmask[ncand] = m
-                ncand += 1
-    return cand[:ncand], cmask[:ncand]
 
 
 @njit(cache=True)

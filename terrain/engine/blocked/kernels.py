@@ -98,7 +98,7 @@ def cell_flags(vh, nr, nc, hr, hc, sides, dr, dc, all_valid, flags):
 def block_edges(zk, valid, flags, nr, nc, lab, emin, term, cand, cmask, groups):
     """The merges' edges of one block, from its saddle candidates.
 
-    Only a saddle candidate (:func:`terrain.engine.basins.candidates`, the
+    Only a saddle candidate (:func:`terrain.engine.basins.sweep_keeping`, the
     block read as a raster of its own) can join two components: the earlier
     neighbours of any other cell are one component before it enters. Each
     candidate ``w`` gives an edge, weighing ``w``, from its own basin to the

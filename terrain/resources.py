@@ -72,10 +72,12 @@ QUICKLOOK_SCRATCH = 130  # per cell drawn by the quick-look: hillshade, images, 
 PRESHADE = 73  # the map's hillshade made while the realisations run: float64 elevations,
 #               matplotlib's gradients and normals, the shade (peak measured with tracemalloc)
 # A forked copy of the writing process (terrain.outputs.beside: the layers written
-# while the features are summarised, then the map while the tables are written; one
-# at a time): its own arrays and the pages the parent writes to while it lives,
-# which stop being shared. Measured (private memory, the larger copy): 67 MiB at
-# 400², 116 MiB at 1024² (depressions; peaks 117 MiB at 1024²).
+# while the features are summarised, then the map while the summary is finished and
+# the tables written; one at a time): its own arrays and the pages the parent writes
+# to while it lives, which stop being shared. Measured (private memory, the larger
+# copy): 67 MiB at 400², 116 MiB at 1024² (depressions; peaks 117 MiB at 1024²);
+# 83-89 MiB at 400² in another check, the same with the map's copy beside the
+# tables alone and beside the summary's second step too.
 FORKED_COPY_BYTES = 60 * MiB
 FORKED_COPY = 80  # bytes per cell
 SWEEP_KEPT = 2 * 16  # a sweep keeps two float64 layers (and errors) of each finished run

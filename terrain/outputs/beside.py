@@ -5,9 +5,10 @@ in one process they and the writing of layers and tables take turns on one
 core. On Linux, in a process running no other thread, :func:`in_a_copy`
 forks: the copy does one writing step (a run's layers while its features
 are summarised; with :func:`write_beside`, the map while the tables are
-written and the chart drawn) and this process the rest, each on a core of
-its own. The copy imports nothing and starts in milliseconds (its memory is
-this process's, shared until either side writes to a page), works from the
+written, the chart drawn and, for peaks and depressions, the summary's
+second step made) and this process the rest, each on a core of its own.
+The copy imports nothing and starts in milliseconds (its memory is this
+process's, shared until either side writes to a page), works from the
 same arrays with the same code, so its files are the bytes this process
 would write. It dies with this process and ignores Ctrl-C (this process
 handles it and kills the copy), and when it fails or dies this process does
@@ -62,10 +63,11 @@ def can_fork() -> bool:
 
 def write_beside(out: Path, clock, files: Callable[[], None],
                  figures: dict[str, Callable[[], object]]) -> None:
-    """Run ``files()`` (layers and tables) and save each of ``figures`` (file
-    name: a function returning a matplotlib Figure) as ``out / name``, side by
-    side: the first figure (put the costliest first) in a forked copy
-    (:func:`in_a_copy`), the others here once the files are written.
+    """Run ``files()`` (layers and tables, and whatever must come before them)
+    and save each of ``figures`` (file name: a function returning a
+    matplotlib Figure) as ``out / name``, side by side: the first figure (put
+    the costliest first) in a forked copy (:func:`in_a_copy`), the others
+    here once the files are written.
     ``clock(step)`` times each step (``figures`` for the figures, in both
     processes).
 

@@ -163,13 +163,14 @@ class _Clock:
         ``figures`` drawing and saving the PNGs (in both processes when one
         is drawn in a forked copy; ``forked`` names what a copy wrote,
         ``forked_failed`` the steps a copy did not finish, done here instead),
-        ``summary`` the feature summary when it was made while the layers
-        were written; ``writing`` is the wall time from the first step's
+        ``summary`` the feature summary when it was made within the writing
+        (its first step while the layers were written, its second while the
+        map was drawn); ``writing`` is the wall time from the first step's
         start to the last one's end, less the summary's (less than the
         steps' sum when they overlap).
         """
-        # a summary made while the layers were written is not writing: only the
-        # wall time writing added to it counts
+        # a summary made while the layers were written or the map drawn is not
+        # writing: only the wall time writing added to it counts
         writing = max(self.span[1] - self.span[0] - self.seconds.get("summary", 0.0), 0.0) \
             if self.seconds else 0.0
         run = realisations_s + writing
@@ -261,6 +262,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
         if steps is not None:  # while the map is drawn from the first step
             with clock("summary"):
                 features = next(steps)
+            steps.close()
         if layers_here:
             with clock("layers"):
                 layers()

@@ -447,11 +447,13 @@ def summary_steps(result) -> Iterator[FeatureSummary]:
     ------
     FeatureSummary
         First what the figures draw: the table (by rank) without the relation
-        columns, ``frames`` holding only the top polygons (``summits`` /
-        ``pits``) and the rank table, no ``links``; every other field is
-        whole. Then the whole summary: the relation columns, the regions'
-        polygons (the costliest part), the points and key cols / spill
-        points, and the links.
+        columns, ``frames`` holding only the top polygons (the ``summits`` /
+        ``pits`` layer), no ``links``; every other field (``ranks``,
+        ``rank_share``, ``clusters``, ``top``) is whole. Then the whole
+        summary: the relation columns, the regions' polygons (the costliest
+        part), the points and key cols / spill points, the rank and link
+        layers, and the links. The generator keeps nothing of its
+        temporaries once the whole summary is made.
     """
     dem, job = result.dem, result.job
     # one pass over the log (a sort of every pair) serves the figures and the tops
@@ -506,7 +508,10 @@ def summary_steps(result) -> Iterator[FeatureSummary]:
         frames[LINK_TABLE[job.kind]] = link_frame(dem, job.regions, links, job.kind)
     summary = FeatureSummary(job.regions, table, frames, top, settings, ranked, long, clusters,
                              None if links is None else links.drop(columns="death"))
-    release_freed_memory()  # the summaries' temporaries, before the layers are written
+    # a paused generator keeps its locals: let go of the pair log's figures, the
+    # figure matrix and the columns before the tables and figures are written
+    del figures, fm, ranks, p, none, data, rel_columns, links, share, tops, rows, bimodal, split
+    release_freed_memory()
     yield summary
 
 

@@ -623,7 +623,8 @@ class CountStore:
         h = hashlib.blake2b(digest_size=8, person=b"cairn-counts")
         h.update(self.run.encode())
         h.update(np.array([bi, bj, n], "<i8").tobytes())
-        h.update(np.ascontiguousarray(values, "<i4").tobytes())
+        # the values' bytes as they lie (no 4-byte-per-cell copy of the chunk)
+        h.update(memoryview(np.ascontiguousarray(values, "<i4").reshape(-1)).cast("B"))
         return int.from_bytes(h.digest(), "little") >> 1
 
     def _chunk(self, bi: int, bj: int, n: int, b: int | None = None) -> np.ndarray:

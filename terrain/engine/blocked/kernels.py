@@ -653,11 +653,8 @@ def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, n
     sgn = -1.0 if neg else 1.0
     if not pointed:
         descend(zk, valid, has_nodata, nr, nc, dr, dc, code)
-    for i in range(n):
-        if not valid[i]:
-            code[i] = -(2 * n + 1)
-        elif code[i] == i:
-            code[i] = -(i + 1)
+    # the outer ring first (its codes set whole: self, block cell or exit), so
+    # one forward pass can then mark the rest and start every chain
     ne = 0
     for r in range(nr):
         step = 1 if (r == 0 or r == nr - 1) else max(nc - 1, 1)
@@ -666,12 +663,17 @@ def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, n
             if valid[i]:
                 bR, bC = _ring_pointer(vals, sgn, r + hr, c + hc, hr0, hc0, ncols, dr, dc)
                 ne = _point(code, ex_ring, ne, i, r, c, bR, bC, hr, hc, nr, nc)
-    # every chain to its end: forward, a pointer to an earlier cell takes what
-    # that cell holds (its end, or a pointer to a later cell); then backward,
-    # most pointers reach a cell already ended (one read), the rest are followed
+    # every chain to its end: forward, nodata and minima marked and a pointer
+    # to an earlier cell takes what that cell holds (its end, or a pointer to
+    # a later cell); then backward, most pointers reach a cell already ended
+    # (one read), the rest are followed
     for i in range(n):
         p = code[i]
-        if 0 <= p < i:
+        if not valid[i]:
+            code[i] = -(2 * n + 1)
+        elif p == i:
+            code[i] = -(i + 1)
+        elif 0 <= p < i:
             code[i] = code[p]
     for i in range(n - 1, -1, -1):
         p = code[i]
@@ -693,25 +695,23 @@ def global_descend(zk, valid, has_nodata, vals, neg, hr, hc, nr, nc, hr0, hc0, n
 
 
 @njit(cache=True)
-def descent_rows(code, n):
+def descent_rows(code, n, most):
     """Turn the codes of :func:`global_descend` into rows of a table, in place.
 
-    The raster minima of the block (cells whose chain ends at themselves)
-    get rows ``0..m-1`` in cell order, the exits rows ``m + e``; each cell
-    gets the row of where its chain ends, -1 on nodata. Returns the minima
-    (local cells, the table's first ``m`` rows). No temporary per cell.
+    The raster minima of the block (cells whose chain ends at themselves;
+    at most ``most``, the block's local minima) get rows ``0..m-1`` in cell
+    order, the exits rows ``m + e``; each cell gets the row of where its
+    chain ends, -1 on nodata. Returns the minima (local cells, the table's
+    first ``m`` rows). No temporary per cell.
     """
+    minima = np.empty(most, np.int64)
     m = 0
     for i in range(n):
         if code[i] == -(i + 1):
+            code[i] = m
+            minima[m] = i
             m += 1
-    minima = np.empty(m, np.int64)
-    k = 0
-    for i in range(n):
-        if code[i] == -(i + 1):
-            code[i] = k
-            minima[k] = i
-            k += 1
+    minima = minima[:m]
     for i in range(n):
         v = code[i]
         if v >= 0:

@@ -374,6 +374,6 @@ def level_inputs(blk: Block, lab, minc, m: Merged, code, ex_ring, links) -> Leve
     """The :class:`LevelInputs` of a block from its local engine, its
     descent codes (``code`` of :func:`descend_block`, turned into ``dest``
     in place) and its ``basin_links``."""
-    minima = _k.descent_rows(code, blk.nr * blk.nc)
+    minima = _k.descent_rows(code, blk.nr * blk.nc, minc.size)  # raster minima are local ones
     tc, tk, x, dk = _minima_links(blk, lab, minc, m, links, minima)
     return LevelInputs(code, tk, tc, x, dk, ex_ring)

@@ -574,3 +574,22 @@ def test_cell_flags_follow_their_definition(conn, seed):
                     f |= K.TERM
             want[r - w.r0, c - w.c0] = f
     assert np.array_equal(blk.flags.reshape(want.shape), want)
+
+
+def test_scratch_files_give_back_the_arrays_as_saved(tmp_path):
+    # the level inputs kept between a realisation's passes: every dtype and shape
+    # back as saved (0-d, empty, big-endian, Fortran order, strided, dates, text),
+    # and no Python objects written (they would be pointers, not values)
+    arrays = {"f0": np.array(3.5), "dest": np.arange(7, dtype=np.int32),
+              "be": np.arange(6, dtype=">i4").reshape(2, 3),
+              "fortran": np.asfortranarray(np.arange(6.0).reshape(2, 3)),
+              "empty": np.zeros((0, 3), np.int64), "flags": np.array([True, False]),
+              "strided": np.arange(20)[::3], "when": np.array(["2020-01-01"], "datetime64[D]"),
+              "names": np.array(["é", "ab"])}
+    back = load_scratch(save_scratch(str(tmp_path / "a"), arrays))
+    assert list(back) == list(arrays)
+    for k, v in arrays.items():
+        assert back[k].dtype == v.dtype and back[k].shape == v.shape
+        assert np.array_equal(back[k], v)
+    with pytest.raises(TypeError, match="no Python objects"):
+        save_scratch(str(tmp_path / "b"), {"o": np.array([1, None], object)})

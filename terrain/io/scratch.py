@@ -165,11 +165,13 @@ def save_scratch(path: str, arrays: dict) -> str:
 
     with open(path, "wb") as fh:
         for a in (np.array(list(arrays), dtype=str), *arrays.values()):
-            a = np.ascontiguousarray(a)
+            a = np.asarray(a, order="C")  # 0-d stays 0-d
+            if a.dtype.hasobject:
+                raise TypeError(f"{path}: a scratch file holds no Python objects")
             write_array_header_1_0(fh, header_data_from_array_1_0(a))
             # through the file object: a full disk raises ENOSPC (numpy's
             # ``tofile`` reports a short write without its errno)
-            fh.write(memoryview(a.reshape(-1)).cast("B"))
+            fh.write(a.reshape(-1).view(np.uint8))
     return path
 
 

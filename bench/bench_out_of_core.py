@@ -263,22 +263,30 @@ def dask_run(a, work: str, run: list[str], dem: str) -> None:
           flush=True)
 
 
-ONE_REALISATION = """
-import json, sys, time
+#: the head of both scripts below: the DEM read onto disk in ``folder``, its
+#: depressions job resolved with 2048^2 blocks (seconds of each into ``t``)
+ON_DISK = """
+import cProfile, json, pstats, sys, time
 from terrain import CreditJob, ErrorModel, run_ensemble
 from terrain.io import read_dem, scratch_folder
 from terrain.layout import plan_layout
+def on_disk(path, folder, t):
+    t0 = time.perf_counter()
+    dem = read_dem(path, scratch=folder)
+    t["read_s"] = time.perf_counter() - t0
+    model = ErrorModel(rmse=1.0)
+    t0 = time.perf_counter()
+    job = CreditJob("depressions")
+    job = job.resolved(dem, model, layout=plan_layout(dem.shape, 2048, job=job))
+    t["regions_s"] = time.perf_counter() - t0
+    return dem, model, job
+"""
+
+ONE_REALISATION = ON_DISK + """
 if __name__ == "__main__":
     t = {}
     with scratch_folder() as f:
-        t0 = time.perf_counter()
-        dem = read_dem(sys.argv[1], scratch=f)
-        t["read_s"] = time.perf_counter() - t0
-        model = ErrorModel(rmse=1.0)
-        t0 = time.perf_counter()
-        job = CreditJob("depressions")
-        job = job.resolved(dem, model, layout=plan_layout(dem.shape, 2048, job=job))
-        t["regions_s"] = time.perf_counter() - t0
+        dem, model, job = on_disk(sys.argv[1], f, t)
         res = run_ensemble(dem, job, model, realisations=1, seed=1, block=2048, workers=2,
                            backend="processes")
         t["realisation_s"] = res.info["wall_seconds"]
@@ -316,18 +324,11 @@ def big_run(a, work: str) -> None:
           f"{per:.1f} s; whole grid 4096^2 (one core) {whole / (4096 ** 2 / 1e8):.1f} s")
 
 
-PROFILE = """
-import cProfile, json, pstats, sys, time
-from terrain import CreditJob, ErrorModel, run_ensemble
-from terrain.io import read_dem, scratch_folder
-from terrain.layout import plan_layout
+PROFILE = ON_DISK + """
 if __name__ == "__main__":
     n, steps = int(sys.argv[2]), json.loads(sys.argv[3])
     with scratch_folder() as f:
-        dem = read_dem(sys.argv[1], scratch=f)
-        model = ErrorModel(rmse=1.0)
-        job = CreditJob("depressions")
-        job = job.resolved(dem, model, layout=plan_layout(dem.shape, 2048, job=job))
+        dem, model, job = on_disk(sys.argv[1], f, {})
         run_ensemble(dem, job, model, realisations=1, seed=2, block=2048, workers=1,
                      backend="serial")  # compiled kernels loaded, caches warm
         prof = cProfile.Profile()

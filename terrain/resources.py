@@ -104,6 +104,14 @@ PAIRS_PER_REALISATION = 2000  # assumed; the run re-checks its log as it grows
 # their tracing (measured: 11-13 KiB per depression of rugged 4096^2 test DEMs,
 # 16,856 and 36,430 of them; rounded up). Known once the regions are made.
 FEATURE_BYTES = 16 * KiB
+# Out of core, per feature region too, while the quick-look draws it: its outline's
+# path, markers and tie line, and what matplotlib makes of them while laying out and
+# rendering the map. Measured at 16384² (cairn depressions -n 2 --block 2048
+# --workers 1, sampled every 0.25 s): the drawing took the one process from 1.53 to
+# 2.58 GB, with all 4,471 feature regions drawn; that peak is 226 KB per feature
+# above the estimate without them (rounded up, with FEATURE_BYTES). Every region is
+# counted as drawn: which ones are is known only once the realisations are done.
+DRAWN_FEATURE_BYTES = 224 * KiB
 
 
 def available_bytes() -> int:
@@ -140,6 +148,7 @@ class MemoryEstimate:
     kernel: int = 0
     on_disk: bool = False
     features: int = 0
+    feature_bytes: int = 0  # what ``features`` add: their summaries, and drawing them
 
     def describe(self) -> str:
         """One line, e.g. ``~1.20 GiB = 0.60 GiB + 2 workers x 0.30 GiB (250 bytes
@@ -151,8 +160,10 @@ class MemoryEstimate:
             text += f", of which {_gib(self.kernel)} to compute the correlated error's kernel"
         peak = max(v for k, v in self.per_cell.items() if k != "worker")
         if self.on_disk:
-            summaries = (f"; the summaries of its {self.features:,} features: "
-                         f"{_gib(self.features * FEATURE_BYTES)}" if self.features else "")
+            drawless = self.features * FEATURE_BYTES
+            summaries = (f"; the summaries of its {self.features:,} features"
+                         f"{', and drawing them' if self.feature_bytes > drawless else ''}"
+                         f": {_gib(self.feature_bytes)}" if self.features else "")
             return text + (f" (out of core: the DEM, region labels and counts stay on disk; "
                            f"a worker holds one block of {self.block} x {self.block}{summaries})")
         if self.block:
@@ -215,7 +226,8 @@ def estimate_run(grid: RasterHeader | Dem, job: Job, ex: Execution | None = None
     features : int
         Out of core: the feature regions of the DEM as given, once they are
         made (``len(job.regions)``), whose summaries are held from the summary
-        phase through the writing (:data:`FEATURE_BYTES` each); 0 before.
+        phase through the writing (:data:`FEATURE_BYTES` each) and which the
+        quick-look may draw (:data:`DRAWN_FEATURE_BYTES` each); 0 before.
     """
     ex = ex if ex is not None else Execution()
     layout = layout if layout is not None else plan_layout(grid.shape, ex.block, job=job,
@@ -289,13 +301,14 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
     task, glue = _block_bytes(grid, cells, int(block), draw)
     band = min(rows, BAND_ROWS * max(1, min(16, (64 * MiB) // max(cols * 8 * BAND_ROWS, 1))))
     window = min(cells, WINDOW_CELLS)
+    feature_bytes = features * (FEATURE_BYTES + quicklook * DRAWN_FEATURE_BYTES)
     phases = {"read": band * cols * (2 * stored + value + READ_SCRATCH),
               "regions": glue + task,  # the same blocks (terrain.jobs.credit.dem_regions)
               "running": glue + (0 if local else task),
               # the writer's window and, while the map is drawn beside it, the map's
               "writing": (1 + quicklook) * window * WINDOW_BYTES + WINDOW_WRITE_CACHE
               + quicklook * min(cells, QUICKLOOK_CELLS) * QUICKLOOK_SCRATCH
-              + features * FEATURE_BYTES}
+              + feature_bytes}
     log = 2 * LOG_BYTES_PER_PAIR * PAIRS_PER_REALISATION * _planned(ex) * runs
     build, kept, tile = field
     parent = (PROCESS_BYTES + quicklook * (DRAWING_BYTES + FORKED_COPY_BYTES)
@@ -306,7 +319,8 @@ def _out_of_core(grid, job, ex, block, cells, value, stored, draw, local, runs, 
     return MemoryEstimate(total=parent + local * worker, parent=parent, worker=worker,
                           workers=local, cells=cells,
                           per_cell={**per, "worker": math.ceil(task / max(cells, 1))},
-                          block=int(block), kernel=build, on_disk=True, features=features)
+                          block=int(block), kernel=build, on_disk=True, features=features,
+                          feature_bytes=feature_bytes)
 
 
 def _block_bytes(grid, cells: int, b: int, draw: int) -> tuple[int, int]:

@@ -313,3 +313,22 @@ def test_a_run_too_big_for_the_cap_finishes_in_blocks_under_it(capped_dem, tmp_p
     assert kills == 0  # held to the cap by the kernel, and nothing was killed for it
     assert measured <= CAP
     assert (tmp_path / "o" / "ponding_probability.tif").exists()
+
+
+def test_out_of_core_estimate_counts_each_feature_summarised_and_drawn(dems):
+    """Out of core, each feature region adds its summaries and, when a quick-look is
+    drawn, its drawing (measured at 16384²: the map's drawing outgrew the estimate
+    without it); counted (no outside reference)."""
+    from terrain.resources import DRAWN_FEATURE_BYTES, FEATURE_BYTES
+
+    head, job = read_header(dems[400]), CreditJob("depressions")
+    ex = Execution(realisations=4, workers=1, block=64)  # a single blocked run: on disk
+
+    def total(features, quicklook=True):
+        est = estimate_run(head, job, ex, quicklook=quicklook, features=features)
+        assert est.on_disk
+        return est.total
+
+    n = 100_000  # enough that the writing is the largest phase
+    assert total(2 * n) - total(n) == n * (FEATURE_BYTES + DRAWN_FEATURE_BYTES)
+    assert total(2 * n, False) - total(n, False) == n * FEATURE_BYTES

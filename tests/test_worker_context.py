@@ -60,3 +60,80 @@ def test_processes_with_default_chunks_equal_serial():
             assert np.array_equal(a, b), name
     for f in ref.log:
         assert np.array_equal(ref.log[f], got.log[f], equal_nan=ref.log[f].dtype.kind == "f"), f
+
+
+def _children() -> set:
+    import psutil
+
+    return {p.pid for p in psutil.Process().children(recursive=True) if p.is_running()}
+
+
+def test_workers_started_ahead_serve_the_next_runs_and_change_nothing(monkeypatch):
+    """Workers started before the DEM is read (as the CLI does) run the next run
+    on as many workers, blocked or whole, with the layers and log of a serial
+    run bit for bit; the pool is the one started ahead, and a second run after
+    it starts its own."""
+    import functools
+
+    from terrain.jobs.credit import load_kernels
+    from terrain.runner import backends, blocked
+
+    taken = []
+
+    def recording(n, real=backends.take_pool):
+        taken.append(real(n))
+        return taken[-1]
+
+    monkeypatch.setattr(backends, "take_pool", recording)
+    monkeypatch.setattr(blocked, "take_pool", recording)
+    z = smooth_terrain((48, 56), seed=5)
+    dem = Dem.from_array(z, cellsize=30.0)
+    model = ErrorModel(rmse=1.5)
+    kw = dict(realisations=12, seed=4)
+    for kind, block in (("peaks", None), ("depressions", None), ("depressions", 16)):
+        ref = run_ensemble(dem, CreditJob(kind, threshold=2.0), model, backend="serial",
+                           block=block, **kw)
+        warm = functools.partial(load_kernels, kind) if block is None else None
+        taken.clear()
+        with backends.warm_workers(2, warm):
+            ahead = backends._AHEAD[0][1]
+            got, again = (run_ensemble(dem, CreditJob(kind, threshold=2.0), model,
+                                       backend="processes", workers=2, block=block, **kw)
+                          for _ in range(2))
+            assert taken[0] is ahead and taken[1] is not ahead and not backends._AHEAD
+        for res in (got, again):
+            for name in ref.layers:
+                for a, b in zip(ref.layers[name], res.layers[name]):
+                    assert np.array_equal(a, b), (kind, block, name)
+            for f in ref.log:
+                assert np.array_equal(ref.log[f], res.log[f],
+                                      equal_nan=ref.log[f].dtype.kind == "f"), (kind, f)
+
+
+def test_workers_started_ahead_and_never_used_are_stopped():
+    """A pool started ahead of a run that never comes (an error reading the DEM,
+    Ctrl-C) is stopped when its block ends: no process outlives it."""
+    import time
+
+    from terrain.runner import backends
+
+    before = _children()
+    try:
+        with backends.warm_workers(2):
+            time.sleep(0.2)
+            assert len(_children() - before) >= 2  # started
+            raise KeyboardInterrupt
+    except KeyboardInterrupt:
+        pass
+    assert not backends._AHEAD
+    deadline = time.monotonic() + 10
+    while _children() - before and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert not _children() - before
+
+
+def test_load_kernels_runs_a_realisation_of_each_kind():
+    from terrain.jobs.credit import load_kernels
+
+    for kind in ("peaks", "depressions"):
+        load_kernels(kind)  # no error, nothing returned or kept

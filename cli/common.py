@@ -8,6 +8,7 @@ command line's own words.
 from __future__ import annotations
 
 import functools
+import os
 import shlex
 import sys
 
@@ -62,8 +63,31 @@ class Terminated(KeyboardInterrupt):
     """SIGTERM outside a run's realisations (a run handles it itself)."""
 
 
-def _terminate(signum, frame):
-    raise Terminated()
+#: a signal handled while Python code runs inside numba is sent again this much later
+RETRY_SECONDS = 0.05
+_NUMBA = f"{os.sep}numba{os.sep}"
+
+
+def _interrupt(signum, frame):
+    """Ctrl-C or SIGTERM outside a run's realisations: raise KeyboardInterrupt or
+    :class:`Terminated` -- except while Python code runs inside numba (a kernel's
+    first call loads its environment from the cache, calling back into Python from
+    the compiled code): an exception raised there is not one numba can pass on, and
+    the process crashed (a segmentation fault or a traceback, in about a third of
+    the Ctrl-Cs sent while a run's first kernels loaded). The signal is then sent
+    again :data:`RETRY_SECONDS` later, when that call is over."""
+    import signal
+    import threading
+
+    f = frame
+    while f is not None:
+        if _NUMBA in f.f_code.co_filename:
+            again = threading.Timer(RETRY_SECONDS, os.kill, (os.getpid(), signum))
+            again.daemon = True
+            again.start()
+            return
+        f = f.f_back
+    raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
 
 
 def guarded(fn):
@@ -73,7 +97,7 @@ def guarded(fn):
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
-        previous = _on_sigterm(_terminate)
+        previous = _on_signals(_interrupt)
         try:
             try:
                 return fn(*args, **kwargs)
@@ -100,7 +124,7 @@ def guarded(fn):
             click.echo(f"cairn: {'terminated' if term else 'interrupted'}", err=True)
             sys.exit(143 if term else 130)
         finally:
-            _on_sigterm(previous)
+            _on_signals(previous)
 
     return wrapper
 
@@ -149,19 +173,22 @@ CONSOLE = False
 
 
 def on_sigterm_terminate():
-    """SIGTERM raises :class:`Terminated` from here on (main thread only); returns the
-    previous handler."""
-    return _on_sigterm(_terminate)
+    """SIGTERM raises :class:`Terminated` from here on (main thread only, see
+    :func:`_interrupt`); returns the previous handlers."""
+    return _on_signals(_interrupt, signals=("SIGTERM",))
 
 
-def _on_sigterm(handler):
-    """Install ``handler`` for SIGTERM (main thread only); returns the previous one."""
+def _on_signals(handler, signals=("SIGINT", "SIGTERM")):
+    """Install ``handler`` for ``signals`` (main thread only), or each signal's own
+    handler when ``handler`` is a dict of them; returns the previous ones."""
     import signal
     import threading
 
     if handler is None or threading.current_thread() is not threading.main_thread():
         return None
-    return signal.signal(signal.SIGTERM, handler)
+    return {name: signal.signal(getattr(signal, name), handler[name] if isinstance(handler, dict)
+                                else handler)
+            for name in (handler if isinstance(handler, dict) else signals)}
 
 
 def command_line() -> str:

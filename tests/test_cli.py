@@ -356,3 +356,30 @@ def test_sweep_takes_the_shared_options(cairn, dem_tif, tmp_path):
     code, _, err = cairn("sweep", dem_tif, "-o", tmp_path / "x", "--kind", "peaks",
                          "--rmse", "1", "--min-depth", "2")
     assert code == 2 and "--min-prominence" in err
+
+
+def test_a_signal_inside_numba_is_sent_again_later_and_raises_anywhere_else(monkeypatch):
+    """Ctrl-C or SIGTERM handled while Python code runs inside numba (a kernel's first
+    call loading its environment, called back from compiled code) is not raised there,
+    where it crashed the process, but sent again a moment later; anywhere else it
+    raises at once (our own rule: no outside reference)."""
+    from cairn_cli import common
+
+    sent = []
+    monkeypatch.setattr(os, "kill", lambda pid, signum: sent.append((pid, signum)))
+    ns: dict = {}
+    fake = os.path.join(os.sep, "site-packages", "numba", "core", "serialize.py")
+    exec(compile("import sys\ndef inside():\n    return sys._getframe()\n", fake, "exec"), ns)
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        common._interrupt(signum, ns["inside"]())  # no exception
+        deadline = time.monotonic() + 5
+        while not sent and time.monotonic() < deadline:
+            time.sleep(0.01)
+        assert sent == [(os.getpid(), signum)]
+        sent.clear()
+    with pytest.raises(KeyboardInterrupt) as got:
+        common._interrupt(signal.SIGINT, sys._getframe())
+    assert not isinstance(got.value, common.Terminated)
+    with pytest.raises(common.Terminated):
+        common._interrupt(signal.SIGTERM, sys._getframe())
+    assert not sent

@@ -63,25 +63,34 @@ class Terminated(KeyboardInterrupt):
     """SIGTERM outside a run's realisations (a run handles it itself)."""
 
 
-#: a signal handled while Python code runs inside numba is sent again this much later
+#: a signal handled while compiled code calls back into Python is sent again this much later
 RETRY_SECONDS = 0.05
-_NUMBA = f"{os.sep}numba{os.sep}"
+
+
+@functools.lru_cache(maxsize=1)
+def _numba_callback_file() -> str:
+    """The file of numba's ``_numba_unpickle``, which compiled code calls back into."""
+    import numba.core.serialize
+
+    return os.path.realpath(numba.core.serialize.__file__)
 
 
 def _interrupt(signum, frame):
     """Ctrl-C or SIGTERM outside a run's realisations: raise KeyboardInterrupt or
-    :class:`Terminated` -- except while Python code runs inside numba (a kernel's
-    first call loads its environment from the cache, calling back into Python from
-    the compiled code): an exception raised there is not one numba can pass on, and
-    the process crashed (a segmentation fault or a traceback, in about a third of
-    the Ctrl-Cs sent while a run's first kernels loaded). The signal is then sent
-    again :data:`RETRY_SECONDS` later, when that call is over."""
+    :class:`Terminated` -- except while compiled code calls back into Python (a
+    kernel's first call unpickles its environment from the cache through numba's
+    ``_numba_unpickle``): an exception raised there is not one numba can pass on,
+    and the process crashed (a segmentation fault or a traceback, in about a third
+    of the Ctrl-Cs sent while a run's first kernels loaded). The signal is then
+    sent again :data:`RETRY_SECONDS` later, when that call is over (milliseconds;
+    numba's compiler, which is plain Python, is interrupted at once)."""
     import signal
     import threading
 
+    callback = _numba_callback_file()
     f = frame
     while f is not None:
-        if _NUMBA in f.f_code.co_filename:
+        if os.path.realpath(f.f_code.co_filename) == callback:
             again = threading.Timer(RETRY_SECONDS, os.kill, (os.getpid(), signum))
             again.daemon = True
             again.start()

@@ -182,10 +182,7 @@ def init_worker(warm: Callable[[], object] | None, parent: int) -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     die_with_parent(parent)  # or exit, if the parent died before we were ready
     if warm is not None:
-        try:
-            warm()
-        except Exception:  # noqa: BLE001, S110  (it only saves time: the run loads them anyway)
-            pass
+        warm()
 
 
 def _chunk_in_worker(shared: str, start: int, stop: int):

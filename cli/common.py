@@ -68,29 +68,29 @@ RETRY_SECONDS = 0.05
 
 
 @functools.lru_cache(maxsize=1)
-def _numba_callback_file() -> str:
-    """The file of numba's ``_numba_unpickle``, which compiled code calls back into."""
-    import numba.core.serialize
+def _numba_folder() -> str:
+    """numba's own package folder (not any folder that happens to be named numba)."""
+    import numba
 
-    return os.path.realpath(numba.core.serialize.__file__)
+    return os.path.join(os.path.dirname(os.path.realpath(numba.__file__)), "")
 
 
 def _interrupt(signum, frame):
     """Ctrl-C or SIGTERM outside a run's realisations: raise KeyboardInterrupt or
-    :class:`Terminated` -- except while compiled code calls back into Python (a
-    kernel's first call unpickles its environment from the cache through numba's
-    ``_numba_unpickle``): an exception raised there is not one numba can pass on,
+    :class:`Terminated` -- except while Python code of numba's own package runs (a
+    kernel's first call unpickles its environment from the cache, called back
+    from compiled code): an exception raised there is not one numba can pass on,
     and the process crashed (a segmentation fault or a traceback, in about a third
     of the Ctrl-Cs sent while a run's first kernels loaded). The signal is then
-    sent again :data:`RETRY_SECONDS` later, when that call is over (milliseconds;
-    numba's compiler, which is plain Python, is interrupted at once)."""
+    sent again :data:`RETRY_SECONDS` later, when numba's code is over (so on a
+    cold kernel cache it waits for the compiling)."""
     import signal
     import threading
 
-    callback = _numba_callback_file()
+    inside = _numba_folder()
     f = frame
     while f is not None:
-        if os.path.realpath(f.f_code.co_filename) == callback:
+        if os.path.realpath(f.f_code.co_filename).startswith(inside):
             again = threading.Timer(RETRY_SECONDS, os.kill, (os.getpid(), signum))
             again.daemon = True
             again.start()

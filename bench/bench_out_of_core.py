@@ -216,6 +216,7 @@ def main() -> None:
                 out = os.path.join(work, "out" if workers == 2 else "out-1")
                 wall, peak, _ = cairn([*run, "-o", out, "--workers", str(workers)])
                 rs = json.load(open(os.path.join(out, "run.json")))["timings"]
+                rows = features(out)
                 same = "" if workers == 1 else (
                     f"; layers equal to 1 process: {layers_equal(os.path.join(work, 'out-1'), out)}")
                 print(f"| depressions -n {a.n} --block 2048, {workers} process"
@@ -223,8 +224,8 @@ def main() -> None:
                       f"{rs['realisations_s']:.0f} | {peak / GB:.2f} GB | < 3 GB: "
                       f"{'yes' if peak < 3 * GB else 'NO'}{same} | "
                       f"{guard_estimate(dem, a.n, workers) / GB:.2f} GB; "
-                      f"{guard_estimate(dem, a.n, workers, features(out)) / GB:.2f} GB "
-                      f"({features(out):,}) |", flush=True)
+                      f"{guard_estimate(dem, a.n, workers, rows) / GB:.2f} GB ({rows:,}) |",
+                      flush=True)
         if not a.skip_dask:
             dask_run(a, work, run, dem)
         if not a.skip_profile:

@@ -133,7 +133,7 @@ def guarded(fn):
             click.echo(f"cairn: {'terminated' if term else 'interrupted'}", err=True)
             sys.exit(143 if term else 130)
         finally:
-            _on_signals(previous)
+            _restore_signals(previous)
 
     return wrapper
 
@@ -188,16 +188,22 @@ def on_sigterm_terminate():
 
 
 def _on_signals(handler, signals=("SIGINT", "SIGTERM")):
-    """Install ``handler`` for ``signals`` (main thread only), or each signal's own
-    handler when ``handler`` is a dict of them; returns the previous ones."""
+    """Install ``handler`` for ``signals`` (main thread only); returns the previous
+    handlers by name, for :func:`_restore_signals`."""
     import signal
     import threading
 
-    if handler is None or threading.current_thread() is not threading.main_thread():
+    if threading.current_thread() is not threading.main_thread():
         return None
-    return {name: signal.signal(getattr(signal, name), handler[name] if isinstance(handler, dict)
-                                else handler)
-            for name in (handler if isinstance(handler, dict) else signals)}
+    return {name: signal.signal(getattr(signal, name), handler) for name in signals}
+
+
+def _restore_signals(previous) -> None:
+    """Put back the handlers :func:`_on_signals` returned (None: nothing was installed)."""
+    import signal
+
+    for name, handler in (previous or {}).items():
+        signal.signal(getattr(signal, name), handler)
 
 
 def command_line() -> str:

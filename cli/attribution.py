@@ -20,6 +20,7 @@ from .execute import (
     outputs,
     read,
     run_job,
+    workers_ahead,
 )
 from .summary import print_summary
 
@@ -39,11 +40,12 @@ def run_credit(kind: str, dem_path, outdir, opts: dict, *, threshold, base=None,
     head = header(dem_path, opts)
     out = outputs(outdir, file_names(kind), opts, inputs=[dem_path])
     ex, layout = guard_memory(head, job, ex, opts, model=model)
-    dem = read(dem_path, opts, on_disk=layout.on_disk)
-    job = job.resolved(dem, model, layout=layout)
-    guard_summaries(head, job, ex, opts, model=model, layout=layout)
-    res = run_job(dem, job, model, ex, opts, label=label or kind,
-                  headline=settings_line(job, dem.unit_label), layout=layout)
+    with workers_ahead(ex, layout, kind):  # they start while the DEM is read
+        dem = read(dem_path, opts, on_disk=layout.on_disk)
+        job = job.resolved(dem, model, layout=layout)
+        guard_summaries(head, job, ex, opts, model=model, layout=layout)
+        res = run_job(dem, job, model, ex, opts, label=label or kind,
+                      headline=settings_line(job, dem.unit_label), layout=layout)
     if model.range_m == 0:
         warn(INDEPENDENT_ERROR)
     features = write_credit_run(out, res, summary_steps(res),  # layers, map beside it

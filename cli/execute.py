@@ -6,7 +6,9 @@ only wires the options through and prints.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
+import functools
 import sys
 import threading
 from pathlib import Path
@@ -32,13 +34,14 @@ from terrain.io import (
 from terrain.noise import ErrorModel, rmse_from
 from terrain.resources import check_disk, check_memory, choose_layout
 from terrain.runner import Execution, RunInterrupted, run_ensemble
+from terrain.runner.backends import warm_workers
 from terrain.runner.checkpoint import prepare_checkpoint
 
 from .common import flush_warnings, warn, warn_later
 from .progress import progress_bar
 
 __all__ = ["EXEC_KEYS", "error_model", "read", "header", "execution", "outputs", "guard_memory",
-           "guard_summaries", "run_job"]
+           "guard_summaries", "run_job", "workers_ahead"]
 
 RUN_KEYS = ("realisations", "seed", "workers", "scheduler", "checkpoint", "resume", "target_se")
 EXEC_KEYS = RUN_KEYS + ("memory_check", "block", "counts")  # what run_ensemble takes from an Execution
@@ -177,7 +180,7 @@ def guard_summaries(head, job, ex: Execution, opts: dict, *, model, layout) -> N
     the rest (no header tells how many there are)."""
     if layout.on_disk:
         check_memory(head, job, ex, model=model, force=opts["force"], layout=layout,
-                     features=len(job.regions), held=resident_memory())
+                     features=len(job.regions), held=resident_memory(children=True))
 
 
 def _prepare_drawing(dem, layout) -> None:
@@ -189,6 +192,19 @@ def _prepare_drawing(dem, layout) -> None:
         prepare_drawing(dem, layout)
     except Exception:  # noqa: BLE001, S110
         pass
+
+
+def workers_ahead(ex: Execution, layout, kind: str | None = None):
+    """Start the run's local worker processes now (``warm_workers``): they start,
+    import the library and, for a whole-grid peaks or depressions run
+    (``kind``), load its compiled kernels while this process reads the DEM and
+    makes its regions. A no-op for a run in this process or on Dask."""
+    if ex.resolved_backend != "processes":
+        return contextlib.nullcontext()
+    from terrain.jobs.credit import load_kernels
+
+    warm = functools.partial(load_kernels, kind) if kind and not layout.blocked else None
+    return warm_workers(ex.n_workers, warm)
 
 
 def run_job(dem, job, model, ex: Execution, opts: dict, *, label: str, headline: str,

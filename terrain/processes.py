@@ -33,22 +33,49 @@ def die_with_parent(parent: int) -> None:
 
 
 class spawning:
-    """Block SIGINT in this thread while child processes start: a child
-    inherits the blocked signal, so a Ctrl-C during its start-up never
-    reaches it (the parent receives it when the block ends)."""
+    """Start child processes with no signal able to cut a start in half.
+
+    SIGINT is blocked in this thread, so each child inherits it blocked and a
+    Ctrl-C during its start-up never reaches it. And SIGINT and SIGTERM are
+    held in this process: their Python handlers only note them until the
+    block ends, then each noted signal is raised again. Blocking alone is not
+    enough: a signal sent to this process lands on any thread that does not
+    block it (a pool's manager thread, say), and Python then runs its handler
+    in this thread between two bytecodes, which could be in the middle of
+    writing a child's start-up data to its pipe; the child would then read a
+    cut pipe and print a traceback. Only the main thread holds (it alone can
+    set handlers); elsewhere this is a no-op.
+    """
+
+    _HELD = ("SIGINT", "SIGTERM")
 
     def __enter__(self):
         import signal
         import threading
 
         self.old = None
-        if hasattr(signal, "pthread_sigmask") and threading.current_thread() is threading.main_thread():
-            self.old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        self.handlers: dict = {}
+        self.noted: list[int] = []
+        if not (hasattr(signal, "pthread_sigmask")
+                and threading.current_thread() is threading.main_thread()):
+            return self
+        self.old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        for name in self._HELD:
+            sig = getattr(signal, name)
+            if signal.getsignal(sig) is not None:  # None: set outside Python, left alone
+                self.handlers[sig] = signal.signal(sig, self._note)
         return self
+
+    def _note(self, signum, frame) -> None:
+        self.noted.append(signum)
 
     def __exit__(self, *exc):
         import signal
 
+        for sig, handler in self.handlers.items():
+            signal.signal(sig, handler)
         if self.old is not None:
             signal.pthread_sigmask(signal.SIG_SETMASK, self.old)
+        for sig in dict.fromkeys(self.noted):
+            signal.raise_signal(sig)
         return False

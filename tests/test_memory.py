@@ -332,3 +332,19 @@ def test_out_of_core_estimate_counts_each_feature_summarised_and_drawn(dems):
     n = 100_000  # enough that the writing is the largest phase
     assert total(2 * n) - total(n) == n * (FEATURE_BYTES + DRAWN_FEATURE_BYTES)
     assert total(2 * n, False) - total(n, False) == n * FEATURE_BYTES
+
+
+def test_resident_memory_counts_child_processes_when_asked():
+    """Worker processes started ahead of a run hold memory the second memory check
+    must add back: a child holding 200 MB (counted) shows with ``children``."""
+    from terrain.io import resident_memory
+
+    child = subprocess.Popen([sys.executable, "-c", "import numpy, sys, time; a = numpy.ones("
+                              "25 * 10**6); sys.stdout.write('ready\\n'); sys.stdout.flush(); "
+                              "time.sleep(30)"], stdout=subprocess.PIPE, text=True)
+    try:
+        assert child.stdout.readline() == "ready\n"
+        assert resident_memory(children=True) - resident_memory() >= 190 * 10**6
+    finally:
+        child.kill()
+        child.wait()

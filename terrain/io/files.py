@@ -51,12 +51,30 @@ def available_memory() -> int:
     return have if room is None else min(have, room)
 
 
-def resident_memory() -> int:
+def resident_memory(*, children: bool = False) -> int:
     """This process's anonymous resident memory in bytes (``RssAnon`` of
     ``/proc/self/status``; 0 where unknown): what it holds that MemAvailable no
-    longer shows (its file-backed pages still count as available there)."""
+    longer shows (its file-backed pages still count as available there). With
+    ``children``, its child processes' too (worker processes started ahead of
+    a run, from ``/proc/self/task/*/children``)."""
+    total = _rss_anon("/proc/self/status")
+    if children:
+        import glob
+
+        for listing in glob.glob("/proc/self/task/*/children"):
+            try:
+                with open(listing) as fh:
+                    pids = fh.read().split()
+            except OSError:
+                continue
+            total += sum(_rss_anon(f"/proc/{pid}/status") for pid in pids)
+    return total
+
+
+def _rss_anon(status: str) -> int:
+    """``RssAnon`` of one ``/proc/PID/status`` file in bytes (0 where unknown)."""
     try:
-        with open("/proc/self/status") as fh:
+        with open(status) as fh:
             for line in fh:
                 if line.startswith("RssAnon:"):
                     return int(line.split()[1]) * 1024

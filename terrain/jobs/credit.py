@@ -74,7 +74,7 @@ from .thresholds import realisation_threshold
 
 __all__ = ["KINDS", "LOG_FIELDS", "POND_FIELDS", "WEIGHTS", "CreditJob", "CreditAccumulator",
            "realise", "pair_log", "pond_log", "log_weights", "concat_logs", "proportion", "region_figures",
-           "credit_layers", "CreditLayers", "dem_regions", "paired_difference"]
+           "credit_layers", "CreditLayers", "dem_regions", "paired_difference", "load_kernels"]
 
 KINDS = ("peaks", "depressions")
 FILTRATION = {"peaks": "peaks", "depressions": "pits"}  # the engine's name for each kind
@@ -263,6 +263,20 @@ def dem_relations(dem: Dem, reg: Regions, filtration: str, connectivity: int, me
         p = blocked_pairs(dem.z, kind=filtration, connectivity=connectivity, block=block)
     return given_relations(dem.z, p, reg, lambda c: labels_at(reg.labels, c), metres, geo,
                            filtration == "peaks")
+
+
+def load_kernels(kind: str) -> None:
+    """Load the compiled kernels a whole-grid realisation of ``kind`` calls (from
+    numba's cache, or compile them) by computing one on a tiny made-up raster:
+    what a worker started ahead of its run does while the DEM is read, so the
+    run's first realisation does not wait for them. Nothing is kept."""
+    yy, xx = np.mgrid[:12, :12]
+    z = (np.sin(yy * 0.9) * np.cos(xx * 0.7) * 20.0 + xx).astype(np.float32)
+    dem = Dem.from_array(z, cellsize=10.0)
+    model = ErrorModel(rmse=1.0)
+    job = CreditJob(kind).resolved(dem, model)
+    job.realise(z - np.float32(job.reference or 0.0), ErrorSampler(model, z.shape, (10.0, 10.0)),
+                0, 0, job.new_counts(z.size))
 
 
 def realise(z: np.ndarray, sampler: ErrorSampler, job: CreditJob, seed: int, i: int,

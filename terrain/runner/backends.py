@@ -43,8 +43,8 @@ from ..processes import die_with_parent, spawning
 
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", "refuse_unguarded",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
-           "init_worker", "spawning", "DaskWatch", "WORKER_WAIT_SECONDS", "POLL_SECONDS",
-           "close_dask", "quiet_dask"]
+           "init_worker", "new_pool", "take_pool", "warm_workers", "spawning", "DaskWatch",
+           "WORKER_WAIT_SECONDS", "POLL_SECONDS", "close_dask", "quiet_dask"]
 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
 WORKER_WAIT_SECONDS = 60.0  # a Dask cluster without any worker (none joined, all left), at most
@@ -169,25 +169,97 @@ def _unguarded_line(path: str, frame) -> int | None:
 
 
 # -- worker side of the process pool ------------------------------------------------
-_CTX: Context | None = None
+_CTX: dict = {}  # the run's context in a worker, under the path it was loaded from
 
 
-def init_worker(ctx: Context | str | None, parent: int) -> None:
-    """Set up a pool worker: signals, death with the parent, and the run's
-    context (given, or the path of a :func:`~terrain.io.save_shared` file)."""
+def init_worker(warm: Callable[[], object] | None, parent: int) -> None:
+    """Set up a pool worker: signals, death with the parent, then ``warm()``
+    (e.g. loading the compiled kernels a job will call), if given."""
     import signal
 
-    global _CTX
     # Ctrl-C is the parent's to handle: the worker was started with SIGINT
     # blocked (see spawning) and from here on ignores it too
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     die_with_parent(parent)  # or exit, if the parent died before we were ready
-    _CTX = load_shared(ctx) if isinstance(ctx, str) else ctx
+    if warm is not None:
+        try:
+            warm()
+        except Exception:  # noqa: BLE001, S110  (it only saves time: the run loads them anyway)
+            pass
 
 
-def _chunk_in_worker(start: int, stop: int):
-    assert _CTX is not None
-    return run_chunk(_CTX, start, stop)
+def _chunk_in_worker(shared: str, start: int, stop: int):
+    """Realisations ``start:stop`` of the run whose context is the
+    :func:`~terrain.io.save_shared` file ``shared`` (loaded once per worker)."""
+    if shared not in _CTX:
+        _CTX.clear()
+        _CTX[shared] = load_shared(shared)
+    return run_chunk(_CTX[shared], start, stop)
+
+
+# -- worker pools, started by a run or ahead of it -----------------------------------
+_AHEAD: list = []  # [(workers, pool)]: the pool warm_workers started, until a run takes it
+
+
+def new_pool(workers: int, warm: Callable[[], object] | None = None):
+    """A local pool of ``workers`` spawned processes (started under
+    :class:`~terrain.processes.spawning`, so no signal cuts a start in half),
+    each set up by :func:`init_worker`."""
+    import concurrent.futures as cf
+    import multiprocessing as mp
+    import os
+
+    with spawning():
+        return cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
+                                      initializer=init_worker, initargs=(warm, os.getpid()))
+
+
+def take_pool(workers: int):
+    """The pool :func:`warm_workers` started, if it has ``workers`` processes and no
+    run took it yet; else a new one."""
+    for i, (n, pool) in enumerate(_AHEAD):
+        if n == workers:
+            del _AHEAD[i]
+            return pool
+    return new_pool(workers)
+
+
+def _started(_: int) -> None:
+    """A task that only makes the pool start a process (and wait for its set-up)."""
+
+
+@contextlib.contextmanager
+def warm_workers(workers: int, warm: Callable[[], object] | None = None):
+    """Start ``workers`` local worker processes now, for the next run in this
+    process on local processes with as many workers (whole grid or blocks),
+    so that they start, import the library and run ``warm()`` while this
+    process reads the DEM and makes its regions, instead of after. A pool no
+    run took is stopped on leaving; the workers die with this process.
+
+    ``warm`` must be picklable (a module-level function, or a
+    :func:`functools.partial` of one) and must not depend on the run.
+
+    Raises
+    ------
+    WorkerError
+        From a script's top level with no ``__main__`` guard, as
+        :func:`~terrain.runner.run_ensemble` does.
+    """
+    refuse_in_bootstrapping_child()
+    refuse_unguarded()
+    pool = new_pool(workers, warm)
+    with spawning():
+        for i in range(workers):  # a process started per task until there are ``workers``
+            pool.submit(_started, i)
+    _AHEAD.append((workers, pool))
+    try:
+        yield
+    finally:
+        for i, (_, p) in enumerate(_AHEAD):
+            if p is pool:  # not taken: nothing uses it
+                del _AHEAD[i]
+                _stop_pool(pool, {}, broken=True)
+                break
 
 
 # -- backends ------------------------------------------------------------------
@@ -220,13 +292,10 @@ def _processes(ctx, plan, workers, scheduler, stop) -> Iterator[tuple]:
 
 def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
     import concurrent.futures as cf
-    import multiprocessing as mp
-    import os
     from concurrent.futures.process import BrokenProcessPool
 
     started = broken = False
-    pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                  initializer=init_worker, initargs=(shared, os.getpid()))
+    pool = take_pool(workers)
     window = _Window(2 * workers)
     pending: dict = {}
     try:
@@ -236,7 +305,7 @@ def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
                 if nxt is None:
                     break
                 with spawning():
-                    pending[pool.submit(_chunk_in_worker, *nxt)] = nxt[0]
+                    pending[pool.submit(_chunk_in_worker, shared, *nxt)] = nxt[0]
             if not pending:
                 return
             done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)

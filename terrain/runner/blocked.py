@@ -58,9 +58,9 @@ from .backends import (
     broken_pool,
     close_dask,
     dask_client,
-    init_worker,
     quiet_dask,
     spawning,
+    take_pool,
 )
 
 __all__ = ["BlockedContext", "blocked_runner", "scratch_arrays"]
@@ -166,13 +166,9 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
         yield builtins.map, None
         return
     if backend == "processes":
-        import concurrent.futures as cf
-        import multiprocessing as mp
         from concurrent.futures.process import BrokenProcessPool
 
-        with spawning():
-            pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                          initializer=init_worker, initargs=(None, os.getpid()))
+        pool = take_pool(workers)
         state = {"started": False}
 
         def pmap(fn, items):

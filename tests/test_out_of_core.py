@@ -113,6 +113,40 @@ def test_count_store_survives_a_kill_between_its_writes(tmp_path):
         moved.check(3)
 
 
+def test_count_store_sealed_with_blake2b_before_still_resumes(tmp_path, monkeypatch):
+    """A store made before its digests became SHA-256 (BLAKE2b; its attributes
+    name no seal) resumes, is verified with its own digests, and a rechunk
+    copies it into SHA-256; an unknown seal is a damaged checkpoint."""
+    import terrain.io.scratch as scratch
+    from terrain.engine.blocked import windows
+
+    shape, rng = (40, 50), np.random.default_rng(1)
+    monkeypatch.setattr(scratch, "SEAL", "blake2b")
+    old = CountStore(tmp_path / "c", shape, 16, run="r")
+    tag = dict(old.group.attrs["cairn"])
+    del tag["seal"]  # as the earlier code wrote it
+    old.group.attrs["cairn"] = tag
+    monkeypatch.undo()
+    total = np.zeros(shape, np.int32)
+    for w in windows(shape, 16):
+        c = rng.integers(0, 3, (w.r1 - w.r0, w.c1 - w.c0)).astype(np.int32)
+        old.add(w, 0, c)
+        total[w.r0:w.r1, w.c0:w.c1] += c
+    again = CountStore(tmp_path / "c", shape, 16, run="r", resume=True)
+    assert again.seal == "blake2b"
+    again.check(1, verify=True)  # each chunk against its BLAKE2b digest
+    assert np.array_equal(again[:, :], total)
+    moved = CountStore(tmp_path / "c", shape, 8, run="r", resume=True)
+    moved.check(1)
+    assert moved.seal == "sha256" and moved.group.attrs["cairn"]["seal"] == "sha256"
+    moved.check(1, verify=True)
+    assert np.array_equal(moved[:, :], total)
+    tag = dict(moved.group.attrs["cairn"])
+    moved.group.attrs["cairn"] = {**tag, "seal": "md4"}
+    with pytest.raises(CheckpointError, match="damaged checkpoint.*unknown kind"):
+        CountStore(tmp_path / "c", shape, 8, run="r", resume=True)
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("kind", ["peaks", "depressions"])
 def test_cli_on_disk_gives_the_same_files(cairn, tmp_path, kind, monkeypatch):

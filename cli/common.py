@@ -81,16 +81,21 @@ def _interrupt(signum, frame):
     kernel's first call unpickles its environment from the cache, called back
     from compiled code): an exception raised there is not one numba can pass on,
     and the process crashed (a segmentation fault or a traceback, in about a third
-    of the Ctrl-Cs sent while a run's first kernels loaded). The signal is then
-    sent again :data:`RETRY_SECONDS` later, when numba's code is over (so on a
-    cold kernel cache it waits for the compiling)."""
+    of the Ctrl-Cs sent while a run's first kernels loaded) -- and while an import
+    runs (importlib's own frames): raised inside importlib's module locks while
+    another thread imports (the map's preparation thread), the exception was
+    swallowed ("Exception ignored in _get_module_lock") and the run went on, or
+    hung on a lock left held. The signal is then sent again
+    :data:`RETRY_SECONDS` later, when that code is over (so on a cold kernel
+    cache it waits for the compiling, and in an import for the import)."""
     import signal
     import threading
 
     inside = _numba_folder()
     f = frame
     while f is not None:
-        if os.path.realpath(f.f_code.co_filename).startswith(inside):
+        name = f.f_code.co_filename
+        if name.startswith("<frozen importlib") or os.path.realpath(name).startswith(inside):
             again = threading.Timer(RETRY_SECONDS, os.kill, (os.getpid(), signum))
             again.daemon = True
             again.start()

@@ -358,7 +358,8 @@ def test_sweep_takes_the_shared_options(cairn, dem_tif, tmp_path):
     assert code == 2 and "--min-prominence" in err
 
 
-def test_a_signal_inside_numba_is_sent_again_later_and_raises_anywhere_else(monkeypatch):
+def test_a_signal_inside_numba_or_an_import_is_sent_again_later_and_raises_anywhere_else(
+        monkeypatch):
     """Ctrl-C or SIGTERM handled while Python code runs inside numba (a kernel's first
     call loading its environment, called back from compiled code) is not raised there,
     where it crashed the process, but sent again a moment later; anywhere else it
@@ -384,6 +385,15 @@ def test_a_signal_inside_numba_is_sent_again_later_and_raises_anywhere_else(monk
             time.sleep(0.01)
         assert sent == [(os.getpid(), signum)]
         sent.clear()
+    # importlib's own frames (an import under way, its module locks held): deferred too
+    frozen: dict = {}
+    exec(compile(src, "<frozen importlib._bootstrap>", "exec"), frozen)
+    common._interrupt(signal.SIGINT, frozen["inside"]())  # no exception
+    deadline = time.monotonic() + 5
+    while not sent and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert sent == [(os.getpid(), signal.SIGINT)]
+    sent.clear()
     with pytest.raises(KeyboardInterrupt) as got:
         common._interrupt(signal.SIGINT, sys._getframe())
     assert not isinstance(got.value, common.Terminated)

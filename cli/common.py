@@ -14,7 +14,7 @@ import sys
 
 import click
 
-from terrain.errors import CairnError, CairnWarning
+from terrain.errors import CairnError, CairnWarning, Terminated
 from terrain.outputs.caution import CAUTION
 
 __all__ = ["CAUTION", "INDEPENDENT_ERROR", "guarded", "flag", "command_line", "warn",
@@ -57,10 +57,6 @@ def _kind() -> str | None:
     if ctx is None:
         return None
     return ctx.params.get("kind") or (ctx.command.name if ctx.command.name in _CUTOFF else None)
-
-
-class Terminated(KeyboardInterrupt):
-    """SIGTERM outside a run's realisations (a run handles it itself)."""
 
 
 #: a signal handled while compiled code calls back into Python is sent again this much later

@@ -20,7 +20,7 @@ __all__ = [
     "CairnError", "DemError", "DemNotFoundError", "NotARasterError", "CorruptRasterError",
     "NoValidCellsError", "BandError", "WindowError", "OptionError",
     "OutputError", "CheckpointError", "MemoryGuardError", "SchedulerError", "WorkerError",
-    "OutletError", "RasterTypeError", "GeoreferenceError", "CairnWarning",
+    "OutletError", "RasterTypeError", "GeoreferenceError", "CairnWarning", "Terminated",
 ]
 
 
@@ -46,6 +46,12 @@ class _Templated:
         for p in self.params:
             text = text.replace("{" + p + "}", label(p))
         return text
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM: the process was asked to end (a KeyboardInterrupt, so code that
+    cleans up after a Ctrl-C cleans up after it too). A run's second SIGTERM
+    raises it at once, as its second Ctrl-C raises KeyboardInterrupt."""
 
 
 class CairnError(_Templated, Exception):

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import sys
 
-__all__ = ["die_with_parent", "spawning"]
+__all__ = ["die_with_parent", "held_signals", "spawning"]
 
 
 def die_with_parent(parent: int) -> None:
@@ -32,22 +32,20 @@ def die_with_parent(parent: int) -> None:
         os._exit(1)
 
 
-class spawning:
-    """Start child processes with no signal able to cut a start in half.
+class held_signals:
+    """Hold SIGINT and SIGTERM while a short step runs that must not be cut in
+    half (a child's start, stopping a pool of workers): their Python handlers
+    only note them until the block ends, then each noted signal is raised
+    again, to the handler that was there before. Only the main thread holds
+    (it alone can set handlers); elsewhere this is a no-op.
 
-    SIGINT is blocked in this thread, so each child inherits it blocked and a
-    Ctrl-C during its start-up never reaches it. And SIGINT and SIGTERM are
-    held in this process: their Python handlers only note them until the
-    block ends, then each noted signal is raised again. Blocking alone is not
-    enough: a signal sent to this process lands on any thread that does not
-    block it (a pool's manager thread, say), and Python then runs its handler
-    in this thread between two bytecodes, which could be in the middle of
-    writing a child's start-up data to its pipe; the child would then read a
-    cut pipe and print a traceback. Only the main thread holds (it alone can
-    set handlers); elsewhere this is a no-op.
+    A second Ctrl-C during the stop of a pool once cut that stop short: a
+    worker was left unkilled, and the interpreter's exit waited on it for
+    ever (or it printed a traceback, its start-up data gone with the parent).
     """
 
     _HELD = ("SIGINT", "SIGTERM")
+    _mask: frozenset = frozenset()  # signals blocked in this thread as well (subclasses)
 
     def __enter__(self):
         import signal
@@ -56,10 +54,11 @@ class spawning:
         self.old = None
         self.handlers: dict = {}
         self.noted: list[int] = []
-        if not (hasattr(signal, "pthread_sigmask")
-                and threading.current_thread() is threading.main_thread()):
+        if threading.current_thread() is not threading.main_thread():
             return self
-        self.old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        if self._mask and hasattr(signal, "pthread_sigmask"):
+            self.old = signal.pthread_sigmask(signal.SIG_BLOCK,
+                                              {getattr(signal, n) for n in self._mask})
         for name in self._HELD:
             sig = getattr(signal, name)
             if signal.getsignal(sig) is not None:  # None: set outside Python, left alone
@@ -79,3 +78,22 @@ class spawning:
         for sig in dict.fromkeys(self.noted):
             signal.raise_signal(sig)
         return False
+
+
+class spawning(held_signals):
+    """Start child processes with no signal able to cut a start in half.
+
+    SIGINT and SIGTERM are blocked in this thread, so each child inherits
+    them blocked: a Ctrl-C or a SIGTERM sent to the whole process group
+    never reaches it (a worker ignores SIGINT from then on and keeps SIGTERM
+    blocked; the parent handles both and kills its workers when it stops
+    early, and they die with it). And both are held in this process
+    (:class:`held_signals`). Blocking alone is not enough: a signal sent to
+    this process lands on any thread that does not block it (a pool's
+    manager thread, say), and Python then runs its handler in this thread
+    between two bytecodes, which could be in the middle of writing a child's
+    start-up data to its pipe; the child would then read a cut pipe and
+    print a traceback.
+    """
+
+    _mask = frozenset(("SIGINT", "SIGTERM"))

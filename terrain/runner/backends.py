@@ -39,12 +39,12 @@ import numpy as np
 from ..errors import CairnError, SchedulerError, WorkerError
 from ..io import load_shared, save_shared, scratch_folder, source_bytes
 from ..noise import ErrorSampler
-from ..processes import die_with_parent, spawning
+from ..processes import die_with_parent, held_signals, spawning
 
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", "refuse_unguarded",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
-           "init_worker", "new_pool", "take_pool", "warm_workers", "spawning", "DaskWatch",
-           "WORKER_WAIT_SECONDS", "POLL_SECONDS", "close_dask", "quiet_dask"]
+           "init_worker", "new_pool", "take_pool", "warm_workers", "spawning", "held_signals",
+           "DaskWatch", "WORKER_WAIT_SECONDS", "POLL_SECONDS", "close_dask", "quiet_dask"]
 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
 WORKER_WAIT_SECONDS = 60.0  # a Dask cluster without any worker (none joined, all left), at most
@@ -177,8 +177,8 @@ def init_worker(warm: Callable[[], object] | None, parent: int) -> None:
     (e.g. loading the compiled kernels a job will call), if given."""
     import signal
 
-    # Ctrl-C is the parent's to handle: the worker was started with SIGINT
-    # blocked (see spawning) and from here on ignores it too
+    # Ctrl-C and SIGTERM are the parent's to handle: the worker was started with
+    # both blocked (see spawning), keeps SIGTERM blocked and ignores SIGINT too
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     die_with_parent(parent)  # or exit, if the parent died before we were ready
     if warm is not None:
@@ -317,6 +317,8 @@ def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
                 yield res
     except BrokenProcessPool:
         broken = True
+        if stop():  # a worker ended by the signal the run is stopping for: the run saves
+            return  # what it folded and reports the signal
         raise broken_pool(started) from None
     finally:
         _stop_pool(pool, pending, broken)
@@ -344,7 +346,14 @@ def _stop_pool(pool, pending, broken: bool = False) -> None:
     """Shut the pool down without waiting for chunks nobody will fold: when
     the run ends early (interrupt, error, a broken pool) the workers are
     killed and reaped, so no process outlives the run and nothing waits on
-    a worker that will never answer."""
+    a worker that will never answer. Ctrl-C and SIGTERM wait for it
+    (:class:`~terrain.processes.held_signals`): a second one cut it short, a
+    worker lived on, and the interpreter's exit waited on it for ever."""
+    with held_signals():
+        _stop_pool_now(pool, pending, broken)
+
+
+def _stop_pool_now(pool, pending, broken: bool) -> None:
     early = broken or any(not f.done() for f in pending)
     for f in pending:
         f.cancel()

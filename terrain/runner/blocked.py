@@ -58,6 +58,7 @@ from .backends import (
     broken_pool,
     close_dask,
     dask_client,
+    held_signals,
     quiet_dask,
     spawning,
     take_pool,
@@ -171,21 +172,27 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
         pool = take_pool(workers)
         state = {"started": False}
 
+        def submit(fn, item):
+            with spawning():  # a submit may start a process; the caller's code runs unheld
+                return pool.submit(fn, item)
+
         def pmap(fn, items):
             try:
-                with spawning():
-                    yield from _ahead(pool.submit, fn, items, 2 * workers)
+                yield from _ahead(submit, fn, items, 2 * workers)
             except BrokenProcessPool:
+                if stop():  # a worker ended by the signal the run is stopping for
+                    raise KeyboardInterrupt from None
                 raise broken_pool(state["started"]) from None
             state["started"] = True
 
         try:
             yield pmap, None
         finally:
-            for proc in list((getattr(pool, "_processes", None) or {}).values()):
-                with contextlib.suppress(Exception):
-                    proc.kill()
-            pool.shutdown(wait=True, cancel_futures=True)
+            with held_signals():  # a second Ctrl-C must not leave a worker unkilled
+                for proc in list((getattr(pool, "_processes", None) or {}).values()):
+                    with contextlib.suppress(Exception):
+                        proc.kill()
+                pool.shutdown(wait=True, cancel_futures=True)
         return
     with quiet_dask():
         client, cluster = dask_client(scheduler, workers)

@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..dem import Dem
-from ..errors import MemoryGuardError, OptionError
+from ..errors import MemoryGuardError, OptionError, Terminated
 from ..io import (
     CountStore,
     available_memory,
@@ -111,15 +111,22 @@ class RunResult:
     layout: RunLayout = field(default_factory=RunLayout)
 
 
+def _terminate(signum, frame):
+    raise Terminated()
+
+
 def _catch_sigint(flag: dict) -> Callable[[], None]:
     """While a run is in progress, Ctrl-C and SIGTERM only set ``flag["interrupted"]``
     (to the signal number).
 
     The run then stops at the next chunk boundary, saves its checkpoint and
     raises :class:`RunInterrupted` (an interrupt inside compiled code would
-    otherwise surface as a SystemError). A second Ctrl-C interrupts at once,
-    a second SIGTERM ends the process. Returns a function restoring the
-    previous handlers.
+    otherwise surface as a SystemError). A second Ctrl-C interrupts at once
+    (KeyboardInterrupt), and so does a second SIGTERM
+    (:class:`~terrain.errors.Terminated`): it once took the signal's default
+    action, which killed the process before a front end could remove what
+    it had begun (its output folder's lock). Returns a function restoring
+    the previous handlers.
     """
     import signal
     import threading
@@ -131,7 +138,7 @@ def _catch_sigint(flag: dict) -> Callable[[], None]:
     def handler(signum, frame):
         flag["interrupted"] = signum
         signal.signal(signum, signal.default_int_handler if signum == signal.SIGINT
-                      else signal.SIG_DFL)
+                      else _terminate)
 
     for s in previous:
         signal.signal(s, handler)

@@ -5,11 +5,13 @@ Prints, measured in this run:
   (noise + pairing + selection + pair log + ponding) and the in-order
   accumulation: the overhead of noise and bookkeeping, as a ratio;
 - realisations per second in-process and with 2 local processes, each run
-  with the run's own chunk plan (as a user's run): the marginal rate of a
-  run of ``--n`` over one of ``--n / 2`` realisations, so the pool's
-  start-up (spawn + imports + numba cache loading, printed apart as the
-  shorter run's wall time less its realisations) and the final fold cancel
-  out; and the scaling efficiency rate_2 / (2 rate_1);
+  with the run's own chunk plan (as a user's run): the steady rate of a run
+  of ``--n``, from its first folded chunk to its last (the progress
+  callback's times), so the pool's start-up (spawn + imports + numba cache
+  loading, printed apart) and the final fold are left out; the median of
+  two runs each (the marginal rate of a run of n over one of n / 2, used
+  before, swung from 62% to 159% on a 2-core machine whose pool start
+  varied by a second); and the scaling efficiency rate_2 / (2 rate_1);
 - the projected wall time of 1000 realisations of peaks and pits on 2 workers;
 - feature bookkeeping: a realisation with its region lookups, ponded area and
   volume per region and the per-region figures folded, against the same
@@ -27,6 +29,22 @@ import time
 
 import numpy as np
 from common import median_time, terrain
+
+
+def _steady_rate(run_ensemble, dem, job, model, n, backend, workers):
+    """Realisations per second of one run of ``n`` between its first folded
+    chunk and its last (from the progress callback's times), so the pool's
+    start-up (spawn, imports, compiled kernels) and the final fold are left
+    out; and the wall time before the first chunk less that chunk's share
+    (the start-up)."""
+    seen = []
+    t0 = time.perf_counter()
+    run_ensemble(dem, job, model, realisations=n, seed=0, backend=backend, workers=workers,
+                 progress=lambda done, total: seen.append((time.perf_counter(), done)))
+    seen = [(t, d) for t, d in seen if d > 0]
+    (t1, d1), (t2, d2) = seen[0], seen[-1]
+    rate = (d2 - d1) / (t2 - t1)
+    return rate, (t1 - t0) - d1 / rate
 
 
 def main():
@@ -73,16 +91,11 @@ def main():
         t_full = statistics.median(ts)
         rates, startup = {}, {}
         for backend, workers in (("serial", 1), ("processes", 2)):
-            walls = {}
-            for n in (a.n // 2, a.n):  # the run's own chunk plan, as a user's run gets
-                t = time.perf_counter()
-                run_ensemble(dem, s, model, realisations=n, seed=0, backend=backend,
-                             workers=workers)
-                walls[n] = time.perf_counter() - t
-            # marginal rate: the longer run's extra realisations over its extra wall time,
-            # so start-up (spawn, imports, kernel cache) and the final fold cancel out
-            rates[backend] = (a.n - a.n // 2) / (walls[a.n] - walls[a.n // 2])
-            startup[backend] = walls[a.n // 2] - (a.n // 2) / rates[backend]
+            got = []
+            for _rep in range(2):
+                got.append(_steady_rate(run_ensemble, dem, s, model, a.n, backend, workers))
+            rates[backend] = statistics.median(r for r, _ in got)
+            startup[backend] = statistics.median(w for _, w in got)
         rows_start = startup
         eff = rates["processes"] / (2 * rates["serial"])
         total_1000 += 1000 / rates["processes"]

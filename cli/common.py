@@ -131,12 +131,27 @@ def guarded(fn):
             sys.exit(2)
         except KeyboardInterrupt as exc:
             term = isinstance(exc, Terminated)
-            click.echo(f"cairn: {'terminated' if term else 'interrupted'}", err=True)
+            click.echo(f"cairn: {'terminated' if term else 'interrupted'}{_kept(exc)}", err=True)
             sys.exit(143 if term else 130)
         finally:
             _restore_signals(previous)
 
     return wrapper
+
+
+def _kept(exc: BaseException) -> str:
+    """What a signal outside the realisations leaves, for its one line: outputs
+    published whole while it waited (``staged_outputs`` marks the exception),
+    or else nothing written, and the checkpoint that holds the realisations."""
+    published = getattr(exc, "published", None)
+    if published:
+        return f" once its outputs were published in {published} (they are whole)"
+    ctx = click.get_current_context(silent=True)
+    ck = ctx.params.get("checkpoint") if ctx is not None else None
+    if ck and os.path.isfile(ck):
+        return (f"; nothing written. {ck} holds the realisations done: the same command plus "
+                f"{flag('resume')} continues from it")
+    return ""
 
 
 def _disk_full(exc: BaseException) -> bool:

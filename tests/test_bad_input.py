@@ -2107,8 +2107,8 @@ def test_ctrl_c_while_cairn_starts(tmp_path, delay):
     assert p.returncode == 130, err
     lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
     assert len(lines) == 1 and lines[0].startswith("cairn: interrupted"), err
-    # nothing half-written: none of the outputs, or (a Ctrl-C in the moment between the
-    # publication's renames and the command's end, known and left for now) all of them
+    # nothing half-written: none of the outputs, or (a Ctrl-C during the publication, which
+    # waits for its renames and says so, or just after it) all of them
     out = tmp_path / "o"
     names = {n for n in os.listdir(out) if not n.startswith(".")} if out.exists() else set()
     assert names in (set(), _PEAKS_OUTPUTS), names
@@ -2172,3 +2172,64 @@ def test_available_memory_respects_the_control_groups_limit(tmp_path, version):
     (group / files[0]).write_text("max\n" if version == 2 else f"{2**63 - 4096}\n")
     assert cgroup_memory_room(str(proc), str(root)) is None  # no limit
     assert cgroup_memory_room(str(tmp_path / "missing"), str(root)) is None
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="POSIX signals")
+@pytest.mark.parametrize("sig", ["SIGINT", "SIGTERM"])
+def test_a_signal_during_the_publication_waits_and_says_the_outputs_are_whole(tmp_path, sig,
+                                                                              monkeypatch):
+    # Sent while the staged files are renamed into the folder, the signal waits for the
+    # renames and the staging folder's removal, then is raised marked `published`: the
+    # command once said "interrupted" over a whole set of outputs, and a signal just after
+    # the renames left an empty staging folder behind (a red-team helper's finding)
+    import terrain.io.publication as publication
+    from terrain.errors import Terminated
+    from terrain.io import staged_outputs
+
+    signum = getattr(signal, sig)
+    seen = []
+    real = publication.replace_into
+
+    def renamed(src, dst):
+        if not seen:
+            os.kill(os.getpid(), signum)  # its handler runs at once, between two bytecodes
+        seen.append(dst)
+        return real(src, dst)
+
+    monkeypatch.setattr(publication, "replace_into", renamed)
+    handler = signal.getsignal(signal.SIGTERM)
+    signal.signal(signal.SIGTERM, lambda s, f: (_ for _ in ()).throw(Terminated()))
+    out = tmp_path / "o"
+    try:
+        with pytest.raises(KeyboardInterrupt) as got:
+            with staged_outputs(out) as stage:
+                for name in ("a.csv", "b.csv", "c.csv"):
+                    (stage / name).write_text(name)
+    finally:
+        signal.signal(signal.SIGTERM, handler)
+    assert isinstance(got.value, Terminated) == (sig == "SIGTERM")
+    assert got.value.published == str(out)
+    assert len(seen) == 3  # every rename was done
+    assert sorted(p.name for p in out.iterdir() if p.name != ".cairn.lock") == [
+        "a.csv", "b.csv", "c.csv"]
+
+
+def test_a_signal_while_writing_names_the_checkpoint_that_holds_the_realisations(tmp_path):
+    # all realisations done and saved, the outputs not yet published: the one line says
+    # nothing was written and where the realisations are (our own rule: no outside reference)
+    import click
+
+    from cairn_cli import common
+
+    ck = tmp_path / "ck.npz"
+    ck.write_bytes(b"x")
+    with click.Context(click.Command("peaks"), info_name="peaks") as ctx:
+        ctx.params["checkpoint"] = str(ck)
+        assert common._kept(KeyboardInterrupt()) == (
+            f"; nothing written. {ck} holds the realisations done: the same command plus "
+            "--resume continues from it")
+        done = KeyboardInterrupt()
+        done.published = "out"
+        assert common._kept(done) == " once its outputs were published in out (they are whole)"
+        ck.unlink()
+        assert common._kept(KeyboardInterrupt()) == ""

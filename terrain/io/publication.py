@@ -20,6 +20,7 @@ from ..errors import (
     CheckpointError,
     OutputError,
 )
+from ..processes import held_signals
 from ._base import (
     LOCK_NAME,
     NOFOLLOW,
@@ -330,12 +331,15 @@ def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ())
     """Yield a staging folder inside ``outdir``; publish its files as a set.
 
     Write every file of a run into the staging folder; when the block ends
-    without error the files are moved into ``outdir`` together (Ctrl-C and
-    SIGTERM wait for the few renames), earlier files matching a glob pattern
-    in ``replaces`` that the new set does not include are removed, and the
-    staging folder goes. On any error or interrupt the staging folder is
-    removed and ``outdir`` keeps its previous files untouched. Holds the
-    folder's lock (:func:`hold_outdir`) throughout.
+    without error the files are moved into ``outdir`` together, earlier
+    files matching a glob pattern in ``replaces`` that the new set does not
+    include are removed, and the staging folder goes. Ctrl-C and SIGTERM
+    wait for those few steps (:class:`~terrain.processes.held_signals`) and
+    are then raised, the exception's ``published`` attribute naming
+    ``outdir``: the outputs are whole, and a front end can say so. On any
+    error or interrupt before, the staging folder is removed and ``outdir``
+    keeps its previous files untouched. Holds the folder's lock
+    (:func:`hold_outdir`) throughout.
     """
     out = Path(outdir)
     _make_outdir(out)
@@ -346,56 +350,45 @@ def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ())
             raise write_error(out, exc) from None
         try:
             yield stage
-            _publish(stage, out, replaces)
+            published = False
+            try:
+                with held_signals():  # a signal here waits, then is raised below
+                    _publish(stage, out, replaces)
+                    shutil.rmtree(stage, ignore_errors=True)
+                    published = True
+            except KeyboardInterrupt as exc:  # Terminated too
+                if published:
+                    exc.published = str(out)
+                raise
         finally:
             shutil.rmtree(stage, ignore_errors=True)
 
 
 def _publish(stage: Path, out: Path, replaces) -> None:
+    """Move the staged files into ``out`` as a set (the caller holds Ctrl-C and
+    SIGTERM meanwhile: :func:`staged_outputs`)."""
     names = sorted(p.name for p in stage.iterdir())
     _refuse_folders(out, names)  # before anything moves
     try:
         sync_dir(stage)
-        with _signals_held():
-            for name in names:  # before anything moves: a GeoPackage open elsewhere stops it
-                if name.lower().endswith(".gpkg"):
-                    release_sqlite(out / name)
-            marker = stage / PUBLISHING
-            with open(marker, "w") as fh:
-                fh.write(json.dumps(names))
-                fh.flush()
-                os.fsync(fh.fileno())
-            for pattern in replaces:
-                for old in out.glob(pattern):
-                    st = os.lstat(old)
-                    if old.name not in names and stat.S_ISREG(st.st_mode) and owned(st):
-                        old.unlink()
-            for name in names:
-                replace_into(stage / name, out / name)
-            sync_dir(out)
+        for name in names:  # before anything moves: a GeoPackage open elsewhere stops it
+            if name.lower().endswith(".gpkg"):
+                release_sqlite(out / name)
+        marker = stage / PUBLISHING
+        with open(marker, "w") as fh:
+            fh.write(json.dumps(names))
+            fh.flush()
+            os.fsync(fh.fileno())
+        for pattern in replaces:
+            for old in out.glob(pattern):
+                st = os.lstat(old)
+                if old.name not in names and stat.S_ISREG(st.st_mode) and owned(st):
+                    old.unlink()
+        for name in names:
+            replace_into(stage / name, out / name)
+        sync_dir(out)
     except OSError as exc:
         raise write_error(out, exc) from None
-
-
-@contextlib.contextmanager
-def _signals_held():
-    """Ctrl-C and SIGTERM wait until the block is done (main thread only)."""
-    import signal
-    import threading
-
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-    caught: list[int] = []
-    sigs = (signal.SIGINT, signal.SIGTERM)
-    previous = {s: signal.signal(s, lambda signum, frame: caught.append(signum)) for s in sigs}
-    try:
-        yield
-    finally:
-        for s, h in previous.items():
-            signal.signal(s, h)
-        for s in dict.fromkeys(caught):
-            signal.raise_signal(s)
 
 
 def replaced_by(path: str | os.PathLike, outdir: str | os.PathLike, names, patterns=()) -> str | None:

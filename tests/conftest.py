@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import functools
 import os
+import signal
 import subprocess
 import sys
 from pathlib import Path
@@ -20,6 +21,14 @@ from scipy.ndimage import gaussian_filter
 # the files go to __pycache__ folders, which git ignores.
 os.environ.pop("PYTHONDONTWRITEBYTECODE", None)
 sys.dont_write_bytecode = False
+
+# Ctrl-C's own handling, whatever the suite was started from: a command started in
+# the background of a shell script inherits SIGINT ignored (POSIX), and Python then
+# keeps it ignored, so tests that send one to this process saw no KeyboardInterrupt.
+# Set in each test process (and inherited as the default action by the commands they
+# start).
+if signal.getsignal(signal.SIGINT) is signal.SIG_IGN:
+    signal.signal(signal.SIGINT, signal.default_int_handler)
 
 
 def pytest_configure(config):

@@ -2233,3 +2233,34 @@ def test_a_signal_while_writing_names_the_checkpoint_that_holds_the_realisations
         assert common._kept(done) == " once its outputs were published in out (they are whole)"
         ck.unlink()
         assert common._kept(KeyboardInterrupt()) == ""
+
+
+def test_a_run_waiting_on_a_pool_whose_manager_thread_is_stuck_sees_a_dead_worker():
+    # A worker killed while it sends a result leaves the pool's manager thread reading the
+    # rest of the message for ever, so the pool never marks its futures broken: a run
+    # waiting on them alone hung (a held-out check, once). Simulated as above, with one
+    # task out and its worker then killed: the wait ends with BrokenProcessPool.
+    import concurrent.futures as cf
+    import multiprocessing as mp
+    import struct
+    from concurrent.futures.process import BrokenProcessPool
+
+    from terrain.runner.backends import _stop_pool, result_watching
+
+    pool = cf.ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
+    writer = pool._result_queue._writer
+    try:
+        assert pool.submit(abs, -3).result(timeout=120) == 3  # the manager thread runs
+        os.write(writer.fileno(), struct.pack("!i", 2**20) + b"x" * 10)
+        time.sleep(0.3)  # the manager thread is now inside the read
+        fut = pool.submit(time.sleep, 60)
+        (proc,) = pool._processes.values()
+        proc.kill()
+        t = time.time()
+        with pytest.raises(BrokenProcessPool):
+            result_watching(pool, fut)
+        assert time.time() - t < 5
+        _stop_pool(pool, {fut: 0}, broken=True)
+    finally:
+        if not writer.closed:
+            writer.close()

@@ -44,11 +44,12 @@ from ..processes import die_with_parent, held_signals, spawning
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", "refuse_unguarded",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
            "init_worker", "new_pool", "take_pool", "warm_workers", "spawning", "held_signals",
-           "DaskWatch", "WORKER_WAIT_SECONDS", "POLL_SECONDS", "close_dask", "quiet_dask"]
+           "DaskWatch", "check_workers", "result_watching", "WORKER_WAIT_SECONDS",
+           "POLL_SECONDS", "close_dask", "quiet_dask"]
 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
 WORKER_WAIT_SECONDS = 60.0  # a Dask cluster without any worker (none joined, all left), at most
-POLL_SECONDS = 0.5  # waits on Dask look at signals, workers and the scheduler this often
+POLL_SECONDS = 0.5  # waits look at signals, workers (and on Dask the scheduler) this often
 RESCATTERS = 3  # a whole-grid Dask run scatters its context again this often at most
 _ADDRESS = re.compile(r"^(?:(?P<scheme>[a-z]+)://)?(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)"
                       r":(?P<port>\d{1,5})/?$")
@@ -308,7 +309,9 @@ def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
                     pending[pool.submit(_chunk_in_worker, shared, *nxt)] = nxt[0]
             if not pending:
                 return
-            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+            done, _ = cf.wait(pending, timeout=POLL_SECONDS, return_when=cf.FIRST_COMPLETED)
+            if not done:
+                check_workers(pool)
             for f in sorted(done, key=pending.get):
                 res = f.result()
                 del pending[f]
@@ -322,6 +325,32 @@ def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
         raise broken_pool(started) from None
     finally:
         _stop_pool(pool, pending, broken)
+
+
+def check_workers(pool) -> None:
+    """Raise BrokenProcessPool if a worker of ``pool`` has died. The pool's
+    own check runs in its manager thread, and a worker killed while it sent a
+    result leaves that thread reading the rest of the message for ever (this
+    process holds the pipe's write end too, so no end of file comes): its
+    futures then never end, and a run waiting on them alone hung. Waits
+    look here every :data:`POLL_SECONDS`."""
+    from concurrent.futures.process import BrokenProcessPool
+
+    procs = getattr(pool, "_processes", None) or {}
+    if any(p.exitcode is not None for p in list(procs.values())):
+        raise BrokenProcessPool("a worker process died")
+
+
+def result_watching(pool, fut):
+    """``fut.result()``, looking every :data:`POLL_SECONDS` whether a worker of
+    ``pool`` died meanwhile (:func:`check_workers`)."""
+    import concurrent.futures as cf
+
+    while True:
+        try:
+            return fut.result(timeout=POLL_SECONDS)
+        except cf.TimeoutError:
+            check_workers(pool)
 
 
 class _Window:
@@ -355,8 +384,9 @@ def _stop_pool(pool, pending, broken: bool = False) -> None:
 
 def _stop_pool_now(pool, pending, broken: bool) -> None:
     early = broken or any(not f.done() for f in pending)
-    for f in pending:
-        f.cancel()
+    # the futures not begun are cancelled by the shutdown below (cancel_futures), in the
+    # pool's manager thread, which then forgets them: cancelled here, a manager thread
+    # that next finds the pool broken failed to mark them ("InvalidStateError" printed)
     procs = list((getattr(pool, "_processes", None) or {}).values())
     # taken before the shutdown, which drops the pool's references to them
     manager = getattr(pool, "_executor_manager_thread", None)

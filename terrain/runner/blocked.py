@@ -60,6 +60,7 @@ from .backends import (
     dask_client,
     held_signals,
     quiet_dask,
+    result_watching,
     spawning,
     take_pool,
 )
@@ -178,7 +179,8 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
 
         def pmap(fn, items):
             try:
-                yield from _ahead(submit, fn, items, 2 * workers)
+                yield from _ahead(submit, fn, items, 2 * workers,
+                                  functools.partial(result_watching, pool))
             except BrokenProcessPool:
                 if stop():  # a worker ended by the signal the run is stopping for
                     raise KeyboardInterrupt from None

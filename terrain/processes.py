@@ -44,8 +44,7 @@ class held_signals:
     ever (or it printed a traceback, its start-up data gone with the parent).
     """
 
-    _HELD = ("SIGINT", "SIGTERM")
-    _mask: frozenset = frozenset()  # signals blocked in this thread as well (subclasses)
+    _block = False  # the same signals also blocked in this thread (spawning)
 
     def __enter__(self):
         import signal
@@ -56,11 +55,10 @@ class held_signals:
         self.noted: list[int] = []
         if threading.current_thread() is not threading.main_thread():
             return self
-        if self._mask and hasattr(signal, "pthread_sigmask"):
-            self.old = signal.pthread_sigmask(signal.SIG_BLOCK,
-                                              {getattr(signal, n) for n in self._mask})
-        for name in self._HELD:
-            sig = getattr(signal, name)
+        held = (signal.SIGINT, signal.SIGTERM)
+        if self._block and hasattr(signal, "pthread_sigmask"):
+            self.old = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+        for sig in held:
             if signal.getsignal(sig) is not None:  # None: set outside Python, left alone
                 self.handlers[sig] = signal.signal(sig, self._note)
         return self
@@ -96,4 +94,4 @@ class spawning(held_signals):
     print a traceback.
     """
 
-    _mask = frozenset(("SIGINT", "SIGTERM"))
+    _block = True

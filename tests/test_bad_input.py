@@ -827,6 +827,14 @@ def _all_gone(pids, within: float = 10.0) -> bool:
     return not [k for k in pids if _alive(k)]
 
 
+def _await(ck, within: float = 120.0) -> None:
+    """Wait until the run has saved its first checkpoint ``ck`` (after 50 realisations:
+    the realisations are under way)."""
+    deadline = time.time() + within
+    while not ck.exists() and time.time() < deadline:
+        time.sleep(0.1)
+
+
 _STARTED: list = []  # runs started by _start_two_workers: killed after their test
 
 
@@ -876,9 +884,7 @@ def test_ctrl_c_while_workers_spawn(big_dem, tmp_path):
 def test_sigterm_saves_and_exits_143_and_a_killed_parent_takes_its_workers(big_dem, tmp_path):
     ck = tmp_path / "ck.npz"
     p, kids = _start_two_workers(big_dem, tmp_path / "o", "--checkpoint", ck)
-    deadline = time.time() + 120
-    while not ck.exists() and time.time() < deadline:  # first checkpoint after 50 realisations
-        time.sleep(0.1)
+    _await(ck)
     p.send_signal(signal.SIGTERM)
     _, err = p.communicate(timeout=60)
     assert p.returncode == 143 and "terminated after" in err and "--resume" in err, err
@@ -934,9 +940,7 @@ def test_a_second_sigterm_ends_the_run_at_once_and_leaves_nothing(big_dem, tmp_p
     # at once, its output folder left behind holding the lock file
     ck = tmp_path / "ck.npz"
     p, kids = _start_two_workers(big_dem, tmp_path / "o", "--checkpoint", ck)
-    deadline = time.time() + 120
-    while not ck.exists() and time.time() < deadline:  # realisations under way
-        time.sleep(0.1)
+    _await(ck)
     p.send_signal(signal.SIGTERM)
     time.sleep(0.02)
     p.send_signal(signal.SIGTERM)
@@ -952,9 +956,7 @@ def test_a_second_sigterm_ends_the_run_at_once_and_leaves_nothing(big_dem, tmp_p
 def test_a_dead_worker_ends_the_run_in_one_line(big_dem, tmp_path):
     ck = tmp_path / "ck.npz"
     p, kids = _start_two_workers(big_dem, tmp_path / "o", "--checkpoint", ck)
-    deadline = time.time() + 120
-    while not ck.exists() and time.time() < deadline:
-        time.sleep(0.1)
+    _await(ck)
     os.kill(kids[-1], signal.SIGKILL)
     _, err = p.communicate(timeout=60)
     one_line_error(p.returncode, err, "worker process died", "--workers")
@@ -972,7 +974,7 @@ def test_stopping_a_pool_whose_worker_died_mid_result_does_not_hang():
     import multiprocessing as mp
     import struct
 
-    from terrain.runner.backends import _stop_pool
+    from terrain.runner.backends import stop_pool
 
     pool = cf.ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
     writer = pool._result_queue._writer
@@ -982,7 +984,7 @@ def test_stopping_a_pool_whose_worker_died_mid_result_does_not_hang():
         os.write(writer.fileno(), struct.pack("!i", 2**20) + b"x" * 10)
         time.sleep(0.3)  # the manager thread is now inside the read
         t = time.time()
-        _stop_pool(pool, {}, broken=True)
+        stop_pool(pool, {}, broken=True)
         assert not manager.is_alive() and time.time() - t < 8
     finally:
         if not writer.closed:  # the fix failed: free the thread, or pytest's exit would hang
@@ -2245,7 +2247,7 @@ def test_a_run_waiting_on_a_pool_whose_manager_thread_is_stuck_sees_a_dead_worke
     import struct
     from concurrent.futures.process import BrokenProcessPool
 
-    from terrain.runner.backends import _stop_pool, result_watching
+    from terrain.runner.backends import result_watching, stop_pool
 
     pool = cf.ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn"))
     writer = pool._result_queue._writer
@@ -2260,7 +2262,7 @@ def test_a_run_waiting_on_a_pool_whose_manager_thread_is_stuck_sees_a_dead_worke
         with pytest.raises(BrokenProcessPool):
             result_watching(pool, fut)
         assert time.time() - t < 5
-        _stop_pool(pool, {fut: 0}, broken=True)
+        stop_pool(pool, {fut: 0}, broken=True)
     finally:
         if not writer.closed:
             writer.close()

@@ -44,7 +44,7 @@ from ..processes import die_with_parent, held_signals, spawning
 __all__ = ["BACKENDS", "Context", "run_chunk", "refuse_in_bootstrapping_child", "refuse_unguarded",
            "check_scheduler_address", "HANDSHAKE_SECONDS", "broken_pool", "dask_client",
            "init_worker", "new_pool", "take_pool", "warm_workers", "spawning", "held_signals",
-           "DaskWatch", "check_workers", "result_watching", "WORKER_WAIT_SECONDS",
+           "DaskWatch", "check_workers", "result_watching", "stop_pool", "WORKER_WAIT_SECONDS",
            "POLL_SECONDS", "close_dask", "quiet_dask"]
 
 HANDSHAKE_SECONDS = 10.0  # connecting to a scheduler and its handshake, at most
@@ -259,7 +259,7 @@ def warm_workers(workers: int, warm: Callable[[], object] | None = None):
         for i, (_, p) in enumerate(_AHEAD):
             if p is pool:  # not taken: nothing uses it
                 del _AHEAD[i]
-                _stop_pool(pool, {}, broken=True)
+                stop_pool(pool, {}, broken=True)
                 break
 
 
@@ -324,7 +324,7 @@ def _pool(shared: str, plan, workers, stop) -> Iterator[tuple]:
             return  # what it folded and reports the signal
         raise broken_pool(started) from None
     finally:
-        _stop_pool(pool, pending, broken)
+        stop_pool(pool, pending, broken)
 
 
 def check_workers(pool) -> None:
@@ -371,7 +371,7 @@ class _Window:
         return len(pending) + len(self.out) < self.size
 
 
-def _stop_pool(pool, pending, broken: bool = False) -> None:
+def stop_pool(pool, pending, broken: bool = False) -> None:
     """Shut the pool down without waiting for chunks nobody will fold: when
     the run ends early (interrupt, error, a broken pool) the workers are
     killed and reaped, so no process outlives the run and nothing waits on

@@ -58,10 +58,10 @@ from .backends import (
     broken_pool,
     close_dask,
     dask_client,
-    held_signals,
     quiet_dask,
     result_watching,
     spawning,
+    stop_pool,
     take_pool,
 )
 
@@ -190,11 +190,7 @@ def _block_map(backend: str, workers: int, scheduler: str | None, stop=lambda: F
         try:
             yield pmap, None
         finally:
-            with held_signals():  # a second Ctrl-C must not leave a worker unkilled
-                for proc in list((getattr(pool, "_processes", None) or {}).values()):
-                    with contextlib.suppress(Exception):
-                        proc.kill()
-                pool.shutdown(wait=True, cancel_futures=True)
+            stop_pool(pool, {}, broken=True)  # its workers killed and reaped, signals held
         return
     with quiet_dask():
         client, cluster = dask_client(scheduler, workers)

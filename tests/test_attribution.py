@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 import os
+import signal
 import threading
 
 import numpy as np
@@ -156,6 +157,44 @@ def test_dask_worker_killed_mid_run_gives_identical_layers(which):
     # the worker holding the context's last copy: its chunks are cancelled for "lost
     # dependencies", the context is scattered again and they are resubmitted
     _same(*_kill_a_worker_mid_run(which))
+
+
+def test_a_signal_while_the_workers_stop_keeps_what_the_run_saved():
+    # a second SIGTERM, held while the pool stopped and raised from its close,
+    # once took the place of the RunInterrupted that says how many realisations
+    # the checkpoint holds (our own rule: no outside reference)
+    from terrain.errors import Terminated
+    from terrain.runner.ensemble import _fold_or_save
+    from terrain.runner.plan import InOrder, StopRule
+
+    class Runner:
+        def __init__(self, first):
+            self.first = first
+
+        def __iter__(self):
+            raise self.first
+            yield  # a generator, as the backends' runners are
+
+        def close(self):
+            raise Terminated()
+
+    class Saver:
+        path, has_file = "ck.npz", True
+
+        def save(self, only_if_new=False):
+            pass
+
+    acc = type("Acc", (), {"n": 75})()
+    flag = {"interrupted": signal.SIGTERM, "stop": False}
+    with pytest.raises(RunInterrupted) as ei:
+        _fold_or_save(Runner(KeyboardInterrupt()), acc, InOrder(0), 400, StopRule(), flag,
+                      on_fold=lambda lg: None, saver=Saver())
+    assert (ei.value.done, ei.value.checkpoint, ei.value.signal) == (75, "ck.npz", 15)
+    # a run that ends for anything but a signal still raises the signal from its close
+    flag = {"interrupted": 0, "stop": False}
+    with pytest.raises(Terminated):
+        _fold_or_save(Runner(ValueError("a worker's error")), acc, InOrder(0), 400, StopRule(),
+                      flag, on_fold=lambda lg: None, saver=Saver())
 
 
 def test_checkpoint_resume_and_extend_are_identical(tmp_path):

@@ -233,8 +233,16 @@ def _fold_or_save(runner, acc, order: InOrder, realisations: int, stop: StopRule
                   *, on_fold, saver) -> bool:
     """:func:`_fold` with Ctrl-C and SIGTERM caught; whatever ends the run, the
     realisations folded so far are saved (the accumulator is whole at chunk
-    boundaries). An interrupt becomes :class:`RunInterrupted`."""
+    boundaries). An interrupt becomes :class:`RunInterrupted`.
+
+    A signal that arrives while the workers stop is held until they have
+    (:func:`terrain.processes.held_signals`) and raised from the runner's
+    close -- unless the run is already ending for a signal, with its
+    realisations saved: a second SIGTERM or Ctrl-C then changes nothing, and
+    must not take the place of the :class:`RunInterrupted` that says what
+    was kept (it once did, and the command's line lost the count saved)."""
     restore = _catch_sigint(flag)
+    ending = None
     try:
         stopped_early = _fold(runner, acc, order, realisations, stop, flag, on_fold=on_fold)
     except BaseException as exc:
@@ -245,12 +253,17 @@ def _fold_or_save(runner, acc, order: InOrder, realisations: int, stop: StopRule
             if interrupted:
                 raise
         if interrupted:
-            raise RunInterrupted(acc.n, str(saver.path) if saver.has_file else None,
-                                 int(flag["interrupted"] or 2)) from None
+            ending = RunInterrupted(acc.n, str(saver.path) if saver.has_file else None,
+                                    int(flag["interrupted"] or 2))
+            raise ending from None
         raise
     finally:
         restore()
-        runner.close()
+        try:
+            runner.close()
+        except KeyboardInterrupt:
+            if ending is None:
+                raise
     saver.save(only_if_new=True)
     return stopped_early
 

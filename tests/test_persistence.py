@@ -373,3 +373,25 @@ def test_event_order_is_the_lexsort_of_key_then_cell(seed):
     for cells in (sorted_cells, unsorted):
         assert np.array_equal(event_order(k, cells), np.lexsort((cells, k)))
         assert np.array_equal(event_order(k.astype(np.float64), cells), np.lexsort((cells, k)))
+
+
+@pytest.mark.parametrize("spread", ["narrow", "wide", "one value"])
+def test_event_order_radix_passes_against_lexsort(spread):
+    # the radix sort's three passes, and a pass skipped where every key shares its
+    # digit (keys of a narrow elevation range share their top bits; one value skips
+    # all three), against numpy's lexsort: signed zeros, infinities, subnormals
+    from terrain.engine.persistence import event_order
+
+    rng = np.random.default_rng(len(spread))
+    n = 300_000
+    if spread == "narrow":
+        k = np.float32(1100.0) + rng.integers(0, 5000, n).astype(np.float32) * np.float32(0.01)
+    elif spread == "wide":
+        k = (rng.standard_normal(n) * rng.choice([1e-3, 1.0, 1e4], n)).astype(np.float32)
+        for v, share in ((0.0, 0.1), (-0.0, 0.1), (np.inf, 0.02), (-np.inf, 0.02), (-1e-40, 0.05)):
+            k[rng.random(n) < share] = np.float32(v)
+    else:
+        k = np.full(n, np.float32(7.5))
+    cells = np.sort(rng.integers(0, n, n))
+    for c in (cells, np.concatenate([cells[::2], cells[1::2]])):  # the blocked engine's two runs
+        assert np.array_equal(event_order(k, c), np.lexsort((c, k)))

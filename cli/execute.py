@@ -23,6 +23,7 @@ from terrain.io import (
     hold_checkpoint,
     read_dem,
     read_header,
+    recorded_outputs,
     remove_file,
     replaced_beside_checkpoint,
     replaced_by,
@@ -32,6 +33,7 @@ from terrain.io import (
     scratch_folder,
 )
 from terrain.noise import ErrorModel, rmse_from
+from terrain.outputs.manifest import every_output
 from terrain.resources import check_disk, check_memory, choose_layout
 from terrain.runner import Execution, RunInterrupted, run_ensemble
 from terrain.runner.backends import warm_workers
@@ -92,7 +94,11 @@ def outputs(outdir, names: list[str], opts: dict, *, inputs=(), checkpoints=None
 
     ``checkpoints`` are the files the run will save (default: ``--checkpoint``);
     ``patterns`` the glob patterns of earlier outputs the publication removes.
+    The files of the run published in the folder before that this one does
+    not write (another command's; its run.json lists them) count as files
+    the run replaces: the publication removes them.
     """
+    names = names + [n for n in recorded_outputs(outdir, every_output()) if n not in names]
     ck = opts["checkpoint"]
     cks = [Path(c) for c in (checkpoints if checkpoints is not None else [ck] if ck else [])]
     _inputs_kept(inputs, outdir, names, patterns, cks)

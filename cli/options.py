@@ -198,7 +198,9 @@ def run(*, per_model: bool = False):
         click.option("--resume", is_flag=True, help=RESUME_HELP),
         click.option("--target-se", type=float, default=None, metavar="SE", help=TARGET_SE_HELP),
         click.option("--overwrite", is_flag=True,
-                     help="Replace this command's existing outputs in the output folder."),
+                     help="Replace the run already in the output folder: its files "
+                          "that this run does not write (another command's, as its run.json "
+                          "lists them) are removed, so the folder holds one run."),
         click.option("--quiet", "-q", is_flag=True, help="No progress bar and no tables."),
         click.option("--force", is_flag=True,
                      help="Run even when the memory estimate exceeds the available memory."),

@@ -2275,3 +2275,60 @@ def test_a_run_waiting_on_a_pool_whose_manager_thread_is_stuck_sees_a_dead_worke
     finally:
         if not writer.closed:
             writer.close()
+
+
+# -- a folder holds one run: --overwrite with another command leaves no mixture ------------
+def test_overwrite_with_another_command_leaves_one_run(cairn, dem, tmp_path, outside):
+    # a depressions run published with --overwrite over a peaks run once left the peaks
+    # layers and tables beside the depressions run.json, which no longer described them
+    # (our own rule: no outside reference)
+    import json
+
+    from terrain.outputs.manifest import file_names
+
+    out = tmp_path / "o"
+    code, _, err = cairn("peaks", dem, "-o", out, *RUN)
+    assert code == 0, err
+    record = json.loads((out / "run.json").read_text())["outputs"]
+    assert record == sorted(outputs_of(out)) == sorted(file_names("peaks"))
+    (out / "outlets.csv").write_text("id,x,y\n1,2,3\n")  # the user's own file, a cairn name
+    code, _, err = cairn("depressions", dem, "-o", out, *RUN)
+    one_line_error(code, err, "--overwrite")  # without it: refused, nothing changed
+    assert sorted(outputs_of(out)) == sorted(file_names("peaks") + ["outlets.csv"])
+    code, _, err = cairn("depressions", dem, "-o", out, *RUN, "--overwrite")
+    assert code == 0, err
+    assert sorted(outputs_of(out)) == sorted(file_names("depressions") + ["outlets.csv"])
+    assert (out / "outlets.csv").read_text() == "id,x,y\n1,2,3\n"  # not listed: kept
+
+
+@pytest.mark.parametrize("plant", ["symlink", "hardlink", "not a cairn name", "record is a link"])
+def test_an_earlier_record_never_removes_what_is_not_cairns(cairn, dem, tmp_path, outside, plant):
+    # the earlier run's record (run.json's outputs) is read, never trusted: a name it lists
+    # goes only when it is a cairn output name and this user's regular file with no other
+    # name (our own rule: no outside reference)
+    import json
+
+    out = tmp_path / "o"
+    out.mkdir()
+    victim = outside / "victim.txt"
+    listed = {"symlink": "summits.csv", "hardlink": "summits.csv",
+              "not a cairn name": "victim.txt", "record is a link": "summits.csv"}[plant]
+    if plant == "symlink":
+        (out / listed).symlink_to(victim)
+    elif plant == "hardlink":
+        os.link(victim, out / listed)
+    elif plant == "not a cairn name":
+        (out / listed).write_text("the user's own text\n")
+    else:
+        (out / listed).write_text("a,b\n")
+    record = {"outputs": [listed, "run.json"]}
+    if plant == "record is a link":
+        (outside / "run.json").write_text(json.dumps(record))
+        (out / "run.json").symlink_to(outside / "run.json")
+    else:
+        (out / "run.json").write_text(json.dumps(record))
+    before = tree(outside)
+    code, _, err = cairn("depressions", dem, "-o", out, *RUN, "--overwrite")
+    assert code == 0, err
+    assert os.path.lexists(out / listed)
+    assert tree(outside) == before

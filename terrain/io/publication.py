@@ -286,6 +286,46 @@ def clean_leftovers(outdir: str | os.PathLike) -> list[str]:
 _MARKER_BYTES = 16 * 2**20  # a publication marker lists file names: larger is not cairn's
 
 
+def _listed_names(path: Path, key: str | None = None) -> list[str]:
+    """The file names a JSON file of this user lists (``key``: under that key of
+    an object), read without following a link; only plain names of the kinds
+    cairn writes (:data:`OUTPUT_NAME`) are kept, and anything unreadable, too
+    large or of another shape lists none."""
+    try:
+        fd = os.open(path, os.O_RDONLY | NOFOLLOW)
+    except OSError:
+        return []
+    try:
+        with os.fdopen(fd, "rb") as fh:
+            st = os.fstat(fh.fileno())
+            if not stat.S_ISREG(st.st_mode) or not owned(st) or st.st_size > _MARKER_BYTES:
+                return []
+            data = json.loads(fh.read())
+    except (OSError, ValueError, RecursionError):  # RecursionError: a deeply nested file
+        return []
+    if key is not None:
+        data = data.get(key) if isinstance(data, dict) else None
+    return [n for n in data if isinstance(n, str) and OUTPUT_NAME.match(n)] \
+        if isinstance(data, list) else []
+
+
+#: the run record each publication includes; its ``outputs`` list the set's file names
+RECORD = "run.json"
+
+
+def recorded_outputs(outdir: str | os.PathLike, patterns=()) -> list[str]:
+    """The files the run published in ``outdir`` before says it wrote (the
+    ``outputs`` of its :data:`RECORD`), those matching one of the glob
+    ``patterns`` (the names cairn's commands write): what a new run's
+    publication removes when its own set lacks them, so that the folder
+    never holds two runs' files side by side. A record that is not this
+    user's regular file (a link, another user's) lists nothing."""
+    import fnmatch
+
+    names = _listed_names(Path(outdir) / RECORD, "outputs")
+    return [n for n in names if any(fnmatch.fnmatchcase(n, p) for p in patterns)]
+
+
 def _complete_publication(stage: Path, out: Path) -> list[str]:
     """Move the files a cut-short publication listed from ``stage`` into ``out``.
 
@@ -297,17 +337,10 @@ def _complete_publication(stage: Path, out: Path) -> list[str]:
         kept, so the folder never holds a mix of two sets.
     """
     marker = stage / PUBLISHING
-    try:
-        st = os.lstat(marker)
-        if not stat.S_ISREG(st.st_mode) or st.st_size > _MARKER_BYTES:
-            return []
-        names = json.loads(marker.read_text())
-    except (OSError, ValueError, RecursionError):  # RecursionError: a deeply nested marker
-        return []
     todo = []
-    for name in names if isinstance(names, list) else ():
-        if not isinstance(name, str) or not OUTPUT_NAME.match(name) or name in todo:
-            continue  # not a name cairn publishes: never followed
+    for name in _listed_names(marker):
+        if name in todo:
+            continue
         with contextlib.suppress(OSError):
             st = os.lstat(stage / name)
             if stat.S_ISREG(st.st_mode) and st.st_nlink == 1 and owned(st):
@@ -327,13 +360,16 @@ def _complete_publication(stage: Path, out: Path) -> list[str]:
 
 
 @contextlib.contextmanager
-def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ()):
+def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = (),
+                   earlier: tuple[str, ...] = ()):
     """Yield a staging folder inside ``outdir``; publish its files as a set.
 
     Write every file of a run into the staging folder; when the block ends
     without error the files are moved into ``outdir`` together, earlier
     files matching a glob pattern in ``replaces`` that the new set does not
-    include are removed, and the staging folder goes. Ctrl-C and SIGTERM
+    include are removed, so are the files the earlier run's record lists
+    (:func:`recorded_outputs`, names matching ``earlier``) that the new set
+    does not include, and the staging folder goes. Ctrl-C and SIGTERM
     wait for those few steps (:class:`~terrain.processes.held_signals`) and
     are then raised, the exception's ``published`` attribute naming
     ``outdir``: the outputs are whole, and a front end can say so. On any
@@ -353,7 +389,7 @@ def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ())
             published = False
             try:
                 with held_signals():  # a signal here waits, then is raised below
-                    _publish(stage, out, replaces)
+                    _publish(stage, out, replaces, earlier)
                     shutil.rmtree(stage, ignore_errors=True)
                     published = True
             except KeyboardInterrupt as exc:  # Terminated too
@@ -364,11 +400,12 @@ def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = ())
             shutil.rmtree(stage, ignore_errors=True)
 
 
-def _publish(stage: Path, out: Path, replaces) -> None:
+def _publish(stage: Path, out: Path, replaces, earlier=()) -> None:
     """Move the staged files into ``out`` as a set (the caller holds Ctrl-C and
     SIGTERM meanwhile: :func:`staged_outputs`)."""
     names = sorted(p.name for p in stage.iterdir())
     _refuse_folders(out, names)  # before anything moves
+    before = [n for n in recorded_outputs(out, earlier) if n not in names]
     try:
         sync_dir(stage)
         for name in names:  # before anything moves: a GeoPackage open elsewhere stops it
@@ -384,6 +421,11 @@ def _publish(stage: Path, out: Path, replaces) -> None:
                 st = os.lstat(old)
                 if old.name not in names and stat.S_ISREG(st.st_mode) and owned(st):
                     old.unlink()
+        for name in before:  # the earlier run's files this set lacks (another command's)
+            with contextlib.suppress(FileNotFoundError):
+                st = os.lstat(out / name)
+                if stat.S_ISREG(st.st_mode) and owned(st) and st.st_nlink == 1:
+                    (out / name).unlink()
         for name in names:
             replace_into(stage / name, out / name)
         sync_dir(out)

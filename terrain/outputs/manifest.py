@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from ..layers import layers_of
 
 __all__ = ["OutputFile", "MANIFEST", "VECTOR_LAYERS", "file_names", "help_text",
-           "replace_patterns"]
+           "replace_patterns", "every_output"]
 
 
 @dataclass(frozen=True)
@@ -169,6 +169,14 @@ def replace_patterns(command: str) -> tuple[str, ...]:
     """Glob patterns of ``command``'s per-outlet files (``{id}`` as ``*``): earlier
     files matching them that a new set lacks are removed when it is published."""
     return tuple(f.name.replace("{id}", "*") for f in MANIFEST[command] if "{id}" in f.name)
+
+
+def every_output() -> tuple[str, ...]:
+    """Glob patterns of every file any command writes (``{id}`` as ``*``): the names an
+    earlier run's record may list for a new run's publication to remove
+    (:func:`terrain.io.recorded_outputs`)."""
+    return tuple(sorted({f.name.replace("{id}", "*") for files in MANIFEST.values()
+                         for f in files}))
 
 
 def help_text(command: str) -> str:

@@ -48,12 +48,12 @@ from ..version import __version__
 from . import plot, sweepchart
 from .beside import in_a_copy, plain_text, write_beside
 from .caution import CAUTION
-from .manifest import MANIFEST, VECTOR_LAYERS, replace_patterns
+from .manifest import MANIFEST, VECTOR_LAYERS, every_output, replace_patterns
 from .tables import rounded
 
 __all__ = ["CAUTION", "write_credit_run", "write_catchment_run", "write_sweep", "provenance",
            "vector_descriptions", "published", "READ_SETTINGS", "plain_text",
-           "vertical_unit_record"]
+           "vertical_unit_record", "write_record"]
 
 # how the DEM was read, as recorded in run.json: band, box, declared nodata,
 # the window of the file read, scale and offset applied, the file's own nodata
@@ -65,12 +65,15 @@ def published(command: Callable[[object], str]) -> Callable:
     staging folder and its files are published together when it returns.
     ``command(result)`` names the manifest entry: earlier files of a
     per-outlet pattern (``{id}``) that the new set lacks are removed with the
-    publication."""
+    publication, and so are the files of the run published there before
+    (its ``run.json`` lists them: :func:`write_record`) that the new set
+    lacks, whichever command wrote them: a folder holds one run."""
 
     def decorate(fn):
         @functools.wraps(fn)
         def wrapper(outdir, result, *args, **kwargs):
-            with staged_outputs(outdir, replaces=replace_patterns(command(result))) as stage:
+            with staged_outputs(outdir, replaces=replace_patterns(command(result)),
+                                earlier=every_output()) as stage:
                 return fn(stage, result, *args, **kwargs)
         return wrapper
 
@@ -79,6 +82,14 @@ def published(command: Callable[[object], str]) -> Callable:
 
 def _now():
     return _dt.datetime.now(_dt.timezone.utc)
+
+
+def write_record(out: Path, run: dict) -> None:
+    """Write ``run.json`` into the staging folder ``out``, last: its ``outputs`` list
+    every file of the set (itself included), which the next run published into the
+    folder removes where its own set lacks them."""
+    run["outputs"] = sorted({p.name for p in out.iterdir()} | {"run.json"})
+    write_json(out / "run.json", run)
 
 
 def provenance(result, *, input_path: str | None, command_line: str | None, created,
@@ -284,7 +295,7 @@ def write_credit_run(outdir: str | Path, result, features, *, input_path: str | 
                 "pair_log_bytes_per_entry": int(sum(np.dtype(result.log[k].dtype).itemsize
                                                     for k in LOG_FIELDS)),
                 "timings": clock.timings(result.info.get("wall_seconds", 0.0))})
-    write_json(out / "run.json", run)
+    write_record(out, run)
     return features
 
 
@@ -321,7 +332,7 @@ def write_catchment_run(outdir: str | Path, result, summary, *, input_path: str 
     if renamed:
         run["layer_ids"] = renamed
     run["timings"] = clock.timings(result.info.get("wall_seconds", 0.0))
-    write_json(out / "run.json", run)
+    write_record(out, run)
 
 
 @published(lambda result: "sweep")
@@ -357,4 +368,4 @@ def write_sweep(outdir: str | Path, result, *, input_path: str | None,
     run.pop("realisations_done")
     run["timings"] = clock.timings(sum(r.info.get("wall_seconds", 0.0)
                                        for r in result.runs.values()))
-    write_json(out / "run.json", run)
+    write_record(out, run)

@@ -13,7 +13,7 @@ from terrain.outputs.manifest import file_names, help_text, replace_patterns
 from terrain.outputs.style import area_text
 
 from . import options
-from .common import CAUTION, command_line, guarded, warn_later
+from .common import CAUTION, command_line, guarded, warn, warn_later
 from .execute import error_model, execution, guard_memory, header, outputs, read, run_job
 from .summary import print_catchments
 
@@ -70,6 +70,26 @@ def catchment_settings(job: CatchmentJob, unit: str) -> str:
            if job.conditioning == "breach" else "fill")
     return (f"{what}, {how}, D{job.connectivity}, channels from "
             f"{area_text(job.channel_area)}{note('channel_area')}")
+
+
+def edge_warning(summary) -> str | None:
+    """One line naming the outlets whose 50% catchment reaches the raster's edge or
+    nodata (its area is then a lower bound), or None."""
+    from terrain.outlets import short
+    from terrain.summary.catchments import LEVELS
+
+    c = summary.frames.get("catchments")
+    if c is None:
+        return None
+    hit = c[(c["level"] == LEVELS[0]) & c["edge_limited"].astype(bool)]
+    if hit.empty:
+        return None
+    named = ", ".join(f"{short(str(o), 24)} ({n:,} cells)"
+                      for o, n in zip(hit["outlet_id"][:5], hit["edge_cells"][:5]))
+    more = f" and {len(hit) - 5} more" if len(hit) > 5 else ""
+    return (f"the 50% catchment of {len(hit)} outlet(s) reaches the raster's edge or nodata: "
+            f"{named}{more}; water may come in from beyond the DEM, so those areas are lower "
+            "bounds (edge_limited in catchments.csv): give a DEM that holds the whole catchment")
 
 
 @click.command("catchments", epilog=_EPILOG)
@@ -139,5 +159,8 @@ def catchments_cmd(dem, outlets, outlets_crs, outdir, snap, channel_area, condit
     summary = summarise_catchments(res, pts.attributes if pts else None, outlets=pts)
     write_catchment_run(out, res, summary, input_path=str(dem),
                         outlets_path=str(outlets) if outlets else None, command_line=command_line())
+    cut = edge_warning(summary)
+    if cut:
+        warn(cut)
     if not opts["quiet"]:
         print_catchments(summary, res, outdir=out, caution=CAUTION)

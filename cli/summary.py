@@ -140,7 +140,7 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
         for i in range(len(c)):
             k = i // len(LEVELS)
             t.add_row(short(_plain(c["outlet_id"][i]), 24), f"{c['level'][i]:.0%}",
-                      f"{c['area_m2'][i] / 1e6:.3f}",
+                      ("≥ " if c["edge_limited"][i] else "") + f"{c['area_m2'][i] / 1e6:.3f}",
                       f"{c['area_mean_m2'][i] / 1e6:.3f} ({c['area_p05_m2'][i] / 1e6:.3f}–"
                       f"{c['area_p95_m2'][i] / 1e6:.3f})", f"{sc['area_m2'][i] / 1e6:.3f}",
                       f"{o['snapped_share'][k]:.0%}", f"{o['snap_distance_mean_m'][k]:.0f}")
@@ -151,6 +151,9 @@ def print_catchments(summary, result, *, outdir, caution: str) -> None:
     console.print(f"channel in >= 50% of realisations: {share:.1%} of cells "
                   f"(drainage area >= {area_text(result.job.channel_area)}, {result.job.conditioning}, "
                   f"D{result.job.connectivity})")
+    if frames and frames["catchments"]["edge_limited"].any():
+        console.print("≥: the catchment reaches the raster's edge or nodata; its area is a lower "
+                      "bound")
     console.print(f"outputs in {_plain(outdir)}")
     console.print(caution, style="italic")
 

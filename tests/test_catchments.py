@@ -134,6 +134,21 @@ def test_nested_outlets():
     assert np.all(a[:, 0] < a[:, 1])
 
 
+def test_boundary_cells_are_the_edge_and_the_cells_beside_nodata():
+    # where water may come in from ground the DEM does not hold (our own rule: no
+    # outside reference)
+    from terrain.summary.catchments import boundary_cells
+
+    nodata = np.zeros((7, 8), bool)
+    nodata[3, 4] = True
+    b = boundary_cells(nodata)
+    want = np.zeros_like(nodata)
+    want[[0, -1], :] = want[:, [0, -1]] = True
+    want[2:5, 3:6] = True
+    want[3, 4] = False  # nodata itself is no cell of a catchment
+    assert np.array_equal(b, want)
+
+
 def test_outlet_edge_cases(tmp_path):
     z, cell = _valley(20, 21)
     z[5, 5] = np.nan
@@ -175,7 +190,8 @@ def test_cli_catchments_end_to_end(tmp_path, cairn):
             assert "flood behaviour" in ds.tags()["note"]
     gdf = pyogrio.read_dataframe(tmp_path / "out" / "catchments.gpkg", layer="catchments")
     assert list(gdf.columns[:-1]) == ["outlet_id", "layer_id", "level", "area_m2", "area_mean_m2",
-                                      "area_p05_m2", "area_p95_m2", "name", "river", "input_level"]
+                                      "area_p05_m2", "area_p95_m2", "edge_cells", "edge_limited",
+                                      "name", "river", "input_level"]
     csv = pd.read_csv(tmp_path / "out" / "catchments.csv", dtype={"outlet_id": str})
     pd.testing.assert_frame_equal(csv, rounded(pd.DataFrame(gdf.drop(columns="geometry")),
                                                CATCHMENT_COLUMN_KINDS), check_dtype=False)
@@ -184,6 +200,10 @@ def test_cli_catchments_end_to_end(tmp_path, cairn):
     # valley worked example: 51 rows x 41 columns drain through row 50; the weir's 31 rows
     # are nested in the ford's catchment and split from its sub-catchment
     assert ford.area_m2.iloc[0] == pytest.approx(51 * 41 * 100.0, rel=0.02)
+    # the valley's catchment holds the raster's top row and both sides down to row 50:
+    # 41 + 2 x 50 edge cells; water could come in there, so its area is a lower bound
+    assert ford.edge_cells.tolist() == [141, 141] and ford.edge_limited.all()
+    assert "lower bounds" in err and "ford (141 cells)" in err
     sub = pyogrio.read_dataframe(tmp_path / "out" / "catchments.gpkg", layer="subcatchments")
     sub_ford = sub[(sub.outlet_id == "ford") & (sub.level == 0.5)]
     assert sub_ford.area_m2.iloc[0] == pytest.approx(20 * 41 * 100.0, rel=0.03)

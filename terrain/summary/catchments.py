@@ -5,7 +5,10 @@ column of the outlets file (a column whose name is one of ours is renamed
 ``input_<name>``):
 
 - ``catchments``: cells draining to the outlet (its whole upstream area) in
-  at least 50% / 90% of realisations;
+  at least 50% / 90% of realisations; ``edge_cells`` counts those on the
+  raster's edge or beside nodata, and ``edge_limited`` flags a catchment
+  with any: water may enter it from beyond the DEM, so its area is a lower
+  bound;
 - ``subcatchments``: cells whose first chosen outlet downstream is this one
   in at least 50% / 90% of realisations;
 - ``outlets``: the point as given (in the outlets file's own CRS, named in
@@ -26,17 +29,18 @@ from .features import region_polygons
 
 __all__ = ["CATCHMENT_COLUMNS", "OUTLET_COLUMNS", "CATCHMENT_COLUMN_KINDS", "OUTLET_COLUMN_KINDS",
            "FRAME_COLUMN_KINDS", "LEVELS", "CatchmentSummary", "area_summary",
-           "catchment_table", "outlet_table", "summarise_catchments", "snap_distances"]
+           "catchment_table", "outlet_table", "summarise_catchments", "snap_distances",
+           "boundary_cells"]
 
 CATCHMENT_COLUMNS = ("outlet_id", "layer_id", "level", "area_m2", "area_mean_m2", "area_p05_m2",
-                     "area_p95_m2")
+                     "area_p95_m2", "edge_cells", "edge_limited")
 OUTLET_COLUMNS = ("outlet_id", "layer_id", "x", "y", "crs", "x_dem", "y_dem", "snapped_x",
                   "snapped_y", "snapped_share", "snap_distance_mean_m")
 #: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`);
 #: attribute columns from the outlets file are written as they came.
 CATCHMENT_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "level": "probability",
                           "area_m2": "area", "area_mean_m2": "area", "area_p05_m2": "area",
-                          "area_p95_m2": "area"}
+                          "area_p95_m2": "area", "edge_cells": "integer", "edge_limited": "flag"}
 OUTLET_COLUMN_KINDS = {"outlet_id": "text", "layer_id": "text", "x": "parameter",
                        "y": "parameter", "crs": "text", "x_dem": "coordinate",
                        "y_dem": "coordinate", "snapped_x": "coordinate", "snapped_y": "coordinate",
@@ -108,6 +112,17 @@ def attribute_names(ours, theirs) -> list[str]:
     return out
 
 
+def boundary_cells(nodata: np.ndarray) -> np.ndarray:
+    """Valid cells on the raster's edge or with a nodata cell among their 8
+    neighbours: where water may come in from ground the DEM does not hold."""
+    from scipy import ndimage
+
+    near = ndimage.binary_dilation(nodata, structure=np.ones((3, 3), bool))
+    near[0, :] = near[-1, :] = True
+    near[:, 0] = near[:, -1] = True
+    return near & ~nodata
+
+
 def catchment_table(result, attributes=None, *, role: str = "membership"):
     """One row per outlet and level (50%, 90%): polygon and areas.
 
@@ -115,8 +130,11 @@ def catchment_table(result, attributes=None, *, role: str = "membership"):
     ``role="subcatchment"``: its sub-catchment (cells whose first chosen
     outlet downstream it is). ``area_m2`` is the area of the cells in it in
     at least that share of realisations; ``area_mean_m2`` and the 5-95%
-    range are over realisations. ``attributes`` (one row per outlet, e.g.
-    :attr:`terrain.outlets.Outlets.attributes`) are appended to each row.
+    range are over realisations. ``edge_cells`` is how many of those cells
+    lie on the raster's edge or beside nodata (:func:`boundary_cells`);
+    ``edge_limited`` says there are some: the catchment may reach beyond the
+    DEM, and its areas are lower bounds. ``attributes`` (one row per outlet,
+    e.g. :attr:`terrain.outlets.Outlets.attributes`) are appended to each row.
 
     Returns
     -------
@@ -129,6 +147,7 @@ def catchment_table(result, attributes=None, *, role: str = "membership"):
     spec = LAYERS[layer_name("catchments", role)]
     areas = area_summary(result.log, job.ids, _AREA_FIELD[role])
     area_row = dem.cell_area_m2()
+    boundary = boundary_cells(dem.nodata)
     rows = {c: [] for c in CATCHMENT_COLUMNS}
     geoms, index = [], []
     for k, (oid, lid) in enumerate(zip(job.ids, job.layer_ids)):
@@ -139,8 +158,9 @@ def catchment_table(result, attributes=None, *, role: str = "membership"):
                                          connectivity=job.connectivity)[0])
             index.append(k)
             mean, p05, p95 = areas[oid]
+            edge = int(np.count_nonzero(m & boundary))
             for col, v in zip(CATCHMENT_COLUMNS, (oid, lid, level, float((m * area_row[:, None]).sum()),
-                                                  mean, p05, p95)):
+                                                  mean, p05, p95, edge, edge > 0)):
                 rows[col].append(v)
     frame = _attach(pd.DataFrame(rows), index, attributes)
     return gpd.GeoDataFrame(frame, geometry=geoms, crs=dem.crs)

@@ -64,6 +64,7 @@ from .publication import (
     prepare_outdir,
     recorded_outputs,
     replaced_by,
+    staged_names,
     staged_outputs,
 )
 from .rasters import SENTINELS, RasterWindows, dem_warnings, dem_windows, read_dem, read_header
@@ -107,7 +108,7 @@ __all__ = ["read_dem", "read_header", "RasterWindows", "dem_windows", "SENTINELS
            "SCRATCH_PREFIX", "hold_checkpoint", "OUTPUT_NAME", "csv_cell", "csv_safe",
            "FORMULA_START", "scratch_parent", "free_bytes", "check_scratch_space",
            "is_count_store", "check_count_store_path", "check_counts_url", "is_url", "COUNTS_TAG",
-           "SCRATCH_LOCK", "recorded_outputs",
+           "SCRATCH_LOCK", "recorded_outputs", "staged_names",
            "resolves_into", "replaced_by", "kernel_cache_folder", "replaced_beside_checkpoint",
            "WINDOW_WRITE_CACHE",
            "scratch_file", "levels_file", "count_store_file", "CHECKPOINT_SUFFIX"]

@@ -313,6 +313,11 @@ def _listed_names(path: Path, key: str | None = None) -> list[str]:
 RECORD = "run.json"
 
 
+def staged_names(stage: str | os.PathLike) -> list[str]:
+    """The names of the files written so far into a staging folder (sorted)."""
+    return sorted(p.name for p in Path(stage).iterdir())
+
+
 def recorded_outputs(outdir: str | os.PathLike, patterns=()) -> list[str]:
     """The files the run published in ``outdir`` before says it wrote (the
     ``outputs`` of its :data:`RECORD`), those matching one of the glob
@@ -403,7 +408,7 @@ def staged_outputs(outdir: str | os.PathLike, *, replaces: tuple[str, ...] = (),
 def _publish(stage: Path, out: Path, replaces, earlier=()) -> None:
     """Move the staged files into ``out`` as a set (the caller holds Ctrl-C and
     SIGTERM meanwhile: :func:`staged_outputs`)."""
-    names = sorted(p.name for p in stage.iterdir())
+    names = staged_names(stage)
     _refuse_folders(out, names)  # before anything moves
     before = [n for n in recorded_outputs(out, earlier) if n not in names]
     try:

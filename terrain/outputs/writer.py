@@ -30,6 +30,7 @@ import numpy as np
 
 from ..io import (
     file_sha256,
+    staged_names,
     staged_outputs,
     write_csv,
     write_figure,
@@ -88,7 +89,7 @@ def write_record(out: Path, run: dict) -> None:
     """Write ``run.json`` into the staging folder ``out``, last: its ``outputs`` list
     every file of the set (itself included), which the next run published into the
     folder removes where its own set lacks them."""
-    run["outputs"] = sorted({p.name for p in out.iterdir()} | {"run.json"})
+    run["outputs"] = sorted(set(staged_names(out)) | {"run.json"})
     write_json(out / "run.json", run)
 
 

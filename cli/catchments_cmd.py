@@ -96,7 +96,7 @@ def edge_warning(summary) -> str | None:
 @click.argument("dem", type=click.Path(dir_okay=False))
 @click.option("--outlets", type=click.Path(dir_okay=False), default=None,
               help="Outlet points (GeoPackage, GeoJSON, Shapefile, or CSV with x,y[,id]); "
-                   "without it only channel probability is computed.")
+                   "without it only channel probability and drainage area are computed.")
 @click.option("--outlets-crs", default=None, metavar="CRS",
               help="CRS of a CSV of outlets (e.g. EPSG:4326), or of a vector file that "
                    "declares none [default: a sidecar gauges.csv.crs, gauges.crs or gauges.prj, "

@@ -74,8 +74,9 @@ def error_model(*, many_kernels: bool = False):
                      metavar="K1,K2,..." if many_kernels else "KERNEL",
                      help=(f"Kernels to compare at equal RMSE, comma-separated ({kinds})."
                            if many_kernels else
-                           f"Distribution of independent per-cell error ({kinds}), scaled so its "
-                           "standard deviation is the RMSE.")),
+                           f"Distribution of the per-cell error ({kinds}), scaled so its "
+                           "standard deviation is the RMSE; with --range, the distribution "
+                           "the correlated field is reshaped to.")),
         click.option("--range", "range_m", type=float, default=0.0, show_default=True,
                      help="Practical range of spatially correlated error, in metres; 0 = "
                           "independent per cell. DEM error is usually spatially correlated: "

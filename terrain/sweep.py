@@ -65,7 +65,7 @@ SENSITIVITY_COLUMNS = ("rmse", "kernel_a", "kernel_b", "layer_max_abs_diff", "la
                        "expected_diff_se", "p_first_diff", "p_first_diff_se")
 #: What each column is (decides its precision in CSV, see :mod:`terrain.outputs.tables`);
 #: credit shares are probabilities' kin (shares of the total), the layer differences are
-#: per-cell credit.
+#: per-cell credit (their means over the raster's cells, mostly zeros, kept to 8 decimals).
 SWEEP_COLUMN_KINDS = {"kernel": "text", "rmse": "parameter", "feature_id": "id",
                       "unperturbed": "vertical", "x": "coordinate", "y": "coordinate",
                       "expected": "vertical", "se": "vertical", "p_above": "probability",
@@ -74,7 +74,7 @@ SWEEP_COLUMN_KINDS = {"kernel": "text", "rmse": "parameter", "feature_id": "id",
                       "credit_share_se": "probability"}
 SENSITIVITY_COLUMN_KINDS = {"rmse": "parameter", "kernel_a": "text", "kernel_b": "text",
                             "layer_max_abs_diff": "credit", "layer_max_abs_diff_se": "credit",
-                            "layer_mean_abs_diff": "credit", "layer_noise_floor": "credit",
+                            "layer_mean_abs_diff": "cell_mean", "layer_noise_floor": "cell_mean",
                             "feature_id": "id", "expected_diff": "vertical",
                             "expected_diff_se": "vertical", "p_first_diff": "probability",
                             "p_first_diff_se": "probability"}

@@ -17,6 +17,9 @@ vertical       2          elevations, prominences, depths and their standard
                           errors and percentiles (0.01 of the vertical unit)
 credit         4          expected credit per cell (vertical units or counts
                           per realisation; often far below one unit)
+cell_mean      8          a per-cell credit averaged over every cell of the
+                          raster, most of them zero (a kernel comparison's
+                          mean difference and its noise floor)
 probability    4          probabilities and shares of realisations or credit,
                           and their standard errors
 coordinate     2 / 7      x, y: 0.01 of a projected CRS unit; 7 decimals of a
@@ -37,8 +40,8 @@ import pandas as pd
 
 __all__ = ["DECIMALS", "AS_IS", "GEOGRAPHIC_COORDINATE_DECIMALS", "rounded"]
 
-DECIMALS = {"vertical": 2, "credit": 4, "probability": 4, "coordinate": 2, "area": 2,
-            "volume": 2, "mean_rank": 2, "distance": 1}
+DECIMALS = {"vertical": 2, "credit": 4, "cell_mean": 8, "probability": 4, "coordinate": 2,
+            "area": 2, "volume": 2, "mean_rank": 2, "distance": 1}
 AS_IS = frozenset({"id", "integer", "flag", "text", "parameter"})
 GEOGRAPHIC_COORDINATE_DECIMALS = 7  # 1e-7 degree of latitude is about 1.1 cm
 

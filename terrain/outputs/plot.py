@@ -332,8 +332,9 @@ def _map_subtitle(kind: dict, features: int, drawn: int) -> str:
             f"realisations" + (f" or labelled ({more} more in the table)" if more else "")
             + f". Labels, one per group, in table order: #id, {kind['figure']} on the DEM as "
             f"given (* bimodal: two clusters of outcomes, so no mean is shown), P(ranks first); "
-            f"a group (dotted line: features that trade a place or share {place}) gives the "
-            "place its members trade and each one's share.")
+            f"a group (dotted line: features that trade a place or share {place}; its label "
+            "is placed at the first one it names) gives the place its members trade and each "
+            "one's share.")
 
 
 def _draw_features(frame: MapFrame, drawn, outlines: list, kind: dict) -> None:

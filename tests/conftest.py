@@ -120,6 +120,11 @@ def usgs_dem():
         return np.asarray(f["elevation"]).astype(np.float32)
 
 
+def said(err: str) -> list[str]:
+    """A command's stderr lines, without the warnings said before its outcome."""
+    return [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+
+
 def write_tif(path, z, *, crs="EPSG:32633", transform=None, nodata=None, dtype=None, count=1,
               units=None):
     """Write a small GeoTIFF for a test (rasterio)."""

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import rasterio
 
-from .conftest import cli_command, smooth_terrain, write_tif
+from .conftest import cli_command, said, smooth_terrain, write_tif
 
 pytestmark = pytest.mark.usefixtures("stand_in_figures")
 
@@ -26,7 +26,7 @@ RUN = ("--rmse", "1", "-n", "4", "--workers", "1", "-q")
 
 def one_line_error(code, err, *needles):
     # warnings said before the error (e.g. about independent error) are not part of it
-    lines = [line for line in err.strip().splitlines() if not line.startswith("cairn: warning:")]
+    lines = said(err)
     assert code == 2, err
     assert len(lines) == 1 and lines[0].startswith("cairn: error:"), err
     for n in needles:
@@ -874,7 +874,7 @@ def test_ctrl_c_while_workers_spawn(big_dem, tmp_path):
     _, err = p.communicate(timeout=60)
     assert p.returncode == 130, err
     no_traceback(err)
-    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    lines = said(err)
     assert lines[0].startswith("cairn: interrupted") and len(lines) == 1
     assert _all_gone(kids)
     nothing_written(tmp_path / "o")
@@ -910,7 +910,7 @@ def test_sigterm_to_the_process_group_while_workers_start_ends_in_one_line(big_d
         _, err = p.communicate(timeout=60)
         assert p.returncode == 143, err
         no_traceback(err)
-        lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+        lines = said(err)
         assert len(lines) == 1 and lines[0].startswith("cairn: terminated"), err
         assert _all_gone(kids)
         nothing_written(tmp_path / f"o{n}")
@@ -948,7 +948,7 @@ def test_a_second_sigterm_ends_the_run_at_once_and_leaves_nothing(big_dem, tmp_p
     _, err = p.communicate(timeout=60)
     assert p.returncode == 143, err
     no_traceback(err)
-    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    lines = said(err)
     assert len(lines) == 1, err
     # landing while the realisations ran or the workers stopped, the second SIGTERM
     # leaves the line of the first (how many realisations the checkpoint holds);
@@ -1912,7 +1912,7 @@ def test_ctrl_c_and_sigterm_end_a_run_whose_workers_left(tmp_path, cluster, sig,
     assert p.returncode == code, err
     no_traceback(err)
     assert time.time() - t < 10
-    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    lines = said(err)
     assert "saved" in err and "--resume" in err and len(lines) == 1, err
     assert ck.exists()
 
@@ -2116,7 +2116,7 @@ def test_ctrl_c_while_cairn_starts(tmp_path, delay):
     if p.returncode == 0:  # it finished first (a fast machine): nothing to check
         return
     assert p.returncode == 130, err
-    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    lines = said(err)
     assert len(lines) == 1 and lines[0].startswith("cairn: interrupted"), err
     # nothing half-written: none of the outputs, or (a Ctrl-C during the publication, which
     # waits for its renames and says so, or just after it) all of them

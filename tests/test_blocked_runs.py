@@ -19,7 +19,7 @@ from terrain.jobs.credit import realise
 from terrain.jobs.credit_blocked import PerturbedSource, realise_blocked
 from terrain.noise import ErrorSampler
 
-from .conftest import smooth_terrain, write_tif
+from .conftest import said, smooth_terrain, write_tif
 
 # runs here draw blank stand-ins for the figures (tests/conftest.py); a test
 # marked real_figures draws them
@@ -163,7 +163,7 @@ def test_cli_bad_block_is_one_line(cairn, tmp_path):
     p = write_tif(tmp_path / "dem.tif", smooth_terrain((30, 30), seed=5))
     code, _, err = cairn("peaks", p, "-o", tmp_path / "o", "--rmse", "1", "-n", "2", "-q",
                          "--block", "4")
-    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    lines = said(err)
     assert code == 2 and len(lines) == 1 and "--block" in lines[0] and "Traceback" not in err
     assert not (tmp_path / "o").exists() or not any((tmp_path / "o").iterdir())
 

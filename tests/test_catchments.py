@@ -28,7 +28,7 @@ from terrain.outputs.tables import rounded
 from terrain.runner import run_ensemble
 from terrain.summary.catchments import CATCHMENT_COLUMN_KINDS
 
-from .conftest import smooth_terrain, write_tif
+from .conftest import said, smooth_terrain, write_tif
 from .reference_fill import fill_depressions
 
 # runs here draw blank stand-ins for the figures (tests/conftest.py); a test
@@ -518,7 +518,7 @@ def test_vector_outlets_keep_their_own_crs(tmp_path, cairn):
     # an option contradicting the file's own CRS is refused in one line
     code, _, err = _catchments(cairn, dem, tmp_path / "o.geojson", tmp_path / "o2",
                                "--outlets-crs", "EPSG:3857")
-    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    lines = said(err)
     assert code == 2 and len(lines) == 1 and "--outlets-crs" in lines[0]
 
 

@@ -24,7 +24,7 @@ from terrain.errors import OptionError
 from terrain.io import read_dem
 from terrain.summary.features import summarise_features
 
-from .conftest import smooth_terrain, write_tif
+from .conftest import said, smooth_terrain, write_tif
 
 # runs here draw blank stand-ins for the figures (tests/conftest.py); a test
 # marked real_figures draws them
@@ -190,6 +190,6 @@ def test_float32_step_over_a_tenth_of_the_rmse_is_refused(tmp_path, cairn):
                      backend="serial")
     path = write_tif(tmp_path / "wide.tif", z, dtype="float64", units="metre")
     code, _, err = cairn("peaks", path, "-o", tmp_path / "out", "--rmse", "1", "-n", "1")
-    lines = [x for x in err.strip().splitlines() if not x.startswith("cairn: warning:")]
+    lines = said(err)
     assert code == 2 and len(lines) == 1 and "float32" in lines[0] and "--rmse" in lines[0]
     assert not (tmp_path / "out" / "summits.csv").exists()
